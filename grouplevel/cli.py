@@ -1,0 +1,118 @@
+"""Command line: argument parsing only; the work happens in :mod:`grouplevel.pipeline`."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import tempfile
+from pathlib import Path
+
+from grouplevel import __version__
+from grouplevel.errors import UserError
+
+EXIT_USER_ERROR = 2
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="grouplevel",
+        description="Mixed-effects group analysis of rodent fMRI contrast maps "
+        "(runs nested in animals).",
+    )
+    p.add_argument("--version", action="version", version=f"grouplevel {__version__}")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    c = sub.add_parser("check", help="validate a study and print its overview")
+    c.add_argument("study", type=Path, help="the study's TOML file")
+
+    r = sub.add_parser("run", help="fit the group model and write maps and summary")
+    r.add_argument("study", type=Path, help="the study's TOML file")
+    r.add_argument("--out", type=Path, required=True, help="output folder")
+    r.add_argument("--force", action="store_true", help="replace an existing output folder")
+    r.add_argument("--quiet", action="store_true", help="print only errors and the result")
+
+    e = sub.add_parser("example", help="write the invented example study into a folder")
+    e.add_argument("folder", type=Path)
+
+    d = sub.add_parser("demo", help="write the example study and run it")
+    d.add_argument("--out", type=Path, default=None,
+                   help="folder for the example study and its results (default: temporary)")
+    d.add_argument("--force", action="store_true", help="replace earlier demo results")
+    d.add_argument("--quiet", action="store_true")
+    return p
+
+
+def _log(quiet: bool):
+    def log(msg: str) -> None:
+        if not quiet:
+            print(msg, flush=True)
+
+    return log
+
+
+def _check(args: argparse.Namespace) -> int:
+    from grouplevel.overview import study_overview
+    from grouplevel.study import load_study
+
+    study = load_study(args.study)
+    print(study_overview(study), end="")
+    print("study is valid")
+    return 0
+
+
+def _run(args: argparse.Namespace) -> int:
+    from grouplevel.pipeline import run_study
+
+    out = run_study(args.study, args.out, force=args.force, log=_log(args.quiet))
+    print(f"outputs written to {out}")
+    return 0
+
+
+def _example(args: argparse.Namespace) -> int:
+    from grouplevel.example import write_example
+
+    toml = write_example(args.folder)
+    print(f"example study written to {toml.parent}")
+    print(f"next: grouplevel check {toml}")
+    return 0
+
+
+def _demo(args: argparse.Namespace) -> int:
+    from grouplevel.example import write_example
+    from grouplevel.pipeline import check_output_folder, run_study
+
+    base = args.out if args.out is not None else Path(tempfile.mkdtemp(prefix="grouplevel-demo-"))
+    base = base.expanduser().resolve()
+    results = base / "results"
+    check_output_folder(results, args.force)
+    log = _log(args.quiet)
+    toml = write_example(base / "example_study")
+    log(f"example study written to {toml.parent}")
+    out = run_study(toml, results, force=args.force, log=log)
+    print(f"demo finished: outputs in {out}")
+    print(f"  summary: {out / 'summary.json'}")
+    return 0
+
+
+_COMMANDS = {"check": _check, "run": _run, "example": _example, "demo": _demo}
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``grouplevel`` console script."""
+    args = _parser().parse_args(argv)
+    try:
+        return _COMMANDS[args.command](args)
+    except UserError as exc:
+        text = str(exc)
+        first, _, rest = text.partition("\n")
+        print(f"error: {first}", file=sys.stderr)
+        if rest:
+            print(rest, file=sys.stderr)
+        return EXIT_USER_ERROR
+    except KeyboardInterrupt:
+        print("interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

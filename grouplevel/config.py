@@ -1,0 +1,337 @@
+"""Study configuration: the TOML file, validated into frozen settings.
+
+All defaults live here, each with a note on where it comes from. Unknown keys are
+errors with a "did you mean" suggestion, never silently ignored, and every problem in
+the file is reported at once.
+"""
+
+from __future__ import annotations
+
+import difflib
+import tomllib
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+from grouplevel.errors import UserError
+
+# --- defaults (one place) -----------------------------------------------------------
+DEFAULT_MIN_COVERAGE = 1.0  # every run must have data at a voxel unless the user allows less
+DEFAULT_FORMULA = "1"  # one-sample design: the group mean
+DEFAULT_RUN_VARIANCE = "estimate"  # estimate σ² (between-run variance) by REML
+DEFAULT_DF_METHOD = "between"  # conservative between-animal df (Pinheiro & Bates 2000)
+DEFAULT_CONTRAST_NAME = "mean"
+DEFAULT_PERMUTATIONS = 0  # parametric inference only
+DEFAULT_SEED = 1
+DEFAULT_MAX_ITER = 100  # Fisher scoring iterations per voxel; REML converges in ~5-15
+DEFAULT_ORIGIN_NAME = "origin"
+
+RUN_VARIANCE_CHOICES = ("estimate", "known")
+DF_CHOICES = ("between", "satterthwaite")
+
+
+@dataclass(frozen=True)
+class StudySettings:
+    table: Path
+    title: str = "Untitled study"
+    template: Path | None = None
+    mask: Path | None = None
+    min_coverage: float = DEFAULT_MIN_COVERAGE
+
+
+@dataclass(frozen=True)
+class SpaceSettings:
+    origin_mm: tuple[float, float, float] = (0.0, 0.0, 0.0)
+    origin_name: str = DEFAULT_ORIGIN_NAME
+
+
+@dataclass(frozen=True)
+class AtlasSettings:
+    image: Path
+    labels: Path
+
+
+@dataclass(frozen=True)
+class ModelSettings:
+    formula: str = DEFAULT_FORMULA
+    run_variance: str = DEFAULT_RUN_VARIANCE
+    df: str = DEFAULT_DF_METHOD
+    max_iter: int = DEFAULT_MAX_ITER
+
+
+@dataclass(frozen=True)
+class ContrastSpec:
+    name: str
+    weights: dict[str, float]
+
+
+@dataclass(frozen=True)
+class InferenceSettings:
+    permutations: int = DEFAULT_PERMUTATIONS
+    seed: int = DEFAULT_SEED
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Everything a study's TOML says, with defaults filled in and paths resolved."""
+
+    source: Path
+    study: StudySettings
+    space: SpaceSettings
+    model: ModelSettings
+    contrasts: tuple[ContrastSpec, ...]
+    inference: InferenceSettings
+    atlas: AtlasSettings | None = None
+    user_contrasts: bool = field(default=False)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain-JSON form (paths as strings) for summary.json."""
+
+        def clean(value: Any) -> Any:
+            if isinstance(value, Path):
+                return str(value)
+            if isinstance(value, dict):
+                return {k: clean(v) for k, v in value.items()}
+            if isinstance(value, list | tuple):
+                return [clean(v) for v in value]
+            return value
+
+        return clean(asdict(self))
+
+
+# --- schema -------------------------------------------------------------------------
+# section -> allowed keys. Types are checked by the readers below.
+_SCHEMA: dict[str, tuple[str, ...]] = {
+    "study": ("title", "table", "template", "mask", "min_coverage"),
+    "space": ("origin_mm", "origin_name"),
+    "atlas": ("image", "labels"),
+    "model": ("formula", "run_variance", "df", "max_iter"),
+    "contrast": ("name", "weights"),
+    "inference": ("permutations", "seed"),
+}
+
+
+def _suggest(word: str, choices: list[str] | tuple[str, ...]) -> str:
+    close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.6)
+    return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+class _Reader:
+    """Collects problems while reading one TOML file."""
+
+    def __init__(self, path: Path) -> None:
+        self.file = path
+        self.problems: list[str] = []
+
+    def problem(self, where: str, text: str) -> None:
+        self.problems.append(f"{self.file.name}: {where}: {text}")
+
+    def check_keys(self, where: str, table: dict[str, Any], allowed: tuple[str, ...]) -> None:
+        for key in table:
+            if key not in allowed:
+                self.problem(
+                    f"[{where}] {key}",
+                    f"unknown key{_suggest(key, allowed)}; allowed keys: {', '.join(allowed)}",
+                )
+
+    def get(
+        self,
+        where: str,
+        table: dict[str, Any],
+        key: str,
+        kind: type | tuple[type, ...],
+        default: Any = None,
+        required: bool = False,
+    ) -> Any:
+        if key not in table:
+            if required:
+                self.problem(f"[{where}] {key}", "required key is missing")
+            return default
+        value = table[key]
+        kinds = kind if isinstance(kind, tuple) else (kind,)
+        # TOML integers are acceptable where a float is asked for; booleans never are.
+        if float in kinds and isinstance(value, int) and not isinstance(value, bool):
+            value = float(value)
+        if isinstance(value, bool) and bool not in kinds:
+            ok = False
+        else:
+            ok = isinstance(value, kinds)
+        if not ok:
+            names = " or ".join(k.__name__ for k in kinds)
+            self.problem(f"[{where}] {key}", f"expected {names}, got {value!r}")
+            return default
+        return value
+
+    def path(self, where: str, table: dict[str, Any], key: str, required: bool = False):
+        value = self.get(where, table, key, str, required=required)
+        if value is None:
+            return None
+        p = Path(value).expanduser()
+        return p if p.is_absolute() else (self.file.parent / p).resolve()
+
+
+def load_settings(path: str | Path) -> Settings:
+    """Read and validate a study TOML file.
+
+    Parameters
+    ----------
+    path
+        The study's TOML file. Relative paths inside it are relative to its folder.
+
+    Returns
+    -------
+    Settings
+        Frozen settings with every default filled in.
+
+    Raises
+    ------
+    UserError
+        Listing every problem found in the file (unknown keys, wrong types, bad values).
+    """
+    path = Path(path).expanduser().resolve()
+    if not path.is_file():
+        raise UserError(f"{path}: study file not found")
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as exc:
+        raise UserError(f"{path}: not valid TOML: {exc}") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise UserError(f"{path}: cannot read the study file: {exc}") from None
+
+    r = _Reader(path)
+    for section in raw:
+        if section not in _SCHEMA:
+            r.problem(
+                f"[{section}]",
+                f"unknown section{_suggest(section, list(_SCHEMA))}; "
+                f"allowed sections: {', '.join(_SCHEMA)}",
+            )
+
+    def section(name: str, required: bool = False) -> dict[str, Any]:
+        value = raw.get(name, {})
+        if name not in raw and required:
+            r.problem(f"[{name}]", "required section is missing")
+        if not isinstance(value, dict):
+            r.problem(f"[{name}]", "must be a table (a [section] header)")
+            return {}
+        r.check_keys(name, value, _SCHEMA[name])
+        return value
+
+    s = section("study", required=True)
+    table = r.path("study", s, "table", required=True)
+    min_cov = r.get("study", s, "min_coverage", float, DEFAULT_MIN_COVERAGE)
+    if not 0.0 < min_cov <= 1.0:
+        r.problem("[study] min_coverage", f"must be in (0, 1], got {min_cov}")
+    study = StudySettings(
+        table=table if table is not None else path.parent,
+        title=r.get("study", s, "title", str, "Untitled study"),
+        template=r.path("study", s, "template"),
+        mask=r.path("study", s, "mask"),
+        min_coverage=min_cov,
+    )
+
+    sp = section("space")
+    origin = r.get("space", sp, "origin_mm", list, [0.0, 0.0, 0.0])
+    if not (
+        len(origin) == 3
+        and all(isinstance(v, int | float) and not isinstance(v, bool) for v in origin)
+    ):
+        r.problem("[space] origin_mm", f"must be three numbers [x, y, z] in mm, got {origin!r}")
+        origin = [0.0, 0.0, 0.0]
+    space = SpaceSettings(
+        origin_mm=tuple(float(v) for v in origin),  # type: ignore[arg-type]
+        origin_name=r.get("space", sp, "origin_name", str, DEFAULT_ORIGIN_NAME),
+    )
+
+    atlas = None
+    if "atlas" in raw:
+        a = section("atlas")
+        image = r.path("atlas", a, "image", required=True)
+        labels = r.path("atlas", a, "labels", required=True)
+        if image is not None and labels is not None:
+            atlas = AtlasSettings(image=image, labels=labels)
+
+    m = section("model")
+    run_variance = r.get("model", m, "run_variance", str, DEFAULT_RUN_VARIANCE)
+    if run_variance not in RUN_VARIANCE_CHOICES:
+        r.problem(
+            "[model] run_variance",
+            f"must be one of {', '.join(RUN_VARIANCE_CHOICES)}, got {run_variance!r}"
+            + _suggest(run_variance, RUN_VARIANCE_CHOICES),
+        )
+    df = r.get("model", m, "df", str, DEFAULT_DF_METHOD)
+    if df not in DF_CHOICES:
+        r.problem(
+            "[model] df",
+            f"must be one of {', '.join(DF_CHOICES)}, got {df!r}" + _suggest(df, DF_CHOICES),
+        )
+    max_iter = r.get("model", m, "max_iter", int, DEFAULT_MAX_ITER)
+    if max_iter < 1:
+        r.problem("[model] max_iter", f"must be at least 1, got {max_iter}")
+    formula = r.get("model", m, "formula", str, DEFAULT_FORMULA).strip()
+    if not formula:
+        r.problem("[model] formula", "is empty; use \"1\" for the group mean")
+    model = ModelSettings(formula=formula, run_variance=run_variance, df=df, max_iter=max_iter)
+
+    contrasts: list[ContrastSpec] = []
+    raw_contrasts = raw.get("contrast", [])
+    if not isinstance(raw_contrasts, list):
+        r.problem("[contrast]", "write contrasts as [[contrast]] blocks (an array of tables)")
+        raw_contrasts = []
+    seen: set[str] = set()
+    for i, c in enumerate(raw_contrasts, start=1):
+        where = f"contrast {i}"
+        if not isinstance(c, dict):
+            r.problem(f"[[contrast]] {i}", "must be a table")
+            continue
+        r.check_keys(where, c, _SCHEMA["contrast"])
+        name = r.get(where, c, "name", str, required=True)
+        weights = r.get(where, c, "weights", dict, required=True)
+        if name is None or weights is None:
+            continue
+        if not name or any(ch in name for ch in '/\\:*?"<>|') or name.startswith("."):
+            r.problem(f"[{where}] name", f"{name!r} cannot be used as a folder name")
+            continue
+        if name in seen:
+            r.problem(f"[{where}] name", f"contrast name {name!r} is used twice")
+        seen.add(name)
+        clean: dict[str, float] = {}
+        for coef, w in weights.items():
+            if isinstance(w, bool) or not isinstance(w, int | float):
+                r.problem(f"[{where}] weights.{coef}", f"weight must be a number, got {w!r}")
+            else:
+                clean[coef] = float(w)
+        if clean and all(w == 0 for w in clean.values()):
+            r.problem(f"[{where}] weights", "all weights are zero")
+        contrasts.append(ContrastSpec(name=name, weights=clean))
+    user_contrasts = bool(contrasts)
+    if not contrasts:
+        contrasts.append(ContrastSpec(name=DEFAULT_CONTRAST_NAME, weights={"Intercept": 1.0}))
+
+    inf = section("inference")
+    permutations = r.get("inference", inf, "permutations", int, DEFAULT_PERMUTATIONS)
+    if permutations < 0:
+        r.problem("[inference] permutations", f"must be 0 or more, got {permutations}")
+    elif permutations > 0:
+        r.problem(
+            "[inference] permutations",
+            "permutation inference is not part of this version of grouplevel; "
+            "set permutations = 0 (parametric maps only)",
+        )
+    inference = InferenceSettings(
+        permutations=permutations,
+        seed=r.get("inference", inf, "seed", int, DEFAULT_SEED),
+    )
+
+    if r.problems:
+        raise UserError(f"{path}: {len(r.problems)} problem(s) in the study file", r.problems)
+    return Settings(
+        source=path,
+        study=study,
+        space=space,
+        model=model,
+        contrasts=tuple(contrasts),
+        inference=inference,
+        atlas=atlas,
+        user_contrasts=user_contrasts,
+    )

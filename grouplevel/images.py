@@ -1,0 +1,141 @@
+"""NIfTI reading and writing, grid and orientation checks, masked extraction.
+
+Grids are compared through their affines (never through array order): two images share
+a grid when their shapes are equal and their affines agree within a small tolerance.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+
+from grouplevel.errors import UserError
+
+# Affines may differ by rounding in the header (float32 storage); 1e-3 mm is far below
+# any rodent voxel (0.05-0.3 mm) yet above float32 round-off for typical coordinates.
+AFFINE_TOLERANCE_MM = 1e-3
+
+
+@dataclass(frozen=True)
+class Grid:
+    """The voxel grid that every map of a study shares."""
+
+    shape: tuple[int, int, int]
+    affine: np.ndarray
+
+    @property
+    def voxel_size(self) -> np.ndarray:
+        """Voxel edge lengths in mm along the three array axes."""
+        return np.sqrt((self.affine[:3, :3] ** 2).sum(axis=0))
+
+    @property
+    def voxel_volume(self) -> float:
+        """Voxel volume in mm³."""
+        return float(abs(np.linalg.det(self.affine[:3, :3])))
+
+    @property
+    def orientation(self) -> str:
+        """Axis codes of the affine, e.g. ``RAS`` (where each array axis points)."""
+        return "".join(nib.aff2axcodes(self.affine))
+
+
+def read_header_grid(path: Path) -> Grid:
+    """Read only the header of a NIfTI file and return its grid.
+
+    Raises
+    ------
+    UserError
+        When the file is missing, unreadable or not a 3-D volume.
+    """
+    img = _open(path)
+    shape = tuple(int(s) for s in img.shape)
+    if len(shape) == 4 and shape[3] == 1:
+        shape = shape[:3]
+    if len(shape) != 3:
+        raise UserError(
+            f"{path}: expected one 3-D volume, found shape {shape}; "
+            "write one map per file"
+        )
+    return Grid(shape=shape, affine=np.asarray(img.affine, dtype=float))  # type: ignore[arg-type]
+
+
+def _open(path: Path):
+    if not path.exists():
+        raise UserError(f"{path}: file not found")
+    try:
+        return nib.load(str(path))
+    except Exception as exc:  # nibabel raises several types for unreadable files
+        raise UserError(f"{path}: cannot read as NIfTI ({exc})") from None
+
+
+def read_volume(path: Path) -> np.ndarray:
+    """Read a 3-D volume as float64 (a trailing axis of length 1 is dropped)."""
+    img = _open(path)
+    try:
+        data = np.asarray(img.dataobj, dtype=np.float64)
+    except Exception as exc:
+        raise UserError(f"{path}: cannot read the image data ({exc})") from None
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.ndim != 3:
+        raise UserError(f"{path}: expected one 3-D volume, found shape {data.shape}")
+    return data
+
+
+def grid_mismatch(reference: Grid, other: Grid) -> str | None:
+    """Describe how ``other`` differs from ``reference``, or return None if they match."""
+    if other.shape != reference.shape:
+        return f"grid {other.shape} differs from the study grid {reference.shape}"
+    if other.orientation != reference.orientation:
+        return (
+            f"orientation {other.orientation} differs from the study's "
+            f"{reference.orientation}; reorient it to the template"
+        )
+    diff = np.abs(other.affine - reference.affine).max()
+    if diff > AFFINE_TOLERANCE_MM:
+        return (
+            f"affine differs from the study grid by up to {diff:.4g} mm "
+            f"(tolerance {AFFINE_TOLERANCE_MM} mm); resample it to the template"
+        )
+    return None
+
+
+def write_map(
+    path: Path,
+    values: np.ndarray,
+    mask: np.ndarray,
+    grid: Grid,
+    description: str,
+    dtype: type = np.float32,
+) -> None:
+    """Write masked values as a 3-D NIfTI map on the study grid.
+
+    Values outside the mask are 0, and NaN never leaks into the file (it becomes 0).
+
+    Parameters
+    ----------
+    path
+        Output file (``.nii.gz``).
+    values
+        Either a full 3-D array on the grid or a 1-D array of in-mask values.
+    mask
+        Boolean 3-D analysis mask.
+    grid
+        The study grid (its affine goes into the header).
+    description
+        What the map holds; stored in the header's description field (80 bytes max).
+    """
+    out = np.zeros(grid.shape, dtype=dtype)
+    if values.ndim == 1:
+        out[mask] = np.nan_to_num(values, nan=0.0, posinf=0.0, neginf=0.0)
+    else:
+        out[mask] = np.nan_to_num(values[mask], nan=0.0, posinf=0.0, neginf=0.0)
+    img = nib.Nifti1Image(out, grid.affine)
+    img.header["descrip"] = description.encode("ascii", "replace")[:79]
+    img.header.set_xyzt_units("mm")
+    img.set_qform(grid.affine, code=1)
+    img.set_sform(grid.affine, code=1)
+    nib.save(img, str(path))

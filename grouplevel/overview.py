@@ -1,0 +1,85 @@
+"""The short study overview that ``grouplevel check`` prints (rendered from templates/)."""
+
+from __future__ import annotations
+
+from importlib import resources
+
+import jinja2
+import numpy as np
+
+from grouplevel.study import Study
+
+# RAS+ axis codes to the rodent words of the trade (common practice): x runs
+# left-right (medial-lateral), y posterior-anterior, z ventral-dorsal (inferior-superior).
+_AXIS_WORDS = {
+    "R": "left→right", "L": "right→left",
+    "A": "posterior→anterior", "P": "anterior→posterior",
+    "S": "ventral→dorsal", "I": "dorsal→ventral",
+}
+
+
+def _environment() -> jinja2.Environment:
+    loader = jinja2.FunctionLoader(
+        lambda name: resources.files("grouplevel.templates").joinpath(name).read_text(
+            encoding="utf-8"
+        )
+    )
+    # Plain-text output; autoescape stays on for .html templates only.
+    return jinja2.Environment(
+        loader=loader,
+        autoescape=jinja2.select_autoescape(["html"]),
+        keep_trailing_newline=True,
+        undefined=jinja2.StrictUndefined,
+    )
+
+
+def study_overview(study: Study) -> str:
+    """Plain-text overview: grid, orientation, mask, animals, runs, exclusions."""
+    s = study.settings
+    grid = study.grid
+    mask = study.user_mask
+    first_levels = []
+    for fl in study.first_levels:
+        per_animal = fl.runs.groupby("animal", sort=False).size()
+        excluded = [
+            f"{r['animal']} session {r['session'] or '-'} run {r['run'] or '-'}"
+            f" (line {r['line']}): {r['reason'] or 'no reason given'}"
+            for _, r in fl.excluded.iterrows()
+        ]
+        first_levels.append(
+            {
+                "label": f"contrast {fl.name}" if fl.name else "runs",
+                "n_animals": fl.design.n_animals,
+                "n_runs": len(fl.runs),
+                "n_excluded": len(fl.excluded),
+                "runs_per_animal": list(per_animal.items()),
+                "excluded": excluded,
+                "mask_voxels": int(fl.mask.sum()),
+                "mask_volume": float(fl.mask.sum() * grid.voxel_volume),
+                "contrasts": [name for name, _ in fl.contrasts],
+            }
+        )
+    kind = study.first_levels[0].variance_kind if study.first_levels else "none"
+    variance_words = {
+        "variance": "first-level variance maps",
+        "se": "first-level standard-error maps (squared on load)",
+        "none": "none given (the model estimates all run-level variance)",
+    }[kind]
+    return _environment().get_template("check_summary.txt.j2").render(
+        title=s.study.title,
+        source=s.source,
+        table=s.study.table,
+        grid=grid,
+        voxel_size=[f"{v:.4g}" for v in grid.voxel_size],
+        orientation_words=", ".join(_AXIS_WORDS[c] for c in grid.orientation),
+        mask_voxels=None if mask is None else int(mask.sum()),
+        mask_volume=None if mask is None else float(np.sum(mask) * grid.voxel_volume),
+        origin_name=s.space.origin_name,
+        origin_mm=[f"{v:g}" for v in s.space.origin_mm],
+        variance_words=variance_words,
+        formula=s.model.formula,
+        run_variance=s.model.run_variance,
+        df=s.model.df,
+        first_levels=first_levels,
+        warnings=list(study.warnings),
+    )

@@ -1,0 +1,375 @@
+"""The one place that strings the steps together: study → model → maps → outputs.
+
+Also the public Python API (re-exported by :mod:`grouplevel`): :func:`load_study`,
+:func:`fit_study`, :func:`write_outputs` and :func:`run_study`.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import os
+import shutil
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from grouplevel import __version__
+from grouplevel.config import DEFAULT_CONTRAST_NAME, Settings
+from grouplevel.errors import UserError
+from grouplevel.images import Grid, write_map
+from grouplevel.model import (
+    between_animal_df,
+    fit_reml,
+    satterthwaite_df,
+    test_contrast,
+)
+from grouplevel.study import FirstLevel, Study, load_runs, load_study
+
+# maps written for every group contrast: file stem -> header description
+MAP_DESCRIPTIONS = {
+    "effect": "group effect (contrast estimate)",
+    "se": "standard error of the group effect",
+    "t": "t statistic of the group effect",
+    "z": "z (normal deviate with the same p as t)",
+    "p": "two-sided p (uncorrected)",
+    "df": "degrees of freedom of t",
+    "var_animal": "between-animal variance tau^2 (REML)",
+    "var_run": "between-run variance sigma^2 (REML)",
+}
+
+
+@dataclass(frozen=True)
+class GroupMap:
+    """One group contrast of one first-level contrast: in-mask values and context.
+
+    Every per-voxel array has one value per in-mask voxel, in the order of
+    ``numpy.argwhere(mask)`` (C order over the grid).
+    """
+
+    name: str
+    first_level: str | None
+    contrast: str
+    weights: dict[str, float]
+    grid: Grid
+    mask: np.ndarray
+    effect: np.ndarray
+    se: np.ndarray
+    t: np.ndarray
+    df: np.ndarray
+    z: np.ndarray
+    p: np.ndarray
+    var_animal: np.ndarray
+    var_run: np.ndarray
+    coverage_runs: np.ndarray  # 3-D
+    coverage_animals: np.ndarray  # 3-D
+    not_converged: int
+    n_animals: int
+    n_runs: int
+
+    def volume(self, key: str) -> np.ndarray:
+        """A per-voxel quantity as a full 3-D array (0 outside the mask)."""
+        out = np.zeros(self.grid.shape)
+        out[self.mask] = getattr(self, key)
+        return out
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per in-mask voxel: voxel index, position in mm, and every statistic."""
+        idx = np.argwhere(self.mask)
+        mm = idx @ self.grid.affine[:3, :3].T + self.grid.affine[:3, 3]
+        frame = pd.DataFrame(
+            {"i": idx[:, 0], "j": idx[:, 1], "k": idx[:, 2],
+             "x_mm": mm[:, 0], "y_mm": mm[:, 1], "z_mm": mm[:, 2]}
+        )
+        for key in MAP_DESCRIPTIONS:
+            frame[key] = getattr(self, key)
+        frame["runs_with_data"] = self.coverage_runs[self.mask]
+        return frame
+
+
+def _fit_first_level(
+    study: Study, fl: FirstLevel, log: Callable[[str], None]
+) -> tuple[list[GroupMap], list[str]]:
+    settings = study.settings
+    warnings: list[str] = []
+    label = fl.name or "the study"
+    start = time.perf_counter()
+    data = load_runs(study, fl)
+    mask = fl.mask.copy()
+    keep = np.ones(data.effect.shape[1], dtype=bool)
+    if data.variance is None:
+        # Without first-level variances a voxel whose runs all hold the same value has
+        # no variance to estimate; it cannot be fitted.
+        flat = np.nanmax(data.effect, axis=0) == np.nanmin(data.effect, axis=0)
+        if flat.any():
+            keep = ~flat
+            warnings.append(
+                f"{label}: {int(flat.sum())} voxel(s) left out: every run holds the same value"
+            )
+            idx = np.argwhere(mask)[flat]
+            mask[tuple(idx.T)] = False
+    y = data.effect[:, keep]
+    s2 = None if data.variance is None else data.variance[:, keep]
+    design = fl.design
+    log(
+        f"fitting {label}: {y.shape[1]:,} voxels, {y.shape[0]} runs, "
+        f"{design.n_animals} animals"
+    )
+    fit = fit_reml(
+        y,
+        s2,
+        design.matrix,
+        design.animal,
+        estimate_run_variance=settings.model.run_variance == "estimate",
+        max_iter=settings.model.max_iter,
+    )
+    not_converged = int((~fit.converged).sum())
+    if not_converged:
+        warnings.append(
+            f"{label}: the REML fit reached the iteration limit ({settings.model.max_iter}) "
+            f"at {not_converged} voxel(s); their estimates are the last iterate"
+        )
+    present = np.isfinite(y)
+    results = []
+    for cname, c in fl.contrasts:
+        if settings.model.df == "satterthwaite":
+            df = satterthwaite_df(fit, c)
+        else:
+            df = between_animal_df(design.matrix, design.animal, present, c)
+        res = test_contrast(fit, c, df)
+        default = cname == DEFAULT_CONTRAST_NAME
+        spec = next(s for s in settings.contrasts if s.name == cname)
+        results.append(
+            GroupMap(
+                name=fl.output_name(cname, default),
+                first_level=fl.name,
+                contrast=cname,
+                weights=dict(spec.weights),
+                grid=study.grid,
+                mask=mask,
+                effect=res.effect,
+                se=res.se,
+                t=res.t,
+                df=np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy(),
+                z=res.z,
+                p=res.p,
+                var_animal=fit.var_animal,
+                var_run=fit.var_run,
+                coverage_runs=fl.coverage_runs,
+                coverage_animals=fl.coverage_animals,
+                not_converged=not_converged,
+                n_animals=design.n_animals,
+                n_runs=len(fl.runs),
+            )
+        )
+    log(f"  done in {time.perf_counter() - start:.1f} s")
+    return results, warnings
+
+
+def fit_study(
+    study: Study, log: Callable[[str], None] | None = None
+) -> tuple[list[GroupMap], list[str]]:
+    """Fit the mixed model for every first-level contrast and test every group contrast.
+
+    Returns
+    -------
+    maps, warnings
+        One :class:`GroupMap` per (first-level contrast, group contrast), and the
+        warnings raised while fitting (the study's own warnings are in
+        ``study.warnings``).
+    """
+    log = log or (lambda _msg: None)
+    maps: list[GroupMap] = []
+    warnings: list[str] = []
+    for fl in study.first_levels:
+        m, w = _fit_first_level(study, fl, log)
+        maps.extend(m)
+        warnings.extend(w)
+    return maps, warnings
+
+
+def sha256(path: Path) -> str:
+    """Hex SHA-256 of a file's bytes."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _inputs(study: Study) -> list[dict[str, str]]:
+    s = study.settings
+    items: list[tuple[str, Path]] = [("study file", s.source), ("runs table", s.study.table)]
+    if s.study.template:
+        items.append(("template", s.study.template))
+    if s.study.mask:
+        items.append(("mask", s.study.mask))
+    if s.atlas:
+        items += [("atlas image", s.atlas.image), ("atlas labels", s.atlas.labels)]
+    for fl in study.first_levels:
+        for _, row in fl.runs.iterrows():
+            items.append((f"effect ({row['animal']})", Path(row["effect"])))
+            if fl.variance_kind != "none":
+                items.append((f"{fl.variance_kind} ({row['animal']})",
+                              Path(row[fl.variance_kind])))
+    seen: set[Path] = set()
+    out = []
+    for role, p in items:
+        if p in seen:
+            continue
+        seen.add(p)
+        out.append({"role": role, "path": str(p), "sha256": sha256(p)})
+    return out
+
+
+def _result_summary(study: Study, gm: GroupMap) -> dict:
+    fl = next(f for f in study.first_levels if f.name == gm.first_level)
+    runs_per_animal = fl.runs.groupby("animal", sort=False).size()
+    peak = int(np.nanargmax(np.abs(gm.t))) if gm.t.size else None
+    entry: dict = {
+        "first_level_contrast": gm.first_level,
+        "group_contrast": gm.contrast,
+        "weights": gm.weights,
+        "design_columns": list(fl.design.columns),
+        "animals": gm.n_animals,
+        "runs": gm.n_runs,
+        "runs_per_animal": {str(k): int(v) for k, v in runs_per_animal.items()},
+        "excluded_runs": [
+            {"animal": r["animal"], "session": r["session"], "run": r["run"],
+             "reason": r["reason"], "table_line": int(r["line"])}
+            for _, r in fl.excluded.iterrows()
+        ],
+        "first_level_variance": fl.variance_kind,
+        "voxels": int(gm.mask.sum()),
+        "volume_mm3": float(gm.mask.sum() * study.grid.voxel_volume),
+        "voxels_full_coverage": int((gm.coverage_runs[gm.mask] == gm.n_runs).sum()),
+        "df_range": [float(np.min(gm.df)), float(np.max(gm.df))],
+        "not_converged_voxels": gm.not_converged,
+        "var_animal_median": float(np.median(gm.var_animal)),
+        "var_run_median": float(np.median(gm.var_run)),
+        "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
+    }
+    if peak is not None:
+        ijk = np.argwhere(gm.mask)[peak]
+        xyz = study.grid.affine[:3, :3] @ ijk + study.grid.affine[:3, 3]
+        entry["peak"] = {
+            "t": float(gm.t[peak]),
+            "effect": float(gm.effect[peak]),
+            "voxel": [int(v) for v in ijk],
+            "mm": [round(float(v), 4) for v in xyz],
+        }
+    return entry
+
+
+def write_outputs(
+    study: Study,
+    maps: list[GroupMap],
+    out_dir: str | Path,
+    *,
+    warnings: list[str] | None = None,
+    force: bool = False,
+) -> Path:
+    """Write every map, the masks and summary.json into ``out_dir`` atomically.
+
+    Everything is written to a hidden sibling folder first and moved into place at the
+    end, so an interrupted run never leaves a folder that looks complete.
+
+    Raises
+    ------
+    UserError
+        When ``out_dir`` exists and ``force`` is false.
+    """
+    out = Path(out_dir).expanduser().resolve()
+    check_output_folder(out, force)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.parent / f".{out.name}.partial-{os.getpid()}"
+    if tmp.exists():
+        shutil.rmtree(tmp)
+    tmp.mkdir()
+    try:
+        grid = study.grid
+        for gm in maps:
+            folder = tmp / gm.name
+            folder.mkdir()
+            label = f"{gm.first_level or ''} {gm.contrast}".strip()
+            for key, what in MAP_DESCRIPTIONS.items():
+                write_map(folder / f"{key}.nii.gz", getattr(gm, key), gm.mask, grid,
+                          f"grouplevel {what} [{label}]")
+            full = np.ones(grid.shape, dtype=bool)
+            write_map(folder / "coverage.nii.gz", gm.coverage_runs, full, grid,
+                      f"grouplevel runs with data [{label}]", dtype=np.int16)
+            write_map(folder / "coverage_animals.nii.gz", gm.coverage_animals, full, grid,
+                      f"grouplevel animals with data [{label}]", dtype=np.int16)
+            write_map(folder / "mask.nii.gz", gm.mask.astype(np.uint8), full, grid,
+                      f"grouplevel analysis mask [{label}]", dtype=np.uint8)
+        summary = {
+            "tool": {"name": "grouplevel", "version": __version__},
+            "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
+            "title": study.settings.study.title,
+            "inputs": _inputs(study),
+            "settings": study.settings.to_dict(),
+            "grid": {
+                "shape": list(grid.shape),
+                "voxel_size_mm": [float(v) for v in grid.voxel_size],
+                "orientation": grid.orientation,
+                "affine": grid.affine.tolist(),
+            },
+            "results": {gm.name: _result_summary(study, gm) for gm in maps},
+            "warnings": list(study.warnings) + list(warnings or []),
+        }
+        (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    old = None
+    if out.exists():
+        old = out.parent / f".{out.name}.old-{os.getpid()}"
+        out.rename(old)
+    tmp.rename(out)
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
+    return out
+
+
+def check_output_folder(out: Path, force: bool) -> None:
+    """Refuse an existing output folder unless ``force`` is given."""
+    if out.exists() and not force:
+        raise UserError(f"{out}: output folder exists; choose another or add --force")
+    if out.exists() and not out.is_dir():
+        raise UserError(f"{out}: exists and is not a folder")
+
+
+def run_study(
+    path: str | Path,
+    out_dir: str | Path,
+    *,
+    force: bool = False,
+    log: Callable[[str], None] | None = None,
+) -> Path:
+    """Validate, fit and write a study in one call (what ``grouplevel run`` does)."""
+    log = log or (lambda _msg: None)
+    out = Path(out_dir).expanduser().resolve()
+    check_output_folder(out, force)
+    study = load_study(path)
+    for w in study.warnings:
+        log(f"warning: {w}")
+    maps, warnings = fit_study(study, log)
+    for w in warnings:
+        log(f"warning: {w}")
+    return write_outputs(study, maps, out, warnings=warnings, force=force)
+
+
+__all__ = [
+    "GroupMap",
+    "Settings",
+    "check_output_folder",
+    "fit_study",
+    "load_study",
+    "run_study",
+    "write_outputs",
+]
