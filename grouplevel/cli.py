@@ -35,8 +35,12 @@ def _parser() -> argparse.ArgumentParser:
     e.add_argument("folder", type=Path)
 
     d = sub.add_parser("demo", help="write the example study and run it")
-    d.add_argument("--out", type=Path, default=None,
-                   help="folder for the example study and its results (default: temporary)")
+    d.add_argument(
+        "--out",
+        type=Path,
+        default=None,
+        help="folder for the example study and its results (default: temporary)",
+    )
     d.add_argument("--force", action="store_true", help="replace earlier demo results")
     d.add_argument("--quiet", action="store_true")
     return p

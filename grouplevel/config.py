@@ -270,7 +270,7 @@ def load_settings(path: str | Path) -> Settings:
         r.problem("[model] max_iter", f"must be at least 1, got {max_iter}")
     formula = r.get("model", m, "formula", str, DEFAULT_FORMULA).strip()
     if not formula:
-        r.problem("[model] formula", "is empty; use \"1\" for the group mean")
+        r.problem("[model] formula", 'is empty; use "1" for the group mean')
     model = ModelSettings(formula=formula, run_variance=run_variance, df=df, max_iter=max_iter)
 
     contrasts: list[ContrastSpec] = []

@@ -104,7 +104,7 @@ def build_design(runs: pd.DataFrame, formula: str) -> Design:
     X = np.asarray(mm, dtype=float)
     columns = tuple(str(c) for c in mm.columns)
     if X.shape[1] == 0:
-        raise UserError(f"[model] formula {formula!r} gives no columns; use \"1\" for the mean")
+        raise UserError(f'[model] formula {formula!r} gives no columns; use "1" for the mean')
     rank = np.linalg.matrix_rank(X)
     if rank < X.shape[1]:
         raise UserError(

@@ -56,8 +56,7 @@ def read_header_grid(path: Path) -> Grid:
         shape = shape[:3]
     if len(shape) != 3:
         raise UserError(
-            f"{path}: expected one 3-D volume, found shape {shape}; "
-            "write one map per file"
+            f"{path}: expected one 3-D volume, found shape {shape}; write one map per file"
         )
     return Grid(shape=shape, affine=np.asarray(img.affine, dtype=float))  # type: ignore[arg-type]
 

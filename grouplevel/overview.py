@@ -12,16 +12,19 @@ from grouplevel.study import Study
 # RAS+ axis codes to the rodent words of the trade (common practice): x runs
 # left-right (medial-lateral), y posterior-anterior, z ventral-dorsal (inferior-superior).
 _AXIS_WORDS = {
-    "R": "left→right", "L": "right→left",
-    "A": "posterior→anterior", "P": "anterior→posterior",
-    "S": "ventral→dorsal", "I": "dorsal→ventral",
+    "R": "left→right",
+    "L": "right→left",
+    "A": "posterior→anterior",
+    "P": "anterior→posterior",
+    "S": "ventral→dorsal",
+    "I": "dorsal→ventral",
 }
 
 
 def _environment() -> jinja2.Environment:
     loader = jinja2.FunctionLoader(
-        lambda name: resources.files("grouplevel.templates").joinpath(name).read_text(
-            encoding="utf-8"
+        lambda name: (
+            resources.files("grouplevel.templates").joinpath(name).read_text(encoding="utf-8")
         )
     )
     # Plain-text output; autoescape stays on for .html templates only.
@@ -65,21 +68,25 @@ def study_overview(study: Study) -> str:
         "se": "first-level standard-error maps (squared on load)",
         "none": "none given (the model estimates all run-level variance)",
     }[kind]
-    return _environment().get_template("check_summary.txt.j2").render(
-        title=s.study.title,
-        source=s.source,
-        table=s.study.table,
-        grid=grid,
-        voxel_size=[f"{v:.4g}" for v in grid.voxel_size],
-        orientation_words=", ".join(_AXIS_WORDS[c] for c in grid.orientation),
-        mask_voxels=None if mask is None else int(mask.sum()),
-        mask_volume=None if mask is None else float(np.sum(mask) * grid.voxel_volume),
-        origin_name=s.space.origin_name,
-        origin_mm=[f"{v:g}" for v in s.space.origin_mm],
-        variance_words=variance_words,
-        formula=s.model.formula,
-        run_variance=s.model.run_variance,
-        df=s.model.df,
-        first_levels=first_levels,
-        warnings=list(study.warnings),
+    return (
+        _environment()
+        .get_template("check_summary.txt.j2")
+        .render(
+            title=s.study.title,
+            source=s.source,
+            table=s.study.table,
+            grid=grid,
+            voxel_size=[f"{v:.4g}" for v in grid.voxel_size],
+            orientation_words=", ".join(_AXIS_WORDS[c] for c in grid.orientation),
+            mask_voxels=None if mask is None else int(mask.sum()),
+            mask_volume=None if mask is None else float(np.sum(mask) * grid.voxel_volume),
+            origin_name=s.space.origin_name,
+            origin_mm=[f"{v:g}" for v in s.space.origin_mm],
+            variance_words=variance_words,
+            formula=s.model.formula,
+            run_variance=s.model.run_variance,
+            df=s.model.df,
+            first_levels=first_levels,
+            warnings=list(study.warnings),
+        )
     )

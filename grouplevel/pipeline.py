@@ -83,8 +83,14 @@ class GroupMap:
         idx = np.argwhere(self.mask)
         mm = idx @ self.grid.affine[:3, :3].T + self.grid.affine[:3, 3]
         frame = pd.DataFrame(
-            {"i": idx[:, 0], "j": idx[:, 1], "k": idx[:, 2],
-             "x_mm": mm[:, 0], "y_mm": mm[:, 1], "z_mm": mm[:, 2]}
+            {
+                "i": idx[:, 0],
+                "j": idx[:, 1],
+                "k": idx[:, 2],
+                "x_mm": mm[:, 0],
+                "y_mm": mm[:, 1],
+                "z_mm": mm[:, 2],
+            }
         )
         for key in MAP_DESCRIPTIONS:
             frame[key] = getattr(self, key)
@@ -116,10 +122,7 @@ def _fit_first_level(
     y = data.effect[:, keep]
     s2 = None if data.variance is None else data.variance[:, keep]
     design = fl.design
-    log(
-        f"fitting {label}: {y.shape[1]:,} voxels, {y.shape[0]} runs, "
-        f"{design.n_animals} animals"
-    )
+    log(f"fitting {label}: {y.shape[1]:,} voxels, {y.shape[0]} runs, {design.n_animals} animals")
     fit = fit_reml(
         y,
         s2,
@@ -215,8 +218,7 @@ def _inputs(study: Study) -> list[dict[str, str]]:
         for _, row in fl.runs.iterrows():
             items.append((f"effect ({row['animal']})", Path(row["effect"])))
             if fl.variance_kind != "none":
-                items.append((f"{fl.variance_kind} ({row['animal']})",
-                              Path(row[fl.variance_kind])))
+                items.append((f"{fl.variance_kind} ({row['animal']})", Path(row[fl.variance_kind])))
     seen: set[Path] = set()
     out = []
     for role, p in items:
@@ -240,8 +242,13 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "runs": gm.n_runs,
         "runs_per_animal": {str(k): int(v) for k, v in runs_per_animal.items()},
         "excluded_runs": [
-            {"animal": r["animal"], "session": r["session"], "run": r["run"],
-             "reason": r["reason"], "table_line": int(r["line"])}
+            {
+                "animal": r["animal"],
+                "session": r["session"],
+                "run": r["run"],
+                "reason": r["reason"],
+                "table_line": int(r["line"]),
+            }
             for _, r in fl.excluded.iterrows()
         ],
         "first_level_variance": fl.variance_kind,
@@ -298,15 +305,38 @@ def write_outputs(
             folder.mkdir()
             label = f"{gm.first_level or ''} {gm.contrast}".strip()
             for key, what in MAP_DESCRIPTIONS.items():
-                write_map(folder / f"{key}.nii.gz", getattr(gm, key), gm.mask, grid,
-                          f"grouplevel {what} [{label}]")
+                write_map(
+                    folder / f"{key}.nii.gz",
+                    getattr(gm, key),
+                    gm.mask,
+                    grid,
+                    f"grouplevel {what} [{label}]",
+                )
             full = np.ones(grid.shape, dtype=bool)
-            write_map(folder / "coverage.nii.gz", gm.coverage_runs, full, grid,
-                      f"grouplevel runs with data [{label}]", dtype=np.int16)
-            write_map(folder / "coverage_animals.nii.gz", gm.coverage_animals, full, grid,
-                      f"grouplevel animals with data [{label}]", dtype=np.int16)
-            write_map(folder / "mask.nii.gz", gm.mask.astype(np.uint8), full, grid,
-                      f"grouplevel analysis mask [{label}]", dtype=np.uint8)
+            write_map(
+                folder / "coverage.nii.gz",
+                gm.coverage_runs,
+                full,
+                grid,
+                f"grouplevel runs with data [{label}]",
+                dtype=np.int16,
+            )
+            write_map(
+                folder / "coverage_animals.nii.gz",
+                gm.coverage_animals,
+                full,
+                grid,
+                f"grouplevel animals with data [{label}]",
+                dtype=np.int16,
+            )
+            write_map(
+                folder / "mask.nii.gz",
+                gm.mask.astype(np.uint8),
+                full,
+                grid,
+                f"grouplevel analysis mask [{label}]",
+                dtype=np.uint8,
+            )
         summary = {
             "tool": {"name": "grouplevel", "version": __version__},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),

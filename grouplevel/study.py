@@ -184,8 +184,7 @@ def _covariates(
         empty = runs[runs[var].isin(["", "NA", "n/a", "NaN", "nan"])]
         for _, row in empty.iterrows():
             problems.append(
-                f"{_where(path, row)}: covariate '{var}' is missing; fill it in or exclude "
-                "the run"
+                f"{_where(path, row)}: covariate '{var}' is missing; fill it in or exclude the run"
             )
         numeric = pd.to_numeric(runs[var], errors="coerce")
         if numeric.notna().all():
@@ -238,14 +237,18 @@ def inspect_study(settings: Settings) -> Study:
     except UserError as exc:
         problems.append(str(exc))
     files: dict[str, str] = {}  # path -> where it is named
-    for key, p in (("[study] template", settings.study.template),
-                   ("[study] mask", settings.study.mask)):
+    for key, p in (
+        ("[study] template", settings.study.template),
+        ("[study] mask", settings.study.mask),
+    ):
         if p is not None:
             files[str(p)] = key
     if settings.atlas is not None:
         files[str(settings.atlas.image)] = "[atlas] image"
         if not settings.atlas.labels.is_file():
-            problems.append(f"{settings.atlas.labels}: atlas label table not found ([atlas] labels)")
+            problems.append(
+                f"{settings.atlas.labels}: atlas label table not found ([atlas] labels)"
+            )
     included = table[~table["exclude"]]
     for _, row in included.iterrows():
         for col in ("effect", "variance", "se"):
@@ -333,8 +336,9 @@ def inspect_study(settings: Settings) -> Study:
         contrasts = []
         for spec in settings.contrasts:
             try:
-                contrasts.append((spec.name, contrast_vector(spec.weights, design.columns,
-                                                             spec.name)))
+                contrasts.append(
+                    (spec.name, contrast_vector(spec.weights, design.columns, spec.name))
+                )
             except UserError as exc:
                 problems.append(str(exc))
                 problems.extend(exc.problems)
@@ -417,8 +421,10 @@ def inspect_study(settings: Settings) -> Study:
             )
         )
 
-    extent = _mask_extent_mm(user_mask if user_mask is not None else
-                             (first_levels[0].mask if first_levels else None), grid)
+    extent = _mask_extent_mm(
+        user_mask if user_mask is not None else (first_levels[0].mask if first_levels else None),
+        grid,
+    )
     if extent is not None and extent.max() > MAX_PLAUSIBLE_BRAIN_EXTENT_MM:
         warnings.append(
             f"the brain spans {extent.round(1).tolist()} mm along the grid axes (voxel size "

@@ -45,8 +45,11 @@ def write_study(
         vol = np.full(shape, effects[k]) if effects.ndim == 1 else effects[k]
         eff = save(folder / "maps" / f"run{k:03d}_effect.nii.gz", vol, affine)
         run_counter[animals[k]] = run_counter.get(animals[k], 0) + 1
-        row = {"animal": animals[k], "run": run_counter[animals[k]],
-               "effect": str(eff.relative_to(folder))}
+        row = {
+            "animal": animals[k],
+            "run": run_counter[animals[k]],
+            "effect": str(eff.relative_to(folder)),
+        }
         if variances is not None:
             var = np.asarray(variances, dtype=float)
             vvol = np.full(shape, var[k]) if var.ndim == 1 else var[k]
@@ -76,5 +79,4 @@ def tiny_study(tmp_path: Path) -> Path:
     u = rng.normal(0, 1.0, size=(6, 4, 4, 3))
     effects = np.stack([1.0 + u[i // 3] + rng.normal(0, 0.7, (4, 4, 3)) for i in range(18)])
     variances = rng.uniform(0.2, 0.6, size=(18, 4, 4, 3))
-    return write_study(tmp_path / "study", effects, animals, variances=variances,
-                       shape=(4, 4, 3))
+    return write_study(tmp_path / "study", effects, animals, variances=variances, shape=(4, 4, 3))

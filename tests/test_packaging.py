@@ -16,8 +16,7 @@ ROOT = Path(__file__).resolve().parents[1]
 def wheel(tmp_path_factory) -> Path:
     out = tmp_path_factory.mktemp("wheel")
     subprocess.run(
-        [sys.executable, "-m", "pip", "wheel", "--no-deps", "--quiet", "-w", str(out),
-         str(ROOT)],
+        [sys.executable, "-m", "pip", "wheel", "--no-deps", "--quiet", "-w", str(out), str(ROOT)],
         check=True,
         capture_output=True,
     )
@@ -28,8 +27,11 @@ def wheel(tmp_path_factory) -> Path:
 def test_wheel_contains_templates_and_entry_point(wheel):
     names = zipfile.ZipFile(wheel).namelist()
     shipped = {n for n in names if n.startswith("grouplevel/templates/")}
-    on_disk = {f"grouplevel/templates/{p.name}" for p in (ROOT / "templates").iterdir()
-               if p.suffix in (".j2", ".css", ".py")}
+    on_disk = {
+        f"grouplevel/templates/{p.name}"
+        for p in (ROOT / "templates").iterdir()
+        if p.suffix in (".j2", ".css", ".py")
+    }
     assert on_disk and on_disk <= shipped
     entry = next(n for n in names if n.endswith("entry_points.txt"))
     text = zipfile.ZipFile(wheel).read(entry).decode()
@@ -39,8 +41,17 @@ def test_wheel_contains_templates_and_entry_point(wheel):
 def test_non_editable_install_renders_the_check_template(wheel, tmp_path):
     target = tmp_path / "site"
     subprocess.run(
-        [sys.executable, "-m", "pip", "install", "--no-deps", "--quiet", "--target",
-         str(target), str(wheel)],
+        [
+            sys.executable,
+            "-m",
+            "pip",
+            "install",
+            "--no-deps",
+            "--quiet",
+            "--target",
+            str(target),
+            str(wheel),
+        ],
         check=True,
         capture_output=True,
     )

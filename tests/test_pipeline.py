@@ -14,8 +14,19 @@ import grouplevel
 from grouplevel.cli import main
 from tests.conftest import TINY_AFFINE, write_study
 
-MAPS = ["effect", "se", "t", "z", "p", "df", "var_animal", "var_run", "coverage",
-        "coverage_animals", "mask"]
+MAPS = [
+    "effect",
+    "se",
+    "t",
+    "z",
+    "p",
+    "df",
+    "var_animal",
+    "var_run",
+    "coverage",
+    "coverage_animals",
+    "mask",
+]
 
 
 def test_run_writes_every_map_with_the_grid_affine(tiny_study, tmp_path, capsys):
@@ -77,7 +88,9 @@ def test_contrast_column_and_group_contrasts_name_the_folders(tmp_path):
     group = ["ctl" if int(a[1]) < 3 else "ko" for a in animals]
     effects = rng.normal(1, 1, size=(24, 2, 2, 2))
     toml = write_study(
-        tmp_path / "s", effects, animals,
+        tmp_path / "s",
+        effects,
+        animals,
         shape=(2, 2, 2),
         columns={"contrast": contrast, "group": group},
         model='formula = "1 + group"',
@@ -128,8 +141,14 @@ def test_partial_coverage_fits_with_the_runs_it_has(tmp_path):
     effects = np.stack([u[k // 3] + rng.normal(0, 0.5, (2, 2, 2)) for k in range(18)])
     effects[4, 0, 0, 0] = np.nan
     mask = np.ones((2, 2, 2), bool)
-    toml = write_study(tmp_path / "s", effects, animals, shape=(2, 2, 2), mask=mask,
-                       toml_extra="min_coverage = 0.9\n")
+    toml = write_study(
+        tmp_path / "s",
+        effects,
+        animals,
+        shape=(2, 2, 2),
+        mask=mask,
+        toml_extra="min_coverage = 0.9\n",
+    )
     study = grouplevel.load_study(toml)
     (gm,), _ = grouplevel.fit_study(study)
     assert gm.coverage_runs[0, 0, 0] == 17 and gm.coverage_runs[1, 1, 1] == 18
@@ -145,8 +164,14 @@ def test_voxels_below_min_coverage_are_left_out(tmp_path):
     animals = [f"a{i}" for i in range(4) for _ in range(2)]
     effects = rng.normal(size=(8, 2, 2, 2))
     effects[:3, 0, 0, 0] = np.nan  # 5 of 8 runs left there
-    toml = write_study(tmp_path / "s", effects, animals, shape=(2, 2, 2),
-                       mask=np.ones((2, 2, 2), bool), toml_extra="min_coverage = 0.75\n")
+    toml = write_study(
+        tmp_path / "s",
+        effects,
+        animals,
+        shape=(2, 2, 2),
+        mask=np.ones((2, 2, 2), bool),
+        toml_extra="min_coverage = 0.75\n",
+    )
     study = grouplevel.load_study(toml)
     fl = study.first_levels[0]
     assert not fl.mask[0, 0, 0] and fl.mask.sum() == 7

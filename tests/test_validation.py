@@ -171,6 +171,7 @@ def test_bad_exclude_word(tmp_path, capsys):
 
 def test_missing_required_column(tmp_path, capsys):
     toml = basic(tmp_path)
+
     def rename(t):
         t.columns = ["mouse" if c == "animal" else c for c in t.columns]
 
@@ -180,15 +181,17 @@ def test_missing_required_column(tmp_path, capsys):
 
 
 def test_covariate_with_missing_values(tmp_path, capsys):
-    toml = basic(tmp_path, columns={"age": ["10", "10", "", "12", "14", "14"]},
-                 model='formula = "1 + age"')
+    toml = basic(
+        tmp_path, columns={"age": ["10", "10", "", "12", "14", "14"]}, model='formula = "1 + age"'
+    )
     code, text = check(toml, capsys)
     assert code == 2 and "line 4 (animal b): covariate 'age' is missing" in text
 
 
 def test_formula_names_absent_column(tmp_path, capsys):
-    toml = basic(tmp_path, columns={"group": ["x", "x", "y", "y", "x", "x"]},
-                 model='formula = "1 + grop"')
+    toml = basic(
+        tmp_path, columns={"group": ["x", "x", "y", "y", "x", "x"]}, model='formula = "1 + grop"'
+    )
     code, text = check(toml, capsys)
     assert code == 2 and "column 'grop'" in text and "did you mean 'group'" in text
 
@@ -201,16 +204,19 @@ def test_contrast_names_absent_coefficient(tmp_path, capsys):
 
 def test_rank_deficient_at_animal_level(tmp_path, capsys):
     # group differs between every animal: three animals, three animal-level columns
-    toml = basic(tmp_path, columns={"group": ["x", "x", "y", "y", "z", "z"]},
-                 model='formula = "1 + group"')
+    toml = basic(
+        tmp_path, columns={"group": ["x", "x", "y", "y", "z", "z"]}, model='formula = "1 + group"'
+    )
     code, text = check(toml, capsys)
     assert code == 2 and "no between-animal degrees of freedom" in text
 
 
 def test_rank_deficient_design(tmp_path, capsys):
-    toml = basic(tmp_path, columns={"w": ["1", "2", "3", "4", "5", "6"],
-                                    "w2": ["2", "4", "6", "8", "10", "12"]},
-                 model='formula = "1 + w + w2"')
+    toml = basic(
+        tmp_path,
+        columns={"w": ["1", "2", "3", "4", "5", "6"], "w2": ["2", "4", "6", "8", "10", "12"]},
+        model='formula = "1 + w + w2"',
+    )
     code, text = check(toml, capsys)
     assert code == 2 and "rank-deficient" in text
 
@@ -232,8 +238,9 @@ def test_unknown_section(tmp_path, capsys):
 def test_header_scaling_warns_but_passes(tmp_path, capsys):
     big = np.diag([2.0, 2.0, 2.0, 1.0])  # a ×10-scaled rodent header
     rng = np.random.default_rng(2)
-    toml = write_study(tmp_path / "s", rng.normal(size=(6, 30, 3, 2)), ANIMALS,
-                       shape=(30, 3, 2), affine=big)
+    toml = write_study(
+        tmp_path / "s", rng.normal(size=(6, 30, 3, 2)), ANIMALS, shape=(30, 3, 2), affine=big
+    )
     code, text = check(toml, capsys)
     assert code == 0, text
     assert "warning:" in text and "×10 scaling" in text
