@@ -1,0 +1,1267 @@
+"""A lab's own atlas on the study grid: regions, hierarchy, hemispheres and shares.
+
+An atlas is an integer label image (0 = background) and a label table in the style of a
+BIDS ``dseg.tsv``: columns ``index`` and ``name`` (required), and optionally
+``abbreviation``, ``hemisphere`` (left / right / both or empty), ``parent`` (the index or
+the name of the enclosing structure, empty for a top-level one) and ``color``. Usually
+only the leaves of the hierarchy are painted in the image; their parents are the sums of
+their children.
+
+:func:`build_atlas` brings such an atlas onto the study grid and returns an
+:class:`Atlas`. Its central piece is a sparse matrix ``shares`` with one row per in-mask
+statistical voxel and one column per region (leaves *and* parents): the share of the
+voxel that the region covers. How the shares are found depends on the atlas grid:
+
+* same grid as the statistics: exact, every share is 0 or 1;
+* atlas finer than the statistics (for example 25 µm labels and 0.2 mm maps): every
+  atlas voxel centre is mapped to the statistical voxel that contains it and counted,
+  so a structure smaller than one statistical voxel still gets its fraction;
+* atlas coarser (or of equal voxel size on another grid): nearest neighbour, the label
+  of the atlas voxel that contains each statistical voxel centre.
+
+The atlas image is processed in slabs of :data:`SLAB_VOXELS` voxels, and no step loops
+over voxels in Python, so a 30-million-voxel atlas with thousands of regions fits in
+modest memory and builds in seconds.
+
+Hemispheres
+-----------
+Left and right come from world x of the image affine (RAS+: x grows towards the animal's
+right), never from array order. The mid-sagittal plane ``x = midline_mm`` is, in order of
+preference, given by the user, fitted as the plane that best separates the voxels of
+left- and right-labelled regions (:func:`find_midline`), or the centre of the study grid.
+
+A leaf without a hemisphere of its own (``both`` or empty, and none inherited from an
+ancestor) is handled by this rule:
+
+* it has voxels strictly left *and* strictly right of the midline, and some of them lie
+  farther from the plane than one statistical voxel: it is bilateral and is **split**.
+  Two new rows with the same name and abbreviation and hemisphere ``left`` / ``right``
+  become its children, and the original row stays as their ``both`` parent. An atlas
+  voxel whose centre lies on the plane (within :data:`MIDLINE_TOLERANCE_MM`) gives half
+  of itself to each side;
+* all its voxels lie within one statistical voxel of the plane: it is a **midline**
+  structure (a septum, the third ventricle) and stays ``both``. Cutting it would make two
+  slivers no wider than a statistical voxel whose sides would be decided by the midline
+  estimate rather than by anatomy;
+* it lies on one side only: it stays one row and takes that side as its hemisphere.
+
+New rows get new indices above the largest index of the table, in table order: first the
+"(other)" rows described below, then the left and right rows of each split leaf (left
+before right).
+
+A table row that has children but is also painted in the image gets an extra leaf child
+``"<name> (other)"`` holding those voxels, so that a parent's share is always the sum of
+its children's.
+"""
+
+from __future__ import annotations
+
+import difflib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+import scipy.sparse as sp
+
+from grouplevel.coordinates import describe_orientation
+from grouplevel.errors import UserError
+from grouplevel.images import AFFINE_TOLERANCE_MM, Grid
+
+#: Smallest share of the analysis mask that the atlas labels must cover. Our own choice:
+#: below one half the atlas is almost surely on another grid or in another space.
+DEFAULT_ATLAS_MIN_COVERAGE = 0.5
+
+#: A point this close to the midline plane counts as on it (the same tolerance as for
+#: comparing affines: far below a rodent voxel, above float32 round-off of headers).
+MIDLINE_TOLERANCE_MM = AFFINE_TOLERANCE_MM
+
+#: Below this Dice of the mask with its mirror image a warning says that the midline may
+#: be wrong or the mask one-sided. Our own choice: symmetric brain masks score above 0.9.
+MIRROR_DICE_WARNING = 0.8
+
+#: A region labelled left or right with more than this share of its voxels on the other
+#: side of the midline triggers a warning about the image affine. Our own choice.
+WRONG_SIDE_WARNING = 0.5
+
+#: Voxels per slab when scanning a large atlas (about 16 MB per float64 work array).
+SLAB_VOXELS = 2_000_000
+
+#: Label lookup tables up to this size are used directly; larger label values (some atlases
+#: use nine-digit identifiers) go through a sorted search instead.
+LOOKUP_TABLE_LIMIT = 1 << 22
+
+#: Resampling descriptions (``Atlas.resampling``).
+RESAMPLING_SAME = "same grid"
+RESAMPLING_FRACTIONAL = "fractional (atlas finer than the statistics)"
+RESAMPLING_NEAREST = "nearest neighbour (atlas coarser than the statistics)"
+
+#: Midline sources (``Atlas.midline_source``).
+MIDLINE_GIVEN = "given"
+MIDLINE_FITTED = "fitted to left/right labels"
+MIDLINE_GRID_CENTRE = "grid centre"
+
+HEMISPHERES = ("left", "right", "both")
+_HEMISPHERE_WORDS = {
+    "": "",
+    "n/a": "",
+    "left": "left",
+    "l": "left",
+    "right": "right",
+    "r": "right",
+    "both": "both",
+    "b": "both",
+    "bilateral": "both",
+}
+_MISSING = {"", "n/a", "nan", "none", "<na>"}
+_TOP_LEVEL_PARENTS = {"-1", "0"}
+_SIDE_LEFT, _SIDE_RIGHT = 0, 1
+_MAX_LISTED = 20
+
+
+# --------------------------------------------------------------------------------------
+# The result
+# --------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class Atlas:
+    """An atlas brought onto the study grid.
+
+    Attributes
+    ----------
+    regions
+        One row per region (leaves and parents, after any hemisphere split), in the order
+        of the columns of ``shares``. Columns: ``index`` (int), ``name``,
+        ``abbreviation``, ``hemisphere`` ("left" / "right" / "both"), ``parent`` (index
+        of the parent, -1 at the top), ``depth`` (0 at the top), ``is_leaf``,
+        ``n_voxels`` (atlas voxels of the region over the whole atlas image; a voxel
+        centred on the midline counts half to each side of a split region, so the count
+        can end in .5), ``volume_mm3`` (``n_voxels`` times the atlas voxel volume),
+        ``mask_volume_mm3`` (volume inside the analysis mask on the study grid),
+        ``color``.
+    shares
+        ``(n_mask_voxels, n_regions)`` sparse matrix: share of each in-mask statistical
+        voxel (mask voxels in C order, as ``volume[mask]``) covered by each region. A
+        parent's column is the sum of its children's; the leaf entries of a row sum to at
+        most 1.
+    label_volume
+        Study-grid int array: the index of the leaf with the largest share (the first
+        leaf in ``regions`` order on ties), 0 outside the mask and where no label falls.
+    resampling
+        How the atlas reached the study grid (one of the ``RESAMPLING_*`` constants).
+    midline_mm
+        World x of the mid-sagittal plane.
+    midline_source
+        Where ``midline_mm`` came from (one of the ``MIDLINE_*`` constants).
+    mirror_dice
+        Dice coefficient of the analysis mask with its mirror image about the midline.
+    orientation
+        The study grid's orientation in words, for ``check`` to print.
+    coverage
+        Share of the analysis mask covered by atlas labels (0 to 1).
+    warnings
+        Problems worth telling the user that did not stop the build.
+    """
+
+    regions: pd.DataFrame
+    shares: sp.csr_matrix
+    label_volume: np.ndarray
+    resampling: str
+    midline_mm: float
+    midline_source: str
+    mirror_dice: float
+    orientation: str
+    coverage: float
+    warnings: tuple[str, ...]
+
+    def region_rows(self, name: str) -> list[int]:
+        """Rows of ``regions`` (columns of ``shares``) whose name or abbreviation matches.
+
+        Matching ignores case and surrounding spaces and covers every level and every
+        hemisphere (a split structure gives its ``both`` row and both sides).
+
+        Raises
+        ------
+        UserError
+            When nothing matches; the message suggests close names.
+        """
+        wanted = str(name).strip().casefold()
+        names = self.regions["name"].astype(str).str.strip().str.casefold()
+        abbreviations = self.regions["abbreviation"].astype(str).str.strip().str.casefold()
+        hits = np.flatnonzero((names == wanted).to_numpy() | (abbreviations == wanted).to_numpy())
+        if hits.size:
+            return [int(h) for h in hits]
+        choices = sorted(
+            {str(v) for v in self.regions["name"]}
+            | {str(v) for v in self.regions["abbreviation"] if str(v)}
+        )
+        close = difflib.get_close_matches(str(name), choices, n=3, cutoff=0.5)
+        hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+        raise UserError(
+            f"region {name!r} is not in the atlas (neither a name nor an abbreviation of "
+            f"its {len(self.regions)} regions){hint}"
+        )
+
+    def hemisphere_of(self, xyz_mm: np.ndarray | list | tuple) -> np.ndarray:
+        """Hemisphere of world points: "left", "right" or "midline".
+
+        Parameters
+        ----------
+        xyz_mm
+            One point ``(3,)`` or many ``(n, 3)`` in world mm (RAS+).
+
+        Returns
+        -------
+        numpy.ndarray
+            Strings, one per point; points within :data:`MIDLINE_TOLERANCE_MM` of the
+            plane ``x = midline_mm`` are "midline".
+        """
+        points = np.atleast_2d(np.asarray(xyz_mm, dtype=float))
+        if points.shape[-1] != 3:
+            raise ValueError(f"xyz_mm must have shape (3,) or (n, 3), got {points.shape}")
+        offset = points[:, 0] - self.midline_mm
+        out = np.full(offset.shape, "midline", dtype=object)
+        out[offset < -MIDLINE_TOLERANCE_MM] = "left"
+        out[offset > MIDLINE_TOLERANCE_MM] = "right"
+        return out
+
+
+# --------------------------------------------------------------------------------------
+# File reading (the shell)
+# --------------------------------------------------------------------------------------
+
+
+def read_label_table(path: Path) -> pd.DataFrame:
+    """Read an atlas label table (TSV, or CSV when the file name ends in ``.csv``).
+
+    Every cell is read as text (so an abbreviation such as ``NA`` is not taken for a
+    missing value); :func:`build_atlas` checks and converts them.
+
+    Raises
+    ------
+    UserError
+        When the file is missing or cannot be parsed.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise UserError(f"{path}: atlas label table not found")
+    sep = "," if path.suffix.lower() == ".csv" else "\t"
+    try:
+        table = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False)
+    except Exception as exc:  # pandas raises several types for malformed text
+        raise UserError(f"{path}: cannot read the atlas label table ({exc})") from None
+    table.columns = [str(c).strip().lower() for c in table.columns]
+    return table
+
+
+def read_atlas(
+    image: Path,
+    labels: Path,
+    grid: Grid,
+    mask: np.ndarray,
+    *,
+    midline_mm: float | None = None,
+    min_coverage: float = DEFAULT_ATLAS_MIN_COVERAGE,
+) -> Atlas:
+    """Read an atlas label image and its table and bring them onto the study grid.
+
+    Parameters
+    ----------
+    image
+        NIfTI label image (integers, 0 = background).
+    labels
+        Label table (TSV, or CSV), see the module docstring.
+    grid
+        The study grid.
+    mask
+        Boolean analysis mask on ``grid``.
+    midline_mm
+        World x of the mid-sagittal plane; fitted from the labels when omitted.
+    min_coverage
+        Smallest share of the mask the atlas must cover.
+
+    Returns
+    -------
+    Atlas
+
+    Raises
+    ------
+    UserError
+        For unreadable files and every problem listed in :func:`build_atlas`.
+    """
+    image = Path(image)
+    if not image.is_file():
+        raise UserError(f"{image}: atlas image not found")
+    try:
+        img = nib.load(str(image))
+        data = np.asanyarray(img.dataobj)
+    except Exception as exc:  # nibabel raises several types for unreadable files
+        raise UserError(f"{image}: cannot read the atlas image as NIfTI ({exc})") from None
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.ndim != 3:
+        raise UserError(
+            f"{image}: an atlas image must be one 3-D volume of labels, found shape {data.shape}"
+        )
+    table = read_label_table(Path(labels))
+    return build_atlas(
+        data,
+        np.asarray(img.affine, dtype=float),
+        table,
+        grid,
+        mask,
+        midline_mm=midline_mm,
+        min_coverage=min_coverage,
+        image_name=str(image),
+        table_name=str(labels),
+    )
+
+
+# --------------------------------------------------------------------------------------
+# The label table
+# --------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Table:
+    index: np.ndarray  # int64, one per row
+    name: list[str]
+    abbreviation: list[str]
+    hemisphere: list[str]  # own: "left" / "right" / "both" / ""
+    parent: np.ndarray  # row position of the parent, -1 at the top
+    color: list[str]
+    line: list[int]  # line in the file (header = line 1)
+
+
+def _cell(value: Any) -> str:
+    if value is None:
+        return ""
+    try:
+        if pd.isna(value):
+            return ""
+    except (TypeError, ValueError):
+        pass
+    if isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    text = str(value).strip()
+    return "" if text.casefold() in _MISSING else text
+
+
+def _as_integer(text: str) -> int | None:
+    try:
+        number = float(text)
+    except ValueError:
+        return None
+    if not np.isfinite(number) or not number.is_integer():
+        return None
+    return int(number)
+
+
+def _validate_table(table: pd.DataFrame, source: str) -> _Table:
+    table = table.rename(columns=lambda c: str(c).strip().lower())
+    missing = [c for c in ("index", "name") if c not in table.columns]
+    if missing:
+        raise UserError(
+            f"{source}: the atlas label table has no {' and no '.join(repr(c) for c in missing)} "
+            f"column (found {', '.join(map(repr, table.columns)) or 'none'}); it needs at "
+            "least 'index' and 'name', as in a BIDS dseg.tsv"
+        )
+    problems: list[str] = []
+    index: list[int] = []
+    name: list[str] = []
+    abbreviation: list[str] = []
+    hemisphere: list[str] = []
+    parent_text: list[str] = []
+    color: list[str] = []
+    line: list[int] = []
+
+    def column(key: str) -> list[str]:
+        if key not in table.columns:
+            return [""] * len(table)
+        return [_cell(v) for v in table[key].tolist()]
+
+    raw = {key: column(key) for key in ("index", "name", "abbreviation", "hemisphere")}
+    raw_parent = column("parent")
+    raw_color = column("color")
+    for row in range(len(table)):
+        where = f"{source}, line {row + 2}"
+        value = _as_integer(raw["index"][row])
+        if value is None or value < 0:
+            problems.append(f"{where}: index {raw['index'][row]!r} is not a whole number ≥ 0")
+            continue
+        if value == 0:  # 0 is the background of the image; a row for it is ignored
+            continue
+        label_name = raw["name"][row]
+        if not label_name:
+            problems.append(f"{where}: index {value} has an empty name")
+        side = raw["hemisphere"][row].casefold()
+        if side not in _HEMISPHERE_WORDS:
+            problems.append(
+                f"{where}: hemisphere {raw['hemisphere'][row]!r} of index {value} is not "
+                "left, right, both or empty"
+            )
+            side = ""
+        index.append(value)
+        name.append(label_name)
+        abbreviation.append(raw["abbreviation"][row])
+        hemisphere.append(_HEMISPHERE_WORDS[side])
+        parent_text.append(raw_parent[row])
+        color.append(raw_color[row])
+        line.append(row + 2)
+    if problems:
+        raise UserError(f"{source}: the atlas label table has {len(problems)} problem(s)", problems)
+
+    idx = np.asarray(index, dtype=np.int64)
+    values, counts = np.unique(idx, return_counts=True)
+    duplicated = values[counts > 1]
+    if duplicated.size:
+        for value in duplicated[:_MAX_LISTED]:
+            lines = [str(line[r]) for r in np.flatnonzero(idx == value)]
+            problems.append(f"index {value} appears on lines {', '.join(lines)}")
+        raise UserError(
+            f"{source}: duplicated index in the atlas label table "
+            f"({duplicated.size} value(s)); every region needs its own index",
+            problems,
+        )
+
+    position = {int(v): r for r, v in enumerate(idx)}
+    by_name: dict[str, list[int]] = {}
+    for r in range(len(idx)):
+        for key in {name[r].casefold(), abbreviation[r].casefold()} - {""}:
+            by_name.setdefault(key, []).append(r)
+    parent = np.full(len(idx), -1, dtype=np.int64)
+    for r, text in enumerate(parent_text):
+        where = f"{source}, line {line[r]}"
+        if not text or text in _TOP_LEVEL_PARENTS:
+            continue
+        number = _as_integer(text)
+        if number is not None:
+            if number not in position:
+                problems.append(
+                    f"{where}: parent {number} of index {idx[r]} ({name[r]}) is not an "
+                    "index of the table; add that row or correct the parent"
+                )
+                continue
+            parent[r] = position[number]
+            continue
+        candidates = by_name.get(text.casefold(), [])
+        if len(candidates) > 1:  # the same name on both sides: take the child's side
+            same_side = [c for c in candidates if hemisphere[c] == hemisphere[r]]
+            candidates = same_side if len(same_side) == 1 else candidates
+        if not candidates:
+            close = difflib.get_close_matches(text, list(dict.fromkeys(name)), n=1)
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            problems.append(
+                f"{where}: parent {text!r} of index {idx[r]} ({name[r]}) is neither an index "
+                f"nor a name in the table{hint}"
+            )
+        elif len(candidates) > 1:
+            listed = ", ".join(str(idx[c]) for c in candidates)
+            problems.append(
+                f"{where}: parent {text!r} of index {idx[r]} is ambiguous (indices {listed}); "
+                "give the parent's index instead of its name"
+            )
+        else:
+            parent[r] = candidates[0]
+    if problems:
+        raise UserError(
+            f"{source}: the atlas label table has {len(problems)} parent problem(s)", problems
+        )
+    _check_cycles(parent, idx, name, source)
+    return _Table(idx, name, abbreviation, hemisphere, parent, color, line)
+
+
+def _check_cycles(parent: np.ndarray, index: np.ndarray, name: list[str], source: str) -> None:
+    state = np.zeros(len(parent), dtype=np.int8)  # 0 unseen, 1 on the current path, 2 done
+    for start in range(len(parent)):
+        path: list[int] = []
+        node = start
+        while node >= 0 and state[node] == 0:
+            state[node] = 1
+            path.append(node)
+            node = int(parent[node])
+        if node >= 0 and state[node] == 1:
+            cycle = path[path.index(node) :] + [node]
+            described = " → ".join(f"{index[c]} ({name[c]})" for c in cycle)
+            raise UserError(
+                f"{source}: the parents in the atlas label table form a cycle: {described}; "
+                "a structure cannot contain itself, so break the cycle by correcting one "
+                "parent"
+            )
+        state[path] = 2
+
+
+# --------------------------------------------------------------------------------------
+# Labels: lookup and slabs
+# --------------------------------------------------------------------------------------
+
+
+class _Lookup:
+    """Map label values to table rows: row ≥ 0, -1 for background 0, -2 for unknown."""
+
+    def __init__(self, index: np.ndarray, max_label: int) -> None:
+        self.index = index
+        top = max(int(index.max(initial=0)), int(max_label))
+        if top < LOOKUP_TABLE_LIMIT:
+            self.table: np.ndarray | None = np.full(top + 1, -2, dtype=np.int64)
+            self.table[index] = np.arange(index.size)
+            self.table[0] = -1
+        else:
+            self.table = None
+            self.order = np.argsort(index)
+            self.sorted = index[self.order]
+
+    def __call__(self, labels: np.ndarray) -> np.ndarray:
+        labels = labels.astype(np.int64, copy=False)
+        if self.table is not None:
+            return self.table[labels]
+        where = np.searchsorted(self.sorted, labels)
+        where = np.minimum(where, max(self.sorted.size - 1, 0))
+        rows = np.full(labels.shape, -2, dtype=np.int64)
+        if self.sorted.size:
+            hit = self.sorted[where] == labels
+            rows[hit] = self.order[where[hit]]
+        rows[labels == 0] = -1
+        return rows
+
+
+def _slabs(shape: tuple[int, ...], axis: int):
+    """Yield index ranges along ``axis`` holding about :data:`SLAB_VOXELS` voxels each."""
+    per_plane = int(np.prod(shape)) // max(shape[axis], 1)
+    step = max(1, SLAB_VOXELS // max(per_plane, 1))
+    for start in range(0, shape[axis], step):
+        yield start, min(start + step, shape[axis])
+
+
+def _slab_axis(data: np.ndarray) -> int:
+    # Cut along the slowest-varying axis of the array in memory so slabs are contiguous.
+    return 2 if data.flags.f_contiguous and not data.flags.c_contiguous else 0
+
+
+def _slab_coordinates(
+    shape: tuple[int, int, int], axis: int, start: int, stop: int, matrix: np.ndarray
+) -> list[np.ndarray]:
+    """Rows of ``matrix @ [i, j, k, 1]`` for every voxel of a slab, raveled in C order."""
+    ranges = [np.arange(n, dtype=np.float64) for n in shape]
+    ranges[axis] = np.arange(start, stop, dtype=np.float64)
+    i, j, k = ranges
+    out = []
+    for row in matrix:
+        values = (
+            row[0] * i[:, None, None] + row[1] * j[None, :, None] + row[2] * k[None, None, :]
+        ) + row[3]
+        out.append(values.ravel())
+    return out
+
+
+def _take_slab(data: np.ndarray, axis: int, start: int, stop: int) -> np.ndarray:
+    index: list[slice] = [slice(None)] * 3
+    index[axis] = slice(start, stop)
+    return np.asarray(data[tuple(index)])
+
+
+def _check_integer_labels(data: np.ndarray, source: str, axis: int) -> int:
+    """Return the largest label after checking the image holds whole numbers ≥ 0."""
+    if data.dtype.kind not in "iufb":
+        raise UserError(
+            f"{source}: the atlas image has data type {data.dtype}; it must hold whole-number "
+            "labels"
+        )
+    top = 0
+    for start, stop in _slabs(data.shape, axis):
+        slab = _take_slab(data, axis, start, stop)
+        if slab.dtype.kind == "f":
+            bad = ~np.isfinite(slab) | (slab != np.round(slab))
+            if bad.any():
+                where = tuple(int(v) for v in np.argwhere(bad)[0])
+                where = tuple(w + (start if a == axis else 0) for a, w in enumerate(where))
+                raise UserError(
+                    f"{source}: the atlas image holds non-integer values (e.g. "
+                    f"{float(slab[bad][0])!r} at voxel {where}); an atlas must hold whole-"
+                    "number labels — save it with an integer data type and resample it only "
+                    "with nearest-neighbour interpolation"
+                )
+        if slab.size:
+            low = slab.min()
+            if low < 0:
+                raise UserError(
+                    f"{source}: the atlas image holds negative labels (e.g. {low!r}); labels "
+                    "must be whole numbers ≥ 0 (0 = background)"
+                )
+            top = max(top, int(slab.max()))
+    return top
+
+
+# --------------------------------------------------------------------------------------
+# Midline and mirror symmetry
+# --------------------------------------------------------------------------------------
+
+
+def _best_separating_plane(x: np.ndarray, n_left: np.ndarray, n_right: np.ndarray) -> float | None:
+    """Plane ``x = c`` with the fewest left points right of it plus right points left of it.
+
+    ``x`` are sorted distinct positions, ``n_left`` / ``n_right`` the point counts there.
+    Among equally good planes the middle of the best run of gaps is taken; between
+    several separate runs, the one nearest the middle of the two centroids.
+    """
+    if n_left.sum() == 0 or n_right.sum() == 0:
+        return None
+    # Gap g lies between x[g-1] and x[g] (g = 0: below all, g = m: above all).
+    left_after = n_left.sum() - np.concatenate([[0], np.cumsum(n_left)])
+    right_before = np.concatenate([[0], np.cumsum(n_right)])
+    errors = left_after + right_before
+    best = np.flatnonzero(errors == errors.min())
+    runs = np.split(best, np.flatnonzero(np.diff(best) > 1) + 1)
+    lows = np.array([x[r[0] - 1] if r[0] > 0 else x[0] for r in runs], dtype=float)
+    highs = np.array([x[r[-1]] if r[-1] < x.size else x[-1] for r in runs], dtype=float)
+    centres = (lows + highs) / 2.0
+    target = (np.average(x, weights=n_left) + np.average(x, weights=n_right)) / 2.0
+    return float(centres[np.argmin(np.abs(centres - target))])
+
+
+def _x_histogram_bin(affine: np.ndarray) -> float:
+    # Positions closer than a tenth of the smallest voxel edge are pooled when fitting the
+    # midline: the answer is needed to within half a voxel, and pooling keeps the counts
+    # small for oblique affines where every voxel has its own x.
+    return float(np.sqrt((affine[:3, :3] ** 2).sum(axis=0)).min()) / 10.0
+
+
+class _XHistogram:
+    """Counts of left and right points over world x, pooled in narrow bins."""
+
+    def __init__(self, affine: np.ndarray, shape: tuple[int, int, int]) -> None:
+        corners = np.array(np.meshgrid(*[[0, n - 1] for n in shape], indexing="ij")).reshape(3, -1)
+        xs = affine[0, :3] @ corners + affine[0, 3]
+        self.low = float(xs.min())
+        self.width = _x_histogram_bin(affine)
+        self.n_bins = int(np.floor((float(xs.max()) - self.low) / self.width)) + 2
+        self.sum_x = np.zeros(self.n_bins)
+        self.left = np.zeros(self.n_bins)
+        self.right = np.zeros(self.n_bins)
+
+    def add(self, x: np.ndarray, left: np.ndarray, right: np.ndarray) -> None:
+        bins = np.clip(((x - self.low) / self.width).astype(np.int64), 0, self.n_bins - 1)
+        either = left | right
+        self.sum_x += np.bincount(bins[either], weights=x[either], minlength=self.n_bins)
+        self.left += np.bincount(bins[left], minlength=self.n_bins)
+        self.right += np.bincount(bins[right], minlength=self.n_bins)
+
+    def plane(self) -> float | None:
+        used = (self.left + self.right) > 0
+        x = self.sum_x[used] / (self.left + self.right)[used]
+        return _best_separating_plane(x, self.left[used], self.right[used])
+
+
+def find_midline(
+    label_data: np.ndarray,
+    affine: np.ndarray,
+    left_mask: np.ndarray,
+    right_mask: np.ndarray,
+) -> float | None:
+    """World x of the sagittal plane that best separates left from right labels.
+
+    The plane ``x = c`` minimises the number of left-labelled voxels right of it plus
+    right-labelled voxels left of it; among equally good planes the middle of the gap is
+    taken, so an atlas whose two sides are separated by an unlabelled column gets its
+    midline in the middle of that column.
+
+    Parameters
+    ----------
+    label_data
+        3-D label image (on the atlas grid).
+    affine
+        Its 4 × 4 voxel → mm affine.
+    left_mask, right_mask
+        Either boolean arrays of ``label_data``'s shape marking the voxels of left- and
+        right-labelled regions, or 1-D arrays of the label values of left and right
+        regions (the masks are then formed slab by slab, which saves memory on a large
+        atlas).
+
+    Returns
+    -------
+    float or None
+        The plane's world x in mm, or None when either side has no voxel.
+    """
+    label_data = np.asarray(label_data)
+    affine = np.asarray(affine, dtype=float)
+    by_value = np.ndim(left_mask) == 1 and np.ndim(right_mask) == 1
+    histogram = _XHistogram(affine, label_data.shape)
+    axis = 0
+    for start, stop in _slabs(label_data.shape, axis):
+        (x,) = _slab_coordinates(label_data.shape, axis, start, stop, affine[:1])
+        if by_value:
+            slab = _take_slab(label_data, axis, start, stop).ravel()
+            left = np.isin(slab, np.asarray(left_mask)) & (slab != 0)
+            right = np.isin(slab, np.asarray(right_mask)) & (slab != 0)
+        else:
+            left = np.asarray(left_mask, dtype=bool)[start:stop].ravel()
+            right = np.asarray(right_mask, dtype=bool)[start:stop].ravel()
+        histogram.add(x, left, right)
+    return histogram.plane()
+
+
+def mirror_dice(mask: np.ndarray, affine: np.ndarray, midline_mm: float) -> float:
+    """Dice coefficient of a mask with its mirror image about the plane ``x = midline_mm``.
+
+    Each voxel centre is reflected in world space (``x → 2·midline − x``) and takes the
+    mask value of the nearest voxel there (outside the grid counts as outside the mask).
+
+    Parameters
+    ----------
+    mask
+        3-D boolean mask.
+    affine
+        Its 4 × 4 voxel → mm affine.
+    midline_mm
+        World x of the mirror plane.
+
+    Returns
+    -------
+    float
+        ``2 |M ∩ M'| / (|M| + |M'|)``, 1 for a perfectly symmetric mask; NaN for an empty
+        mask.
+
+    References
+    ----------
+    Dice LR (1945). Measures of the amount of ecologic association between species.
+    Ecology 26:297-302.
+    """
+    mask = np.asarray(mask, dtype=bool)
+    affine = np.asarray(affine, dtype=float)
+    reflect = np.eye(4)
+    reflect[0, 0] = -1.0
+    reflect[0, 3] = 2.0 * float(midline_mm)
+    to_source = np.linalg.inv(affine) @ reflect @ affine
+    shape = mask.shape
+    mirrored_count = 0
+    overlap = 0
+    for start, stop in _slabs(shape, 0):
+        ijk = _slab_coordinates(shape, 0, start, stop, to_source[:3])
+        index = [np.floor(c + 0.5).astype(np.int64) for c in ijk]
+        inside = np.ones(index[0].shape, dtype=bool)
+        for d in range(3):
+            inside &= (index[d] >= 0) & (index[d] < shape[d])
+        mirrored = np.zeros(index[0].shape, dtype=bool)
+        mirrored[inside] = mask[index[0][inside], index[1][inside], index[2][inside]]
+        mirrored_count += int(mirrored.sum())
+        overlap += int((mirrored & mask[start:stop].ravel()).sum())
+    total = int(mask.sum()) + mirrored_count
+    return float("nan") if total == 0 else 2.0 * overlap / total
+
+
+# --------------------------------------------------------------------------------------
+# Building the atlas
+# --------------------------------------------------------------------------------------
+
+
+def _same_grid(shape: tuple[int, ...], affine: np.ndarray, grid: Grid) -> bool:
+    return tuple(shape) == tuple(grid.shape) and bool(
+        np.abs(affine - grid.affine).max() <= AFFINE_TOLERANCE_MM
+    )
+
+
+def _world_box(shape: tuple[int, ...], affine: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    corners = np.array(np.meshgrid(*[[-0.5, n - 0.5] for n in shape], indexing="ij"))
+    corners = corners.reshape(3, -1)
+    xyz = affine[:3, :3] @ corners + affine[:3, 3:4]
+    return xyz.min(axis=1), xyz.max(axis=1)
+
+
+def _effective_hemisphere(table: _Table) -> list[str]:
+    """Own hemisphere; when empty, the nearest ancestor's (left / right / both), else ""."""
+    out: list[str] = [""] * len(table.index)
+    done = np.zeros(len(table.index), dtype=bool)
+
+    def resolve(row: int) -> str:
+        chain = []
+        node = row
+        while node >= 0 and not done[node]:
+            chain.append(node)
+            node = int(table.parent[node])
+        inherited = out[node] if node >= 0 else ""
+        for r in reversed(chain):
+            own = table.hemisphere[r]
+            out[r] = own if own else inherited
+            inherited = out[r]
+            done[r] = True
+        return out[row]
+
+    for row in range(len(table.index)):
+        resolve(row)
+    return out
+
+
+def _add_weighted(
+    keys: list[np.ndarray], weights: list[np.ndarray], key: np.ndarray, weight: np.ndarray
+) -> None:
+    """Reduce (key, weight) pairs of one slab and keep them for the final sum."""
+    if key.size == 0:
+        return
+    unique, inverse = np.unique(key, return_inverse=True)
+    keys.append(unique)
+    weights.append(np.bincount(inverse, weights=weight))
+
+
+def build_atlas(
+    label_data: np.ndarray,
+    label_affine: np.ndarray,
+    table: pd.DataFrame,
+    grid: Grid,
+    mask: np.ndarray,
+    *,
+    midline_mm: float | None = None,
+    min_coverage: float = DEFAULT_ATLAS_MIN_COVERAGE,
+    image_name: str = "atlas image",
+    table_name: str = "atlas label table",
+) -> Atlas:
+    """Bring a label image and its table onto the study grid.
+
+    Parameters
+    ----------
+    label_data
+        3-D integer label image (0 = background); float arrays are accepted when every
+        value is a whole number.
+    label_affine
+        Its 4 × 4 voxel → mm affine. The atlas must overlap the study grid in world space.
+    table
+        The label table (columns as in the module docstring; cells may be text or
+        numbers).
+    grid
+        The study grid.
+    mask
+        Boolean analysis mask on ``grid``.
+    midline_mm
+        World x of the mid-sagittal plane; fitted when omitted (see the module docstring).
+    min_coverage
+        Smallest share of the mask that the atlas labels must cover
+        (:data:`DEFAULT_ATLAS_MIN_COVERAGE`).
+    image_name, table_name
+        How to name the two inputs in messages (their file names when read from files).
+
+    Returns
+    -------
+    Atlas
+
+    Raises
+    ------
+    UserError
+        For non-integer or negative labels; labels missing from the table (listed);
+        duplicated indices; a parent that does not exist; a parent cycle (named); a
+        missing ``index`` or ``name`` column; an atlas that covers less than
+        ``min_coverage`` of the mask.
+    """
+    label_data = np.asarray(label_data)
+    if label_data.ndim == 4 and label_data.shape[3] == 1:
+        label_data = label_data[..., 0]
+    if label_data.ndim != 3:
+        raise UserError(f"{image_name}: an atlas image must be 3-D, found {label_data.shape}")
+    label_affine = np.asarray(label_affine, dtype=float)
+    mask = np.asarray(mask, dtype=bool)
+    if mask.shape != tuple(grid.shape):
+        raise ValueError(f"mask shape {mask.shape} differs from the grid {grid.shape}")
+    shape = tuple(int(s) for s in label_data.shape)
+    warnings: list[str] = []
+
+    rows = _validate_table(table, table_name)
+    n_table = len(rows.index)
+    axis = _slab_axis(label_data)
+    max_label = _check_integer_labels(label_data, image_name, axis)
+    lookup = _Lookup(rows.index, max_label)
+    hemisphere = _effective_hemisphere(rows)
+    # Indexed by table row, or -1 / -2 (background / unknown) from the end.
+    left_rows = np.array([h == "left" for h in hemisphere] + [False, False])
+    right_rows = np.array([h == "right" for h in hemisphere] + [False, False])
+    fit_midline = midline_mm is None and left_rows.any() and right_rows.any()
+    histogram = _XHistogram(label_affine, shape) if fit_midline else None
+
+    # Pass 1: unknown labels, voxels per table row, left/right positions for the midline.
+    own_count = np.zeros(n_table, dtype=np.int64)
+    unknown: set[int] = set()
+    for start, stop in _slabs(shape, axis):
+        labels = _take_slab(label_data, axis, start, stop).ravel()
+        row = lookup(labels)
+        bad = row == -2
+        if bad.any():
+            unknown.update(int(v) for v in np.unique(labels[bad])[:1000])
+        own_count += np.bincount(row[row >= 0], minlength=n_table)
+        if histogram is not None:
+            (x,) = _slab_coordinates(shape, axis, start, stop, label_affine[:1])
+            histogram.add(x, left_rows[row], right_rows[row])
+    if unknown:
+        listed = sorted(unknown)
+        shown = ", ".join(str(v) for v in listed[:_MAX_LISTED])
+        more = f" and {len(listed) - _MAX_LISTED} more" if len(listed) > _MAX_LISTED else ""
+        raise UserError(
+            f"{image_name}: {len(listed)} label value(s) in the image are missing from "
+            f"{table_name}: {shown}{more}; add a row for each (index, name) or relabel them 0"
+        )
+
+    # The midline.
+    if midline_mm is not None:
+        midline, midline_source = float(midline_mm), MIDLINE_GIVEN
+    else:
+        fitted = histogram.plane() if histogram is not None else None
+        if fitted is not None:
+            midline, midline_source = fitted, MIDLINE_FITTED
+        else:
+            centre = grid.affine[:3, :3] @ ((np.asarray(grid.shape) - 1) / 2.0) + grid.affine[:3, 3]
+            midline, midline_source = float(centre[0]), MIDLINE_GRID_CENTRE
+            warnings.append(
+                f"{table_name}: no regions are labelled left and right on both sides, so the "
+                f"midline is taken as the centre of the study grid (x = {midline:.3f} mm); "
+                "give the midline's x in mm if that is wrong"
+            )
+
+    # Leaves: table rows without children, plus an "(other)" leaf for each parent that is
+    # itself painted in the image.
+    has_child = np.zeros(n_table, dtype=bool)
+    has_child[rows.parent[rows.parent >= 0]] = True
+    next_index = int(rows.index.max(initial=0)) + 1
+    region_index = list(rows.index.tolist())
+    region_name = list(rows.name)
+    region_abbreviation = list(rows.abbreviation)
+    region_parent = list(rows.parent.tolist())  # row positions
+    region_color = list(rows.color)
+    region_hemisphere = list(hemisphere)
+    leaf_of_table_row = np.where(has_child, -1, np.arange(n_table))
+    for r in np.flatnonzero(has_child & (own_count > 0)):
+        region_index.append(next_index)
+        next_index += 1
+        region_name.append(f"{rows.name[r]} (other)")
+        region_abbreviation.append(f"{rows.abbreviation[r]}-other" if rows.abbreviation[r] else "")
+        region_parent.append(int(r))
+        region_color.append(rows.color[r])
+        region_hemisphere.append(hemisphere[r])
+        leaf_of_table_row[r] = len(region_index) - 1
+    leaves = np.flatnonzero(~np.append(has_child, np.zeros(len(region_index) - n_table, bool)))
+    leaf_column = np.full(len(region_index), -1, dtype=np.int64)
+    leaf_column[leaves] = np.arange(leaves.size)
+    n_leaves = leaves.size
+    # Table row → leaf number (0..n_leaves-1); -1 background.
+    leaf_of_row = np.append(leaf_column[leaf_of_table_row], [-1, -1])  # index -1 and -2
+
+    # Pass 2: counts per leaf and side over the whole atlas, and (atlas finer than the
+    # statistics) the weighted counts of atlas voxels per statistical voxel and leaf side.
+    same = _same_grid(shape, label_affine, grid)
+    finer = (not same) and abs(np.linalg.det(label_affine[:3, :3])) < grid.voxel_volume * (
+        1.0 - 1e-6
+    )
+    resampling = RESAMPLING_SAME if same else RESAMPLING_FRACTIONAL if finer else RESAMPLING_NEAREST
+    mask_row = np.full(grid.shape, -1, dtype=np.int64)
+    n_mask = int(mask.sum())
+    mask_row[mask] = np.arange(n_mask)
+    band = float(np.abs(grid.affine[0, :3]).max())  # world-x extent of one study voxel step
+
+    side_count = np.zeros((n_leaves, 2))
+    strict = np.zeros((n_leaves, 2), dtype=np.int64)
+    far = np.zeros(n_leaves, dtype=np.int64)
+    keys: list[np.ndarray] = []
+    weights: list[np.ndarray] = []
+    denominator = np.zeros(n_mask)
+    to_grid = np.linalg.inv(grid.affine) @ label_affine
+    for start, stop in _slabs(shape, axis):
+        labels = _take_slab(label_data, axis, start, stop).ravel()
+        leaf = leaf_of_row[lookup(labels)]
+        matrix = np.vstack([label_affine[:1], to_grid[:3]]) if finer else label_affine[:1]
+        coords = _slab_coordinates(shape, axis, start, stop, matrix)
+        offset = coords[0] - midline
+        w_left = np.where(
+            offset < -MIDLINE_TOLERANCE_MM, 1.0, np.where(offset > MIDLINE_TOLERANCE_MM, 0.0, 0.5)
+        )
+        labelled = leaf >= 0
+        lf = leaf[labelled]
+        wl = w_left[labelled]
+        side_count[:, 0] += np.bincount(lf, weights=wl, minlength=n_leaves)
+        side_count[:, 1] += np.bincount(lf, weights=1.0 - wl, minlength=n_leaves)
+        strict[:, 0] += np.bincount(lf[wl == 1.0], minlength=n_leaves)
+        strict[:, 1] += np.bincount(lf[wl == 0.0], minlength=n_leaves)
+        far += np.bincount(
+            lf[np.abs(offset[labelled]) > band + MIDLINE_TOLERANCE_MM], minlength=n_leaves
+        )
+        if finer:
+            ijk = [np.floor(c + 0.5).astype(np.int64) for c in coords[1:]]
+            inside = np.ones(labels.shape, dtype=bool)
+            for d in range(3):
+                inside &= (ijk[d] >= 0) & (ijk[d] < grid.shape[d])
+            target = np.full(labels.shape, -1, dtype=np.int64)
+            target[inside] = mask_row[ijk[0][inside], ijk[1][inside], ijk[2][inside]]
+            in_mask = target >= 0
+            denominator += np.bincount(target[in_mask], minlength=n_mask)
+            use = in_mask & labelled
+            t, lf2, wl2 = target[use], leaf[use], w_left[use]
+            for side, weight in ((_SIDE_LEFT, wl2), (_SIDE_RIGHT, 1.0 - wl2)):
+                keep = weight > 0
+                key = t[keep] * (2 * n_leaves) + lf2[keep] * 2 + side
+                _add_weighted(keys, weights, key, weight[keep])
+
+    if not finer:  # nearest neighbour (or the same grid) at the statistical voxel centres
+        to_atlas = np.linalg.inv(label_affine) @ grid.affine
+        mask_ijk = np.argwhere(mask)  # C order, the order of volume[mask]
+        denominator = np.ones(n_mask)
+        for start in range(0, n_mask, SLAB_VOXELS):
+            chunk = mask_ijk[start : start + SLAB_VOXELS].astype(np.float64)
+            atlas_ijk = np.floor(chunk @ to_atlas[:3, :3].T + to_atlas[:3, 3] + 0.5).astype(
+                np.int64
+            )
+            inside = np.all((atlas_ijk >= 0) & (atlas_ijk < np.asarray(shape)), axis=1)
+            labels = np.zeros(chunk.shape[0], dtype=np.int64)
+            a = atlas_ijk[inside]
+            labels[inside] = np.asarray(label_data[a[:, 0], a[:, 1], a[:, 2]], dtype=np.int64)
+            leaf = leaf_of_row[lookup(labels)]
+            x = chunk @ grid.affine[0, :3] + grid.affine[0, 3]
+            offset = x - midline
+            w_left = np.where(
+                offset < -MIDLINE_TOLERANCE_MM,
+                1.0,
+                np.where(offset > MIDLINE_TOLERANCE_MM, 0.0, 0.5),
+            )
+            t = np.arange(start, start + chunk.shape[0])
+            use = leaf >= 0
+            for side, weight in ((_SIDE_LEFT, w_left), (_SIDE_RIGHT, 1.0 - w_left)):
+                keep = use & (weight > 0)
+                key = t[keep] * (2 * n_leaves) + leaf[keep] * 2 + side
+                _add_weighted(keys, weights, key, weight[keep])
+
+    # Split decisions for leaves without a hemisphere of their own.
+    split_rows: dict[int, tuple[int, int]] = {}  # leaf number → (left row, right row)
+    for number, region in enumerate(leaves):
+        if region_hemisphere[region] in ("left", "right"):
+            continue
+        on_left, on_right = strict[number]
+        if on_left > 0 and on_right > 0 and far[number] > 0:
+            pair = []
+            for side in ("left", "right"):
+                region_index.append(next_index)
+                next_index += 1
+                region_name.append(region_name[region])
+                region_abbreviation.append(region_abbreviation[region])
+                region_parent.append(int(region))
+                region_color.append(region_color[region])
+                region_hemisphere.append(side)
+                pair.append(len(region_index) - 1)
+            split_rows[number] = (pair[0], pair[1])
+        elif on_left > 0 and on_right == 0 and far[number] > 0:
+            region_hemisphere[region] = "left"
+        elif on_right > 0 and on_left == 0 and far[number] > 0:
+            region_hemisphere[region] = "right"
+        else:
+            region_hemisphere[region] = "both"
+    n_regions = len(region_index)
+    parent = np.asarray(region_parent, dtype=np.int64)
+
+    # Display order: each row followed by the rows made from it.
+    order = _display_order(parent, n_table)
+    ancestors = _ancestor_lists(parent)
+
+    # Leaf side (2·leaf + side) → every region row it belongs to.
+    src, dst = [], []
+    for number, region in enumerate(leaves):
+        for side in (_SIDE_LEFT, _SIDE_RIGHT):
+            target = split_rows[number][side] if number in split_rows else int(region)
+            for a in ancestors[target]:
+                src.append(2 * number + side)
+                dst.append(a)
+    membership = sp.csr_matrix(
+        (np.ones(len(src)), (np.asarray(src, dtype=np.int64), np.asarray(dst, dtype=np.int64))),
+        shape=(2 * n_leaves, n_regions),
+    )
+
+    if keys:
+        key = np.concatenate(keys)
+        weight = np.concatenate(weights)
+    else:
+        key = np.zeros(0, dtype=np.int64)
+        weight = np.zeros(0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        scale = np.where(denominator > 0, 1.0 / np.maximum(denominator, 1e-300), 0.0)
+    counts = sp.csr_matrix(
+        (weight * scale[key // (2 * n_leaves)], (key // (2 * n_leaves), key % (2 * n_leaves))),
+        shape=(n_mask, 2 * n_leaves),
+    )
+    counts.sum_duplicates()
+    shares = (counts @ membership).tocsr()
+    # Columns in display order.
+    shares = shares[:, order].tocsr()
+    shares.sort_indices()
+
+    # The regions table.
+    position_of = np.empty(n_regions, dtype=np.int64)
+    position_of[order] = np.arange(n_regions)
+    is_leaf = np.ones(n_regions, dtype=bool)
+    is_leaf[parent[parent >= 0]] = False
+    depth = np.array([len(ancestors[r]) - 1 for r in range(n_regions)], dtype=np.int64)
+    n_voxels = side_count.reshape(-1) @ membership
+    hemisphere_final = _aggregate_hemispheres(parent, region_hemisphere, is_leaf, n_voxels)
+    index_array = np.asarray(region_index, dtype=np.int64)
+    parent_index = np.where(parent >= 0, index_array[np.maximum(parent, 0)], -1)
+    atlas_voxel_volume = float(abs(np.linalg.det(label_affine[:3, :3])))
+    mask_volume = np.asarray(shares.sum(axis=0)).ravel() * grid.voxel_volume
+    regions = pd.DataFrame(
+        {
+            "index": index_array[order],
+            "name": np.asarray(region_name, dtype=object)[order],
+            "abbreviation": np.asarray(region_abbreviation, dtype=object)[order],
+            "hemisphere": np.asarray(hemisphere_final, dtype=object)[order],
+            "parent": parent_index[order],
+            "depth": depth[order],
+            "is_leaf": is_leaf[order],
+            "n_voxels": n_voxels[order],
+            "volume_mm3": n_voxels[order] * atlas_voxel_volume,
+            "mask_volume_mm3": mask_volume,
+            "color": np.asarray(region_color, dtype=object)[order],
+        }
+    )
+
+    # The leaf with the largest share at each in-mask voxel.
+    leaf_positions = np.flatnonzero(regions["is_leaf"].to_numpy())
+    leaf_shares = shares[:, leaf_positions].tocsr()
+    label_volume = np.zeros(grid.shape, dtype=np.int64)
+    covered = np.asarray(leaf_shares.sum(axis=1)).ravel()
+    best_leaf = _row_argmax(leaf_shares)
+    leaf_indices = regions["index"].to_numpy()[leaf_positions]
+    label_volume[mask] = np.where(best_leaf >= 0, leaf_indices[np.maximum(best_leaf, 0)], 0)
+    coverage = float(covered.mean()) if n_mask else 0.0
+
+    if coverage < min_coverage:
+        low, high = _world_box(shape, label_affine)
+        glow, ghigh = _world_box(tuple(grid.shape), grid.affine)
+        apart = bool(np.any(high < glow) or np.any(ghigh < low))
+        where = (
+            " — the atlas does not overlap the study grid in world space at all "
+            f"(atlas x,y,z from {np.round(low, 2).tolist()} to {np.round(high, 2).tolist()} "
+            f"mm, study grid from {np.round(glow, 2).tolist()} to {np.round(ghigh, 2).tolist()}"
+            " mm)"
+            if apart
+            else ""
+        )
+        raise UserError(
+            f"{image_name}: the atlas labels cover {100 * coverage:.1f}% of the analysis mask, "
+            f"less than the {100 * min_coverage:.0f}% required{where}; check that the atlas "
+            "is in the template's space (same affine origin and orientation)"
+        )
+
+    # Warnings.
+    absent = [r for r in range(n_table) if n_voxels[r] == 0]
+    if absent:
+        shown = ", ".join(f"{region_index[r]} ({region_name[r]})" for r in absent[:_MAX_LISTED])
+        more = f" and {len(absent) - _MAX_LISTED} more" if len(absent) > _MAX_LISTED else ""
+        warnings.append(
+            f"{table_name}: {len(absent)} region(s) of the table are not in the image "
+            f"(nor any of their sub-regions): {shown}{more}"
+        )
+    wrong = []
+    for number, region in enumerate(leaves):
+        own = hemisphere[region] if region < n_table else region_hemisphere[region]
+        total = side_count[number].sum()
+        if own in ("left", "right") and total > 0:
+            other = side_count[number, 1 if own == "left" else 0] / total
+            if other > WRONG_SIDE_WARNING:
+                wrong.append(f"{region_index[region]} ({region_name[region]}, {own})")
+    if wrong:
+        warnings.append(
+            f"{image_name}: {len(wrong)} region(s) labelled left or right lie mostly on the "
+            f"other side of the midline x = {midline:.3f} mm: {', '.join(wrong[:_MAX_LISTED])}"
+            "; check the atlas affine (x must grow towards the animal's right) and the table"
+        )
+    dice = mirror_dice(mask, grid.affine, midline)
+    if np.isfinite(dice) and dice < MIRROR_DICE_WARNING:
+        warnings.append(
+            f"the analysis mask matches its mirror image about x = {midline:.3f} mm "
+            f"({midline_source}) with a Dice of only {dice:.2f}; the midline may be wrong "
+            "or the mask covers one side more than the other"
+        )
+
+    return Atlas(
+        regions=regions,
+        shares=shares,
+        label_volume=label_volume,
+        resampling=resampling,
+        midline_mm=float(midline),
+        midline_source=midline_source,
+        mirror_dice=float(dice),
+        orientation=describe_orientation(grid.affine),
+        coverage=coverage,
+        warnings=tuple(warnings),
+    )
+
+
+def _row_argmax(matrix: sp.csr_matrix) -> np.ndarray:
+    """Column of the largest positive entry of each row (first on ties), -1 for empty rows.
+
+    A vectorised replacement for ``csr_matrix.argmax(axis=1)``, which loops over rows in
+    Python.
+    """
+    matrix = matrix.tocsr()
+    matrix.sort_indices()
+    n_rows = matrix.shape[0]
+    out = np.full(n_rows, -1, dtype=np.int64)
+    counts = np.diff(matrix.indptr)
+    filled = counts > 0
+    if not filled.any():
+        return out
+    row_max = np.zeros(n_rows)
+    row_max[filled] = np.maximum.reduceat(matrix.data, matrix.indptr[:-1][filled])
+    row_of = np.repeat(np.arange(n_rows), counts)
+    hit = (matrix.data == row_max[row_of]) & (matrix.data > 0)
+    rows, first = np.unique(row_of[hit], return_index=True)
+    out[rows] = matrix.indices[np.flatnonzero(hit)[first]]
+    return out
+
+
+def _ancestor_lists(parent: np.ndarray) -> list[list[int]]:
+    """For every row: itself, its parent, ..., its top-level ancestor."""
+    out: list[list[int] | None] = [None] * len(parent)
+    for row in range(len(parent)):
+        chain = []
+        node = row
+        while node >= 0 and out[node] is None:
+            chain.append(node)
+            node = int(parent[node])
+        tail: list[int] = out[node] if node >= 0 else []  # type: ignore[assignment]
+        for r in reversed(chain):
+            tail = [r, *tail]
+            out[r] = tail
+    return out  # type: ignore[return-value]
+
+
+def _display_order(parent: np.ndarray, n_table: int) -> np.ndarray:
+    """Table order, each row followed by the rows made from it ("(other)", left, right)."""
+    made_from: dict[int, list[int]] = {}
+    for row in range(n_table, len(parent)):
+        made_from.setdefault(int(parent[row]), []).append(row)
+    order: list[int] = []
+    for row in range(n_table):
+        stack = [row]
+        while stack:
+            node = stack.pop()
+            order.append(node)
+            stack.extend(reversed(made_from.get(node, [])))
+    return np.asarray(order, dtype=np.int64)
+
+
+def _aggregate_hemispheres(
+    parent: np.ndarray, hemisphere: list[str], is_leaf: np.ndarray, n_voxels: np.ndarray
+) -> list[str]:
+    """Leaves keep theirs; a parent without its own side is left or right when every
+    painted leaf below it is, else both."""
+    sides: list[set[str]] = [set() for _ in parent]
+    for row in np.flatnonzero(is_leaf):
+        side = hemisphere[row] if hemisphere[row] in HEMISPHERES else "both"
+        if n_voxels[row] > 0:
+            node = int(row)
+            while node >= 0:
+                sides[node].add(side)
+                node = int(parent[node])
+    out = []
+    for row in range(len(parent)):
+        own = hemisphere[row]
+        if is_leaf[row] or own in ("left", "right"):
+            out.append(own if own in HEMISPHERES else "both")
+        elif len(sides[row]) == 1:
+            out.append(next(iter(sides[row])))
+        else:
+            out.append("both")
+    return out
