@@ -30,6 +30,13 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--out", type=Path, required=True, help="output folder")
     r.add_argument("--force", action="store_true", help="replace an existing output folder")
     r.add_argument("--quiet", action="store_true", help="print only errors and the result")
+    r.add_argument(
+        "--permutations",
+        type=int,
+        default=None,
+        help="override [inference] permutations (0 = parametric only)",
+    )
+    r.add_argument("--seed", type=int, default=None, help="override [inference] seed")
 
     e = sub.add_parser("example", help="write the invented example study into a folder")
     e.add_argument("folder", type=Path)
@@ -60,14 +67,21 @@ def _check(args: argparse.Namespace) -> int:
 
     study = load_study(args.study)
     print(study_overview(study), end="")
-    print("study is valid")
+    print("\nstudy is valid")
     return 0
 
 
 def _run(args: argparse.Namespace) -> int:
     from grouplevel.pipeline import run_study
 
-    out = run_study(args.study, args.out, force=args.force, log=_log(args.quiet))
+    out = run_study(
+        args.study,
+        args.out,
+        force=args.force,
+        log=None if args.quiet else _log(False),
+        permutations=args.permutations,
+        seed=args.seed,
+    )
     print(f"outputs written to {out}")
     return 0
 
@@ -92,7 +106,7 @@ def _demo(args: argparse.Namespace) -> int:
     log = _log(args.quiet)
     toml = write_example(base / "example_study")
     log(f"example study written to {toml.parent}")
-    out = run_study(toml, results, force=args.force, log=log)
+    out = run_study(toml, results, force=args.force, log=None if args.quiet else log)
     print(f"demo finished: outputs in {out}")
     print(f"  summary: {out / 'summary.json'}")
     return 0

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import difflib
 import tomllib
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -21,12 +21,26 @@ DEFAULT_FORMULA = "1"  # one-sample design: the group mean
 DEFAULT_RUN_VARIANCE = "estimate"  # estimate σ² (between-run variance) by REML
 DEFAULT_DF_METHOD = "between"  # conservative between-animal df (Pinheiro & Bates 2000)
 DEFAULT_CONTRAST_NAME = "mean"
-DEFAULT_PERMUTATIONS = 0  # parametric inference only
+# Permutation inference is the default: parametric cluster inference is unreliable
+# (Eklund, Nichols & Knutsson 2016, PNAS 113:7900). 5000 permutations is common practice;
+# fewer are run when every distinct permutation can be enumerated.
+DEFAULT_PERMUTATIONS = 5000
 DEFAULT_SEED = 1
+DEFAULT_SIDED = "two"
+DEFAULT_CONNECTIVITY = 26  # faces, edges and corners (common practice for 3-D clusters)
+DEFAULT_CLUSTER_FORMING_P = 0.001  # Eklund et al. 2016: p = 0.001 keeps cluster FWE valid
+DEFAULT_ALPHA = 0.05  # common practice
+DEFAULT_FDR = "bh"  # Benjamini & Hochberg 1995
+DEFAULT_TFCE = True
+DEFAULT_TFCE_E = 0.5  # Smith & Nichols 2009, NeuroImage 44:83
+DEFAULT_TFCE_H = 2.0  # Smith & Nichols 2009
 DEFAULT_MAX_ITER = 100  # Fisher scoring iterations per voxel; REML converges in ~5-15
 DEFAULT_ORIGIN_NAME = "origin"
 
 RUN_VARIANCE_CHOICES = ("estimate", "known")
+SIDED_CHOICES = ("two", "positive", "negative")
+CONNECTIVITY_CHOICES = (6, 18, 26)
+FDR_CHOICES = ("bh", "by")
 DF_CHOICES = ("between", "satterthwaite")
 
 
@@ -69,6 +83,14 @@ class ContrastSpec:
 class InferenceSettings:
     permutations: int = DEFAULT_PERMUTATIONS
     seed: int = DEFAULT_SEED
+    sided: str = DEFAULT_SIDED
+    connectivity: int = DEFAULT_CONNECTIVITY
+    cluster_forming_p: float = DEFAULT_CLUSTER_FORMING_P
+    alpha: float = DEFAULT_ALPHA
+    fdr: str = DEFAULT_FDR
+    tfce: bool = DEFAULT_TFCE
+    tfce_e: float = DEFAULT_TFCE_E
+    tfce_h: float = DEFAULT_TFCE_H
 
 
 @dataclass(frozen=True)
@@ -107,7 +129,18 @@ _SCHEMA: dict[str, tuple[str, ...]] = {
     "atlas": ("image", "labels"),
     "model": ("formula", "run_variance", "df", "max_iter"),
     "contrast": ("name", "weights"),
-    "inference": ("permutations", "seed"),
+    "inference": (
+        "permutations",
+        "seed",
+        "sided",
+        "connectivity",
+        "cluster_forming_p",
+        "alpha",
+        "fdr",
+        "tfce",
+        "tfce_e",
+        "tfce_h",
+    ),
 }
 
 
@@ -312,15 +345,47 @@ def load_settings(path: str | Path) -> Settings:
     permutations = r.get("inference", inf, "permutations", int, DEFAULT_PERMUTATIONS)
     if permutations < 0:
         r.problem("[inference] permutations", f"must be 0 or more, got {permutations}")
-    elif permutations > 0:
+    sided = r.get("inference", inf, "sided", str, DEFAULT_SIDED)
+    if sided not in SIDED_CHOICES:
         r.problem(
-            "[inference] permutations",
-            "permutation inference is not part of this version of grouplevel; "
-            "set permutations = 0 (parametric maps only)",
+            "[inference] sided",
+            f"must be one of {', '.join(SIDED_CHOICES)}, got {sided!r}"
+            + _suggest(sided, SIDED_CHOICES),
         )
+    connectivity = r.get("inference", inf, "connectivity", int, DEFAULT_CONNECTIVITY)
+    if connectivity not in CONNECTIVITY_CHOICES:
+        r.problem(
+            "[inference] connectivity",
+            f"must be 6 (faces), 18 (faces and edges) or 26 (faces, edges and corners), "
+            f"got {connectivity}",
+        )
+    cfp = r.get("inference", inf, "cluster_forming_p", float, DEFAULT_CLUSTER_FORMING_P)
+    if not 0.0 < cfp < 1.0:
+        r.problem("[inference] cluster_forming_p", f"must be between 0 and 1, got {cfp}")
+    alpha = r.get("inference", inf, "alpha", float, DEFAULT_ALPHA)
+    if not 0.0 < alpha < 1.0:
+        r.problem("[inference] alpha", f"must be between 0 and 1, got {alpha}")
+    fdr = r.get("inference", inf, "fdr", str, DEFAULT_FDR)
+    if fdr not in FDR_CHOICES:
+        r.problem(
+            "[inference] fdr",
+            f'must be "bh" (Benjamini-Hochberg) or "by" (Benjamini-Yekutieli), got {fdr!r}',
+        )
+    tfce_e = r.get("inference", inf, "tfce_e", float, DEFAULT_TFCE_E)
+    tfce_h = r.get("inference", inf, "tfce_h", float, DEFAULT_TFCE_H)
+    if tfce_e <= 0 or tfce_h <= 0:
+        r.problem("[inference] tfce_e / tfce_h", "TFCE exponents must be positive")
     inference = InferenceSettings(
         permutations=permutations,
         seed=r.get("inference", inf, "seed", int, DEFAULT_SEED),
+        sided=sided,
+        connectivity=connectivity,
+        cluster_forming_p=cfp,
+        alpha=alpha,
+        fdr=fdr,
+        tfce=r.get("inference", inf, "tfce", bool, DEFAULT_TFCE),
+        tfce_e=tfce_e,
+        tfce_h=tfce_h,
     )
 
     if r.problems:
@@ -335,3 +400,17 @@ def load_settings(path: str | Path) -> Settings:
         atlas=atlas,
         user_contrasts=user_contrasts,
     )
+
+
+def with_overrides(
+    settings: Settings, *, permutations: int | None = None, seed: int | None = None
+) -> Settings:
+    """Settings with command-line overrides of ``[inference] permutations`` and ``seed``."""
+    inf = settings.inference
+    if permutations is not None:
+        if permutations < 0:
+            raise UserError(f"--permutations must be 0 or more, got {permutations}")
+        inf = replace(inf, permutations=permutations)
+    if seed is not None:
+        inf = replace(inf, seed=seed)
+    return replace(settings, inference=inf)

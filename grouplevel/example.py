@@ -845,10 +845,16 @@ formula = "1"
 run_variance = "estimate"
 
 [inference]
-# Number of sign-flip permutations of whole animals; 0 = parametric inference only.
-permutations = 0
-# Seed of the random number generator used for permutations.
+# Permutations of whole animals (here: sign flips, since the contrast is the group
+# mean). With 10 animals there are only 2^10 = 1024 distinct flips, fewer than asked,
+# so all of them are enumerated (an exact test). 0 = parametric inference only.
+permutations = 5000
+# Seed of the random number generator (used when permutations are drawn at random).
 seed = 1
+# Two-sided test; clusters form where p < 0.001; 26-connected neighbours.
+sided = "two"
+cluster_forming_p = 0.001
+connectivity = 26
 """
 
 

@@ -32,6 +32,8 @@ def _environment() -> jinja2.Environment:
         loader=loader,
         autoescape=jinja2.select_autoescape(["html"]),
         keep_trailing_newline=True,
+        trim_blocks=True,
+        lstrip_blocks=True,
         undefined=jinja2.StrictUndefined,
     )
 

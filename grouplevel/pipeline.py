@@ -18,11 +18,19 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from scipy import stats
+from tqdm import tqdm
 
 from grouplevel import __version__
-from grouplevel.config import DEFAULT_CONTRAST_NAME, Settings
+from grouplevel.config import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
 from grouplevel.errors import UserError
 from grouplevel.images import Grid, write_map
+from grouplevel.inference import FdrResult, Smoothness, estimate_smoothness, fdr
+from grouplevel.inference.permutation import (
+    PermutationResult,
+    animal_level_data,
+    permutation_test,
+)
 from grouplevel.model import (
     between_animal_df,
     fit_reml,
@@ -42,6 +50,42 @@ MAP_DESCRIPTIONS = {
     "var_animal": "between-animal variance tau^2 (REML)",
     "var_run": "between-run variance sigma^2 (REML)",
 }
+
+
+@dataclass(frozen=True)
+class Corrected:
+    """Inference corrected for the many voxels tested (per-voxel arrays are in-mask).
+
+    ``permutation`` is None when ``[inference] permutations = 0`` (FDR only).
+    """
+
+    sided: str
+    p_sided: np.ndarray  # the uncorrected p of the chosen side
+    fdr: FdrResult
+    smoothness: Smoothness | None
+    permutation: PermutationResult | None
+    warnings: tuple[str, ...]
+
+    @property
+    def q(self) -> np.ndarray:
+        return self.fdr.q
+
+    @property
+    def p_fwe_voxel(self) -> np.ndarray:
+        return self._perm().p_fwe_voxel
+
+    @property
+    def tfce(self) -> np.ndarray:
+        return self._perm().tfce
+
+    @property
+    def p_fwe_tfce(self) -> np.ndarray:
+        return self._perm().p_fwe_tfce
+
+    def _perm(self) -> PermutationResult:
+        if self.permutation is None:
+            raise AttributeError("no permutation inference was run (permutations = 0)")
+        return self.permutation
 
 
 @dataclass(frozen=True)
@@ -71,11 +115,17 @@ class GroupMap:
     not_converged: int
     n_animals: int
     n_runs: int
+    inference: Corrected
 
     def volume(self, key: str) -> np.ndarray:
-        """A per-voxel quantity as a full 3-D array (0 outside the mask)."""
+        """A per-voxel quantity as a full 3-D array (0 outside the mask).
+
+        ``key`` names a field of the map (``t``, ``effect`` ...) or of its corrected
+        inference (``q``, ``p_fwe_voxel``, ``tfce`` ...).
+        """
+        values = getattr(self, key) if hasattr(self, key) else getattr(self.inference, key)
         out = np.zeros(self.grid.shape)
-        out[self.mask] = getattr(self, key)
+        out[self.mask] = values
         return out
 
     def to_frame(self) -> pd.DataFrame:
@@ -98,8 +148,89 @@ class GroupMap:
         return frame
 
 
+def _sided_p(t: np.ndarray, df: np.ndarray, sided: str) -> np.ndarray:
+    if sided == "positive":
+        return stats.t.sf(t, df)
+    if sided == "negative":
+        return stats.t.cdf(t, df)
+    return 2.0 * stats.t.sf(np.abs(t), df)
+
+
+def _smoothness(y, variance, fit, X, mask: np.ndarray, grid: Grid) -> Smoothness | None:
+    """Residual smoothness from standardised residuals (Kiebel et al. 1999)."""
+    resid = y - X @ fit.beta.T
+    total = fit.var_animal[None, :] + fit.var_run[None, :]
+    if variance is not None:
+        total = total + variance
+    with np.errstate(invalid="ignore", divide="ignore"):
+        standard = resid / np.sqrt(total)
+    standard = np.where(np.isfinite(standard), standard, 0.0)
+    dof = y.shape[0] - np.linalg.matrix_rank(X)
+    if dof <= 1:
+        return None
+    try:
+        return estimate_smoothness(standard, mask, grid.voxel_size, float(dof))
+    except UserError:
+        return None  # e.g. a mask with no neighbouring voxels along an axis
+
+
+def _correct(
+    study: Study,
+    c: np.ndarray,
+    t: np.ndarray,
+    df: np.ndarray,
+    animal_data,
+    smooth: Smoothness | None,
+    mask: np.ndarray,
+    label: str,
+    quiet: bool,
+) -> Corrected:
+    inf: InferenceSettings = study.settings.inference
+    p_sided = _sided_p(t, df, inf.sided)
+    q = fdr(p_sided, alpha=inf.alpha, method=inf.fdr)
+    warnings: list[str] = []
+    perm = None
+    if inf.permutations > 0:
+        rng = np.random.default_rng(inf.seed)
+        bar = tqdm(
+            total=None, desc=f"permutations {label}", unit="perm", disable=quiet, leave=False
+        )
+        perm = permutation_test(
+            animal_data,
+            c,
+            df,
+            mask,
+            n_permutations=inf.permutations,
+            rng=rng,
+            sided=inf.sided,
+            connectivity=inf.connectivity,
+            cluster_forming_p=inf.cluster_forming_p,
+            voxel_volume_mm3=study.grid.voxel_volume,
+            use_tfce=inf.tfce,
+            tfce_E=inf.tfce_e,
+            tfce_H=inf.tfce_h,
+            progress=lambda done, total: (setattr(bar, "total", total), bar.update(done)),
+        )
+        bar.close()
+        if perm.scheme.smallest_p > inf.alpha:
+            warnings.append(
+                f"{label}: the smallest p that {perm.scheme.n} {perm.scheme.kind} can give "
+                f"is {perm.scheme.smallest_p:.3g}, above alpha = {inf.alpha}: no voxel or "
+                "cluster can reach significance with permutation inference; more animals "
+                "are needed"
+            )
+    return Corrected(
+        sided=inf.sided,
+        p_sided=p_sided,
+        fdr=q,
+        smoothness=smooth,
+        permutation=perm,
+        warnings=tuple(warnings),
+    )
+
+
 def _fit_first_level(
-    study: Study, fl: FirstLevel, log: Callable[[str], None]
+    study: Study, fl: FirstLevel, log: Callable[[str], None], quiet: bool = True
 ) -> tuple[list[GroupMap], list[str]]:
     settings = study.settings
     warnings: list[str] = []
@@ -138,6 +269,12 @@ def _fit_first_level(
             f"at {not_converged} voxel(s); their estimates are the last iterate"
         )
     present = np.isfinite(y)
+    smooth = _smoothness(y, s2, fit, design.matrix, mask, study.grid)
+    animal_data = None
+    if settings.inference.permutations > 0:
+        animal_data = animal_level_data(
+            y, s2, design.matrix, design.animal, fit.var_run, fit.var_animal, design.columns
+        )
     results = []
     for cname, c in fl.contrasts:
         if settings.model.df == "satterthwaite":
@@ -147,9 +284,13 @@ def _fit_first_level(
         res = test_contrast(fit, c, df)
         default = cname == DEFAULT_CONTRAST_NAME
         spec = next(s for s in settings.contrasts if s.name == cname)
+        name = fl.output_name(cname, default)
+        df_full = np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy()
+        corrected = _correct(study, c, res.t, df_full, animal_data, smooth, mask, name, quiet)
+        warnings.extend(corrected.warnings)
         results.append(
             GroupMap(
-                name=fl.output_name(cname, default),
+                name=name,
                 first_level=fl.name,
                 contrast=cname,
                 weights=dict(spec.weights),
@@ -158,7 +299,7 @@ def _fit_first_level(
                 effect=res.effect,
                 se=res.se,
                 t=res.t,
-                df=np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy(),
+                df=df_full,
                 z=res.z,
                 p=res.p,
                 var_animal=fit.var_animal,
@@ -168,6 +309,7 @@ def _fit_first_level(
                 not_converged=not_converged,
                 n_animals=design.n_animals,
                 n_runs=len(fl.runs),
+                inference=corrected,
             )
         )
     log(f"  done in {time.perf_counter() - start:.1f} s")
@@ -175,7 +317,7 @@ def _fit_first_level(
 
 
 def fit_study(
-    study: Study, log: Callable[[str], None] | None = None
+    study: Study, log: Callable[[str], None] | None = None, *, quiet: bool = True
 ) -> tuple[list[GroupMap], list[str]]:
     """Fit the mixed model for every first-level contrast and test every group contrast.
 
@@ -190,7 +332,7 @@ def fit_study(
     maps: list[GroupMap] = []
     warnings: list[str] = []
     for fl in study.first_levels:
-        m, w = _fit_first_level(study, fl, log)
+        m, w = _fit_first_level(study, fl, log, quiet)
         maps.extend(m)
         warnings.extend(w)
     return maps, warnings
@@ -260,6 +402,7 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "var_animal_median": float(np.median(gm.var_animal)),
         "var_run_median": float(np.median(gm.var_run)),
         "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
+        "inference": _inference_summary(gm, study.settings.inference.alpha),
     }
     if peak is not None:
         ijk = np.argwhere(gm.mask)[peak]
@@ -271,6 +414,121 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
             "mm": [round(float(v), 4) for v in xyz],
         }
     return entry
+
+
+def _write_inference(folder: Path, gm: GroupMap, label: str) -> None:
+    """Corrected maps, cluster labels and the permutation null of the maxima."""
+    grid = gm.grid
+    inf = gm.inference
+    write_map(
+        folder / "q.nii.gz",
+        inf.q,
+        gm.mask,
+        grid,
+        f"grouplevel FDR q ({inf.fdr.method}, {inf.sided}) [{label}]",
+    )
+    perm = inf.permutation
+    if perm is None:
+        return
+    write_map(
+        folder / "p_fwe_voxel.nii.gz",
+        perm.p_fwe_voxel,
+        gm.mask,
+        grid,
+        f"grouplevel FWE p, voxel max-stat [{label}]",
+    )
+    full = np.ones(grid.shape, dtype=bool)
+    write_map(
+        folder / "clusters.nii.gz",
+        perm.clusters.labels,
+        full,
+        grid,
+        f"grouplevel clusters at z>{perm.cluster_forming_z:.2f}, 1=largest [{label}]",
+        dtype=np.int32,
+    )
+    for stem, p_cluster, what in (
+        ("p_fwe_cluster", perm.p_fwe_cluster_extent, "extent"),
+        ("p_fwe_cluster_mass", perm.p_fwe_cluster_mass, "mass"),
+    ):
+        per_voxel = np.ones(grid.shape)
+        inside = perm.clusters.labels > 0
+        per_voxel[inside] = p_cluster[perm.clusters.labels[inside] - 1]
+        write_map(
+            folder / f"{stem}.nii.gz",
+            per_voxel,
+            gm.mask,
+            grid,
+            f"grouplevel FWE p, cluster {what} [{label}]",
+        )
+    if perm.tfce is not None:
+        write_map(
+            folder / "tfce.nii.gz", perm.tfce, gm.mask, grid, f"grouplevel TFCE of z [{label}]"
+        )
+        write_map(
+            folder / "p_fwe_tfce.nii.gz",
+            perm.p_fwe_tfce,
+            gm.mask,
+            grid,
+            f"grouplevel FWE p, TFCE [{label}]",
+        )
+    voxel_volume = grid.voxel_volume
+    null = pd.DataFrame(
+        {
+            "permutation": np.arange(perm.scheme.n),
+            "max_z": perm.null_max_stat,
+            "max_cluster_voxels": perm.null_max_extent.astype(int),
+            "max_cluster_mm3": perm.null_max_extent * voxel_volume,
+            "max_cluster_mass": perm.null_max_mass,
+        }
+    )
+    if perm.null_max_tfce is not None:
+        null["max_tfce"] = perm.null_max_tfce
+    null.to_csv(folder / "null_max.tsv", sep="\t", index=False, float_format="%.6g")
+
+
+def _inference_summary(gm: GroupMap, alpha: float) -> dict:
+    inf = gm.inference
+    out: dict = {
+        "sided": inf.sided,
+        "fdr": {
+            "method": inf.fdr.method,
+            "alpha": inf.fdr.alpha,
+            "threshold_p": None if np.isnan(inf.fdr.threshold_p) else inf.fdr.threshold_p,
+            "surviving_voxels": inf.fdr.n_significant,
+        },
+        "smoothness": None
+        if inf.smoothness is None
+        else {
+            "fwhm_mm": [round(float(v), 4) for v in inf.smoothness.fwhm_mm],
+            "fwhm_voxels": [round(float(v), 3) for v in inf.smoothness.fwhm_voxels],
+        },
+        "permutation": None,
+    }
+    perm = inf.permutation
+    if perm is not None:
+        sig_clusters = perm.p_fwe_cluster_extent <= alpha
+        sig_mass = perm.p_fwe_cluster_mass <= alpha
+        out["permutation"] = {
+            "kind": perm.scheme.kind,
+            "permutations": perm.scheme.n,
+            "exhaustive": perm.scheme.exhaustive,
+            "distinct_permutations": perm.scheme.n_distinct,
+            "smallest_attainable_p": perm.scheme.smallest_p,
+            "cluster_forming_z": perm.cluster_forming_z,
+            "surviving": {
+                "voxel": int((perm.p_fwe_voxel <= alpha).sum()),
+                "cluster_extent": {
+                    "clusters": int(sig_clusters.sum()),
+                    "voxels": int(perm.clusters.extent_voxels[sig_clusters].sum()),
+                },
+                "cluster_mass": {
+                    "clusters": int(sig_mass.sum()),
+                    "voxels": int(perm.clusters.extent_voxels[sig_mass].sum()),
+                },
+                "tfce": None if perm.p_fwe_tfce is None else int((perm.p_fwe_tfce <= alpha).sum()),
+            },
+        }
+    return out
 
 
 def write_outputs(
@@ -380,15 +638,22 @@ def run_study(
     *,
     force: bool = False,
     log: Callable[[str], None] | None = None,
+    permutations: int | None = None,
+    seed: int | None = None,
 ) -> Path:
-    """Validate, fit and write a study in one call (what ``grouplevel run`` does)."""
+    """Validate, fit and write a study in one call (what ``grouplevel run`` does).
+
+    ``permutations`` and ``seed`` override the study file's ``[inference]`` values. A
+    progress bar is shown for the permutations when ``log`` is given.
+    """
+    quiet = log is None
     log = log or (lambda _msg: None)
     out = Path(out_dir).expanduser().resolve()
     check_output_folder(out, force)
-    study = load_study(path)
+    study = load_study(path, permutations=permutations, seed=seed)
     for w in study.warnings:
         log(f"warning: {w}")
-    maps, warnings = fit_study(study, log)
+    maps, warnings = fit_study(study, log, quiet=quiet)
     for w in warnings:
         log(f"warning: {w}")
     return write_outputs(study, maps, out, warnings=warnings, force=force)

@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from grouplevel.config import Settings, load_settings
+from grouplevel.config import Settings, load_settings, with_overrides
 from grouplevel.design import (
     Design,
     build_design,
@@ -333,6 +333,18 @@ def inspect_study(settings: Settings) -> Study:
         except UserError as exc:
             problems.append(f"{label}: {exc}")
             continue
+        if settings.inference.permutations > 0 and not design.animal_level.all():
+            run_level = [
+                c for c, b in zip(design.columns, design.animal_level, strict=True) if not b
+            ]
+            problems.append(
+                f"{label}: [inference] permutations = {settings.inference.permutations} with "
+                f"run-level design columns ({', '.join(run_level)}): permutation inference "
+                "exchanges whole animals, and runs of one animal are not exchangeable with "
+                "each other (their first-level variances differ), so a run-level covariate "
+                "cannot be permuted without breaking the nesting of runs in animals. Set "
+                "permutations = 0 (parametric maps only) or use animal-level covariates"
+            )
         contrasts = []
         for spec in settings.contrasts:
             try:
@@ -480,12 +492,22 @@ def load_runs(study: Study, first_level: FirstLevel) -> RunData:
     return RunData(effect=effect, variance=variance)
 
 
-def load_study(path: str | Path) -> Study:
+def load_study(
+    path: str | Path, *, permutations: int | None = None, seed: int | None = None
+) -> Study:
     """Read a study's TOML file, validate the runs table and every map.
+
+    Parameters
+    ----------
+    path
+        The study's TOML file.
+    permutations, seed
+        Optional overrides of ``[inference] permutations`` and ``seed``.
 
     Raises
     ------
     UserError
         With every problem found, each naming its file, table line or key.
     """
-    return inspect_study(load_settings(path))
+    settings = with_overrides(load_settings(path), permutations=permutations, seed=seed)
+    return inspect_study(settings)

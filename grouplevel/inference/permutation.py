@@ -1,0 +1,528 @@
+"""Permutation inference on the run-within-animal mixed model, with animals as units.
+
+Runs of one animal share its random effect, so they are never exchanged on their own:
+the units of every permutation are whole animals.
+
+* A contrast whose regressor of interest is constant across animals (the group mean,
+  or the mean of a reference group with nuisance covariates) is tested by **sign
+  flips** of whole animals: every run of an animal is multiplied by the same ±1.
+* A contrast of animal-level covariates (a group difference, a slope over age) is
+  tested by **permuting whole animals** between positions of the design.
+* Nuisance covariates are handled by Freedman–Lane: the data are reduced to the
+  residuals of the nuisance-only model, those are flipped or permuted, and the nuisance
+  fit is added back (Winkler et al. 2014).
+* Contrasts that involve run-level covariates are refused (see :func:`animal_level_data`).
+
+The mixed-model statistic is recomputed for every permutation, cheaply. For a design
+whose columns are constant within animals, the REML likelihood separates into a
+within-animal part, which depends on σ² alone and is unchanged by flipping or moving
+whole animals, and an animal-level part: the precision-weighted animal means with
+sampling variances ``1/Σ_k w_k``, ``w_k = 1/(σ² + s_k²)``. So σ² is estimated once from
+the unpermuted data, and for every permutation τ² is re-estimated by REML on the
+(permuted) animal-level data, then β by GLS and its t statistic
+(:mod:`grouplevel.inference._refit_kernel`).
+
+Per permutation the engine keeps the maximum statistic, the largest cluster extent and
+cluster mass at the cluster-forming threshold and the largest TFCE score; family-wise
+error (FWE) corrected p-values follow from those maxima (Nichols & Holmes 2002).
+
+References
+----------
+Nichols TE, Holmes AP (2002). Nonparametric permutation tests for functional
+neuroimaging: a primer with examples. Hum Brain Mapp 15:1-25.
+
+Freedman D, Lane D (1983). A nonstochastic interpretation of reported significance
+levels. J Bus Econ Stat 1:292-298.
+
+Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014). Permutation inference
+for the general linear model. NeuroImage 92:381-397.
+
+Smith SM, Nichols TE (2009). Threshold-free cluster enhancement. NeuroImage 44:83-98.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+import os
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+from grouplevel.errors import UserError
+from grouplevel.inference import _refit_kernel
+from grouplevel.inference.clusters import Clusters, find_clusters, max_cluster_extent_and_mass
+from grouplevel.inference.tfce import tfce as tfce_map
+
+SIDES = ("two", "positive", "negative")
+# t -> z conversion table: points on u = asinh(t) up to t = 1e8 (our own choice; the
+# interpolation error is below 1e-4 in z, far below what a threshold needs).
+_TZ_POINTS = 4001
+_TZ_MAX_T = 1e8
+# Smallest positive first-level + run variance allowed when building precisions; a zero
+# total variance would give an infinite precision (one run per animal, no s²).
+_VARIANCE_FLOOR = 1e-12
+
+
+@dataclass(frozen=True)
+class AnimalLevelData:
+    """The unpermuted data reduced to one value per animal and voxel.
+
+    Attributes
+    ----------
+    mean
+        (V, m) precision-weighted animal means (0 where the animal has no data).
+    precision
+        (V, m) their sampling precisions ``Σ_k 1/(σ̂² + s_k²)`` (0 where no data).
+    design
+        (m, p) the animal-level design (one row per animal).
+    var_animal
+        (V,) the REML τ̂² of the unpermuted fit (start of every refit).
+    """
+
+    mean: np.ndarray
+    precision: np.ndarray
+    design: np.ndarray
+    var_animal: np.ndarray
+
+
+def animal_level_data(
+    y: np.ndarray,
+    variance: np.ndarray | None,
+    X: np.ndarray,
+    animal: np.ndarray,
+    var_run: np.ndarray,
+    var_animal: np.ndarray,
+    column_names: tuple[str, ...] | None = None,
+) -> AnimalLevelData:
+    """Reduce runs × voxels data to animal means and precisions at fixed σ̂².
+
+    Raises
+    ------
+    UserError
+        When a design column varies within an animal (a run-level covariate): runs of
+        one animal are not exchangeable when their first-level variances differ, and
+        moving them across animals would break the nesting, so such designs are tested
+        parametrically only.
+    """
+    m = int(animal.max()) + 1
+    first = np.array([np.flatnonzero(animal == a)[0] for a in range(m)])
+    Xa = X[first]
+    varies = ~np.all(np.isclose(X, Xa[animal]), axis=0)
+    if varies.any():
+        names = (
+            [column_names[j] for j in np.flatnonzero(varies)]
+            if column_names
+            else [str(j) for j in np.flatnonzero(varies)]
+        )
+        raise UserError(
+            f"[inference] permutations: the design has run-level columns ({', '.join(names)}); "
+            "permutation inference exchanges whole animals, and runs within an animal are "
+            "not exchangeable (their first-level variances differ), so a run-level "
+            "covariate cannot be permuted without breaking the nesting. Set "
+            "permutations = 0 for parametric inference, or use animal-level covariates."
+        )
+    present = np.isfinite(y)
+    s2 = np.zeros_like(y) if variance is None else np.where(present, variance, 0.0)
+    d = np.maximum(var_run[None, :] + s2, _VARIANCE_FLOOR)
+    w = np.where(present, 1.0 / d, 0.0)
+    wy = np.where(present, w * np.nan_to_num(y), 0.0)
+    indicator = np.zeros((m, len(animal)))
+    indicator[animal, np.arange(len(animal))] = 1.0
+    prec = indicator @ w  # (m, V)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(prec > 0, (indicator @ wy) / prec, 0.0)
+    return AnimalLevelData(
+        mean=np.ascontiguousarray(mean.T),
+        precision=np.ascontiguousarray(prec.T),
+        design=Xa,
+        var_animal=np.asarray(var_animal, dtype=float),
+    )
+
+
+def partition_design(design: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Split a design into the regressor of interest and nuisance for contrast ``c``.
+
+    Returns ``(x_interest (m,), nuisance (m, p-1))`` spanning the same space as
+    ``design``, such that the contrast ``cᵀβ`` is the coefficient of ``x_interest``
+    (Winkler et al. 2014, Appendix A).
+    """
+    c = np.asarray(c, dtype=float).reshape(-1)
+    Q = np.linalg.pinv(design.T @ design)
+    x_i = design @ Q @ c / (c @ Q @ c)
+    # nuisance: the design's space orthogonal to c in the Q metric
+    u, s, vt = np.linalg.svd(c[None, :])
+    cc = vt[1:].T  # (p, p-1) basis of the null space of cᵀ
+    if cc.size == 0:
+        return x_i, np.zeros((design.shape[0], 0))
+    Z = design @ Q @ cc @ np.linalg.pinv(cc.T @ Q @ cc)
+    return x_i, Z
+
+
+@dataclass(frozen=True)
+class PermutationScheme:
+    """Which permutations are run.
+
+    Attributes
+    ----------
+    kind
+        ``"sign flips"`` or ``"animal permutations"``.
+    signs
+        (n, m) ±1 per permutation and animal position (all +1 for permutations).
+    orders
+        (n, m) which animal's residual goes to each design position (identity for flips).
+    exhaustive
+        True when every distinct permutation is enumerated.
+    n_distinct
+        Number of distinct permutations (may be astronomically large: a float).
+    smallest_p
+        The smallest p-value that these permutations can give.
+    """
+
+    kind: str
+    signs: np.ndarray
+    orders: np.ndarray
+    exhaustive: bool
+    n_distinct: float
+    smallest_p: float
+
+    @property
+    def n(self) -> int:
+        return int(self.signs.shape[0])
+
+
+def plan_permutations(
+    x_interest: np.ndarray,
+    nuisance: np.ndarray,
+    n_requested: int,
+    rng: np.random.Generator,
+    sided: str = "two",
+) -> PermutationScheme:
+    """Choose sign flips or animal permutations and enumerate or draw them.
+
+    All distinct permutations are enumerated when there are no more than requested
+    (an exact test); otherwise ``n_requested`` are drawn at random with the identity
+    first. The identity is always counted.
+    """
+    m = x_interest.shape[0]
+    if n_requested < 1:
+        raise UserError("[inference] permutations must be at least 1 for a permutation test")
+    if np.allclose(x_interest, x_interest[0]):
+        n_distinct = 2.0**m
+        if n_distinct <= n_requested:
+            bits = (np.arange(2**m)[:, None] >> np.arange(m)[None, :]) & 1
+            signs = 1 - 2 * bits  # row 0 is the identity
+            exhaustive = True
+        else:
+            signs = rng.choice(np.array([-1, 1]), size=(n_requested, m))
+            signs[0] = 1
+            exhaustive = False
+        orders = np.tile(np.arange(m), (signs.shape[0], 1))
+        n = signs.shape[0]
+        # with every animal flipped, |t| is unchanged: two-sided exhaustive tests
+        # cannot go below 2/n
+        smallest = (2.0 if exhaustive and sided == "two" else 1.0) / n
+        return PermutationScheme(
+            "sign flips", signs.astype(np.int8), orders, exhaustive, n_distinct, smallest
+        )
+    rows = np.column_stack([x_interest, nuisance]).round(12)
+    _, cls = np.unique(rows, axis=0, return_inverse=True)
+    cls = cls.reshape(-1)
+    counts = np.bincount(cls)
+    n_distinct = math.factorial(m) / math.prod(math.factorial(int(k)) for k in counts)
+    if n_distinct <= n_requested:
+        orders = _distinct_orders(cls)
+        exhaustive = True
+    else:
+        orders = np.empty((n_requested, m), dtype=np.intp)
+        orders[0] = np.arange(m)
+        for i in range(1, n_requested):
+            orders[i] = rng.permutation(m)
+        exhaustive = False
+    signs = np.ones(orders.shape, dtype=np.int8)
+    return PermutationScheme(
+        "animal permutations", signs, orders, exhaustive, n_distinct, 1.0 / orders.shape[0]
+    )
+
+
+def _distinct_orders(cls: np.ndarray) -> np.ndarray:
+    """Every distinct assignment of animals to design positions, identity first.
+
+    Positions with identical design rows (same ``cls``) are interchangeable, so an
+    assignment is determined by which set of animals fills each class of positions.
+    """
+    m = cls.size
+    classes = np.unique(cls)
+    positions = [np.flatnonzero(cls == k) for k in classes]
+    out: list[np.ndarray] = []
+
+    def fill(remaining: tuple[int, ...], k: int, order: np.ndarray) -> None:
+        if k == len(classes):
+            out.append(order.copy())
+            return
+        pos = positions[k]
+        for chosen in itertools.combinations(remaining, len(pos)):
+            order[pos] = chosen
+            rest = tuple(a for a in remaining if a not in chosen)
+            fill(rest, k + 1, order)
+
+    fill(tuple(range(m)), 0, np.empty(m, dtype=np.intp))
+    orders = np.array(out)
+    identity = np.flatnonzero((orders == np.arange(m)).all(axis=1))
+    if identity.size:  # put the identity first
+        i = identity[0]
+        orders[[0, i]] = orders[[i, 0]]
+    return orders
+
+
+class _TtoZ:
+    """t → z (equal p) for voxels whose df may differ, by interpolation per df value."""
+
+    def __init__(self, df: np.ndarray) -> None:
+        self.df = df
+        self.values, self.index = np.unique(df, return_inverse=True)
+        self.index = self.index.reshape(-1)
+        u = np.linspace(0.0, np.arcsinh(_TZ_MAX_T), _TZ_POINTS)
+        t = np.sinh(u)
+        self.u = u
+        self.tables = []
+        for d in self.values:
+            logp = stats.t.logsf(t, d)
+            z = -stats.norm.ppf(np.exp(np.clip(logp, -700, 0)))
+            # beyond float range of p, use the asymptotic normal tail
+            z = np.where(np.isfinite(z), z, np.sqrt(-2.0 * logp))
+            self.tables.append(np.maximum(z, 0.0))
+
+    def __call__(self, t: np.ndarray) -> np.ndarray:
+        u = np.arcsinh(np.abs(t))
+        z = np.empty_like(t)
+        for k, table in enumerate(self.tables):
+            sel = self.index == k
+            z[sel] = np.interp(u[sel], self.u, table)
+        return np.sign(t) * z
+
+
+@dataclass(frozen=True)
+class PermutationResult:
+    """Observed maps and their FWE-corrected p-values from the permutation null.
+
+    Per-voxel arrays are in-mask vectors; ``clusters`` holds the observed clusters on
+    the grid.
+    """
+
+    scheme: PermutationScheme
+    statistic: np.ndarray  # (V,) observed z
+    p_fwe_voxel: np.ndarray
+    clusters: Clusters
+    cluster_forming_z: float
+    p_fwe_cluster_extent: np.ndarray  # (n_clusters,)
+    p_fwe_cluster_mass: np.ndarray  # (n_clusters,)
+    tfce: np.ndarray | None  # (V,) observed TFCE
+    p_fwe_tfce: np.ndarray | None
+    null_max_stat: np.ndarray  # (n,)
+    null_max_extent: np.ndarray  # (n,) voxels
+    null_max_mass: np.ndarray
+    null_max_tfce: np.ndarray | None
+
+
+def cluster_forming_z(p: float, sided: str) -> float:
+    """z threshold for a cluster-forming p (two-sided p for ``sided="two"``)."""
+    return float(stats.norm.isf(p / 2.0 if sided == "two" else p))
+
+
+def _oriented(z: np.ndarray, sided: str) -> np.ndarray:
+    if sided == "positive":
+        return np.maximum(z, 0.0)
+    if sided == "negative":
+        return np.maximum(-z, 0.0)
+    return np.abs(z)
+
+
+def _fwe_p(observed: np.ndarray, null_max: np.ndarray) -> np.ndarray:
+    """Share of permutations whose maximum reaches the observed value (identity counted)."""
+    ordered = np.sort(null_max)
+    count = ordered.size - np.searchsorted(
+        ordered, observed - 1e-12 * np.abs(observed), side="left"
+    )
+    return count / ordered.size
+
+
+def permutation_test(
+    data: AnimalLevelData,
+    c: np.ndarray,
+    df: np.ndarray,
+    mask: np.ndarray,
+    *,
+    n_permutations: int,
+    rng: np.random.Generator,
+    sided: str = "two",
+    connectivity: int = 26,
+    cluster_forming_p: float = 0.001,
+    voxel_volume_mm3: float = 1.0,
+    use_tfce: bool = True,
+    tfce_E: float = 0.5,
+    tfce_H: float = 2.0,
+    progress: Callable[[int, int], None] | None = None,
+    threads: int | None = None,
+) -> PermutationResult:
+    """Run the permutation test of contrast ``c`` and return FWE-corrected maps.
+
+    Parameters
+    ----------
+    data
+        Animal-level data of the unpermuted fit (:func:`animal_level_data`).
+    c
+        (p,) contrast weights on the design columns.
+    df
+        (V,) degrees of freedom of each voxel's t (t is converted to z at equal p so
+        that voxels with different df are comparable).
+    mask
+        3-D boolean analysis mask; the in-mask voxels are in C order, as in ``data``.
+    n_permutations
+        Requested number; all distinct ones are enumerated when there are no more.
+    rng
+        The only source of randomness.
+    sided
+        ``"two"``, ``"positive"`` or ``"negative"``.
+    connectivity, cluster_forming_p, voxel_volume_mm3, use_tfce, tfce_E, tfce_H
+        Cluster and TFCE settings.
+    progress
+        Called with the number of permutations finished since the last call and the
+        total number of permutations.
+    threads
+        Worker threads (default: the available cores).
+
+    References
+    ----------
+    Winkler AM et al. (2014). NeuroImage 92:381-397.
+    Smith SM, Nichols TE (2009). NeuroImage 44:83-98.
+    """
+    if sided not in SIDES:
+        raise UserError(f"[inference] sided must be one of {', '.join(SIDES)}, got {sided!r}")
+    x_i, Z = partition_design(data.design, c)
+    X_perm = np.column_stack([x_i, Z])
+    scheme = plan_permutations(x_i, Z, n_permutations, rng, sided)
+    V, m = data.mean.shape
+    # Freedman–Lane: nuisance-only GLS fit at the unpermuted τ̂² (per voxel)
+    fitted = np.zeros_like(data.mean)
+    if Z.shape[1]:
+        w = data.precision / (1.0 + data.var_animal[:, None] * data.precision)
+        ZtW = np.einsum("am,va->vma", Z, w)  # (V, q, m)
+        A = ZtW @ Z  # (V, q, q)
+        b = np.einsum("vma,va->vm", ZtW, data.mean)
+        gamma = np.linalg.solve(A + 1e-300 * np.eye(Z.shape[1]), b[..., None])[..., 0]
+        fitted = gamma @ Z.T
+    residual = data.mean - fitted
+    to_z = _TtoZ(np.asarray(df, dtype=float))
+    thr = cluster_forming_z(cluster_forming_p, sided)
+    grid_shape = mask.shape
+    n_threads = threads or max(1, len(os.sched_getaffinity(0)))
+
+    fitted = np.ascontiguousarray(fitted)
+    residual = np.ascontiguousarray(residual)
+    precision = np.ascontiguousarray(data.precision)
+    X_perm = np.ascontiguousarray(X_perm, dtype=np.float64)
+    tau2_start = np.ascontiguousarray(data.var_animal, dtype=np.float64)
+    signs = scheme.signs.astype(np.float64)
+    orders = scheme.orders.astype(np.int64)
+
+    def statistic(k: int) -> np.ndarray:
+        """z map (in-mask) of permutation k; k = 0 is the unpermuted data."""
+        t = np.empty(V)
+        _refit_kernel.refit_t_permuted(
+            fitted,
+            residual,
+            precision,
+            signs[k],
+            orders[k],
+            X_perm,
+            tau2_start,
+            t,
+            _refit_kernel.REFIT_MAX_ITER,
+            _refit_kernel.REFIT_TOL,
+        )
+        return to_z(np.nan_to_num(t))
+
+    def volume(values: np.ndarray) -> np.ndarray:
+        out = np.zeros(grid_shape)
+        out[mask] = values
+        return out
+
+    def maxima(k: int) -> tuple[float, int, float, float]:
+        z = statistic(k)
+        vol = volume(z)
+        max_stat = float(_oriented(z, sided).max())
+        extent, mass = max_cluster_extent_and_mass(
+            vol, mask, thr, connectivity=connectivity, sided=sided
+        )
+        max_tfce = 0.0
+        if use_tfce:
+            score = tfce_map(
+                vol,
+                mask,
+                connectivity=connectivity,
+                E=tfce_E,
+                H=tfce_H,
+                voxel_volume_mm3=voxel_volume_mm3,
+                sided=sided,
+            )
+            max_tfce = float(np.abs(score).max())
+        return max_stat, int(extent), float(mass), max_tfce
+
+    n = scheme.n
+    null = np.zeros((n, 4))
+    batch = 16
+    pool = ThreadPoolExecutor(max_workers=n_threads) if n_threads > 1 else None
+    try:
+        for start in range(0, n, batch):
+            ks = range(start, min(n, start + batch))
+            rows = pool.map(maxima, ks) if pool is not None else map(maxima, ks)
+            for k, row in zip(ks, rows, strict=True):
+                null[k] = row
+            if progress is not None:
+                progress(len(ks), n)
+    finally:
+        if pool is not None:
+            pool.shutdown()
+
+    # observed maps (identity permutation)
+    z_obs = statistic(0)
+    vol = volume(z_obs)
+    oriented = _oriented(z_obs, sided)
+    p_voxel = _fwe_p(oriented, null[:, 0])
+    clusters = find_clusters(
+        vol, mask, thr, connectivity=connectivity, voxel_volume_mm3=voxel_volume_mm3, sided=sided
+    )
+    p_extent = _fwe_p(clusters.extent_voxels.astype(float), null[:, 1])
+    p_mass = _fwe_p(clusters.mass, null[:, 2])
+    tfce_obs = p_tfce = None
+    if use_tfce:
+        score = tfce_map(
+            vol,
+            mask,
+            connectivity=connectivity,
+            E=tfce_E,
+            H=tfce_H,
+            voxel_volume_mm3=voxel_volume_mm3,
+            sided=sided,
+        )
+        tfce_obs = score[mask]
+        p_tfce = _fwe_p(np.abs(tfce_obs), null[:, 3])
+    return PermutationResult(
+        scheme=scheme,
+        statistic=z_obs,
+        p_fwe_voxel=p_voxel,
+        clusters=clusters,
+        cluster_forming_z=thr,
+        p_fwe_cluster_extent=p_extent,
+        p_fwe_cluster_mass=p_mass,
+        tfce=tfce_obs,
+        p_fwe_tfce=p_tfce,
+        null_max_stat=null[:, 0],
+        null_max_extent=null[:, 1],
+        null_max_mass=null[:, 2],
+        null_max_tfce=null[:, 3] if use_tfce else None,
+    )
