@@ -195,6 +195,19 @@ _STRUCTURES: tuple[tuple[str, str, str | None, bool, str], ...] = (
     ("Th", "thalamus", None, True, "#5a7d8c"),
     ("IC", "inferior colliculus", None, True, "#a64d79"),
     ("V", "ventricles", None, False, "#d0d0d0"),
+    # Structures that fill the rest of the brain mask, so that the atlas labels (almost)
+    # every analysed voxel. They come after the structures above, so the indices of those
+    # stay as they were, and they only take voxels that no structure above holds.
+    ("CtxO", "other isocortex", "Ctx", True, "#9fb8cf"),
+    ("Pir", "piriform area", "Ctx", True, "#6f8fb0"),
+    ("OB", "olfactory bulb", None, True, "#e3b96b"),
+    ("fib", "fibre tracts", None, True, "#bdbdbd"),
+    ("BS", "brainstem", None, True, "#9e6a8c"),
+    ("MB", "midbrain", "BS", True, "#b98aa8"),
+    ("PM", "pons and medulla", "BS", True, "#7d4e6d"),
+    ("Cb", "cerebellum", None, True, "#6a9e6a"),
+    ("Hy", "hypothalamus", None, True, "#c98f5a"),
+    ("GMO", "other grey matter", None, True, "#a8a08a"),
 )
 
 # Cortical leaves of the right hemisphere: (abbreviation, y range mm, angle range degrees),
@@ -223,6 +236,18 @@ _DEEP_ELLIPSOIDS: tuple[tuple[str, tuple[float, float, float], tuple[float, floa
 _LATERAL_VENTRICLE = ((1.1, 0.4, 1.0), (0.25, 1.1, 0.3))
 _THIRD_VENTRICLE_Y = (-1.8, 0.2)
 _THIRD_VENTRICLE_Z = (-1.2, 0.4)
+
+# The filling structures (invented, placed as in a mouse brain without its details):
+# the olfactory bulb is the brain anterior of the cortex (y >= CORTEX_Y_MM[1]); behind the
+# cortex (y <= CORTEX_Y_MM[0]) lie the cerebellum (dorsal) and the pons and medulla
+# (ventral of _HINDBRAIN_TOP_Z_MM); the midbrain is the deep brain of the y range below;
+# the hypothalamus is a ventral band near the midline; the piriform area the ventral-
+# lateral surface below the cortex; the fibre tracts the sheet beneath the cortex.
+_HINDBRAIN_TOP_Z_MM = -0.6
+_MIDBRAIN_Y_MM = (-3.3, -2.2)
+_HYPOTHALAMUS_Y_MM = (-1.8, 0.6)
+_HYPOTHALAMUS_HALF_WIDTH_MM = 1.0
+_HYPOTHALAMUS_TOP_Z_MM = -1.2
 
 # Template intensities (arbitrary units) per tissue class.
 _INTENSITY = {
@@ -476,7 +501,33 @@ def make_anatomy() -> Anatomy:
             shape = _ellipsoid(coords, (sign * centre[0], centre[1], centre[2]), semi)
             assign(shape & side & ~cortex, idx(abbreviation, hemisphere))
 
+    # The template's tissue classes follow the structures above only.
     template = _template(coords, mask, depth_mm, cortex, atlas, table)
+
+    # Fill the rest of the mask, so that the labels cover the whole brain.
+    white = _white_matter(coords, mask, depth_mm, cortex)
+    surface = mask & (depth_mm <= CORTEX_DEPTH_MM)
+    for hemisphere, side in (("left", x < 0.0), ("right", x > 0.0)):
+        inside = mask & side
+        assign(inside & (y >= CORTEX_Y_MM[1]), idx("OB", hemisphere))
+        behind = inside & (y <= CORTEX_Y_MM[0])
+        assign(behind & (z > _HINDBRAIN_TOP_Z_MM), idx("Cb", hemisphere))
+        assign(behind, idx("PM", hemisphere))
+        assign(white & side, idx("fib", hemisphere))
+        assign(cortex & side, idx("CtxO", hemisphere))
+        hypothalamus = (
+            inside
+            & (y >= _HYPOTHALAMUS_Y_MM[0])
+            & (y <= _HYPOTHALAMUS_Y_MM[1])
+            & (np.abs(x) < _HYPOTHALAMUS_HALF_WIDTH_MM)
+            & (z < _HYPOTHALAMUS_TOP_Z_MM)
+        )
+        assign(hypothalamus, idx("Hy", hemisphere))
+        assign(surface & side & (z <= CORTEX_MIN_Z_MM), idx("Pir", hemisphere))
+        midbrain = inside & (y > _MIDBRAIN_Y_MM[0]) & (y < _MIDBRAIN_Y_MM[1])
+        assign(midbrain, idx("MB", hemisphere))
+        assign(inside, idx("GMO", hemisphere))
+
     return Anatomy(
         affine=affine,
         template=template,
@@ -498,6 +549,20 @@ def _third_ventricle(coords: np.ndarray) -> np.ndarray:
     )
 
 
+def _white_matter(
+    coords: np.ndarray, mask: np.ndarray, depth_mm: np.ndarray, cortex: np.ndarray
+) -> np.ndarray:
+    """The white-matter sheet beneath the cortex."""
+    return (
+        mask
+        & ~cortex
+        & (depth_mm <= CORTEX_DEPTH_MM + _WHITE_MATTER_MM)
+        & (coords[2] > CORTEX_MIN_Z_MM)
+        & (coords[1] > CORTEX_Y_MM[0])
+        & (coords[1] < CORTEX_Y_MM[1])
+    )
+
+
 def _template(
     coords: np.ndarray,
     mask: np.ndarray,
@@ -512,14 +577,7 @@ def _template(
     mid = CORTEX_DEPTH_MM / 2.0
     layer = 1.0 - 0.08 * ((depth_mm - mid) / mid) ** 2
     image = np.where(cortex, _INTENSITY["cortex"] * layer, image)
-    white = (
-        mask
-        & ~cortex
-        & (depth_mm <= CORTEX_DEPTH_MM + _WHITE_MATTER_MM)
-        & (z > CORTEX_MIN_Z_MM)
-        & (coords[1] > CORTEX_Y_MM[0])
-        & (coords[1] < CORTEX_Y_MM[1])
-    )
+    white = _white_matter(coords, mask, depth_mm, cortex)
     image = np.where(white & (atlas == 0), _INTENSITY["white"], image)
     abbreviation_of = dict(zip(table["index"], table["abbreviation"], strict=True))
     for index, abbreviation in abbreviation_of.items():

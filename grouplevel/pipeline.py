@@ -262,11 +262,17 @@ def _fit_first_level(
         estimate_run_variance=settings.model.run_variance == "estimate",
         max_iter=settings.model.max_iter,
     )
-    not_converged = int((~fit.converged).sum())
+    unfittable = np.isnan(fit.beta).any(axis=1)
+    not_converged = int((~fit.converged & ~unfittable).sum())
     if not_converged:
         warnings.append(
             f"{label}: the REML fit reached the iteration limit ({settings.model.max_iter}) "
             f"at {not_converged} voxel(s); their estimates are the last iterate"
+        )
+    if unfittable.any():
+        warnings.append(
+            f"{label}: {int(unfittable.sum())} voxel(s) could not be fitted (too few runs "
+            "with data there, or a design without rank on those runs); their maps are 0"
         )
     present = np.isfinite(y)
     smooth = _smoothness(y, s2, fit, design.matrix, mask, study.grid)
@@ -416,13 +422,20 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
     return entry
 
 
+def _unfitted_as_null(key: str, values: np.ndarray) -> np.ndarray:
+    """Unfittable voxels hold NaN: written as p = 1 in p-type maps (0 elsewhere)."""
+    if key in ("p", "q") or key.startswith("p_"):
+        return np.where(np.isnan(values), 1.0, values)
+    return values
+
+
 def _write_inference(folder: Path, gm: GroupMap, label: str) -> None:
     """Corrected maps, cluster labels and the permutation null of the maxima."""
     grid = gm.grid
     inf = gm.inference
     write_map(
         folder / "q.nii.gz",
-        inf.q,
+        _unfitted_as_null("q", inf.q),
         gm.mask,
         grid,
         f"grouplevel FDR q ({inf.fdr.method}, {inf.sided}) [{label}]",
@@ -565,7 +578,7 @@ def write_outputs(
             for key, what in MAP_DESCRIPTIONS.items():
                 write_map(
                     folder / f"{key}.nii.gz",
-                    getattr(gm, key),
+                    _unfitted_as_null(key, getattr(gm, key)),
                     gm.mask,
                     grid,
                     f"grouplevel {what} [{label}]",

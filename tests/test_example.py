@@ -247,7 +247,11 @@ def test_atlas_table_and_hierarchy(study: pathlib.Path, labels: pd.DataFrame) ->
     for name, group in labels.groupby("name"):
         sides = sorted(group["hemisphere"])
         assert sides in (["left", "right"], ["both"]), name
-    assert 18 <= len(in_image) <= 26  # "about 20 regions"
+    # 21 leaves with effects and landmarks plus 18 that fill the rest of the brain
+    assert len(in_image) == 39
+    # the labels cover the whole brain mask (read_atlas refuses an atlas below 50 %)
+    mask = _load(study / "brain_mask.nii.gz") > 0
+    assert np.all(image[mask] > 0) and np.all(image[~mask] == 0)
     # the chain cortex → auditory cortex → primary auditory area exists
     by_index = labels.set_index(labels["index"].astype(int))
     a1 = int(

@@ -62,9 +62,15 @@ SIDES = ("two", "positive", "negative")
 # interpolation error is below 1e-4 in z, far below what a threshold needs).
 _TZ_POINTS = 4001
 _TZ_MAX_T = 1e8
+_MAX_DF_TABLES = 64
 # Smallest positive first-level + run variance allowed when building precisions; a zero
 # total variance would give an infinite precision (one run per animal, no s²).
 _VARIANCE_FLOOR = 1e-12
+# Where σ² is folded into τ² (no animal with two runs) and a run has no first-level
+# variance, its sampling variance is floored at this share of the voxel's total variance
+# τ̂² + σ̂², which keeps the floor relative to the data's scale (our own choice: far below
+# any variance that changes a t statistic in its leading digits).
+_FOLDED_FLOOR_SHARE = 1e-10
 
 
 @dataclass(frozen=True)
@@ -80,7 +86,8 @@ class AnimalLevelData:
     design
         (m, p) the animal-level design (one row per animal).
     var_animal
-        (V,) the REML τ̂² of the unpermuted fit (start of every refit).
+        (V,) the REML τ̂² of the unpermuted fit (start of every refit); τ̂² + σ̂² where
+        no animal has two runs with data (σ² is not identified apart from τ² there).
     """
 
     mean: np.ndarray
@@ -126,12 +133,29 @@ def animal_level_data(
             "permutations = 0 for parametric inference, or use animal-level covariates."
         )
     present = np.isfinite(y)
+    if variance is not None:
+        present &= np.isfinite(variance)
     s2 = np.zeros_like(y) if variance is None else np.where(present, variance, 0.0)
-    d = np.maximum(var_run[None, :] + s2, _VARIANCE_FLOOR)
-    w = np.where(present, 1.0 / d, 0.0)
-    wy = np.where(present, w * np.nan_to_num(y), 0.0)
     indicator = np.zeros((m, len(animal)))
     indicator[animal, np.arange(len(animal))] = 1.0
+    # σ² is told apart from τ² only by runs of one animal. Where no animal has two runs
+    # with data, both add the same amount to every animal's variance, so only their sum
+    # is identified, and the split chosen by the fit is arbitrary. Holding that σ̂² fixed
+    # would then bound every permuted variance from below by it; put the whole sum into
+    # τ² instead, which the refit re-estimates (with one run per animal and no first-level
+    # variances the refit then is the ordinary one-sample t of the animals).
+    var_run = np.asarray(var_run, dtype=float)
+    var_animal = np.asarray(var_animal, dtype=float)
+    within = ((indicator @ present) >= 2).any(axis=0)
+    total = var_run + var_animal
+    var_run = np.where(within, var_run, 0.0)
+    var_animal = np.where(within, var_animal, total)
+    floor = np.where(
+        within, _VARIANCE_FLOOR, np.maximum(_VARIANCE_FLOOR, _FOLDED_FLOOR_SHARE * total)
+    )
+    d = np.maximum(var_run[None, :] + s2, floor[None, :])
+    w = np.where(present, 1.0 / d, 0.0)
+    wy = np.where(present, w * np.nan_to_num(y), 0.0)
     prec = indicator @ w  # (m, V)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(prec > 0, (indicator @ wy) / prec, 0.0)
@@ -139,27 +163,26 @@ def animal_level_data(
         mean=np.ascontiguousarray(mean.T),
         precision=np.ascontiguousarray(prec.T),
         design=Xa,
-        var_animal=np.asarray(var_animal, dtype=float),
+        var_animal=var_animal,
     )
 
 
 def partition_design(design: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Split a design into the regressor of interest and nuisance for contrast ``c``.
 
-    Returns ``(x_interest (m,), nuisance (m, p-1))`` spanning the same space as
-    ``design``, such that the contrast ``cᵀβ`` is the coefficient of ``x_interest``
-    (Winkler et al. 2014, Appendix A).
+    Returns ``(x_interest (m,), nuisance (m, p-1))`` with ``[x_interest, nuisance] =
+    design · A⁻¹``, where the first row of ``A`` is ``cᵀ`` and the others span the null
+    space of ``cᵀ``. The new design spans the same space, the coefficient of
+    ``x_interest`` is ``cᵀβ``, and under the null hypothesis ``cᵀβ = 0`` the model is the
+    nuisance alone — the reduced model of Freedman–Lane (Winkler et al. 2014, §
+    "Permutation strategies"; reparametrisation of the kind in their Appendix A).
+    For ``c`` on the intercept, ``x_interest`` is the constant column.
     """
     c = np.asarray(c, dtype=float).reshape(-1)
-    Q = np.linalg.pinv(design.T @ design)
-    x_i = design @ Q @ c / (c @ Q @ c)
-    # nuisance: the design's space orthogonal to c in the Q metric
-    u, s, vt = np.linalg.svd(c[None, :])
-    cc = vt[1:].T  # (p, p-1) basis of the null space of cᵀ
-    if cc.size == 0:
-        return x_i, np.zeros((design.shape[0], 0))
-    Z = design @ Q @ cc @ np.linalg.pinv(cc.T @ Q @ cc)
-    return x_i, Z
+    _, _, vt = np.linalg.svd(c[None, :])
+    A = np.vstack([c[None, :], vt[1:]])  # rows: cᵀ, then an orthonormal basis ⟂ c
+    new = design @ np.linalg.inv(A)
+    return new[:, 0], new[:, 1:]
 
 
 @dataclass(frozen=True)
@@ -279,9 +302,17 @@ def _distinct_orders(cls: np.ndarray) -> np.ndarray:
 
 
 class _TtoZ:
-    """t → z (equal p) for voxels whose df may differ, by interpolation per df value."""
+    """t → z (equal p) for voxels whose df may differ, by interpolation per df value.
+
+    Non-integer df (Satterthwaite) are rounded to 0.01 when there are many distinct
+    values, so the number of tables stays small; the change in z is about 1e-3 for
+    df ≥ 2.
+    """
 
     def __init__(self, df: np.ndarray) -> None:
+        df = np.asarray(df, dtype=float)
+        if np.unique(df).size > _MAX_DF_TABLES:
+            df = np.maximum(np.round(df, 2), 0.01)
         self.df = df
         self.values, self.index = np.unique(df, return_inverse=True)
         self.index = self.index.reshape(-1)
@@ -296,11 +327,14 @@ class _TtoZ:
             z = np.where(np.isfinite(z), z, np.sqrt(-2.0 * logp))
             self.tables.append(np.maximum(z, 0.0))
 
+        order = np.argsort(self.index, kind="stable")
+        bounds = np.searchsorted(self.index[order], np.arange(len(self.values) + 1))
+        self.groups = [order[bounds[k] : bounds[k + 1]] for k in range(len(self.values))]
+
     def __call__(self, t: np.ndarray) -> np.ndarray:
         u = np.arcsinh(np.abs(t))
         z = np.empty_like(t)
-        for k, table in enumerate(self.tables):
-            sel = self.index == k
+        for sel, table in zip(self.groups, self.tables, strict=True):
             z[sel] = np.interp(u[sel], self.u, table)
         return np.sign(t) * z
 
