@@ -36,6 +36,14 @@ DEFAULT_TFCE_E = 0.5  # Smith & Nichols 2009, NeuroImage 44:83
 DEFAULT_TFCE_H = 2.0  # Smith & Nichols 2009
 DEFAULT_MAX_ITER = 100  # Fisher scoring iterations per voxel; REML converges in ~5-15
 DEFAULT_ORIGIN_NAME = "origin"
+# Share of the analysis mask that the atlas must label (our own choice: below half, most
+# clusters would be "unlabelled" and region tables would miss much of the brain).
+DEFAULT_ATLAS_MIN_COVERAGE = 0.5
+# Sub-peaks of a cluster at least this far apart (1 mm: about five 0.2 mm voxels, a
+# rodent-scale analogue of the 8 mm used for human data; common practice).
+DEFAULT_SUBPEAK_DISTANCE_MM = 1.0
+DEFAULT_TOP_REGIONS = 3  # regions listed per cluster in clusters.tsv
+CLUSTER_METHODS = ("tfce", "cluster_mass", "cluster_extent", "voxel", "fdr")
 
 RUN_VARIANCE_CHOICES = ("estimate", "known")
 SIDED_CHOICES = ("two", "positive", "negative")
@@ -63,6 +71,23 @@ class SpaceSettings:
 class AtlasSettings:
     image: Path
     labels: Path
+    midline_mm: float | None = None
+    min_coverage: float = DEFAULT_ATLAS_MIN_COVERAGE
+
+
+@dataclass(frozen=True)
+class ClusterSettings:
+    method: str | None = None  # None: "tfce" with permutations and TFCE, else see below
+    subpeak_distance_mm: float = DEFAULT_SUBPEAK_DISTANCE_MM
+    top_regions: int = DEFAULT_TOP_REGIONS
+
+    def resolved_method(self, inference: InferenceSettings) -> str:
+        """The method that decides which clusters are reported as significant."""
+        if self.method is not None:
+            return self.method
+        if inference.permutations == 0:
+            return "fdr"
+        return "tfce" if inference.tfce else "cluster_mass"
 
 
 @dataclass(frozen=True)
@@ -104,6 +129,7 @@ class Settings:
     contrasts: tuple[ContrastSpec, ...]
     inference: InferenceSettings
     atlas: AtlasSettings | None = None
+    clusters: ClusterSettings = field(default_factory=ClusterSettings)
     user_contrasts: bool = field(default=False)
 
     def to_dict(self) -> dict[str, Any]:
@@ -126,7 +152,8 @@ class Settings:
 _SCHEMA: dict[str, tuple[str, ...]] = {
     "study": ("title", "table", "template", "mask", "min_coverage"),
     "space": ("origin_mm", "origin_name"),
-    "atlas": ("image", "labels"),
+    "atlas": ("image", "labels", "midline_mm", "min_coverage"),
+    "clusters": ("method", "subpeak_distance_mm", "top_regions"),
     "model": ("formula", "run_variance", "df", "max_iter"),
     "contrast": ("name", "weights"),
     "inference": (
@@ -281,8 +308,14 @@ def load_settings(path: str | Path) -> Settings:
         a = section("atlas")
         image = r.path("atlas", a, "image", required=True)
         labels = r.path("atlas", a, "labels", required=True)
+        midline = r.get("atlas", a, "midline_mm", float, None)
+        atlas_cov = r.get("atlas", a, "min_coverage", float, DEFAULT_ATLAS_MIN_COVERAGE)
+        if not 0.0 < atlas_cov <= 1.0:
+            r.problem("[atlas] min_coverage", f"must be in (0, 1], got {atlas_cov}")
         if image is not None and labels is not None:
-            atlas = AtlasSettings(image=image, labels=labels)
+            atlas = AtlasSettings(
+                image=image, labels=labels, midline_mm=midline, min_coverage=atlas_cov
+            )
 
     m = section("model")
     run_variance = r.get("model", m, "run_variance", str, DEFAULT_RUN_VARIANCE)
@@ -388,6 +421,29 @@ def load_settings(path: str | Path) -> Settings:
         tfce_h=tfce_h,
     )
 
+    cl = section("clusters")
+    method = r.get("clusters", cl, "method", str, None)
+    if method is not None and method not in CLUSTER_METHODS:
+        r.problem(
+            "[clusters] method",
+            f"must be one of {', '.join(CLUSTER_METHODS)}, got {method!r}"
+            + _suggest(method, CLUSTER_METHODS),
+        )
+    elif method is not None and method != "fdr" and permutations == 0:
+        r.problem(
+            "[clusters] method",
+            f'{method!r} needs permutations; set [inference] permutations > 0 or use "fdr"',
+        )
+    elif method == "tfce" and not inference.tfce:
+        r.problem("[clusters] method", '"tfce" needs [inference] tfce = true')
+    subpeak = r.get("clusters", cl, "subpeak_distance_mm", float, DEFAULT_SUBPEAK_DISTANCE_MM)
+    if subpeak <= 0:
+        r.problem("[clusters] subpeak_distance_mm", f"must be positive, got {subpeak}")
+    top = r.get("clusters", cl, "top_regions", int, DEFAULT_TOP_REGIONS)
+    if top < 1:
+        r.problem("[clusters] top_regions", f"must be at least 1, got {top}")
+    clusters = ClusterSettings(method=method, subpeak_distance_mm=subpeak, top_regions=top)
+
     if r.problems:
         raise UserError(f"{path}: {len(r.problems)} problem(s) in the study file", r.problems)
     return Settings(
@@ -398,6 +454,7 @@ def load_settings(path: str | Path) -> Settings:
         contrasts=tuple(contrasts),
         inference=inference,
         atlas=atlas,
+        clusters=clusters,
         user_contrasts=user_contrasts,
     )
 

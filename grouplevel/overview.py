@@ -7,18 +7,8 @@ from importlib import resources
 import jinja2
 import numpy as np
 
+from grouplevel.coordinates import describe_orientation
 from grouplevel.study import Study
-
-# RAS+ axis codes to the rodent words of the trade (common practice): x runs
-# left-right (medial-lateral), y posterior-anterior, z ventral-dorsal (inferior-superior).
-_AXIS_WORDS = {
-    "R": "left→right",
-    "L": "right→left",
-    "A": "posterior→anterior",
-    "P": "anterior→posterior",
-    "S": "ventral→dorsal",
-    "I": "dorsal→ventral",
-}
 
 
 def _environment() -> jinja2.Environment:
@@ -70,16 +60,30 @@ def study_overview(study: Study) -> str:
         "se": "first-level standard-error maps (squared on load)",
         "none": "none given (the model estimates all run-level variance)",
     }[kind]
+    atlas = None
+    if study.atlas is not None:
+        a = study.atlas
+        atlas = {
+            "n_regions": len(a.regions),
+            "n_leaves": int(a.regions["is_leaf"].sum()),
+            "resampling": a.resampling,
+            "coverage": a.coverage,
+            "orientation": a.orientation,
+            "midline_mm": a.midline_mm,
+            "midline_source": a.midline_source,
+            "mirror_dice": a.mirror_dice,
+        }
     return (
         _environment()
         .get_template("check_summary.txt.j2")
         .render(
+            atlas=atlas,
             title=s.study.title,
             source=s.source,
             table=s.study.table,
             grid=grid,
             voxel_size=[f"{v:.4g}" for v in grid.voxel_size],
-            orientation_words=", ".join(_AXIS_WORDS[c] for c in grid.orientation),
+            orientation=describe_orientation(grid.affine),
             mask_voxels=None if mask is None else int(mask.sum()),
             mask_volume=None if mask is None else float(np.sum(mask) * grid.voxel_volume),
             origin_name=s.space.origin_name,

@@ -13,7 +13,7 @@ import os
 import shutil
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -38,6 +38,7 @@ from grouplevel.model import (
     test_contrast,
 )
 from grouplevel.study import FirstLevel, Study, load_runs, load_study
+from grouplevel.tables import RegionTables, region_data, region_tables
 
 # maps written for every group contrast: file stem -> header description
 MAP_DESCRIPTIONS = {
@@ -116,6 +117,7 @@ class GroupMap:
     n_animals: int
     n_runs: int
     inference: Corrected
+    tables: RegionTables | None = None  # with an atlas: clusters, regions, animals
 
     def volume(self, key: str) -> np.ndarray:
         """A per-voxel quantity as a full 3-D array (0 outside the mask).
@@ -281,6 +283,16 @@ def _fit_first_level(
         animal_data = animal_level_data(
             y, s2, design.matrix, design.animal, fit.var_run, fit.var_animal, design.columns
         )
+    regions = None
+    if study.atlas is not None:
+        regions = region_data(
+            study.atlas,
+            study.atlas_mask,
+            mask,
+            y,
+            s2,
+            settings.model.run_variance == "estimate",
+        )
     results = []
     for cname, c in fl.contrasts:
         if settings.model.df == "satterthwaite":
@@ -294,30 +306,31 @@ def _fit_first_level(
         df_full = np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy()
         corrected = _correct(study, c, res.t, df_full, animal_data, smooth, mask, name, quiet)
         warnings.extend(corrected.warnings)
-        results.append(
-            GroupMap(
-                name=name,
-                first_level=fl.name,
-                contrast=cname,
-                weights=dict(spec.weights),
-                grid=study.grid,
-                mask=mask,
-                effect=res.effect,
-                se=res.se,
-                t=res.t,
-                df=df_full,
-                z=res.z,
-                p=res.p,
-                var_animal=fit.var_animal,
-                var_run=fit.var_run,
-                coverage_runs=fl.coverage_runs,
-                coverage_animals=fl.coverage_animals,
-                not_converged=not_converged,
-                n_animals=design.n_animals,
-                n_runs=len(fl.runs),
-                inference=corrected,
-            )
+        gm = GroupMap(
+            name=name,
+            first_level=fl.name,
+            contrast=cname,
+            weights=dict(spec.weights),
+            grid=study.grid,
+            mask=mask,
+            effect=res.effect,
+            se=res.se,
+            t=res.t,
+            df=df_full,
+            z=res.z,
+            p=res.p,
+            var_animal=fit.var_animal,
+            var_run=fit.var_run,
+            coverage_runs=fl.coverage_runs,
+            coverage_animals=fl.coverage_animals,
+            not_converged=not_converged,
+            n_animals=design.n_animals,
+            n_runs=len(fl.runs),
+            inference=corrected,
         )
+        if regions is not None:
+            gm = replace(gm, tables=region_tables(gm, regions, design, c, settings))
+        results.append(gm)
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings
 
@@ -377,6 +390,22 @@ def _inputs(study: Study) -> list[dict[str, str]]:
     return out
 
 
+def _atlas_summary(study: Study) -> dict | None:
+    atlas = study.atlas
+    if atlas is None:
+        return None
+    return {
+        "regions": len(atlas.regions),
+        "labelled_regions": int(atlas.regions["is_leaf"].sum()),
+        "resampling": atlas.resampling,
+        "coverage_of_mask": round(float(atlas.coverage), 4),
+        "midline_mm": float(atlas.midline_mm),
+        "midline_source": atlas.midline_source,
+        "mirror_dice": round(float(atlas.mirror_dice), 4),
+        "orientation": atlas.orientation,
+    }
+
+
 def _result_summary(study: Study, gm: GroupMap) -> dict:
     fl = next(f for f in study.first_levels if f.name == gm.first_level)
     runs_per_animal = fl.runs.groupby("animal", sort=False).size()
@@ -410,6 +439,16 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
         "inference": _inference_summary(gm, study.settings.inference.alpha),
     }
+    if gm.tables is not None:
+        regions = gm.tables.regions
+        entry["clusters"] = {
+            "method": gm.tables.method,
+            "significant_clusters": gm.tables.n_significant_clusters,
+        }
+        entry["regions"] = {
+            "tested": int(regions["p"].notna().sum()),
+            "fdr_significant": int(regions["fdr_significant"].fillna(False).astype(bool).sum()),
+        }
     if peak is not None:
         ijk = np.argwhere(gm.mask)[peak]
         xyz = study.grid.affine[:3, :3] @ ijk + study.grid.affine[:3, 3]
@@ -427,6 +466,45 @@ def _unfitted_as_null(key: str, values: np.ndarray) -> np.ndarray:
     if key in ("p", "q") or key.startswith("p_"):
         return np.where(np.isnan(values), 1.0, values)
     return values
+
+
+def _write_group_map(folder: Path, gm: GroupMap) -> None:
+    """Every map and table of one group contrast into its own folder."""
+    folder.mkdir()
+    grid = gm.grid
+    label = f"{gm.first_level or ''} {gm.contrast}".strip()
+    for key, what in MAP_DESCRIPTIONS.items():
+        write_map(
+            folder / f"{key}.nii.gz",
+            _unfitted_as_null(key, getattr(gm, key)),
+            gm.mask,
+            grid,
+            f"grouplevel {what} [{label}]",
+        )
+    full = np.ones(grid.shape, dtype=bool)
+    for stem, values, what, dtype in (
+        ("coverage", gm.coverage_runs, "runs with data", np.int16),
+        ("coverage_animals", gm.coverage_animals, "animals with data", np.int16),
+        ("mask", gm.mask.astype(np.uint8), "analysis mask", np.uint8),
+    ):
+        write_map(
+            folder / f"{stem}.nii.gz",
+            values,
+            full,
+            grid,
+            f"grouplevel {what} [{label}]",
+            dtype=dtype,
+        )
+    _write_inference(folder, gm, label)
+    if gm.tables is not None:
+        for stem, frame in (
+            ("clusters", gm.tables.clusters),
+            ("regions", gm.tables.regions),
+            ("animals", gm.tables.animals),
+        ):
+            frame.to_csv(
+                folder / f"{stem}.tsv", sep="\t", index=False, float_format="%.6g", na_rep="n/a"
+            )
 
 
 def _write_inference(folder: Path, gm: GroupMap, label: str) -> None:
@@ -572,42 +650,7 @@ def write_outputs(
     try:
         grid = study.grid
         for gm in maps:
-            folder = tmp / gm.name
-            folder.mkdir()
-            label = f"{gm.first_level or ''} {gm.contrast}".strip()
-            for key, what in MAP_DESCRIPTIONS.items():
-                write_map(
-                    folder / f"{key}.nii.gz",
-                    _unfitted_as_null(key, getattr(gm, key)),
-                    gm.mask,
-                    grid,
-                    f"grouplevel {what} [{label}]",
-                )
-            full = np.ones(grid.shape, dtype=bool)
-            write_map(
-                folder / "coverage.nii.gz",
-                gm.coverage_runs,
-                full,
-                grid,
-                f"grouplevel runs with data [{label}]",
-                dtype=np.int16,
-            )
-            write_map(
-                folder / "coverage_animals.nii.gz",
-                gm.coverage_animals,
-                full,
-                grid,
-                f"grouplevel animals with data [{label}]",
-                dtype=np.int16,
-            )
-            write_map(
-                folder / "mask.nii.gz",
-                gm.mask.astype(np.uint8),
-                full,
-                grid,
-                f"grouplevel analysis mask [{label}]",
-                dtype=np.uint8,
-            )
+            _write_group_map(tmp / gm.name, gm)
         summary = {
             "tool": {"name": "grouplevel", "version": __version__},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
@@ -620,6 +663,7 @@ def write_outputs(
                 "orientation": grid.orientation,
                 "affine": grid.affine.tolist(),
             },
+            "atlas": _atlas_summary(study),
             "results": {gm.name: _result_summary(study, gm) for gm in maps},
             "warnings": list(study.warnings) + list(warnings or []),
         }

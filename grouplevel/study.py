@@ -21,6 +21,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from grouplevel.atlas import Atlas, read_atlas
 from grouplevel.config import Settings, load_settings, with_overrides
 from grouplevel.design import (
     Design,
@@ -83,6 +84,16 @@ class Study:
     first_levels: tuple[FirstLevel, ...]
     user_mask: np.ndarray | None
     warnings: tuple[str, ...] = field(default=())
+    atlas: Atlas | None = None  # on the study grid; its shares cover ``atlas_mask``
+
+    @property
+    def atlas_mask(self) -> np.ndarray | None:
+        """The mask whose voxels are the rows of ``atlas.shares`` (C order)."""
+        if self.atlas is None:
+            return None
+        if self.user_mask is not None:
+            return self.user_mask
+        return np.logical_or.reduce([fl.mask for fl in self.first_levels])
 
     @property
     def table_path(self) -> Path:
@@ -244,11 +255,10 @@ def inspect_study(settings: Settings) -> Study:
         if p is not None:
             files[str(p)] = key
     if settings.atlas is not None:
-        files[str(settings.atlas.image)] = "[atlas] image"
-        if not settings.atlas.labels.is_file():
-            problems.append(
-                f"{settings.atlas.labels}: atlas label table not found ([atlas] labels)"
-            )
+        # the atlas may live on another (finer or coarser) grid: read_atlas checks it
+        for key, p in (("image", settings.atlas.image), ("labels", settings.atlas.labels)):
+            if not p.is_file():
+                problems.append(f"{p}: atlas {key} not found ([atlas] {key})")
     included = table[~table["exclude"]]
     for _, row in included.iterrows():
         for col in ("effect", "variance", "se"):
@@ -444,6 +454,27 @@ def inspect_study(settings: Settings) -> Study:
             "header may carry the ×10 scaling some labs use for rodent images. Volumes and "
             "coordinates in the outputs will be in the header's units."
         )
+    atlas = None
+    if settings.atlas is not None and first_levels and not problems:
+        atlas_mask = (
+            user_mask
+            if user_mask is not None
+            else np.logical_or.reduce([fl.mask for fl in first_levels])
+        )
+        try:
+            atlas = read_atlas(
+                settings.atlas.image,
+                settings.atlas.labels,
+                grid,
+                atlas_mask,
+                midline_mm=settings.atlas.midline_mm,
+                min_coverage=settings.atlas.min_coverage,
+            )
+        except UserError as exc:
+            problems.append(str(exc))
+            problems.extend(exc.problems)
+        else:
+            warnings.extend(atlas.warnings)
     if problems:
         raise UserError(f"{path}: {len(problems)} problem(s) in the study", problems)
     return Study(
@@ -453,6 +484,7 @@ def inspect_study(settings: Settings) -> Study:
         first_levels=tuple(first_levels),
         user_mask=user_mask,
         warnings=tuple(warnings),
+        atlas=atlas,
     )
 
 

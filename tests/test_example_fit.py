@@ -71,3 +71,22 @@ def test_excluded_runs_are_not_fitted(fitted):
     excluded = {(r["animal"], int(r["run"])) for _, r in fl.excluded.iterrows()}
     assert excluded == {(r["animal"], int(r["run"])) for r in truth["excluded_runs"]["runs"]}
     assert len(fl.runs) + len(fl.excluded) == sum(truth["runs_per_animal"].values())
+
+
+def test_region_tables_name_the_auditory_clusters(fitted):
+    # Without permutations the clusters are the connected groups of FDR survivors.
+    maps, _, _, _, _ = fitted
+    tables = maps["sound"].tables
+    assert tables is not None and tables.method == "fdr"
+    main = tables.clusters[tables.clusters["peak"] == 1]
+    labelled = set(zip(main["peak_region"], main["peak_region_hemisphere"], strict=True))
+    assert ("primary auditory area", "left") in labelled
+    assert ("primary auditory area", "right") in labelled
+    regions = tables.regions.set_index(["name", "hemisphere"])
+    for hemisphere in ("left", "right"):
+        row = regions.loc[("primary auditory area", hemisphere)]
+        assert row["q"] < 0.05 and row["ci_low"] > 0
+    assert set(tables.animals["animal"]) == {f"m{i:02d}" for i in range(1, 11)}
+    paw = maps["paw"].tables.clusters
+    top = paw[paw["peak"] == 1].sort_values("z", ascending=False).iloc[0]
+    assert (top["peak_region"], top["peak_region_hemisphere"]) == ("forelimb area", "right")

@@ -1,0 +1,255 @@
+"""Time the permutation engine against nilearn's permuted_ols on about 100 000 voxels.
+
+A study of 10 animals × 4 runs with first-level variances on an ellipsoid mask of about
+100 000 voxels (smooth noise plus two effect blobs) is fitted once by REML; then, in the
+same process:
+
+* grouplevel: ``permutation_test`` with random sign flips, two-sided, voxel max-stat +
+  cluster extent and mass (cluster-forming p = 0.001, 26-connectivity) + exact TFCE,
+  timed after a warm-up run (numba compilation), with the available cores;
+* nilearn: ``permuted_ols(..., tfce=True, threshold=0.001)`` (OLS sign flips of the 10
+  animal means: max-t, cluster size and mass with 6-connectivity, TFCE by threshold
+  steps), the same number of permutations, with ``n_jobs=1`` and ``n_jobs=2``.
+
+Printed: seconds per permutation of each, their ratio, the projected time of 5000
+permutations, a breakdown of one grouplevel permutation (refit kernel, t → z,
+clusters, TFCE), and the peak resident memory of a fresh process running 200 and 1000
+permutations (it must not grow with the number of permutations).
+
+Run: ``.venv/bin/python benchmarks/bench_inference.py [--permutations N]
+[--nilearn-permutations N] [--skip-memory]``
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import resource
+import subprocess
+import sys
+import time
+
+import numpy as np
+from scipy import ndimage
+
+#: Grid and ellipsoid mask giving about 100 000 in-mask voxels (the size the permutation
+#: engine is expected to meet on a rodent template; as in bench_tfce.py).
+GRID = (66, 66, 50)
+SEMI_AXES = (32.0, 32.0, 24.0)
+N_ANIMALS = 10
+RUNS_PER_ANIMAL = 4
+#: Smoothing of every noise field: FWHM 3 voxels (a typical group-level map).
+SMOOTHING_SIGMA = 3.0 / np.sqrt(8 * np.log(2))
+#: Cluster-forming p (two-sided) for both tools (common practice).
+CLUSTER_FORMING_P = 0.001
+#: Projection target.
+TARGET_PERMUTATIONS = 5000
+#: Targets: ≥ 10× faster per permutation than nilearn, 5000 permutations ≤ 5 minutes.
+TARGET_SPEEDUP = 10.0
+TARGET_SECONDS_5000 = 300.0
+
+
+def make_study(seed: int = 0):
+    """Runs × voxels effects and variances, design, animal codes and the 3-D mask."""
+    rng = np.random.default_rng(seed)
+    centre = (np.array(GRID) - 1) / 2
+    grid = np.indices(GRID) - centre[:, None, None, None]
+    mask = sum((grid[k] / SEMI_AXES[k]) ** 2 for k in range(3)) <= 1.0
+    n = N_ANIMALS * RUNS_PER_ANIMAL
+    animal = np.repeat(np.arange(N_ANIMALS), RUNS_PER_ANIMAL)
+
+    def smooth_fields(k: int) -> np.ndarray:
+        out = np.empty((k, int(mask.sum())))
+        for i in range(k):
+            f = ndimage.gaussian_filter(rng.standard_normal(GRID), SMOOTHING_SIGMA)
+            out[i] = (f / f.std())[mask]
+        return out
+
+    blob = np.zeros(GRID)
+    for sign in (-1, 1):
+        d2 = ((grid[0] - sign * 14) ** 2 + grid[1] ** 2 + (grid[2] - 8) ** 2) / (2 * 4.0**2)
+        blob += np.exp(-d2)
+    effect = 0.8 * blob[mask]
+    u = np.sqrt(0.3) * smooth_fields(N_ANIMALS)
+    s2 = rng.uniform(0.2, 0.5, (n, 1)) * np.ones((1, effect.size))
+    y = effect + u[animal] + np.sqrt(0.1 + s2) * smooth_fields(n)
+    return y, s2, np.ones((n, 1)), animal, mask
+
+
+def prepare(y, s2, X, animal):
+    from grouplevel.inference.permutation import animal_level_data
+    from grouplevel.model import between_animal_df, fit_reml
+
+    start = time.perf_counter()
+    fit = fit_reml(y, s2, X, animal)
+    fit_seconds = time.perf_counter() - start
+    df = between_animal_df(X, animal, np.isfinite(y), [1.0])
+    data = animal_level_data(y, s2, X, animal, fit.var_run, fit.var_animal)
+    return data, df, fit_seconds
+
+
+def run_grouplevel(data, df, mask, n: int, seed: int = 1):
+    from grouplevel.inference.permutation import permutation_test
+
+    return permutation_test(
+        data,
+        np.array([1.0]),
+        df,
+        mask,
+        n_permutations=n,
+        rng=np.random.default_rng(seed),
+        sided="two",
+        cluster_forming_p=CLUSTER_FORMING_P,
+        connectivity=26,
+        use_tfce=True,
+    )
+
+
+def breakdown(data, df, mask, repeats: int = 10) -> dict[str, float]:
+    """Seconds of each step of one permutation (single thread), averaged."""
+    from grouplevel.inference import _refit_kernel, max_cluster_extent_and_mass, tfce
+    from grouplevel.inference.permutation import _TtoZ, cluster_forming_z
+
+    rng = np.random.default_rng(3)
+    V, m = data.mean.shape
+    fitted = np.zeros_like(data.mean)
+    X = np.ones((m, 1))
+    to_z = _TtoZ(np.asarray(df, float))
+    thr = cluster_forming_z(CLUSTER_FORMING_P, "two")
+    out = {"refit kernel": 0.0, "t -> z": 0.0, "clusters": 0.0, "TFCE": 0.0}
+    for _ in range(repeats):
+        sign = rng.choice([-1.0, 1.0], m)
+        t = np.empty(V)
+        start = time.perf_counter()
+        _refit_kernel.refit_t_permuted(
+            fitted,
+            data.mean,
+            data.precision,
+            sign,
+            np.arange(m),
+            X,
+            data.var_animal,
+            t,
+            _refit_kernel.REFIT_MAX_ITER,
+            _refit_kernel.REFIT_TOL,
+        )
+        out["refit kernel"] += time.perf_counter() - start
+        start = time.perf_counter()
+        z = to_z(np.nan_to_num(t))
+        out["t -> z"] += time.perf_counter() - start
+        vol = np.zeros(mask.shape)
+        vol[mask] = z
+        start = time.perf_counter()
+        max_cluster_extent_and_mass(vol, mask, thr, connectivity=26, sided="two")
+        out["clusters"] += time.perf_counter() - start
+        start = time.perf_counter()
+        tfce(vol, mask, connectivity=26, sided="two")
+        out["TFCE"] += time.perf_counter() - start
+    return {k: v / repeats for k, v in out.items()}
+
+
+def run_nilearn(y, animal, mask, n: int, n_jobs: int) -> float:
+    import nibabel as nib
+    from nilearn.maskers import NiftiMasker
+    from nilearn.mass_univariate import permuted_ols
+
+    means = np.stack([y[animal == a].mean(axis=0) for a in range(N_ANIMALS)])
+    masker = NiftiMasker(nib.Nifti1Image(mask.astype(np.int32), np.eye(4))).fit()
+
+    def call(count: int) -> float:
+        start = time.perf_counter()
+        permuted_ols(
+            np.ones((N_ANIMALS, 1)),
+            means,
+            model_intercept=False,
+            n_perm=count,
+            two_sided_test=True,
+            random_state=0,
+            n_jobs=n_jobs,
+            verbose=0,
+            masker=masker,
+            tfce=True,
+            threshold=CLUSTER_FORMING_P,
+        )
+        return time.perf_counter() - start
+
+    # the fixed cost (t and TFCE of the original data) is timed with n_perm = 0 and
+    # taken off, so that only the permutations are counted
+    return (call(n) - call(0)) / n
+
+
+def peak_memory_child(n: int) -> None:
+    """Entry of the memory subprocess: fit, run n permutations, print peak RSS in MiB."""
+    y, s2, X, animal, mask = make_study()
+    data, df, _ = prepare(y, s2, X, animal)
+    del y, s2
+    run_grouplevel(data, df, mask, n)
+    print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--permutations", type=int, default=200)
+    parser.add_argument(
+        "--nilearn-permutations",
+        type=int,
+        default=None,
+        help="permutations for nilearn (default: the same as --permutations)",
+    )
+    parser.add_argument("--skip-memory", action="store_true")
+    parser.add_argument("--memory-child", type=int, default=0, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.memory_child:
+        peak_memory_child(args.memory_child)
+        return
+    n = args.permutations
+    n_nilearn = args.nilearn_permutations or n
+    cores = len(os.sched_getaffinity(0))
+
+    y, s2, X, animal, mask = make_study()
+    print(f"study: {int(mask.sum()):,} in-mask voxels, {N_ANIMALS} animals × {RUNS_PER_ANIMAL}")
+    print(f"runs, first-level variances, two-sided; {cores} cores")
+    data, df, fit_seconds = prepare(y, s2, X, animal)
+    print(f"REML fit (once):                 {fit_seconds:8.2f} s")
+
+    run_grouplevel(data, df, mask, 4)  # warm-up: numba compilation / cache load
+    start = time.perf_counter()
+    res = run_grouplevel(data, df, mask, n)
+    ours = (time.perf_counter() - start) / n
+    assert res.scheme.n == n and not res.scheme.exhaustive
+    print(f"grouplevel, {n} flips:          {ours:8.4f} s per permutation ({cores} threads)")
+    steps = breakdown(data, df, mask)
+    total = sum(steps.values())
+    for name, seconds in steps.items():
+        print(f"  {name:<14s} {seconds:8.4f} s  ({100 * seconds / total:4.1f} % of one thread)")
+
+    nil = {}
+    for jobs in (1, 2):
+        nil[jobs] = run_nilearn(y, animal, mask, n_nilearn, jobs)
+        print(f"nilearn permuted_ols, n_jobs={jobs}: {nil[jobs]:8.4f} s per permutation")
+    for jobs in (1, 2):
+        print(f"speed-up vs nilearn n_jobs={jobs}:  {nil[jobs] / ours:8.1f}×")
+    projected = ours * TARGET_PERMUTATIONS + fit_seconds
+    print(f"projected {TARGET_PERMUTATIONS} permutations: {projected:8.1f} s (fit included)")
+    fast_enough = nil[2] / ours >= TARGET_SPEEDUP
+    in_time = projected <= TARGET_SECONDS_5000
+    print(
+        f"targets: ≥{TARGET_SPEEDUP:.0f}× faster than nilearn n_jobs=2 -> "
+        f"{'met' if fast_enough else 'MISSED'}; {TARGET_PERMUTATIONS} in "
+        f"≤{TARGET_SECONDS_5000:.0f} s -> {'met' if in_time else 'MISSED'}"
+    )
+
+    if not args.skip_memory:
+        for count in (200, 1000):
+            out = subprocess.run(
+                [sys.executable, __file__, "--memory-child", str(count)],
+                capture_output=True,
+                text=True,
+                check=True,
+            )
+            peak = float(out.stdout.strip().splitlines()[-1])
+            print(f"peak memory, {count:5d} permutations: {peak:8.0f} MiB")
+
+
+if __name__ == "__main__":
+    main()
