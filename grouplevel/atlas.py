@@ -66,13 +66,13 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
+from grouplevel.config import DEFAULT_ATLAS_MIN_COVERAGE
 from grouplevel.coordinates import describe_orientation
 from grouplevel.errors import UserError
 from grouplevel.images import AFFINE_TOLERANCE_MM, Grid
 
-#: Smallest share of the analysis mask that the atlas labels must cover. Our own choice:
-#: below one half the atlas is almost surely on another grid or in another space.
-DEFAULT_ATLAS_MIN_COVERAGE = 0.5
+# Smallest share of the analysis mask that the atlas labels must cover (defined with the
+# other defaults in grouplevel.config).
 
 #: A point this close to the midline plane counts as on it (the same tolerance as for
 #: comparing affines: far below a rodent voxel, above float32 round-off of headers).

@@ -36,8 +36,9 @@ DEFAULT_TFCE_E = 0.5  # Smith & Nichols 2009, NeuroImage 44:83
 DEFAULT_TFCE_H = 2.0  # Smith & Nichols 2009
 DEFAULT_MAX_ITER = 100  # Fisher scoring iterations per voxel; REML converges in ~5-15
 DEFAULT_ORIGIN_NAME = "origin"
-# Share of the analysis mask that the atlas must label (our own choice: below half, most
-# clusters would be "unlabelled" and region tables would miss much of the brain).
+# Share of the analysis mask that the atlas must label (our own choice: below one half the
+# atlas is almost surely on another grid or in another space, and most clusters would be
+# "unlabelled").
 DEFAULT_ATLAS_MIN_COVERAGE = 0.5
 # Sub-peaks of a cluster at least this far apart (1 mm: about five 0.2 mm voxels, a
 # rodent-scale analogue of the 8 mm used for human data; common practice).

@@ -280,3 +280,51 @@ def test_nifti_without_data_outside_mask_uses_valid_voxels(tmp_path, capsys):
     assert code == 0 and "analysed     17 voxels" in text
     img = nib.load(str(toml.parent / "maps" / "run000_effect.nii.gz"))
     assert img.shape == (3, 3, 2)
+
+
+def test_cluster_method_needs_permutations(tmp_path, capsys):
+    toml = basic(tmp_path, toml_extra='\n[clusters]\nmethod = "tfce"\n')
+    toml.write_text(toml.read_text() + "\n[inference]\npermutations = 0\n")
+    code, text = check(toml, capsys)
+    assert code == 2 and "needs permutations" in text
+
+
+def test_unknown_cluster_method_suggests(tmp_path, capsys):
+    toml = basic(tmp_path, toml_extra='\n[clusters]\nmethod = "tfec"\n')
+    code, text = check(toml, capsys)
+    assert code == 2 and "did you mean 'tfce'" in text
+
+
+def test_permutations_refused_for_run_level_covariates(tmp_path, capsys):
+    toml = basic(
+        tmp_path, columns={"order": ["1", "2", "1", "2", "1", "2"]}, model='formula = "1 + order"'
+    )
+    code, text = check(toml, capsys)
+    assert code == 2 and "run-level design columns (order)" in text
+    assert "not exchangeable" in text and "permutations = 0" in text
+
+
+def test_atlas_labels_missing_from_table_flow_through_check(tmp_path, capsys):
+    toml = basic(tmp_path, mask=np.ones((3, 3, 2), bool))
+    labels = np.ones((3, 3, 2))
+    labels[0] = 2
+    labels[2] = 7
+    save(toml.parent / "atlas.nii.gz", labels)
+    (toml.parent / "atlas.tsv").write_text("index\tname\themisphere\n1\tcortex\tboth\n")
+    toml.write_text(toml.read_text() + '\n[atlas]\nimage = "atlas.nii.gz"\nlabels = "atlas.tsv"\n')
+    code, text = check(toml, capsys)
+    assert code == 2 and "missing from" in text and "atlas.tsv: 2, 7" in text
+
+
+def test_atlas_overview_in_check(tmp_path, capsys):
+    toml = basic(tmp_path, mask=np.ones((3, 3, 2), bool))
+    labels = np.ones((3, 3, 2))
+    labels[2:] = 2
+    save(toml.parent / "atlas.nii.gz", labels)
+    (toml.parent / "atlas.tsv").write_text(
+        "index\tname\themisphere\n1\tleft part\tleft\n2\tright part\tright\n"
+    )
+    toml.write_text(toml.read_text() + '\n[atlas]\nimage = "atlas.nii.gz"\nlabels = "atlas.tsv"\n')
+    code, text = check(toml, capsys)
+    assert code == 0, text
+    assert "atlas        2 regions" in text and "midline" in text and "Dice" in text
