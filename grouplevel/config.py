@@ -45,6 +45,14 @@ DEFAULT_ATLAS_MIN_COVERAGE = 0.5
 DEFAULT_SUBPEAK_DISTANCE_MM = 1.0
 DEFAULT_TOP_REGIONS = 3  # regions listed per cluster in clusters.tsv
 CLUSTER_METHODS = ("tfce", "cluster_mass", "cluster_extent", "voxel", "fdr")
+# |laterality index| up to this counts as symmetric (±0.2: a common convention for |LI|;
+# value from memory).
+DEFAULT_EQUIVALENCE_MARGIN = 0.2
+DEFAULT_EDGE_DISTANCE_VOXELS = 2  # shell of the mask tested for edge artefacts
+# Runs whose robust z (median/MAD) exceeds this are flagged (Iglewicz & Hoaglin 1993,
+# How to Detect and Handle Outliers; 3.5 — value from memory).
+DEFAULT_OUTLIER_Z = 3.5
+STIMULUS_SIDES = ("left", "right")
 
 RUN_VARIANCE_CHOICES = ("estimate", "known")
 SIDED_CHOICES = ("two", "positive", "negative")
@@ -74,6 +82,18 @@ class AtlasSettings:
     labels: Path
     midline_mm: float | None = None
     min_coverage: float = DEFAULT_ATLAS_MIN_COVERAGE
+
+
+@dataclass(frozen=True)
+class QuestionSettings:
+    """What to ask of a result: symmetry, specificity, consistency and run quality."""
+
+    symmetry: tuple[str, ...] = ()
+    targets: tuple[str, ...] = ()
+    stimulus_side: str | None = None
+    equivalence_margin: float = DEFAULT_EQUIVALENCE_MARGIN
+    edge_distance_voxels: int = DEFAULT_EDGE_DISTANCE_VOXELS
+    outlier_z: float = DEFAULT_OUTLIER_Z
 
 
 @dataclass(frozen=True)
@@ -131,7 +151,16 @@ class Settings:
     inference: InferenceSettings
     atlas: AtlasSettings | None = None
     clusters: ClusterSettings = field(default_factory=ClusterSettings)
+    questions: QuestionSettings = field(default_factory=QuestionSettings)
+    # per first-level contrast overrides of [questions] ([questions.<contrast>])
+    questions_by_contrast: dict[str, QuestionSettings] = field(default_factory=dict)
     user_contrasts: bool = field(default=False)
+
+    def questions_for(self, first_level: str | None) -> QuestionSettings:
+        """The questions of one first-level contrast (its override, else [questions])."""
+        if first_level is not None and first_level in self.questions_by_contrast:
+            return self.questions_by_contrast[first_level]
+        return self.questions
 
     def to_dict(self) -> dict[str, Any]:
         """Plain-JSON form (paths as strings) for summary.json."""
@@ -155,6 +184,14 @@ _SCHEMA: dict[str, tuple[str, ...]] = {
     "space": ("origin_mm", "origin_name"),
     "atlas": ("image", "labels", "midline_mm", "min_coverage"),
     "clusters": ("method", "subpeak_distance_mm", "top_regions"),
+    "questions": (
+        "symmetry",
+        "targets",
+        "stimulus_side",
+        "equivalence_margin",
+        "edge_distance_voxels",
+        "outlier_z",
+    ),
     "model": ("formula", "run_variance", "df", "max_iter"),
     "contrast": ("name", "weights"),
     "inference": (
@@ -445,6 +482,18 @@ def load_settings(path: str | Path) -> Settings:
         r.problem("[clusters] top_regions", f"must be at least 1, got {top}")
     clusters = ClusterSettings(method=method, subpeak_distance_mm=subpeak, top_regions=top)
 
+    q_raw = raw.get("questions", {})
+    overrides: dict[str, QuestionSettings] = {}
+    questions = QuestionSettings()
+    if not isinstance(q_raw, dict):
+        r.problem("[questions]", "must be a table (a [questions] header)")
+    else:
+        base_keys = {k: v for k, v in q_raw.items() if not isinstance(v, dict)}
+        questions = _read_questions(r, "questions", base_keys, QuestionSettings())
+        for name, sub in q_raw.items():
+            if isinstance(sub, dict):
+                overrides[name] = _read_questions(r, f"questions.{name}", sub, questions)
+
     if r.problems:
         raise UserError(f"{path}: {len(r.problems)} problem(s) in the study file", r.problems)
     return Settings(
@@ -456,7 +505,48 @@ def load_settings(path: str | Path) -> Settings:
         inference=inference,
         atlas=atlas,
         clusters=clusters,
+        questions=questions,
+        questions_by_contrast=overrides,
         user_contrasts=user_contrasts,
+    )
+
+
+def _read_questions(
+    r: _Reader, where: str, table: dict[str, Any], base: QuestionSettings
+) -> QuestionSettings:
+    """One [questions] table; keys it omits come from ``base`` (the study-wide table)."""
+    r.check_keys(where, table, _SCHEMA["questions"])
+
+    def names(key: str) -> tuple[str, ...]:
+        value = r.get(where, table, key, list, list(getattr(base, key)))
+        if not all(isinstance(v, str) and v.strip() for v in value):
+            r.problem(f"[{where}] {key}", f"must be a list of region names, got {value!r}")
+            return getattr(base, key)
+        return tuple(v.strip() for v in value)
+
+    side = r.get(where, table, "stimulus_side", str, base.stimulus_side)
+    if side is not None and side not in STIMULUS_SIDES:
+        r.problem(
+            f"[{where}] stimulus_side",
+            f'must be "left" or "right" (the side of the stimulated body part), got {side!r}',
+        )
+        side = None
+    margin = r.get(where, table, "equivalence_margin", float, base.equivalence_margin)
+    if not 0.0 < margin < 1.0:
+        r.problem(f"[{where}] equivalence_margin", f"must be between 0 and 1, got {margin}")
+    edge = r.get(where, table, "edge_distance_voxels", int, base.edge_distance_voxels)
+    if edge < 1:
+        r.problem(f"[{where}] edge_distance_voxels", f"must be at least 1, got {edge}")
+    outlier = r.get(where, table, "outlier_z", float, base.outlier_z)
+    if outlier <= 0:
+        r.problem(f"[{where}] outlier_z", f"must be positive, got {outlier}")
+    return QuestionSettings(
+        symmetry=names("symmetry"),
+        targets=names("targets"),
+        stimulus_side=side,
+        equivalence_margin=margin,
+        edge_distance_voxels=edge,
+        outlier_z=outlier,
     )
 
 

@@ -475,6 +475,7 @@ def inspect_study(settings: Settings) -> Study:
             problems.extend(exc.problems)
         else:
             warnings.extend(atlas.warnings)
+    problems.extend(_check_questions(settings, names, atlas))
     if problems:
         raise UserError(f"{path}: {len(problems)} problem(s) in the study", problems)
     return Study(
@@ -486,6 +487,32 @@ def inspect_study(settings: Settings) -> Study:
         warnings=tuple(warnings),
         atlas=atlas,
     )
+
+
+def _check_questions(settings: Settings, contrast_names: list[str], atlas: Atlas | None):
+    """Problems with [questions]: unknown contrasts, regions, or no atlas to ask."""
+    problems = []
+    known = [n for n in contrast_names if n]
+    for name in settings.questions_by_contrast:
+        if name not in known:
+            problems.append(
+                f"[questions.{name}]: the runs table has no first-level contrast {name!r}"
+                + (f"; contrasts: {', '.join(known)}" if known else " (no 'contrast' column)")
+            )
+    asked = [settings.questions, *settings.questions_by_contrast.values()]
+    regions = sorted({r for q in asked for r in (*q.symmetry, *q.targets)})
+    if regions and settings.atlas is None:
+        problems.append(
+            "[questions] names regions (" + ", ".join(regions) + ") but the study has no "
+            "[atlas]; add one (image and labels) to ask about regions"
+        )
+    elif regions and atlas is not None:
+        for region in regions:
+            try:
+                atlas.region_rows(region)
+            except UserError as exc:
+                problems.append(f"[questions]: {exc}")
+    return problems
 
 
 def _mask_extent_mm(mask: np.ndarray | None, grid: Grid) -> np.ndarray | None:
