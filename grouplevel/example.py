@@ -913,6 +913,21 @@ seed = 1
 sided = "two"
 cluster_forming_p = 0.001
 connectivity = 26
+
+[questions]
+# Regions whose left/right symmetry is tested (any level of the atlas hierarchy).
+symmetry = ["auditory cortex", "inferior colliculus"]
+# Where the activation is expected; the rest of the brain is "off-target".
+targets = ["auditory cortex", "inferior colliculus"]
+# |laterality index| up to 0.2 counts as symmetric.
+equivalence_margin = 0.2
+
+[questions.paw]
+# The paw contrast has its own questions: the left forepaw was stimulated, so the
+# right (contralateral) forelimb area is expected to dominate.
+symmetry = ["forelimb area"]
+targets = ["forelimb area"]
+stimulus_side = "left"
 """
 
 
