@@ -13,7 +13,8 @@ maxima, so the attainable p-values are multiples of 2/256 and the exact rate of
 ``p ≤ 0.05`` is 6/128 = 0.0469 for a continuous statistic; cluster extents are integers
 whose ties make that test a little conservative.
 
-Measured (N_STUDIES = 300, seed 2026, about 0.4 s per study on 2 cores, ~2 min): studies
+Measured (N_STUDIES = 300, seed 2026; about 0.37 s per study on an otherwise idle 2-core
+machine, ~2 min; 3.6 min when the machine was shared with other test runs): studies
 with a false positive: voxel 15/300 (5.0 %), cluster extent 14/300 (4.7 %), cluster mass
 21/300 (7.0 %), TFCE 13/300 (4.3 %); the 95% interval at 300 studies contains 0.05 for
 8 to 23 false-positive studies.
