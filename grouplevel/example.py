@@ -916,7 +916,7 @@ connectivity = 26
 
 [questions]
 # Regions whose left/right symmetry is tested (any level of the atlas hierarchy).
-symmetry = ["auditory cortex", "inferior colliculus"]
+symmetry = ["primary auditory area", "inferior colliculus"]
 # Where the activation is expected; the rest of the brain is "off-target".
 targets = ["auditory cortex", "inferior colliculus"]
 # |laterality index| up to 0.2 counts as symmetric.

@@ -37,6 +37,7 @@ from grouplevel.model import (
     satterthwaite_df,
     test_contrast,
 )
+from grouplevel.questions import Answers, answer_questions, asks_questions
 from grouplevel.study import FirstLevel, Study, load_runs, load_study
 from grouplevel.tables import RegionTables, region_data, region_tables
 
@@ -118,6 +119,7 @@ class GroupMap:
     n_runs: int
     inference: Corrected
     tables: RegionTables | None = None  # with an atlas: clusters, regions, animals
+    answers: Answers | None = None  # the questions (group mean of an intercept-only design)
 
     def volume(self, key: str) -> np.ndarray:
         """A per-voxel quantity as a full 3-D array (0 outside the mask).
@@ -330,6 +332,21 @@ def _fit_first_level(
         )
         if regions is not None:
             gm = replace(gm, tables=region_tables(gm, regions, design, c, settings))
+        if asks_questions(settings, design.columns, cname):
+            log(f"  questions of {name}: symmetry, specificity, consistency, run quality")
+            answers = answer_questions(
+                gm,
+                y,
+                s2,
+                fit,
+                design,
+                fl.runs,
+                c,
+                regions,
+                settings.questions_for(fl.name),
+                settings,
+            )
+            gm = replace(gm, answers=answers)
         results.append(gm)
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings
@@ -439,6 +456,8 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
         "inference": _inference_summary(gm, study.settings.inference.alpha),
     }
+    if gm.answers is not None:
+        entry["questions"] = gm.answers.summary(study.settings.inference.alpha)
     if gm.tables is not None:
         regions = gm.tables.regions
         entry["clusters"] = {
@@ -496,6 +515,8 @@ def _write_group_map(folder: Path, gm: GroupMap) -> None:
             dtype=dtype,
         )
     _write_inference(folder, gm, label)
+    if gm.answers is not None:
+        _write_answers(folder, gm, label)
     if gm.tables is not None:
         for stem, frame in (
             ("clusters", gm.tables.clusters),
@@ -505,6 +526,41 @@ def _write_group_map(folder: Path, gm: GroupMap) -> None:
             frame.to_csv(
                 folder / f"{stem}.tsv", sep="\t", index=False, float_format="%.6g", na_rep="n/a"
             )
+
+
+def _write_answers(folder: Path, gm: GroupMap, label: str) -> None:
+    """Tables of the questions and the left-minus-mirror asymmetry maps."""
+    answers = gm.answers
+    for stem, frame in answers.tables().items():
+        frame.to_csv(
+            folder / f"{stem}.tsv", sep="\t", index=False, float_format="%.6g", na_rep="n/a"
+        )
+    asym = answers.asymmetry
+    if asym is None:
+        return
+    maps = {
+        "asymmetry_t": (asym.t, "t of left minus mirror (right)"),
+        "asymmetry_z": (asym.z, "z of left minus mirror (right)"),
+        "asymmetry_q": (asym.q, "FDR q of left minus mirror"),
+    }
+    if asym.permutation is not None:
+        maps["asymmetry_p_fwe_voxel"] = (
+            asym.permutation.p_fwe_voxel,
+            "FWE p voxel, left minus mirror",
+        )
+        if asym.permutation.p_fwe_tfce is not None:
+            maps["asymmetry_p_fwe_tfce"] = (
+                asym.permutation.p_fwe_tfce,
+                "FWE p TFCE, left minus mirror",
+            )
+    for stem, (values, what) in maps.items():
+        write_map(
+            folder / f"{stem}.nii.gz",
+            _unfitted_as_null(stem.replace("asymmetry_", ""), values),
+            asym.mask,
+            gm.grid,
+            f"grouplevel {what} [{label}]",
+        )
 
 
 def _write_inference(folder: Path, gm: GroupMap, label: str) -> None:

@@ -463,10 +463,14 @@ def permutation_test(
     signs = scheme.signs.astype(np.float64)
     orders = scheme.orders.astype(np.int64)
 
+    tables = np.ascontiguousarray(np.array(to_z.tables))
+    df_row = np.ascontiguousarray(to_z.index, dtype=np.int64)
+    du = float(to_z.u[1] - to_z.u[0])
+
     def statistic(k: int) -> np.ndarray:
         """z map (in-mask) of permutation k; k = 0 is the unpermuted data."""
-        t = np.empty(V)
-        _refit_kernel.refit_t_permuted(
+        z = np.empty(V)
+        _refit_kernel.refit_z_permuted(
             fitted,
             residual,
             precision,
@@ -474,11 +478,14 @@ def permutation_test(
             orders[k],
             X_perm,
             tau2_start,
-            t,
+            tables,
+            df_row,
+            du,
+            z,
             _refit_kernel.REFIT_MAX_ITER,
             _refit_kernel.REFIT_TOL,
         )
-        return to_z(np.nan_to_num(t))
+        return z
 
     def volume(values: np.ndarray) -> np.ndarray:
         out = np.zeros(grid_shape)

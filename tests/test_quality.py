@@ -1,0 +1,137 @@
+"""Run quality: robust z scores, correlations with the leave-one-animal-out group map,
+edge-rim scores and flags.
+
+Outside references: scipy.stats.median_abs_deviation(scale="normal") for the robust z
+(Iglewicz & Hoaglin 1993, How to Detect and Handle Outliers, ASQC; 3.5 cut-off, value from
+memory), numpy.corrcoef for the spatial correlations, and the example cohort's recorded
+ground truth (truth.json: the motion animal and the noisy runs).
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+import grouplevel
+from grouplevel.errors import UserError
+from grouplevel.example import write_example
+from grouplevel.quality import DEFAULT_Z_THRESHOLD, QUALITY_COLUMNS, robust_z, run_quality
+from grouplevel.specificity import edge_shell, loo_group_maps
+from grouplevel.study import load_runs
+
+
+def test_robust_z_equals_scipy_mad_based_z():
+    rng = np.random.default_rng(1)
+    x = rng.standard_t(3, size=41)
+    x[5] = np.nan
+    ok = np.isfinite(x)
+    # reference: scipy.stats.median_abs_deviation with scale="normal" (MAD / Φ⁻¹(3/4));
+    # the module's 1.4826 is that factor rounded (common practice), hence rel 1e-5.
+    mad = stats.median_abs_deviation(x[ok], scale="normal")
+    expected = (x[ok] - np.median(x[ok])) / mad
+    np.testing.assert_allclose(robust_z(x)[ok], expected, rtol=1e-5)
+    assert np.isnan(robust_z(x)[5])
+
+
+def test_robust_z_with_zero_mad():
+    z = robust_z(np.array([1.0, 1.0, 1.0, 2.0, 0.5]))
+    np.testing.assert_array_equal(z, [0.0, 0.0, 0.0, np.inf, -np.inf])
+
+
+def synthetic_runs(rng):
+    animal = np.repeat(np.arange(8), 3)
+    n = animal.size
+    mask = np.zeros((12, 12, 10), dtype=bool)
+    mask[1:11, 1:11, 1:9] = True
+    shell = edge_shell(mask, 2)
+    n_vox = int(mask.sum())
+    pattern = rng.normal(0, 1, n_vox)
+    y = 0.5 * pattern + rng.normal(0, 1, (n, n_vox))
+    variance = rng.uniform(0.9, 1.1, (n, n_vox))
+    y[4, shell] += 4.0 * np.sign(rng.normal(size=int(shell.sum())))  # an edge rim
+    variance[10] *= 5.0  # a noisy run
+    y[17] = -0.5 * pattern + rng.normal(0, 1, n_vox)  # a run unlike the group
+    y[2, :3] = np.nan
+    loo = np.stack([0.5 * pattern + rng.normal(0, 0.1, n_vox) for _ in range(8)])
+    runs = pd.DataFrame({"animal": [f"a{a}" for a in animal], "session": 1, "run": 1})
+    return y, variance, animal, runs, loo, shell
+
+
+def test_run_quality_numbers_by_hand_and_flags():
+    y, variance, animal, runs, loo, shell = synthetic_runs(np.random.default_rng(6))
+    out = run_quality(y, variance, animal, runs, loo, shell)
+    table = out.table()
+    assert tuple(table.columns) == QUALITY_COLUMNS
+    for k in range(len(y)):
+        ok = np.isfinite(y[k])
+        # reference: numpy.corrcoef over the voxels with data
+        r = np.corrcoef(y[k, ok], loo[animal[k], ok])[0, 1]
+        assert table["correlation"].iloc[k] == pytest.approx(r, rel=1e-10)
+        a = np.abs(y[k])
+        edge = np.nanmean(a[shell]) / np.nanmean(a[~shell])
+        assert table["edge_score"].iloc[k] == pytest.approx(edge, rel=1e-10)
+        assert table["mean_variance"].iloc[k] == pytest.approx(variance[k].mean(), rel=1e-12)
+    np.testing.assert_allclose(table["z_edge"], robust_z(table["edge_score"]))
+    flagged = set(np.flatnonzero(table["flagged"]))
+    zs = table[["z_correlation", "z_variance", "z_edge"]].abs().to_numpy()
+    assert flagged == set(np.flatnonzero(np.nanmax(zs, axis=1) > 3.5))
+    # the planted runs; with 24 runs a chance |z| > 3.5 can flag another (here run 7,
+    # correlation z 3.6)
+    assert {4, 10, 17} <= flagged
+    assert "edge-rim" in table["why"].iloc[4]
+    assert "variance" in table["why"].iloc[10]
+    assert "low correlation" in table["why"].iloc[17]
+    assert out.summary()["flagged"] == len(flagged)
+    assert out.threshold == DEFAULT_Z_THRESHOLD
+
+
+def test_run_quality_without_variances_never_flags_on_variance():
+    y, _, animal, runs, loo, shell = synthetic_runs(np.random.default_rng(6))
+    table = run_quality(y, None, animal, runs, loo, shell).table()
+    assert table["mean_variance"].isna().all() and table["z_variance"].isna().all()
+    flagged = set(np.flatnonzero(table["flagged"]))
+    assert {4, 17} <= flagged
+    assert not table["why"].str.contains("variance").any()
+
+
+def test_run_quality_bad_inputs():
+    y, variance, animal, runs, loo, shell = synthetic_runs(np.random.default_rng(6))
+    with pytest.raises(UserError, match="table rows"):
+        run_quality(y, variance, animal, runs.iloc[:-1], loo, shell)
+    with pytest.raises(UserError, match="loo_effect"):
+        run_quality(y, variance, animal, runs, loo[:, :-1], shell)
+    with pytest.raises(UserError, match="threshold"):
+        run_quality(y, variance, animal, runs, loo, shell, threshold=0.0)
+
+
+def test_example_flags_the_motion_animal_and_the_noisy_runs(tmp_path):
+    toml = write_example(tmp_path)
+    truth = json.loads((tmp_path / "truth.json").read_text())
+    study = grouplevel.load_study(toml, permutations=0)
+    fl = next(f for f in study.first_levels if f.name == "sound")
+    data = load_runs(study, fl)
+    d = fl.design
+    loo = loo_group_maps(
+        data.effect, data.variance, d.matrix, d.animal, [1.0], animal_ids=d.animal_ids
+    )
+    shell = edge_shell(fl.mask, 2)
+    table = run_quality(data.effect, data.variance, d.animal, fl.runs, loo.effect, shell).table()
+    key = list(zip(table["animal"], table["run"].astype(int), strict=True))
+    motion = {(r["animal"], r["run"]) for r in truth["motion"]["runs"]}
+    noisy = {(r["animal"], r["run"]) for r in truth["noisy_runs"]["runs"]}
+    flagged = {k for k, f in zip(key, table["flagged"], strict=True) if f}
+    # every run of the motion animal, and besides them exactly the runs the generator made
+    # noisy (first-level variance × 4, flagged for their mean variance)
+    assert flagged == motion | noisy
+    is_motion = np.array([k in motion for k in key])
+    is_noisy = np.array([k in noisy for k in key])
+    assert (table["z_edge"][is_motion] > 3.5).all()
+    assert table["edge_score"][is_motion].min() > 1.3 * table["edge_score"][~is_motion].max()
+    assert (table["z_variance"][is_noisy] > 3.5).all()
+    assert (np.abs(table["z_edge"][~is_motion]) <= 3.5).all()
+    # the LOO maps: removing the motion animal changes the t map most
+    assert loo.animal_ids[int(np.argmin(loo.correlation))] == truth["motion"]["animal"]
