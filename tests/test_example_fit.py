@@ -90,3 +90,25 @@ def test_region_tables_name_the_auditory_clusters(fitted):
     paw = maps["paw"].tables.clusters
     top = paw[paw["peak"] == 1].sort_values("z", ascending=False).iloc[0]
     assert (top["peak_region"], top["peak_region_hemisphere"]) == ("forelimb area", "right")
+
+
+def test_questions_answer_as_planted(fitted):
+    # The generator planted equal left/right sound responses in the primary auditory
+    # areas, a right-dominant response to the left paw, and a motion rim in m07's runs.
+    maps, truth, _, _, _ = fitted
+    sound, paw = maps["sound"].answers, maps["paw"].answers
+    verdicts = sound.symmetry.set_index("region")["verdict"]
+    assert verdicts["primary auditory area"] == "bilateral (equivalence shown)"
+    row = paw.symmetry.set_index("region").loc["forelimb area"]
+    assert row["verdict"] == "right-dominant" and row["side"] == "contralateral"
+    assert sound.specificity.summary()["verdict"] == "specific to target"
+    quality = sound.run_quality.table()
+    motion = truth["motion"]["animal"]
+    flagged = quality[quality["flagged"].astype(bool)]
+    assert set(quality.loc[quality["animal"] == motion, "flagged"].astype(bool)) == {True}
+    noisy = {(r["animal"], int(r["run"])) for r in truth["noisy_runs"]["runs"]}
+    others = {(a, int(r)) for a, r in zip(flagged["animal"], flagged["run"], strict=True)
+              if a != motion}
+    assert others <= noisy  # the only other flags are the runs made noisy on purpose
+    edge = quality.groupby("animal")["edge_score"].mean()
+    assert edge.idxmax() == motion
