@@ -38,6 +38,42 @@ def _parser() -> argparse.ArgumentParser:
     )
     r.add_argument("--seed", type=int, default=None, help="override [inference] seed")
 
+    pl = sub.add_parser(
+        "plan", help="power of future designs (animals x runs) from a finished output folder"
+    )
+    pl.add_argument("folder", type=Path, help="output folder of `grouplevel run`")
+    pl.add_argument(
+        "--regions",
+        nargs="+",
+        default=None,
+        help="regions to plan for (default: the [questions] targets)",
+    )
+    pl.add_argument(
+        "--effect",
+        type=float,
+        default=None,
+        help="effect to detect (default: the observed one; optimistic)",
+    )
+    pl.add_argument(
+        "--cost-animal",
+        type=float,
+        default=10.0,
+        help="cost of one more animal (any unit; default 10)",
+    )
+    pl.add_argument(
+        "--cost-run",
+        type=float,
+        default=1.0,
+        help="cost of one more run of an animal (same unit; default 1)",
+    )
+    pl.add_argument(
+        "--alpha",
+        type=float,
+        default=None,
+        help="significance level (default: the study's [inference] alpha)",
+    )
+    pl.add_argument("--target-power", type=float, default=0.8)
+
     e = sub.add_parser("example", help="write the invented example study into a folder")
     e.add_argument("folder", type=Path)
 
@@ -86,6 +122,36 @@ def _run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _plan(args: argparse.Namespace) -> int:
+    from grouplevel.planning import plan_from_output, write_plan
+
+    plans = plan_from_output(
+        args.folder,
+        regions=args.regions,
+        effect=args.effect,
+        cost_animal=args.cost_animal,
+        cost_run=args.cost_run,
+        alpha=args.alpha,
+        target_power=args.target_power,
+    )
+    for plan in plans:
+        where = f"{plan.name}: {plan.region} ({plan.hemisphere})"
+        if plan.cheapest is None:
+            print(f"{where}: no design in the grid reaches power {args.target_power}")
+        else:
+            best = plan.cheapest
+            print(
+                f"{where}: cheapest design with power >= {args.target_power}: "
+                f"{int(best['animals'])} animals x {int(best['runs'])} runs "
+                f"(power {best['power']:.2f}, cost {best['cost']:g})"
+            )
+    if plans:
+        print(f"caution: {plans[0].caution}")
+    for path in write_plan(args.folder, plans):
+        print(f"wrote {path}")
+    return 0
+
+
 def _example(args: argparse.Namespace) -> int:
     from grouplevel.example import write_example
 
@@ -112,7 +178,7 @@ def _demo(args: argparse.Namespace) -> int:
     return 0
 
 
-_COMMANDS = {"check": _check, "run": _run, "example": _example, "demo": _demo}
+_COMMANDS = {"check": _check, "run": _run, "plan": _plan, "example": _example, "demo": _demo}
 
 
 def main(argv: list[str] | None = None) -> int:
