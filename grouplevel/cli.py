@@ -38,6 +38,12 @@ def _parser() -> argparse.ArgumentParser:
     )
     r.add_argument("--seed", type=int, default=None, help="override [inference] seed")
 
+    rp = sub.add_parser(
+        "report", help="re-render report.html, methods.md and tables/ of an output folder"
+    )
+    rp.add_argument("folder", type=Path, help="output folder of `grouplevel run`")
+    rp.add_argument("--title", default=None, help="a new title for the report")
+
     pl = sub.add_parser(
         "plan", help="power of future designs (animals x runs) from a finished output folder"
     )
@@ -119,6 +125,19 @@ def _run(args: argparse.Namespace) -> int:
         seed=args.seed,
     )
     print(f"outputs written to {out}")
+    print(f"  report: {out / 'report.html'}")
+    return 0
+
+
+def _report(args: argparse.Namespace) -> int:
+    from grouplevel.report import render_report, write_manuscript_tables, write_methods
+
+    write_methods(args.folder)
+    tables = write_manuscript_tables(args.folder)
+    report = render_report(args.folder, title=args.title)
+    print(f"methods: {args.folder / 'methods.md'}")
+    print(f"tables: {len(tables)} files in {args.folder / 'tables'}")
+    print(f"report: {report}")
     return 0
 
 
@@ -174,11 +193,19 @@ def _demo(args: argparse.Namespace) -> int:
     log(f"example study written to {toml.parent}")
     out = run_study(toml, results, force=args.force, log=None if args.quiet else log)
     print(f"demo finished: outputs in {out}")
+    print(f"  report:  {out / 'report.html'}  (open it in a browser)")
     print(f"  summary: {out / 'summary.json'}")
     return 0
 
 
-_COMMANDS = {"check": _check, "run": _run, "plan": _plan, "example": _example, "demo": _demo}
+_COMMANDS = {
+    "check": _check,
+    "run": _run,
+    "report": _report,
+    "plan": _plan,
+    "example": _example,
+    "demo": _demo,
+}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -38,6 +38,7 @@ from grouplevel.model import (
     test_contrast,
 )
 from grouplevel.questions import Answers, answer_questions, asks_questions
+from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.study import FirstLevel, Study, load_runs, load_study
 from grouplevel.tables import RegionTables, region_data, region_tables
 
@@ -407,6 +408,20 @@ def _inputs(study: Study) -> list[dict[str, str]]:
     return out
 
 
+def _versions() -> dict[str, str]:
+    """Versions of grouplevel and the libraries that shape its numbers."""
+    import importlib.metadata as md
+    import platform
+
+    out = {"python": platform.python_version(), "grouplevel": __version__}
+    for name in ("numpy", "scipy", "statsmodels", "nibabel", "pandas", "numba", "formulaic"):
+        try:
+            out[name] = md.version(name)
+        except md.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
 def _atlas_summary(study: Study) -> dict | None:
     atlas = study.atlas
     if atlas is None:
@@ -708,7 +723,7 @@ def write_outputs(
         for gm in maps:
             _write_group_map(tmp / gm.name, gm)
         summary = {
-            "tool": {"name": "grouplevel", "version": __version__},
+            "tool": {"name": "grouplevel", "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
             "title": study.settings.study.title,
             "inputs": _inputs(study),
@@ -724,6 +739,11 @@ def write_outputs(
             "warnings": list(study.warnings) + list(warnings or []),
         }
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
+        # the human-readable outputs are made from the folder just written, exactly as
+        # `grouplevel report DIR` makes them later
+        write_methods(tmp)
+        write_manuscript_tables(tmp)
+        render_report(tmp)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise

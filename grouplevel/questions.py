@@ -109,11 +109,64 @@ class Answers:
             "symmetry": self.symmetry_summary,
             "asymmetry_map": None if self.asymmetry is None else self.asymmetry.summary(alpha),
             "specificity": None if self.specificity is None else self.specificity.summary(),
-            "consistency": None if self.consistency is None else self.consistency.summary(),
+            "consistency": None
+            if self.consistency is None
+            else _consistency_verdict(self.consistency.summary()),
             "leave_one_out": self.loo.summary(),
-            "run_quality": self.run_quality.summary(),
+            "run_quality": _quality_verdict(self.run_quality.summary()),
             "notes": list(self.notes),
         }
+
+
+# Consistency verdict (docs/verdicts-specificity.md): the share of animals whose own
+# target effect has the sign of the group effect, and whether leaving out any one animal
+# keeps the group effect's sign. "Most" = at least this share of animals (our own rule).
+MOST_ANIMALS = 0.75
+
+
+def _consistency_verdict(summary: dict) -> dict:
+    """Add a plain verdict and its reasons to the consistency summary."""
+    n = summary["animals"]
+    positive = summary["animals_positive"]
+    effect = summary.get("effect") or 0.0
+    agree = positive if effect >= 0 else n - positive
+    low, high = summary.get("loo_effect_range") or [None, None]
+    keeps_sign = low is not None and high is not None and (low > 0 or high < 0)
+    if agree == n and keeps_sign:
+        verdict = "all animals agree"
+    elif agree >= MOST_ANIMALS * n and keeps_sign:
+        verdict = f"most animals agree ({agree} of {n})"
+    else:
+        verdict = f"animals disagree ({agree} of {n} with the group's sign)"
+    reasons = [
+        f"{agree} of {n} animals have a target effect of the group's sign; "
+        f"{summary['animals_ci_above_zero']} have a 95% CI above 0",
+        f"leaving out one animal at a time, the target effect ranges from {low:.3g} to {high:.3g}"
+        if low is not None
+        else "no leave-one-out range",
+        f"the animal that moves it most is {summary['most_influential_animal']} "
+        f"(change {summary['most_influential_change']:.3g})"
+        if summary.get("most_influential_change") is not None
+        else "no single animal stands out",
+    ]
+    if summary.get("icc") is not None:
+        reasons.append(
+            f"between-animal share of variance (ICC) in the target: {summary['icc']:.2f}"
+        )
+    return {"verdict": verdict, "reasons": reasons, **summary}
+
+
+def _quality_verdict(summary: dict) -> dict:
+    """Add a plain verdict (how many runs are flagged) and the flagged runs as reasons."""
+    flagged = summary["flagged_runs"]
+    verdict = (
+        "no run flagged"
+        if not flagged
+        else f"{len(flagged)} of {summary['runs']} runs flagged (kept; exclude them in the "
+        "runs table if you judge them unusable)"
+    )
+    reasons = [f"{r['animal']} run {r['run']}: {r['why']}" for r in flagged]
+    return {"verdict": verdict, "reasons": reasons, **summary}
 
 
 def asks_questions(settings: Settings, design_columns: tuple[str, ...], contrast: str) -> bool:
@@ -234,7 +287,17 @@ def answer_questions(
         )
         sym = symmetry_table(results)
         curves = li_curves(results)
-        sym_summary = {r.region: r.summary() for r in results}
+        sym_summary = {}
+        for r in results:
+            detail = r.summary()
+            verdict = detail["verdict"]
+            sym_summary[r.region] = {
+                "verdict": verdict["label"],
+                "side": verdict["side"],
+                "reasons": verdict["reasons"],
+                **{k: v for k, v in detail.items() if k != "verdict"},
+                "numbers": verdict["numbers"],
+            }
         asym = _asymmetry(gm, y, s2, design, c, settings, atlas.midline_mm)
     if questions.targets:
         rows = _target_rows(atlas, questions.targets)

@@ -1,0 +1,775 @@
+"""The HTML report: one self-contained file rendered from a finished output folder.
+
+:func:`render_report` reads ``summary.json``, the result folders' maps and tables and
+the template/mask recorded in the settings, draws the figures, and renders
+``templates/report.html.j2`` (shipped as package ``grouplevel.templates``) with jinja2.
+Nothing is refitted, so ``grouplevel report DIR`` can re-render after a template edit
+or with a new title.
+
+The page is organised around the questions a reader asks of each contrast (is there a
+response, where, is it bilateral, specific, consistent?), then the study, maps,
+tables, figures, cautions and methods. Figures are base64 PNGs and the CSS is inline;
+the page loads nothing from the network (a Content-Security-Policy forbids it).
+Autoescaping is on: every string from the user's files (titles, animal IDs, region
+names) is escaped.
+"""
+
+from __future__ import annotations
+
+import base64
+import datetime as _dt
+import json
+import time
+from importlib import resources
+from pathlib import Path
+
+import jinja2
+import nibabel as nib
+import numpy as np
+
+from grouplevel.errors import UserError
+from grouplevel.report import figures
+from grouplevel.report.methods import methods_text
+from grouplevel.report.tables import (
+    STAT,
+    P,
+    TableView,
+    format_value,
+    read_tsv,
+    result_names,
+    result_table_views,
+)
+
+#: Maps whose surviving voxels define the overlay, per ``[clusters] method``.
+_METHOD_MAP = {
+    "tfce": "p_fwe_tfce",
+    "voxel": "p_fwe_voxel",
+    "cluster_extent": "p_fwe_cluster",
+    "cluster_mass": "p_fwe_cluster_mass",
+    "fdr": "q",
+}
+_METHOD_LABEL = {
+    "tfce": "TFCE, FWE p ≤ {a}",
+    "voxel": "voxel-wise FWE p ≤ {a}",
+    "cluster_extent": "cluster extent, FWE p ≤ {a}",
+    "cluster_mass": "cluster mass, FWE p ≤ {a}",
+    "fdr": "FDR q ≤ {a}",
+}
+#: Tables shown in the report (the per-animal region table is in tables/ only: it has a
+#: row per animal and region).
+REPORT_TABLES = ("clusters", "regions", "symmetry", "specificity", "consistency", "run_quality")
+MAX_WHERE = 3  # clusters named in the short answer
+
+
+def load_summary(out_dir: Path) -> dict:
+    """Parse ``out_dir/summary.json``.
+
+    Raises
+    ------
+    UserError
+        When the folder or its summary.json is missing or unreadable.
+    """
+    path = Path(out_dir) / "summary.json"
+    if not path.is_file():
+        raise UserError(f"{path}: not found; give the output folder of a finished 'grouplevel run'")
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError) as exc:
+        raise UserError(f"{path}: cannot read summary.json ({exc}); re-run the study") from None
+
+
+def present_files(out_dir: Path, summary: dict) -> dict[str, set[str]]:
+    """Result name → names of the files in its folder."""
+    out = {}
+    for name in result_names(summary):
+        folder = Path(out_dir) / name
+        out[name] = {p.name for p in folder.iterdir()} if folder.is_dir() else set()
+    return out
+
+
+def _environment() -> jinja2.Environment:
+    loader = jinja2.FunctionLoader(
+        lambda name: (
+            resources.files("grouplevel.templates").joinpath(name).read_text(encoding="utf-8")
+        )
+    )
+    # autoescape=True for every template: select_autoescape would not match "*.html.j2".
+    env = jinja2.Environment(
+        loader=loader,
+        autoescape=True,
+        trim_blocks=True,
+        lstrip_blocks=True,
+        undefined=jinja2.StrictUndefined,
+    )
+    env.filters["stat"] = lambda v: format_value(v, STAT)
+    env.filters["pval"] = lambda v: format_value(v, P)
+    env.globals["zip"] = zip
+    return env
+
+
+def _data_uri(png: bytes) -> str:
+    return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+
+
+def _figure(key: str, title: str, png: bytes, alt: str, caption: str) -> dict:
+    return {"key": key, "title": title, "src": _data_uri(png), "alt": alt, "caption": caption}
+
+
+def _method(summary: dict, result: dict) -> str:
+    if result.get("clusters") and result["clusters"].get("method"):
+        return str(result["clusters"]["method"])
+    settings = summary.get("settings") or {}
+    chosen = (settings.get("clusters") or {}).get("method")
+    if chosen:
+        return str(chosen)
+    inf = settings.get("inference") or {}
+    if not inf.get("permutations"):
+        return "fdr"
+    return "tfce" if inf.get("tfce", True) else "cluster_mass"
+
+
+def _load(path: Path) -> nib.spatialimages.SpatialImage | None:
+    return nib.load(str(path)) if path.is_file() else None
+
+
+def _surviving_count(result: dict, method: str) -> int | None:
+    inf = result.get("inference") or {}
+    if method == "fdr":
+        return (inf.get("fdr") or {}).get("surviving_voxels")
+    surviving = (inf.get("permutation") or {}).get("surviving") or {}
+    value = surviving.get(method)
+    if isinstance(value, dict):
+        return value.get("voxels")
+    return value
+
+
+def _stereotaxic(mm: list[float], origin: list[float]) -> tuple[float, float, float]:
+    """AP, ML, DV from world mm (RAS+) and the origin."""
+    return (mm[1] - origin[1], mm[0] - origin[0], mm[2] - origin[2])
+
+
+def _reasons(value) -> str:
+    if value is None:
+        return ""
+    if isinstance(value, list | tuple):
+        return "; ".join(str(v).strip().rstrip(".") for v in value if str(v).strip())
+    return str(value).strip().rstrip(".")
+
+
+def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView], frames) -> dict:
+    """The short answer for one contrast: a list of (question, answer) pairs."""
+    settings = summary.get("settings") or {}
+    alpha = (settings.get("inference") or {}).get("alpha", 0.05)
+    space = settings.get("space") or {}
+    origin = space.get("origin_mm", [0.0, 0.0, 0.0])
+    origin_name = space.get("origin_name", "origin")
+    method = _method(summary, result)
+    method_words = _METHOD_LABEL[method].format(a=alpha) if method in _METHOD_LABEL else method
+    items: list[tuple[str, str, str]] = []  # (question, verdict in bold, the numbers)
+    n_clusters = (result.get("clusters") or {}).get("significant_clusters")
+    n_voxels = _surviving_count(result, method)
+    peak = result.get("peak") or {}
+    peak_text = ""
+    if peak:
+        ap, ml, dv = _stereotaxic(peak["mm"], origin)
+        peak_text = (
+            f"strongest voxel t = {peak['t']:.2f} (effect {peak['effect']:.2f}) at "
+            f"AP {ap:+.2f}, ML {ml:+.2f}, DV {dv:+.2f} mm from {origin_name}"
+        )
+    if n_voxels:
+        count = f"{n_voxels:,} voxels survive {method_words}"
+        if n_clusters is not None:
+            count += f", in {n_clusters} significant cluster{'s' if n_clusters != 1 else ''}"
+        items.append(("Present?", "Yes", "; ".join(t for t in (count, peak_text) if t) + "."))
+    else:
+        detail = "; ".join(t for t in (f"no voxel survives {method_words}", peak_text) if t)
+        items.append(("Present?", "Not shown", detail + "."))
+    clusters = frames.get("clusters")
+    if clusters is not None and len(clusters):
+        mains = clusters[clusters["peak"].astype(str) == "1"].head(MAX_WHERE)
+        places = []
+        for _, row in mains.iterrows():
+            region = row.get("peak_region")
+            hemi = row.get("peak_region_hemisphere")
+            where = (
+                f"{region} ({hemi})"
+                if isinstance(region, str) and isinstance(hemi, str)
+                else str(region)
+                if isinstance(region, str)
+                else "unlabelled"
+            )
+            n_vox = int(float(row["voxels"]))
+            places.append(
+                f"{where}, {n_vox} voxel{'s' if n_vox != 1 else ''}, "
+                f"peak z = {float(row['z']):.2f} at AP {float(row['peak_AP_mm']):+.2f} mm"
+            )
+        more = len(clusters[clusters["peak"].astype(str) == "1"]) - len(mains)
+        text = "; ".join(places) + (f"; and {more} more" if more > 0 else "")
+        items.append(("Where?", "", text + "."))
+    elif n_voxels and peak:
+        items.append(("Where?", "", f"around the strongest voxel ({peak_text.split(' at ')[-1]})."))
+    questions = result.get("questions") or {}
+    symmetry = questions.get("symmetry")
+    if isinstance(symmetry, dict) and symmetry:
+        parts = []
+        for region, v in symmetry.items():
+            if isinstance(v, dict):
+                reasons = _reasons(v.get("reasons"))
+                side = f", {v['side']}" if v.get("side") else ""
+                parts.append(
+                    f"{region}: {v.get('verdict', 'no verdict')}{side}"
+                    + (f" ({reasons})" if reasons else "")
+                )
+        items.append(("Bilateral?", "", "; ".join(parts) + "."))
+    elif "symmetry" in views:
+        sym = frames["symmetry"]
+        if "verdict" in sym:
+            parts = [f"{r['region']}: {r['verdict']}" for _, r in sym.iterrows()]
+            items.append(("Bilateral?", "", "; ".join(parts) + "."))
+    for key, label in (("specificity", "Specific?"), ("consistency", "Consistent?")):
+        q = questions.get(key)
+        if isinstance(q, dict) and q.get("verdict") is not None:
+            reasons = _reasons(q.get("reasons"))
+            items.append((label, str(q["verdict"]), f"{reasons}." if reasons else ""))
+    if "consistency" in frames and not (
+        isinstance(questions.get("consistency"), dict) and questions["consistency"].get("verdict")
+    ):
+        cons = frames["consistency"]
+        if "positive" in cons:
+            pos = cons["positive"].astype(str).str.lower().isin(["true", "1", "yes"]).sum()
+            items.append(
+                ("Consistent?", "", f"{pos} of {len(cons)} animals show a positive effect.")
+            )
+    quality = questions.get("run_quality")
+    if isinstance(quality, dict) and quality.get("verdict") is not None:
+        reasons = _reasons(quality.get("reasons"))
+        items.append(("Runs?", str(quality["verdict"]), f"{reasons}." if reasons else ""))
+    unasked = [
+        label
+        for key, label in (
+            ("symmetry", "bilateral"),
+            ("specificity", "specific"),
+            ("consistency", "consistent"),
+        )
+        if key not in questions and key not in frames
+    ]
+    label = result.get("first_level_contrast") or name
+    group = result.get("group_contrast", "mean")
+    return {
+        "name": name,
+        "heading": f"{label}" + (f" — {group}" if group and group != "mean" else ""),
+        "items": items,
+        "unasked": unasked,
+        "animals": result.get("animals"),
+        "runs": result.get("runs"),
+        "method": method_words,
+    }
+
+
+def _overlay(folder: Path, method: str, alpha: float) -> tuple[np.ndarray | None, str, str]:
+    """z inside the voxels surviving ``method`` (FDR q when that map is missing)."""
+    z_img = _load(folder / "z.nii.gz")
+    if z_img is None:
+        return None, method, ""
+    z = figures.canonical(z_img).data
+    stem = _METHOD_MAP.get(method, "q")
+    p_img = _load(folder / f"{stem}.nii.gz")
+    used = method
+    if p_img is None:
+        p_img, used = _load(folder / "q.nii.gz"), "fdr"
+    mask_img = _load(folder / "mask.nii.gz")
+    inside = figures.canonical(mask_img).data > 0 if mask_img is not None else z != 0
+    if p_img is None:
+        return np.zeros_like(z), used, ""
+    p = figures.canonical(p_img).data
+    keep = inside & (p <= alpha)
+    return np.where(keep, z, 0.0), used, _METHOD_LABEL.get(used, used).format(a=alpha)
+
+
+def _background(summary: dict, folder: Path) -> tuple[figures.Volume | None, str]:
+    template = ((summary.get("settings") or {}).get("study") or {}).get("template")
+    if template and Path(template).is_file():
+        return figures.canonical(nib.load(template)), "the study template"
+    mask = _load(folder / "mask.nii.gz")
+    if mask is None:
+        return None, ""
+    return figures.canonical(mask), "the analysis mask (the template file was not found)"
+
+
+def _result_figures(out_dir: Path, name: str, result: dict, summary: dict, frames) -> list[dict]:
+    settings = summary.get("settings") or {}
+    alpha = (settings.get("inference") or {}).get("alpha", 0.05)
+    space = settings.get("space") or {}
+    origin = np.asarray(space.get("origin_mm", [0.0, 0.0, 0.0]), dtype=float)
+    origin_name = space.get("origin_name", "origin")
+    folder = out_dir / name
+    figs: list[dict] = []
+    method = _method(summary, result)
+    overlay, used, used_words = _overlay(folder, method, alpha)
+    background, background_words = _background(summary, folder)
+    mask_img = _load(folder / "mask.nii.gz")
+    if overlay is not None and background is not None and mask_img is not None:
+        mask = figures.canonical(mask_img).data > 0
+        if background.data.shape == mask.shape:
+            shown = int((overlay != 0).sum())
+            nothing = "" if shown else " No voxel survives, so nothing is overlaid."
+            fallback = (
+                f" ({method} maps are not in the folder; FDR is shown instead.)"
+                if used != method
+                else ""
+            )
+            figs.append(
+                _figure(
+                    "montage",
+                    "Coronal slices, anterior to posterior",
+                    figures.coronal_montage(
+                        background,
+                        overlay,
+                        mask,
+                        origin,
+                        label=f"z ({used_words})",
+                        origin_name=origin_name,
+                    ),
+                    f"Coronal slices of {background_words} for {name}, from anterior to "
+                    f"posterior, with z shown where {used_words} ({shown} voxels).",
+                    f"z where {used_words}, over {background_words}; each slice is labelled "
+                    f"with its anterior–posterior position in mm from {origin_name}."
+                    + nothing
+                    + fallback,
+                )
+            )
+            axes_mm = tuple(background.axis_mm(a) - origin[a] for a in range(3))
+            figs.append(
+                _figure(
+                    "projections",
+                    "Dorsal and lateral views",
+                    figures.projection_views(
+                        overlay,
+                        mask,
+                        background.step_mm,
+                        axes_mm,
+                        label=f"z ({used_words})",
+                        origin_name=origin_name,
+                    ),
+                    f"Maximum-intensity views of the thresholded z map of {name}, seen from "
+                    "above and from the right, drawn inside the outline of the analysis mask.",
+                    "The value of largest magnitude along each line of sight, inside the "
+                    f"brain outline (the mask's own projection); z where {used_words}." + nothing,
+                )
+            )
+    asym = _load(folder / "asymmetry_t.nii.gz")
+    if asym is not None and background is not None and mask_img is not None:
+        mask = figures.canonical(mask_img).data > 0
+        values = figures.canonical(asym).data
+        if values.shape == mask.shape == background.data.shape:
+            figs.append(
+                _figure(
+                    "asymmetry",
+                    "Left–right asymmetry (unthresholded)",
+                    figures.coronal_montage(
+                        background,
+                        np.where(mask, values, 0.0),
+                        mask,
+                        origin,
+                        label="t of left − right (unthresholded)",
+                        origin_name=origin_name,
+                    ),
+                    f"Coronal slices of the unthresholded left-minus-right t map of {name}.",
+                    "t of the left-minus-right difference at mirrored voxels, unthresholded: "
+                    "exploratory, not a test at any voxel.",
+                )
+            )
+    if "symmetry" in frames and "region" in frames["symmetry"]:
+        figs.append(
+            _figure(
+                "laterality",
+                "Laterality indices",
+                figures.laterality_plot(frames["symmetry"]),
+                f"Laterality index with its interval for each region of {name}.",
+                "LI = (L − R)/(L + R) by extent (circles) and by effect (diamonds) with their "
+                "intervals from symmetry.tsv; 0 is perfect symmetry.",
+            )
+        )
+    if "li_curves" in frames and {"region", "threshold", "li"} <= set(frames["li_curves"]):
+        figs.append(
+            _figure(
+                "li_curves",
+                "Laterality against threshold",
+                figures.li_curve_plot(frames["li_curves"]),
+                f"Laterality index as a function of the threshold for each region of {name}.",
+                "A laterality index that changes sign or size with the threshold is not a "
+                "stable property of the map (li_curves.tsv).",
+            )
+        )
+    forest = _forest(name, result, frames)
+    if forest is not None:
+        figs.append(forest)
+    var_animal = _load(folder / "var_animal.nii.gz")
+    var_run = _load(folder / "var_run.nii.gz")
+    if var_animal is not None and var_run is not None and mask_img is not None:
+        m = np.asarray(mask_img.dataobj) > 0
+        figs.append(
+            _figure(
+                "variance",
+                "Variance components",
+                figures.variance_plot(
+                    np.asarray(var_animal.dataobj, dtype=float)[m],
+                    np.asarray(var_run.dataobj, dtype=float)[m],
+                    unit="map units",
+                ),
+                f"Histograms over voxels of the between-animal and between-run standard "
+                f"deviations of {name}, and of the between-animal share of variance.",
+                f"τ (between animals) and σ (between runs beyond first-level noise) over the "
+                f"{int(m.sum()):,} analysed voxels; medians τ² = "
+                f"{result.get('var_animal_median', float('nan')):.3g}, σ² = "
+                f"{result.get('var_run_median', float('nan')):.3g}. Many animals are worth "
+                "more than many runs where τ² dominates.",
+            )
+        )
+    if "run_quality" in frames and {"z_correlation", "z_variance"} <= set(frames["run_quality"]):
+        figs.append(
+            _figure(
+                "run_quality",
+                "Run quality",
+                figures.run_quality_plot(frames["run_quality"]),
+                f"Scatter of each run's similarity to the group map against its variance for "
+                f"{name}; flagged runs are marked with crosses and labelled.",
+                "Each run's correlation with the group map and its mean first-level variance, "
+                "as z across runs (run_quality.tsv).",
+            )
+        )
+    return figs
+
+
+def _forest(name: str, result: dict, frames) -> dict | None:
+    cons = frames.get("consistency")
+    questions = result.get("questions") or {}
+    if cons is not None and {"animal", "effect", "ci_low", "ci_high"} <= set(cons):
+        eff = cons["effect"].astype(float).to_numpy()
+        region = (questions.get("consistency") or {}).get("region")
+        group = None
+        q = questions.get("consistency") or {}
+        if all(k in q for k in ("effect", "ci_low", "ci_high")):
+            group = (float(q["effect"]), float(q["ci_low"]), float(q["ci_high"]))
+        what = f"in {region}" if region else "in the target"
+        return _figure(
+            "forest",
+            "Per-animal effect",
+            figures.forest_plot(
+                cons["animal"].astype(str).tolist(),
+                eff,
+                cons["ci_low"].astype(float).to_numpy(),
+                cons["ci_high"].astype(float).to_numpy(),
+                group=group,
+                xlabel="effect (map units)",
+            ),
+            f"Forest plot of each animal's effect {what} for {name}, with intervals.",
+            f"Each animal's effect {what} with its interval (consistency.tsv)"
+            + ("; the diamond is the group estimate." if group else "."),
+        )
+    animals = frames.get("animals")
+    clusters = frames.get("clusters")
+    regions = frames.get("regions")
+    if animals is None or clusters is None or regions is None or not len(clusters):
+        return None
+    top = clusters.iloc[0]
+    region, hemi = top.get("peak_region"), top.get("peak_region_hemisphere")
+    if not isinstance(region, str):
+        return None
+    sel = animals[(animals["name"] == region) & (animals["hemisphere"] == hemi)]
+    reg = regions[(regions["name"] == region) & (regions["hemisphere"] == hemi)]
+    if not len(sel):
+        return None
+    eff = sel["effect"].astype(float).to_numpy()
+    se = sel["se"].astype(float).to_numpy()
+    group = None
+    if len(reg):
+        r = reg.iloc[0]
+        group = (float(r["effect"]), float(r["ci_low"]), float(r["ci_high"]))
+    return _figure(
+        "forest",
+        "Per-animal effect",
+        figures.forest_plot(
+            sel["animal"].astype(str).tolist(),
+            eff,
+            eff - 1.96 * se,
+            eff + 1.96 * se,
+            group=group,
+            xlabel=f"effect in {region} ({hemi}), map units",
+        ),
+        f"Forest plot of each animal's effect in {region} ({hemi}), the peak region of the "
+        f"largest cluster of {name}.",
+        f"Each animal's precision-weighted effect in {region} ({hemi}), the peak region of "
+        "the largest cluster, ± 1.96 SE (animals.tsv); the diamond is the group effect "
+        "with its 95% CI from the region model (regions.tsv).",
+    )
+
+
+def _cautions(name: str, result: dict, summary: dict, method_words: str) -> list[str]:
+    settings = summary.get("settings") or {}
+    inf_settings = settings.get("inference") or {}
+    alpha = inf_settings.get("alpha", 0.05)
+    out = []
+    n_animals, n_runs = result.get("animals"), result.get("runs")
+    out.append(
+        f"The group estimate rests on {n_animals} animals ({n_runs} runs). Runs of one "
+        "animal are not independent replicates: the number of animals is the sample size, "
+        "and a result from few animals generalises to the population only loosely."
+    )
+    inf = result.get("inference") or {}
+    perm = inf.get("permutation")
+    df_range = result.get("df_range") or []
+    df_words = (
+        f"df {df_range[0]:g}"
+        if df_range and df_range[0] == df_range[1]
+        else f"df {df_range[0]:g}–{df_range[1]:g}"
+        if df_range
+        else "their df"
+    )
+    if perm:
+        smallest = float(perm["smallest_attainable_p"])
+        out.append(
+            f"The uncorrected p-values are parametric (t with {df_words}); the FWE p-values "
+            f"come from {perm['permutations']} {perm['kind']}"
+            + (" (all there are)" if perm.get("exhaustive") else " (drawn at random)")
+            + f", so no FWE p can be below the smallest attainable p = {smallest:.3g}."
+        )
+        if smallest > alpha:
+            out.append(
+                f"The smallest attainable p ({smallest:.3g}) is above α = {alpha:g}: no "
+                "voxel or cluster can reach significance by permutation; more animals are "
+                "needed."
+            )
+    else:
+        out.append(
+            f"No permutation test was run: the map is thresholded by FDR (q ≤ {alpha:g}), "
+            "which bounds the expected share of false voxels among those shown, not the "
+            "chance of any false voxel; all p-values are parametric "
+            f"(t with {df_words})."
+        )
+    uncorrected = result.get("voxels_p_below_0.001_uncorrected")
+    if uncorrected is not None:
+        out.append(
+            f"{uncorrected:,} voxels have uncorrected p < 0.001; a map thresholded without "
+            "correction is exploratory and is not shown here as a finding."
+        )
+    method = _method(summary, result)
+    if method in ("cluster_extent", "cluster_mass"):
+        out.append(
+            "A significant cluster says the effect is non-zero somewhere in it, not at each "
+            "of its voxels: cluster inference does not localise within a cluster."
+        )
+    if result.get("not_converged_voxels"):
+        out.append(
+            f"The REML fit reached its iteration limit at {result['not_converged_voxels']} "
+            "voxel(s); their estimates are the last iterate."
+        )
+    excluded = result.get("excluded_runs") or []
+    if excluded:
+        out.append(
+            f"{len(excluded)} run(s) were excluded before fitting (listed under The study); "
+            "the result holds for the runs kept."
+        )
+    if result.get("questions"):
+        out.append(
+            "Each verdict (bilateral, specific, consistent) is a summary by the stated rules "
+            "and the numbers beside it, not a separate test: read the reasons with it."
+        )
+    if not _surviving_count(result, method):
+        out.append(
+            f"No voxel survives {method_words}; absence of a significant effect is not "
+            "evidence that there is no effect."
+        )
+    for w in summary.get("warnings") or []:
+        if str(w).startswith(f"{name}:"):
+            out.append(str(w))
+    return out
+
+
+def _study_context(summary: dict) -> dict:
+    settings = summary.get("settings") or {}
+    results = summary.get("results") or {}
+    first_levels: dict[str, dict] = {}
+    for _name, r in results.items():
+        key = r.get("first_level_contrast") or "runs"
+        if key in first_levels:
+            continue
+        first_levels[key] = {
+            "name": key,
+            "animals": r.get("animals"),
+            "runs": r.get("runs"),
+            "runs_per_animal": list((r.get("runs_per_animal") or {}).items()),
+            "excluded": r.get("excluded_runs") or [],
+            "variance": r.get("first_level_variance"),
+            "voxels": r.get("voxels"),
+            "volume_mm3": r.get("volume_mm3"),
+        }
+    inf = settings.get("inference") or {}
+    model = settings.get("model") or {}
+    contrasts = [
+        {
+            "name": c.get("name"),
+            "weights": ", ".join(f"{k} × {v:g}" for k, v in (c.get("weights") or {}).items()),
+        }
+        for c in settings.get("contrasts") or []
+    ]
+    inference_rows = [
+        (
+            "tests",
+            {
+                "two": "two-sided",
+                "positive": "one-sided, positive",
+                "negative": "one-sided, negative",
+            }.get(inf.get("sided"), str(inf.get("sided"))),
+        ),
+        ("α", f"{inf.get('alpha', 0.05):g}"),
+        ("FDR", "Benjamini–Yekutieli" if inf.get("fdr") == "by" else "Benjamini–Hochberg"),
+        ("permutations asked", str(inf.get("permutations"))),
+    ]
+    if inf.get("permutations"):
+        inference_rows += [
+            ("cluster-forming p", f"{inf.get('cluster_forming_p'):g}"),
+            ("connectivity", f"{inf.get('connectivity')} neighbours"),
+            (
+                "TFCE",
+                f"E = {inf.get('tfce_e'):g}, H = {inf.get('tfce_h'):g}"
+                if inf.get("tfce")
+                else "off",
+            ),
+            ("seed", str(inf.get("seed"))),
+        ]
+    per_result = []
+    for name, r in results.items():
+        perm = (r.get("inference") or {}).get("permutation")
+        per_result.append(
+            {
+                "name": name,
+                "method": _METHOD_LABEL.get(_method(summary, r), _method(summary, r)).format(
+                    a=inf.get("alpha", 0.05)
+                ),
+                "perm": None
+                if not perm
+                else f"{perm['permutations']} {perm['kind']}"
+                + (", exhaustive" if perm.get("exhaustive") else ", random")
+                + f"; smallest attainable p = {float(perm['smallest_attainable_p']):.3g}",
+                "fdr_threshold": ((r.get("inference") or {}).get("fdr") or {}).get("threshold_p"),
+            }
+        )
+    space = settings.get("space") or {}
+    origin = space.get("origin_mm", [0, 0, 0])
+    return {
+        "first_levels": list(first_levels.values()),
+        "model": [
+            ("design formula", model.get("formula", "1")),
+            ("random effects", "intercept per animal; runs nested in animals"),
+            (
+                "between-run variance σ²",
+                "estimated (REML)"
+                if model.get("run_variance") != "known"
+                else "fixed at 0 (first-level variance only)",
+            ),
+            (
+                "degrees of freedom",
+                "Satterthwaite" if model.get("df") == "satterthwaite" else "between-animal",
+            ),
+            (
+                "origin",
+                f"{space.get('origin_name', 'origin')} at "
+                f"({', '.join(f'{v:g}' for v in origin)}) mm",
+            ),
+        ],
+        "contrasts": contrasts,
+        "inference": inference_rows,
+        "per_result": per_result,
+        "warnings": [str(w) for w in summary.get("warnings") or []],
+        "atlas": summary.get("atlas"),
+        "grid": summary.get("grid"),
+    }
+
+
+def _frames(out_dir: Path, name: str) -> dict:
+    out = {}
+    for stem in (
+        "clusters",
+        "regions",
+        "animals",
+        "symmetry",
+        "li_curves",
+        "specificity",
+        "consistency",
+        "run_quality",
+    ):
+        path = out_dir / name / f"{stem}.tsv"
+        if path.is_file():
+            out[stem] = read_tsv(path)
+    return out
+
+
+def build_context(out_dir: Path, *, title: str | None = None) -> dict:
+    """Everything the template needs (figures drawn, tables formatted)."""
+    out_dir = Path(out_dir)
+    summary = load_summary(out_dir)
+    names = result_names(summary)
+    files = present_files(out_dir, summary)
+    results = []
+    for name in names:
+        result = summary["results"][name]
+        frames = _frames(out_dir, name)
+        views = result_table_views(out_dir, name)
+        answer = _answer(name, result, summary, views, frames)
+        results.append(
+            {
+                "name": name,
+                "answer": answer,
+                "figures": _result_figures(out_dir, name, result, summary, frames),
+                "tables": [views[k] for k in REPORT_TABLES if k in views],
+                "cautions": _cautions(name, result, summary, answer["method"]),
+            }
+        )
+    methods = methods_text(summary, files)
+    css = resources.files("grouplevel.templates").joinpath("report.css").read_text("utf-8")
+    tool = summary.get("tool") or {}
+    return {
+        "title": title or summary.get("title") or "grouplevel report",
+        "created": summary.get("created", ""),
+        "rendered": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
+        "tool": f"{tool.get('name', 'grouplevel')} {tool.get('version', '')}".strip(),
+        "css": css,  # our own file, marked safe in the template
+        "study": _study_context(summary),
+        "results": results,
+        "methods": methods,
+        "inputs": summary.get("inputs") or [],
+    }
+
+
+def render_report(out_dir: Path, *, title: str | None = None) -> Path:
+    """Render ``out_dir/report.html`` from a finished output folder.
+
+    Parameters
+    ----------
+    out_dir
+        The output folder of a finished run (summary.json, result folders).
+    title
+        Heading of the report; default: the study's title from summary.json.
+
+    Returns
+    -------
+    Path
+        The written report (one self-contained HTML file).
+
+    Raises
+    ------
+    UserError
+        When ``out_dir`` has no readable summary.json.
+    """
+    out_dir = Path(out_dir)
+    start = time.perf_counter()
+    context = build_context(out_dir, title=title)
+    html = (
+        _environment()
+        .get_template("report.html.j2")
+        .render(**context, render_seconds=f"{time.perf_counter() - start:.1f}")
+    )
+    path = out_dir / "report.html"
+    path.write_text(html, encoding="utf-8")
+    return path

@@ -1,0 +1,488 @@
+"""The HTML report, manuscript tables and methods text of a finished output folder.
+
+Built once per module: the invented example study (with one atlas label renamed to a
+script tag, to check escaping) run with 64 random permutations. A copy of that folder
+gets small hand-made question tables (symmetry, laterality curves, specificity,
+consistency, run quality) to check that their sections appear when the files exist.
+"""
+
+from __future__ import annotations
+
+import base64
+import html.parser
+import io
+import json
+import re
+import shutil
+import struct
+import subprocess
+import time
+from pathlib import Path
+
+import matplotlib.image as mpimg
+import nibabel as nib
+import numpy as np
+import pandas as pd
+import pytest
+
+import grouplevel
+from grouplevel.errors import UserError
+from grouplevel.example import write_example
+from grouplevel.report import render_report, write_manuscript_tables, write_methods
+from grouplevel.report.tables import format_value, latex_escape, read_tsv
+from tests.conftest import write_study
+
+EVIL = "<script>alert(1)</script>"
+PERMUTATIONS = 32  # small enough to be fast; random draws (2^10 = 1024 distinct flips)
+RENDER_CPU_SECONDS = 10.0  # target for the example (CPU time: robust to a loaded machine)
+
+
+@pytest.fixture(scope="module")
+def output(tmp_path_factory) -> Path:
+    base = tmp_path_factory.mktemp("report")
+    toml = write_example(base / "study")
+    atlas = base / "study" / "atlas.tsv"
+    table = pd.read_csv(atlas, sep="\t", dtype=str, keep_default_na=False)
+    table.loc[table["name"] == "visual cortex", "name"] = EVIL
+    table.to_csv(atlas, sep="\t", index=False)
+    return grouplevel.run_study(toml, base / "results", permutations=PERMUTATIONS)
+
+
+@pytest.fixture(scope="module")
+def rendered(output) -> tuple[Path, str, float]:
+    wall, cpu = time.perf_counter(), time.process_time()
+    path = render_report(output)
+    cpu = time.process_time() - cpu
+    print(f"report rendered in {time.perf_counter() - wall:.1f} s wall, {cpu:.1f} s CPU")
+    return path, path.read_text(encoding="utf-8"), cpu
+
+
+class _Page(html.parser.HTMLParser):
+    """Headings in order, tables with their row counts, images, script tags."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.headings: list[tuple[int, str]] = []
+        self.tables: list[dict] = []
+        self.images: list[dict] = []
+        self.scripts = 0
+        self._heading: int | None = None
+        self._text = ""
+        self._section: str | None = None
+        self.sections: list[str] = []
+        self._table: dict | None = None
+        self._in_body = False
+        self._cell: list[str] | None = None
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if tag == "script":
+            self.scripts += 1
+        if tag == "section":
+            self.sections.append(a.get("id", ""))
+        if re.fullmatch(r"h[1-6]", tag):
+            self._heading, self._text = int(tag[1]), ""
+        if tag == "table":
+            self._table = {"source": a.get("data-source"), "rows": [], "headers": []}
+        if tag == "tbody":
+            self._in_body = True
+        if tag == "tr" and self._table is not None and self._in_body:
+            self._table["rows"].append([])
+        if tag in ("td", "th") and self._table is not None:
+            self._cell = []
+            if not self._in_body:
+                assert a.get("scope") == "col", "header cells need scope=col"
+        if tag == "img":
+            self.images.append(a)
+
+    def handle_endtag(self, tag):
+        if self._heading is not None and tag == f"h{self._heading}":
+            self.headings.append((self._heading, self._text.strip()))
+            self._heading = None
+        if tag in ("td", "th") and self._table is not None and self._cell is not None:
+            text = "".join(self._cell).strip()
+            if self._in_body:
+                self._table["rows"][-1].append(text)
+            else:
+                self._table["headers"].append(text)
+            self._cell = None
+        if tag == "tbody":
+            self._in_body = False
+        if tag == "table" and self._table is not None:
+            self.tables.append(self._table)
+            self._table = None
+
+    def handle_data(self, data):
+        if self._heading is not None:
+            self._text += data
+        if self._cell is not None:
+            self._cell.append(data)
+
+
+def _parse(text: str) -> _Page:
+    page = _Page()
+    page.feed(text)
+    return page
+
+
+def _png_size(data: bytes) -> tuple[int, int]:
+    """Width and height from the IHDR chunk (PNG specification, W3C 2003, §11.2.2)."""
+    assert data[:8] == b"\x89PNG\r\n\x1a\n", "not a PNG signature"
+    length, kind = struct.unpack(">I4s", data[8:16])
+    assert kind == b"IHDR" and length == 13
+    return struct.unpack(">II", data[16:24])
+
+
+# --- the report on the real example output -------------------------------------------
+
+
+def test_sections_and_heading_order(rendered):
+    _path, text, _cpu = rendered
+    page = _parse(text)
+    assert page.sections == [
+        "answer",
+        "study",
+        "maps",
+        "tables",
+        "figures",
+        "cautions",
+        "methods",
+    ]
+    levels = [level for level, _ in page.headings]
+    assert levels[0] == 1 and levels.count(1) == 1
+    # no skipped level (WCAG 2.1 technique G141, common practice)
+    assert all(b <= a + 1 for a, b in zip(levels, levels[1:], strict=False))
+    titles = [t for level, t in page.headings if level == 2]
+    assert titles[0] == "In short"
+    h3 = [t for level, t in page.headings if level == 3]
+    assert "sound" in h3 and "paw" in h3
+    assert page.scripts == 0
+
+
+def test_answer_paragraph_states_the_numbers(rendered, output):
+    _path, text, _cpu = rendered
+    summary = json.loads((output / "summary.json").read_text())
+    sound = summary["results"]["sound"]
+    assert "Present?" in text and "Where?" in text
+    # the peak t of summary.json, printed with 2 decimals
+    assert f"t = {sound['peak']['t']:.2f}" in text
+    # the example's sound response sits in auditory cortex (truth of write_example)
+    answer = text[text.index('id="answer"') : text.index('id="study"')]
+    assert "auditory area" in answer
+
+
+def test_every_table_has_as_many_rows_as_its_tsv(rendered, output):
+    _path, text, _cpu = rendered
+    page = _parse(text)
+    sourced = [t for t in page.tables if t["source"]]
+    sources = {t["source"] for t in sourced}
+    assert {"sound/clusters.tsv", "sound/regions.tsv", "paw/regions.tsv"} <= sources
+    for table in sourced:
+        tsv = read_tsv(output / table["source"])
+        assert len(table["rows"]) == len(tsv), table["source"]
+        assert all(len(r) == len(table["headers"]) for r in table["rows"])
+
+
+def test_table_values_are_the_tsv_values_rounded(rendered, output):
+    _path, text, _cpu = rendered
+    page = _parse(text)
+    regions = next(t for t in page.tables if t["source"] == "sound/regions.tsv")
+    tsv = read_tsv(output / "sound/regions.tsv")
+    col = regions["headers"].index("p")
+    for row, value in zip(regions["rows"], tsv["p"], strict=True):
+        if pd.isna(value):
+            assert row[col] == "n/a"
+        else:
+            assert float(row[col]) == pytest.approx(float(value), rel=5e-3, abs=5e-4)
+
+
+def test_figures_are_embedded_pngs_that_decode(rendered):
+    _path, text, _cpu = rendered
+    page = _parse(text)
+    assert len(page.images) >= 8  # montage, views, forest, variance for each contrast
+    for img in page.images:
+        assert img["alt"] and len(img["alt"]) > 20
+        src = img["src"]
+        assert src.startswith("data:image/png;base64,")
+        data = base64.b64decode(src.split(",", 1)[1], validate=True)
+        width, height = _png_size(data)
+        pixels = mpimg.imread(io.BytesIO(data), format="png")
+        assert pixels.shape[:2] == (height, width)
+        assert width >= 300 and height >= 150
+        assert pixels.std() > 0.01  # not a blank image
+    # nothing points outside the file
+    assert not re.search(r"""(src|href)=["']https?:""", text)
+    assert "<link" not in text
+
+
+def test_user_strings_are_escaped(rendered):
+    _path, text, _cpu = rendered
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in text
+    assert "<script" not in text.lower()
+
+
+def test_render_time(rendered):
+    _path, _text, cpu = rendered
+    assert cpu < RENDER_CPU_SECONDS
+
+
+def test_cautions_come_from_the_numbers(rendered, output):
+    _path, text, _cpu = rendered
+    summary = json.loads((output / "summary.json").read_text())
+    perm = summary["results"]["sound"]["inference"]["permutation"]
+    cautions = text[text.index('id="cautions"') : text.index('id="methods"')]
+    assert "10 animals" in cautions
+    assert f"smallest attainable p = {perm['smallest_attainable_p']:.3g}" in cautions
+    assert perm["permutations"] == PERMUTATIONS
+    assert "drawn at random" in cautions
+
+
+# --- manuscript tables ---------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def tables(output) -> list[Path]:
+    return write_manuscript_tables(output)
+
+
+def test_manuscript_table_files(tables, output):
+    names = {p.name for p in tables}
+    for stem in ("sound_clusters", "sound_regions", "paw_regions", "sound_animals"):
+        for suffix in (".tsv", ".csv", ".tex", ".md"):
+            assert stem + suffix in names
+    for path in tables:
+        assert path.parent == output / "tables"
+
+
+def _markdown_frame(path: Path) -> pd.DataFrame:
+    lines = path.read_text(encoding="utf-8").splitlines()
+    assert set(lines[1].replace("|", "").replace(" ", "")) <= set(":-")
+    body = "\n".join([lines[0], *lines[2:]])
+    frame = pd.read_csv(
+        io.StringIO(body), sep=r"\s*(?<!\\)\|\s*", engine="python", dtype=str, na_values=["n/a"]
+    )
+    return frame.drop(columns=[c for c in frame.columns if c.startswith("Unnamed")])
+
+
+def test_markdown_parses_back_to_the_rounded_values(tables, output):
+    md = _markdown_frame(output / "tables" / "sound_clusters.md")
+    tsv = read_tsv(output / "sound" / "clusters.tsv")
+    assert len(md) == len(tsv)
+    # rounding rules: statistics 2 decimals, coordinates 0.01 mm (common practice)
+    for header, source, decimals in (
+        ("z", "z", 2),
+        ("t", "t", 2),
+        ("AP (mm)", "peak_AP_mm", 2),
+        ("ML (mm)", "peak_ML_mm", 2),
+    ):
+        got = md[header].astype(float).to_numpy()
+        want = np.round(tsv[source].astype(float).to_numpy(), decimals)
+        np.testing.assert_allclose(got, want, atol=0.5 * 10**-decimals + 1e-12)
+    p = md["p FWE (extent)"].astype(float).to_numpy()
+    np.testing.assert_allclose(p, tsv["p_fwe_cluster_extent"].astype(float), rtol=5e-3, atol=5e-4)
+    regions = _markdown_frame(output / "tables" / "sound_regions.md")
+    assert EVIL in set(regions["region"])  # text kept as written (Markdown is not HTML)
+
+
+def test_csv_and_tsv_agree(tables, output):
+    a = pd.read_csv(output / "tables" / "sound_regions.csv", dtype=str, keep_default_na=False)
+    b = pd.read_csv(
+        output / "tables" / "sound_regions.tsv", sep="\t", dtype=str, keep_default_na=False
+    )
+    pd.testing.assert_frame_equal(a, b)
+    assert "volume (mm³)" in a.columns and "τ² (map units²)" in a.columns
+
+
+def test_latex_uses_booktabs_and_escapes(tables, output):
+    tex = (output / "tables" / "sound_regions.tex").read_text(encoding="utf-8")
+    for rule in ("\\toprule", "\\midrule", "\\bottomrule"):
+        assert tex.count(rule) == 1
+    assert r"\textless{}script\textgreater{}alert(1)\textless{}/script\textgreater{}" in tex
+    assert "<script>" not in tex
+
+
+def test_latex_compiles(tables, output, tmp_path):
+    pdflatex = shutil.which("pdflatex")
+    if pdflatex is None:
+        pytest.skip("pdflatex not found: the LaTeX tables were not compiled (install texlive)")
+    body = "\n".join(
+        (output / "tables" / f"sound_{k}.tex").read_text(encoding="utf-8")
+        for k in ("clusters", "regions")
+    )
+    doc = (
+        "\\documentclass{article}\n\\usepackage[utf8]{inputenc}\n\\usepackage{booktabs}\n"
+        "\\usepackage[landscape,margin=5mm]{geometry}\n\\begin{document}\n\\tiny\n"
+        f"{body}\n\\end{{document}}\n"
+    )
+    (tmp_path / "t.tex").write_text(doc, encoding="utf-8")
+    run = subprocess.run(
+        [pdflatex, "-interaction=nonstopmode", "-halt-on-error", "t.tex"],
+        cwd=tmp_path,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+    assert run.returncode == 0, run.stdout[-2000:]
+    assert (tmp_path / "t.pdf").stat().st_size > 1000
+
+
+# --- formatting rules ----------------------------------------------------------------
+
+
+def test_p_value_and_number_formatting():
+    # p to 3 decimals, scientific below 0.001 so a small p never reads 0.000
+    # (APA Publication Manual, 7th ed. 2020, §6.36: exact p to 2-3 decimals; value
+    # from memory)
+    assert format_value(0.0004321, "p") == "4.32e-04"
+    assert format_value(0.001, "p") == "0.001"
+    assert format_value(0.04567, "p") == "0.046"
+    assert format_value(1.0, "p") == "1.000"
+    assert format_value(float("nan"), "p") == "n/a"
+    assert format_value(-2.346, "stat") == "-2.35"
+    assert format_value(-0.001, "stat") == "0.00"  # no negative zero
+    assert format_value(-3.3049, "coord") == "-3.30"
+    assert format_value(0.000418193, "variance") == "0.000418"
+    assert format_value("True", "bool") == "yes"
+
+
+def test_latex_escape_specials():
+    # the ten special characters of LaTeX (Lamport 1994, LaTeX: A Document Preparation
+    # System, 2nd ed., §2.2.1 / common practice)
+    assert latex_escape("a_b & 50% #1 $x {y} ~^\\") == (
+        r"a\_b \& 50\% \#1 \$x \{y\} \textasciitilde{}\textasciicircum{}\textbackslash{}"
+    )
+
+
+# --- methods --------------------------------------------------------------------------
+
+
+def test_methods_text_follows_the_settings(output):
+    text = write_methods(output).read_text(encoding="utf-8")
+    assert "REML" in text and "Biometrika 58:545" in text
+    assert "J R Stat Soc B 57:289" in text  # BH (the example's fdr = "bh")
+    assert "Ann Stat 29:1165" not in text  # BY not used
+    assert "NeuroImage 44:83" in text and "E = 0.5, H = 2" in text  # TFCE on
+    assert "NeuroImage 92:381" in text and "PNAS 113:7900" in text
+    assert f"{PERMUTATIONS} rearrangements" in text and "drawn at random (seed 1)" in text
+    assert "10 animals, 33 runs" in text
+    for package in ("numpy", "scipy", "nibabel", "statsmodels"):
+        assert re.search(rf"- {package} \d", text)
+    has_symmetry = (output / "sound" / "symmetry.tsv").exists()
+    assert ("Magn Reson Imaging 26:594" in text) == has_symmetry
+
+
+# --- optional sections from hand-made files ------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def with_questions(output, tmp_path_factory) -> Path:
+    folder = tmp_path_factory.mktemp("questions") / "results"
+    shutil.copytree(output, folder)
+    sound = folder / "sound"
+    pd.DataFrame(
+        {
+            "region": ["auditory cortex", "inferior colliculus"],
+            "li_extent": [0.05, -0.10],
+            "li_extent_low": [-0.1, -0.35],
+            "li_extent_high": [0.2, 0.15],
+            "li_effect": [0.08, 0.02],
+            "li_effect_low": [-0.05, -0.2],
+            "li_effect_high": [0.21, 0.24],
+            "verdict": ["bilateral", "inconclusive"],
+            "reasons": ["TOST p = 0.01 within margin 0.2", "CI crosses the margin"],
+        }
+    ).to_csv(sound / "symmetry.tsv", sep="\t", index=False)
+    pd.DataFrame(
+        {
+            "region": ["auditory cortex"] * 3 + ["inferior colliculus"] * 3,
+            "threshold": [2.0, 3.0, 4.0] * 2,
+            "li": [0.05, 0.07, 0.1, -0.1, -0.2, -0.3],
+        }
+    ).to_csv(sound / "li_curves.tsv", sep="\t", index=False)
+    pd.DataFrame(
+        {"measure": ["target share", "edge share"], "value": [0.82, 0.03], "p": [0.0002, 0.4]}
+    ).to_csv(sound / "specificity.tsv", sep="\t", index=False)
+    animals = [f"m{i:02d}" for i in range(1, 11)]
+    pd.DataFrame(
+        {
+            "animal": animals,
+            "effect": np.linspace(0.1, 0.4, 10),
+            "se": [0.05] * 10,
+            "ci_low": np.linspace(0.1, 0.4, 10) - 0.1,
+            "ci_high": np.linspace(0.1, 0.4, 10) + 0.1,
+            "positive": [True] * 9 + [False],
+        }
+    ).to_csv(sound / "consistency.tsv", sep="\t", index=False)
+    pd.DataFrame(
+        {
+            "animal": ["m01", "m07", "m07"],
+            "session": [1, 1, 2],
+            "run": [1, 1, 1],
+            "correlation": [0.6, 0.1, 0.2],
+            "z_correlation": [0.5, -2.5, -2.0],
+            "z_variance": [0.1, 3.1, 2.0],
+            "flagged": [False, True, False],
+            "why": ["", "low correlation; <b>edge</b>", ""],
+        }
+    ).to_csv(sound / "run_quality.tsv", sep="\t", index=False)
+    mask = nib.load(sound / "mask.nii.gz")
+    t = np.asarray(nib.load(sound / "t.nii.gz").dataobj) * 0.3
+    nib.save(nib.Nifti1Image(t.astype(np.float32), mask.affine), sound / "asymmetry_t.nii.gz")
+    summary = json.loads((folder / "summary.json").read_text())
+    summary["results"]["sound"]["questions"] = {
+        "symmetry": {
+            "auditory cortex": {"verdict": "bilateral", "reasons": ["LI within ±0.2"]},
+            "inferior colliculus": {"verdict": "inconclusive", "reasons": "CI too wide"},
+        },
+        "specificity": {"verdict": "specific", "reasons": ["82% of surviving voxels on target"]},
+        "consistency": {"verdict": "consistent", "reasons": ["9 of 10 animals positive"]},
+    }
+    (folder / "summary.json").write_text(json.dumps(summary))
+    return folder
+
+
+def test_question_sections_render_when_files_exist(with_questions):
+    text = render_report(with_questions).read_text(encoding="utf-8")
+    page = _parse(text)
+    sources = {t["source"]: t for t in page.tables if t["source"]}
+    for stem, n in (("symmetry", 2), ("specificity", 2), ("consistency", 10), ("run_quality", 3)):
+        assert len(sources[f"sound/{stem}.tsv"]["rows"]) == n
+    alts = " ".join(i["alt"] for i in page.images)
+    for words in (
+        "Laterality index with its interval",
+        "as a function of the threshold",
+        "Scatter of each run",
+        "unthresholded left-minus-right",
+        "Forest plot",
+    ):
+        assert words in alts
+    answer = text[text.index('id="answer"') : text.index('id="study"')]
+    assert "Bilateral?" in answer and "auditory cortex: bilateral (LI within ±0.2)" in answer
+    assert "Specific?" in answer and "Consistent?" in answer
+    assert "&lt;b&gt;edge&lt;/b&gt;" in text  # a reason from a file is text, not markup
+    tables = write_manuscript_tables(with_questions)
+    names = {p.name for p in tables}
+    assert {"sound_symmetry.tex", "sound_specificity.md", "sound_consistency.csv"} <= names
+    methods = write_methods(with_questions).read_text(encoding="utf-8")
+    assert "Magn Reson Imaging 26:594" in methods
+
+
+def test_without_atlas_or_permutations(tmp_path):
+    rng = np.random.default_rng(3)
+    animals = [f"a{i}" for i in range(5) for _ in range(2)]
+    effects = 1.0 + rng.normal(0, 0.5, size=(10, 5, 5, 4))
+    toml = write_study(tmp_path / "s", effects, animals, shape=(5, 5, 4))
+    out = grouplevel.run_study(toml, tmp_path / "out", permutations=0)
+    text = render_report(out, title="A & B <i>").read_text(encoding="utf-8")
+    assert "<h1>A &amp; B &lt;i&gt;</h1>" in text
+    assert "No permutation test was run" in text
+    assert "No atlas was given" in text
+    assert write_manuscript_tables(out) == []
+    methods = write_methods(out).read_text(encoding="utf-8")
+    assert "No permutation test was run" in methods
+    assert "NeuroImage 44:83" not in methods and "NeuroImage 92:381" not in methods
+
+
+def test_missing_summary_is_a_user_error(tmp_path):
+    with pytest.raises(UserError, match="summary.json"):
+        render_report(tmp_path)
