@@ -107,8 +107,9 @@ def test_questions_answer_as_planted(fitted):
     flagged = quality[quality["flagged"].astype(bool)]
     assert set(quality.loc[quality["animal"] == motion, "flagged"].astype(bool)) == {True}
     noisy = {(r["animal"], int(r["run"])) for r in truth["noisy_runs"]["runs"]}
-    others = {(a, int(r)) for a, r in zip(flagged["animal"], flagged["run"], strict=True)
-              if a != motion}
+    others = {
+        (a, int(r)) for a, r in zip(flagged["animal"], flagged["run"], strict=True) if a != motion
+    }
     assert others <= noisy  # the only other flags are the runs made noisy on purpose
     edge = quality.groupby("animal")["edge_score"].mean()
     assert edge.idxmax() == motion
