@@ -492,6 +492,17 @@ def permutation_test(
         out[mask] = values
         return out
 
+    def tfce_of(vol: np.ndarray) -> np.ndarray:
+        return tfce_map(
+            vol,
+            mask,
+            connectivity=connectivity,
+            E=tfce_E,
+            H=tfce_H,
+            voxel_volume_mm3=voxel_volume_mm3,
+            sided=sided,
+        )
+
     def maxima(k: int) -> tuple[float, int, float, float]:
         z = statistic(k)
         vol = volume(z)
@@ -499,18 +510,7 @@ def permutation_test(
         extent, mass = max_cluster_extent_and_mass(
             vol, mask, thr, connectivity=connectivity, sided=sided
         )
-        max_tfce = 0.0
-        if use_tfce:
-            score = tfce_map(
-                vol,
-                mask,
-                connectivity=connectivity,
-                E=tfce_E,
-                H=tfce_H,
-                voxel_volume_mm3=voxel_volume_mm3,
-                sided=sided,
-            )
-            max_tfce = float(np.abs(score).max())
+        max_tfce = float(np.abs(tfce_of(vol)).max()) if use_tfce else 0.0
         return max_stat, int(extent), float(mass), max_tfce
 
     n = scheme.n
@@ -541,16 +541,7 @@ def permutation_test(
     p_mass = _fwe_p(clusters.mass, null[:, 2])
     tfce_obs = p_tfce = None
     if use_tfce:
-        score = tfce_map(
-            vol,
-            mask,
-            connectivity=connectivity,
-            E=tfce_E,
-            H=tfce_H,
-            voxel_volume_mm3=voxel_volume_mm3,
-            sided=sided,
-        )
-        tfce_obs = score[mask]
+        tfce_obs = tfce_of(vol)[mask]
         p_tfce = _fwe_p(np.abs(tfce_obs), null[:, 3])
     return PermutationResult(
         scheme=scheme,
