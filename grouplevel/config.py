@@ -53,6 +53,11 @@ DEFAULT_EDGE_DISTANCE_VOXELS = 2  # shell of the mask tested for edge artefacts
 # How to Detect and Handle Outliers; 3.5 — value from memory).
 DEFAULT_OUTLIER_Z = 3.5
 STIMULUS_SIDES = ("left", "right")
+BACKENDS = ("local", "dask")
+DEFAULT_BACKEND = "local"
+# Share of the machine's memory that a run may use when [compute] memory_gb is not set
+# (our own choice: leaves room for the operating system and other programs).
+DEFAULT_MEMORY_SHARE = 0.25
 
 RUN_VARIANCE_CHOICES = ("estimate", "known")
 SIDED_CHOICES = ("two", "positive", "negative")
@@ -94,6 +99,27 @@ class QuestionSettings:
     equivalence_margin: float = DEFAULT_EQUIVALENCE_MARGIN
     edge_distance_voxels: int = DEFAULT_EDGE_DISTANCE_VOXELS
     outlier_z: float = DEFAULT_OUTLIER_Z
+
+
+def default_memory_gb() -> float:
+    """A safe share of the machine's physical memory, in GiB."""
+    import os
+
+    try:
+        total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):
+        total = 8 * 2**30
+    return round(DEFAULT_MEMORY_SHARE * total / 2**30, 2)
+
+
+@dataclass(frozen=True)
+class ComputeSettings:
+    """Where and within what memory the work runs."""
+
+    memory_gb: float = field(default_factory=default_memory_gb)
+    backend: str = DEFAULT_BACKEND
+    scheduler: str | None = None  # dask scheduler address; None: a local cluster
+    workers: int | None = None  # local dask cluster size; None: the machine's cores
 
 
 @dataclass(frozen=True)
@@ -154,6 +180,7 @@ class Settings:
     questions: QuestionSettings = field(default_factory=QuestionSettings)
     # per first-level contrast overrides of [questions] ([questions.<contrast>])
     questions_by_contrast: dict[str, QuestionSettings] = field(default_factory=dict)
+    compute: ComputeSettings = field(default_factory=ComputeSettings)
     user_contrasts: bool = field(default=False)
 
     def questions_for(self, first_level: str | None) -> QuestionSettings:
@@ -184,6 +211,7 @@ _SCHEMA: dict[str, tuple[str, ...]] = {
     "space": ("origin_mm", "origin_name"),
     "atlas": ("image", "labels", "midline_mm", "min_coverage"),
     "clusters": ("method", "subpeak_distance_mm", "top_regions"),
+    "compute": ("memory_gb", "backend", "scheduler", "workers"),
     "questions": (
         "symmetry",
         "targets",
@@ -494,6 +522,36 @@ def load_settings(path: str | Path) -> Settings:
             if isinstance(sub, dict):
                 overrides[name] = _read_questions(r, f"questions.{name}", sub, questions)
 
+    co = section("compute")
+    memory_gb = r.get("compute", co, "memory_gb", float, None)
+    if memory_gb is not None and memory_gb <= 0:
+        r.problem("[compute] memory_gb", f"must be positive, got {memory_gb}")
+        memory_gb = None
+    backend = r.get("compute", co, "backend", str, DEFAULT_BACKEND)
+    if backend not in BACKENDS:
+        r.problem(
+            "[compute] backend",
+            f"must be one of {', '.join(BACKENDS)}, got {backend!r}" + _suggest(backend, BACKENDS),
+        )
+    if backend == "dask":
+        import importlib.util
+
+        if importlib.util.find_spec("distributed") is None:
+            r.problem(
+                "[compute] backend",
+                "\"dask\" needs the optional packages dask and distributed: "
+                "pip install 'grouplevel[distributed]'",
+            )
+    workers = r.get("compute", co, "workers", int, None)
+    if workers is not None and workers < 1:
+        r.problem("[compute] workers", f"must be at least 1, got {workers}")
+    compute = ComputeSettings(
+        memory_gb=memory_gb if memory_gb is not None else default_memory_gb(),
+        backend=backend,
+        scheduler=r.get("compute", co, "scheduler", str, None),
+        workers=workers,
+    )
+
     if r.problems:
         raise UserError(f"{path}: {len(r.problems)} problem(s) in the study file", r.problems)
     return Settings(
@@ -507,6 +565,7 @@ def load_settings(path: str | Path) -> Settings:
         clusters=clusters,
         questions=questions,
         questions_by_contrast=overrides,
+        compute=compute,
         user_contrasts=user_contrasts,
     )
 
