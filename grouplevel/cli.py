@@ -168,6 +168,9 @@ def _plan(args: argparse.Namespace) -> int:
         print(f"caution: {plans[0].caution}")
     for path in write_plan(args.folder, plans):
         print(f"wrote {path}")
+    from grouplevel.report import render_report
+
+    print(f"report (with a planning section): {render_report(args.folder)}")
     return 0
 
 

@@ -486,3 +486,40 @@ def test_without_atlas_or_permutations(tmp_path):
 def test_missing_summary_is_a_user_error(tmp_path):
     with pytest.raises(UserError, match="summary.json"):
         render_report(tmp_path)
+
+
+def test_planning_section_after_plan(tmp_path):
+    # `grouplevel plan` adds power.png and summary["plan"]; the report then shows them.
+    import json
+
+    from grouplevel.report.render import build_context
+
+    out = tmp_path / "out"
+    (out / "sound").mkdir(parents=True)
+    summary = {
+        "title": "t",
+        "results": {"sound": {"first_level_contrast": "sound", "group_contrast": "mean"}},
+        "plan": {
+            "sound": {
+                "regions": [
+                    {
+                        "region": "primary auditory area",
+                        "hemisphere": "left",
+                        "inputs": {
+                            "effect": 0.3,
+                            "effect_source": "observed",
+                            "animals": 10,
+                            "runs_per_animal": 3.3,
+                            "power_of_this_study": 0.95,
+                        },
+                        "cheapest": {"animals": 6, "runs": 2, "power": 0.83, "cost": 72.0},
+                        "caution": "Power computed from an observed effect is optimistic.",
+                    }
+                ]
+            }
+        },
+    }
+    (out / "summary.json").write_text(json.dumps(summary))
+    (result,) = build_context(out)["results"]
+    assert result["plan"]["rows"][0]["best"] == "6 animals × 2 runs: power 0.83, cost 72"
+    assert "optimistic" in result["plan"]["caution"]

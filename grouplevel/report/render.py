@@ -705,6 +705,44 @@ def _frames(out_dir: Path, name: str) -> dict:
     return out
 
 
+def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:
+    """The planning section of one result (after `grouplevel plan`), or None."""
+    plan = ((summary.get("plan") or {}).get(name) or {}).get("regions")
+    if not plan:
+        return None
+    rows = []
+    for p in plan:
+        inputs = p.get("inputs") or {}
+        best = p.get("cheapest")
+        effect = inputs.get("effect", float("nan"))
+        runs = inputs.get("runs_per_animal", 0.0)
+        power = inputs.get("power_of_this_study", float("nan"))
+        rows.append(
+            {
+                "region": f"{p.get('region')} ({p.get('hemisphere')})",
+                "effect": f"{effect:.3g} ({inputs.get('effect_source', '')})",
+                "now": f"{inputs.get('animals')} animals, {runs:.1f} runs each: power {power:.2f}",
+                "best": "none in the grid reaches the target"
+                if not best
+                else f"{best['animals']} animals × {best['runs']} runs: power "
+                f"{best['power']:.2f}, cost {best['cost']:g}",
+            }
+        )
+    figure = None
+    png = out_dir / name / "power.png"
+    if png.is_file():
+        figure = _figure(
+            "power",
+            "Power of future designs",
+            png.read_bytes(),
+            f"Heat map of the power to detect the effect in {name}'s target regions for "
+            "4 to 24 animals and 1 to 8 runs per animal, with the target-power contour.",
+            "Power over animals × runs per animal (power.tsv); the ring marks the cheapest "
+            "design reaching the target power.",
+        )
+    return {"rows": rows, "figure": figure, "caution": plan[0].get("caution", "")}
+
+
 def build_context(out_dir: Path, *, title: str | None = None) -> dict:
     """Everything the template needs (figures drawn, tables formatted)."""
     out_dir = Path(out_dir)
@@ -724,6 +762,7 @@ def build_context(out_dir: Path, *, title: str | None = None) -> dict:
                 "figures": _result_figures(out_dir, name, result, summary, frames),
                 "tables": [views[k] for k in REPORT_TABLES if k in views],
                 "cautions": _cautions(name, result, summary, answer["method"]),
+                "plan": _plan(out_dir, name, summary),
             }
         )
     methods = methods_text(summary, files)
