@@ -539,7 +539,7 @@ def load_settings(path: str | Path) -> Settings:
         if importlib.util.find_spec("distributed") is None:
             r.problem(
                 "[compute] backend",
-                "\"dask\" needs the optional packages dask and distributed: "
+                '"dask" needs the optional packages dask and distributed: '
                 "pip install 'grouplevel[distributed]'",
             )
     workers = r.get("compute", co, "workers", int, None)

@@ -22,6 +22,7 @@ from scipy import stats
 from tqdm import tqdm
 
 from grouplevel import __version__
+from grouplevel.compute import Backend, fit_voxel_chunks, open_backend
 from grouplevel.config import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
 from grouplevel.errors import UserError
 from grouplevel.images import Grid, write_map
@@ -33,7 +34,6 @@ from grouplevel.inference.permutation import (
 )
 from grouplevel.model import (
     between_animal_df,
-    fit_reml,
     satterthwaite_df,
     test_contrast,
 )
@@ -189,6 +189,7 @@ def _correct(
     mask: np.ndarray,
     label: str,
     quiet: bool,
+    backend: Backend | None = None,
 ) -> Corrected:
     inf: InferenceSettings = study.settings.inference
     p_sided = _sided_p(t, df, inf.sided)
@@ -215,6 +216,7 @@ def _correct(
             tfce_E=inf.tfce_e,
             tfce_H=inf.tfce_h,
             progress=lambda done, total: (setattr(bar, "total", total), bar.update(done)),
+            backend=backend,
         )
         bar.close()
         if perm.scheme.smallest_p > inf.alpha:
@@ -235,7 +237,11 @@ def _correct(
 
 
 def _fit_first_level(
-    study: Study, fl: FirstLevel, log: Callable[[str], None], quiet: bool = True
+    study: Study,
+    fl: FirstLevel,
+    log: Callable[[str], None],
+    quiet: bool = True,
+    backend: Backend | None = None,
 ) -> tuple[list[GroupMap], list[str]]:
     settings = study.settings
     warnings: list[str] = []
@@ -255,11 +261,13 @@ def _fit_first_level(
             )
             idx = np.argwhere(mask)[flat]
             mask[tuple(idx.T)] = False
-    y = data.effect[:, keep]
-    s2 = None if data.variance is None else data.variance[:, keep]
+    # index only when needed: a boolean index copies the runs × voxels array
+    y = data.effect if keep.all() else data.effect[:, keep]
+    s2 = data.variance if data.variance is None or keep.all() else data.variance[:, keep]
     design = fl.design
     log(f"fitting {label}: {y.shape[1]:,} voxels, {y.shape[0]} runs, {design.n_animals} animals")
-    fit = fit_reml(
+    fit = fit_voxel_chunks(
+        backend or Backend(kind="local"),
         y,
         s2,
         design.matrix,
@@ -307,7 +315,9 @@ def _fit_first_level(
         spec = next(s for s in settings.contrasts if s.name == cname)
         name = fl.output_name(cname, default)
         df_full = np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy()
-        corrected = _correct(study, c, res.t, df_full, animal_data, smooth, mask, name, quiet)
+        corrected = _correct(
+            study, c, res.t, df_full, animal_data, smooth, mask, name, quiet, backend
+        )
         warnings.extend(corrected.warnings)
         gm = GroupMap(
             name=name,
@@ -368,10 +378,14 @@ def fit_study(
     log = log or (lambda _msg: None)
     maps: list[GroupMap] = []
     warnings: list[str] = []
-    for fl in study.first_levels:
-        m, w = _fit_first_level(study, fl, log, quiet)
-        maps.extend(m)
-        warnings.extend(w)
+    # one backend for the whole study: a dask cluster takes seconds to start
+    with open_backend(study.settings.compute) as backend:
+        if backend.distributed:
+            log(f"computing on dask: {backend.workers} worker(s)")
+        for fl in study.first_levels:
+            m, w = _fit_first_level(study, fl, log, quiet, backend)
+            maps.extend(m)
+            warnings.extend(w)
     return maps, warnings
 
 

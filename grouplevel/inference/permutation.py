@@ -48,6 +48,7 @@ import os
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from typing import Protocol
 
 import numpy as np
 from scipy import stats
@@ -384,6 +385,106 @@ def _fwe_p(observed: np.ndarray, null_max: np.ndarray) -> np.ndarray:
     return count / ordered.size
 
 
+class PermutationBackend(Protocol):
+    """What :func:`permutation_test` needs of a compute backend (:mod:`grouplevel.compute`)."""
+
+    @property
+    def distributed(self) -> bool:
+        """True when work is sent to other processes (else it runs here, in threads)."""
+
+    def permutation_batch(self, n: int) -> int:
+        """Permutations per task for a plan of ``n`` permutations."""
+
+    def map_batches(
+        self,
+        func: Callable[[_PermutationWork, np.ndarray], np.ndarray],
+        shared: _PermutationWork,
+        batches: list[np.ndarray],
+        progress: Callable[[int], None] | None = None,
+    ) -> list[np.ndarray]:
+        """``[func(shared, b) for b in batches]`` in order; ``progress(len(b))`` per batch."""
+
+
+@dataclass(frozen=True, eq=False)
+class _PermutationWork:
+    """Everything one permutation needs: the arrays shared by all permutations and the
+    plan. Picklable, so a distributed backend can send it to each worker once."""
+
+    fitted: np.ndarray  # (V, m) nuisance fit at the unpermuted τ̂²
+    residual: np.ndarray  # (V, m) what is flipped / permuted
+    precision: np.ndarray  # (V, m)
+    X_perm: np.ndarray  # (m, p) [x_interest, nuisance]
+    tau2_start: np.ndarray  # (V,)
+    signs: np.ndarray  # (n, m) float
+    orders: np.ndarray  # (n, m) int64
+    tables: np.ndarray  # t → z tables, one row per df value
+    df_row: np.ndarray  # (V,) table row of each voxel
+    du: float
+    mask: np.ndarray  # 3-D bool
+    sided: str
+    threshold: float  # cluster-forming z
+    connectivity: int
+    voxel_volume_mm3: float
+    use_tfce: bool
+    tfce_E: float
+    tfce_H: float
+
+    def statistic(self, k: int) -> np.ndarray:
+        """z map (in-mask) of permutation k; k = 0 is the unpermuted data."""
+        z = np.empty(self.fitted.shape[0])
+        _refit_kernel.refit_z_permuted(
+            self.fitted,
+            self.residual,
+            self.precision,
+            self.signs[k],
+            self.orders[k],
+            self.X_perm,
+            self.tau2_start,
+            self.tables,
+            self.df_row,
+            self.du,
+            z,
+            _refit_kernel.REFIT_MAX_ITER,
+            _refit_kernel.REFIT_TOL,
+        )
+        return z
+
+    def volume(self, values: np.ndarray) -> np.ndarray:
+        out = np.zeros(self.mask.shape)
+        out[self.mask] = values
+        return out
+
+    def tfce_of(self, vol: np.ndarray) -> np.ndarray:
+        return tfce_map(
+            vol,
+            self.mask,
+            connectivity=self.connectivity,
+            E=self.tfce_E,
+            H=self.tfce_H,
+            voxel_volume_mm3=self.voxel_volume_mm3,
+            sided=self.sided,
+        )
+
+    def maxima(self, k: int) -> tuple[float, int, float, float]:
+        """Maximum statistic, cluster extent, cluster mass and TFCE of permutation k."""
+        z = self.statistic(k)
+        vol = self.volume(z)
+        max_stat = float(_oriented(z, self.sided).max())
+        extent, mass = max_cluster_extent_and_mass(
+            vol, self.mask, self.threshold, connectivity=self.connectivity, sided=self.sided
+        )
+        max_tfce = float(np.abs(self.tfce_of(vol)).max()) if self.use_tfce else 0.0
+        return max_stat, int(extent), float(mass), max_tfce
+
+
+def maxima_rows(work: _PermutationWork, ks: np.ndarray) -> np.ndarray:
+    """(len(ks), 4) null maxima of the permutations ``ks``: one task of a distributed run."""
+    out = np.zeros((len(ks), 4))
+    for i, k in enumerate(ks):
+        out[i] = work.maxima(int(k))
+    return out
+
+
 def permutation_test(
     data: AnimalLevelData,
     c: np.ndarray,
@@ -401,6 +502,7 @@ def permutation_test(
     tfce_H: float = 2.0,
     progress: Callable[[int, int], None] | None = None,
     threads: int | None = None,
+    backend: PermutationBackend | None = None,
 ) -> PermutationResult:
     """Run the permutation test of contrast ``c`` and return FWE-corrected maps.
 
@@ -427,7 +529,15 @@ def permutation_test(
         Called with the number of permutations finished since the last call and the
         total number of permutations.
     threads
-        Worker threads (default: the available cores).
+        Worker threads (default: the available cores); local runs only.
+    backend
+        Where the permutations run. None, or a backend whose ``distributed`` is False,
+        runs them here in ``threads`` threads. A distributed backend
+        (:func:`grouplevel.compute.open_backend` with ``backend = "dask"``) sends the
+        shared arrays to every worker once and evaluates batches of the permutation plan
+        there; the plan is drawn here from ``rng`` first, so the same seed gives the
+        same null maxima and p-values on either backend. The observed maps are always
+        computed here.
 
     References
     ----------
@@ -452,86 +562,55 @@ def permutation_test(
     residual = data.mean - fitted
     to_z = _TtoZ(np.asarray(df, dtype=float))
     thr = cluster_forming_z(cluster_forming_p, sided)
-    grid_shape = mask.shape
-    n_threads = threads or max(1, len(os.sched_getaffinity(0)))
-
-    fitted = np.ascontiguousarray(fitted)
-    residual = np.ascontiguousarray(residual)
-    precision = np.ascontiguousarray(data.precision)
-    X_perm = np.ascontiguousarray(X_perm, dtype=np.float64)
-    tau2_start = np.ascontiguousarray(data.var_animal, dtype=np.float64)
-    signs = scheme.signs.astype(np.float64)
-    orders = scheme.orders.astype(np.int64)
-
     tables = np.ascontiguousarray(np.array(to_z.tables))
-    df_row = np.ascontiguousarray(to_z.index, dtype=np.int64)
-    du = float(to_z.u[1] - to_z.u[0])
-
-    def statistic(k: int) -> np.ndarray:
-        """z map (in-mask) of permutation k; k = 0 is the unpermuted data."""
-        z = np.empty(V)
-        _refit_kernel.refit_z_permuted(
-            fitted,
-            residual,
-            precision,
-            signs[k],
-            orders[k],
-            X_perm,
-            tau2_start,
-            tables,
-            df_row,
-            du,
-            z,
-            _refit_kernel.REFIT_MAX_ITER,
-            _refit_kernel.REFIT_TOL,
-        )
-        return z
-
-    def volume(values: np.ndarray) -> np.ndarray:
-        out = np.zeros(grid_shape)
-        out[mask] = values
-        return out
-
-    def tfce_of(vol: np.ndarray) -> np.ndarray:
-        return tfce_map(
-            vol,
-            mask,
-            connectivity=connectivity,
-            E=tfce_E,
-            H=tfce_H,
-            voxel_volume_mm3=voxel_volume_mm3,
-            sided=sided,
-        )
-
-    def maxima(k: int) -> tuple[float, int, float, float]:
-        z = statistic(k)
-        vol = volume(z)
-        max_stat = float(_oriented(z, sided).max())
-        extent, mass = max_cluster_extent_and_mass(
-            vol, mask, thr, connectivity=connectivity, sided=sided
-        )
-        max_tfce = float(np.abs(tfce_of(vol)).max()) if use_tfce else 0.0
-        return max_stat, int(extent), float(mass), max_tfce
+    work = _PermutationWork(
+        fitted=np.ascontiguousarray(fitted),
+        residual=np.ascontiguousarray(residual),
+        precision=np.ascontiguousarray(data.precision),
+        X_perm=np.ascontiguousarray(X_perm, dtype=np.float64),
+        tau2_start=np.ascontiguousarray(data.var_animal, dtype=np.float64),
+        signs=scheme.signs.astype(np.float64),
+        orders=scheme.orders.astype(np.int64),
+        tables=tables,
+        df_row=np.ascontiguousarray(to_z.index, dtype=np.int64),
+        du=float(to_z.u[1] - to_z.u[0]),
+        mask=mask,
+        sided=sided,
+        threshold=thr,
+        connectivity=connectivity,
+        voxel_volume_mm3=voxel_volume_mm3,
+        use_tfce=use_tfce,
+        tfce_E=tfce_E,
+        tfce_H=tfce_H,
+    )
 
     n = scheme.n
-    null = np.zeros((n, 4))
-    batch = 16
-    pool = ThreadPoolExecutor(max_workers=n_threads) if n_threads > 1 else None
-    try:
-        for start in range(0, n, batch):
-            ks = range(start, min(n, start + batch))
-            rows = pool.map(maxima, ks) if pool is not None else map(maxima, ks)
-            for k, row in zip(ks, rows, strict=True):
-                null[k] = row
-            if progress is not None:
-                progress(len(ks), n)
-    finally:
-        if pool is not None:
-            pool.shutdown()
+    if backend is not None and backend.distributed:
+        # the plan is drawn above, locally: the workers only evaluate given permutations
+        size = backend.permutation_batch(n)
+        batches = [np.arange(lo, min(n, lo + size)) for lo in range(0, n, size)]
+        done = None if progress is None else (lambda finished: progress(finished, n))
+        null = np.concatenate(backend.map_batches(maxima_rows, work, batches, done))
+    else:
+        null = np.zeros((n, 4))
+        batch = 16
+        n_threads = threads or max(1, len(os.sched_getaffinity(0)))
+        pool = ThreadPoolExecutor(max_workers=n_threads) if n_threads > 1 else None
+        try:
+            for start in range(0, n, batch):
+                ks = range(start, min(n, start + batch))
+                rows = pool.map(work.maxima, ks) if pool is not None else map(work.maxima, ks)
+                for k, row in zip(ks, rows, strict=True):
+                    null[k] = row
+                if progress is not None:
+                    progress(len(ks), n)
+        finally:
+            if pool is not None:
+                pool.shutdown()
 
     # observed maps (identity permutation)
-    z_obs = statistic(0)
-    vol = volume(z_obs)
+    z_obs = work.statistic(0)
+    vol = work.volume(z_obs)
     oriented = _oriented(z_obs, sided)
     p_voxel = _fwe_p(oriented, null[:, 0])
     clusters = find_clusters(
@@ -541,7 +620,7 @@ def permutation_test(
     p_mass = _fwe_p(clusters.mass, null[:, 2])
     tfce_obs = p_tfce = None
     if use_tfce:
-        tfce_obs = tfce_of(vol)[mask]
+        tfce_obs = work.tfce_of(vol)[mask]
         p_tfce = _fwe_p(np.abs(tfce_obs), null[:, 3])
     return PermutationResult(
         scheme=scheme,

@@ -1,0 +1,300 @@
+"""Where the heavy work runs: in this process, or spread over a dask.distributed cluster.
+
+Two steps of an analysis dominate its run time, and both split into independent pieces:
+
+* the REML fit: every voxel is fitted on its own, so the voxels can be cut into chunks,
+  each chunk fitted anywhere, and the results put back in order
+  (:func:`fit_voxel_chunks`);
+* the permutation test: every permutation of the plan is evaluated on its own, so
+  batches of permutations can run anywhere once the arrays they share have been sent
+  (:func:`grouplevel.inference.permutation.permutation_test` with ``backend=``).
+
+:func:`open_backend` turns the ``[compute]`` settings into a :class:`Backend` — a context
+manager that owns whatever it started. ``"local"`` runs everything here, exactly as
+without a backend. ``"dask"`` connects to a running scheduler, or starts a cluster of
+worker processes on this machine (loopback only) and shuts it down on exit.
+
+The results do not depend on the backend: chunks are fitted by the same compiled kernel
+and the permutation plan is drawn here, from the one seeded generator, before anything
+is sent out. The optional packages ``dask`` and ``distributed`` are imported only when
+the dask backend is opened.
+
+References
+----------
+Rocklin M (2015). Dask: parallel computation with blocked algorithms and task
+scheduling. Proceedings of the 14th Python in Science Conference, pp. 130-136.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, fields
+from typing import Any
+
+import numpy as np
+
+from grouplevel.config import BACKENDS, ComputeSettings
+from grouplevel.errors import UserError
+from grouplevel.model.reml import MixedFit, _check_inputs, fit_reml
+
+# Seconds to wait for a remote scheduler before giving up (distributed's own default
+# connect timeout is 30 s; common practice).
+CONNECT_TIMEOUT_S = 30.0
+# Tasks per worker for a distributed fit or permutation test: a few per worker keep every
+# worker busy when tasks take unequal time, without paying the per-task overhead
+# (a few milliseconds) too often (common practice for task schedulers).
+TASKS_PER_WORKER = 4
+# Smallest voxel chunk sent as one fitting task: below this the transfer and scheduling
+# cost more than the fit (our own choice; a chunk of 2048 voxels × 30 runs fits in ~10 ms).
+MIN_CHUNK_VOXELS = 2048
+# Smallest and largest number of permutations in one task (our own choice: at least the
+# batch of the local engine, and small enough that progress is reported often).
+MIN_PERMUTATION_BATCH = 16
+MAX_PERMUTATION_BATCH = 256
+
+
+def _cores() -> int:
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # platforms without sched_getaffinity
+        return max(1, os.cpu_count() or 1)
+
+
+@dataclass(frozen=True, eq=False)
+class Backend:
+    """An open compute backend (see :func:`open_backend`).
+
+    Attributes
+    ----------
+    kind
+        ``"local"`` or ``"dask"``.
+    client
+        The ``distributed.Client`` of a dask backend; None for the local one.
+    workers
+        Number of worker processes (1 for the local backend).
+    """
+
+    kind: str
+    client: Any = None
+    workers: int = 1
+
+    @property
+    def distributed(self) -> bool:
+        """True when work is sent to worker processes."""
+        return self.client is not None
+
+    def permutation_batch(self, n: int) -> int:
+        """Permutations per task for a plan of ``n`` permutations."""
+        size = math.ceil(n / (TASKS_PER_WORKER * self.workers))
+        return int(min(MAX_PERMUTATION_BATCH, max(MIN_PERMUTATION_BATCH, size)))
+
+    def map_batches(
+        self,
+        func: Callable[[Any, np.ndarray], np.ndarray],
+        shared: Any,
+        batches: list[np.ndarray],
+        progress: Callable[[int], None] | None = None,
+    ) -> list[np.ndarray]:
+        """``[func(shared, b) for b in batches]``, in the order of ``batches``.
+
+        On a dask backend ``shared`` is sent to every worker once (``broadcast=True``)
+        and each batch is one task; ``func`` must be importable by the workers (a module
+        level function of an installed package). ``progress(len(b))`` is called as each
+        batch finishes, in the order they finish.
+        """
+        if self.client is None:
+            out = []
+            for b in batches:
+                out.append(func(shared, b))
+                if progress is not None:
+                    progress(len(b))
+            return out
+        from distributed import as_completed
+
+        remote = self.client.scatter(shared, broadcast=True, hash=False)
+        futures = [self.client.submit(func, remote, b, pure=False) for b in batches]
+        position = {f.key: i for i, f in enumerate(futures)}
+        out: list[np.ndarray | None] = [None] * len(batches)
+        try:
+            done = as_completed(futures, with_results=True, loop=self.client.loop)
+            for future, result in done:
+                i = position[future.key]
+                out[i] = result
+                if progress is not None:
+                    progress(len(batches[i]))
+        except BaseException:  # interrupted or failed: stop the tasks still queued
+            self.client.cancel(futures)
+            raise
+        return out
+
+
+@contextmanager
+def open_backend(
+    settings: ComputeSettings, *, connect_timeout_s: float = CONNECT_TIMEOUT_S
+) -> Iterator[Backend]:
+    """Open the backend that ``settings`` (the ``[compute]`` section) asks for.
+
+    Parameters
+    ----------
+    settings
+        ``backend`` ``"local"`` runs everything in this process. ``"dask"`` connects to
+        ``scheduler`` (an address such as ``"tcp://10.0.0.5:8786"``) or, when that is
+        None, starts ``distributed.LocalCluster`` with ``workers`` single-threaded
+        worker processes (default: this machine's cores) listening on 127.0.0.1 only,
+        without a dashboard.
+    connect_timeout_s
+        How long to wait for the scheduler.
+
+    Yields
+    ------
+    Backend
+        Closed on exit, together with the cluster it started (a remote scheduler and
+        its workers are left running).
+
+    Raises
+    ------
+    UserError
+        For an unknown backend, a worker count below 1, missing optional packages or a
+        scheduler that cannot be reached.
+    """
+    if settings.backend not in BACKENDS:
+        raise UserError(
+            f"[compute] backend must be one of {', '.join(BACKENDS)}, got "
+            f"{settings.backend!r}; set it in the study file's [compute] section."
+        )
+    if settings.backend == "local":
+        yield Backend(kind="local")
+        return
+    if settings.workers is not None and settings.workers < 1:
+        raise UserError(
+            f"[compute] workers must be at least 1, got {settings.workers}; leave it out "
+            "to use one worker per core."
+        )
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError as err:
+        raise UserError(
+            '[compute] backend = "dask" needs the optional packages dask and distributed: '
+            "pip install 'grouplevel[distributed]', or set backend = \"local\"."
+        ) from err
+    cluster = None
+    if settings.scheduler is None:
+        cluster = LocalCluster(
+            n_workers=settings.workers or _cores(),
+            threads_per_worker=1,
+            processes=True,
+            host="127.0.0.1",
+            dashboard_address=None,
+        )
+        address = cluster.scheduler_address
+    else:
+        address = settings.scheduler
+    try:
+        try:
+            client = Client(address, timeout=f"{connect_timeout_s}s", set_as_default=False)
+        except (OSError, TimeoutError) as err:
+            raise UserError(
+                f"[compute] scheduler: cannot reach the dask scheduler at {address!r} "
+                f"within {connect_timeout_s:g} s ({err}); start it with "
+                "'dask scheduler' and its workers with 'dask worker ADDRESS', or leave "
+                "scheduler out to start a cluster on this machine."
+            ) from err
+        try:
+            n_workers = len(client.scheduler_info()["workers"])
+            yield Backend(kind="dask", client=client, workers=max(1, n_workers))
+        finally:
+            client.close()
+    finally:
+        if cluster is not None:
+            cluster.close()
+
+
+def _chunk_bounds(n_voxels: int, n_chunks: int) -> list[tuple[int, int]]:
+    edges = np.linspace(0, n_voxels, n_chunks + 1).round().astype(int)
+    return [(int(lo), int(hi)) for lo, hi in zip(edges[:-1], edges[1:], strict=True) if hi > lo]
+
+
+def fit_voxel_chunks(
+    backend: Backend,
+    y: np.ndarray,
+    variance: np.ndarray | None,
+    X: np.ndarray,
+    animal: np.ndarray,
+    /,
+    *,
+    n_chunks: int | None = None,
+    **fit_kwargs: Any,
+) -> MixedFit:
+    """:func:`~grouplevel.model.reml.fit_reml` with the voxels spread over a backend.
+
+    Parameters
+    ----------
+    backend
+        From :func:`open_backend`. The local backend makes one ``fit_reml`` call here.
+    y, variance, X, animal
+        As for ``fit_reml``: ``y`` and ``variance`` are (n_runs, V).
+    n_chunks
+        Voxel chunks (tasks) for a dask backend; default ``TASKS_PER_WORKER`` per worker,
+        with chunks of at least ``MIN_CHUNK_VOXELS`` voxels.
+    **fit_kwargs
+        Passed to ``fit_reml`` unchanged (``estimate_run_variance``, ``max_iter``, and
+        its own ``backend="compiled" | "numpy"``: the arguments before are
+        positional-only, so the names do not clash).
+
+    Returns
+    -------
+    MixedFit
+        Identical to one ``fit_reml`` call on all voxels: each voxel is fitted on its
+        own, so cutting the voxels into chunks changes no number.
+
+    Notes
+    -----
+    Each chunk's columns of ``y`` and ``variance`` are sent to one worker; ``X`` and
+    ``animal`` are small and go with every task. The concatenated result needs the same
+    memory here as a local fit.
+    """
+    if backend.client is None:
+        return fit_reml(y, variance, X, animal, **fit_kwargs)
+    # the same checks as fit_reml, here on all voxels, so a mistake is reported once
+    # and with whole-study counts rather than from inside one chunk
+    y, variance, X, animal = _check_inputs(
+        y, variance, X, animal, fit_kwargs.get("estimate_run_variance", True)
+    )
+    n_vox = y.shape[1]
+    if n_chunks is None:
+        n_chunks = min(TASKS_PER_WORKER * backend.workers, math.ceil(n_vox / MIN_CHUNK_VOXELS))
+    if n_chunks < 1:
+        raise UserError(f"fit_voxel_chunks: n_chunks must be at least 1, got {n_chunks}.")
+    bounds = _chunk_bounds(n_vox, max(1, min(n_chunks, n_vox)))
+    if not bounds:  # no voxels at all: fit_reml returns the empty fit
+        return fit_reml(y, variance, X, animal, **fit_kwargs)
+    pieces = [(y[:, lo:hi], None if variance is None else variance[:, lo:hi]) for lo, hi in bounds]
+    client = backend.client
+    remote = client.scatter([p for piece in pieces for p in piece if p is not None], hash=False)
+    step = 1 if variance is None else 2
+    futures = []
+    for i in range(len(pieces)):
+        yc = remote[step * i]
+        vc = None if variance is None else remote[step * i + 1]
+        futures.append(client.submit(fit_reml, yc, vc, X, animal, pure=False, **fit_kwargs))
+    try:
+        fits = client.gather(futures)
+    except BaseException:  # interrupted or failed: stop the tasks still queued
+        client.cancel(futures)
+        raise
+    return _concatenate(fits)
+
+
+def _concatenate(fits: list[MixedFit]) -> MixedFit:
+    """Put the fits of consecutive voxel chunks together, in order."""
+    values = {}
+    for f in fields(MixedFit):
+        first = getattr(fits[0], f.name)
+        if isinstance(first, np.ndarray):
+            values[f.name] = np.concatenate([getattr(fit, f.name) for fit in fits], axis=0)
+        else:  # settings shared by every chunk (estimate_run_variance)
+            values[f.name] = first
+    return MixedFit(**values)
