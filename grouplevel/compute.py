@@ -141,10 +141,10 @@ def open_backend(
     ----------
     settings
         ``backend`` ``"local"`` runs everything in this process. ``"dask"`` connects to
-        ``scheduler`` (an address such as ``"tcp://10.0.0.5:8786"``) or, when that is
-        None, starts ``distributed.LocalCluster`` with ``workers`` single-threaded
-        worker processes (default: this machine's cores) listening on 127.0.0.1 only,
-        without a dashboard.
+        ``scheduler`` (an address such as ``"tcp://scheduler-host:8786"``) or, when
+        that is None, starts ``distributed.LocalCluster`` with ``workers``
+        single-threaded worker processes (default: this machine's cores), the cluster
+        and its HTTP endpoint listening on 127.0.0.1 only.
     connect_timeout_s
         How long to wait for the scheduler.
 
@@ -187,7 +187,9 @@ def open_backend(
             threads_per_worker=1,
             processes=True,
             host="127.0.0.1",
-            dashboard_address=None,
+            # the scheduler's small HTTP server (metrics) listens on loopback, on a free
+            # port: nothing of a local cluster is reachable from outside this machine
+            dashboard_address="127.0.0.1:0",
         )
         address = cluster.scheduler_address
     else:

@@ -161,16 +161,33 @@ def _sided_p(t: np.ndarray, df: np.ndarray, sided: str) -> np.ndarray:
     return 2.0 * stats.t.sf(np.abs(t), df)
 
 
+# Runs used for the residual smoothness estimate: at most this many, evenly spread, so
+# that its full-grid float64 copies stay small on large studies (our own choice; 30 maps
+# already estimate the FWHM within a few percent, see tests/test_smoothness.py).
+SMOOTHNESS_MAX_RUNS = 32
+_SMOOTHNESS_CHUNK = 65536
+
+
 def _smoothness(y, variance, fit, X, mask: np.ndarray, grid: Grid) -> Smoothness | None:
     """Residual smoothness from standardised residuals (Kiebel et al. 1999)."""
-    resid = y - X @ fit.beta.T
-    total = fit.var_animal[None, :] + fit.var_run[None, :]
-    if variance is not None:
-        total = total + variance
-    with np.errstate(invalid="ignore", divide="ignore"):
-        standard = resid / np.sqrt(total)
-    standard = np.where(np.isfinite(standard), standard, 0.0)
-    dof = y.shape[0] - np.linalg.matrix_rank(X)
+    n_runs, n_vox = y.shape
+    dof_all = n_runs - np.linalg.matrix_rank(X)
+    if dof_all <= 1:
+        return None
+    runs = np.unique(np.linspace(0, n_runs - 1, min(n_runs, SMOOTHNESS_MAX_RUNS)).round())
+    runs = runs.astype(int)
+    standard = np.zeros((runs.size, n_vox), dtype=np.float32)
+    for lo in range(0, n_vox, _SMOOTHNESS_CHUNK):
+        sl = slice(lo, min(n_vox, lo + _SMOOTHNESS_CHUNK))
+        resid = np.asarray(y[runs, sl], dtype=float) - X[runs] @ fit.beta[sl].T
+        total = fit.var_animal[None, sl] + fit.var_run[None, sl]
+        if variance is not None:
+            total = total + variance[runs, sl]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ratio = resid / np.sqrt(total)
+        standard[:, sl] = np.where(np.isfinite(ratio), ratio, 0.0)
+    # residual degrees of freedom carried by the runs used
+    dof = dof_all * runs.size / n_runs
     if dof <= 1:
         return None
     try:
@@ -274,6 +291,7 @@ def _fit_first_level(
         design.animal,
         estimate_run_variance=settings.model.run_variance == "estimate",
         max_iter=settings.model.max_iter,
+        memory_gb=settings.compute.memory_gb,
     )
     unfittable = np.isnan(fit.beta).any(axis=1)
     not_converged = int((~fit.converged & ~unfittable).sum())

@@ -524,30 +524,65 @@ def _mask_extent_mm(mask: np.ndarray | None, grid: Grid) -> np.ndarray | None:
 
 @dataclass(frozen=True)
 class RunData:
-    """Masked data of one first-level contrast: runs × in-mask voxels."""
+    """Masked data of one first-level contrast: runs × in-mask voxels.
 
-    effect: np.ndarray  # (n_runs, V) float64, NaN where a run has no usable value
-    variance: np.ndarray | None  # (n_runs, V) first-level variances, NaN where missing
+    Both arrays are float32 (first-level maps are float32 on disk; half the memory of
+    float64). :func:`grouplevel.model.fit_reml` converts them to float64 one chunk of
+    voxels at a time.
+    """
+
+    effect: np.ndarray  # (n_runs, V) float32, NaN where a run has no usable value
+    variance: np.ndarray | None  # (n_runs, V) float32 first-level variances, NaN where missing
 
 
-def load_runs(study: Study, first_level: FirstLevel) -> RunData:
+def load_runs(study: Study, first_level: FirstLevel, *, memory_gb: float | None = None) -> RunData:
     """Read one first-level contrast's maps into masked arrays, one image at a time.
 
-    Only the (runs × in-mask voxels) arrays are held, never a 4-D stack.
+    Only the (runs × in-mask voxels) float32 arrays are held, never a 4-D stack.
+
+    Parameters
+    ----------
+    study, first_level
+        The validated study and one of its first-level contrasts.
+    memory_gb
+        Memory budget in GiB; default the study's ``[compute] memory_gb``.
+
+    Raises
+    ------
+    UserError
+        Before any map is read, when the runs × voxels arrays alone exceed the budget
+        (the message gives the sizes and how to fix it: a larger ``[compute]
+        memory_gb`` or a smaller mask).
     """
+    from grouplevel.memory import GIB, memory_plan
+
     mask = first_level.mask
     masked = study.user_mask is not None
     n = len(first_level.runs)
     n_vox = int(mask.sum())
-    effect = np.empty((n, n_vox))
-    variance = None if first_level.variance_kind == "none" else np.empty((n, n_vox))
+    with_variance = first_level.variance_kind != "none"
+    budget = study.settings.compute.memory_gb if memory_gb is None else memory_gb
+    plan = memory_plan(n, n_vox, with_variance, budget)
+    if not plan.arrays_fit:
+        maps = "effect and variance maps" if with_variance else "effect maps"
+        name = f"first-level contrast '{first_level.name}'" if first_level.name else "the study"
+        raise UserError(
+            f"{study.settings.source}: [compute] memory_gb = {budget:g} GiB is too small for "
+            f"{name}: {n} runs × {n_vox:,} in-mask voxels of {maps} need "
+            f"{plan.arrays_bytes / GIB:.2f} GiB as float32 just to hold them (about "
+            f"{plan.need_bytes / GIB:.2f} GiB with the fit's own arrays); set [compute] "
+            f"memory_gb to at least {math.ceil(1.25 * plan.need_bytes / GIB * 10) / 10:g} "
+            "(if the machine has that much memory) or use a smaller [study] mask"
+        )
+    effect = np.empty((n, n_vox), dtype=np.float32)
+    variance = np.empty((n, n_vox), dtype=np.float32) if with_variance else None
     for i, (_, row) in enumerate(first_level.runs.iterrows()):
         e = read_volume(Path(row["effect"]))
         v = _read_variance(row, first_level.variance_kind)
-        ok = _valid(e, v, masked)
-        effect[i] = np.where(ok, e, np.nan)[mask]
-        if variance is not None and v is not None:
-            variance[i] = np.where(ok, v, np.nan)[mask]
+        ok = _valid(e, v, masked)[mask]
+        effect[i] = np.where(ok, e[mask], np.nan)
+        if variance is not None:
+            variance[i] = np.nan if v is None else np.where(ok, v[mask], np.nan)
     return RunData(effect=effect, variance=variance)
 
 

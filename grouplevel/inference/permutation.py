@@ -64,6 +64,8 @@ SIDES = ("two", "positive", "negative")
 _TZ_POINTS = 4001
 _TZ_MAX_T = 1e8
 _MAX_DF_TABLES = 64
+# Voxels per chunk when reducing runs to animal means (keeps temporaries small).
+_CHUNK_VOXELS = 65536
 # Smallest positive first-level + run variance allowed when building precisions; a zero
 # total variance would give an infinite precision (one run per animal, no s²).
 _VARIANCE_FLOOR = 1e-12
@@ -133,10 +135,6 @@ def animal_level_data(
             "covariate cannot be permuted without breaking the nesting. Set "
             "permutations = 0 for parametric inference, or use animal-level covariates."
         )
-    present = np.isfinite(y)
-    if variance is not None:
-        present &= np.isfinite(variance)
-    s2 = np.zeros_like(y) if variance is None else np.where(present, variance, 0.0)
     indicator = np.zeros((m, len(animal)))
     indicator[animal, np.arange(len(animal))] = 1.0
     # σ² is told apart from τ² only by runs of one animal. Where no animal has two runs
@@ -147,19 +145,33 @@ def animal_level_data(
     # variances the refit then is the ordinary one-sample t of the animals).
     var_run = np.asarray(var_run, dtype=float)
     var_animal = np.asarray(var_animal, dtype=float)
-    within = ((indicator @ present) >= 2).any(axis=0)
-    total = var_run + var_animal
-    var_run = np.where(within, var_run, 0.0)
-    var_animal = np.where(within, var_animal, total)
-    floor = np.where(
-        within, _VARIANCE_FLOOR, np.maximum(_VARIANCE_FLOOR, _FOLDED_FLOOR_SHARE * total)
-    )
-    d = np.maximum(var_run[None, :] + s2, floor[None, :])
-    w = np.where(present, 1.0 / d, 0.0)
-    wy = np.where(present, w * np.nan_to_num(y), 0.0)
-    prec = indicator @ w  # (m, V)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.where(prec > 0, (indicator @ wy) / prec, 0.0)
+    n_vox = y.shape[1]
+    mean = np.empty((m, n_vox))
+    prec = np.empty((m, n_vox))
+    var_animal_used = np.empty(n_vox)
+    # voxel chunks: the runs × voxels temporaries below stay chunk-sized
+    for lo in range(0, n_vox, _CHUNK_VOXELS):
+        sl = slice(lo, min(n_vox, lo + _CHUNK_VOXELS))
+        yc = np.asarray(y[:, sl], dtype=float)
+        present = np.isfinite(yc)
+        vc = None if variance is None else np.asarray(variance[:, sl], dtype=float)
+        if vc is not None:
+            present &= np.isfinite(vc)
+        s2 = np.zeros_like(yc) if vc is None else np.where(present, vc, 0.0)
+        within = ((indicator @ present) >= 2).any(axis=0)
+        total = var_run[sl] + var_animal[sl]
+        vr = np.where(within, var_run[sl], 0.0)
+        var_animal_used[sl] = np.where(within, var_animal[sl], total)
+        floor = np.where(
+            within, _VARIANCE_FLOOR, np.maximum(_VARIANCE_FLOOR, _FOLDED_FLOOR_SHARE * total)
+        )
+        d = np.maximum(vr[None, :] + s2, floor[None, :])
+        w = np.where(present, 1.0 / d, 0.0)
+        wy = np.where(present, w * np.nan_to_num(yc), 0.0)
+        prec[:, sl] = indicator @ w
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean[:, sl] = np.where(prec[:, sl] > 0, (indicator @ wy) / prec[:, sl], 0.0)
+    var_animal = var_animal_used
     return AnimalLevelData(
         mean=np.ascontiguousarray(mean.T),
         precision=np.ascontiguousarray(prec.T),

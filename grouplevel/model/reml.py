@@ -58,12 +58,13 @@ import numpy as np
 from numba import njit
 
 from grouplevel.errors import UserError
+from grouplevel.memory import CHUNK_ARRAYS, chunk_voxels
 
 # Working-memory budget of one chunk of voxels, in bytes. About 24 arrays of shape
 # (chunk, runs) are alive at once inside the iteration (common practice: keep the
 # working set to a few tens of MiB so that it stays small next to the input maps).
 DEFAULT_CHUNK_BYTES = 48 * 2**20
-_ARRAYS_PER_CHUNK = 24
+_ARRAYS_PER_CHUNK = CHUNK_ARRAYS
 _MIN_CHUNK = 256
 
 # Step-halving: at most this many halvings of a Fisher-scoring step (2⁻³⁰ ≈ 1e-9).
@@ -184,8 +185,20 @@ def _pattern_ranks(X: np.ndarray, patterns: np.ndarray) -> np.ndarray:
 # --------------------------------------------------------------------------------------
 
 
+def _as_maps(a) -> np.ndarray:
+    """Runs × voxels data as float32 or float64, without copying either.
+
+    float32 input stays float32 (half the memory of float64); it is converted to float64
+    one chunk of voxels at a time in the fit. Any other type becomes float64.
+    """
+    a = np.asarray(a)
+    if a.dtype in (np.float32, np.float64):
+        return a
+    return a.astype(np.float64)
+
+
 def _check_inputs(y, variance, X, animal, estimate_run_variance):
-    y = np.asarray(y, dtype=np.float64)
+    y = _as_maps(y)
     if y.ndim == 1:
         y = y[:, None]
     if y.ndim != 2:
@@ -225,7 +238,7 @@ def _check_inputs(y, variance, X, animal, estimate_run_variance):
     if n_runs and animal.min() < 0:
         raise UserError("fit_reml: animal codes must be non-negative integers 0..m-1.")
     if variance is not None:
-        variance = np.asarray(variance, dtype=np.float64)
+        variance = _as_maps(variance)
         if variance.ndim == 1:
             variance = variance[:, None]
         if variance.shape != y.shape:
@@ -1257,12 +1270,14 @@ def _fit_compiled(
         cols = slice(int(idx[0]), int(idx[-1]) + 1)
     else:
         cols = idx
-    yc = np.ascontiguousarray(y[:, cols].T)
+    # (float32 input becomes float64 here, one chunk at a time: exact, as every float32
+    # is a float64)
+    yc = np.ascontiguousarray(y[:, cols].T, dtype=np.float64)
     pc = np.ascontiguousarray(present[:, cols].T)
     if variance is None:
         vc = np.zeros_like(yc)
     else:
-        vc = np.ascontiguousarray(variance[:, cols].T)
+        vc = np.ascontiguousarray(variance[:, cols].T, dtype=np.float64)
 
     def run(part: slice) -> None:
         _nb_fit_many(
@@ -1306,6 +1321,7 @@ def fit_reml(
     max_iter: int = 100,
     tol: float = 1e-8,
     chunk_size: int | None = None,
+    memory_gb: float | None = None,
     backend: str = "compiled",
 ) -> MixedFit:
     """Fit ``y = Xβ + u_animal + e`` by REML at every voxel at once.
@@ -1314,8 +1330,11 @@ def fit_reml(
     ----------
     y : ndarray, shape (n_runs, V)
         First-level effect of each run at each voxel; NaN where a run has no data.
+        float32 or float64; float32 is not copied as a whole but converted to float64
+        one chunk of voxels at a time (the fit itself is in float64).
     variance : ndarray, shape (n_runs, V), or None
         First-level variance ``s_k²`` of each effect (NaN: no data). None means 0.
+        float32 or float64, as ``y``.
     X : ndarray, shape (n_runs, p)
         Fixed-effects design, one row per run.
     animal : ndarray of int, shape (n_runs,)
@@ -1329,8 +1348,13 @@ def fit_reml(
         Convergence when every component of the scoring step is below
         ``tol · (1 + θ_j)`` in units of the voxel's residual variance.
     chunk_size : int, optional
-        Voxels processed together; default keeps the working memory near
+        Voxels processed together. Default: from ``memory_gb`` when given
+        (:func:`grouplevel.memory.chunk_voxels`), else a working set near
         ``DEFAULT_CHUNK_BYTES``.
+    memory_gb : float, optional
+        Memory budget in GiB (``[compute] memory_gb``); sets the chunk size so that one
+        chunk's working set stays within ``grouplevel.memory.CHUNK_SHARE`` of it.
+        Ignored when ``chunk_size`` is given.
     backend : {"compiled", "numpy"}
         ``"compiled"`` (default) runs a numba kernel over voxels in parallel;
         ``"numpy"`` runs the same algorithm vectorised over each chunk of voxels (the
@@ -1349,8 +1373,9 @@ def fit_reml(
 
     The compiled kernel is built by numba on first use and cached next to the module
     (about half a minute once per installation); it runs in as many threads as the
-    process may use cores. Peak extra memory is a few chunk-sized copies plus the
-    outputs, below the size of ``y``. With one run per animal and no
+    process may use cores. Peak extra memory is a boolean runs × voxels presence mask,
+    a few chunk-sized float64 copies and the outputs, below the size of ``y``; float32
+    input is never copied as a whole. With one run per animal and no
     first-level variances τ² and σ² are not separately identified; only their sum is
     meaningful then (the information is rank one and its pseudo-inverse is used).
 
@@ -1391,7 +1416,12 @@ def fit_reml(
 
     if backend not in ("compiled", "numpy"):
         raise UserError(f"fit_reml: backend must be 'compiled' or 'numpy', got {backend!r}.")
-    cs = int(chunk_size) if chunk_size is not None else _default_chunk(n_runs)
+    if chunk_size is not None:
+        cs = int(chunk_size)
+    elif memory_gb is not None:
+        cs = chunk_voxels(n_runs, memory_gb)
+    else:
+        cs = _default_chunk(n_runs)
     if cs < 1:
         raise UserError(f"fit_reml: chunk_size must be positive, got {chunk_size}.")
     idx_all = np.nonzero(estimable)[0]
@@ -1416,11 +1446,11 @@ def fit_reml(
                 )
             else:
                 pres = present[:, idx].T.astype(np.float64)
-                yc = np.where(pres > 0, y[:, idx].T, 0.0)
+                yc = np.where(pres > 0, y[:, idx].T.astype(np.float64, copy=False), 0.0)
                 if variance is None:
                     s2 = np.where(pres > 0, 0.0, 1.0)
                 else:
-                    s2 = np.where(pres > 0, variance[:, idx].T, 1.0)
+                    s2 = np.where(pres > 0, variance[:, idx].T.astype(np.float64, copy=False), 1.0)
                 res = _fit_chunk(d, yc, s2, pres, estimate_run_variance, max_iter, tol)
                 del yc, s2, pres
             beta[idx] = res["beta"]

@@ -1,0 +1,185 @@
+"""Benchmark of loading and fitting a large study within a memory budget.
+
+A synthetic study of 40 animals × 5 runs (200 effect maps, each with a first-level
+variance map) is written for two sizes of the analysis mask (250 000 and 1 000 000
+in-mask voxels by default) as **uncompressed** ``.nii`` files in a temporary folder
+(gzip would make the benchmark measure decompression). Each size is then run in a fresh
+child process through grouplevel's own path — ``load_study`` (which validates every
+map), ``load_runs``, ``fit_reml`` and ``test_contrast`` for the group mean, with
+permutations = 0 — and the child reports its wall times and its peak resident memory
+(``resource.getrusage(RUSAGE_SELF).ru_maxrss``). The parent prints the time to write
+the maps, each size's numbers and the log-log slope of fitting time against voxels ×
+maps (1 = linear).
+
+Targets: peak RSS below 4 GiB at 1 000 000 voxels × 200 maps; time about linear.
+
+Run with ``.venv/bin/python benchmarks/bench_scale.py`` (optionally ``--voxels 250000
+1000000``, ``--memory-gb 6``, ``--dir /some/scratch``). Needs about 2 GB of scratch
+disk per million voxels.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+
+N_ANIMALS = 40
+RUNS_PER_ANIMAL = 5
+VOXEL_MM = 0.2  # rodent-scale voxels (common practice)
+GIB = 2**30
+# Simulated variance components (units² of the effect maps): between-animal τ² and
+# between-run σ² drawn per voxel, first-level variances per run and voxel.
+TAU2_RANGE = (0.0, 1.0)
+SIG2_RANGE = (0.0, 1.0)
+S2_RANGE = (0.2, 1.5)
+TRUE_MEAN = 0.3
+
+
+def grid_shape(n_voxels: int) -> tuple[int, int, int]:
+    """A box with exactly ``n_voxels`` voxels: 100 × 100 × k, or a cube root fallback."""
+    if n_voxels % 10_000 == 0:
+        return (100, 100, n_voxels // 10_000)
+    side = round(n_voxels ** (1 / 3))
+    return (side, side, math.ceil(n_voxels / side**2))
+
+
+def write_study(folder: Path, n_voxels: int, memory_gb: float, seed: int) -> float:
+    """Write maps, mask, runs table and study.toml; return the seconds spent writing."""
+    rng = np.random.default_rng(seed)
+    shape = grid_shape(n_voxels)
+    affine = np.diag([VOXEL_MM, VOXEL_MM, VOXEL_MM, 1.0])
+    mask = np.zeros(int(np.prod(shape)), dtype=np.uint8)
+    mask[:n_voxels] = 1
+    mask = mask.reshape(shape)
+    inside = mask.astype(bool)
+    nib.save(nib.Nifti1Image(mask, affine), folder / "mask.nii")
+    tau2 = rng.uniform(*TAU2_RANGE, n_voxels).astype(np.float32)
+    sig2 = rng.uniform(*SIG2_RANGE, n_voxels).astype(np.float32)
+    rows = ["animal\tsession\trun\teffect\tvariance"]
+    volume = np.zeros(shape, dtype=np.float32)
+    start = time.perf_counter()
+    for a in range(N_ANIMALS):
+        u = rng.standard_normal(n_voxels, dtype=np.float32) * np.sqrt(tau2)
+        for r in range(RUNS_PER_ANIMAL):
+            s2 = rng.uniform(*S2_RANGE, n_voxels).astype(np.float32)
+            noise = rng.standard_normal(n_voxels, dtype=np.float32)
+            effect = TRUE_MEAN + u + noise * np.sqrt(sig2 + s2)
+            stem = f"a{a:02d}_r{r}"
+            for kind, values in (("effect", effect), ("variance", s2)):
+                volume[inside] = values
+                nib.save(nib.Nifti1Image(volume, affine), folder / f"{stem}_{kind}.nii")
+            rows.append(f"a{a:02d}\t1\t{r + 1}\t{stem}_effect.nii\t{stem}_variance.nii")
+    seconds = time.perf_counter() - start
+    (folder / "runs.tsv").write_text("\n".join(rows) + "\n")
+    (folder / "study.toml").write_text(
+        f'[study]\ntitle = "scale benchmark"\ntable = "runs.tsv"\nmask = "mask.nii"\n\n'
+        f"[inference]\npermutations = 0\n\n[compute]\nmemory_gb = {memory_gb}\n"
+    )
+    return seconds
+
+
+def child(toml: str) -> None:
+    """Load, fit and test one study; print one JSON line with times and peak RSS."""
+    from grouplevel.model import between_animal_df, fit_reml, test_contrast
+    from grouplevel.study import load_runs, load_study
+
+    times = {}
+    t0 = time.perf_counter()
+    study = load_study(toml, permutations=0)
+    times["validate_s"] = time.perf_counter() - t0
+    fl = study.first_levels[0]
+    t0 = time.perf_counter()
+    data = load_runs(study, fl)
+    times["load_s"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    fit = fit_reml(
+        data.effect,
+        data.variance,
+        fl.design.matrix,
+        fl.design.animal,
+        memory_gb=study.settings.compute.memory_gb,
+    )
+    times["fit_s"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    c = np.ones(1)
+    present = np.isfinite(data.effect) & np.isfinite(data.variance)
+    df = between_animal_df(fl.design.matrix, fl.design.animal, present, c)
+    result = test_contrast(fit, c, df)
+    times["contrast_s"] = time.perf_counter() - t0
+    peak_kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss  # KiB on Linux
+    print(
+        json.dumps(
+            {
+                **times,
+                "runs": int(data.effect.shape[0]),
+                "voxels": int(data.effect.shape[1]),
+                "dtype": str(data.effect.dtype),
+                "arrays_gib": (data.effect.nbytes + data.variance.nbytes) / GIB,
+                "peak_rss_gib": peak_kib * 1024 / GIB,
+                "mean_effect": float(np.nanmean(result.effect)),
+                "converged_share": float(fit.converged.mean()),
+            }
+        )
+    )
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--voxels", type=int, nargs="+", default=[250_000, 1_000_000])
+    parser.add_argument("--memory-gb", type=float, default=6.0)
+    parser.add_argument("--dir", default=None, help="scratch folder (default: system temp)")
+    parser.add_argument("--seed", type=int, default=1)
+    parser.add_argument("--child", default=None, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.child:
+        child(args.child)
+        return
+    n_maps = N_ANIMALS * RUNS_PER_ANIMAL
+    print(
+        f"{N_ANIMALS} animals × {RUNS_PER_ANIMAL} runs = {n_maps} effect maps + {n_maps} "
+        f"variance maps, uncompressed .nii, [compute] memory_gb = {args.memory_gb}"
+    )
+    results = []
+    for n_vox in args.voxels:
+        with tempfile.TemporaryDirectory(dir=args.dir, prefix="grouplevel-scale-") as tmp:
+            folder = Path(tmp)
+            write_s = write_study(folder, n_vox, args.memory_gb, args.seed)
+            out = subprocess.run(
+                [sys.executable, __file__, "--child", str(folder / "study.toml")],
+                capture_output=True,
+                text=True,
+                check=True,
+            )
+            res = json.loads(out.stdout.strip().splitlines()[-1])
+            res["write_s"] = write_s
+            results.append(res)
+            total = res["load_s"] + res["fit_s"] + res["contrast_s"]
+            print(
+                f"{n_vox:>10,} voxels × {n_maps} maps: write {write_s:6.1f} s, validate "
+                f"{res['validate_s']:6.1f} s, load {res['load_s']:6.1f} s, fit "
+                f"{res['fit_s']:7.1f} s, contrast {res['contrast_s']:5.2f} s "
+                f"(load+fit+contrast {total:7.1f} s); arrays {res['arrays_gib']:.2f} GiB "
+                f"{res['dtype']}, peak RSS {res['peak_rss_gib']:.2f} GiB; mean effect "
+                f"{res['mean_effect']:.3f} (true {TRUE_MEAN}), converged "
+                f"{100 * res['converged_share']:.2f} %",
+                flush=True,
+            )
+    if len(results) >= 2:
+        size = np.log([r["voxels"] * r["runs"] for r in results])
+        for key in ("fit_s", "load_s"):
+            slope = np.polyfit(size, np.log([r[key] for r in results]), 1)[0]
+            print(f"log-log slope of {key[:-2]} time against voxels × maps: {slope:.2f}")
+
+
+if __name__ == "__main__":
+    main()
