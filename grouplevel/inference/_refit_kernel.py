@@ -223,26 +223,6 @@ def _refit_voxel(y, prec, X, tau2, max_iter, tol, C, Cinv, G2, G3, beta, rhs, A,
 
 
 @njit(cache=True, nogil=True)
-def refit_t(ybar, prec, X, tau2_start, out_t, out_tau2, start, stop, max_iter, tol):
-    """t of the first coefficient at voxels ``start:stop`` (ybar, prec: (V, m))."""
-    m, p = X.shape
-    C = np.empty((p, p))
-    Cinv = np.empty((p, p))
-    G2 = np.empty((p, p))
-    G3 = np.empty((p, p))
-    beta = np.empty(p)
-    rhs = np.empty(p)
-    A = np.empty((p, 2 * p))
-    wk = np.empty(m)
-    for v in range(start, stop):
-        t, tau2 = _refit_voxel(
-            ybar[v], prec[v], X, tau2_start[v], max_iter, tol, C, Cinv, G2, G3, beta, rhs, A, wk
-        )
-        out_t[v] = t
-        out_tau2[v] = tau2
-
-
-@njit(cache=True, nogil=True)
 def _refit_mean_voxel(y, prec, tau2, max_iter, tol):
     """Intercept-only refit (p = 1, x = 1) with one pass of sums per iteration.
 
