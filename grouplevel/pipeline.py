@@ -361,7 +361,7 @@ def _fit_first_level(
         )
         if regions is not None:
             gm = replace(gm, tables=region_tables(gm, regions, design, c, settings))
-        if asks_questions(settings, design.columns, cname):
+        if asks_questions(design.columns, cname):
             log(f"  questions of {name}: symmetry, specificity, consistency, run quality")
             answers = answer_questions(
                 gm,

@@ -169,7 +169,7 @@ def _quality_verdict(summary: dict) -> dict:
     return {"verdict": verdict, "reasons": reasons, **summary}
 
 
-def asks_questions(settings: Settings, design_columns: tuple[str, ...], contrast: str) -> bool:
+def asks_questions(design_columns: tuple[str, ...], contrast: str) -> bool:
     """Whether the questions apply: the group mean of an intercept-only design."""
     return contrast == "mean" and design_columns == ("Intercept",)
 

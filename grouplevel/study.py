@@ -33,17 +33,6 @@ from grouplevel.design import (
 from grouplevel.errors import UserError
 from grouplevel.images import Grid, grid_mismatch, read_header_grid, read_volume
 
-RESERVED_COLUMNS = (
-    "animal",
-    "effect",
-    "run",
-    "session",
-    "variance",
-    "se",
-    "exclude",
-    "reason",
-    "contrast",
-)
 TRUE_WORDS = {"true", "yes", "1", "y", "t", "x"}
 FALSE_WORDS = {"false", "no", "0", "n", "f", ""}
 # A mouse brain is about 10 mm and a rat brain about 20 mm long (common practice); a

@@ -70,7 +70,7 @@ def _solve_spd(C: np.ndarray, Cinv: np.ndarray, p: int, A: np.ndarray) -> bool:
 
 
 @njit(cache=True, nogil=True)
-def _moment_start(y, prec, X, tau2, wk):
+def _moment_start(y, prec, X, tau2):
     """Method-of-moments start for τ² in the intercept-only case (DerSimonian & Laird
     1986, Control Clin Trials 7:177); other designs start from the given τ²."""
     m, p = X.shape
@@ -114,7 +114,7 @@ def _refit_voxel(y, prec, X, tau2, max_iter, tol, C, Cinv, G2, G3, beta, rhs, A,
     if n_present <= p:
         return np.nan, tau2
     vbar /= n_present
-    tau2 = _moment_start(y, prec, X, tau2, wk)
+    tau2 = _moment_start(y, prec, X, tau2)
     for _it in range(max_iter):
         for a in range(m):
             wk[a] = prec[a] / (1.0 + tau2 * prec[a]) if prec[a] > 0.0 else 0.0
@@ -223,7 +223,7 @@ def _refit_voxel(y, prec, X, tau2, max_iter, tol, C, Cinv, G2, G3, beta, rhs, A,
 
 
 @njit(cache=True, nogil=True)
-def _refit_mean_voxel(y, prec, tau2, max_iter, tol):
+def _refit_mean_voxel(y, prec, X, tau2, max_iter, tol):
     """Intercept-only refit (p = 1, x = 1) with one pass of sums per iteration.
 
     Returns (t, τ²). The sums expand the residuals r = y − μ̂ around the GLS mean, so
@@ -239,24 +239,7 @@ def _refit_mean_voxel(y, prec, tau2, max_iter, tol):
     if n < 2:
         return np.nan, tau2
     vbar /= n
-    # DerSimonian–Laird start
-    s0 = 0.0
-    s00 = 0.0
-    s1 = 0.0
-    for a in range(m):
-        if prec[a] > 0.0:
-            s0 += prec[a]
-            s00 += prec[a] * prec[a]
-            s1 += prec[a] * y[a]
-    mu = s1 / s0
-    q = 0.0
-    for a in range(m):
-        if prec[a] > 0.0:
-            q += prec[a] * (y[a] - mu) ** 2
-    denom = s0 - s00 / s0
-    tau2 = (q - (n - 1)) / denom if denom > 0.0 else tau2
-    if tau2 < 0.0:
-        tau2 = 0.0
+    tau2 = max(_moment_start(y, prec, X, tau2), 0.0)  # X is the column of ones here
     for _it in range(max_iter):
         sw = 0.0
         sw2 = 0.0
@@ -343,7 +326,7 @@ def refit_t_permuted(fitted, residual, prec, sign, order, X, tau2_start, out_t, 
             y[a] = fitted[v, a] + sign[a] * residual[v, order[a]]
             pr[a] = prec[v, order[a]]
         if intercept_only:
-            t, _tau2 = _refit_mean_voxel(y, pr, tau2_start[v], max_iter, tol)
+            t, _tau2 = _refit_mean_voxel(y, pr, X, tau2_start[v], max_iter, tol)
         else:
             t, _tau2 = _refit_voxel(
                 y, pr, X, tau2_start[v], max_iter, tol, C, Cinv, G2, G3, beta, rhs, A, wk

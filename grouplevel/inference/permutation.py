@@ -315,7 +315,7 @@ def _distinct_orders(cls: np.ndarray) -> np.ndarray:
 
 
 class _TtoZ:
-    """t → z (equal p) for voxels whose df may differ, by interpolation per df value.
+    """Tables of z (equal p) over u = asinh(|t|) per df value, for the compiled kernel.
 
     Non-integer df (Satterthwaite) are rounded to 0.01 when there are many distinct
     values, so the number of tables stays small; the change in z is about 1e-3 for
@@ -339,17 +339,6 @@ class _TtoZ:
             # beyond float range of p, use the asymptotic normal tail
             z = np.where(np.isfinite(z), z, np.sqrt(-2.0 * logp))
             self.tables.append(np.maximum(z, 0.0))
-
-        order = np.argsort(self.index, kind="stable")
-        bounds = np.searchsorted(self.index[order], np.arange(len(self.values) + 1))
-        self.groups = [order[bounds[k] : bounds[k + 1]] for k in range(len(self.values))]
-
-    def __call__(self, t: np.ndarray) -> np.ndarray:
-        u = np.arcsinh(np.abs(t))
-        z = np.empty_like(t)
-        for sel, table in zip(self.groups, self.tables, strict=True):
-            z[sel] = np.interp(u[sel], self.u, table)
-        return np.sign(t) * z
 
 
 @dataclass(frozen=True)
