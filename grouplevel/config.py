@@ -152,6 +152,19 @@ class ContrastSpec:
 
 
 @dataclass(frozen=True)
+class ComparisonSpec:
+    """A within-animal comparison of first-level conditions (``[[comparison]]``).
+
+    ``conditions`` maps a condition (a value of the runs table's ``condition`` column)
+    to its weight; each run that carries every named condition contributes the weighted
+    sum of its condition maps.
+    """
+
+    name: str
+    conditions: dict[str, float]
+
+
+@dataclass(frozen=True)
 class InferenceSettings:
     permutations: int = DEFAULT_PERMUTATIONS
     seed: int = DEFAULT_SEED
@@ -182,6 +195,8 @@ class Settings:
     questions_by_contrast: dict[str, QuestionSettings] = field(default_factory=dict)
     compute: ComputeSettings = field(default_factory=ComputeSettings)
     user_contrasts: bool = field(default=False)
+    # within-animal comparisons of first-level conditions ([[comparison]])
+    comparisons: tuple[ComparisonSpec, ...] = ()
 
     def questions_for(self, first_level: str | None) -> QuestionSettings:
         """The questions of one first-level contrast (its override, else [questions])."""
@@ -222,6 +237,7 @@ _SCHEMA: dict[str, tuple[str, ...]] = {
     ),
     "model": ("formula", "run_variance", "df", "max_iter"),
     "contrast": ("name", "weights"),
+    "comparison": ("name", "conditions"),
     "inference": (
         "permutations",
         "seed",
@@ -437,6 +453,7 @@ def load_settings(path: str | Path) -> Settings:
             r.problem(f"[{where}] weights", "all weights are zero")
         contrasts.append(ContrastSpec(name=name, weights=clean))
     user_contrasts = bool(contrasts)
+    comparisons = _read_comparisons(r, raw)
     if not contrasts:
         contrasts.append(ContrastSpec(name=DEFAULT_CONTRAST_NAME, weights={"Intercept": 1.0}))
 
@@ -567,7 +584,47 @@ def load_settings(path: str | Path) -> Settings:
         questions_by_contrast=overrides,
         compute=compute,
         user_contrasts=user_contrasts,
+        comparisons=comparisons,
     )
+
+
+def _read_comparisons(r: _Reader, raw: dict[str, Any]) -> tuple[ComparisonSpec, ...]:
+    """``[[comparison]]`` blocks: a name and condition weights, e.g.
+    ``conditions = { paw = 1, sound = -1 }``."""
+    blocks = raw.get("comparison", [])
+    if not isinstance(blocks, list):
+        r.problem("[comparison]", "write comparisons as [[comparison]] blocks (an array of tables)")
+        return ()
+    out: list[ComparisonSpec] = []
+    seen: set[str] = set()
+    for i, block in enumerate(blocks, start=1):
+        where = f"comparison {i}"
+        if not isinstance(block, dict):
+            r.problem(f"[[comparison]] {i}", "must be a table")
+            continue
+        r.check_keys(where, block, _SCHEMA["comparison"])
+        name = r.get(where, block, "name", str, required=True)
+        conditions = r.get(where, block, "conditions", dict, required=True)
+        if name is None or conditions is None:
+            continue
+        if name in seen:
+            r.problem(f"[{where}] name", f"comparison name {name!r} is used twice")
+        seen.add(name)
+        weights: dict[str, float] = {}
+        for cond, w in conditions.items():
+            if isinstance(w, bool) or not isinstance(w, int | float):
+                r.problem(f"[{where}] conditions.{cond}", f"weight must be a number, got {w!r}")
+            elif w != 0:
+                weights[str(cond)] = float(w)
+        if not weights:
+            r.problem(
+                f"[{where}] conditions",
+                "needs at least one condition with a non-zero weight, "
+                "e.g. conditions = { paw = 1, sound = -1 }",
+            )
+            continue
+        out.append(ComparisonSpec(name=name, conditions=weights))
+    return tuple(out)
 
 
 def _read_questions(

@@ -172,7 +172,7 @@ TEMPLATE_TEXTURE_SEED = 12345
 TEMPLATE_TEXTURE_SD = 0.03
 
 MAP_DIR = "maps"
-TABLE_COLUMNS = ("animal", "session", "run", "contrast", "effect", "variance", "exclude", "reason")
+TABLE_COLUMNS = ("animal", "session", "run", "condition", "effect", "variance", "exclude", "reason")
 
 # --------------------------------------------------------------------------------------
 # Atlas definition
@@ -830,7 +830,7 @@ def example_table(seed: int = EXAMPLE_SEED) -> pd.DataFrame:
                     "animal": run.animal,
                     "session": SESSION,
                     "run": run.run,
-                    "contrast": contrast,
+                    "condition": contrast,
                     "effect": _map_name(run.animal, run.run, contrast, "effect"),
                     "variance": _map_name(run.animal, run.run, contrast, "variance"),
                     "exclude": run.excluded,
@@ -847,7 +847,7 @@ def _table_text(table: pd.DataFrame) -> str:
             row.animal,
             str(row.session),
             str(row.run),
-            row.contrast,
+            row.condition,
             row.effect,
             row.variance,
             "true" if row.exclude else "false",
@@ -870,7 +870,7 @@ def example_config_text() -> str:
 [study]
 # One line that names the study; it heads the report.
 title = "Invented example: awake head-fixed mice, sound and left-forepaw blocks (simulated)"
-# The runs table (tab-separated): one row per run and first-level contrast.
+# The runs table (tab-separated): one row per run and first-level condition.
 # Map paths inside it are relative to the table's folder.
 table = "runs.tsv"
 # The template image: every map must share its voxel grid and affine (mm space).
@@ -896,11 +896,18 @@ labels = "atlas.tsv"
 
 [model]
 # Group-level fixed effects as a formula over columns of the runs table;
-# "1" = one group mean per first-level contrast.
+# "1" = one group mean per first-level condition.
 formula = "1"
 # Between-run variance within an animal: "estimate" fits it by REML,
 # "known" sets it to 0 and trusts the variance maps alone.
 run_variance = "estimate"
+
+[[comparison]]
+# The two conditions compared within animals, from the runs that carry both: each
+# run's paw map minus its sound map. The comparison is tested against how much it
+# varies from animal to animal (a random intercept per animal on the difference).
+name = "paw-minus-sound"
+conditions = {{ paw = 1, sound = -1 }}
 
 [inference]
 # Permutations of whole animals (here: sign flips, since the contrast is the group
@@ -926,6 +933,13 @@ equivalence_margin = 0.2
 # The paw contrast has its own questions: the left forepaw was stimulated, so the
 # right (contralateral) forelimb area is expected to dominate.
 symmetry = ["forelimb area"]
+targets = ["forelimb area"]
+stimulus_side = "left"
+
+[questions.paw-minus-sound]
+# Where does paw differ from sound? Expected: more in the right forelimb area, less in
+# both auditory areas (a negative difference there).
+symmetry = ["forelimb area", "primary auditory area"]
 targets = ["forelimb area"]
 stimulus_side = "left"
 """

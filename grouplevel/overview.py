@@ -8,7 +8,7 @@ import jinja2
 import numpy as np
 
 from grouplevel.coordinates import describe_orientation
-from grouplevel.study import Study
+from grouplevel.study import FirstLevel, Study
 
 
 def _environment() -> jinja2.Environment:
@@ -28,6 +28,17 @@ def _environment() -> jinja2.Environment:
     )
 
 
+def _label(fl: FirstLevel) -> str:
+    """``condition sound``, or ``comparison paw-minus-sound = paw - sound (within runs)``."""
+    if fl.conditions is not None:
+        terms = " ".join(
+            f"{'-' if w < 0 else '+'} {'' if abs(w) == 1 else f'{abs(w):g} '}{c}"
+            for c, w in fl.conditions.items()
+        ).removeprefix("+ ")
+        return f"comparison {fl.name} = {terms} (within runs)"
+    return f"condition {fl.name}" if fl.name else "runs"
+
+
 def study_overview(study: Study) -> str:
     """Plain-text overview: grid, orientation, mask, animals, runs, exclusions."""
     s = study.settings
@@ -43,7 +54,7 @@ def study_overview(study: Study) -> str:
         ]
         first_levels.append(
             {
-                "label": f"contrast {fl.name}" if fl.name else "runs",
+                "label": _label(fl),
                 "n_animals": fl.design.n_animals,
                 "n_runs": len(fl.runs),
                 "n_excluded": len(fl.excluded),

@@ -1,6 +1,6 @@
 """The runs table and its maps: validation and masked loading.
 
-A study is one runs table (TSV or CSV, one row per run and first-level contrast) plus
+A study is one runs table (TSV or CSV, one row per run and first-level condition) plus
 the settings of its TOML file. :func:`inspect_study` reads every header and every map
 once and reports **all** problems together, each naming the file, the table line or
 the key. :func:`load_runs` then reads the maps of one first-level contrast into masked
@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 
 from grouplevel.atlas import Atlas, read_atlas
+from grouplevel.comparisons import PAIRED_LINES, TERMS, combine, comparison_rows
 from grouplevel.config import Settings, load_settings, with_overrides
 from grouplevel.design import (
     Design,
@@ -40,13 +41,16 @@ FALSE_WORDS = {"false", "no", "0", "n", "f", ""}
 # apply to rodent images so that human-brain software accepts them.
 MAX_PLAUSIBLE_BRAIN_EXTENT_MM = 40.0
 MIN_ANIMALS = 2
+# the runs table's first-level condition column was called "contrast" before it was
+# told apart from the group-level [[contrast]] blocks; read for one release
+OLD_CONDITION_COLUMN = "contrast"
 
 
 @dataclass(frozen=True)
 class FirstLevel:
     """The included runs of one first-level contrast and their group design."""
 
-    name: str | None  # the table's ``contrast`` value, None without that column
+    name: str | None  # the ``condition`` value or comparison name; None without conditions
     runs: pd.DataFrame  # included rows, with absolute paths and a ``line`` column
     excluded: pd.DataFrame  # excluded rows with their reasons
     design: Design
@@ -55,6 +59,8 @@ class FirstLevel:
     coverage_runs: np.ndarray  # (3-D int) runs with data per voxel
     coverage_animals: np.ndarray  # (3-D int) animals with data per voxel
     variance_kind: str  # "variance", "se" or "none"
+    # for a within-animal comparison ([[comparison]]): condition -> weight; else None
+    conditions: dict[str, float] | None = None
 
     def output_name(self, contrast_name: str, default_contrast: bool) -> str:
         """Folder name of a group contrast's maps (see DESIGN.md, output contract)."""
@@ -112,7 +118,32 @@ def read_table(path: Path) -> pd.DataFrame:
 def _where(path: Path, row: pd.Series) -> str:
     animal = row.get("animal", "")
     extra = f" (animal {animal})" if animal else ""
+    paired = row.get(PAIRED_LINES, "")
+    if isinstance(paired, str) and paired:
+        return f"{path.name} lines {paired}{extra}, comparison {row['condition']!r}"
     return f"{path.name} line {row['line']}{extra}"
+
+
+def _condition_column(path: Path, table: pd.DataFrame, problems: list[str], warnings: list[str]):
+    """The first-level condition column is ``condition``; ``contrast`` is its old name.
+
+    The group-level ``[[contrast]]`` blocks are a different thing, so the runs table's
+    column was renamed; the old name is read for one release, with a warning.
+    """
+    if OLD_CONDITION_COLUMN in table.columns:
+        if "condition" in table.columns:
+            problems.append(
+                f"{path.name}: has both 'condition' and its old name '{OLD_CONDITION_COLUMN}'; "
+                "keep only 'condition'"
+            )
+            return table
+        warnings.append(
+            f"{path.name}: the column '{OLD_CONDITION_COLUMN}' is now called 'condition' "
+            "(the first-level condition of each row); it is read as 'condition' for now — "
+            "rename the column"
+        )
+        return table.rename(columns={OLD_CONDITION_COLUMN: "condition"})
+    return table
 
 
 def _check_rows(path: Path, table: pd.DataFrame, problems: list[str]) -> pd.DataFrame:
@@ -157,18 +188,18 @@ def _check_rows(path: Path, table: pd.DataFrame, problems: list[str]) -> pd.Data
     for col in ("session", "run"):
         if col not in table.columns:
             table[col] = ""
-    if "contrast" not in table.columns:
-        table["contrast"] = ""
+    if "condition" not in table.columns:
+        table["condition"] = ""
     if not problems and "run" in table.columns:
-        key = ["contrast", "animal", "session", "run"]
+        key = ["condition", "animal", "session", "run"]
         keyed = table[table["run"] != ""]
         dup = keyed[keyed.duplicated(key, keep=False)]
         for _, group in dup.groupby(key, sort=False):
             lines = ", ".join(str(v) for v in group["line"])
             row = group.iloc[0]
             what = f"animal {row['animal']}, session {row['session'] or '-'}, run {row['run']}"
-            if row["contrast"]:
-                what += f", contrast {row['contrast']}"
+            if row["condition"]:
+                what += f", condition {row['condition']}"
             problems.append(f"{path.name} lines {lines}: duplicate run ({what})")
     return table
 
@@ -203,10 +234,40 @@ def _valid(effect: np.ndarray, variance: np.ndarray | None, masked: bool) -> np.
 
 
 def _read_variance(row: pd.Series, kind: str) -> np.ndarray | None:
-    if kind == "none" or not row.get(kind, ""):
+    terms = row.get(TERMS)
+    if isinstance(terms, tuple):
+        return _read_terms(terms, kind)[1]
+    return _read_variance_file(row.get(kind, ""), kind)
+
+
+def _read_variance_file(path: str, kind: str) -> np.ndarray | None:
+    if kind == "none" or not path:
         return None
-    data = read_volume(Path(row[kind]))
+    data = read_volume(Path(path))
     return data**2 if kind == "se" else data
+
+
+def _read_effect(row: pd.Series) -> np.ndarray:
+    """A row's effect map; for a comparison, the weighted sum of its condition maps."""
+    terms = row.get(TERMS)
+    if isinstance(terms, tuple):
+        return _read_terms(terms, "none")[0]
+    return read_volume(Path(row["effect"]))
+
+
+def _read_terms(terms: tuple, kind: str) -> tuple[np.ndarray, np.ndarray | None]:
+    weights = [w for w, _, _ in terms]
+    effects = [read_volume(Path(e)) for _, e, _ in terms]
+    variances = [_read_variance_file(v, kind) for _, _, v in terms]
+    return combine(weights, effects, variances)
+
+
+def _row_files(row: pd.Series, kind: str) -> list[str]:
+    """Every map file a row reads (a comparison reads one pair per condition)."""
+    terms = row.get(TERMS)
+    if isinstance(terms, tuple):
+        return [f for _, e, v in terms for f in (e, v) if f]
+    return [f for f in (row["effect"], row.get(kind, "") if kind != "none" else "") if f]
 
 
 def inspect_study(settings: Settings) -> Study:
@@ -225,7 +286,8 @@ def inspect_study(settings: Settings) -> Study:
     problems: list[str] = []
     warnings: list[str] = []
     path = settings.study.table
-    table = _check_rows(path, read_table(path), problems)
+    table = _condition_column(path, read_table(path), problems, warnings)
+    table = _check_rows(path, table, problems)
     if problems:
         raise UserError(f"{path}: {len(problems)} problem(s) in the runs table", problems)
 
@@ -302,10 +364,15 @@ def inspect_study(settings: Settings) -> Study:
             )
 
     first_levels: list[FirstLevel] = []
-    names = list(dict.fromkeys(table["contrast"]))
+    derived = comparison_rows(table, settings.comparisons, path, variance_kind, problems, warnings)
+    work = pd.concat([table, derived], ignore_index=True) if len(derived) else table
+    comparison_weights = {spec.name: dict(spec.conditions) for spec in settings.comparisons}
+    names = list(dict.fromkeys(work["condition"]))
     for name in names:
-        label = f"contrast '{name}'" if name else "the study"
-        rows = table[table["contrast"] == name]
+        label = f"condition '{name}'" if name else "the study"
+        if name in comparison_weights:
+            label = f"comparison '{name}'"
+        rows = work[work["condition"] == name]
         inc = rows[~rows["exclude"]]
         excl = rows[rows["exclude"]]
         for animal in dict.fromkeys(rows["animal"]):
@@ -358,13 +425,11 @@ def inspect_study(settings: Settings) -> Study:
         animal_seen = np.zeros((design.n_animals, *grid.shape), dtype=bool)
         readable = True
         for i, (_, row) in enumerate(inc.iterrows()):
-            if row["effect"] in bad_files or (
-                variance_kind != "none" and row[variance_kind] in bad_files
-            ):
+            if any(f in bad_files for f in _row_files(row, variance_kind)):
                 readable = False
                 continue
             try:
-                effect = read_volume(Path(row["effect"]))
+                effect = _read_effect(row)
                 variance = _read_variance(row, variance_kind)
             except UserError as exc:
                 problems.append(f"{_where(path, row)}: {exc}")
@@ -429,6 +494,7 @@ def inspect_study(settings: Settings) -> Study:
                 coverage_runs=cov_runs,
                 coverage_animals=cov_animals,
                 variance_kind=variance_kind,
+                conditions=comparison_weights.get(name),
             )
         )
 
@@ -485,8 +551,13 @@ def _check_questions(settings: Settings, contrast_names: list[str], atlas: Atlas
     for name in settings.questions_by_contrast:
         if name not in known:
             problems.append(
-                f"[questions.{name}]: the runs table has no first-level contrast {name!r}"
-                + (f"; contrasts: {', '.join(known)}" if known else " (no 'contrast' column)")
+                f"[questions.{name}]: the study has no first-level condition or comparison "
+                f"{name!r}"
+                + (
+                    f"; conditions and comparisons: {', '.join(known)}"
+                    if known
+                    else " (no 'condition' column)"
+                )
             )
     asked = [settings.questions, *settings.questions_by_contrast.values()]
     regions = sorted({r for q in asked for r in (*q.symmetry, *q.targets)})
@@ -566,7 +637,7 @@ def load_runs(study: Study, first_level: FirstLevel, *, memory_gb: float | None 
     effect = np.empty((n, n_vox), dtype=np.float32)
     variance = np.empty((n, n_vox), dtype=np.float32) if with_variance else None
     for i, (_, row) in enumerate(first_level.runs.iterrows()):
-        e = read_volume(Path(row["effect"]))
+        e = _read_effect(row)
         v = _read_variance(row, first_level.variance_kind)
         ok = _valid(e, v, masked)[mask]
         effect[i] = np.where(ok, e[mask], np.nan)

@@ -105,7 +105,7 @@ def test_written_maps_are_the_simulated_arrays(
         row = table[
             (table["animal"] == run.animal)
             & (table["run"] == str(run.run))
-            & (table["contrast"] == "sound")
+            & (table["condition"] == "sound")
         ].iloc[0]
         assert np.array_equal(_load(study / row["effect"]), sim.effect["sound"][k], equal_nan=True)
         assert np.array_equal(
@@ -145,7 +145,7 @@ def test_config_is_accepted_by_the_settings_reader(
 def test_runs_table(study: pathlib.Path, table: pd.DataFrame) -> None:
     assert list(table.columns) == list(ex.TABLE_COLUMNS)
     assert set(table["exclude"]) <= {"true", "false"}
-    assert set(table["contrast"]) == {"sound", "paw"}
+    assert set(table["condition"]) == {"sound", "paw"}
     runs = table.drop_duplicates(["animal", "session", "run"])
     per_animal = runs.groupby("animal").size()
     assert list(per_animal.index) == [f"m{i:02d}" for i in range(1, 11)]
@@ -362,7 +362,7 @@ def test_written_maps_follow_the_noise_model(
     rim = anatomy.mask & ~ndimage.binary_erosion(anatomy.mask, iterations=3)
     use = anatomy.mask & ~rim
     observed, expected = [], []
-    rows = table[(table["contrast"] == "sound") & ~table["animal"].isin(skip)]
+    rows = table[(table["condition"] == "sound") & ~table["animal"].isin(skip)]
     for _, group in rows.groupby("animal"):
         y = _stack(study, group, "effect")[:, use].astype(float)
         s2 = _stack(study, group, "variance")[:, use].astype(float)
@@ -448,7 +448,7 @@ def test_true_effects_sit_in_their_regions(
 
 
 def _group_t(study: pathlib.Path, table: pd.DataFrame, contrast: str) -> np.ndarray:
-    rows = table[(table["contrast"] == contrast) & (table["exclude"] == "false")]
+    rows = table[(table["condition"] == contrast) & (table["exclude"] == "false")]
     means = []
     for _, group in rows.groupby("animal"):
         means.append(np.nanmean(_stack(study, group, "effect").astype(float), axis=0))
@@ -531,7 +531,7 @@ def test_truth_record_matches_the_study(
     assert 2 <= len(truth["noisy_runs"]["runs"]) <= 3
     for contrast, ranges in truth["variance_map_ranges"].items():
         s2 = np.stack(
-            [_load(study / p) for p in table.loc[table["contrast"] == contrast, "variance"]]
+            [_load(study / p) for p in table.loc[table["condition"] == contrast, "variance"]]
         )
         inside = s2[:, _load(study / "brain_mask.nii.gz") > 0]
         assert math.isclose(np.nanmin(inside), ranges["min"], rel_tol=1e-4)
@@ -539,7 +539,7 @@ def test_truth_record_matches_the_study(
         assert ranges["max"] > 3 * ranges["min"]  # varies over space and between runs
     # noisy runs carry several times the variance of the others
     s2 = {}
-    for row in table[table["contrast"] == "sound"].itertuples():
+    for row in table[table["condition"] == "sound"].itertuples():
         s2[(row.animal, row.run)] = np.nanmean(
             _load(study / row.variance)[_load(study / "brain_mask.nii.gz") > 0]
         )

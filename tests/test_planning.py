@@ -278,7 +278,7 @@ def example_outputs(tmp_path_factory):
     toml.write_text(text[: text.index("[questions]")])
     runs = toml.parent / "runs.tsv"
     table = pd.read_csv(runs, sep="\t", dtype=str, keep_default_na=False)
-    table[table["contrast"] == "sound"].to_csv(runs, sep="\t", index=False)
+    table[table["condition"] == "sound"].to_csv(runs, sep="\t", index=False)
     plain = run_study(toml, root / "plain", permutations=0)
 
     def copy(name: str, edit) -> Path:
