@@ -80,6 +80,27 @@ def _parser() -> argparse.ArgumentParser:
     )
     pl.add_argument("--target-power", type=float, default=0.8)
 
+    t = sub.add_parser(
+        "table",
+        help="write a runs table from a BIDS-style derivatives folder of first-level maps",
+    )
+    t.add_argument("folder", type=Path, help="the derivatives folder (searched recursively)")
+    t.add_argument("--out", type=Path, required=True, help="the runs table to write (.tsv)")
+    t.add_argument(
+        "--participants",
+        type=Path,
+        default=None,
+        help="participants table (default: FOLDER/participants.tsv when present)",
+    )
+    t.add_argument(
+        "--select",
+        nargs="+",
+        default=[],
+        metavar="ENTITY=LABEL",
+        help="use only maps with these entity labels, e.g. space=template",
+    )
+    t.add_argument("--force", action="store_true", help="replace an existing table")
+
     e = sub.add_parser("example", help="write the invented example study into a folder")
     e.add_argument("folder", type=Path)
 
@@ -174,6 +195,47 @@ def _plan(args: argparse.Namespace) -> int:
     return 0
 
 
+def _table(args: argparse.Namespace) -> int:
+    from grouplevel.bids import derivatives_table, write_table
+
+    select = {}
+    for item in args.select:
+        key, sep, value = item.partition("=")
+        if not sep or not key or not value:
+            raise UserError(f"--select {item!r}: write ENTITY=LABEL, e.g. space=template")
+        select[key] = value
+    out = args.out.expanduser().resolve()
+    if out.exists() and not args.force:
+        raise UserError(f"{out}: exists; choose another file or add --force to replace it")
+    if out.suffix.lower() != ".tsv":
+        raise UserError(f"{out}: the runs table is tab-separated; give a name ending in .tsv")
+    found = derivatives_table(args.folder, participants=args.participants, select=select)
+    path = write_table(found, out)
+    table = found.table
+    covariates = [
+        c
+        for c in table.columns
+        if c not in ("animal", "session", "run", "condition", "effect")
+        and c not in ("variance", "se")
+    ]
+    print(f"wrote {path}: {len(table)} runs")
+    print(f"  animals     {table['animal'].nunique()}: {', '.join(table['animal'].unique())}")
+    sessions = sorted(set(table["session"]) - {""})
+    if sessions:
+        print(f"  sessions    {', '.join(sessions)}")
+    conditions = sorted(set(table["condition"]) - {""})
+    if conditions:
+        print(f"  conditions  {', '.join(conditions)}")
+    kind = "variance" if "variance" in table else "se" if "se" in table else "none"
+    print(f"  variances   {kind}")
+    if covariates:
+        print(f"  covariates  {', '.join(covariates)}")
+    for line in found.skipped:
+        print(f"  skipped     {line}")
+    print(f'next: name it in the study file ([study] table = "{path.name}") and run check')
+    return 0
+
+
 def _example(args: argparse.Namespace) -> int:
     from grouplevel.example import write_example
 
@@ -206,6 +268,7 @@ _COMMANDS = {
     "run": _run,
     "report": _report,
     "plan": _plan,
+    "table": _table,
     "example": _example,
     "demo": _demo,
 }

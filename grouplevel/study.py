@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 
 from grouplevel.atlas import Atlas, read_atlas
+from grouplevel.bids import derivatives_table
 from grouplevel.comparisons import PAIRED_LINES, TERMS, combine, comparison_rows
 from grouplevel.config import Settings, load_settings, with_overrides
 from grouplevel.design import (
@@ -97,7 +98,18 @@ class Study:
 
 # --- table ------------------------------------------------------------------------
 def read_table(path: Path) -> pd.DataFrame:
-    """Read the runs table (TSV, or CSV by extension) as text, with a ``line`` column."""
+    """Read the runs table (TSV, or CSV by extension) as text, with a ``line`` column.
+
+    A folder is read as a BIDS-style derivatives folder (:mod:`grouplevel.bids`); its
+    ``line`` numbers are those of the table ``grouplevel table FOLDER`` writes, and
+    ``table.attrs["skipped"]`` lists the files it left out.
+    """
+    if path.is_dir():
+        found = derivatives_table(path)
+        table = found.table.astype(str)
+        table.insert(0, "line", np.arange(len(table)) + 2)
+        table.attrs["skipped"] = list(found.skipped)
+        return table
     if not path.is_file():
         raise UserError(f"{path}: runs table not found ([study] table)")
     sep = "," if path.suffix.lower() == ".csv" else "\t"
@@ -142,7 +154,24 @@ def _condition_column(path: Path, table: pd.DataFrame, problems: list[str], warn
             "(the first-level condition of each row); it is read as 'condition' for now — "
             "rename the column"
         )
-        return table.rename(columns={OLD_CONDITION_COLUMN: "condition"})
+        table = table.rename(columns={OLD_CONDITION_COLUMN: "condition"})
+    return _bids_columns(path, table, problems)
+
+
+def _bids_columns(path: Path, table: pd.DataFrame, problems: list[str]) -> pd.DataFrame:
+    """A BIDS-style ``participant_id`` (``sub-m01``) stands for ``animal`` (``m01``), and
+    ``session_id`` (``ses-1``) for ``session`` (``1``)."""
+    for bids, ours, prefix in (
+        ("participant_id", "animal", "sub-"),
+        ("session_id", "session", "ses-"),
+    ):
+        if bids not in table.columns:
+            continue
+        if ours in table.columns:
+            problems.append(f"{path.name}: has both '{ours}' and '{bids}'; keep one of them")
+            continue
+        table = table.rename(columns={bids: ours})
+        table[ours] = table[ours].str.removeprefix(prefix)
     return table
 
 
@@ -287,6 +316,13 @@ def inspect_study(settings: Settings) -> Study:
     warnings: list[str] = []
     path = settings.study.table
     table = _condition_column(path, read_table(path), problems, warnings)
+    skipped = table.attrs.get("skipped", [])
+    if skipped:
+        warnings.append(
+            f"{path}: {len(skipped)} file(s) of the derivatives folder left out: "
+            + "; ".join(skipped[:5])
+            + (f"; ... (see grouplevel table {path})" if len(skipped) > 5 else "")
+        )
     table = _check_rows(path, table, problems)
     if problems:
         raise UserError(f"{path}: {len(problems)} problem(s) in the runs table", problems)

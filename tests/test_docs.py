@@ -8,10 +8,10 @@ of "A first session" are run through the command-line entry point.
 from __future__ import annotations
 
 import os
-import re
 import shlex
 from pathlib import Path
 
+import pandas as pd
 import pytest
 
 from grouplevel.cli import main
@@ -23,8 +23,20 @@ PYTHON_PAGES = ("python-api.md", "planning.md", "report.md")
 
 
 def _blocks(page: str, language: str) -> list[str]:
-    text = (DOCS / page).read_text(encoding="utf-8")
-    return re.findall(rf"```{language}\n(.*?)```", text, flags=re.S)
+    """The fenced code blocks of a page whose info string is ``language``."""
+    blocks: list[str] = []
+    current: list[str] | None = None
+    info = ""
+    for line in (DOCS / page).read_text(encoding="utf-8").splitlines():
+        if current is None and line.startswith("```"):
+            info, current = line[3:].strip(), []
+        elif current is not None and line.strip() == "```":
+            if info == language:
+                blocks.append("\n".join(current) + "\n")
+            current = None
+        elif current is not None:
+            current.append(line)
+    return blocks
 
 
 @pytest.fixture(scope="module")
@@ -65,4 +77,34 @@ def test_first_session_commands_run_as_written(folder, capsys):
         ran += 1
     assert ran == 3
     assert (folder / "my_results" / "report.html").is_file()
+    assert "study is valid" in capsys.readouterr().out
+
+
+def test_first_level_page_runs_as_written(folder, capsys):
+    # docs/first-level-to-grouplevel.md: the Python block builds a derivatives folder
+    # from the example's maps, `grouplevel table` turns it into a runs table, and the
+    # study file naming that table passes `check` with the same runs as the original
+    page = "first-level-to-grouplevel.md"
+    (block,) = _blocks(page, "python")
+    exec(compile(block, f"docs/{page}", "exec"), {})  # noqa: S102
+    commands = [
+        shlex.split(line.split("#")[0])
+        for b in _blocks(page, "")
+        for line in b.splitlines()
+        if line.startswith(".venv/bin/grouplevel")
+    ]
+    assert [c[1] for c in commands] == ["table", "check"]
+    assert main(commands[0][1:]) == 0
+    made = pd.read_csv(folder / "my_example" / "runs_from_folder.tsv", sep="\t", dtype=str)
+    original = pd.read_csv(folder / "my_example" / "runs.tsv", sep="\t", dtype=str)
+    assert len(made) == len(original)
+    key = ["animal", "session", "run", "condition"]
+    assert sorted(map(tuple, made[key].to_numpy())) == sorted(map(tuple, original[key].to_numpy()))
+    toml = folder / "my_example" / "study.toml"
+    text = toml.read_text()
+    toml.write_text(text.replace('table = "runs.tsv"', 'table = "runs_from_folder.tsv"'))
+    try:
+        assert main(commands[1][1:]) == 0
+    finally:
+        toml.write_text(text)
     assert "study is valid" in capsys.readouterr().out
