@@ -102,6 +102,50 @@ def grid_mismatch(reference: Grid, other: Grid) -> str | None:
     return None
 
 
+# NIfTI-1 intent of each output map, by file stem (NIfTI-1 standard, nifti1.h intent
+# codes): (intent, short name ≤ 16 characters). Stems not listed are estimates.
+_INTENTS: tuple[tuple[str, str, str], ...] = (
+    # (stem prefix, intent, name) — the first matching prefix wins
+    ("asymmetry_p_fwe", "p value", "p FWE asymmetry"),
+    ("asymmetry_t", "estimate", "t asymmetry"),
+    ("asymmetry_z", "z score", "z asymmetry"),
+    ("asymmetry_q", "estimate", "q FDR asymmetry"),
+    ("p_fwe_voxel", "p value", "p FWE voxel"),
+    ("p_fwe_cluster", "p value", "p FWE cluster"),
+    ("p_fwe_tfce", "p value", "p FWE TFCE"),
+    ("clusters", "label", "cluster labels"),
+    ("mask", "label", "analysis mask"),
+    ("coverage", "estimate", "coverage count"),
+    ("var_", "estimate", "variance"),
+    ("effect", "estimate", "effect"),
+    ("se", "estimate", "standard error"),
+    ("df", "estimate", "df of t"),
+    ("tfce", "estimate", "TFCE"),
+    ("t", "t test", "t"),
+    ("z", "z score", "z"),
+    ("p", "p value", "p uncorrected"),
+    ("q", "estimate", "q FDR"),
+)
+
+
+def map_intent(stem: str, df: float | None = None) -> tuple[str, tuple[float, ...], str]:
+    """The NIfTI intent (code name, parameters, name) of an output map.
+
+    A t map carries its degrees of freedom as the intent's parameter when they are the
+    same at every voxel; otherwise it is stored as an estimate (see ``df.nii.gz``).
+    FDR q values are adjusted p-values, not p-values of one test, so they are estimates.
+    """
+    for prefix, intent, name in _INTENTS:
+        exact = prefix in ("t", "z", "p", "q", "se", "df", "effect", "tfce", "mask", "clusters")
+        if stem == prefix if exact else stem.startswith(prefix):
+            if intent == "t test":
+                if df is None or not np.isfinite(df):
+                    return "estimate", (), "t (df varies)"
+                return intent, (float(df),), name
+            return intent, (), name
+    return "estimate", (), stem[:16]
+
+
 def write_map(
     path: Path,
     values: np.ndarray,
@@ -109,6 +153,8 @@ def write_map(
     grid: Grid,
     description: str,
     dtype: type = np.float32,
+    *,
+    df: float | None = None,
 ) -> None:
     """Write masked values as a 3-D NIfTI map on the study grid.
 
@@ -126,6 +172,12 @@ def write_map(
         The study grid (its affine goes into the header).
     description
         What the map holds; stored in the header's description field (80 bytes max).
+    df
+        For a t map, its degrees of freedom when they are the same at every voxel.
+
+    The header's intent code and intent name say what the map holds
+    (:func:`map_intent`, from the file name), so a viewer or script knows whether it
+    opened a t, z or p map.
     """
     out = np.zeros(grid.shape, dtype=dtype)
     if values.ndim == 1:
@@ -134,6 +186,8 @@ def write_map(
         out[mask] = np.nan_to_num(values[mask], nan=0.0, posinf=0.0, neginf=0.0)
     img = nib.Nifti1Image(out, grid.affine)
     img.header["descrip"] = description.encode("ascii", "replace")[:79]
+    intent, params, name = map_intent(path.name.split(".")[0], df)
+    img.header.set_intent(intent, params, name=name)
     img.header.set_xyzt_units("mm")
     img.set_qform(grid.affine, code=1)
     img.set_sform(grid.affine, code=1)

@@ -539,6 +539,7 @@ def _write_group_map(folder: Path, gm: GroupMap) -> None:
     folder.mkdir()
     grid = gm.grid
     label = f"{gm.first_level or ''} {gm.contrast}".strip()
+    dfs = np.unique(gm.df[np.isfinite(gm.df)])
     for key, what in MAP_DESCRIPTIONS.items():
         write_map(
             folder / f"{key}.nii.gz",
@@ -546,6 +547,7 @@ def _write_group_map(folder: Path, gm: GroupMap) -> None:
             gm.mask,
             grid,
             f"grouplevel {what} [{label}]",
+            df=float(dfs[0]) if key == "t" and dfs.size == 1 else None,
         )
     full = np.ones(grid.shape, dtype=bool)
     for stem, values, what, dtype in (
