@@ -254,6 +254,8 @@ def answer_questions(
         c,
         animal_ids=design.animal_ids,
         estimate_run_variance=estimate or s2 is None,
+        var_animal=fit.var_animal,
+        var_run=fit.var_run,
     )
     quality = run_quality(
         y, s2, design.animal, runs, loo.effect, shell, threshold=questions.outlier_z
