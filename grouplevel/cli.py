@@ -78,7 +78,12 @@ def _parser() -> argparse.ArgumentParser:
         default=None,
         help="significance level (default: the study's [inference] alpha)",
     )
-    pl.add_argument("--target-power", type=float, default=0.8)
+    pl.add_argument(
+        "--target-power",
+        type=float,
+        default=0.8,
+        help="power the cheapest design must reach (default 0.8)",
+    )
 
     t = sub.add_parser(
         "table",
@@ -102,7 +107,10 @@ def _parser() -> argparse.ArgumentParser:
     t.add_argument("--force", action="store_true", help="replace an existing table")
 
     e = sub.add_parser("example", help="write the invented example study into a folder")
-    e.add_argument("folder", type=Path)
+    e.add_argument("folder", type=Path, help="folder to write the example study into")
+    e.add_argument(
+        "--force", action="store_true", help="overwrite an example study already in the folder"
+    )
 
     d = sub.add_parser("demo", help="write the example study and run it")
     d.add_argument(
@@ -112,7 +120,9 @@ def _parser() -> argparse.ArgumentParser:
         help="folder for the example study and its results (default: temporary)",
     )
     d.add_argument("--force", action="store_true", help="replace earlier demo results")
-    d.add_argument("--quiet", action="store_true")
+    d.add_argument(
+        "--quiet", action="store_true", help="print only errors and where the outputs are"
+    )
     return p
 
 
@@ -239,6 +249,12 @@ def _table(args: argparse.Namespace) -> int:
 def _example(args: argparse.Namespace) -> int:
     from grouplevel.example import write_example
 
+    existing = args.folder / "study.toml"
+    if existing.exists() and not args.force:
+        raise UserError(
+            f"{existing}: a study file is already there; choose another folder, or add "
+            "--force to overwrite it with the example"
+        )
     toml = write_example(args.folder)
     print(f"example study written to {toml.parent}")
     print(f"next: grouplevel check {toml}")
@@ -289,6 +305,13 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # the reader of our output went away (e.g. `grouplevel plan DIR | head`): stop
+        # quietly; point stdout at devnull so that the interpreter's final flush is silent
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
 
 
 if __name__ == "__main__":

@@ -19,7 +19,6 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from scipy import stats
-from tqdm import tqdm
 
 from grouplevel import __version__
 from grouplevel.compute import Backend, fit_voxel_chunks, open_backend
@@ -37,6 +36,7 @@ from grouplevel.model import (
     satterthwaite_df,
     test_contrast,
 )
+from grouplevel.progress import Progress
 from grouplevel.questions import Answers, answer_questions, asks_questions
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.study import FirstLevel, Study, load_runs, load_study
@@ -215,9 +215,7 @@ def _correct(
     perm = None
     if inf.permutations > 0:
         rng = np.random.default_rng(inf.seed)
-        bar = tqdm(
-            total=None, desc=f"permutations {label}", unit="perm", disable=quiet, leave=False
-        )
+        bar = Progress(f"permutations {label}", "permutations", quiet=quiet)
         perm = permutation_test(
             animal_data,
             c,
@@ -232,7 +230,7 @@ def _correct(
             use_tfce=inf.tfce,
             tfce_E=inf.tfce_e,
             tfce_H=inf.tfce_h,
-            progress=lambda done, total: (setattr(bar, "total", total), bar.update(done)),
+            progress=bar.update,
             backend=backend,
         )
         bar.close()

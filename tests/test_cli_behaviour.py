@@ -1,0 +1,71 @@
+"""Command-line behaviour that is not about numbers: refusals, pipes, help, logs."""
+
+from __future__ import annotations
+
+import io
+import os
+import sys
+
+import pytest
+
+from grouplevel.cli import _parser, main
+from grouplevel.progress import Progress
+
+
+def test_example_does_not_overwrite_a_study_without_force(tmp_path, capsys):
+    folder = tmp_path / "mine"
+    folder.mkdir()
+    (folder / "study.toml").write_text("# my own study\n")
+    assert main(["example", str(folder)]) == 2
+    assert "--force" in capsys.readouterr().err
+    assert (folder / "study.toml").read_text() == "# my own study\n"
+    assert main(["example", str(folder), "--force"]) == 0
+    assert "INVENTED" in (folder / "study.toml").read_text()
+
+
+def test_a_closed_pipe_ends_quietly(tmp_path, monkeypatch, capsys):
+    # `grouplevel ... | head -1`: the reader closes the pipe; no traceback, exit 0
+    read_end, write_end = os.pipe()
+    os.close(read_end)
+    broken = os.fdopen(write_end, "w", buffering=1)
+    monkeypatch.setattr(sys, "stdout", broken)
+    folder = tmp_path / "ex"
+    try:
+        assert main(["example", str(folder)]) == 0
+    finally:
+        broken.close()
+    assert "Traceback" not in capsys.readouterr().err
+
+
+@pytest.mark.parametrize(
+    ("command", "words"),
+    [
+        (["plan", "--help"], "power the cheapest design must reach"),
+        (["example", "--help"], "folder to write the example study into"),
+        (["demo", "--help"], "print only errors"),
+    ],
+)
+def test_every_option_has_help(command, words, capsys):
+    with pytest.raises(SystemExit):
+        _parser().parse_args(command)
+    assert words in " ".join(capsys.readouterr().out.split())
+
+
+def test_progress_in_a_log_is_a_few_plain_lines():
+    stream = io.StringIO()  # not a terminal
+    bar = Progress("permutations sound", "permutations", quiet=False, stream=stream)
+    for _ in range(64):
+        bar.update(16, 1024)
+    bar.close()
+    text = stream.getvalue()
+    assert "\r" not in text
+    assert text.splitlines() == [
+        "permutations sound: 256/1024 permutations",
+        "permutations sound: 512/1024 permutations",
+        "permutations sound: 768/1024 permutations",
+        "permutations sound: 1024/1024 permutations",
+    ]
+    quiet = io.StringIO()
+    silent = Progress("x", "permutations", quiet=True, stream=quiet)
+    silent.update(10, 10)
+    assert quiet.getvalue() == ""
