@@ -66,10 +66,10 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
-from grouplevel.config import DEFAULT_ATLAS_MIN_COVERAGE
-from grouplevel.coordinates import describe_orientation
+from grouplevel.anatomy.coordinates import describe_orientation
 from grouplevel.errors import UserError
-from grouplevel.images import AFFINE_TOLERANCE_MM, Grid
+from grouplevel.intake.images import AFFINE_TOLERANCE_MM, Grid
+from grouplevel.intake.settings import DEFAULT_ATLAS_MIN_COVERAGE
 
 # Smallest share of the analysis mask that the atlas labels must cover (defined with the
 # other defaults in grouplevel.config).

@@ -42,11 +42,11 @@ import pandas as pd
 import scipy.sparse as sp
 from scipy import ndimage, stats
 
-from grouplevel.atlas import Atlas
-from grouplevel.coordinates import STEREOTAXIC_COLUMNS, to_stereotaxic, voxel_to_mm
-from grouplevel.images import Grid
+from grouplevel.anatomy.atlas import Atlas
+from grouplevel.anatomy.coordinates import STEREOTAXIC_COLUMNS, to_stereotaxic, voxel_to_mm
 from grouplevel.inference import fdr
 from grouplevel.inference.clusters import Clusters
+from grouplevel.intake.images import Grid
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 
 #: Sub-peaks closer than this to a stronger kept peak are not listed. Our own choice: five

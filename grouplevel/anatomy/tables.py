@@ -19,16 +19,16 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
-from grouplevel.atlas import Atlas
-from grouplevel.config import Settings
-from grouplevel.inference import Clusters, find_clusters
-from grouplevel.regions import (
+from grouplevel.anatomy.atlas import Atlas
+from grouplevel.anatomy.regions import (
     animal_table,
     cluster_table,
     region_table,
     region_values,
     region_variances,
 )
+from grouplevel.inference import Clusters, find_clusters
+from grouplevel.intake.settings import Settings
 
 
 @dataclass(frozen=True)

@@ -58,7 +58,7 @@ import numpy as np
 from numba import njit
 
 from grouplevel.errors import UserError
-from grouplevel.memory import CHUNK_ARRAYS, chunk_voxels
+from grouplevel.model.memory import CHUNK_ARRAYS, chunk_voxels
 
 # Working-memory budget of one chunk of voxels, in bytes. About 24 arrays of shape
 # (chunk, runs) are alive at once inside the iteration (common practice: keep the

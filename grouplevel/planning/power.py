@@ -52,10 +52,7 @@ calculations for data analysis. Am Stat 55:19-24.
 from __future__ import annotations
 
 import io
-import json
 import math
-import os
-import tempfile
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -66,6 +63,8 @@ import pandas as pd
 from scipy import stats
 
 from grouplevel.errors import UserError
+from grouplevel.outputs.files import atomic_write
+from grouplevel.outputs.summary import read_summary, write_summary
 
 #: Sidedness of the test, in the words of ``[inference] sided``: ``two`` tests
 #: ``|T| > t_{1-α/2}``, ``positive`` tests ``T > t_{1-α}``, ``negative`` ``T < -t_{1-α}``.
@@ -531,22 +530,6 @@ def plans_figure_png(results: Sequence[PlanResult]) -> bytes:
 # --------------------------------------------------------------------------------------
 
 
-def _read_summary(out: Path) -> dict[str, Any]:
-    path = out / "summary.json"
-    if not path.is_file():
-        raise UserError(
-            f"{path}: not found; give the output folder of a finished analysis "
-            "(it holds summary.json)"
-        )
-    try:
-        summary = json.loads(path.read_text())
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise UserError(f"{path}: not valid JSON ({exc}); rerun the analysis") from exc
-    if not isinstance(summary, dict) or not isinstance(summary.get("results"), dict):
-        raise UserError(f"{path}: has no 'results' entry; rerun the analysis")
-    return summary
-
-
 def _read_regions(path: Path) -> pd.DataFrame:
     table = pd.read_csv(path, sep="\t")
     missing = [c for c in _REGION_COLUMNS if c not in table.columns]
@@ -598,9 +581,9 @@ class _FirstLevelVariance:
         return self.cache[first_level]
 
     def _compute(self, first_level: str | None) -> dict[int, float]:
-        from grouplevel.regions import region_variances
-        from grouplevel.study import load_runs, load_study
-        from grouplevel.tables import restrict_atlas
+        from grouplevel.anatomy.regions import region_variances
+        from grouplevel.anatomy.tables import restrict_atlas
+        from grouplevel.intake.study import load_runs, load_study
 
         source = (self.summary.get("settings") or {}).get("source")
         if not source or not Path(source).is_file():
@@ -738,7 +721,7 @@ def plan_from_output(
     Hoenig JM, Heisey DM (2001). Am Stat 55:19-24.
     """
     out = Path(out_dir).expanduser()
-    summary = _read_summary(out)
+    summary = read_summary(out)
     settings = summary.get("settings") or {}
     inference = settings.get("inference") or {}
     if alpha is None:
@@ -910,18 +893,6 @@ def _plan_row(
 # --------------------------------------------------------------------------------------
 
 
-def _atomic_write(path: Path, data: bytes) -> None:
-    """Write to a temporary file beside ``path`` and rename it into place."""
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-
-
 def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]:
     """Write each map's plan into its result folder and record it in summary.json.
 
@@ -937,7 +908,7 @@ def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]
         The files written, summary.json last.
     """
     out = Path(out_dir).expanduser()
-    summary = _read_summary(out)
+    summary = read_summary(out)
     groups: dict[str, list[PlanResult]] = {}
     for res in results:
         groups.setdefault(res.name, []).append(res)
@@ -951,15 +922,13 @@ def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]
             raise UserError(f"{folder}: result folder not found; plan from this output folder")
         table = pd.concat([r.table() for r in group], ignore_index=True)
         tsv = folder / "power.tsv"
-        _atomic_write(tsv, table.to_csv(sep="\t", index=False, float_format="%.6g").encode())
+        atomic_write(tsv, table.to_csv(sep="\t", index=False, float_format="%.6g").encode())
         png = folder / "power.png"
-        _atomic_write(png, plans_figure_png(group))
+        atomic_write(png, plans_figure_png(group))
         written += [tsv, png]
         plan[name] = {"regions": [r.summary() for r in group]}
     summary["plan"] = plan
-    path = out / "summary.json"
-    _atomic_write(path, (json.dumps(summary, indent=2) + "\n").encode())
-    written.append(path)
+    written.append(write_summary(out, summary))
     return written
 
 

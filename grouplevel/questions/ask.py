@@ -16,7 +16,8 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
-from grouplevel.config import QuestionSettings, Settings
+from grouplevel.anatomy.regions import region_values
+from grouplevel.anatomy.tables import RegionData, surviving_voxels
 from grouplevel.inference import fdr
 from grouplevel.inference.permutation import (
     PermutationResult,
@@ -24,10 +25,10 @@ from grouplevel.inference.permutation import (
     cluster_forming_z,
     permutation_test,
 )
+from grouplevel.intake.settings import QuestionSettings, Settings
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
-from grouplevel.quality import RunQuality, run_quality
-from grouplevel.regions import region_values
-from grouplevel.specificity import (
+from grouplevel.questions.quality import RunQuality, run_quality
+from grouplevel.questions.specificity import (
     Consistency,
     LooMaps,
     Specificity,
@@ -39,14 +40,13 @@ from grouplevel.specificity import (
     loo_group_maps,
     specificity,
 )
-from grouplevel.symmetry import (
+from grouplevel.questions.symmetry import (
     analyse_symmetry,
     asymmetry_data,
     li_curves,
     mirror_index,
     symmetry_table,
 )
-from grouplevel.tables import RegionData, surviving_voxels
 
 # Seeds of the bootstrap and of the asymmetry map's permutations derive from the study's
 # seed; these offsets keep their random streams apart from the main permutations.

@@ -35,7 +35,7 @@ import numpy as np
 import pandas as pd
 
 from grouplevel.errors import UserError
-from grouplevel.specificity import _correlation
+from grouplevel.questions.specificity import _correlation
 
 #: |robust z| above which a run is flagged (Iglewicz & Hoaglin 1993; value from memory).
 DEFAULT_Z_THRESHOLD = 3.5

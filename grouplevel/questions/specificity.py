@@ -48,7 +48,7 @@ import pandas as pd
 import scipy.sparse as sp
 from scipy import ndimage, stats
 
-from grouplevel.atlas import Atlas
+from grouplevel.anatomy.atlas import Atlas
 from grouplevel.errors import UserError
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 

@@ -53,7 +53,7 @@ import pandas as pd
 import scipy.sparse as sp
 from scipy import stats
 
-from grouplevel.atlas import MIDLINE_TOLERANCE_MM, Atlas
+from grouplevel.anatomy.atlas import MIDLINE_TOLERANCE_MM, Atlas
 from grouplevel.errors import UserError
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 

@@ -27,6 +27,8 @@ from dataclasses import dataclass
 from importlib import metadata
 from pathlib import Path
 
+from grouplevel.outputs.summary import present_files, read_summary
+
 REFERENCES = {
     "reml": "Patterson HD, Thompson R (1971). Recovery of inter-block information when "
     "block sizes are unequal. Biometrika 58:545–554.",
@@ -380,10 +382,8 @@ def write_methods(out_dir: Path) -> Path:
     Path
         The written file.
     """
-    from grouplevel.report.render import load_summary, present_files
-
     out_dir = Path(out_dir)
-    summary = load_summary(out_dir)
+    summary = read_summary(out_dir)
     text = methods_text(summary, present_files(out_dir, summary)).markdown()
     path = out_dir / "methods.md"
     path.write_text(text, encoding="utf-8")

@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import base64
 import datetime as _dt
-import json
 import time
 from importlib import resources
 from pathlib import Path
@@ -27,7 +26,7 @@ import jinja2
 import nibabel as nib
 import numpy as np
 
-from grouplevel.errors import UserError
+from grouplevel.outputs.summary import present_files, read_summary, result_names
 from grouplevel.report import figures
 from grouplevel.report.methods import methods_text
 from grouplevel.report.tables import (
@@ -36,7 +35,6 @@ from grouplevel.report.tables import (
     TableView,
     format_value,
     read_tsv,
-    result_names,
     result_table_views,
 )
 
@@ -59,32 +57,6 @@ _METHOD_LABEL = {
 #: row per animal and region).
 REPORT_TABLES = ("clusters", "regions", "symmetry", "specificity", "consistency", "run_quality")
 MAX_WHERE = 3  # clusters named in the short answer
-
-
-def load_summary(out_dir: Path) -> dict:
-    """Parse ``out_dir/summary.json``.
-
-    Raises
-    ------
-    UserError
-        When the folder or its summary.json is missing or unreadable.
-    """
-    path = Path(out_dir) / "summary.json"
-    if not path.is_file():
-        raise UserError(f"{path}: not found; give the output folder of a finished 'grouplevel run'")
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError) as exc:
-        raise UserError(f"{path}: cannot read summary.json ({exc}); re-run the study") from None
-
-
-def present_files(out_dir: Path, summary: dict) -> dict[str, set[str]]:
-    """Result name → names of the files in its folder."""
-    out = {}
-    for name in result_names(summary):
-        folder = Path(out_dir) / name
-        out[name] = {p.name for p in folder.iterdir()} if folder.is_dir() else set()
-    return out
 
 
 def _environment() -> jinja2.Environment:
@@ -746,7 +718,7 @@ def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:
 def build_context(out_dir: Path, *, title: str | None = None) -> dict:
     """Everything the template needs (figures drawn, tables formatted)."""
     out_dir = Path(out_dir)
-    summary = load_summary(out_dir)
+    summary = read_summary(out_dir)
     names = result_names(summary)
     files = present_files(out_dir, summary)
     results = []

@@ -36,8 +36,8 @@ from typing import Any
 
 import numpy as np
 
-from grouplevel.config import BACKENDS, ComputeSettings
 from grouplevel.errors import UserError
+from grouplevel.intake.settings import BACKENDS, ComputeSettings
 from grouplevel.model.reml import MixedFit, _check_inputs, fit_reml
 
 # Seconds to wait for a remote scheduler before giving up (distributed's own default
