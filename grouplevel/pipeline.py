@@ -17,7 +17,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 from tqdm import tqdm
 
 from grouplevel import __version__
@@ -28,6 +27,7 @@ from grouplevel.inference.permutation import (
     animal_level_data,
     permutation_test,
 )
+from grouplevel.inference.significance import sided_p
 from grouplevel.intake.images import Grid, write_map
 from grouplevel.intake.settings import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
 from grouplevel.intake.study import FirstLevel, Study, load_runs, load_study
@@ -40,16 +40,8 @@ from grouplevel.outputs.summary import write_summary
 from grouplevel.questions.ask import answer_questions, asks_questions
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.results.compute import Backend, fit_voxel_chunks, open_backend
+from grouplevel.results.correction import permutation_arguments
 from grouplevel.results.maps import MAP_DESCRIPTIONS, Corrected, GroupMap
-
-
-def _sided_p(t: np.ndarray, df: np.ndarray, sided: str) -> np.ndarray:
-    if sided == "positive":
-        return stats.t.sf(t, df)
-    if sided == "negative":
-        return stats.t.cdf(t, df)
-    return 2.0 * stats.t.sf(np.abs(t), df)
-
 
 # Runs used for the residual smoothness estimate: at most this many, evenly spread, so
 # that its full-grid float64 copies stay small on large studies (our own choice; 30 maps
@@ -99,7 +91,7 @@ def _correct(
     backend: Backend | None = None,
 ) -> Corrected:
     inf: InferenceSettings = study.settings.inference
-    p_sided = _sided_p(t, df, inf.sided)
+    p_sided = sided_p(t, df, inf.sided)
     q = fdr(p_sided, alpha=inf.alpha, method=inf.fdr)
     warnings: list[str] = []
     perm = None
@@ -113,17 +105,9 @@ def _correct(
             c,
             df,
             mask,
-            n_permutations=inf.permutations,
             rng=rng,
-            sided=inf.sided,
-            connectivity=inf.connectivity,
-            cluster_forming_p=inf.cluster_forming_p,
-            voxel_volume_mm3=study.grid.voxel_volume,
-            use_tfce=inf.tfce,
-            tfce_E=inf.tfce_e,
-            tfce_H=inf.tfce_h,
             progress=lambda done, total: (setattr(bar, "total", total), bar.update(done)),
-            backend=backend,
+            **permutation_arguments(inf, voxel_volume_mm3=study.grid.voxel_volume, backend=backend),
         )
         bar.close()
         if perm.scheme.smallest_p > inf.alpha:
@@ -264,6 +248,7 @@ def _fit_first_level(
                 regions,
                 settings.questions_for(fl.name),
                 settings,
+                backend=backend,
             )
             gm = replace(gm, answers=answers)
         results.append(gm)

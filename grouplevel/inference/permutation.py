@@ -44,7 +44,6 @@ from __future__ import annotations
 
 import itertools
 import math
-import os
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -53,12 +52,13 @@ from typing import Protocol
 import numpy as np
 from scipy import stats
 
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
 from grouplevel.inference import _refit_kernel
 from grouplevel.inference.clusters import Clusters, find_clusters, max_cluster_extent_and_mass
+from grouplevel.inference.significance import check_sided
 from grouplevel.inference.tfce import tfce as tfce_map
+from grouplevel.machine import available_cores
 
-SIDES = ("two", "positive", "negative")
 # t -> z conversion table: points on u = asinh(t) up to t = 1e8 (our own choice; the
 # interpolation error is below 1e-4 in z, far below what a threshold needs).
 _TZ_POINTS = 4001
@@ -112,7 +112,7 @@ def animal_level_data(
 
     Raises
     ------
-    UserError
+    ArgumentError
         When a design column varies within an animal (a run-level covariate): runs of
         one animal are not exchangeable when their first-level variances differ, and
         moving them across animals would break the nesting, so such designs are tested
@@ -128,12 +128,12 @@ def animal_level_data(
             if column_names
             else [str(j) for j in np.flatnonzero(varies)]
         )
-        raise UserError(
-            f"[inference] permutations: the design has run-level columns ({', '.join(names)}); "
-            "permutation inference exchanges whole animals, and runs within an animal are "
-            "not exchangeable (their first-level variances differ), so a run-level "
-            "covariate cannot be permuted without breaking the nesting. Set "
-            "permutations = 0 for parametric inference, or use animal-level covariates."
+        raise ArgumentError(
+            f"the design has run-level columns ({', '.join(names)}); permutations "
+            "exchange whole animals, and runs within an animal are not exchangeable (their "
+            "first-level variances differ), so a run-level covariate cannot be permuted "
+            "without breaking the nesting; test such designs parametrically, or use "
+            "animal-level covariates."
         )
     indicator = np.zeros((m, len(animal)))
     indicator[animal, np.arange(len(animal))] = 1.0
@@ -245,7 +245,7 @@ def plan_permutations(
     """
     m = x_interest.shape[0]
     if n_requested < 1:
-        raise UserError("[inference] permutations must be at least 1 for a permutation test")
+        raise ArgumentError(f"n_permutations must be at least 1, got {n_requested}")
     if np.allclose(x_interest, x_interest[0]):
         n_distinct = 2.0**m
         if n_distinct <= n_requested:
@@ -545,8 +545,7 @@ def permutation_test(
     Winkler AM et al. (2014). NeuroImage 92:381-397.
     Smith SM, Nichols TE (2009). NeuroImage 44:83-98.
     """
-    if sided not in SIDES:
-        raise UserError(f"[inference] sided must be one of {', '.join(SIDES)}, got {sided!r}")
+    check_sided(sided)
     x_i, Z = partition_design(data.design, c)
     X_perm = np.column_stack([x_i, Z])
     scheme = plan_permutations(x_i, Z, n_permutations, rng, sided)
@@ -595,7 +594,7 @@ def permutation_test(
     else:
         null = np.zeros((n, 4))
         batch = 16
-        n_threads = threads or max(1, len(os.sched_getaffinity(0)))
+        n_threads = threads or available_cores()
         pool = ThreadPoolExecutor(max_workers=n_threads) if n_threads > 1 else None
         try:
             for start in range(0, n, batch):

@@ -63,12 +63,13 @@ import pandas as pd
 from scipy import stats
 
 from grouplevel.errors import UserError
+from grouplevel.inference.significance import DEFAULT_ALPHA
+from grouplevel.inference.significance import SIDES as SIDED_CHOICES
 from grouplevel.outputs.files import atomic_write
 from grouplevel.outputs.summary import read_summary, write_summary
 
 #: Sidedness of the test, in the words of ``[inference] sided``: ``two`` tests
 #: ``|T| > t_{1-α/2}``, ``positive`` tests ``T > t_{1-α}``, ``negative`` ``T < -t_{1-α}``.
-SIDED_CHOICES = ("two", "positive", "negative")
 
 #: Default grid: 4 to 24 animals (fewer than 4 animals give at most 2 between-animal df
 #: and, for sign-flip permutations, no attainable p below 0.125; 24 is our own upper end
@@ -77,8 +78,6 @@ SIDED_CHOICES = ("two", "positive", "negative")
 DEFAULT_ANIMALS = range(4, 25)
 DEFAULT_RUNS = range(1, 9)
 
-#: Significance level when the output folder does not give one (common practice).
-DEFAULT_ALPHA = 0.05
 
 #: Target power (common practice: 80%, Cohen 1988, chapter 2).
 DEFAULT_TARGET_POWER = 0.8

@@ -49,7 +49,7 @@ import scipy.sparse as sp
 from scipy import ndimage, stats
 
 from grouplevel.anatomy.atlas import Atlas
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 
 # --------------------------------------------------------------------------------------
@@ -127,7 +127,7 @@ def _structure(connectivity: int) -> np.ndarray:
         return np.ones((3, 3, 3), dtype=bool)
     if connectivity == 6:
         return ndimage.generate_binary_structure(3, 1)
-    raise UserError(
+    raise ArgumentError(
         f"edge shell connectivity must be 6 or 26, got {connectivity!r}; set it to one of those."
     )
 
@@ -160,9 +160,9 @@ def edge_shell(
     """
     mask = np.asarray(mask, dtype=bool)
     if mask.ndim != 3:
-        raise UserError(f"edge_shell: the mask must be 3-D, got shape {mask.shape}.")
+        raise ArgumentError(f"edge_shell: the mask must be 3-D, got shape {mask.shape}.")
     if int(distance_voxels) < 1:
-        raise UserError(
+        raise ArgumentError(
             f"edge shell thickness must be at least 1 voxel, got {distance_voxels!r}; "
             "give a positive whole number of voxels."
         )
@@ -195,7 +195,7 @@ def leaf_rows(atlas: Atlas, rows: Sequence[int]) -> np.ndarray:
     n = len(regions)
     rows = np.asarray(list(rows), dtype=np.int64)
     if rows.size and (rows.min() < 0 or rows.max() >= n):
-        raise UserError(
+        raise ArgumentError(
             f"region rows must be between 0 and {n - 1}, got {rows.tolist()}; take them "
             "from Atlas.region_rows(name)."
         )
@@ -467,7 +467,7 @@ def _region_frame(
 def _vector(x, n: int, what: str, dtype=float) -> np.ndarray:
     x = np.asarray(x, dtype=dtype).reshape(-1)
     if x.shape != (n,):
-        raise UserError(f"specificity: {what} has {x.size} values for {n} in-mask voxels.")
+        raise ArgumentError(f"specificity: {what} has {x.size} values for {n} in-mask voxels.")
     return x
 
 
@@ -544,11 +544,11 @@ def specificity(
     height = _vector(height, n_vox, "height")
     y = np.asarray(y, dtype=float)
     if y.ndim != 2 or y.shape[1] != n_vox:
-        raise UserError(f"specificity: y must be (runs, {n_vox} voxels), got {y.shape}.")
+        raise ArgumentError(f"specificity: y must be (runs, {n_vox} voxels), got {y.shape}.")
     if len(list(targets)) == 0:
-        raise UserError(
-            "specificity: no target regions given; name at least one atlas region in "
-            "[questions] targets."
+        raise ArgumentError(
+            "specificity: no target regions given; pass the atlas rows of at least one "
+            "target region."
         )
 
     target_leaves = leaf_rows(atlas, targets)
@@ -845,7 +845,7 @@ def _design_inputs(X, animal, n_runs: int, where: str):
         X = X[:, None]
     animal = np.asarray(animal, dtype=np.int64).reshape(-1)
     if X.shape[0] != n_runs or animal.shape != (n_runs,):
-        raise UserError(
+        raise ArgumentError(
             f"{where}: {n_runs} runs of data but the design has {X.shape[0]} rows and "
             f"{animal.size} animal codes; give one design row and code per run."
         )
@@ -914,12 +914,12 @@ def consistency(
     animal_ids = [str(a) for a in animal_ids]
     m = len(animal_ids)
     if n and (animal.min() < 0 or animal.max() >= m):
-        raise UserError(f"consistency: animal codes must lie in 0..{m - 1} ({m} animal names).")
+        raise ArgumentError(f"consistency: animal codes must lie in 0..{m - 1} ({m} animal names).")
     s2 = None
     if variances is not None:
         s2 = np.asarray(variances, dtype=float).reshape(-1)
         if s2.shape != (n,):
-            raise UserError(f"consistency: {s2.size} variances for {n} runs.")
+            raise ArgumentError(f"consistency: {s2.size} variances for {n} runs.")
     fit, res = _test(
         values[:, None], None if s2 is None else s2[:, None], X, animal, c, estimate_run_variance
     )
@@ -1099,7 +1099,7 @@ def loo_group_maps(
     """
     y = np.asarray(y, dtype=float)
     if y.ndim != 2:
-        raise UserError(f"loo_group_maps: y must be (runs, voxels), got shape {y.shape}.")
+        raise ArgumentError(f"loo_group_maps: y must be (runs, voxels), got shape {y.shape}.")
     X, animal = _design_inputs(X, animal, y.shape[0], "loo_group_maps")
     m = int(animal.max()) + 1
     ids = tuple(str(a) for a in (animal_ids if animal_ids is not None else range(m)))

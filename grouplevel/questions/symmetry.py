@@ -54,7 +54,8 @@ import scipy.sparse as sp
 from scipy import stats
 
 from grouplevel.anatomy.atlas import MIDLINE_TOLERANCE_MM, Atlas
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
+from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 
 # --------------------------------------------------------------------------------------
@@ -63,9 +64,6 @@ from grouplevel.model import between_animal_df, fit_reml, test_contrast
 
 #: Equivalence margin on |LI|: ±0.2, a common convention for |LI| (value from memory).
 DEFAULT_EQUIVALENCE_MARGIN = 0.2
-
-#: Significance level of the hemispheric tests and of the "active" rule (common practice).
-DEFAULT_ALPHA = 0.05
 
 #: z above which a voxel counts towards the extent LI: one-sided p < 0.001 uncorrected,
 #: the usual voxel threshold of laterality work (common practice).
@@ -497,7 +495,7 @@ def bootstrap_li(
     if y.ndim != 2 or present.shape != y.shape or animal.shape != (y.shape[0],):
         raise ValueError("y, present must be (runs, V) and animal (runs,)")
     if int(n_boot) < 1:
-        raise UserError(f"[questions] bootstrap = {n_boot}: give at least 1 replicate.")
+        raise ArgumentError(f"n_boot = {n_boot}: a bootstrap needs at least 1 replicate.")
     if not 0.0 < confidence < 1.0:
         raise ValueError("confidence must lie between 0 and 1")
     left_cols = np.asarray(left_cols, dtype=np.int64).ravel()
@@ -622,12 +620,12 @@ def threshold_free_li(
     Matsuo K, Chen SHA, Tseng WYI (2012). J Neurosci Methods 205:119-129.
     """
     if weighting not in TF_WEIGHTINGS:
-        raise UserError(
-            f"[questions] li_weighting = {weighting!r} is not known; use one of "
+        raise ArgumentError(
+            f"weighting = {weighting!r} is not a known laterality-index weighting; use one of "
             f"{', '.join(repr(w) for w in TF_WEIGHTINGS)}."
         )
     if int(n_thresholds) < 2:
-        raise UserError(f"[questions] li_thresholds = {n_thresholds}: give at least 2 thresholds.")
+        raise ArgumentError(f"n_thresholds = {n_thresholds}: give at least 2 thresholds.")
     z = np.asarray(z, dtype=float).ravel()
     left_cols = np.asarray(left_cols, dtype=np.int64).ravel()
     right_cols = np.asarray(right_cols, dtype=np.int64).ravel()
@@ -737,8 +735,8 @@ def tost(difference: float, se: float, df: float, margin: float) -> tuple[float,
 def _check_margin(margin: float) -> float:
     margin = float(margin)
     if not 0.0 < margin < 1.0:
-        raise UserError(
-            f"[questions] equivalence_margin = {margin}: it bounds |LI|, which lies between "
+        raise ArgumentError(
+            f"equivalence_margin = {margin}: it bounds |LI|, which lies between "
             "0 and 1; give a value strictly between 0 and 1 (e.g. 0.2)."
         )
     return margin
@@ -917,11 +915,11 @@ def symmetry_verdict(
     Schuirmann DJ (1987). J Pharmacokinet Biopharm 15:657-680 (equivalence by TOST).
     """
     if not 0.0 < alpha < 1.0:
-        raise UserError(f"[questions] alpha = {alpha}: give a level between 0 and 1.")
+        raise ArgumentError(f"alpha = {alpha}: give a level between 0 and 1.")
     if stimulus_side is not None and stimulus_side not in SIDES:
-        raise UserError(
-            f'[questions] stimulus_side = {stimulus_side!r}: use "left", "right" or leave '
-            "it out when the stimulus was not lateralised."
+        raise ArgumentError(
+            f'stimulus_side = {stimulus_side!r}: use "left", "right" or None when the '
+            "stimulus was not lateralised."
         )
     reasons: list[str] = []
     active = {}
@@ -1032,7 +1030,7 @@ def region_pair(atlas: Atlas, name: str) -> tuple[int, int]:
 
     Raises
     ------
-    UserError
+    ArgumentError
         When the name is unknown, or does not give exactly one left and one right row.
     """
     rows = atlas.region_rows(name)
@@ -1040,8 +1038,8 @@ def region_pair(atlas: Atlas, name: str) -> tuple[int, int]:
     left = [r for r in rows if hemi[r] == "left"]
     right = [r for r in rows if hemi[r] == "right"]
     if len(left) != 1 or len(right) != 1:
-        raise UserError(
-            f"[questions] symmetry region {name!r}: the atlas gives {len(left)} left and "
+        raise ArgumentError(
+            f"region {name!r}: the atlas gives {len(left)} left and "
             f"{len(right)} right row(s) for it; symmetry needs a structure with exactly one "
             "row per hemisphere. Name a lateralised structure (or its abbreviation)."
         )
@@ -1121,9 +1119,8 @@ def analyse_symmetry(
     for name in names:
         left_row, right_row = region_pair(atlas, name)
         if (left_row, right_row) in seen:
-            raise UserError(
-                f"[questions] symmetry region {name!r} names a region pair already listed; "
-                "give each region once."
+            raise ArgumentError(
+                f"region {name!r} names a region pair already listed; give each region once."
             )
         seen.add((left_row, right_row))
         lc, lw = _column(shares, left_row)
