@@ -66,7 +66,7 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
-from grouplevel.anatomy.coordinates import describe_orientation
+from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM, describe_orientation
 from grouplevel.errors import UserError
 from grouplevel.intake.images import AFFINE_TOLERANCE_MM, Grid
 from grouplevel.intake.settings import DEFAULT_ATLAS_MIN_COVERAGE
@@ -74,9 +74,6 @@ from grouplevel.intake.settings import DEFAULT_ATLAS_MIN_COVERAGE
 # Smallest share of the analysis mask that the atlas labels must cover (defined with the
 # other defaults in grouplevel.config).
 
-#: A point this close to the midline plane counts as on it (the same tolerance as for
-#: comparing affines: far below a rodent voxel, above float32 round-off of headers).
-MIDLINE_TOLERANCE_MM = AFFINE_TOLERANCE_MM
 
 #: Below this Dice of the mask with its mirror image a warning says that the midline may
 #: be wrong or the mask one-sided. Our own choice: symmetric brain masks score above 0.9.

@@ -36,18 +36,22 @@ powerful approach to multiple testing. J R Stat Soc B 57:289-300.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 from scipy import ndimage, stats
 
-from grouplevel.anatomy.atlas import Atlas
 from grouplevel.anatomy.coordinates import STEREOTAXIC_COLUMNS, to_stereotaxic, voxel_to_mm
 from grouplevel.inference import fdr
 from grouplevel.inference.clusters import Clusters
-from grouplevel.intake.images import Grid
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model.animals import animal_means
+
+if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
+    from grouplevel.anatomy.atlas import Atlas
+    from grouplevel.intake.images import Grid
 
 #: Sub-peaks closer than this to a stronger kept peak are not listed. Our own choice: five
 #: voxels of a 0.2 mm mouse grid, about the size of a small cortical area.
@@ -756,22 +760,8 @@ def animal_table(
     var_run = np.nan_to_num(np.asarray(var_run, dtype=float).reshape(-1), nan=0.0)
     if var_run.shape != (n_regions,):
         raise ValueError(f"var_run has {var_run.size} values for {n_regions} regions")
-    present = np.isfinite(values)
-    s2 = np.zeros_like(values) if variances is None else np.nan_to_num(variances, nan=0.0)
-    total = var_run[None, :] + s2
-    weighted = present & (total > 0)
-    with np.errstate(divide="ignore"):
-        w = np.where(weighted, 1.0 / np.where(weighted, total, 1.0), 0.0)
-    y0 = np.where(present, values, 0.0)
-    indicator = np.zeros((m, n_runs))
-    indicator[animal, np.arange(n_runs)] = 1.0
-    sum_w = indicator @ w
-    runs = indicator @ present.astype(float)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        precision_mean = (indicator @ (w * y0)) / sum_w
-        plain_mean = (indicator @ y0) / runs
-        effect = np.where(sum_w > 0, precision_mean, np.where(runs > 0, plain_mean, np.nan))
-        se = np.where(sum_w > 0, np.sqrt(1.0 / sum_w), np.nan)
+    means = animal_means(values, animal, n_animals=m, variance=variances, var_run=var_run)
+    effect, se, runs = means.mean, means.se, means.runs
     regions = atlas.regions
     return pd.DataFrame(
         {

@@ -58,6 +58,7 @@ from grouplevel.inference.clusters import Clusters, find_clusters, max_cluster_e
 from grouplevel.inference.significance import check_sided
 from grouplevel.inference.tfce import tfce as tfce_map
 from grouplevel.machine import available_cores
+from grouplevel.model.animals import VARIANCE_FLOOR, animal_means
 
 # t -> z conversion table: points on u = asinh(t) up to t = 1e8 (our own choice; the
 # interpolation error is below 1e-4 in z, far below what a threshold needs).
@@ -66,9 +67,6 @@ _TZ_MAX_T = 1e8
 _MAX_DF_TABLES = 64
 # Voxels per chunk when reducing runs to animal means (keeps temporaries small).
 _CHUNK_VOXELS = 65536
-# Smallest positive first-level + run variance allowed when building precisions; a zero
-# total variance would give an infinite precision (one run per animal, no s²).
-_VARIANCE_FLOOR = 1e-12
 # Where σ² is folded into τ² (no animal with two runs) and a run has no first-level
 # variance, its sampling variance is floored at this share of the voxel's total variance
 # τ̂² + σ̂², which keeps the floor relative to the data's scale (our own choice: far below
@@ -157,20 +155,18 @@ def animal_level_data(
         vc = None if variance is None else np.asarray(variance[:, sl], dtype=float)
         if vc is not None:
             present &= np.isfinite(vc)
-        s2 = np.zeros_like(yc) if vc is None else np.where(present, vc, 0.0)
         within = ((indicator @ present) >= 2).any(axis=0)
         total = var_run[sl] + var_animal[sl]
         vr = np.where(within, var_run[sl], 0.0)
         var_animal_used[sl] = np.where(within, var_animal[sl], total)
         floor = np.where(
-            within, _VARIANCE_FLOOR, np.maximum(_VARIANCE_FLOOR, _FOLDED_FLOOR_SHARE * total)
+            within, VARIANCE_FLOOR, np.maximum(VARIANCE_FLOOR, _FOLDED_FLOOR_SHARE * total)
         )
-        d = np.maximum(vr[None, :] + s2, floor[None, :])
-        w = np.where(present, 1.0 / d, 0.0)
-        wy = np.where(present, w * np.nan_to_num(yc), 0.0)
-        prec[:, sl] = indicator @ w
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean[:, sl] = np.where(prec[:, sl] > 0, (indicator @ wy) / prec[:, sl], 0.0)
+        means = animal_means(
+            yc, animal, n_animals=m, variance=vc, var_run=vr, present=present, floor=floor
+        )
+        prec[:, sl] = means.precision
+        mean[:, sl] = np.where(means.precision > 0, means.mean, 0.0)
     var_animal = var_animal_used
     return AnimalLevelData(
         mean=np.ascontiguousarray(mean.T),

@@ -42,15 +42,19 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 from scipy import ndimage, stats
 
-from grouplevel.anatomy.atlas import Atlas
 from grouplevel.errors import ArgumentError
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model.animals import animal_means
+
+if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
+    from grouplevel.anatomy.atlas import Atlas
 
 # --------------------------------------------------------------------------------------
 # Named constants (every rule is documented in docs/verdicts-specificity.md)
@@ -927,19 +931,14 @@ def consistency(
     icc = tau2 / (tau2 + sig2) if (tau2 + sig2) > 0 else float("nan")
 
     present = np.isfinite(values) & (np.isfinite(s2) if s2 is not None else True)
-    total = sig2 + (np.nan_to_num(s2) if s2 is not None else 0.0)
-    total = np.broadcast_to(total, (n,))
-    ok = present & (total > 0)
-    w = np.where(ok, 1.0 / np.where(ok, total, 1.0), 0.0)
-    y0 = np.where(present, values, 0.0)
-    ind = np.zeros((m, n))
-    ind[animal, np.arange(n)] = 1.0
-    sum_w = ind @ w
-    runs = ind @ present.astype(float)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        eff = np.where(sum_w > 0, (ind @ (w * y0)) / sum_w, (ind @ y0) / runs)
-        se = np.where(sum_w > 0, np.sqrt(1.0 / sum_w), np.nan)
-    eff = np.where(runs > 0, eff, np.nan)
+    means = animal_means(
+        values[:, None],
+        animal,
+        n_animals=m,
+        variance=None if s2 is None else s2[:, None],
+        var_run=sig2,
+    )
+    eff, se, runs = means.mean[:, 0], means.se[:, 0], means.runs[:, 0]
 
     full = float(res.effect[0])
     loo_e = np.full(m, np.nan)

@@ -46,17 +46,21 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import NamedTuple
+from typing import TYPE_CHECKING, NamedTuple
 
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 from scipy import stats
 
-from grouplevel.anatomy.atlas import MIDLINE_TOLERANCE_MM, Atlas
+from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM
 from grouplevel.errors import ArgumentError
 from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model.animals import animal_means
+
+if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
+    from grouplevel.anatomy.atlas import Atlas
 
 # --------------------------------------------------------------------------------------
 # Defaults (the lead's config section [questions] may override every one of them)
@@ -376,23 +380,9 @@ class BootstrapLI:
 
 
 def _animal_means(y, present, animal, variance, var_run):
-    """(m, V) precision-weighted animal means and (m, V) bool 'animal has data'."""
-    present = present & np.isfinite(y)
-    if variance is not None:
-        present &= np.isfinite(variance)
-        extra = 0.0 if var_run is None else np.asarray(var_run, dtype=float)[None, :]
-        with np.errstate(divide="ignore"):
-            w = np.where(present, 1.0 / np.maximum(variance + extra, 1e-300), 0.0)
-    else:
-        w = present.astype(float)
-    m = int(animal.max()) + 1
-    indicator = np.zeros((m, len(animal)))
-    indicator[animal, np.arange(len(animal))] = 1.0
-    total = indicator @ w
-    has = total > 0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        means = np.where(has, (indicator @ (w * np.where(present, y, 0.0))) / total, 0.0)
-    return means, has
+    """(m, V) precision-weighted animal means (0 without data) and (m, V) 'has data'."""
+    means = animal_means(y, animal, variance=variance, var_run=var_run, present=present)
+    return np.where(means.has_data, means.mean, 0.0), means.has_data
 
 
 def _shortcut_maps(
