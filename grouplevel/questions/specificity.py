@@ -540,12 +540,85 @@ def specificity(
     Hajnal JV et al. (1994). Magn Reson Med 31:283-291.
     """
     n_vox = atlas.shares.shape[0]
-    surviving = _vector(surviving, n_vox, "surviving", bool)
-    z = _vector(z, n_vox, "z")
-    effect = _vector(effect, n_vox, "effect")
-    shell = _vector(shell, n_vox, "shell", bool)
-    inner = _vector(inner, n_vox, "inner", bool)
-    height = _vector(height, n_vox, "height")
+    surviving, z, effect, shell, inner, height, y = _check_specificity_inputs(
+        n_vox, surviving, z, effect, shell, inner, height, y, targets
+    )
+    target_leaves = leaf_rows(atlas, targets)
+    artefact_leaves = leaf_rows(atlas, artefact)
+    w_target = _weights(atlas, target_leaves)
+    names = atlas.regions["name"].astype(str).to_numpy()
+    hemis = atlas.regions["hemisphere"].astype(str).to_numpy()
+    target_names = tuple(f"{names[r]} ({hemis[r]})" for r in targets)
+
+    shares = _activation_shares(surviving, shell, inner, w_target, _weights(atlas, artefact_leaves))
+    active = surviving | (np.nan_to_num(np.abs(z)) > rim_z_threshold)
+    rim = rim_score(active, np.sign(np.nan_to_num(z)), shell, height)
+    fit, res = _target_minus_rest(y, w_target, X, animal, c)
+    surv_f = surviving.astype(float)
+    off = _off_target_table(atlas, target_leaves, effect, z, surv_f, artefact_leaves)
+    tgt = _target_table(
+        atlas, targets, target_leaves, target_names, w_target, effect, z, surv_f, shares
+    )
+    artefact_names = sorted(set(names[artefact_leaves]))
+    rules = _specificity_rules(shares, rim, off, artefact_names, res, rim_z_threshold)
+    diff, se, dfv = float(res.effect[0]), float(res.se[0]), float(res.df[0])
+    lo, hi = _ci(diff, se, dfv)
+    score, p_d, n_v, n_d, p_v = rim
+    return Specificity(
+        targets=target_names,
+        n_surviving=shares.n_surviving,
+        target_share=float(shares.target_share),
+        target_brain_share=shares.target_brain,
+        enrichment=float(shares.enrichment),
+        difference=diff,
+        se=se,
+        ci_low=lo,
+        ci_high=hi,
+        t=float(res.t[0]),
+        df=dfv,
+        p=float(res.p[0]),
+        var_animal=float(fit.var_animal[0]),
+        var_run=float(fit.var_run[0]),
+        off_target=off,
+        edge_share=float(shares.edge_share),
+        edge_brain_share=shares.edge_brain,
+        edge_enrichment=float(shares.edge_enrichment),
+        edge_odds_ratio=float(shares.edge_odds_ratio),
+        edge_to_inner=float(shares.edge_to_inner),
+        edge_coverage=float(shares.edge_coverage),
+        rim_score=score,
+        rim_positive_dorsal=p_d,
+        rim_negative_ventral=n_v,
+        rim_negative_dorsal=n_d,
+        rim_positive_ventral=p_v,
+        artefact_share=float(shares.artefact_share),
+        artefact_brain_share=shares.artefact_brain,
+        artefact_enrichment=float(shares.artefact_enrichment),
+        edge_rule=rules.edge_rule,
+        rim_rule=rules.rim_rule,
+        artefact_rule=rules.artefact_rule,
+        flag=rules.flag,
+        verdict=rules.verdict,
+        reasons=rules.reasons,
+        target_rows=tgt,
+    )
+
+
+# --------------------------------------------------------------------------------------
+# The steps of specificity
+# --------------------------------------------------------------------------------------
+
+
+def _check_specificity_inputs(n_vox, surviving, z, effect, shell, inner, height, y, targets):
+    """Per-voxel vectors of the mask's length, a runs × voxels ``y``, some targets."""
+    out = (
+        _vector(surviving, n_vox, "surviving", bool),
+        _vector(z, n_vox, "z"),
+        _vector(effect, n_vox, "effect"),
+        _vector(shell, n_vox, "shell", bool),
+        _vector(inner, n_vox, "inner", bool),
+        _vector(height, n_vox, "height"),
+    )
     y = np.asarray(y, dtype=float)
     if y.ndim != 2 or y.shape[1] != n_vox:
         raise ArgumentError(f"specificity: y must be (runs, {n_vox} voxels), got {y.shape}.")
@@ -554,18 +627,38 @@ def specificity(
             "specificity: no target regions given; pass the atlas rows of at least one "
             "target region."
         )
+    return (*out, y)
 
-    target_leaves = leaf_rows(atlas, targets)
-    artefact_leaves = leaf_rows(atlas, artefact)
-    w_target = _weights(atlas, target_leaves)
-    w_artefact = _weights(atlas, artefact_leaves)
-    names = atlas.regions["name"].astype(str).to_numpy()
-    hemis = atlas.regions["hemisphere"].astype(str).to_numpy()
-    target_names = tuple(f"{names[r]} ({hemis[r]})" for r in targets)
 
+@dataclass(frozen=True)
+class _Shares:
+    """Where the surviving voxels lie: in the targets, the edge shell, artefact labels."""
+
+    n_surviving: int
+    target_brain: float  # share of the brain in the targets
+    edge_brain: float
+    artefact_brain: float
+    target_share: float  # share of the surviving voxels in the targets
+    edge_share: float
+    artefact_share: float
+    enrichment: float  # target_share / target_brain
+    edge_enrichment: float
+    edge_odds_ratio: float
+    artefact_enrichment: float
+    edge_coverage: float  # share of the shell that survives
+    edge_to_inner: float  # surviving density, shell / the layer just inside
+
+
+def _activation_shares(
+    surviving: np.ndarray,
+    shell: np.ndarray,
+    inner: np.ndarray,
+    w_target: np.ndarray,
+    w_artefact: np.ndarray,
+) -> _Shares:
     surv_f = surviving.astype(float)
     n_surv = int(surviving.sum())
-    brain = float(n_vox)
+    brain = float(surviving.size)
     target_brain = float(w_target.sum()) / brain
     edge_brain = float(shell.sum()) / brain
     artefact_brain = float(w_artefact.sum()) / brain
@@ -573,34 +666,43 @@ def specificity(
         target_share = float(w_target @ surv_f) / n_surv if n_surv else np.nan
         edge_share = float(surv_f[shell].sum()) / n_surv if n_surv else np.nan
         artefact_share = float(w_artefact @ surv_f) / n_surv if n_surv else np.nan
-        enrichment = target_share / target_brain if target_brain > 0 else np.nan
-        edge_enrichment = edge_share / edge_brain if edge_brain > 0 else np.nan
-        edge_odds_ratio = (
-            _odds(edge_share) / _odds(edge_brain) if 0 < edge_brain < 1 else float("nan")
-        )
-        artefact_enrichment = artefact_share / artefact_brain if artefact_brain > 0 else np.nan
         shell_density = surv_f[shell].mean() if shell.any() else np.nan
-        edge_coverage = float(shell_density) if shell.any() else 0.0
         inner_density = surv_f[inner].mean() if inner.any() else np.nan
-        edge_to_inner = (
-            np.nan
-            if not n_surv
-            else (np.inf if inner_density == 0 else float(shell_density / inner_density))
+        return _Shares(
+            n_surviving=n_surv,
+            target_brain=target_brain,
+            edge_brain=edge_brain,
+            artefact_brain=artefact_brain,
+            target_share=target_share,
+            edge_share=edge_share,
+            artefact_share=artefact_share,
+            enrichment=target_share / target_brain if target_brain > 0 else np.nan,
+            edge_enrichment=edge_share / edge_brain if edge_brain > 0 else np.nan,
+            edge_odds_ratio=(
+                _odds(edge_share) / _odds(edge_brain) if 0 < edge_brain < 1 else float("nan")
+            ),
+            artefact_enrichment=(artefact_share / artefact_brain if artefact_brain > 0 else np.nan),
+            edge_coverage=float(shell_density) if shell.any() else 0.0,
+            edge_to_inner=(
+                np.nan
+                if not n_surv
+                else (np.inf if inner_density == 0 else float(shell_density / inner_density))
+            ),
         )
 
-    active = surviving | (np.nan_to_num(np.abs(z)) > rim_z_threshold)
-    score, p_d, n_v, n_d, p_v = rim_score(active, np.sign(np.nan_to_num(z)), shell, height)
 
-    # target − rest per run, REML run-within-animal model
+def _target_minus_rest(y, w_target, X, animal, c):
+    """Per run: mean in the targets − mean in the rest; REML run-within-animal model."""
     values = _weighted_run_means(y, w_target) - _weighted_run_means(y, 1.0 - w_target)
     present = np.isfinite(values)[:, None]
     fit = fit_reml(values[:, None], None, X, animal, estimate_run_variance=True)
     df = between_animal_df(X, animal, present, c)
-    res = test_contrast(fit, c, df)
-    diff, se, dfv = float(res.effect[0]), float(res.se[0]), float(res.df[0])
-    lo, hi = _ci(diff, se, dfv)
+    return fit, test_contrast(fit, c, df)
 
-    # off-target leaves
+
+def _off_target_table(atlas, target_leaves, effect, z, surv_f, artefact_leaves) -> pd.DataFrame:
+    """Every leaf outside the targets, ranked by |mean effect| and by surviving voxels."""
+    n_surv = int(surv_f.sum())
     leaf = atlas.regions["is_leaf"].to_numpy(dtype=bool)
     off_rows = np.flatnonzero(leaf & ~np.isin(np.arange(len(leaf)), target_leaves))
     off = _region_frame(atlas, off_rows, effect, z, surv_f, n_surv, artefact_leaves)
@@ -614,12 +716,22 @@ def specificity(
     off["rank_effect"] = rank_e
     off["rank_extent"] = rank_x
     off = off.sort_values("rank_effect", kind="stable").reset_index(drop=True)
+    off["rank_effect"] = off["rank_effect"].astype("Int64")
+    off["rank_extent"] = off["rank_extent"].astype("Int64")
+    return off
 
+
+def _target_table(
+    atlas, targets, target_leaves, target_names, w_target, effect, z, surv_f, shares: _Shares
+) -> pd.DataFrame:
+    """One row per target region and one for all targets together."""
+    n_surv = shares.n_surviving
     tgt = _region_frame(
         atlas, np.asarray(list(targets), dtype=np.int64), effect, z, surv_f, n_surv, []
     )
     tgt.insert(0, "kind", "target")
     fin_e = np.isfinite(effect)
+    tiny = np.finfo(float).tiny
     combined = {
         "kind": "targets",
         "index": -1,
@@ -627,41 +739,105 @@ def specificity(
         "hemisphere": "",
         "volume_mm3": float(sum(atlas.regions["mask_volume_mm3"].iloc[r] for r in target_leaves)),
         "mean_effect": float((w_target * fin_e) @ np.where(fin_e, effect, 0.0))
-        / max(float(w_target @ fin_e), np.finfo(float).tiny),
-        "mean_z": float(np.nansum(w_target * z) / max(w_target.sum(), np.finfo(float).tiny)),
+        / max(float(w_target @ fin_e), tiny),
+        "mean_z": float(np.nansum(w_target * z) / max(w_target.sum(), tiny)),
         "surviving_voxels": float(w_target @ surv_f),
-        "surviving_share": float(w_target @ surv_f) / max(w_target.sum(), np.finfo(float).tiny),
-        "activation_share": target_share,
+        "surviving_share": float(w_target @ surv_f) / max(w_target.sum(), tiny),
+        "activation_share": shares.target_share,
         "artefact_label": False,
     }
     tgt = pd.concat([tgt, pd.DataFrame([combined])], ignore_index=True)
     tgt["rank_effect"] = pd.array([pd.NA] * len(tgt), dtype="Int64")
     tgt["rank_extent"] = pd.array([pd.NA] * len(tgt), dtype="Int64")
-    off["rank_effect"] = off["rank_effect"].astype("Int64")
-    off["rank_extent"] = off["rank_extent"].astype("Int64")
+    return tgt
 
-    # rules
-    reasons: list[str] = []
+
+@dataclass(frozen=True)
+class _Rules:
+    edge_rule: bool
+    rim_rule: bool
+    artefact_rule: bool
+    flag: str
+    verdict: str
+    reasons: tuple[str, ...]
+
+
+def _specificity_rules(
+    s: _Shares, rim, off: pd.DataFrame, artefact_names, res, rim_z_threshold: float
+) -> _Rules:
+    """The written rules (docs/verdicts-specificity.md): the artefact checks, then the
+    verdict, each with its reasons."""
+    score, p_d, n_v, n_d, p_v = rim
+    n_surv = s.n_surviving
     edge_rule = bool(
         n_surv > 0
-        and edge_share >= EDGE_SHARE_MIN
-        and edge_odds_ratio >= EDGE_ODDS_RATIO_MIN
-        and edge_to_inner >= EDGE_TO_INNER_MIN
-        and edge_coverage >= EDGE_COVERAGE_MIN
+        and s.edge_share >= EDGE_SHARE_MIN
+        and s.edge_odds_ratio >= EDGE_ODDS_RATIO_MIN
+        and s.edge_to_inner >= EDGE_TO_INNER_MIN
+        and s.edge_coverage >= EDGE_COVERAGE_MIN
     )
     rim_rule = bool(score >= RIM_SCORE_MIN and min(p_d + p_v, n_d + n_v) >= RIM_MIN_VOXELS)
     artefact_rule = bool(
         n_surv > 0
-        and artefact_share >= ARTEFACT_SHARE_MIN
-        and artefact_enrichment >= ARTEFACT_ENRICHMENT_MIN
+        and s.artefact_share >= ARTEFACT_SHARE_MIN
+        and s.artefact_enrichment >= ARTEFACT_ENRICHMENT_MIN
     )
-    if n_surv:
+    reasons = _artefact_reasons(
+        s, rim, (edge_rule, rim_rule, artefact_rule), artefact_names, rim_z_threshold
+    )
+    if n_surv == 0:
+        verdict = VERDICT_NONE
+        reasons.insert(0, "No voxel survives the correction.")
+    elif edge_rule or rim_rule:
+        verdict = VERDICT_EDGE
+    else:
+        verdict = _target_verdict(s)
+        reasons.insert(
+            0,
+            f"{100 * s.target_share:.1f}% of the surviving activation lies in the targets, "
+            f"which make up {100 * s.target_brain:.1f}% of the brain (enrichment "
+            f"{s.enrichment:.2f}).",
+        )
+        big = off[off["surviving_voxels"] > 0].sort_values("rank_extent").head(3)
+        if len(big):
+            listed = "; ".join(
+                f"{r['name']} ({r['hemisphere']}) {r['surviving_voxels']:.0f} voxels"
+                for _, r in big.iterrows()
+            )
+            reasons.append(f"Largest off-target activation: {listed}.")
+    diff, se, dfv = float(res.effect[0]), float(res.se[0]), float(res.df[0])
+    lo, hi = _ci(diff, se, dfv)
+    reasons.append(
+        f"Mean effect in the targets minus the rest of the brain: {diff:.3g} "
+        f"(95% CI {lo:.3g} to {hi:.3g}, t = {res.t[0]:.2f}, df = {dfv:g}, p = {res.p[0]:.3g})."
+    )
+    flag = ARTEFACT_FLAG_TEXT if (edge_rule or rim_rule or artefact_rule) else ""
+    return _Rules(edge_rule, rim_rule, artefact_rule, flag, verdict, tuple(reasons))
+
+
+def _target_verdict(s: _Shares) -> str:
+    """Specific, specific with off-target activation, or mostly off target."""
+    if s.target_share >= SPECIFIC_SHARE_MIN and s.enrichment >= SPECIFIC_ENRICHMENT_MIN:
+        return VERDICT_SPECIFIC
+    if s.target_share < MOSTLY_OFF_TARGET_SHARE or not s.enrichment > 1.0:
+        return VERDICT_OFF_TARGET
+    return VERDICT_PLUS_OFF_TARGET
+
+
+def _artefact_reasons(
+    s: _Shares, rim, fired: tuple[bool, bool, bool], artefact_names, rim_z_threshold: float
+) -> list[str]:
+    """The reasons that describe the edge shell, the rim score and the artefact labels."""
+    score, p_d, n_v, n_d, p_v = rim
+    edge_rule, rim_rule, artefact_rule = fired
+    reasons: list[str] = []
+    if s.n_surviving:
         reasons.append(
-            f"{n_surv} voxels survive; {100 * edge_share:.1f}% of them lie in the "
-            f"{edge_brain * 100:.1f}% of the brain that is the edge shell (enrichment "
-            f"{edge_enrichment:.2f}, odds ratio {edge_odds_ratio:.2f}; density "
-            f"{edge_to_inner:.2f} times that of the layer just inside); they cover "
-            f"{100 * edge_coverage:.1f}% of the shell."
+            f"{s.n_surviving} voxels survive; {100 * s.edge_share:.1f}% of them lie in the "
+            f"{s.edge_brain * 100:.1f}% of the brain that is the edge shell (enrichment "
+            f"{s.edge_enrichment:.2f}, odds ratio {s.edge_odds_ratio:.2f}; density "
+            f"{s.edge_to_inner:.2f} times that of the layer just inside); they cover "
+            f"{100 * s.edge_coverage:.1f}% of the shell."
         )
     reasons.append(
         f"Sign-alternation score of the edge shell {score:.2f} ({p_d} positive dorsal, "
@@ -679,83 +855,15 @@ def specificity(
             f"Rim rule fired: score ≥ {RIM_SCORE_MIN:g} with ≥ {RIM_MIN_VOXELS} voxels "
             "of each sign (the pattern stimulus-locked head motion leaves)."
         )
-    if n_surv and artefact_leaves.size:
+    if s.n_surviving and artefact_names:
         reasons.append(
-            f"Artefact labels ({', '.join(sorted(set(names[artefact_leaves])))}) hold "
-            f"{100 * artefact_share:.1f}% of the surviving voxels and "
-            f"{100 * artefact_brain:.1f}% of the brain (enrichment {artefact_enrichment:.2f})"
+            f"Artefact labels ({', '.join(artefact_names)}) hold "
+            f"{100 * s.artefact_share:.1f}% of the surviving voxels and "
+            f"{100 * s.artefact_brain:.1f}% of the brain (enrichment "
+            f"{s.artefact_enrichment:.2f})"
             + ("; artefact-label rule fired." if artefact_rule else ".")
         )
-    flag = ARTEFACT_FLAG_TEXT if (edge_rule or rim_rule or artefact_rule) else ""
-
-    if n_surv == 0:
-        verdict = VERDICT_NONE
-        reasons.insert(0, "No voxel survives the correction.")
-    elif edge_rule or rim_rule:
-        verdict = VERDICT_EDGE
-    else:
-        reasons.insert(
-            0,
-            f"{100 * target_share:.1f}% of the surviving activation lies in the targets, "
-            f"which make up {100 * target_brain:.1f}% of the brain (enrichment "
-            f"{enrichment:.2f}).",
-        )
-        if target_share >= SPECIFIC_SHARE_MIN and enrichment >= SPECIFIC_ENRICHMENT_MIN:
-            verdict = VERDICT_SPECIFIC
-        elif target_share < MOSTLY_OFF_TARGET_SHARE or not enrichment > 1.0:
-            verdict = VERDICT_OFF_TARGET
-        else:
-            verdict = VERDICT_PLUS_OFF_TARGET
-        big = off[off["surviving_voxels"] > 0].sort_values("rank_extent").head(3)
-        if len(big):
-            listed = "; ".join(
-                f"{r['name']} ({r['hemisphere']}) {r['surviving_voxels']:.0f} voxels"
-                for _, r in big.iterrows()
-            )
-            reasons.append(f"Largest off-target activation: {listed}.")
-    reasons.append(
-        f"Mean effect in the targets minus the rest of the brain: {diff:.3g} "
-        f"(95% CI {lo:.3g} to {hi:.3g}, t = {res.t[0]:.2f}, df = {dfv:g}, p = {res.p[0]:.3g})."
-    )
-
-    return Specificity(
-        targets=target_names,
-        n_surviving=n_surv,
-        target_share=float(target_share),
-        target_brain_share=target_brain,
-        enrichment=float(enrichment),
-        difference=diff,
-        se=se,
-        ci_low=lo,
-        ci_high=hi,
-        t=float(res.t[0]),
-        df=dfv,
-        p=float(res.p[0]),
-        var_animal=float(fit.var_animal[0]),
-        var_run=float(fit.var_run[0]),
-        off_target=off,
-        edge_share=float(edge_share),
-        edge_brain_share=edge_brain,
-        edge_enrichment=float(edge_enrichment),
-        edge_odds_ratio=float(edge_odds_ratio),
-        edge_to_inner=float(edge_to_inner),
-        edge_coverage=float(edge_coverage),
-        rim_score=score,
-        rim_positive_dorsal=p_d,
-        rim_negative_ventral=n_v,
-        rim_negative_dorsal=n_d,
-        rim_positive_ventral=p_v,
-        artefact_share=float(artefact_share),
-        artefact_brain_share=artefact_brain,
-        artefact_enrichment=float(artefact_enrichment),
-        edge_rule=edge_rule,
-        rim_rule=rim_rule,
-        artefact_rule=artefact_rule,
-        flag=flag,
-        verdict=verdict,
-        reasons=tuple(reasons),
-        target_rows=tgt,
-    )
+    return reasons
 
 
 def inner_layer(
