@@ -36,7 +36,7 @@ MOVED = {
 }
 # `grouplevel.questions`, `grouplevel.planning` and `grouplevel.cli` are now packages of
 # the same name; each re-exports the public names of the old module (the module itself
-# is `grouplevel.questions.ask`, `grouplevel.planning.power`, `grouplevel.cli.commands`).
+# is `grouplevel.questions.ask`, `grouplevel.planning.power` + `.plan`, `grouplevel.cli.commands`).
 
 
 class _SameModule(importlib.abc.Loader):

@@ -42,6 +42,7 @@ CORE_MODULES = (
     "grouplevel.questions.symmetry",
     "grouplevel.questions.specificity",
     "grouplevel.questions.quality",
+    "grouplevel.planning.power",
 )
 # Module prefixes the core must not reach: the shells of every stage.
 FORBIDDEN_INTERNAL = (
@@ -52,7 +53,7 @@ FORBIDDEN_INTERNAL = (
     "grouplevel.questions.ask",
     "grouplevel.outputs",
     "grouplevel.report",
-    "grouplevel.planning",
+    "grouplevel.planning.plan",
     "grouplevel.cli",
     "grouplevel.pipeline",
     "grouplevel.example",

@@ -142,7 +142,7 @@ def _report(args: argparse.Namespace) -> int:
 
 
 def _plan(args: argparse.Namespace) -> int:
-    from grouplevel.planning.power import plan_from_output, write_plan
+    from grouplevel.planning.plan import plan_from_output, write_plan
 
     plans = plan_from_output(
         args.folder,
