@@ -42,6 +42,7 @@ CORE_MODULES = (
     "grouplevel.questions.symmetry",
     "grouplevel.questions.specificity",
     "grouplevel.questions.quality",
+    "grouplevel.questions.verdicts",
     "grouplevel.planning.power",
 )
 # Module prefixes the core must not reach: the shells of every stage.

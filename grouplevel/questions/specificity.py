@@ -52,6 +52,26 @@ from scipy import ndimage, stats
 from grouplevel.errors import ArgumentError
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.model.animals import animal_means
+from grouplevel.questions.verdicts import (  # noqa: F401  (the rules' names, re-exported here)
+    ARTEFACT_ENRICHMENT_MIN,
+    ARTEFACT_FLAG_TEXT,
+    ARTEFACT_SHARE_MIN,
+    EDGE_COVERAGE_MIN,
+    EDGE_ODDS_RATIO_MIN,
+    EDGE_SHARE_MIN,
+    EDGE_TO_INNER_MIN,
+    MOSTLY_OFF_TARGET_SHARE,
+    RIM_MIN_VOXELS,
+    RIM_SCORE_MIN,
+    SPECIFIC_ENRICHMENT_MIN,
+    SPECIFIC_SHARE_MIN,
+    VERDICT_EDGE,
+    VERDICT_NONE,
+    VERDICT_OFF_TARGET,
+    VERDICT_PLUS_OFF_TARGET,
+    VERDICT_SPECIFIC,
+    specificity_rules,
+)
 
 if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
     from grouplevel.anatomy.atlas import Atlas
@@ -78,47 +98,6 @@ RIM_Z_THRESHOLD = 3.29
 #: Words that mark a region as an artefact label (case-insensitive substring match):
 #: cerebrospinal fluid spaces and anything outside the brain (our own choice).
 ARTEFACT_WORDS = ("ventric", "csf", "cerebrospinal", "outside", "background", "vessel", "sinus")
-
-#: Edge rule: the shell holds at least this share of the surviving activation ...
-EDGE_SHARE_MIN = 0.5
-#: ... with odds of a surviving voxel lying in the shell at least this many times the odds
-#: of any brain voxel lying there (an odds ratio rather than a ratio of shares, so that the
-#: rule can fire on small brains whose shell is most of the brain) ...
-EDGE_ODDS_RATIO_MIN = 3.0
-#: ... and the activation is denser in the shell than in the equally thick layer just
-#: inside it by at least this factor (a cortical activation near the surface continues
-#: into the next layer; a motion rim does not). Our own choices.
-EDGE_TO_INNER_MIN = 2.0
-#: ... and the surviving voxels cover at least this share of the shell (a motion or
-#: surface-vessel artefact runs along much of the edge; a genuine activation near the
-#: surface covers one patch of it). Our own choice: on the example cohort the genuine
-#: auditory activation covers 0.4% of the shell.
-EDGE_COVERAGE_MIN = 0.10
-
-#: Rim rule: sign-alternation score at least this ... (our own choice; the score is 1 for
-#: a perfect dorsal-positive / ventral-negative rim or its mirror, 0 for no pattern)
-RIM_SCORE_MIN = 0.5
-#: ... with at least this many shell voxels of each sign (our own choice).
-RIM_MIN_VOXELS = 10
-
-#: Artefact-label rule: those labels hold at least this share of the activation and at
-#: least this many times their share of the brain (our own choices).
-ARTEFACT_SHARE_MIN = 0.25
-ARTEFACT_ENRICHMENT_MIN = 2.0
-
-#: Verdict thresholds on the share of the surviving activation inside the targets and
-#: the enrichment (our own choices; see docs/verdicts-specificity.md).
-SPECIFIC_SHARE_MIN = 0.75
-SPECIFIC_ENRICHMENT_MIN = 2.0
-MOSTLY_OFF_TARGET_SHARE = 0.25
-
-VERDICT_SPECIFIC = "specific to target"
-VERDICT_PLUS_OFF_TARGET = "target plus off-target"
-VERDICT_OFF_TARGET = "mostly off-target"
-VERDICT_NONE = "no activation"
-VERDICT_EDGE = "likely artefact (edge)"
-
-ARTEFACT_FLAG_TEXT = "likely motion or vascular artefact"
 
 
 # --------------------------------------------------------------------------------------
@@ -560,9 +539,13 @@ def specificity(
         atlas, targets, target_leaves, target_names, w_target, effect, z, surv_f, shares
     )
     artefact_names = sorted(set(names[artefact_leaves]))
-    rules = _specificity_rules(shares, rim, off, artefact_names, res, rim_z_threshold)
     diff, se, dfv = float(res.effect[0]), float(res.se[0]), float(res.df[0])
     lo, hi = _ci(diff, se, dfv)
+    difference_reason = (
+        f"Mean effect in the targets minus the rest of the brain: {diff:.3g} "
+        f"(95% CI {lo:.3g} to {hi:.3g}, t = {res.t[0]:.2f}, df = {dfv:g}, p = {res.p[0]:.3g})."
+    )
+    rules = specificity_rules(shares, rim, off, artefact_names, difference_reason, rim_z_threshold)
     score, p_d, n_v, n_d, p_v = rim
     return Specificity(
         targets=target_names,
@@ -631,8 +614,9 @@ def _check_specificity_inputs(n_vox, surviving, z, effect, shell, inner, height,
 
 
 @dataclass(frozen=True)
-class _Shares:
-    """Where the surviving voxels lie: in the targets, the edge shell, artefact labels."""
+class Shares:
+    """Where the surviving voxels lie: in the targets, the edge shell, artefact labels
+    (what the specificity rules of :mod:`grouplevel.questions.verdicts` read)."""
 
     n_surviving: int
     target_brain: float  # share of the brain in the targets
@@ -655,7 +639,7 @@ def _activation_shares(
     inner: np.ndarray,
     w_target: np.ndarray,
     w_artefact: np.ndarray,
-) -> _Shares:
+) -> Shares:
     surv_f = surviving.astype(float)
     n_surv = int(surviving.sum())
     brain = float(surviving.size)
@@ -668,7 +652,7 @@ def _activation_shares(
         artefact_share = float(w_artefact @ surv_f) / n_surv if n_surv else np.nan
         shell_density = surv_f[shell].mean() if shell.any() else np.nan
         inner_density = surv_f[inner].mean() if inner.any() else np.nan
-        return _Shares(
+        return Shares(
             n_surviving=n_surv,
             target_brain=target_brain,
             edge_brain=edge_brain,
@@ -722,7 +706,7 @@ def _off_target_table(atlas, target_leaves, effect, z, surv_f, artefact_leaves) 
 
 
 def _target_table(
-    atlas, targets, target_leaves, target_names, w_target, effect, z, surv_f, shares: _Shares
+    atlas, targets, target_leaves, target_names, w_target, effect, z, surv_f, shares: Shares
 ) -> pd.DataFrame:
     """One row per target region and one for all targets together."""
     n_surv = shares.n_surviving
@@ -750,120 +734,6 @@ def _target_table(
     tgt["rank_effect"] = pd.array([pd.NA] * len(tgt), dtype="Int64")
     tgt["rank_extent"] = pd.array([pd.NA] * len(tgt), dtype="Int64")
     return tgt
-
-
-@dataclass(frozen=True)
-class _Rules:
-    edge_rule: bool
-    rim_rule: bool
-    artefact_rule: bool
-    flag: str
-    verdict: str
-    reasons: tuple[str, ...]
-
-
-def _specificity_rules(
-    s: _Shares, rim, off: pd.DataFrame, artefact_names, res, rim_z_threshold: float
-) -> _Rules:
-    """The written rules (docs/verdicts-specificity.md): the artefact checks, then the
-    verdict, each with its reasons."""
-    score, p_d, n_v, n_d, p_v = rim
-    n_surv = s.n_surviving
-    edge_rule = bool(
-        n_surv > 0
-        and s.edge_share >= EDGE_SHARE_MIN
-        and s.edge_odds_ratio >= EDGE_ODDS_RATIO_MIN
-        and s.edge_to_inner >= EDGE_TO_INNER_MIN
-        and s.edge_coverage >= EDGE_COVERAGE_MIN
-    )
-    rim_rule = bool(score >= RIM_SCORE_MIN and min(p_d + p_v, n_d + n_v) >= RIM_MIN_VOXELS)
-    artefact_rule = bool(
-        n_surv > 0
-        and s.artefact_share >= ARTEFACT_SHARE_MIN
-        and s.artefact_enrichment >= ARTEFACT_ENRICHMENT_MIN
-    )
-    reasons = _artefact_reasons(
-        s, rim, (edge_rule, rim_rule, artefact_rule), artefact_names, rim_z_threshold
-    )
-    if n_surv == 0:
-        verdict = VERDICT_NONE
-        reasons.insert(0, "No voxel survives the correction.")
-    elif edge_rule or rim_rule:
-        verdict = VERDICT_EDGE
-    else:
-        verdict = _target_verdict(s)
-        reasons.insert(
-            0,
-            f"{100 * s.target_share:.1f}% of the surviving activation lies in the targets, "
-            f"which make up {100 * s.target_brain:.1f}% of the brain (enrichment "
-            f"{s.enrichment:.2f}).",
-        )
-        big = off[off["surviving_voxels"] > 0].sort_values("rank_extent").head(3)
-        if len(big):
-            listed = "; ".join(
-                f"{r['name']} ({r['hemisphere']}) {r['surviving_voxels']:.0f} voxels"
-                for _, r in big.iterrows()
-            )
-            reasons.append(f"Largest off-target activation: {listed}.")
-    diff, se, dfv = float(res.effect[0]), float(res.se[0]), float(res.df[0])
-    lo, hi = _ci(diff, se, dfv)
-    reasons.append(
-        f"Mean effect in the targets minus the rest of the brain: {diff:.3g} "
-        f"(95% CI {lo:.3g} to {hi:.3g}, t = {res.t[0]:.2f}, df = {dfv:g}, p = {res.p[0]:.3g})."
-    )
-    flag = ARTEFACT_FLAG_TEXT if (edge_rule or rim_rule or artefact_rule) else ""
-    return _Rules(edge_rule, rim_rule, artefact_rule, flag, verdict, tuple(reasons))
-
-
-def _target_verdict(s: _Shares) -> str:
-    """Specific, specific with off-target activation, or mostly off target."""
-    if s.target_share >= SPECIFIC_SHARE_MIN and s.enrichment >= SPECIFIC_ENRICHMENT_MIN:
-        return VERDICT_SPECIFIC
-    if s.target_share < MOSTLY_OFF_TARGET_SHARE or not s.enrichment > 1.0:
-        return VERDICT_OFF_TARGET
-    return VERDICT_PLUS_OFF_TARGET
-
-
-def _artefact_reasons(
-    s: _Shares, rim, fired: tuple[bool, bool, bool], artefact_names, rim_z_threshold: float
-) -> list[str]:
-    """The reasons that describe the edge shell, the rim score and the artefact labels."""
-    score, p_d, n_v, n_d, p_v = rim
-    edge_rule, rim_rule, artefact_rule = fired
-    reasons: list[str] = []
-    if s.n_surviving:
-        reasons.append(
-            f"{s.n_surviving} voxels survive; {100 * s.edge_share:.1f}% of them lie in the "
-            f"{s.edge_brain * 100:.1f}% of the brain that is the edge shell (enrichment "
-            f"{s.edge_enrichment:.2f}, odds ratio {s.edge_odds_ratio:.2f}; density "
-            f"{s.edge_to_inner:.2f} times that of the layer just inside); they cover "
-            f"{100 * s.edge_coverage:.1f}% of the shell."
-        )
-    reasons.append(
-        f"Sign-alternation score of the edge shell {score:.2f} ({p_d} positive dorsal, "
-        f"{n_v} negative ventral, {n_d} negative dorsal, {p_v} positive ventral voxels with "
-        f"|z| > {rim_z_threshold:g} or surviving)."
-    )
-    if edge_rule:
-        reasons.append(
-            f"Edge rule fired: shell share ≥ {EDGE_SHARE_MIN:g}, odds ratio ≥ "
-            f"{EDGE_ODDS_RATIO_MIN:g}, shell/inner density ≥ {EDGE_TO_INNER_MIN:g} and "
-            f"shell coverage ≥ {EDGE_COVERAGE_MIN:g}."
-        )
-    if rim_rule:
-        reasons.append(
-            f"Rim rule fired: score ≥ {RIM_SCORE_MIN:g} with ≥ {RIM_MIN_VOXELS} voxels "
-            "of each sign (the pattern stimulus-locked head motion leaves)."
-        )
-    if s.n_surviving and artefact_names:
-        reasons.append(
-            f"Artefact labels ({', '.join(artefact_names)}) hold "
-            f"{100 * s.artefact_share:.1f}% of the surviving voxels and "
-            f"{100 * s.artefact_brain:.1f}% of the brain (enrichment "
-            f"{s.artefact_enrichment:.2f})"
-            + ("; artefact-label rule fired." if artefact_rule else ".")
-        )
-    return reasons
 
 
 def inner_layer(

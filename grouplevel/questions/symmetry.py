@@ -58,6 +58,20 @@ from grouplevel.errors import ArgumentError
 from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.model.animals import animal_means
+from grouplevel.questions.verdicts import (  # noqa: F401  (the rule's names, re-exported here)
+    BILATERAL_EQUIVALENT,
+    BILATERAL_UNRESOLVED,
+    DOMINANT,
+    NO_ACTIVATION,
+    ONE_SIDE_ONLY,
+    SIDES,
+    UNCLEAR,
+    UNILATERAL,
+    Verdict,
+    _float,
+    _fmt_p,
+    symmetry_verdict,
+)
 
 if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
     from grouplevel.anatomy.atlas import Atlas
@@ -88,26 +102,8 @@ DEFAULT_LI_THRESHOLDS = 50
 #: the pair's voxels; our own choice).
 _BOOT_CHUNK = 256
 
-#: Stimulus sides understood by the verdict.
-SIDES = ("left", "right")
-
-#: Verdict labels, as written in the tables.
-NO_ACTIVATION = "no activation"
-UNILATERAL = "unilateral ({side})"
-ONE_SIDE_ONLY = "{side} only, difference not significant"
-DOMINANT = "{side}-dominant"
-BILATERAL_EQUIVALENT = "bilateral (equivalence shown)"
-BILATERAL_UNRESOLVED = "bilateral, asymmetry not excluded"
-UNCLEAR = "unclear ({larger} larger, only {active} active)"
-
 #: Weightings of the threshold-free LI.
 TF_WEIGHTINGS = ("mean", "threshold")
-
-
-def _float(value) -> float | None:
-    """A plain float for JSON (None for NaN / infinity)."""
-    value = float(value)
-    return value if np.isfinite(value) else None
 
 
 # --------------------------------------------------------------------------------------
@@ -818,170 +814,6 @@ def hemisphere_test(
         n_animals=int(np.unique(animal[both]).size),
         confidence=float(confidence),
     )
-
-
-# --------------------------------------------------------------------------------------
-# Verdict
-# --------------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class Verdict:
-    """A symmetry verdict in plain words.
-
-    Attributes
-    ----------
-    label
-        One of the labels of :func:`symmetry_verdict`.
-    reasons
-        Short sentences with the numbers that decided the label.
-    numbers
-        The deciding numbers (plain floats / bools / strings).
-    side
-        "contralateral" / "ipsilateral" for the dominant or only active side when the
-        stimulated side is known, else "".
-    """
-
-    label: str
-    reasons: tuple[str, ...]
-    numbers: dict
-    side: str = ""
-
-    def summary(self) -> dict:
-        return {
-            "label": self.label,
-            "side": self.side,
-            "reasons": list(self.reasons),
-            "numbers": dict(self.numbers),
-        }
-
-
-def _fmt_p(p: float) -> str:
-    if not np.isfinite(p):
-        return "p not available"
-    return f"p = {p:.2g}" if p >= 1e-4 else "p < 0.0001"
-
-
-def symmetry_verdict(
-    test: HemisphereTest,
-    *,
-    alpha: float = DEFAULT_ALPHA,
-    stimulus_side: str | None = None,
-) -> Verdict:
-    """Turn the hemispheric test of a region pair into a verdict with its reasons.
-
-    The rule, applied in this order:
-
-    1. A side is **active** when its region-mean effect is positive and its two-sided
-       p < α (so one-sided evidence at α/2 for a positive effect).
-    2. Neither side active → "no activation".
-    3. The difference is **significant** when its two-sided p < α; its sign names the
-       larger side.
-    4. One side active: significant difference towards it → "unilateral (<side>)";
-       difference not significant → "<side> only, difference not significant";
-       significant difference towards the inactive side → "unclear (...)".
-    5. Both active: significant difference → "<side>-dominant"; otherwise TOST p < α →
-       "bilateral (equivalence shown)"; otherwise "bilateral, asymmetry not excluded".
-       "Bilateral" never follows from a non-significant difference alone.
-
-    With ``stimulus_side`` the dominant (or only active) side is called
-    "contralateral" when it is opposite to the stimulated side, else "ipsilateral".
-
-    Parameters
-    ----------
-    test
-        From :func:`hemisphere_test`.
-    alpha
-        Significance level of every test in the rule.
-    stimulus_side
-        "left", "right" or None.
-
-    Returns
-    -------
-    Verdict
-
-    References
-    ----------
-    Schuirmann DJ (1987). J Pharmacokinet Biopharm 15:657-680 (equivalence by TOST).
-    """
-    if not 0.0 < alpha < 1.0:
-        raise ArgumentError(f"alpha = {alpha}: give a level between 0 and 1.")
-    if stimulus_side is not None and stimulus_side not in SIDES:
-        raise ArgumentError(
-            f'stimulus_side = {stimulus_side!r}: use "left", "right" or None when the '
-            "stimulus was not lateralised."
-        )
-    reasons: list[str] = []
-    active = {}
-    for side, effect, p in (
-        ("left", test.left_effect, test.left_p),
-        ("right", test.right_effect, test.right_p),
-    ):
-        is_active = bool(np.isfinite(p) and effect > 0 and p < alpha)
-        active[side] = is_active
-        word = "active" if is_active else "not active"
-        reasons.append(f"{side} side {word}: region-mean effect {effect:.3g}, {_fmt_p(p)}")
-    significant = bool(np.isfinite(test.p) and test.p < alpha)
-    larger = "left" if test.difference > 0 else "right"
-    equivalent = bool(np.isfinite(test.tost_p) and test.tost_p < alpha)
-    numbers = {
-        "alpha": float(alpha),
-        "left_active": active["left"],
-        "right_active": active["right"],
-        "left_effect": _float(test.left_effect),
-        "left_p": _float(test.left_p),
-        "right_effect": _float(test.right_effect),
-        "right_p": _float(test.right_p),
-        "difference": _float(test.difference),
-        "difference_p": _float(test.p),
-        "margin": _float(test.margin),
-        "margin_li": float(test.margin_li),
-        "tost_p": _float(test.tost_p),
-        "stimulus_side": stimulus_side or "",
-    }
-    diff_text = (
-        f"left minus right {test.difference:.3g} (95% CI {test.ci_low:.3g} to "
-        f"{test.ci_high:.3g}), {_fmt_p(test.p)}"
-    )
-    tost_text = (
-        f"equivalence within ±{test.margin:.3g} (|LI| ≤ {test.margin_li:g}): TOST "
-        f"{_fmt_p(test.tost_p)}"
-    )
-    dominant = ""
-    if not active["left"] and not active["right"]:
-        label = NO_ACTIVATION
-    elif active["left"] != active["right"]:
-        on = "left" if active["left"] else "right"
-        reasons.append(
-            f"Difference {'significant' if significant else 'not significant'}: {diff_text}"
-        )
-        if significant and larger == on:
-            label = UNILATERAL.format(side=on)
-            dominant = on
-        elif significant:
-            label = UNCLEAR.format(larger=larger, active=on)
-        else:
-            label = ONE_SIDE_ONLY.format(side=on)
-            dominant = on
-    else:
-        if significant:
-            label = DOMINANT.format(side=larger)
-            dominant = larger
-            reasons.append(f"Difference significant: {diff_text}")
-            if equivalent:
-                reasons.append(f"The difference is small: {tost_text}")
-        else:
-            reasons.append(f"Difference not significant: {diff_text}")
-            reasons.append(
-                f"{'Equivalence shown' if equivalent else 'Equivalence not shown'}: {tost_text}"
-            )
-            label = BILATERAL_EQUIVALENT if equivalent else BILATERAL_UNRESOLVED
-    side = ""
-    if dominant and stimulus_side is not None:
-        side = "ipsilateral" if dominant == stimulus_side else "contralateral"
-        reasons.append(f"The {dominant} side is {side} to the stimulated {stimulus_side} side")
-    numbers["dominant_side"] = dominant
-    return Verdict(label=label, reasons=tuple(reasons), numbers=numbers, side=side)
 
 
 # --------------------------------------------------------------------------------------
