@@ -358,6 +358,7 @@ def _as_integer(text: str) -> int | None:
 
 
 def _validate_table(table: pd.DataFrame, source: str) -> _Table:
+    """The label table checked row by row, then for duplicated indices, then parents."""
     table = table.rename(columns=lambda c: str(c).strip().lower())
     missing = [c for c in ("index", "name") if c not in table.columns]
     if missing:
@@ -366,14 +367,32 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
             f"column (found {', '.join(map(repr, table.columns)) or 'none'}); it needs at "
             "least 'index' and 'name', as in a BIDS dseg.tsv"
         )
-    problems: list[str] = []
-    index: list[int] = []
-    name: list[str] = []
-    abbreviation: list[str] = []
-    hemisphere: list[str] = []
-    parent_text: list[str] = []
-    color: list[str] = []
-    line: list[int] = []
+    rows = _table_rows(table, source)
+    idx = np.asarray(rows["index"], dtype=np.int64)
+    _check_unique_indices(idx, rows["line"], source)
+    parent = _resolve_parents(idx, rows, source)
+    _check_cycles(parent, idx, rows["name"], source)
+    return _Table(
+        idx,
+        rows["name"],
+        rows["abbreviation"],
+        rows["hemisphere"],
+        parent,
+        rows["color"],
+        rows["line"],
+    )
+
+
+def _table_rows(table: pd.DataFrame, source: str) -> dict[str, list]:
+    """Each row's cells as text (index 0, the background, is dropped); every row problem
+    at once.
+
+    Raises
+    ------
+    UserError
+        Listing every row whose index is not a whole number ≥ 0, whose name is empty or
+        whose hemisphere is not a known word.
+    """
 
     def column(key: str) -> list[str]:
         if key not in table.columns:
@@ -381,8 +400,11 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
         return [_cell(v) for v in table[key].tolist()]
 
     raw = {key: column(key) for key in ("index", "name", "abbreviation", "hemisphere")}
-    raw_parent = column("parent")
-    raw_color = column("color")
+    raw["parent"] = column("parent")
+    raw["color"] = column("color")
+    keys = ("index", "name", "abbreviation", "hemisphere", "parent", "color", "line")
+    rows: dict[str, list] = {key: [] for key in keys}
+    problems: list[str] = []
     for row in range(len(table)):
         where = f"{source}, line {row + 2}"
         value = _as_integer(raw["index"][row])
@@ -391,8 +413,7 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
             continue
         if value == 0:  # 0 is the background of the image; a row for it is ignored
             continue
-        label_name = raw["name"][row]
-        if not label_name:
+        if not raw["name"][row]:
             problems.append(f"{where}: index {value} has an empty name")
         side = raw["hemisphere"][row].casefold()
         if side not in _HEMISPHERE_WORDS:
@@ -401,37 +422,57 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
                 "left, right, both or empty"
             )
             side = ""
-        index.append(value)
-        name.append(label_name)
-        abbreviation.append(raw["abbreviation"][row])
-        hemisphere.append(_HEMISPHERE_WORDS[side])
-        parent_text.append(raw_parent[row])
-        color.append(raw_color[row])
-        line.append(row + 2)
+        for key, cell in (
+            ("index", value),
+            ("name", raw["name"][row]),
+            ("abbreviation", raw["abbreviation"][row]),
+            ("hemisphere", _HEMISPHERE_WORDS[side]),
+            ("parent", raw["parent"][row]),
+            ("color", raw["color"][row]),
+            ("line", row + 2),
+        ):
+            rows[key].append(cell)
     if problems:
         raise UserError(f"{source}: the atlas label table has {len(problems)} problem(s)", problems)
+    return rows
 
-    idx = np.asarray(index, dtype=np.int64)
+
+def _check_unique_indices(idx: np.ndarray, line: list[int], source: str) -> None:
+    """Every region needs its own index (the lines of each duplicate are listed)."""
     values, counts = np.unique(idx, return_counts=True)
     duplicated = values[counts > 1]
-    if duplicated.size:
-        for value in duplicated[:_MAX_LISTED]:
-            lines = [str(line[r]) for r in np.flatnonzero(idx == value)]
-            problems.append(f"index {value} appears on lines {', '.join(lines)}")
-        raise UserError(
-            f"{source}: duplicated index in the atlas label table "
-            f"({duplicated.size} value(s)); every region needs its own index",
-            problems,
-        )
+    if not duplicated.size:
+        return
+    problems = []
+    for value in duplicated[:_MAX_LISTED]:
+        lines = [str(line[r]) for r in np.flatnonzero(idx == value)]
+        problems.append(f"index {value} appears on lines {', '.join(lines)}")
+    raise UserError(
+        f"{source}: duplicated index in the atlas label table "
+        f"({duplicated.size} value(s)); every region needs its own index",
+        problems,
+    )
 
+
+def _resolve_parents(idx: np.ndarray, rows: dict[str, list], source: str) -> np.ndarray:
+    """Row position of each row's parent (-1 at the top); a parent is given by index or
+    by name (a name on both sides is resolved to the child's side).
+
+    Raises
+    ------
+    UserError
+        Listing every parent that is not in the table or is ambiguous.
+    """
+    name, abbreviation, hemisphere = rows["name"], rows["abbreviation"], rows["hemisphere"]
     position = {int(v): r for r, v in enumerate(idx)}
     by_name: dict[str, list[int]] = {}
     for r in range(len(idx)):
         for key in {name[r].casefold(), abbreviation[r].casefold()} - {""}:
             by_name.setdefault(key, []).append(r)
     parent = np.full(len(idx), -1, dtype=np.int64)
-    for r, text in enumerate(parent_text):
-        where = f"{source}, line {line[r]}"
+    problems: list[str] = []
+    for r, text in enumerate(rows["parent"]):
+        where = f"{source}, line {rows['line'][r]}"
         if not text or text in _TOP_LEVEL_PARENTS:
             continue
         number = _as_integer(text)
@@ -467,8 +508,7 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
         raise UserError(
             f"{source}: the atlas label table has {len(problems)} parent problem(s)", problems
         )
-    _check_cycles(parent, idx, name, source)
-    return _Table(idx, name, abbreviation, hemisphere, parent, color, line)
+    return parent
 
 
 def _check_cycles(parent: np.ndarray, index: np.ndarray, name: list[str], source: str) -> None:
