@@ -349,6 +349,22 @@ def _check_number(label: str, value: Any, low: float, high: float | None = None)
     return value
 
 
+def _checked_plan_numbers(alpha, target_power, cost_animal, cost_run, effect):
+    """The numbers of a plan, checked: levels in (0, 1), costs >= 0 and not both 0, a
+    non-zero effect when one is given."""
+    alpha = _check_number("alpha", alpha, 0.0, 1.0)
+    target_power = _check_number("target power", target_power, 0.0, 1.0)
+    cost_animal = _check_number("cost per animal", cost_animal, 0.0)
+    cost_run = _check_number("cost per run", cost_run, 0.0)
+    if cost_animal == 0 and cost_run == 0:
+        raise UserError("cost per animal and cost per run are both 0; give at least one cost")
+    if effect is not None:
+        effect = float(effect)
+        if not math.isfinite(effect) or effect == 0:
+            raise UserError(f"effect: must be a non-zero number, got {effect}")
+    return alpha, target_power, cost_animal, cost_run, effect
+
+
 def plan_from_output(
     out_dir: str | Path,
     *,
@@ -403,18 +419,13 @@ def plan_from_output(
     summary = read_summary(out)
     settings = summary.get("settings") or {}
     inference = settings.get("inference") or {}
-    if alpha is None:
-        alpha = inference.get("alpha", DEFAULT_ALPHA)
-    alpha = _check_number("alpha", alpha, 0.0, 1.0)
-    target_power = _check_number("target power", target_power, 0.0, 1.0)
-    cost_animal = _check_number("cost per animal", cost_animal, 0.0)
-    cost_run = _check_number("cost per run", cost_run, 0.0)
-    if cost_animal == 0 and cost_run == 0:
-        raise UserError("cost per animal and cost per run are both 0; give at least one cost")
-    if effect is not None:
-        effect = float(effect)
-        if not math.isfinite(effect) or effect == 0:
-            raise UserError(f"effect: must be a non-zero number, got {effect}")
+    alpha, target_power, cost_animal, cost_run, effect = _checked_plan_numbers(
+        inference.get("alpha", DEFAULT_ALPHA) if alpha is None else alpha,
+        target_power,
+        cost_animal,
+        cost_run,
+        effect,
+    )
     sided = inference.get("sided", "two")
     if sided not in SIDED_CHOICES:
         sided = "two"
