@@ -919,22 +919,9 @@ def consistency(
     eff, se, runs = means.mean[:, 0], means.se[:, 0], means.runs[:, 0]
 
     full = float(res.effect[0])
-    loo_e = np.full(m, np.nan)
-    loo_t = np.full(m, np.nan)
-    for a in range(m):  # one small refit per animal
-        keep = (animal != a) & present
-        if not (runs[a] > 0) or keep.sum() < 2:
-            continue
-        codes = np.unique(animal[keep], return_inverse=True)[1]
-        _, r = _test(
-            values[keep][:, None],
-            None if s2 is None else s2[keep][:, None],
-            X[keep],
-            codes,
-            c,
-            estimate_run_variance,
-        )
-        loo_e[a], loo_t[a] = float(r.effect[0]), float(r.t[0])
+    loo_e, loo_t = _leave_each_animal_out(
+        values, s2, X, animal, c, present, m, estimate_run_variance
+    )
     change = loo_e - full
     has = runs > 0
     lo, hi = eff - _Z_CRIT * se, eff + _Z_CRIT * se
@@ -970,6 +957,28 @@ def consistency(
         n_animals=int(has.sum()),
         most_influential=most,
     )
+
+
+def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_variance):
+    """Effect and t of the same REML model refitted without each animal in turn (NaN for
+    an animal without runs or when fewer than two runs would remain)."""
+    loo_e = np.full(m, np.nan)
+    loo_t = np.full(m, np.nan)
+    for a in range(m):  # one small refit per animal
+        keep = (animal != a) & present
+        if not present[animal == a].any() or keep.sum() < 2:
+            continue
+        codes = np.unique(animal[keep], return_inverse=True)[1]
+        _, r = _test(
+            values[keep][:, None],
+            None if s2 is None else s2[keep][:, None],
+            X[keep],
+            codes,
+            c,
+            estimate_run_variance,
+        )
+        loo_e[a], loo_t[a] = float(r.effect[0]), float(r.t[0])
+    return loo_e, loo_t
 
 
 @dataclass(frozen=True)
