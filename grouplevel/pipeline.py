@@ -1,4 +1,10 @@
-"""The one place that strings the steps together: study → model → maps → outputs.
+"""The one place that strings the stages together, in this order:
+
+intake (:mod:`grouplevel.intake`) → fit (:mod:`grouplevel.model`) → correct
+(:mod:`grouplevel.inference`) → label (:mod:`grouplevel.anatomy`) → ask
+(:mod:`grouplevel.questions`) → write (:mod:`grouplevel.outputs`) → report
+(:mod:`grouplevel.report`); each fitted and corrected contrast is a
+:class:`~grouplevel.results.maps.GroupMap`.
 
 Also the public Python API (re-exported by :mod:`grouplevel`): :func:`load_study`,
 :func:`fit_study`, :func:`write_outputs` and :func:`run_study`.
