@@ -14,15 +14,19 @@ from __future__ import annotations
 
 from typing import Any
 
+from grouplevel import _moved
+
 __version__ = "0.1.0"
 
+_moved.install()  # old flat import paths (grouplevel.study, ...) until the next release
+
 _API = {
-    "load_study": "grouplevel.study",
-    "Study": "grouplevel.study",
+    "load_study": "grouplevel.intake.study",
+    "Study": "grouplevel.intake.study",
     "fit_study": "grouplevel.pipeline",
     "write_outputs": "grouplevel.pipeline",
     "run_study": "grouplevel.pipeline",
-    "GroupMap": "grouplevel.pipeline",
+    "GroupMap": "grouplevel.results.maps",
     "UserError": "grouplevel.errors",
 }
 

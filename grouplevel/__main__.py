@@ -2,6 +2,6 @@
 
 import sys
 
-from grouplevel.cli import main
+from grouplevel.cli.commands import main
 
 sys.exit(main())

@@ -28,3 +28,16 @@ class UserError(Exception):
         if not self.problems:
             return head
         return head + "\n" + "\n".join(f"  - {p}" for p in self.problems)
+
+
+class ArgumentError(UserError, ValueError):
+    """A bad argument to a function of the numerical core, said in the core's own words.
+
+    The core (``model/``, ``inference/``, the maths of ``anatomy/``, ``questions/`` and
+    ``planning/``) knows arrays and arguments, not study files: its messages name the
+    argument, never a TOML key. It is a :class:`ValueError` for Python callers. It is
+    also a :class:`UserError`, so that a bad value that came from the user's data and
+    reached the core untranslated still ends on one ``error:`` line at the command line
+    instead of a traceback; the shells translate the ones a setting can cause into
+    messages naming the key (see ``pipeline.py`` and ``questions/ask.py``).
+    """

@@ -1,4 +1,10 @@
-"""The one place that strings the steps together: study → model → maps → outputs.
+"""The one place that strings the stages together, in this order:
+
+intake (:mod:`grouplevel.intake`) → fit (:mod:`grouplevel.model`) → correct
+(:mod:`grouplevel.inference`) → label (:mod:`grouplevel.anatomy`) → ask
+(:mod:`grouplevel.questions`) → write (:mod:`grouplevel.outputs`) → report
+(:mod:`grouplevel.report`); each fitted and corrected contrast is a
+:class:`~grouplevel.results.maps.GroupMap`.
 
 Also the public Python API (re-exported by :mod:`grouplevel`): :func:`load_study`,
 :func:`fit_study`, :func:`write_outputs` and :func:`run_study`.
@@ -8,158 +14,40 @@ from __future__ import annotations
 
 import datetime as _dt
 import hashlib
-import json
 import os
 import shutil
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from grouplevel import __version__
-from grouplevel.compute import Backend, fit_voxel_chunks, open_backend
-from grouplevel.config import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
+from grouplevel.anatomy.tables import region_data, region_tables
 from grouplevel.errors import UserError
-from grouplevel.images import Grid, write_map
-from grouplevel.inference import FdrResult, Smoothness, estimate_smoothness, fdr
+from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
-    PermutationResult,
     animal_level_data,
     permutation_test,
 )
+from grouplevel.inference.significance import sided_p
+from grouplevel.intake.images import Grid, write_map
+from grouplevel.intake.settings import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
+from grouplevel.intake.study import FirstLevel, Study, load_runs, load_study
 from grouplevel.model import (
     between_animal_df,
     satterthwaite_df,
     test_contrast,
 )
+from grouplevel.outputs.summary import write_summary
 from grouplevel.progress import Progress
-from grouplevel.questions import Answers, answer_questions, asks_questions
+from grouplevel.questions.ask import answer_questions, asks_questions
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
-from grouplevel.study import FirstLevel, Study, load_runs, load_study
-from grouplevel.tables import RegionTables, region_data, region_tables
-
-# maps written for every group contrast: file stem -> header description
-MAP_DESCRIPTIONS = {
-    "effect": "group effect (contrast estimate)",
-    "se": "standard error of the group effect",
-    "t": "t statistic of the group effect",
-    "z": "z (normal deviate with the same p as t)",
-    "p": "two-sided p (uncorrected)",
-    "df": "degrees of freedom of t",
-    "var_animal": "between-animal variance tau^2 (REML)",
-    "var_run": "between-run variance sigma^2 (REML)",
-}
-
-
-@dataclass(frozen=True)
-class Corrected:
-    """Inference corrected for the many voxels tested (per-voxel arrays are in-mask).
-
-    ``permutation`` is None when ``[inference] permutations = 0`` (FDR only).
-    """
-
-    sided: str
-    p_sided: np.ndarray  # the uncorrected p of the chosen side
-    fdr: FdrResult
-    smoothness: Smoothness | None
-    permutation: PermutationResult | None
-    warnings: tuple[str, ...]
-
-    @property
-    def q(self) -> np.ndarray:
-        return self.fdr.q
-
-    @property
-    def p_fwe_voxel(self) -> np.ndarray:
-        return self._perm().p_fwe_voxel
-
-    @property
-    def tfce(self) -> np.ndarray:
-        return self._perm().tfce
-
-    @property
-    def p_fwe_tfce(self) -> np.ndarray:
-        return self._perm().p_fwe_tfce
-
-    def _perm(self) -> PermutationResult:
-        if self.permutation is None:
-            raise AttributeError("no permutation inference was run (permutations = 0)")
-        return self.permutation
-
-
-@dataclass(frozen=True)
-class GroupMap:
-    """One group contrast of one first-level contrast: in-mask values and context.
-
-    Every per-voxel array has one value per in-mask voxel, in the order of
-    ``numpy.argwhere(mask)`` (C order over the grid).
-    """
-
-    name: str
-    first_level: str | None
-    contrast: str
-    weights: dict[str, float]
-    grid: Grid
-    mask: np.ndarray
-    effect: np.ndarray
-    se: np.ndarray
-    t: np.ndarray
-    df: np.ndarray
-    z: np.ndarray
-    p: np.ndarray
-    var_animal: np.ndarray
-    var_run: np.ndarray
-    coverage_runs: np.ndarray  # 3-D
-    coverage_animals: np.ndarray  # 3-D
-    not_converged: int
-    n_animals: int
-    n_runs: int
-    inference: Corrected
-    tables: RegionTables | None = None  # with an atlas: clusters, regions, animals
-    answers: Answers | None = None  # the questions (group mean of an intercept-only design)
-
-    def volume(self, key: str) -> np.ndarray:
-        """A per-voxel quantity as a full 3-D array (0 outside the mask).
-
-        ``key`` names a field of the map (``t``, ``effect`` ...) or of its corrected
-        inference (``q``, ``p_fwe_voxel``, ``tfce`` ...).
-        """
-        values = getattr(self, key) if hasattr(self, key) else getattr(self.inference, key)
-        out = np.zeros(self.grid.shape)
-        out[self.mask] = values
-        return out
-
-    def to_frame(self) -> pd.DataFrame:
-        """One row per in-mask voxel: voxel index, position in mm, and every statistic."""
-        idx = np.argwhere(self.mask)
-        mm = idx @ self.grid.affine[:3, :3].T + self.grid.affine[:3, 3]
-        frame = pd.DataFrame(
-            {
-                "i": idx[:, 0],
-                "j": idx[:, 1],
-                "k": idx[:, 2],
-                "x_mm": mm[:, 0],
-                "y_mm": mm[:, 1],
-                "z_mm": mm[:, 2],
-            }
-        )
-        for key in MAP_DESCRIPTIONS:
-            frame[key] = getattr(self, key)
-        frame["runs_with_data"] = self.coverage_runs[self.mask]
-        return frame
-
-
-def _sided_p(t: np.ndarray, df: np.ndarray, sided: str) -> np.ndarray:
-    if sided == "positive":
-        return stats.t.sf(t, df)
-    if sided == "negative":
-        return stats.t.cdf(t, df)
-    return 2.0 * stats.t.sf(np.abs(t), df)
-
+from grouplevel.results.compute import Backend, fit_voxel_chunks, open_backend
+from grouplevel.results.correction import permutation_arguments
+from grouplevel.results.maps import MAP_DESCRIPTIONS, Corrected, GroupMap
 
 # Runs used for the residual smoothness estimate: at most this many, evenly spread, so
 # that its full-grid float64 copies stay small on large studies (our own choice; 30 maps
@@ -209,7 +97,7 @@ def _correct(
     backend: Backend | None = None,
 ) -> Corrected:
     inf: InferenceSettings = study.settings.inference
-    p_sided = _sided_p(t, df, inf.sided)
+    p_sided = sided_p(t, df, inf.sided)
     q = fdr(p_sided, alpha=inf.alpha, method=inf.fdr)
     warnings: list[str] = []
     perm = None
@@ -221,17 +109,9 @@ def _correct(
             c,
             df,
             mask,
-            n_permutations=inf.permutations,
             rng=rng,
-            sided=inf.sided,
-            connectivity=inf.connectivity,
-            cluster_forming_p=inf.cluster_forming_p,
-            voxel_volume_mm3=study.grid.voxel_volume,
-            use_tfce=inf.tfce,
-            tfce_E=inf.tfce_e,
-            tfce_H=inf.tfce_h,
             progress=bar.update,
-            backend=backend,
+            **permutation_arguments(inf, voxel_volume_mm3=study.grid.voxel_volume, backend=backend),
         )
         bar.close()
         if perm.scheme.smallest_p > inf.alpha:
@@ -372,6 +252,7 @@ def _fit_first_level(
                 regions,
                 settings.questions_for(fl.name),
                 settings,
+                backend=backend,
             )
             gm = replace(gm, answers=answers)
         results.append(gm)
@@ -770,7 +651,7 @@ def write_outputs(
             "results": {gm.name: _result_summary(study, gm) for gm in maps},
             "warnings": list(study.warnings) + list(warnings or []),
         }
-        (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
+        write_summary(tmp, summary)
         # the human-readable outputs are made from the folder just written, exactly as
         # `grouplevel report DIR` makes them later
         write_methods(tmp)

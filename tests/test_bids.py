@@ -14,9 +14,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from grouplevel.bids import derivatives_table, parse_name
 from grouplevel.cli import main
 from grouplevel.errors import UserError
+from grouplevel.intake.bids import derivatives_table, parse_name
 from grouplevel.pipeline import fit_study
 from grouplevel.study import load_study
 from tests.conftest import save

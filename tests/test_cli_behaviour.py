@@ -8,7 +8,8 @@ import sys
 
 import pytest
 
-from grouplevel.cli import _parser, main
+from grouplevel.cli import main
+from grouplevel.cli.commands import _parser
 from grouplevel.progress import Progress
 
 

@@ -7,7 +7,9 @@ of "A first session" are run through the command-line entry point.
 
 from __future__ import annotations
 
+import importlib
 import os
+import re
 import shlex
 from pathlib import Path
 
@@ -108,3 +110,69 @@ def test_first_level_page_runs_as_written(folder, capsys):
     finally:
         toml.write_text(text)
     assert "study is valid" in capsys.readouterr().out
+
+
+# --------------------------------------------------------------------------------------
+# Import paths the documentation shows
+# --------------------------------------------------------------------------------------
+
+_FROM_IMPORT = re.compile(r"from (grouplevel[\w.]*) import (?:\(([^)]*)\)|([\w ,]+))")
+_DOTTED = re.compile(r"\bgrouplevel(?:\.[A-Za-z_]\w*)+")
+
+
+def _documented_text() -> str:
+    pages = sorted(DOCS.glob("*.md"))
+    root = DOCS.parent
+    pages += [root / "README.md", root / "DEVELOPERS.md"]
+    return "\n".join(p.read_text(encoding="utf-8") for p in pages if p.is_file())
+
+
+def _resolve(dotted: str):
+    """Import the longest importable prefix of ``dotted`` and get the rest as attributes."""
+    parts = dotted.split(".")
+    for k in range(len(parts), 0, -1):
+        try:
+            obj = importlib.import_module(".".join(parts[:k]))
+        except ModuleNotFoundError:
+            continue
+        for name in parts[k:]:
+            obj = getattr(obj, name)
+        return obj
+    raise ModuleNotFoundError(dotted)
+
+
+def test_documented_from_imports_work():
+    found = _FROM_IMPORT.findall(_documented_text())
+    assert len(found) >= 6
+    for module, in_parentheses, on_one_line in found:
+        imported = importlib.import_module(module)
+        names = in_parentheses or on_one_line
+        for name in (n.strip() for n in names.replace("\n", ",").split(",")):
+            if name:
+                assert hasattr(imported, name), f"docs: from {module} import {name}"
+
+
+def test_documented_dotted_names_resolve():
+    names = set(_DOTTED.findall(_documented_text())) - {"grouplevel.templates"}
+    # file names such as grouplevel.toml are not Python names
+    names = {n for n in names if not n.endswith((".toml", ".tsv", ".json", ".md", ".py"))}
+    assert len(names) >= 5
+    for dotted in sorted(names):
+        _resolve(dotted)
+
+
+def test_public_api_and_old_import_paths():
+    import grouplevel
+    from grouplevel._moved import MOVED
+
+    for name in ("load_study", "fit_study", "write_outputs", "run_study", "GroupMap", "Study"):
+        assert callable(getattr(grouplevel, name)), name
+    assert issubclass(grouplevel.UserError, Exception)
+    # the flat paths before 0.2 are the very same module objects as the new homes
+    for old, new in MOVED.items():
+        assert importlib.import_module(old) is importlib.import_module(new), old
+    from grouplevel.cli import main as cli_main
+    from grouplevel.planning import plan_from_output
+    from grouplevel.questions import answer_questions
+
+    assert callable(cli_main) and callable(plan_from_output) and callable(answer_questions)

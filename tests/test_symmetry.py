@@ -111,7 +111,7 @@ def test_threshold_free_li_hand_computed():
     # no positive z at all: no curve, no value
     empty = threshold_free_li(-z, [0, 1, 2], [3, 4])
     assert empty.li.size == 0 and np.isnan(empty.value)
-    with pytest.raises(UserError, match="li_weighting"):
+    with pytest.raises(UserError, match="laterality-index weighting"):
         threshold_free_li(z, [0], [1], weighting="area")
 
 

@@ -25,8 +25,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
 from grouplevel.inference import _tfce_kernel
+from grouplevel.inference.significance import check_sided
 
 #: Neighbourhoods by the number of neighbours of a voxel: faces; + edges; + corners.
 CONNECTIVITIES = (6, 18, 26)
@@ -35,7 +36,6 @@ CONNECTIVITIES = (6, 18, 26)
 DEFAULT_CONNECTIVITY = 26
 
 #: Which tails of the statistic form clusters.
-SIDES = ("two", "positive", "negative")
 
 
 def neighbourhood(connectivity: int) -> np.ndarray:
@@ -54,11 +54,11 @@ def neighbourhood(connectivity: int) -> np.ndarray:
 
     Raises
     ------
-    UserError
+    ArgumentError
         For any other connectivity.
     """
     if connectivity not in CONNECTIVITIES:
-        raise UserError(
+        raise ArgumentError(
             f"connectivity = {connectivity!r} is not supported; use 6 (faces), "
             "18 (faces and edges) or 26 (faces, edges and corners)."
         )
@@ -130,14 +130,14 @@ def _as_grid(stat: np.ndarray, mask: np.ndarray | None, name: str) -> tuple[np.n
     """
     stat = np.asarray(stat, dtype=np.float64)
     if stat.ndim not in (2, 3):
-        raise UserError(
+        raise ArgumentError(
             f"{name}: the statistic map must be a 2-D or 3-D grid; got shape {stat.shape}."
         )
     if mask is None:
         mask = np.ones(stat.shape, dtype=bool)
     mask = np.asarray(mask)
     if mask.shape != stat.shape:
-        raise UserError(
+        raise ArgumentError(
             f"{name}: the mask has shape {mask.shape} but the statistic map has shape "
             f"{stat.shape}; both must lie on the same grid."
         )
@@ -149,17 +149,13 @@ def _as_grid(stat: np.ndarray, mask: np.ndarray | None, name: str) -> tuple[np.n
 
 
 def _check_sided(sided: str, name: str) -> None:
-    if sided not in SIDES:
-        raise UserError(
-            f"{name}: sided = {sided!r} is not known; use 'two' (both signs, separately), "
-            "'positive' or 'negative'."
-        )
+    check_sided(sided, f"{name}: sided")
 
 
 def _check_threshold(threshold: float, name: str) -> float:
     threshold = float(threshold)
     if not np.isfinite(threshold) or threshold < 0.0:
-        raise UserError(
+        raise ArgumentError(
             f"{name}: the cluster-forming threshold must be a finite number >= 0 (a "
             f"value of |stat|); got {threshold}."
         )
@@ -221,7 +217,7 @@ def find_clusters(
     threshold = _check_threshold(threshold, name)
     offsets = neighbour_offsets(connectivity)
     if not (np.isfinite(voxel_volume_mm3) and voxel_volume_mm3 > 0):
-        raise UserError(f"{name}: voxel volume must be > 0 mm³; got {voxel_volume_mm3}.")
+        raise ArgumentError(f"{name}: voxel volume must be > 0 mm³; got {voxel_volume_mm3}.")
     input_shape = np.shape(stat)
     stat3, mask3 = _as_grid(stat, mask, name)
     signs = _signs(stat3, mask3, threshold, sided)

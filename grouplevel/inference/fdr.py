@@ -26,7 +26,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
 
 #: The procedures :func:`fdr` knows, by name.
 FDR_METHODS = ("bh", "by")
@@ -80,7 +80,7 @@ def fdr(p: np.ndarray, alpha: float = DEFAULT_FDR_ALPHA, method: str = "bh") -> 
 
     Raises
     ------
-    UserError
+    ArgumentError
         When ``alpha`` is outside (0, 1), ``method`` is unknown, or a p-value lies
         outside [0, 1].
 
@@ -99,18 +99,20 @@ def fdr(p: np.ndarray, alpha: float = DEFAULT_FDR_ALPHA, method: str = "bh") -> 
     Benjamini Y, Yekutieli D (2001). Ann Stat 29:1165-1188.
     """
     if method not in FDR_METHODS:
-        raise UserError(
+        raise ArgumentError(
             f"FDR method {method!r} is not known; use one of {', '.join(FDR_METHODS)} "
             "('bh' for Benjamini-Hochberg, 'by' for Benjamini-Yekutieli)."
         )
     alpha = float(alpha)
     if not 0.0 < alpha < 1.0:
-        raise UserError(f"FDR level alpha = {alpha} is outside (0, 1); give a rate such as 0.05.")
+        raise ArgumentError(
+            f"FDR level alpha = {alpha} is outside (0, 1); give a rate such as 0.05."
+        )
     p = np.asarray(p, dtype=np.float64)
     finite = ~np.isnan(p)
     values = p[finite]
     if values.size and (values.min() < 0.0 or values.max() > 1.0):
-        raise UserError(
+        raise ArgumentError(
             f"p-values must lie in [0, 1]; found values from {values.min()} to "
             f"{values.max()}. Pass p-values, not statistics."
         )

@@ -44,7 +44,6 @@ from __future__ import annotations
 
 import itertools
 import math
-import os
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -53,12 +52,14 @@ from typing import Protocol
 import numpy as np
 from scipy import stats
 
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
 from grouplevel.inference import _refit_kernel
 from grouplevel.inference.clusters import Clusters, find_clusters, max_cluster_extent_and_mass
+from grouplevel.inference.significance import check_sided
 from grouplevel.inference.tfce import tfce as tfce_map
+from grouplevel.machine import available_cores
+from grouplevel.model.animals import VARIANCE_FLOOR, animal_means
 
-SIDES = ("two", "positive", "negative")
 # t -> z conversion table: points on u = asinh(t) up to t = 1e8 (our own choice; the
 # interpolation error is below 1e-4 in z, far below what a threshold needs).
 _TZ_POINTS = 4001
@@ -66,9 +67,6 @@ _TZ_MAX_T = 1e8
 _MAX_DF_TABLES = 64
 # Voxels per chunk when reducing runs to animal means (keeps temporaries small).
 _CHUNK_VOXELS = 65536
-# Smallest positive first-level + run variance allowed when building precisions; a zero
-# total variance would give an infinite precision (one run per animal, no s²).
-_VARIANCE_FLOOR = 1e-12
 # Where σ² is folded into τ² (no animal with two runs) and a run has no first-level
 # variance, its sampling variance is floored at this share of the voxel's total variance
 # τ̂² + σ̂², which keeps the floor relative to the data's scale (our own choice: far below
@@ -112,7 +110,7 @@ def animal_level_data(
 
     Raises
     ------
-    UserError
+    ArgumentError
         When a design column varies within an animal (a run-level covariate): runs of
         one animal are not exchangeable when their first-level variances differ, and
         moving them across animals would break the nesting, so such designs are tested
@@ -128,12 +126,12 @@ def animal_level_data(
             if column_names
             else [str(j) for j in np.flatnonzero(varies)]
         )
-        raise UserError(
-            f"[inference] permutations: the design has run-level columns ({', '.join(names)}); "
-            "permutation inference exchanges whole animals, and runs within an animal are "
-            "not exchangeable (their first-level variances differ), so a run-level "
-            "covariate cannot be permuted without breaking the nesting. Set "
-            "permutations = 0 for parametric inference, or use animal-level covariates."
+        raise ArgumentError(
+            f"the design has run-level columns ({', '.join(names)}); permutations "
+            "exchange whole animals, and runs within an animal are not exchangeable (their "
+            "first-level variances differ), so a run-level covariate cannot be permuted "
+            "without breaking the nesting; test such designs parametrically, or use "
+            "animal-level covariates."
         )
     indicator = np.zeros((m, len(animal)))
     indicator[animal, np.arange(len(animal))] = 1.0
@@ -157,20 +155,18 @@ def animal_level_data(
         vc = None if variance is None else np.asarray(variance[:, sl], dtype=float)
         if vc is not None:
             present &= np.isfinite(vc)
-        s2 = np.zeros_like(yc) if vc is None else np.where(present, vc, 0.0)
         within = ((indicator @ present) >= 2).any(axis=0)
         total = var_run[sl] + var_animal[sl]
         vr = np.where(within, var_run[sl], 0.0)
         var_animal_used[sl] = np.where(within, var_animal[sl], total)
         floor = np.where(
-            within, _VARIANCE_FLOOR, np.maximum(_VARIANCE_FLOOR, _FOLDED_FLOOR_SHARE * total)
+            within, VARIANCE_FLOOR, np.maximum(VARIANCE_FLOOR, _FOLDED_FLOOR_SHARE * total)
         )
-        d = np.maximum(vr[None, :] + s2, floor[None, :])
-        w = np.where(present, 1.0 / d, 0.0)
-        wy = np.where(present, w * np.nan_to_num(yc), 0.0)
-        prec[:, sl] = indicator @ w
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean[:, sl] = np.where(prec[:, sl] > 0, (indicator @ wy) / prec[:, sl], 0.0)
+        means = animal_means(
+            yc, animal, n_animals=m, variance=vc, var_run=vr, present=present, floor=floor
+        )
+        prec[:, sl] = means.precision
+        mean[:, sl] = np.where(means.precision > 0, means.mean, 0.0)
     var_animal = var_animal_used
     return AnimalLevelData(
         mean=np.ascontiguousarray(mean.T),
@@ -245,7 +241,7 @@ def plan_permutations(
     """
     m = x_interest.shape[0]
     if n_requested < 1:
-        raise UserError("[inference] permutations must be at least 1 for a permutation test")
+        raise ArgumentError(f"n_permutations must be at least 1, got {n_requested}")
     if np.allclose(x_interest, x_interest[0]):
         n_distinct = 2.0**m
         if n_distinct <= n_requested:
@@ -545,8 +541,7 @@ def permutation_test(
     Winkler AM et al. (2014). NeuroImage 92:381-397.
     Smith SM, Nichols TE (2009). NeuroImage 44:83-98.
     """
-    if sided not in SIDES:
-        raise UserError(f"[inference] sided must be one of {', '.join(SIDES)}, got {sided!r}")
+    check_sided(sided)
     x_i, Z = partition_design(data.design, c)
     X_perm = np.column_stack([x_i, Z])
     scheme = plan_permutations(x_i, Z, n_permutations, rng, sided)
@@ -595,7 +590,7 @@ def permutation_test(
     else:
         null = np.zeros((n, 4))
         batch = 16
-        n_threads = threads or max(1, len(os.sched_getaffinity(0)))
+        n_threads = threads or available_cores()
         pool = ThreadPoolExecutor(max_workers=n_threads) if n_threads > 1 else None
         try:
             for start in range(0, n, batch):

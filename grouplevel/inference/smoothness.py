@@ -40,7 +40,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
 
 #: ln 2, which links a Gaussian's FWHM to its standard deviation: FWHM² = 8 ln2 σ².
 LN2 = float(np.log(2.0))
@@ -120,7 +120,7 @@ def estimate_smoothness(
 
     Raises
     ------
-    UserError
+    ArgumentError
         For shapes that do not match, non-positive voxel sizes, ``dof`` out of range, or
         an axis along which no two neighbouring voxels lie in the mask.
 
@@ -144,12 +144,12 @@ def estimate_smoothness(
     name = "estimate_smoothness"
     mask = np.asarray(mask)
     if mask.ndim != 3:
-        raise UserError(f"{name}: the mask must be a 3-D grid; got shape {mask.shape}.")
+        raise ArgumentError(f"{name}: the mask must be a 3-D grid; got shape {mask.shape}.")
     mask = mask.astype(bool)
     residuals = np.asarray(residuals, dtype=np.float64)
     if residuals.ndim == 2:
         if residuals.shape[1] != int(mask.sum()):
-            raise UserError(
+            raise ArgumentError(
                 f"{name}: residuals have {residuals.shape[1]} voxels per map but the mask "
                 f"has {int(mask.sum())}; pass (maps, in-mask voxels) for this mask or "
                 "(maps, X, Y, Z) maps."
@@ -158,19 +158,19 @@ def estimate_smoothness(
         grid[:, mask] = residuals
         residuals = grid
     elif residuals.ndim != 4 or residuals.shape[1:] != mask.shape:
-        raise UserError(
+        raise ArgumentError(
             f"{name}: residuals of shape {residuals.shape} do not match the mask "
             f"{mask.shape}; pass (maps, X, Y, Z) or (maps, in-mask voxels)."
         )
     voxel_size = np.asarray(voxel_size_mm, dtype=np.float64).reshape(-1)
     if voxel_size.shape != (3,) or not np.all(np.isfinite(voxel_size) & (voxel_size > 0)):
-        raise UserError(
+        raise ArgumentError(
             f"{name}: voxel size must be three positive lengths in mm; got {voxel_size_mm}."
         )
     n_maps = residuals.shape[0]
     dof = float(dof)
     if not (1.0 < dof <= n_maps):
-        raise UserError(
+        raise ArgumentError(
             f"{name}: residual degrees of freedom {dof} must be > 1 and at most the "
             f"number of maps ({n_maps})."
         )
@@ -193,7 +193,7 @@ def estimate_smoothness(
         pairs = valid[lo_t] & valid[hi_t]
         n_pairs = int(pairs.sum())
         if n_pairs == 0:
-            raise UserError(
+            raise ArgumentError(
                 f"{name}: no two neighbouring in-mask voxels along array axis {axis}; "
                 "the mask is too thin to estimate smoothness along it."
             )

@@ -36,7 +36,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
 from grouplevel.inference import _tfce_kernel
 from grouplevel.inference.clusters import (
     DEFAULT_CONNECTIVITY,
@@ -93,7 +93,7 @@ def tfce(
 
     Raises
     ------
-    UserError
+    ArgumentError
         For an unknown ``sided`` or connectivity, mismatched shapes, negative weights,
         a non-positive voxel volume, or infinite values in the mask.
 
@@ -113,15 +113,15 @@ def tfce(
     _check_sided(sided, name)
     offsets = neighbour_offsets(connectivity)
     if not (np.isfinite(E) and E >= 0.0 and np.isfinite(H) and H >= 0.0):
-        raise UserError(f"{name}: the weights E and H must be >= 0; got E = {E}, H = {H}.")
+        raise ArgumentError(f"{name}: the weights E and H must be >= 0; got E = {E}, H = {H}.")
     if not (np.isfinite(voxel_volume_mm3) and voxel_volume_mm3 > 0):
-        raise UserError(f"{name}: voxel volume must be > 0 mm³; got {voxel_volume_mm3}.")
+        raise ArgumentError(f"{name}: voxel volume must be > 0 mm³; got {voxel_volume_mm3}.")
     input_shape = np.shape(stat)
     stat3, mask3 = _as_grid(stat, mask, name)
     flat = stat3.ravel()
     inside = mask3.ravel()
     if np.isinf(flat[inside]).any():
-        raise UserError(
+        raise ArgumentError(
             f"{name}: the statistic map has infinite values inside the mask; TFCE needs "
             "finite values (replace them, or leave those voxels out of the mask)."
         )

@@ -33,7 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special, stats
 
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
 from grouplevel.model.reml import MixedFit, presence_patterns
 
 # A design column counts as constant within an animal when its range there is at most
@@ -64,12 +64,12 @@ class ContrastResult:
 def _as_contrast(c, p: int) -> np.ndarray:
     c = np.asarray(c, dtype=np.float64).ravel()
     if c.shape != (p,):
-        raise UserError(
+        raise ArgumentError(
             f"contrast has {c.size} weights but the design has {p} columns; give one "
             "weight per design column."
         )
     if not np.all(np.isfinite(c)) or not np.any(c != 0):
-        raise UserError("contrast weights must be finite and not all zero.")
+        raise ArgumentError("contrast weights must be finite and not all zero.")
     return c
 
 
@@ -204,7 +204,7 @@ def between_animal_df(X: np.ndarray, animal: np.ndarray, present: np.ndarray, c)
     if present.ndim == 1:
         present = present[:, None]
     if present.shape[0] != X.shape[0] or animal.shape != (X.shape[0],):
-        raise UserError(
+        raise ArgumentError(
             f"between_animal_df: design has {X.shape[0]} runs, animal codes "
             f"{animal.shape[0]} and the presence mask {present.shape[0]}; they must agree."
         )

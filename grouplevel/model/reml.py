@@ -50,15 +50,15 @@ Searle, S. R., Casella, G., & McCulloch, C. E. (1992). Variance Components. Wile
 
 from __future__ import annotations
 
-import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 from numba import njit
 
-from grouplevel.errors import UserError
-from grouplevel.memory import CHUNK_ARRAYS, chunk_voxels
+from grouplevel.errors import ArgumentError
+from grouplevel.machine import available_cores
+from grouplevel.model.memory import CHUNK_ARRAYS, chunk_voxels
 
 # Working-memory budget of one chunk of voxels, in bytes. About 24 arrays of shape
 # (chunk, runs) are alive at once inside the iteration (common practice: keep the
@@ -202,7 +202,7 @@ def _check_inputs(y, variance, X, animal, estimate_run_variance):
     if y.ndim == 1:
         y = y[:, None]
     if y.ndim != 2:
-        raise UserError(
+        raise ArgumentError(
             f"fit_reml: effects must be a (runs, voxels) array, got shape {y.shape}; "
             "stack one effect map per run as the rows."
         )
@@ -211,18 +211,18 @@ def _check_inputs(y, variance, X, animal, estimate_run_variance):
     if X.ndim == 1:
         X = X[:, None]
     if X.ndim != 2 or X.shape[0] != n_runs:
-        raise UserError(
+        raise ArgumentError(
             f"fit_reml: design has shape {X.shape} but there are {n_runs} runs; "
             "the design needs one row per run."
         )
     if not np.all(np.isfinite(X)):
-        raise UserError(
+        raise ArgumentError(
             "fit_reml: the design contains NaN or infinite values; fill in every run's "
             "covariates or drop the run."
         )
     animal = np.asarray(animal)
     if animal.ndim != 1 or animal.shape[0] != n_runs:
-        raise UserError(
+        raise ArgumentError(
             f"fit_reml: animal codes have shape {animal.shape} but there are {n_runs} "
             "runs; give one animal code per run."
         )
@@ -230,19 +230,19 @@ def _check_inputs(y, variance, X, animal, estimate_run_variance):
         if np.issubdtype(animal.dtype, np.floating) and np.all(animal == np.round(animal)):
             animal = animal.astype(np.int64)
         else:
-            raise UserError(
+            raise ArgumentError(
                 "fit_reml: animal codes must be integers 0..m-1; map the animal names to "
                 "codes first (e.g. with numpy.unique(..., return_inverse=True))."
             )
     animal = animal.astype(np.int64)
     if n_runs and animal.min() < 0:
-        raise UserError("fit_reml: animal codes must be non-negative integers 0..m-1.")
+        raise ArgumentError("fit_reml: animal codes must be non-negative integers 0..m-1.")
     if variance is not None:
         variance = _as_maps(variance)
         if variance.ndim == 1:
             variance = variance[:, None]
         if variance.shape != y.shape:
-            raise UserError(
+            raise ArgumentError(
                 f"fit_reml: variances have shape {variance.shape} but effects have shape "
                 f"{y.shape}; give one variance map per effect map."
             )
@@ -250,14 +250,14 @@ def _check_inputs(y, variance, X, animal, estimate_run_variance):
             negative = variance < 0
         if negative.any():
             run = int(np.nonzero(negative.any(axis=1))[0][0])
-            raise UserError(
+            raise ArgumentError(
                 f"fit_reml: first-level variance of run {run} is negative at "
                 f"{int(negative[run].sum())} voxels; a variance map must be ≥ 0 (check "
                 "that the map is a variance and not a signed effect)."
             )
     if not estimate_run_variance:
         if variance is None:
-            raise UserError(
+            raise ArgumentError(
                 "fit_reml: run variance fixed at 0 (known variance) but no first-level "
                 "variances were given; give variance maps or estimate the run variance."
             )
@@ -265,7 +265,7 @@ def _check_inputs(y, variance, X, animal, estimate_run_variance):
             zero = (variance == 0) & np.isfinite(y)
         if zero.any():
             run = int(np.nonzero(zero.any(axis=1))[0][0])
-            raise UserError(
+            raise ArgumentError(
                 f"fit_reml: first-level variance of run {run} is 0 at {int(zero[run].sum())} "
                 "voxels with data, which a known-variance model cannot use; estimate the "
                 "run variance or mask those voxels."
@@ -1242,13 +1242,6 @@ def _nb_fit_many(
         )
 
 
-def _available_cores() -> int:
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:  # platforms without sched_getaffinity
-        return max(1, os.cpu_count() or 1)
-
-
 def _fit_compiled(
     y, variance, present, idx, X, animal, n_animals, estimate_sigma, max_iter, tol, pool, n_threads
 ):
@@ -1388,7 +1381,7 @@ def fit_reml(
     """
     y, variance, X, animal = _check_inputs(y, variance, X, animal, estimate_run_variance)
     if max_iter < 1:
-        raise UserError(f"fit_reml: max_iter must be at least 1, got {max_iter}.")
+        raise ArgumentError(f"fit_reml: max_iter must be at least 1, got {max_iter}.")
     n_runs, n_vox = y.shape
     p = X.shape[1]
     n_animals = int(animal.max()) + 1 if n_runs else 0
@@ -1415,7 +1408,7 @@ def fit_reml(
     n_iter = np.zeros(n_vox, dtype=np.int64)
 
     if backend not in ("compiled", "numpy"):
-        raise UserError(f"fit_reml: backend must be 'compiled' or 'numpy', got {backend!r}.")
+        raise ArgumentError(f"fit_reml: backend must be 'compiled' or 'numpy', got {backend!r}.")
     if chunk_size is not None:
         cs = int(chunk_size)
     elif memory_gb is not None:
@@ -1423,9 +1416,9 @@ def fit_reml(
     else:
         cs = _default_chunk(n_runs)
     if cs < 1:
-        raise UserError(f"fit_reml: chunk_size must be positive, got {chunk_size}.")
+        raise ArgumentError(f"fit_reml: chunk_size must be positive, got {chunk_size}.")
     idx_all = np.nonzero(estimable)[0]
-    n_threads = _available_cores() if backend == "compiled" else 1
+    n_threads = available_cores() if backend == "compiled" else 1
     with ThreadPoolExecutor(max_workers=n_threads) as pool:
         for start in range(0, idx_all.size, cs):
             idx = idx_all[start : start + cs]

@@ -27,6 +27,8 @@ from dataclasses import dataclass
 from importlib import metadata
 from pathlib import Path
 
+from grouplevel.outputs.summary import present_files, read_summary
+
 REFERENCES = {
     "reml": "Patterson HD, Thompson R (1971). Recovery of inter-block information when "
     "block sizes are unequal. Biometrika 58:545–554.",
@@ -156,14 +158,33 @@ def methods_text(summary: dict, present_files: dict[str, set[str]] | None = None
     """
     present_files = present_files or {}
     settings = summary.get("settings") or {}
-    model = settings.get("model") or {}
     inference = settings.get("inference") or {}
-    study = settings.get("study") or {}
     results = summary.get("results") or {}
-    cites: list[str] = []
-    paragraphs: list[str] = []
+    cites: list[str] = []  # citation keys in order of first use (the reference list)
+    paragraphs = [
+        _model_paragraph(summary, settings.get("model") or {}, results, cites),
+        _data_paragraph(results, settings.get("study") or {}),
+        _inference_paragraph(inference, results, cites),
+        _atlas_paragraph(summary.get("atlas"), inference, results),
+        _symmetry_paragraph(present_files, cites),
+    ]
+    versions, source = software_versions(summary)
+    return MethodsText(
+        paragraphs=tuple(p for p in paragraphs if p),
+        references=tuple(REFERENCES[k] for k in cites),
+        versions=versions,
+        versions_source=source,
+    )
 
-    # --- data and model
+
+def _fdr_words(inference: dict) -> tuple[str, str]:
+    """Citation key and name of the FDR procedure used."""
+    key = "by" if inference.get("fdr") == "by" else "bh"
+    return key, "Benjamini–Yekutieli" if key == "by" else "Benjamini–Hochberg"
+
+
+def _model_paragraph(summary: dict, model: dict, results: dict, cites: list[str]) -> str:
+    """The data entered and the mixed model, its estimation and its tests."""
     kinds = {r.get("first_level_variance", "none") for r in results.values()}
     if kinds == {"none"}:
         data_words = "each included run's first-level effect map (no first-level variance)"
@@ -207,9 +228,11 @@ def methods_text(summary: dict, present_files: dict[str, set[str]] | None = None
         "Each group contrast was tested with t = cᵀβ̂ / SE, the model-based standard "
         f"error at the REML estimates, with {df_words}."
     )
-    paragraphs.append(" ".join(model_sentences))
+    return " ".join(model_sentences)
 
-    # --- data actually analysed
+
+def _data_paragraph(results: dict, study: dict) -> str:
+    """Animals, runs, voxels and df of each analysed map."""
     data_sentences = []
     for name, r in results.items():
         per_animal = list((r.get("runs_per_animal") or {}).values())
@@ -232,14 +255,14 @@ def methods_text(summary: dict, present_files: dict[str, set[str]] | None = None
             f"A voxel was analysed where at least {_number(100 * study['min_coverage'])}% of "
             "the included runs had data."
         )
-    if data_sentences:
-        paragraphs.append(" ".join(data_sentences))
+    return " ".join(data_sentences)
 
-    # --- inference
+
+def _inference_paragraph(inference: dict, results: dict, cites: list[str]) -> str:
+    """Sides and level, FDR, the permutation scheme, clusters, TFCE and smoothness."""
     alpha = inference.get("alpha", 0.05)
     sided = _SIDED_WORDS.get(inference.get("sided", "two"), inference.get("sided", ""))
-    fdr_key = "by" if inference.get("fdr") == "by" else "bh"
-    fdr_name = "Benjamini–Yekutieli" if fdr_key == "by" else "Benjamini–Hochberg"
+    fdr_key, fdr_name = _fdr_words(inference)
     inf_sentences = [
         f"Tests were {sided} at α = {_number(alpha)}. The false discovery rate across voxels "
         f"was controlled with the {fdr_name} procedure ({_cite(cites, fdr_key)}) at "
@@ -325,41 +348,39 @@ def methods_text(summary: dict, present_files: dict[str, set[str]] | None = None
             + " × ".join(f"{v:.2f}" for v in fwhm)
             + " mm."
         )
-    paragraphs.append(" ".join(inf_sentences))
+    return " ".join(inf_sentences)
 
-    # --- atlas and regions
-    atlas = summary.get("atlas")
-    if atlas:
-        a_sentences = [
-            f"Regions came from the study atlas ({atlas.get('labelled_regions', '?')} labelled "
-            f"regions, {atlas.get('regions', '?')} including parents and hemispheres), "
-            f"mapped to the statistics grid by: {atlas.get('resampling', 'unknown')}; it "
-            f"covered {_number(round(100 * float(atlas.get('coverage_of_mask', 0)), 1))}% of "
-            f"the mask. The midline ({atlas.get('midline_source', '')}) was at "
-            f"x = {float(atlas.get('midline_mm', 0)):.2f} mm."
-        ]
-        if any("regions" in r for r in results.values()):
-            a_sentences.append(
-                "Region effects came from the same REML model fitted to each run's region "
-                f"average, with {fdr_name} FDR across regions."
-            )
-        paragraphs.append(" ".join(a_sentences))
 
-    if any("symmetry.tsv" in files for files in present_files.values()):
-        paragraphs.append(
-            "Hemispheric symmetry was assessed per region with laterality indices "
-            f"LI = (L − R)/(L + R) ({_cite(cites, 'seghier')}) by extent and by effect, and "
-            "with a test of the left–right difference of the region effect together with an "
-            "equivalence test (two one-sided tests) against the margin stated in the "
-            "symmetry table."
+def _atlas_paragraph(atlas: dict | None, inference: dict, results: dict) -> str:
+    """The atlas on the statistics grid and the region effects."""
+    if not atlas:
+        return ""
+    a_sentences = [
+        f"Regions came from the study atlas ({atlas.get('labelled_regions', '?')} labelled "
+        f"regions, {atlas.get('regions', '?')} including parents and hemispheres), "
+        f"mapped to the statistics grid by: {atlas.get('resampling', 'unknown')}; it "
+        f"covered {_number(round(100 * float(atlas.get('coverage_of_mask', 0)), 1))}% of "
+        f"the mask. The midline ({atlas.get('midline_source', '')}) was at "
+        f"x = {float(atlas.get('midline_mm', 0)):.2f} mm."
+    ]
+    if any("regions" in r for r in results.values()):
+        a_sentences.append(
+            "Region effects came from the same REML model fitted to each run's region "
+            f"average, with {_fdr_words(inference)[1]} FDR across regions."
         )
+    return " ".join(a_sentences)
 
-    versions, source = software_versions(summary)
-    return MethodsText(
-        paragraphs=tuple(paragraphs),
-        references=tuple(REFERENCES[k] for k in cites),
-        versions=versions,
-        versions_source=source,
+
+def _symmetry_paragraph(present_files: dict[str, set[str]], cites: list[str]) -> str:
+    """The symmetry analysis, when a result folder holds its table."""
+    if not any("symmetry.tsv" in files for files in present_files.values()):
+        return ""
+    return (
+        "Hemispheric symmetry was assessed per region with laterality indices "
+        f"LI = (L − R)/(L + R) ({_cite(cites, 'seghier')}) by extent and by effect, and "
+        "with a test of the left–right difference of the region effect together with an "
+        "equivalence test (two one-sided tests) against the margin stated in the "
+        "symmetry table."
     )
 
 
@@ -380,10 +401,8 @@ def write_methods(out_dir: Path) -> Path:
     Path
         The written file.
     """
-    from grouplevel.report.render import load_summary, present_files
-
     out_dir = Path(out_dir)
-    summary = load_summary(out_dir)
+    summary = read_summary(out_dir)
     text = methods_text(summary, present_files(out_dir, summary)).markdown()
     path = out_dir / "methods.md"
     path.write_text(text, encoding="utf-8")

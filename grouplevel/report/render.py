@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import base64
 import datetime as _dt
-import json
 import time
 from importlib import resources
 from pathlib import Path
@@ -27,7 +26,7 @@ import jinja2
 import nibabel as nib
 import numpy as np
 
-from grouplevel.errors import UserError
+from grouplevel.outputs.summary import present_files, read_summary, result_names
 from grouplevel.report import figures
 from grouplevel.report.methods import methods_text
 from grouplevel.report.tables import (
@@ -36,7 +35,6 @@ from grouplevel.report.tables import (
     TableView,
     format_value,
     read_tsv,
-    result_names,
     result_table_views,
 )
 
@@ -59,32 +57,6 @@ _METHOD_LABEL = {
 #: row per animal and region).
 REPORT_TABLES = ("clusters", "regions", "symmetry", "specificity", "consistency", "run_quality")
 MAX_WHERE = 3  # clusters named in the short answer
-
-
-def load_summary(out_dir: Path) -> dict:
-    """Parse ``out_dir/summary.json``.
-
-    Raises
-    ------
-    UserError
-        When the folder or its summary.json is missing or unreadable.
-    """
-    path = Path(out_dir) / "summary.json"
-    if not path.is_file():
-        raise UserError(f"{path}: not found; give the output folder of a finished 'grouplevel run'")
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError) as exc:
-        raise UserError(f"{path}: cannot read summary.json ({exc}); re-run the study") from None
-
-
-def present_files(out_dir: Path, summary: dict) -> dict[str, set[str]]:
-    """Result name → names of the files in its folder."""
-    out = {}
-    for name in result_names(summary):
-        folder = Path(out_dir) / name
-        out[name] = {p.name for p in folder.iterdir()} if folder.is_dir() else set()
-    return out
 
 
 def _environment() -> jinja2.Environment:
@@ -297,6 +269,7 @@ def _background(summary: dict, folder: Path) -> tuple[figures.Volume | None, str
 
 
 def _result_figures(out_dir: Path, name: str, result: dict, summary: dict, frames) -> list[dict]:
+    """Every figure of one result folder, in the order the report shows them."""
     settings = summary.get("settings") or {}
     alpha = (settings.get("inference") or {}).get("alpha", 0.05)
     space = settings.get("space") or {}
@@ -308,58 +281,81 @@ def _result_figures(out_dir: Path, name: str, result: dict, summary: dict, frame
     overlay, used, used_words = _overlay(folder, method, alpha)
     background, background_words = _background(summary, folder)
     mask_img = _load(folder / "mask.nii.gz")
-    if overlay is not None and background is not None and mask_img is not None:
-        mask = figures.canonical(mask_img).data > 0
-        if background.data.shape == mask.shape:
-            shown = int((overlay != 0).sum())
-            nothing = "" if shown else " No voxel survives, so nothing is overlaid."
-            fallback = (
-                f" ({method} maps are not in the folder; FDR is shown instead.)"
-                if used != method
-                else ""
+    if background is not None and mask_img is not None:
+        place = (background, figures.canonical(mask_img).data > 0, origin, origin_name)
+        if overlay is not None:
+            figs += _map_figures(name, place, overlay, method, used, used_words, background_words)
+        figs += _asymmetry_figures(folder, name, place)
+    figs += _symmetry_figures(name, frames)
+    forest = _forest(name, result, frames)
+    if forest is not None:
+        figs.append(forest)
+    if mask_img is not None:
+        figs += _variance_figures(folder, name, result, mask_img)
+    figs += _run_quality_figures(name, frames)
+    return figs
+
+
+def _map_figures(name, place, overlay, method, used, used_words, background_words) -> list[dict]:
+    """Coronal montage and dorsal/lateral projections of the thresholded z map."""
+    background, mask, origin, origin_name = place
+    figs: list[dict] = []
+    if background.data.shape == mask.shape:
+        shown = int((overlay != 0).sum())
+        nothing = "" if shown else " No voxel survives, so nothing is overlaid."
+        fallback = (
+            f" ({method} maps are not in the folder; FDR is shown instead.)"
+            if used != method
+            else ""
+        )
+        figs.append(
+            _figure(
+                "montage",
+                "Coronal slices, anterior to posterior",
+                figures.coronal_montage(
+                    background,
+                    overlay,
+                    mask,
+                    origin,
+                    label=f"z ({used_words})",
+                    origin_name=origin_name,
+                ),
+                f"Coronal slices of {background_words} for {name}, from anterior to "
+                f"posterior, with z shown where {used_words} ({shown} voxels).",
+                f"z where {used_words}, over {background_words}; each slice is labelled "
+                f"with its anterior–posterior position in mm from {origin_name}."
+                + nothing
+                + fallback,
             )
-            figs.append(
-                _figure(
-                    "montage",
-                    "Coronal slices, anterior to posterior",
-                    figures.coronal_montage(
-                        background,
-                        overlay,
-                        mask,
-                        origin,
-                        label=f"z ({used_words})",
-                        origin_name=origin_name,
-                    ),
-                    f"Coronal slices of {background_words} for {name}, from anterior to "
-                    f"posterior, with z shown where {used_words} ({shown} voxels).",
-                    f"z where {used_words}, over {background_words}; each slice is labelled "
-                    f"with its anterior–posterior position in mm from {origin_name}."
-                    + nothing
-                    + fallback,
-                )
+        )
+        axes_mm = tuple(background.axis_mm(a) - origin[a] for a in range(3))
+        figs.append(
+            _figure(
+                "projections",
+                "Dorsal and lateral views",
+                figures.projection_views(
+                    overlay,
+                    mask,
+                    background.step_mm,
+                    axes_mm,
+                    label=f"z ({used_words})",
+                    origin_name=origin_name,
+                ),
+                f"Maximum-intensity views of the thresholded z map of {name}, seen from "
+                "above and from the right, drawn inside the outline of the analysis mask.",
+                "The value of largest magnitude along each line of sight, inside the "
+                f"brain outline (the mask's own projection); z where {used_words}." + nothing,
             )
-            axes_mm = tuple(background.axis_mm(a) - origin[a] for a in range(3))
-            figs.append(
-                _figure(
-                    "projections",
-                    "Dorsal and lateral views",
-                    figures.projection_views(
-                        overlay,
-                        mask,
-                        background.step_mm,
-                        axes_mm,
-                        label=f"z ({used_words})",
-                        origin_name=origin_name,
-                    ),
-                    f"Maximum-intensity views of the thresholded z map of {name}, seen from "
-                    "above and from the right, drawn inside the outline of the analysis mask.",
-                    "The value of largest magnitude along each line of sight, inside the "
-                    f"brain outline (the mask's own projection); z where {used_words}." + nothing,
-                )
-            )
+        )
+    return figs
+
+
+def _asymmetry_figures(folder: Path, name: str, place) -> list[dict]:
+    """The unthresholded left-minus-right t map, when the folder holds it."""
+    background, mask, origin, origin_name = place
+    figs: list[dict] = []
     asym = _load(folder / "asymmetry_t.nii.gz")
-    if asym is not None and background is not None and mask_img is not None:
-        mask = figures.canonical(mask_img).data > 0
+    if asym is not None:
         values = figures.canonical(asym).data
         if values.shape == mask.shape == background.data.shape:
             figs.append(
@@ -379,6 +375,12 @@ def _result_figures(out_dir: Path, name: str, result: dict, summary: dict, frame
                     "exploratory, not a test at any voxel.",
                 )
             )
+    return figs
+
+
+def _symmetry_figures(name: str, frames) -> list[dict]:
+    """Laterality indices and laterality against threshold."""
+    figs: list[dict] = []
     if "symmetry" in frames and "region" in frames["symmetry"]:
         figs.append(
             _figure(
@@ -401,12 +403,15 @@ def _result_figures(out_dir: Path, name: str, result: dict, summary: dict, frame
                 "stable property of the map (li_curves.tsv).",
             )
         )
-    forest = _forest(name, result, frames)
-    if forest is not None:
-        figs.append(forest)
+    return figs
+
+
+def _variance_figures(folder: Path, name: str, result: dict, mask_img) -> list[dict]:
+    """Histograms of the variance components over the analysed voxels."""
+    figs: list[dict] = []
     var_animal = _load(folder / "var_animal.nii.gz")
     var_run = _load(folder / "var_run.nii.gz")
-    if var_animal is not None and var_run is not None and mask_img is not None:
+    if var_animal is not None and var_run is not None:
         m = np.asarray(mask_img.dataobj) > 0
         figs.append(
             _figure(
@@ -426,6 +431,12 @@ def _result_figures(out_dir: Path, name: str, result: dict, summary: dict, frame
                 "more than many runs where τ² dominates.",
             )
         )
+    return figs
+
+
+def _run_quality_figures(name: str, frames) -> list[dict]:
+    """Each run's similarity to the group map against its variance."""
+    figs: list[dict] = []
     if "run_quality" in frames and {"z_correlation", "z_variance"} <= set(frames["run_quality"]):
         figs.append(
             _figure(
@@ -746,7 +757,7 @@ def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:
 def build_context(out_dir: Path, *, title: str | None = None) -> dict:
     """Everything the template needs (figures drawn, tables formatted)."""
     out_dir = Path(out_dir)
-    summary = load_summary(out_dir)
+    summary = read_summary(out_dir)
     names = result_names(summary)
     files = present_files(out_dir, summary)
     results = []

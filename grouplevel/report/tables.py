@@ -24,6 +24,8 @@ from pathlib import Path
 
 import pandas as pd
 
+from grouplevel.outputs.summary import read_summary, result_names
+
 # Rounding rules (our choice, following the usual reporting of the trade; common practice).
 STAT_DECIMALS = 2
 P_DECIMALS = 3
@@ -386,11 +388,6 @@ def write_view(view: TableView, stem: Path) -> list[Path]:
     return paths
 
 
-def result_names(summary: dict) -> list[str]:
-    """Result folder names in the order summary.json lists them."""
-    return list((summary.get("results") or {}).keys())
-
-
 def write_manuscript_tables(out_dir: Path) -> list[Path]:
     """Write every manuscript table of a finished output folder into ``out_dir/tables/``.
 
@@ -408,10 +405,8 @@ def write_manuscript_tables(out_dir: Path) -> list[Path]:
     list of Path
         The files written (empty when no result folder holds a table).
     """
-    from grouplevel.report.render import load_summary
-
     out_dir = Path(out_dir)
-    summary = load_summary(out_dir)
+    summary = read_summary(out_dir)
     written: list[Path] = []
     target = out_dir / "tables"
     for name in result_names(summary):

@@ -1,7 +1,8 @@
 """The reviewer's questions of one group map: symmetry, specificity, consistency, quality.
 
-Glue between the fitted maps (:mod:`grouplevel.pipeline`) and the analyses in
-:mod:`grouplevel.symmetry`, :mod:`grouplevel.specificity` and :mod:`grouplevel.quality`.
+Glue between the fitted maps (:class:`~grouplevel.results.maps.GroupMap`) and the
+analyses in :mod:`~grouplevel.questions.symmetry`, :mod:`~grouplevel.questions.specificity`
+and :mod:`~grouplevel.questions.quality`.
 The questions are asked of the group mean ("mean" contrast) of a first-level contrast
 whose design is intercept-only; for other designs this version answers none of them and
 says so in summary.json (a left/right test or a target effect of a group difference
@@ -10,13 +11,17 @@ needs rules of its own).
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
-from grouplevel.config import QuestionSettings, Settings
+from grouplevel.anatomy.atlas import Atlas
+from grouplevel.anatomy.regions import region_values
+from grouplevel.anatomy.tables import RegionData, surviving_voxels
+from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference import fdr
 from grouplevel.inference.permutation import (
     PermutationResult,
@@ -24,10 +29,11 @@ from grouplevel.inference.permutation import (
     cluster_forming_z,
     permutation_test,
 )
-from grouplevel.model import between_animal_df, fit_reml, test_contrast
-from grouplevel.quality import RunQuality, run_quality
-from grouplevel.regions import region_values
-from grouplevel.specificity import (
+from grouplevel.intake.design import Design
+from grouplevel.intake.settings import QuestionSettings, Settings
+from grouplevel.model import MixedFit, between_animal_df, fit_reml, test_contrast
+from grouplevel.questions.quality import RunQuality, run_quality
+from grouplevel.questions.specificity import (
     Consistency,
     LooMaps,
     Specificity,
@@ -39,14 +45,17 @@ from grouplevel.specificity import (
     loo_group_maps,
     specificity,
 )
-from grouplevel.symmetry import (
+from grouplevel.questions.symmetry import (
     analyse_symmetry,
     asymmetry_data,
     li_curves,
     mirror_index,
+    region_pair,
     symmetry_table,
 )
-from grouplevel.tables import RegionData, surviving_voxels
+from grouplevel.results.compute import Backend
+from grouplevel.results.correction import permutation_arguments
+from grouplevel.results.maps import GroupMap
 
 # Seeds of the bootstrap and of the asymmetry map's permutations derive from the study's
 # seed; these offsets keep their random streams apart from the main permutations.
@@ -174,14 +183,39 @@ def asks_questions(design_columns: tuple[str, ...], contrast: str) -> bool:
     return contrast == "mean" and design_columns == ("Intercept",)
 
 
-def _target_rows(atlas, names) -> list[int]:
+def _check_symmetry_regions(atlas: Atlas, names: Sequence[str]) -> None:
+    """Every ``[questions] symmetry`` name is one left/right region pair, named once."""
+    seen: dict[tuple[int, int], str] = {}
+    for name in names:
+        try:
+            pair = region_pair(atlas, name)
+        except ArgumentError as exc:
+            raise UserError(f"[questions] symmetry: {exc}") from None
+        if pair in seen:
+            raise UserError(
+                f"[questions] symmetry: {name!r} and {seen[pair]!r} name the same region "
+                "pair; give each region once"
+            )
+        seen[pair] = name
+
+
+def _target_rows(atlas: Atlas, names: Sequence[str]) -> list[int]:
     rows: list[int] = []
     for name in names:
         rows.extend(atlas.region_rows(name))
     return sorted(set(rows))
 
 
-def _asymmetry(gm, y, s2, design, c, settings: Settings, midline_mm: float) -> AsymmetryMap:
+def _asymmetry(
+    gm: GroupMap,
+    y: np.ndarray,
+    s2: np.ndarray | None,
+    design: Design,
+    c: np.ndarray,
+    settings: Settings,
+    midline_mm: float,
+    backend: Backend | None,
+) -> AsymmetryMap:
     """Each run minus its mirror image, through the same model and inference."""
     mirror = mirror_index(gm.mask, gm.grid.affine, midline_mm)
     data = asymmetry_data(y, s2, mirror)
@@ -216,32 +250,33 @@ def _asymmetry(gm, y, s2, design, c, settings: Settings, midline_mm: float) -> A
             c,
             np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape),
             half_mask,
-            n_permutations=inf.permutations,
             rng=np.random.default_rng([inf.seed, _ASYMMETRY_STREAM]),
-            sided="two",
-            connectivity=inf.connectivity,
-            cluster_forming_p=inf.cluster_forming_p,
-            voxel_volume_mm3=gm.grid.voxel_volume,
-            use_tfce=inf.tfce,
-            tfce_E=inf.tfce_e,
-            tfce_H=inf.tfce_h,
+            **permutation_arguments(
+                inf, voxel_volume_mm3=gm.grid.voxel_volume, backend=backend, sided="two"
+            ),
         )
     return AsymmetryMap(mask=half_mask, t=res.t, z=res.z, q=q, permutation=perm)
 
 
 def answer_questions(
-    gm,
+    gm: GroupMap,
     y: np.ndarray,
     s2: np.ndarray | None,
-    fit,
-    design,
+    fit: MixedFit,
+    design: Design,
     runs: pd.DataFrame,
     c: np.ndarray,
     regions: RegionData | None,
     questions: QuestionSettings,
     settings: Settings,
+    *,
+    backend: Backend | None = None,
 ) -> Answers:
-    """Answer the configured questions of one group map (see the module docstring)."""
+    """Answer the configured questions of one group map (see the module docstring).
+
+    ``backend`` is where the permutations of the asymmetry maps run (``None``: local
+    threads), the same as for the group maps.
+    """
     estimate = settings.model.run_variance == "estimate"
     alpha = settings.inference.alpha
     notes: list[str] = []
@@ -270,6 +305,7 @@ def answer_questions(
     surviving = surviving_voxels(gm, alpha)[method]
     present = np.isfinite(y)
     if questions.symmetry:
+        _check_symmetry_regions(atlas, questions.symmetry)
         results = analyse_symmetry(
             list(questions.symmetry),
             atlas,
@@ -300,7 +336,7 @@ def answer_questions(
                 **{k: v for k, v in detail.items() if k != "verdict"},
                 "numbers": verdict["numbers"],
             }
-        asym = _asymmetry(gm, y, s2, design, c, settings, atlas.midline_mm)
+        asym = _asymmetry(gm, y, s2, design, c, settings, atlas.midline_mm, backend)
     if questions.targets:
         rows = _target_rows(atlas, questions.targets)
         height = (np.argwhere(gm.mask) @ gm.grid.affine[:3, :3].T + gm.grid.affine[:3, 3])[:, 2]

@@ -135,8 +135,8 @@ def _log(quiet: bool):
 
 
 def _check(args: argparse.Namespace) -> int:
-    from grouplevel.overview import study_overview
-    from grouplevel.study import load_study
+    from grouplevel.cli.overview import study_overview
+    from grouplevel.intake.study import load_study
 
     study = load_study(args.study)
     print(study_overview(study), end="")
@@ -173,7 +173,7 @@ def _report(args: argparse.Namespace) -> int:
 
 
 def _plan(args: argparse.Namespace) -> int:
-    from grouplevel.planning import plan_from_output, write_plan
+    from grouplevel.planning.plan import plan_from_output, write_plan
 
     plans = plan_from_output(
         args.folder,
@@ -206,7 +206,7 @@ def _plan(args: argparse.Namespace) -> int:
 
 
 def _table(args: argparse.Namespace) -> int:
-    from grouplevel.bids import derivatives_table, write_table
+    from grouplevel.intake.bids import derivatives_table, write_table
 
     select = {}
     for item in args.select:

@@ -34,8 +34,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from grouplevel.errors import UserError
-from grouplevel.specificity import _correlation
+from grouplevel.errors import ArgumentError
+from grouplevel.questions.specificity import _correlation
 
 #: |robust z| above which a run is flagged (Iglewicz & Hoaglin 1993; value from memory).
 DEFAULT_Z_THRESHOLD = 3.5
@@ -158,24 +158,24 @@ def run_quality(
     """
     y = np.asarray(y, dtype=float)
     if y.ndim != 2:
-        raise UserError(f"run_quality: y must be (runs, voxels), got shape {y.shape}.")
+        raise ArgumentError(f"run_quality: y must be (runs, voxels), got shape {y.shape}.")
     n, n_vox = y.shape
     animal = np.asarray(animal, dtype=np.int64).reshape(-1)
     loo_effect = np.asarray(loo_effect, dtype=float)
     shell = np.asarray(shell, dtype=bool).reshape(-1)
     if animal.shape != (n,) or len(runs) != n:
-        raise UserError(
+        raise ArgumentError(
             f"run_quality: {n} run maps but {animal.size} animal codes and {len(runs)} "
             "table rows; give one of each per run."
         )
     if loo_effect.ndim != 2 or loo_effect.shape[1] != n_vox or animal.max() >= len(loo_effect):
-        raise UserError(
+        raise ArgumentError(
             f"run_quality: loo_effect must be (animals, {n_vox}), got {loo_effect.shape}."
         )
     if shell.shape != (n_vox,):
-        raise UserError(f"run_quality: shell has {shell.size} values for {n_vox} voxels.")
+        raise ArgumentError(f"run_quality: shell has {shell.size} values for {n_vox} voxels.")
     if not threshold > 0:
-        raise UserError(f"run quality threshold must be positive, got {threshold!r}.")
+        raise ArgumentError(f"run quality threshold must be positive, got {threshold!r}.")
 
     correlation = _correlation(y, loo_effect[animal])
     if variance is None:
@@ -183,7 +183,7 @@ def run_quality(
     else:
         variance = np.asarray(variance, dtype=float)
         if variance.shape != y.shape:
-            raise UserError(f"run_quality: variance {variance.shape} and y {y.shape} differ.")
+            raise ArgumentError(f"run_quality: variance {variance.shape} and y {y.shape} differ.")
         with np.errstate(invalid="ignore"):
             ok = np.isfinite(variance)
             mean_var = np.where(ok, variance, 0.0).sum(axis=1) / ok.sum(axis=1)

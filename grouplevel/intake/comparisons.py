@@ -33,7 +33,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from grouplevel.config import ComparisonSpec
+from grouplevel.intake.settings import ComparisonSpec
 
 # columns that identify one run; two conditions of the same run share all three
 RUN_KEY = ("animal", "session", "run")

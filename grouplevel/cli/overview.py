@@ -7,8 +7,8 @@ from importlib import resources
 import jinja2
 import numpy as np
 
-from grouplevel.coordinates import describe_orientation
-from grouplevel.study import FirstLevel, Study
+from grouplevel.anatomy.coordinates import describe_orientation
+from grouplevel.intake.study import FirstLevel, Study
 
 
 def _environment() -> jinja2.Environment:

@@ -42,16 +42,40 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 from scipy import ndimage, stats
 
-from grouplevel.atlas import Atlas
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model.animals import animal_means
 from grouplevel.model.leave_one_out import leave_one_animal_out
+from grouplevel.questions.verdicts import (  # noqa: F401  (the rules' names, re-exported here)
+    ARTEFACT_ENRICHMENT_MIN,
+    ARTEFACT_FLAG_TEXT,
+    ARTEFACT_SHARE_MIN,
+    EDGE_COVERAGE_MIN,
+    EDGE_ODDS_RATIO_MIN,
+    EDGE_SHARE_MIN,
+    EDGE_TO_INNER_MIN,
+    MOSTLY_OFF_TARGET_SHARE,
+    RIM_MIN_VOXELS,
+    RIM_SCORE_MIN,
+    SPECIFIC_ENRICHMENT_MIN,
+    SPECIFIC_SHARE_MIN,
+    VERDICT_EDGE,
+    VERDICT_NONE,
+    VERDICT_OFF_TARGET,
+    VERDICT_PLUS_OFF_TARGET,
+    VERDICT_SPECIFIC,
+    specificity_rules,
+)
+
+if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
+    from grouplevel.anatomy.atlas import Atlas
 
 # --------------------------------------------------------------------------------------
 # Named constants (every rule is documented in docs/verdicts-specificity.md)
@@ -76,47 +100,6 @@ RIM_Z_THRESHOLD = 3.29
 #: cerebrospinal fluid spaces and anything outside the brain (our own choice).
 ARTEFACT_WORDS = ("ventric", "csf", "cerebrospinal", "outside", "background", "vessel", "sinus")
 
-#: Edge rule: the shell holds at least this share of the surviving activation ...
-EDGE_SHARE_MIN = 0.5
-#: ... with odds of a surviving voxel lying in the shell at least this many times the odds
-#: of any brain voxel lying there (an odds ratio rather than a ratio of shares, so that the
-#: rule can fire on small brains whose shell is most of the brain) ...
-EDGE_ODDS_RATIO_MIN = 3.0
-#: ... and the activation is denser in the shell than in the equally thick layer just
-#: inside it by at least this factor (a cortical activation near the surface continues
-#: into the next layer; a motion rim does not). Our own choices.
-EDGE_TO_INNER_MIN = 2.0
-#: ... and the surviving voxels cover at least this share of the shell (a motion or
-#: surface-vessel artefact runs along much of the edge; a genuine activation near the
-#: surface covers one patch of it). Our own choice: on the example cohort the genuine
-#: auditory activation covers 0.4% of the shell.
-EDGE_COVERAGE_MIN = 0.10
-
-#: Rim rule: sign-alternation score at least this ... (our own choice; the score is 1 for
-#: a perfect dorsal-positive / ventral-negative rim or its mirror, 0 for no pattern)
-RIM_SCORE_MIN = 0.5
-#: ... with at least this many shell voxels of each sign (our own choice).
-RIM_MIN_VOXELS = 10
-
-#: Artefact-label rule: those labels hold at least this share of the activation and at
-#: least this many times their share of the brain (our own choices).
-ARTEFACT_SHARE_MIN = 0.25
-ARTEFACT_ENRICHMENT_MIN = 2.0
-
-#: Verdict thresholds on the share of the surviving activation inside the targets and
-#: the enrichment (our own choices; see docs/verdicts-specificity.md).
-SPECIFIC_SHARE_MIN = 0.75
-SPECIFIC_ENRICHMENT_MIN = 2.0
-MOSTLY_OFF_TARGET_SHARE = 0.25
-
-VERDICT_SPECIFIC = "specific to target"
-VERDICT_PLUS_OFF_TARGET = "target plus off-target"
-VERDICT_OFF_TARGET = "mostly off-target"
-VERDICT_NONE = "no activation"
-VERDICT_EDGE = "likely artefact (edge)"
-
-ARTEFACT_FLAG_TEXT = "likely motion or vascular artefact"
-
 
 # --------------------------------------------------------------------------------------
 # Edge shell and region helpers
@@ -128,7 +111,7 @@ def _structure(connectivity: int) -> np.ndarray:
         return np.ones((3, 3, 3), dtype=bool)
     if connectivity == 6:
         return ndimage.generate_binary_structure(3, 1)
-    raise UserError(
+    raise ArgumentError(
         f"edge shell connectivity must be 6 or 26, got {connectivity!r}; set it to one of those."
     )
 
@@ -161,9 +144,9 @@ def edge_shell(
     """
     mask = np.asarray(mask, dtype=bool)
     if mask.ndim != 3:
-        raise UserError(f"edge_shell: the mask must be 3-D, got shape {mask.shape}.")
+        raise ArgumentError(f"edge_shell: the mask must be 3-D, got shape {mask.shape}.")
     if int(distance_voxels) < 1:
-        raise UserError(
+        raise ArgumentError(
             f"edge shell thickness must be at least 1 voxel, got {distance_voxels!r}; "
             "give a positive whole number of voxels."
         )
@@ -196,7 +179,7 @@ def leaf_rows(atlas: Atlas, rows: Sequence[int]) -> np.ndarray:
     n = len(regions)
     rows = np.asarray(list(rows), dtype=np.int64)
     if rows.size and (rows.min() < 0 or rows.max() >= n):
-        raise UserError(
+        raise ArgumentError(
             f"region rows must be between 0 and {n - 1}, got {rows.tolist()}; take them "
             "from Atlas.region_rows(name)."
         )
@@ -468,7 +451,7 @@ def _region_frame(
 def _vector(x, n: int, what: str, dtype=float) -> np.ndarray:
     x = np.asarray(x, dtype=dtype).reshape(-1)
     if x.shape != (n,):
-        raise UserError(f"specificity: {what} has {x.size} values for {n} in-mask voxels.")
+        raise ArgumentError(f"specificity: {what} has {x.size} values for {n} in-mask voxels.")
     return x
 
 
@@ -537,32 +520,130 @@ def specificity(
     Hajnal JV et al. (1994). Magn Reson Med 31:283-291.
     """
     n_vox = atlas.shares.shape[0]
-    surviving = _vector(surviving, n_vox, "surviving", bool)
-    z = _vector(z, n_vox, "z")
-    effect = _vector(effect, n_vox, "effect")
-    shell = _vector(shell, n_vox, "shell", bool)
-    inner = _vector(inner, n_vox, "inner", bool)
-    height = _vector(height, n_vox, "height")
-    y = np.asarray(y, dtype=float)
-    if y.ndim != 2 or y.shape[1] != n_vox:
-        raise UserError(f"specificity: y must be (runs, {n_vox} voxels), got {y.shape}.")
-    if len(list(targets)) == 0:
-        raise UserError(
-            "specificity: no target regions given; name at least one atlas region in "
-            "[questions] targets."
-        )
-
+    surviving, z, effect, shell, inner, height, y = _check_specificity_inputs(
+        n_vox, surviving, z, effect, shell, inner, height, y, targets
+    )
     target_leaves = leaf_rows(atlas, targets)
     artefact_leaves = leaf_rows(atlas, artefact)
     w_target = _weights(atlas, target_leaves)
-    w_artefact = _weights(atlas, artefact_leaves)
     names = atlas.regions["name"].astype(str).to_numpy()
     hemis = atlas.regions["hemisphere"].astype(str).to_numpy()
     target_names = tuple(f"{names[r]} ({hemis[r]})" for r in targets)
 
+    shares = _activation_shares(surviving, shell, inner, w_target, _weights(atlas, artefact_leaves))
+    active = surviving | (np.nan_to_num(np.abs(z)) > rim_z_threshold)
+    rim = rim_score(active, np.sign(np.nan_to_num(z)), shell, height)
+    fit, res = _target_minus_rest(y, w_target, X, animal, c)
+    surv_f = surviving.astype(float)
+    off = _off_target_table(atlas, target_leaves, effect, z, surv_f, artefact_leaves)
+    tgt = _target_table(
+        atlas, targets, target_leaves, target_names, w_target, effect, z, surv_f, shares
+    )
+    artefact_names = sorted(set(names[artefact_leaves]))
+    diff, se, dfv = float(res.effect[0]), float(res.se[0]), float(res.df[0])
+    lo, hi = _ci(diff, se, dfv)
+    difference_reason = (
+        f"Mean effect in the targets minus the rest of the brain: {diff:.3g} "
+        f"(95% CI {lo:.3g} to {hi:.3g}, t = {res.t[0]:.2f}, df = {dfv:g}, p = {res.p[0]:.3g})."
+    )
+    rules = specificity_rules(shares, rim, off, artefact_names, difference_reason, rim_z_threshold)
+    score, p_d, n_v, n_d, p_v = rim
+    return Specificity(
+        targets=target_names,
+        n_surviving=shares.n_surviving,
+        target_share=float(shares.target_share),
+        target_brain_share=shares.target_brain,
+        enrichment=float(shares.enrichment),
+        difference=diff,
+        se=se,
+        ci_low=lo,
+        ci_high=hi,
+        t=float(res.t[0]),
+        df=dfv,
+        p=float(res.p[0]),
+        var_animal=float(fit.var_animal[0]),
+        var_run=float(fit.var_run[0]),
+        off_target=off,
+        edge_share=float(shares.edge_share),
+        edge_brain_share=shares.edge_brain,
+        edge_enrichment=float(shares.edge_enrichment),
+        edge_odds_ratio=float(shares.edge_odds_ratio),
+        edge_to_inner=float(shares.edge_to_inner),
+        edge_coverage=float(shares.edge_coverage),
+        rim_score=score,
+        rim_positive_dorsal=p_d,
+        rim_negative_ventral=n_v,
+        rim_negative_dorsal=n_d,
+        rim_positive_ventral=p_v,
+        artefact_share=float(shares.artefact_share),
+        artefact_brain_share=shares.artefact_brain,
+        artefact_enrichment=float(shares.artefact_enrichment),
+        edge_rule=rules.edge_rule,
+        rim_rule=rules.rim_rule,
+        artefact_rule=rules.artefact_rule,
+        flag=rules.flag,
+        verdict=rules.verdict,
+        reasons=rules.reasons,
+        target_rows=tgt,
+    )
+
+
+# --------------------------------------------------------------------------------------
+# The steps of specificity
+# --------------------------------------------------------------------------------------
+
+
+def _check_specificity_inputs(n_vox, surviving, z, effect, shell, inner, height, y, targets):
+    """Per-voxel vectors of the mask's length, a runs × voxels ``y``, some targets."""
+    out = (
+        _vector(surviving, n_vox, "surviving", bool),
+        _vector(z, n_vox, "z"),
+        _vector(effect, n_vox, "effect"),
+        _vector(shell, n_vox, "shell", bool),
+        _vector(inner, n_vox, "inner", bool),
+        _vector(height, n_vox, "height"),
+    )
+    y = np.asarray(y, dtype=float)
+    if y.ndim != 2 or y.shape[1] != n_vox:
+        raise ArgumentError(f"specificity: y must be (runs, {n_vox} voxels), got {y.shape}.")
+    if len(list(targets)) == 0:
+        raise ArgumentError(
+            "specificity: no target regions given; pass the atlas rows of at least one "
+            "target region."
+        )
+    return (*out, y)
+
+
+@dataclass(frozen=True)
+class Shares:
+    """Where the surviving voxels lie: in the targets, the edge shell, artefact labels
+    (what the specificity rules of :mod:`grouplevel.questions.verdicts` read)."""
+
+    n_surviving: int
+    target_brain: float  # share of the brain in the targets
+    edge_brain: float
+    artefact_brain: float
+    target_share: float  # share of the surviving voxels in the targets
+    edge_share: float
+    artefact_share: float
+    enrichment: float  # target_share / target_brain
+    edge_enrichment: float
+    edge_odds_ratio: float
+    artefact_enrichment: float
+    edge_coverage: float  # share of the shell that survives
+    edge_to_inner: float  # surviving density, shell / the layer just inside
+
+
+def _activation_shares(
+    surviving: np.ndarray,
+    shell: np.ndarray,
+    inner: np.ndarray,
+    w_target: np.ndarray,
+    w_artefact: np.ndarray,
+) -> Shares:
     surv_f = surviving.astype(float)
     n_surv = int(surviving.sum())
-    brain = float(n_vox)
+    brain = float(surviving.size)
     target_brain = float(w_target.sum()) / brain
     edge_brain = float(shell.sum()) / brain
     artefact_brain = float(w_artefact.sum()) / brain
@@ -570,34 +651,43 @@ def specificity(
         target_share = float(w_target @ surv_f) / n_surv if n_surv else np.nan
         edge_share = float(surv_f[shell].sum()) / n_surv if n_surv else np.nan
         artefact_share = float(w_artefact @ surv_f) / n_surv if n_surv else np.nan
-        enrichment = target_share / target_brain if target_brain > 0 else np.nan
-        edge_enrichment = edge_share / edge_brain if edge_brain > 0 else np.nan
-        edge_odds_ratio = (
-            _odds(edge_share) / _odds(edge_brain) if 0 < edge_brain < 1 else float("nan")
-        )
-        artefact_enrichment = artefact_share / artefact_brain if artefact_brain > 0 else np.nan
         shell_density = surv_f[shell].mean() if shell.any() else np.nan
-        edge_coverage = float(shell_density) if shell.any() else 0.0
         inner_density = surv_f[inner].mean() if inner.any() else np.nan
-        edge_to_inner = (
-            np.nan
-            if not n_surv
-            else (np.inf if inner_density == 0 else float(shell_density / inner_density))
+        return Shares(
+            n_surviving=n_surv,
+            target_brain=target_brain,
+            edge_brain=edge_brain,
+            artefact_brain=artefact_brain,
+            target_share=target_share,
+            edge_share=edge_share,
+            artefact_share=artefact_share,
+            enrichment=target_share / target_brain if target_brain > 0 else np.nan,
+            edge_enrichment=edge_share / edge_brain if edge_brain > 0 else np.nan,
+            edge_odds_ratio=(
+                _odds(edge_share) / _odds(edge_brain) if 0 < edge_brain < 1 else float("nan")
+            ),
+            artefact_enrichment=(artefact_share / artefact_brain if artefact_brain > 0 else np.nan),
+            edge_coverage=float(shell_density) if shell.any() else 0.0,
+            edge_to_inner=(
+                np.nan
+                if not n_surv
+                else (np.inf if inner_density == 0 else float(shell_density / inner_density))
+            ),
         )
 
-    active = surviving | (np.nan_to_num(np.abs(z)) > rim_z_threshold)
-    score, p_d, n_v, n_d, p_v = rim_score(active, np.sign(np.nan_to_num(z)), shell, height)
 
-    # target − rest per run, REML run-within-animal model
+def _target_minus_rest(y, w_target, X, animal, c):
+    """Per run: mean in the targets − mean in the rest; REML run-within-animal model."""
     values = _weighted_run_means(y, w_target) - _weighted_run_means(y, 1.0 - w_target)
     present = np.isfinite(values)[:, None]
     fit = fit_reml(values[:, None], None, X, animal, estimate_run_variance=True)
     df = between_animal_df(X, animal, present, c)
-    res = test_contrast(fit, c, df)
-    diff, se, dfv = float(res.effect[0]), float(res.se[0]), float(res.df[0])
-    lo, hi = _ci(diff, se, dfv)
+    return fit, test_contrast(fit, c, df)
 
-    # off-target leaves
+
+def _off_target_table(atlas, target_leaves, effect, z, surv_f, artefact_leaves) -> pd.DataFrame:
+    """Every leaf outside the targets, ranked by |mean effect| and by surviving voxels."""
+    n_surv = int(surv_f.sum())
     leaf = atlas.regions["is_leaf"].to_numpy(dtype=bool)
     off_rows = np.flatnonzero(leaf & ~np.isin(np.arange(len(leaf)), target_leaves))
     off = _region_frame(atlas, off_rows, effect, z, surv_f, n_surv, artefact_leaves)
@@ -611,12 +701,22 @@ def specificity(
     off["rank_effect"] = rank_e
     off["rank_extent"] = rank_x
     off = off.sort_values("rank_effect", kind="stable").reset_index(drop=True)
+    off["rank_effect"] = off["rank_effect"].astype("Int64")
+    off["rank_extent"] = off["rank_extent"].astype("Int64")
+    return off
 
+
+def _target_table(
+    atlas, targets, target_leaves, target_names, w_target, effect, z, surv_f, shares: Shares
+) -> pd.DataFrame:
+    """One row per target region and one for all targets together."""
+    n_surv = shares.n_surviving
     tgt = _region_frame(
         atlas, np.asarray(list(targets), dtype=np.int64), effect, z, surv_f, n_surv, []
     )
     tgt.insert(0, "kind", "target")
     fin_e = np.isfinite(effect)
+    tiny = np.finfo(float).tiny
     combined = {
         "kind": "targets",
         "index": -1,
@@ -624,135 +724,17 @@ def specificity(
         "hemisphere": "",
         "volume_mm3": float(sum(atlas.regions["mask_volume_mm3"].iloc[r] for r in target_leaves)),
         "mean_effect": float((w_target * fin_e) @ np.where(fin_e, effect, 0.0))
-        / max(float(w_target @ fin_e), np.finfo(float).tiny),
-        "mean_z": float(np.nansum(w_target * z) / max(w_target.sum(), np.finfo(float).tiny)),
+        / max(float(w_target @ fin_e), tiny),
+        "mean_z": float(np.nansum(w_target * z) / max(w_target.sum(), tiny)),
         "surviving_voxels": float(w_target @ surv_f),
-        "surviving_share": float(w_target @ surv_f) / max(w_target.sum(), np.finfo(float).tiny),
-        "activation_share": target_share,
+        "surviving_share": float(w_target @ surv_f) / max(w_target.sum(), tiny),
+        "activation_share": shares.target_share,
         "artefact_label": False,
     }
     tgt = pd.concat([tgt, pd.DataFrame([combined])], ignore_index=True)
     tgt["rank_effect"] = pd.array([pd.NA] * len(tgt), dtype="Int64")
     tgt["rank_extent"] = pd.array([pd.NA] * len(tgt), dtype="Int64")
-    off["rank_effect"] = off["rank_effect"].astype("Int64")
-    off["rank_extent"] = off["rank_extent"].astype("Int64")
-
-    # rules
-    reasons: list[str] = []
-    edge_rule = bool(
-        n_surv > 0
-        and edge_share >= EDGE_SHARE_MIN
-        and edge_odds_ratio >= EDGE_ODDS_RATIO_MIN
-        and edge_to_inner >= EDGE_TO_INNER_MIN
-        and edge_coverage >= EDGE_COVERAGE_MIN
-    )
-    rim_rule = bool(score >= RIM_SCORE_MIN and min(p_d + p_v, n_d + n_v) >= RIM_MIN_VOXELS)
-    artefact_rule = bool(
-        n_surv > 0
-        and artefact_share >= ARTEFACT_SHARE_MIN
-        and artefact_enrichment >= ARTEFACT_ENRICHMENT_MIN
-    )
-    if n_surv:
-        reasons.append(
-            f"{n_surv} voxels survive; {100 * edge_share:.1f}% of them lie in the "
-            f"{edge_brain * 100:.1f}% of the brain that is the edge shell (enrichment "
-            f"{edge_enrichment:.2f}, odds ratio {edge_odds_ratio:.2f}; density "
-            f"{edge_to_inner:.2f} times that of the layer just inside); they cover "
-            f"{100 * edge_coverage:.1f}% of the shell."
-        )
-    reasons.append(
-        f"Sign-alternation score of the edge shell {score:.2f} ({p_d} positive dorsal, "
-        f"{n_v} negative ventral, {n_d} negative dorsal, {p_v} positive ventral voxels with "
-        f"|z| > {rim_z_threshold:g} or surviving)."
-    )
-    if edge_rule:
-        reasons.append(
-            f"Edge rule fired: shell share ≥ {EDGE_SHARE_MIN:g}, odds ratio ≥ "
-            f"{EDGE_ODDS_RATIO_MIN:g}, shell/inner density ≥ {EDGE_TO_INNER_MIN:g} and "
-            f"shell coverage ≥ {EDGE_COVERAGE_MIN:g}."
-        )
-    if rim_rule:
-        reasons.append(
-            f"Rim rule fired: score ≥ {RIM_SCORE_MIN:g} with ≥ {RIM_MIN_VOXELS} voxels "
-            "of each sign (the pattern stimulus-locked head motion leaves)."
-        )
-    if n_surv and artefact_leaves.size:
-        reasons.append(
-            f"Artefact labels ({', '.join(sorted(set(names[artefact_leaves])))}) hold "
-            f"{100 * artefact_share:.1f}% of the surviving voxels and "
-            f"{100 * artefact_brain:.1f}% of the brain (enrichment {artefact_enrichment:.2f})"
-            + ("; artefact-label rule fired." if artefact_rule else ".")
-        )
-    flag = ARTEFACT_FLAG_TEXT if (edge_rule or rim_rule or artefact_rule) else ""
-
-    if n_surv == 0:
-        verdict = VERDICT_NONE
-        reasons.insert(0, "No voxel survives the correction.")
-    elif edge_rule or rim_rule:
-        verdict = VERDICT_EDGE
-    else:
-        reasons.insert(
-            0,
-            f"{100 * target_share:.1f}% of the surviving activation lies in the targets, "
-            f"which make up {100 * target_brain:.1f}% of the brain (enrichment "
-            f"{enrichment:.2f}).",
-        )
-        if target_share >= SPECIFIC_SHARE_MIN and enrichment >= SPECIFIC_ENRICHMENT_MIN:
-            verdict = VERDICT_SPECIFIC
-        elif target_share < MOSTLY_OFF_TARGET_SHARE or not enrichment > 1.0:
-            verdict = VERDICT_OFF_TARGET
-        else:
-            verdict = VERDICT_PLUS_OFF_TARGET
-        big = off[off["surviving_voxels"] > 0].sort_values("rank_extent").head(3)
-        if len(big):
-            listed = "; ".join(
-                f"{r['name']} ({r['hemisphere']}) {r['surviving_voxels']:.0f} voxels"
-                for _, r in big.iterrows()
-            )
-            reasons.append(f"Largest off-target activation: {listed}.")
-    reasons.append(
-        f"Mean effect in the targets minus the rest of the brain: {diff:.3g} "
-        f"(95% CI {lo:.3g} to {hi:.3g}, t = {res.t[0]:.2f}, df = {dfv:g}, p = {res.p[0]:.3g})."
-    )
-
-    return Specificity(
-        targets=target_names,
-        n_surviving=n_surv,
-        target_share=float(target_share),
-        target_brain_share=target_brain,
-        enrichment=float(enrichment),
-        difference=diff,
-        se=se,
-        ci_low=lo,
-        ci_high=hi,
-        t=float(res.t[0]),
-        df=dfv,
-        p=float(res.p[0]),
-        var_animal=float(fit.var_animal[0]),
-        var_run=float(fit.var_run[0]),
-        off_target=off,
-        edge_share=float(edge_share),
-        edge_brain_share=edge_brain,
-        edge_enrichment=float(edge_enrichment),
-        edge_odds_ratio=float(edge_odds_ratio),
-        edge_to_inner=float(edge_to_inner),
-        edge_coverage=float(edge_coverage),
-        rim_score=score,
-        rim_positive_dorsal=p_d,
-        rim_negative_ventral=n_v,
-        rim_negative_dorsal=n_d,
-        rim_positive_ventral=p_v,
-        artefact_share=float(artefact_share),
-        artefact_brain_share=artefact_brain,
-        artefact_enrichment=float(artefact_enrichment),
-        edge_rule=edge_rule,
-        rim_rule=rim_rule,
-        artefact_rule=artefact_rule,
-        flag=flag,
-        verdict=verdict,
-        reasons=tuple(reasons),
-        target_rows=tgt,
-    )
+    return tgt
 
 
 def inner_layer(
@@ -846,7 +828,7 @@ def _design_inputs(X, animal, n_runs: int, where: str):
         X = X[:, None]
     animal = np.asarray(animal, dtype=np.int64).reshape(-1)
     if X.shape[0] != n_runs or animal.shape != (n_runs,):
-        raise UserError(
+        raise ArgumentError(
             f"{where}: {n_runs} runs of data but the design has {X.shape[0]} rows and "
             f"{animal.size} animal codes; give one design row and code per run."
         )
@@ -915,12 +897,12 @@ def consistency(
     animal_ids = [str(a) for a in animal_ids]
     m = len(animal_ids)
     if n and (animal.min() < 0 or animal.max() >= m):
-        raise UserError(f"consistency: animal codes must lie in 0..{m - 1} ({m} animal names).")
+        raise ArgumentError(f"consistency: animal codes must lie in 0..{m - 1} ({m} animal names).")
     s2 = None
     if variances is not None:
         s2 = np.asarray(variances, dtype=float).reshape(-1)
         if s2.shape != (n,):
-            raise UserError(f"consistency: {s2.size} variances for {n} runs.")
+            raise ArgumentError(f"consistency: {s2.size} variances for {n} runs.")
     fit, res = _test(
         values[:, None], None if s2 is None else s2[:, None], X, animal, c, estimate_run_variance
     )
@@ -928,37 +910,19 @@ def consistency(
     icc = tau2 / (tau2 + sig2) if (tau2 + sig2) > 0 else float("nan")
 
     present = np.isfinite(values) & (np.isfinite(s2) if s2 is not None else True)
-    total = sig2 + (np.nan_to_num(s2) if s2 is not None else 0.0)
-    total = np.broadcast_to(total, (n,))
-    ok = present & (total > 0)
-    w = np.where(ok, 1.0 / np.where(ok, total, 1.0), 0.0)
-    y0 = np.where(present, values, 0.0)
-    ind = np.zeros((m, n))
-    ind[animal, np.arange(n)] = 1.0
-    sum_w = ind @ w
-    runs = ind @ present.astype(float)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        eff = np.where(sum_w > 0, (ind @ (w * y0)) / sum_w, (ind @ y0) / runs)
-        se = np.where(sum_w > 0, np.sqrt(1.0 / sum_w), np.nan)
-    eff = np.where(runs > 0, eff, np.nan)
+    means = animal_means(
+        values[:, None],
+        animal,
+        n_animals=m,
+        variance=None if s2 is None else s2[:, None],
+        var_run=sig2,
+    )
+    eff, se, runs = means.mean[:, 0], means.se[:, 0], means.runs[:, 0]
 
     full = float(res.effect[0])
-    loo_e = np.full(m, np.nan)
-    loo_t = np.full(m, np.nan)
-    for a in range(m):  # one small refit per animal
-        keep = (animal != a) & present
-        if not (runs[a] > 0) or keep.sum() < 2:
-            continue
-        codes = np.unique(animal[keep], return_inverse=True)[1]
-        _, r = _test(
-            values[keep][:, None],
-            None if s2 is None else s2[keep][:, None],
-            X[keep],
-            codes,
-            c,
-            estimate_run_variance,
-        )
-        loo_e[a], loo_t[a] = float(r.effect[0]), float(r.t[0])
+    loo_e, loo_t = _leave_each_animal_out(
+        values, s2, X, animal, c, present, m, estimate_run_variance
+    )
     change = loo_e - full
     has = runs > 0
     lo, hi = eff - _Z_CRIT * se, eff + _Z_CRIT * se
@@ -994,6 +958,28 @@ def consistency(
         n_animals=int(has.sum()),
         most_influential=most,
     )
+
+
+def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_variance):
+    """Effect and t of the same REML model refitted without each animal in turn (NaN for
+    an animal without runs or when fewer than two runs would remain)."""
+    loo_e = np.full(m, np.nan)
+    loo_t = np.full(m, np.nan)
+    for a in range(m):  # one small refit per animal
+        keep = (animal != a) & present
+        if not present[animal == a].any() or keep.sum() < 2:
+            continue
+        codes = np.unique(animal[keep], return_inverse=True)[1]
+        _, r = _test(
+            values[keep][:, None],
+            None if s2 is None else s2[keep][:, None],
+            X[keep],
+            codes,
+            c,
+            estimate_run_variance,
+        )
+        loo_e[a], loo_t[a] = float(r.effect[0]), float(r.t[0])
+    return loo_e, loo_t
 
 
 @dataclass(frozen=True)
@@ -1110,7 +1096,7 @@ def loo_group_maps(
     """
     y = np.asarray(y, dtype=float)
     if y.ndim != 2:
-        raise UserError(f"loo_group_maps: y must be (runs, voxels), got shape {y.shape}.")
+        raise ArgumentError(f"loo_group_maps: y must be (runs, voxels), got shape {y.shape}.")
     X, animal = _design_inputs(X, animal, y.shape[0], "loo_group_maps")
     m = int(animal.max()) + 1
     ids = tuple(str(a) for a in (animal_ids if animal_ids is not None else range(m)))

@@ -15,11 +15,16 @@ orientation in words, for ``check`` and the report to print.
 
 from __future__ import annotations
 
-import nibabel as nib
 import numpy as np
+from nibabel.orientations import aff2axcodes
 
 #: Column names of stereotaxic coordinates, in the order of :func:`to_stereotaxic`.
 STEREOTAXIC_COLUMNS = ("AP_mm", "ML_mm", "DV_mm")
+
+#: A point this close to the midline plane counts as on it (the tolerance used for
+#: comparing affines, grouplevel.intake.images.AFFINE_TOLERANCE_MM: far below a rodent
+#: voxel of 0.05-0.3 mm, above float32 round-off of header coordinates).
+MIDLINE_TOLERANCE_MM = 1e-3
 
 # What each axis code of nibabel.aff2axcodes means along an array axis of a rodent image:
 # the code names the world direction towards which the index increases.
@@ -135,7 +140,7 @@ def describe_orientation(affine: np.ndarray) -> str:
         leading code is the one nibabel's ``aff2axcodes`` gives (the world direction of
         increasing ``i``, ``j``, ``k``).
     """
-    codes = nib.aff2axcodes(np.asarray(affine, dtype=float))
+    codes = aff2axcodes(np.asarray(affine, dtype=float))
     words = ", ".join(
         f"{axis} {_AXIS_WORDS.get(code, 'undetermined')}"
         for axis, code in zip("ijk", codes, strict=True)

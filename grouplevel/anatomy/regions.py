@@ -36,18 +36,22 @@ powerful approach to multiple testing. J R Stat Soc B 57:289-300.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 from scipy import ndimage, stats
 
-from grouplevel.atlas import Atlas
-from grouplevel.coordinates import STEREOTAXIC_COLUMNS, to_stereotaxic, voxel_to_mm
-from grouplevel.images import Grid
+from grouplevel.anatomy.coordinates import STEREOTAXIC_COLUMNS, to_stereotaxic, voxel_to_mm
 from grouplevel.inference import fdr
 from grouplevel.inference.clusters import Clusters
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model.animals import animal_means
+
+if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
+    from grouplevel.anatomy.atlas import Atlas
+    from grouplevel.intake.images import Grid
 
 #: Sub-peaks closer than this to a stronger kept peak are not listed. Our own choice: five
 #: voxels of a 0.2 mm mouse grid, about the size of a small cortical area.
@@ -338,6 +342,63 @@ def cluster_table(
         cluster.
     """
     shape = tuple(grid.shape)
+    labels, mask, z3d, t3d, effect3d = _check_cluster_maps(
+        clusters, z3d, t3d, effect3d, mask, shape
+    )
+    n = clusters.n_clusters
+    significant = np.asarray(significant, dtype=bool).reshape(-1)
+    if significant.shape != (n,):
+        raise ValueError(f"significant has {significant.size} values for {n} clusters")
+    level = {
+        "p_fwe_cluster_extent": _optional_cluster_vector(p_extent, n, "p_extent"),
+        "p_fwe_cluster_mass": _optional_cluster_vector(p_mass, n, "p_mass"),
+    }
+    voxels, centre_mm, minima = _cluster_summaries(labels, n, grid, p_voxel3d, p_tfce3d, q3d)
+    level.update(minima)
+    overlap = _LeafOverlap.of(atlas, labels, mask, n)
+    origin = None if origin_mm is None else np.asarray(origin_mm, dtype=float)
+    lookup = _region_lookup(atlas)
+    boxes = ndimage.find_objects(labels.astype(np.int64), max_label=n)
+    rows: list[dict[str, object]] = []
+    for k in np.flatnonzero(significant):  # a loop over reported clusters
+        sign = int(clusters.sign[k])
+        peaks = _local_maxima_in_box(
+            z3d, labels, int(k) + 1, boxes[k], grid.affine, float(subpeak_distance_mm), sign
+        )[: 1 + max(int(max_subpeaks), 0)]
+        peak_mm = voxel_to_mm(peaks, grid.affine).reshape(-1, 3)
+        for number, (voxel, mm) in enumerate(zip(peaks, peak_mm, strict=True), start=1):
+            at = tuple(int(v) for v in voxel)
+            row = _peak_row(int(k), number, sign, at, mm, origin, z3d, t3d, effect3d)
+            row.update(
+                zip(
+                    ("peak_region", "peak_region_abbreviation", "peak_region_hemisphere"),
+                    lookup.get(int(atlas.label_volume[at]), (UNLABELLED, "", "")),
+                    strict=True,
+                )
+            )
+            if number == 1:
+                row.update(
+                    {
+                        "voxels": int(voxels[k]),
+                        "volume_mm3": float(voxels[k]) * grid.voxel_volume,
+                        **_position_columns("centre", centre_mm[k], origin),
+                        **{column: values[k] for column, values in level.items()},
+                        "regions": overlap.text(k, float(voxels[k]), int(top_regions)),
+                    }
+                )
+            else:
+                row["regions"] = ""
+            rows.append(row)
+    return _typed_cluster_table(rows)
+
+
+# --------------------------------------------------------------------------------------
+# The steps of cluster_table
+# --------------------------------------------------------------------------------------
+
+
+def _check_cluster_maps(clusters, z3d, t3d, effect3d, mask, shape):
+    """Labels, mask and the three statistic maps, all on the grid."""
     labels = np.asarray(clusters.labels)
     mask = np.asarray(mask, dtype=bool)
     for what, array in (("labels", labels), ("z3d", z3d), ("t3d", t3d), ("effect3d", effect3d)):
@@ -345,18 +406,14 @@ def cluster_table(
             raise ValueError(f"{what} has shape {np.shape(array)}, the grid {shape}")
     if mask.shape != shape:
         raise ValueError(f"mask has shape {mask.shape}, the grid {shape}")
-    n = clusters.n_clusters
-    significant = np.asarray(significant, dtype=bool).reshape(-1)
-    if significant.shape != (n,):
-        raise ValueError(f"significant has {significant.size} values for {n} clusters")
-    p_extent = _optional_cluster_vector(p_extent, n, "p_extent")
-    p_mass = _optional_cluster_vector(p_mass, n, "p_mass")
-    z3d = np.asarray(z3d, dtype=float)
-    t3d = np.asarray(t3d, dtype=float)
-    effect3d = np.asarray(effect3d, dtype=float)
-    origin = None if origin_mm is None else np.asarray(origin_mm, dtype=float)
+    as_float = (np.asarray(a, dtype=float) for a in (z3d, t3d, effect3d))
+    return (labels, mask, *as_float)
 
-    # Cluster-level quantities, vectorised over all voxels of all clusters.
+
+def _cluster_summaries(labels, n, grid, p_voxel3d, p_tfce3d, q3d):
+    """Voxels, centre (mm) and smallest voxel-wise p / q of every cluster, vectorised
+    over all voxels of all clusters."""
+    shape = tuple(grid.shape)
     flat = labels.ravel()
     members = np.flatnonzero(flat > 0)
     cluster_of = flat[members].astype(np.int64) - 1
@@ -370,90 +427,79 @@ def cluster_table(
             / voxels[:, None]
         )
     centre_mm = voxel_to_mm(centre_ijk, grid.affine).reshape(n, 3)
-    p_voxel_min = _cluster_minimum(p_voxel3d, members, cluster_of, n, shape, "p_voxel3d")
-    p_tfce_min = _cluster_minimum(p_tfce3d, members, cluster_of, n, shape, "p_tfce3d")
-    q_min = _cluster_minimum(q3d, members, cluster_of, n, shape, "q3d")
+    minima = {
+        column: _cluster_minimum(values, members, cluster_of, n, shape, what)
+        for column, values, what in (
+            ("p_fwe_voxel_min", p_voxel3d, "p_voxel3d"),
+            ("p_fwe_tfce_min", p_tfce3d, "p_tfce3d"),
+            ("q_min", q3d, "q3d"),
+        )
+    }
+    return voxels, centre_mm, minima
 
-    # Overlap of each cluster with each leaf region, in voxels (share-weighted).
-    regions = atlas.regions
-    leaf = regions["is_leaf"].to_numpy(dtype=bool)
-    in_mask_label = labels[mask].astype(np.int64)
-    in_cluster = np.flatnonzero(in_mask_label > 0)
-    indicator = sp.csr_matrix(
-        (np.ones(in_cluster.size), (in_mask_label[in_cluster] - 1, in_cluster)),
-        shape=(n, int(mask.sum())),
+
+class _LeafOverlap:
+    """Overlap of each cluster with each leaf region, in voxels (share-weighted)."""
+
+    def __init__(self, overlap, leaf_voxels, names, hemispheres) -> None:
+        self.overlap = overlap
+        self.leaf_voxels = leaf_voxels
+        self.names = names
+        self.hemispheres = hemispheres
+
+    @classmethod
+    def of(cls, atlas: Atlas, labels: np.ndarray, mask: np.ndarray, n: int) -> _LeafOverlap:
+        regions = atlas.regions
+        leaf = regions["is_leaf"].to_numpy(dtype=bool)
+        in_mask_label = labels[mask].astype(np.int64)
+        in_cluster = np.flatnonzero(in_mask_label > 0)
+        indicator = sp.csr_matrix(
+            (np.ones(in_cluster.size), (in_mask_label[in_cluster] - 1, in_cluster)),
+            shape=(n, int(mask.sum())),
+        )
+        leaf_shares = atlas.shares[:, np.flatnonzero(leaf)]
+        return cls(
+            (indicator @ leaf_shares).toarray(),
+            np.asarray(leaf_shares.sum(axis=0)).ravel(),
+            regions["name"].to_numpy()[leaf],
+            regions["hemisphere"].to_numpy()[leaf],
+        )
+
+    def text(self, k: int, cluster_voxels: float, top: int) -> str:
+        """The ``regions`` cell of cluster ``k`` (0-based)."""
+        return _regions_text(
+            self.overlap[k], cluster_voxels, self.leaf_voxels, self.names, self.hemispheres, top
+        )
+
+
+def _position_columns(prefix: str, mm: np.ndarray, origin: np.ndarray | None) -> dict:
+    """``<prefix>_x_mm`` ... (template mm) and ``<prefix>_AP_mm`` ... (stereotaxic)."""
+    stereo = to_stereotaxic(mm, origin) if origin is not None else np.full(3, np.nan)
+    out = {f"{prefix}_{axis}_mm": mm[a] for a, axis in enumerate("xyz")}
+    out.update(
+        {
+            f"{prefix}_{column}": value
+            for column, value in zip(STEREOTAXIC_COLUMNS, stereo, strict=True)
+        }
     )
-    leaf_shares = atlas.shares[:, np.flatnonzero(leaf)]
-    overlap = (indicator @ leaf_shares).toarray()
-    leaf_voxels = np.asarray(leaf_shares.sum(axis=0)).ravel()
-    leaf_names = regions["name"].to_numpy()[leaf]
-    leaf_hemispheres = regions["hemisphere"].to_numpy()[leaf]
-    lookup = _region_lookup(atlas)
-    boxes = ndimage.find_objects(labels.astype(np.int64), max_label=n)
+    return out
 
-    rows: list[dict[str, object]] = []
-    for k in np.flatnonzero(significant):  # a loop over reported clusters
-        box = boxes[k]
-        sign = int(clusters.sign[k])
-        peaks = _local_maxima_in_box(
-            z3d, labels, int(k) + 1, box, grid.affine, float(subpeak_distance_mm), sign
-        )[: 1 + max(int(max_subpeaks), 0)]
-        peak_mm = voxel_to_mm(peaks, grid.affine).reshape(-1, 3)
-        for number, (voxel, mm) in enumerate(zip(peaks, peak_mm, strict=True), start=1):
-            at = tuple(int(v) for v in voxel)
-            name, abbreviation, hemisphere = lookup.get(
-                int(atlas.label_volume[at]), (UNLABELLED, "", "")
-            )
-            row: dict[str, object] = {
-                "cluster": int(k) + 1,
-                "peak": number,
-                "sign": sign,
-                "z": z3d[at],
-                "t": t3d[at],
-                "effect": effect3d[at],
-                "peak_x_mm": mm[0],
-                "peak_y_mm": mm[1],
-                "peak_z_mm": mm[2],
-                "peak_region": name,
-                "peak_region_abbreviation": abbreviation,
-                "peak_region_hemisphere": hemisphere,
-            }
-            stereo = to_stereotaxic(mm, origin) if origin is not None else np.full(3, np.nan)
-            for column, value in zip(STEREOTAXIC_COLUMNS, stereo, strict=True):
-                row[f"peak_{column}"] = value
-            if number == 1:
-                centre_stereo = (
-                    to_stereotaxic(centre_mm[k], origin)
-                    if origin is not None
-                    else np.full(3, np.nan)
-                )
-                row.update(
-                    {
-                        "voxels": int(voxels[k]),
-                        "volume_mm3": float(voxels[k]) * grid.voxel_volume,
-                        "centre_x_mm": centre_mm[k, 0],
-                        "centre_y_mm": centre_mm[k, 1],
-                        "centre_z_mm": centre_mm[k, 2],
-                        "p_fwe_cluster_extent": p_extent[k],
-                        "p_fwe_cluster_mass": p_mass[k],
-                        "p_fwe_voxel_min": p_voxel_min[k],
-                        "p_fwe_tfce_min": p_tfce_min[k],
-                        "q_min": q_min[k],
-                        "regions": _regions_text(
-                            overlap[k],
-                            float(voxels[k]),
-                            leaf_voxels,
-                            leaf_names,
-                            leaf_hemispheres,
-                            int(top_regions),
-                        ),
-                    }
-                )
-                for column, value in zip(STEREOTAXIC_COLUMNS, centre_stereo, strict=True):
-                    row[f"centre_{column}"] = value
-            else:
-                row["regions"] = ""
-            rows.append(row)
+
+def _peak_row(k, number, sign, at, mm, origin, z3d, t3d, effect3d) -> dict[str, object]:
+    """The peak columns of one row: its statistics and position."""
+    return {
+        "cluster": k + 1,
+        "peak": number,
+        "sign": sign,
+        "z": z3d[at],
+        "t": t3d[at],
+        "effect": effect3d[at],
+        **_position_columns("peak", mm, origin),
+    }
+
+
+def _typed_cluster_table(rows: list[dict[str, object]]) -> pd.DataFrame:
+    """The rows in :data:`CLUSTER_COLUMNS` order with integer, nullable and float types."""
     table = pd.DataFrame(rows, columns=list(CLUSTER_COLUMNS))
     table["voxels"] = table["voxels"].astype("Int64")
     for column in ("cluster", "peak", "sign"):
@@ -756,22 +802,8 @@ def animal_table(
     var_run = np.nan_to_num(np.asarray(var_run, dtype=float).reshape(-1), nan=0.0)
     if var_run.shape != (n_regions,):
         raise ValueError(f"var_run has {var_run.size} values for {n_regions} regions")
-    present = np.isfinite(values)
-    s2 = np.zeros_like(values) if variances is None else np.nan_to_num(variances, nan=0.0)
-    total = var_run[None, :] + s2
-    weighted = present & (total > 0)
-    with np.errstate(divide="ignore"):
-        w = np.where(weighted, 1.0 / np.where(weighted, total, 1.0), 0.0)
-    y0 = np.where(present, values, 0.0)
-    indicator = np.zeros((m, n_runs))
-    indicator[animal, np.arange(n_runs)] = 1.0
-    sum_w = indicator @ w
-    runs = indicator @ present.astype(float)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        precision_mean = (indicator @ (w * y0)) / sum_w
-        plain_mean = (indicator @ y0) / runs
-        effect = np.where(sum_w > 0, precision_mean, np.where(runs > 0, plain_mean, np.nan))
-        se = np.where(sum_w > 0, np.sqrt(1.0 / sum_w), np.nan)
+    means = animal_means(values, animal, n_animals=m, variance=variances, var_run=var_run)
+    effect, se, runs = means.mean, means.se, means.runs
     regions = atlas.regions
     return pd.DataFrame(
         {

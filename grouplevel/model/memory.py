@@ -23,7 +23,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError
 
 GIB = 2**30  # bytes in one GiB (the unit of [compute] memory_gb)
 
@@ -63,7 +63,7 @@ def _fit_outputs_per_voxel(n_columns: int) -> int:
 
 def _check_counts(n_runs: int, n_voxels: int) -> None:
     if n_runs < 0 or n_voxels < 0:
-        raise UserError(
+        raise ArgumentError(
             f"memory: runs ({n_runs}) and voxels ({n_voxels}) must be non-negative counts."
         )
 
@@ -113,7 +113,7 @@ def study_memory_need(
         Bytes.
     """
     if n_columns < 1:
-        raise UserError(f"memory: the design needs at least one column, got {n_columns}.")
+        raise ArgumentError(f"memory: the design needs at least one column, got {n_columns}.")
     arrays = runs_array_bytes(n_runs, n_voxels, with_variance)
     presence = int(n_runs) * int(n_voxels) * PRESENCE_BYTES
     outputs = int(n_voxels) * _fit_outputs_per_voxel(n_columns) * WORKING_BYTES
@@ -147,14 +147,11 @@ def chunk_voxels(
         ``MIN_CHUNK_VOXELS``.
     """
     if not memory_gb > 0:
-        raise UserError(
-            f"[compute] memory_gb must be a positive number of GiB, got {memory_gb}; "
-            "set it to the memory this analysis may use."
-        )
+        raise ArgumentError(f"memory_gb must be a positive number of GiB, got {memory_gb}.")
     if not 0 < share <= 1:
-        raise UserError(f"memory: share must be in (0, 1], got {share}.")
+        raise ArgumentError(f"memory: share must be in (0, 1], got {share}.")
     if arrays_per_voxel < 1:
-        raise UserError(f"memory: arrays_per_voxel must be at least 1, got {arrays_per_voxel}.")
+        raise ArgumentError(f"memory: arrays_per_voxel must be at least 1, got {arrays_per_voxel}.")
     per_voxel = WORKING_BYTES * max(int(n_runs), 1) * int(arrays_per_voxel)
     return max(MIN_CHUNK_VOXELS, int(share * memory_gb * GIB) // per_voxel)
 

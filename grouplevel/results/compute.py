@@ -28,7 +28,6 @@ scheduling. Proceedings of the 14th Python in Science Conference, pp. 130-136.
 from __future__ import annotations
 
 import math
-import os
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, fields
@@ -36,8 +35,9 @@ from typing import Any
 
 import numpy as np
 
-from grouplevel.config import BACKENDS, ComputeSettings
 from grouplevel.errors import UserError
+from grouplevel.intake.settings import BACKENDS, ComputeSettings
+from grouplevel.machine import available_cores
 from grouplevel.model.reml import MixedFit, _check_inputs, fit_reml
 
 # Seconds to wait for a remote scheduler before giving up (distributed's own default
@@ -54,13 +54,6 @@ MIN_CHUNK_VOXELS = 2048
 # batch of the local engine, and small enough that progress is reported often).
 MIN_PERMUTATION_BATCH = 16
 MAX_PERMUTATION_BATCH = 256
-
-
-def _cores() -> int:
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:  # platforms without sched_getaffinity
-        return max(1, os.cpu_count() or 1)
 
 
 @dataclass(frozen=True, eq=False)
@@ -183,7 +176,7 @@ def open_backend(
     cluster = None
     if settings.scheduler is None:
         cluster = LocalCluster(
-            n_workers=settings.workers or _cores(),
+            n_workers=settings.workers or available_cores(),
             threads_per_worker=1,
             processes=True,
             host="127.0.0.1",

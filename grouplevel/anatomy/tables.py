@@ -1,7 +1,8 @@
 """Region-level results of one group map: its clusters, regions and animals.
 
-Glue between the fitted maps (:mod:`grouplevel.pipeline`), the user's atlas
-(:mod:`grouplevel.atlas`) and the table builders (:mod:`grouplevel.regions`). Which
+Glue between the fitted maps (:class:`~grouplevel.results.maps.GroupMap`), the user's
+atlas (:mod:`grouplevel.anatomy.atlas`) and the table builders
+(:mod:`grouplevel.anatomy.regions`). Which
 clusters count as significant depends on ``[clusters] method``:
 
 * ``cluster_extent`` / ``cluster_mass``: the clusters at the cluster-forming threshold
@@ -19,16 +20,18 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
-from grouplevel.atlas import Atlas
-from grouplevel.config import Settings
-from grouplevel.inference import Clusters, find_clusters
-from grouplevel.regions import (
+from grouplevel.anatomy.atlas import Atlas
+from grouplevel.anatomy.regions import (
     animal_table,
     cluster_table,
     region_table,
     region_values,
     region_variances,
 )
+from grouplevel.inference import Clusters, find_clusters
+from grouplevel.intake.design import Design
+from grouplevel.intake.settings import Settings
+from grouplevel.results.maps import GroupMap
 
 
 @dataclass(frozen=True)
@@ -91,7 +94,7 @@ def _grid(values: np.ndarray, mask: np.ndarray, fill: float = 0.0) -> np.ndarray
     return out
 
 
-def surviving_voxels(gm, alpha: float) -> dict[str, np.ndarray]:
+def surviving_voxels(gm: GroupMap, alpha: float) -> dict[str, np.ndarray]:
     """In-mask boolean maps of the voxels surviving each method that was run."""
     inf = gm.inference
     out = {"fdr": np.nan_to_num(inf.q, nan=1.0) <= alpha}
@@ -140,7 +143,9 @@ def _significant_clusters(
     return groups, significant, pad_extent[at_peak], pad_mass[at_peak]
 
 
-def region_tables(gm, data: RegionData, design, c: np.ndarray, settings: Settings) -> RegionTables:
+def region_tables(
+    gm: GroupMap, data: RegionData, design: Design, c: np.ndarray, settings: Settings
+) -> RegionTables:
     """clusters.tsv, regions.tsv and animals.tsv of one group map, as DataFrames."""
     inf_settings = settings.inference
     method = settings.clusters.resolved_method(inf_settings)

@@ -46,16 +46,35 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import NamedTuple
+from typing import TYPE_CHECKING, NamedTuple
 
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 from scipy import stats
 
-from grouplevel.atlas import MIDLINE_TOLERANCE_MM, Atlas
-from grouplevel.errors import UserError
+from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM
+from grouplevel.errors import ArgumentError
+from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model.animals import animal_means
+from grouplevel.questions.verdicts import (  # noqa: F401  (the rule's names, re-exported here)
+    BILATERAL_EQUIVALENT,
+    BILATERAL_UNRESOLVED,
+    DOMINANT,
+    NO_ACTIVATION,
+    ONE_SIDE_ONLY,
+    SIDES,
+    UNCLEAR,
+    UNILATERAL,
+    Verdict,
+    _float,
+    _fmt_p,
+    symmetry_verdict,
+)
+
+if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
+    from grouplevel.anatomy.atlas import Atlas
 
 # --------------------------------------------------------------------------------------
 # Defaults (the lead's config section [questions] may override every one of them)
@@ -63,9 +82,6 @@ from grouplevel.model import between_animal_df, fit_reml, test_contrast
 
 #: Equivalence margin on |LI|: ±0.2, a common convention for |LI| (value from memory).
 DEFAULT_EQUIVALENCE_MARGIN = 0.2
-
-#: Significance level of the hemispheric tests and of the "active" rule (common practice).
-DEFAULT_ALPHA = 0.05
 
 #: z above which a voxel counts towards the extent LI: one-sided p < 0.001 uncorrected,
 #: the usual voxel threshold of laterality work (common practice).
@@ -86,26 +102,8 @@ DEFAULT_LI_THRESHOLDS = 50
 #: the pair's voxels; our own choice).
 _BOOT_CHUNK = 256
 
-#: Stimulus sides understood by the verdict.
-SIDES = ("left", "right")
-
-#: Verdict labels, as written in the tables.
-NO_ACTIVATION = "no activation"
-UNILATERAL = "unilateral ({side})"
-ONE_SIDE_ONLY = "{side} only, difference not significant"
-DOMINANT = "{side}-dominant"
-BILATERAL_EQUIVALENT = "bilateral (equivalence shown)"
-BILATERAL_UNRESOLVED = "bilateral, asymmetry not excluded"
-UNCLEAR = "unclear ({larger} larger, only {active} active)"
-
 #: Weightings of the threshold-free LI.
 TF_WEIGHTINGS = ("mean", "threshold")
-
-
-def _float(value) -> float | None:
-    """A plain float for JSON (None for NaN / infinity)."""
-    value = float(value)
-    return value if np.isfinite(value) else None
 
 
 # --------------------------------------------------------------------------------------
@@ -378,23 +376,9 @@ class BootstrapLI:
 
 
 def _animal_means(y, present, animal, variance, var_run):
-    """(m, V) precision-weighted animal means and (m, V) bool 'animal has data'."""
-    present = present & np.isfinite(y)
-    if variance is not None:
-        present &= np.isfinite(variance)
-        extra = 0.0 if var_run is None else np.asarray(var_run, dtype=float)[None, :]
-        with np.errstate(divide="ignore"):
-            w = np.where(present, 1.0 / np.maximum(variance + extra, 1e-300), 0.0)
-    else:
-        w = present.astype(float)
-    m = int(animal.max()) + 1
-    indicator = np.zeros((m, len(animal)))
-    indicator[animal, np.arange(len(animal))] = 1.0
-    total = indicator @ w
-    has = total > 0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        means = np.where(has, (indicator @ (w * np.where(present, y, 0.0))) / total, 0.0)
-    return means, has
+    """(m, V) precision-weighted animal means (0 without data) and (m, V) 'has data'."""
+    means = animal_means(y, animal, variance=variance, var_run=var_run, present=present)
+    return np.where(means.has_data, means.mean, 0.0), means.has_data
 
 
 def _shortcut_maps(
@@ -497,7 +481,7 @@ def bootstrap_li(
     if y.ndim != 2 or present.shape != y.shape or animal.shape != (y.shape[0],):
         raise ValueError("y, present must be (runs, V) and animal (runs,)")
     if int(n_boot) < 1:
-        raise UserError(f"[questions] bootstrap = {n_boot}: give at least 1 replicate.")
+        raise ArgumentError(f"n_boot = {n_boot}: a bootstrap needs at least 1 replicate.")
     if not 0.0 < confidence < 1.0:
         raise ValueError("confidence must lie between 0 and 1")
     left_cols = np.asarray(left_cols, dtype=np.int64).ravel()
@@ -622,12 +606,12 @@ def threshold_free_li(
     Matsuo K, Chen SHA, Tseng WYI (2012). J Neurosci Methods 205:119-129.
     """
     if weighting not in TF_WEIGHTINGS:
-        raise UserError(
-            f"[questions] li_weighting = {weighting!r} is not known; use one of "
+        raise ArgumentError(
+            f"weighting = {weighting!r} is not a known laterality-index weighting; use one of "
             f"{', '.join(repr(w) for w in TF_WEIGHTINGS)}."
         )
     if int(n_thresholds) < 2:
-        raise UserError(f"[questions] li_thresholds = {n_thresholds}: give at least 2 thresholds.")
+        raise ArgumentError(f"n_thresholds = {n_thresholds}: give at least 2 thresholds.")
     z = np.asarray(z, dtype=float).ravel()
     left_cols = np.asarray(left_cols, dtype=np.int64).ravel()
     right_cols = np.asarray(right_cols, dtype=np.int64).ravel()
@@ -737,8 +721,8 @@ def tost(difference: float, se: float, df: float, margin: float) -> tuple[float,
 def _check_margin(margin: float) -> float:
     margin = float(margin)
     if not 0.0 < margin < 1.0:
-        raise UserError(
-            f"[questions] equivalence_margin = {margin}: it bounds |LI|, which lies between "
+        raise ArgumentError(
+            f"equivalence_margin = {margin}: it bounds |LI|, which lies between "
             "0 and 1; give a value strictly between 0 and 1 (e.g. 0.2)."
         )
     return margin
@@ -833,170 +817,6 @@ def hemisphere_test(
 
 
 # --------------------------------------------------------------------------------------
-# Verdict
-# --------------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class Verdict:
-    """A symmetry verdict in plain words.
-
-    Attributes
-    ----------
-    label
-        One of the labels of :func:`symmetry_verdict`.
-    reasons
-        Short sentences with the numbers that decided the label.
-    numbers
-        The deciding numbers (plain floats / bools / strings).
-    side
-        "contralateral" / "ipsilateral" for the dominant or only active side when the
-        stimulated side is known, else "".
-    """
-
-    label: str
-    reasons: tuple[str, ...]
-    numbers: dict
-    side: str = ""
-
-    def summary(self) -> dict:
-        return {
-            "label": self.label,
-            "side": self.side,
-            "reasons": list(self.reasons),
-            "numbers": dict(self.numbers),
-        }
-
-
-def _fmt_p(p: float) -> str:
-    if not np.isfinite(p):
-        return "p not available"
-    return f"p = {p:.2g}" if p >= 1e-4 else "p < 0.0001"
-
-
-def symmetry_verdict(
-    test: HemisphereTest,
-    *,
-    alpha: float = DEFAULT_ALPHA,
-    stimulus_side: str | None = None,
-) -> Verdict:
-    """Turn the hemispheric test of a region pair into a verdict with its reasons.
-
-    The rule, applied in this order:
-
-    1. A side is **active** when its region-mean effect is positive and its two-sided
-       p < α (so one-sided evidence at α/2 for a positive effect).
-    2. Neither side active → "no activation".
-    3. The difference is **significant** when its two-sided p < α; its sign names the
-       larger side.
-    4. One side active: significant difference towards it → "unilateral (<side>)";
-       difference not significant → "<side> only, difference not significant";
-       significant difference towards the inactive side → "unclear (...)".
-    5. Both active: significant difference → "<side>-dominant"; otherwise TOST p < α →
-       "bilateral (equivalence shown)"; otherwise "bilateral, asymmetry not excluded".
-       "Bilateral" never follows from a non-significant difference alone.
-
-    With ``stimulus_side`` the dominant (or only active) side is called
-    "contralateral" when it is opposite to the stimulated side, else "ipsilateral".
-
-    Parameters
-    ----------
-    test
-        From :func:`hemisphere_test`.
-    alpha
-        Significance level of every test in the rule.
-    stimulus_side
-        "left", "right" or None.
-
-    Returns
-    -------
-    Verdict
-
-    References
-    ----------
-    Schuirmann DJ (1987). J Pharmacokinet Biopharm 15:657-680 (equivalence by TOST).
-    """
-    if not 0.0 < alpha < 1.0:
-        raise UserError(f"[questions] alpha = {alpha}: give a level between 0 and 1.")
-    if stimulus_side is not None and stimulus_side not in SIDES:
-        raise UserError(
-            f'[questions] stimulus_side = {stimulus_side!r}: use "left", "right" or leave '
-            "it out when the stimulus was not lateralised."
-        )
-    reasons: list[str] = []
-    active = {}
-    for side, effect, p in (
-        ("left", test.left_effect, test.left_p),
-        ("right", test.right_effect, test.right_p),
-    ):
-        is_active = bool(np.isfinite(p) and effect > 0 and p < alpha)
-        active[side] = is_active
-        word = "active" if is_active else "not active"
-        reasons.append(f"{side} side {word}: region-mean effect {effect:.3g}, {_fmt_p(p)}")
-    significant = bool(np.isfinite(test.p) and test.p < alpha)
-    larger = "left" if test.difference > 0 else "right"
-    equivalent = bool(np.isfinite(test.tost_p) and test.tost_p < alpha)
-    numbers = {
-        "alpha": float(alpha),
-        "left_active": active["left"],
-        "right_active": active["right"],
-        "left_effect": _float(test.left_effect),
-        "left_p": _float(test.left_p),
-        "right_effect": _float(test.right_effect),
-        "right_p": _float(test.right_p),
-        "difference": _float(test.difference),
-        "difference_p": _float(test.p),
-        "margin": _float(test.margin),
-        "margin_li": float(test.margin_li),
-        "tost_p": _float(test.tost_p),
-        "stimulus_side": stimulus_side or "",
-    }
-    diff_text = (
-        f"left minus right {test.difference:.3g} (95% CI {test.ci_low:.3g} to "
-        f"{test.ci_high:.3g}), {_fmt_p(test.p)}"
-    )
-    tost_text = (
-        f"equivalence within ±{test.margin:.3g} (|LI| ≤ {test.margin_li:g}): TOST "
-        f"{_fmt_p(test.tost_p)}"
-    )
-    dominant = ""
-    if not active["left"] and not active["right"]:
-        label = NO_ACTIVATION
-    elif active["left"] != active["right"]:
-        on = "left" if active["left"] else "right"
-        reasons.append(
-            f"Difference {'significant' if significant else 'not significant'}: {diff_text}"
-        )
-        if significant and larger == on:
-            label = UNILATERAL.format(side=on)
-            dominant = on
-        elif significant:
-            label = UNCLEAR.format(larger=larger, active=on)
-        else:
-            label = ONE_SIDE_ONLY.format(side=on)
-            dominant = on
-    else:
-        if significant:
-            label = DOMINANT.format(side=larger)
-            dominant = larger
-            reasons.append(f"Difference significant: {diff_text}")
-            if equivalent:
-                reasons.append(f"The difference is small: {tost_text}")
-        else:
-            reasons.append(f"Difference not significant: {diff_text}")
-            reasons.append(
-                f"{'Equivalence shown' if equivalent else 'Equivalence not shown'}: {tost_text}"
-            )
-            label = BILATERAL_EQUIVALENT if equivalent else BILATERAL_UNRESOLVED
-    side = ""
-    if dominant and stimulus_side is not None:
-        side = "ipsilateral" if dominant == stimulus_side else "contralateral"
-        reasons.append(f"The {dominant} side is {side} to the stimulated {stimulus_side} side")
-    numbers["dominant_side"] = dominant
-    return Verdict(label=label, reasons=tuple(reasons), numbers=numbers, side=side)
-
-
-# --------------------------------------------------------------------------------------
 # Region pairs and tables
 # --------------------------------------------------------------------------------------
 
@@ -1032,7 +852,7 @@ def region_pair(atlas: Atlas, name: str) -> tuple[int, int]:
 
     Raises
     ------
-    UserError
+    ArgumentError
         When the name is unknown, or does not give exactly one left and one right row.
     """
     rows = atlas.region_rows(name)
@@ -1040,8 +860,8 @@ def region_pair(atlas: Atlas, name: str) -> tuple[int, int]:
     left = [r for r in rows if hemi[r] == "left"]
     right = [r for r in rows if hemi[r] == "right"]
     if len(left) != 1 or len(right) != 1:
-        raise UserError(
-            f"[questions] symmetry region {name!r}: the atlas gives {len(left)} left and "
+        raise ArgumentError(
+            f"region {name!r}: the atlas gives {len(left)} left and "
             f"{len(right)} right row(s) for it; symmetry needs a structure with exactly one "
             "row per hemisphere. Name a lateralised structure (or its abbreviation)."
         )
@@ -1121,9 +941,8 @@ def analyse_symmetry(
     for name in names:
         left_row, right_row = region_pair(atlas, name)
         if (left_row, right_row) in seen:
-            raise UserError(
-                f"[questions] symmetry region {name!r} names a region pair already listed; "
-                "give each region once."
+            raise ArgumentError(
+                f"region {name!r} names a region pair already listed; give each region once."
             )
         seen.add((left_row, right_row))
         lc, lw = _column(shares, left_row)

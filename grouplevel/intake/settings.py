@@ -15,6 +15,11 @@ from typing import Any
 
 from grouplevel.errors import UserError
 
+# The level and the sides of a test live with the statistics that use them (the core
+# cannot read this module); they are defaults of the settings all the same.
+from grouplevel.inference.significance import DEFAULT_ALPHA, DEFAULT_SIDED
+from grouplevel.inference.significance import SIDES as SIDED_CHOICES
+
 # --- defaults (one place) -----------------------------------------------------------
 DEFAULT_MIN_COVERAGE = 1.0  # every run must have data at a voxel unless the user allows less
 DEFAULT_FORMULA = "1"  # one-sample design: the group mean
@@ -26,10 +31,8 @@ DEFAULT_CONTRAST_NAME = "mean"
 # fewer are run when every distinct permutation can be enumerated.
 DEFAULT_PERMUTATIONS = 5000
 DEFAULT_SEED = 1
-DEFAULT_SIDED = "two"
 DEFAULT_CONNECTIVITY = 26  # faces, edges and corners (common practice for 3-D clusters)
 DEFAULT_CLUSTER_FORMING_P = 0.001  # Eklund et al. 2016: p = 0.001 keeps cluster FWE valid
-DEFAULT_ALPHA = 0.05  # common practice
 DEFAULT_FDR = "bh"  # Benjamini & Hochberg 1995
 DEFAULT_TFCE = True
 DEFAULT_TFCE_E = 0.5  # Smith & Nichols 2009, NeuroImage 44:83
@@ -60,7 +63,6 @@ DEFAULT_BACKEND = "local"
 DEFAULT_MEMORY_SHARE = 0.25
 
 RUN_VARIANCE_CHOICES = ("estimate", "known")
-SIDED_CHOICES = ("two", "positive", "negative")
 CONNECTIVITY_CHOICES = (6, 18, 26)
 FDR_CHOICES = ("bh", "by")
 DF_CHOICES = ("between", "satterthwaite")

@@ -21,19 +21,19 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from grouplevel.atlas import Atlas, read_atlas
-from grouplevel.bids import derivatives_table
-from grouplevel.comparisons import PAIRED_LINES, TERMS, combine, comparison_rows
-from grouplevel.config import Settings, load_settings, with_overrides
-from grouplevel.design import (
+from grouplevel.anatomy.atlas import Atlas, read_atlas
+from grouplevel.errors import UserError
+from grouplevel.intake.bids import derivatives_table
+from grouplevel.intake.comparisons import PAIRED_LINES, TERMS, combine, comparison_rows
+from grouplevel.intake.design import (
     Design,
     build_design,
     contrast_vector,
     formula_variables,
     missing_variables,
 )
-from grouplevel.errors import UserError
-from grouplevel.images import Grid, grid_mismatch, read_header_grid, read_volume
+from grouplevel.intake.images import Grid, grid_mismatch, read_header_grid, read_volume
+from grouplevel.intake.settings import Settings, load_settings, with_overrides
 
 TRUE_WORDS = {"true", "yes", "1", "y", "t", "x"}
 FALSE_WORDS = {"false", "no", "0", "n", "f", ""}
@@ -100,7 +100,7 @@ class Study:
 def read_table(path: Path) -> pd.DataFrame:
     """Read the runs table (TSV, or CSV by extension) as text, with a ``line`` column.
 
-    A folder is read as a BIDS-style derivatives folder (:mod:`grouplevel.bids`); its
+    A folder is read as a BIDS-style derivatives folder (:mod:`grouplevel.intake.bids`); its
     ``line`` numbers are those of the table ``grouplevel table FOLDER`` writes, and
     ``table.attrs["skipped"]`` lists the files it left out.
     """
@@ -650,7 +650,7 @@ def load_runs(study: Study, first_level: FirstLevel, *, memory_gb: float | None 
         (the message gives the sizes and how to fix it: a larger ``[compute]
         memory_gb`` or a smaller mask).
     """
-    from grouplevel.memory import GIB, memory_plan
+    from grouplevel.model.memory import GIB, memory_plan
 
     mask = first_level.mask
     masked = study.user_mask is not None

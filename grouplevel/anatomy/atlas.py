@@ -66,17 +66,14 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
-from grouplevel.config import DEFAULT_ATLAS_MIN_COVERAGE
-from grouplevel.coordinates import describe_orientation
+from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM, describe_orientation
 from grouplevel.errors import UserError
-from grouplevel.images import AFFINE_TOLERANCE_MM, Grid
+from grouplevel.intake.images import AFFINE_TOLERANCE_MM, Grid
+from grouplevel.intake.settings import DEFAULT_ATLAS_MIN_COVERAGE
 
 # Smallest share of the analysis mask that the atlas labels must cover (defined with the
 # other defaults in grouplevel.config).
 
-#: A point this close to the midline plane counts as on it (the same tolerance as for
-#: comparing affines: far below a rodent voxel, above float32 round-off of headers).
-MIDLINE_TOLERANCE_MM = AFFINE_TOLERANCE_MM
 
 #: Below this Dice of the mask with its mirror image a warning says that the midline may
 #: be wrong or the mask one-sided. Our own choice: symmetric brain masks score above 0.9.
@@ -361,6 +358,7 @@ def _as_integer(text: str) -> int | None:
 
 
 def _validate_table(table: pd.DataFrame, source: str) -> _Table:
+    """The label table checked row by row, then for duplicated indices, then parents."""
     table = table.rename(columns=lambda c: str(c).strip().lower())
     missing = [c for c in ("index", "name") if c not in table.columns]
     if missing:
@@ -369,14 +367,32 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
             f"column (found {', '.join(map(repr, table.columns)) or 'none'}); it needs at "
             "least 'index' and 'name', as in a BIDS dseg.tsv"
         )
-    problems: list[str] = []
-    index: list[int] = []
-    name: list[str] = []
-    abbreviation: list[str] = []
-    hemisphere: list[str] = []
-    parent_text: list[str] = []
-    color: list[str] = []
-    line: list[int] = []
+    rows = _table_rows(table, source)
+    idx = np.asarray(rows["index"], dtype=np.int64)
+    _check_unique_indices(idx, rows["line"], source)
+    parent = _resolve_parents(idx, rows, source)
+    _check_cycles(parent, idx, rows["name"], source)
+    return _Table(
+        idx,
+        rows["name"],
+        rows["abbreviation"],
+        rows["hemisphere"],
+        parent,
+        rows["color"],
+        rows["line"],
+    )
+
+
+def _table_rows(table: pd.DataFrame, source: str) -> dict[str, list]:
+    """Each row's cells as text (index 0, the background, is dropped); every row problem
+    at once.
+
+    Raises
+    ------
+    UserError
+        Listing every row whose index is not a whole number ≥ 0, whose name is empty or
+        whose hemisphere is not a known word.
+    """
 
     def column(key: str) -> list[str]:
         if key not in table.columns:
@@ -384,8 +400,11 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
         return [_cell(v) for v in table[key].tolist()]
 
     raw = {key: column(key) for key in ("index", "name", "abbreviation", "hemisphere")}
-    raw_parent = column("parent")
-    raw_color = column("color")
+    raw["parent"] = column("parent")
+    raw["color"] = column("color")
+    keys = ("index", "name", "abbreviation", "hemisphere", "parent", "color", "line")
+    rows: dict[str, list] = {key: [] for key in keys}
+    problems: list[str] = []
     for row in range(len(table)):
         where = f"{source}, line {row + 2}"
         value = _as_integer(raw["index"][row])
@@ -394,8 +413,7 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
             continue
         if value == 0:  # 0 is the background of the image; a row for it is ignored
             continue
-        label_name = raw["name"][row]
-        if not label_name:
+        if not raw["name"][row]:
             problems.append(f"{where}: index {value} has an empty name")
         side = raw["hemisphere"][row].casefold()
         if side not in _HEMISPHERE_WORDS:
@@ -404,37 +422,57 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
                 "left, right, both or empty"
             )
             side = ""
-        index.append(value)
-        name.append(label_name)
-        abbreviation.append(raw["abbreviation"][row])
-        hemisphere.append(_HEMISPHERE_WORDS[side])
-        parent_text.append(raw_parent[row])
-        color.append(raw_color[row])
-        line.append(row + 2)
+        for key, cell in (
+            ("index", value),
+            ("name", raw["name"][row]),
+            ("abbreviation", raw["abbreviation"][row]),
+            ("hemisphere", _HEMISPHERE_WORDS[side]),
+            ("parent", raw["parent"][row]),
+            ("color", raw["color"][row]),
+            ("line", row + 2),
+        ):
+            rows[key].append(cell)
     if problems:
         raise UserError(f"{source}: the atlas label table has {len(problems)} problem(s)", problems)
+    return rows
 
-    idx = np.asarray(index, dtype=np.int64)
+
+def _check_unique_indices(idx: np.ndarray, line: list[int], source: str) -> None:
+    """Every region needs its own index (the lines of each duplicate are listed)."""
     values, counts = np.unique(idx, return_counts=True)
     duplicated = values[counts > 1]
-    if duplicated.size:
-        for value in duplicated[:_MAX_LISTED]:
-            lines = [str(line[r]) for r in np.flatnonzero(idx == value)]
-            problems.append(f"index {value} appears on lines {', '.join(lines)}")
-        raise UserError(
-            f"{source}: duplicated index in the atlas label table "
-            f"({duplicated.size} value(s)); every region needs its own index",
-            problems,
-        )
+    if not duplicated.size:
+        return
+    problems = []
+    for value in duplicated[:_MAX_LISTED]:
+        lines = [str(line[r]) for r in np.flatnonzero(idx == value)]
+        problems.append(f"index {value} appears on lines {', '.join(lines)}")
+    raise UserError(
+        f"{source}: duplicated index in the atlas label table "
+        f"({duplicated.size} value(s)); every region needs its own index",
+        problems,
+    )
 
+
+def _resolve_parents(idx: np.ndarray, rows: dict[str, list], source: str) -> np.ndarray:
+    """Row position of each row's parent (-1 at the top); a parent is given by index or
+    by name (a name on both sides is resolved to the child's side).
+
+    Raises
+    ------
+    UserError
+        Listing every parent that is not in the table or is ambiguous.
+    """
+    name, abbreviation, hemisphere = rows["name"], rows["abbreviation"], rows["hemisphere"]
     position = {int(v): r for r, v in enumerate(idx)}
     by_name: dict[str, list[int]] = {}
     for r in range(len(idx)):
         for key in {name[r].casefold(), abbreviation[r].casefold()} - {""}:
             by_name.setdefault(key, []).append(r)
     parent = np.full(len(idx), -1, dtype=np.int64)
-    for r, text in enumerate(parent_text):
-        where = f"{source}, line {line[r]}"
+    problems: list[str] = []
+    for r, text in enumerate(rows["parent"]):
+        where = f"{source}, line {rows['line'][r]}"
         if not text or text in _TOP_LEVEL_PARENTS:
             continue
         number = _as_integer(text)
@@ -470,8 +508,7 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
         raise UserError(
             f"{source}: the atlas label table has {len(problems)} parent problem(s)", problems
         )
-    _check_cycles(parent, idx, name, source)
-    return _Table(idx, name, abbreviation, hemisphere, parent, color, line)
+    return parent
 
 
 def _check_cycles(parent: np.ndarray, index: np.ndarray, name: list[str], source: str) -> None:
@@ -852,32 +889,114 @@ def build_atlas(
         duplicated indices; a parent that does not exist; a parent cycle (named); a
         missing ``index`` or ``name`` column; an atlas that covers less than
         ``min_coverage`` of the mask.
+
+    Notes
+    -----
+    The steps, each a function of its own: check the inputs; validate the table; scan
+    the image for unknown labels and left/right positions (:func:`_scan_labels`); place
+    the midline (:func:`_place_midline`); make the leaves (:func:`_leaf_rows`); count
+    every leaf's voxels per side and per statistical voxel (:func:`_count_leaves`);
+    split bilateral leaves (:func:`_split_bilateral_leaves`); the shares matrix
+    (:func:`_region_shares`), the regions table (:func:`_regions_table`) and the label
+    volume (:func:`_label_volume`); refuse a low coverage (:func:`_check_coverage`);
+    collect the warnings (:func:`_atlas_warnings`).
     """
+    label_data, label_affine, mask = _check_build_inputs(
+        label_data, label_affine, mask, grid, image_name
+    )
+    shape = tuple(int(s) for s in label_data.shape)
+    rows = _validate_table(table, table_name)
+    axis = _slab_axis(label_data)
+    lookup = _Lookup(rows.index, _check_integer_labels(label_data, image_name, axis))
+    hemisphere = _effective_hemisphere(rows)
+    own_count, histogram = _scan_labels(
+        label_data,
+        label_affine,
+        axis,
+        lookup,
+        hemisphere,
+        midline_mm is None,
+        image_name,
+        table_name,
+    )
+    midline, midline_source, note = _place_midline(midline_mm, histogram, grid, table_name)
+    tree = _leaf_rows(rows, hemisphere, own_count)
+    resampling, finer = _resampling(shape, label_affine, grid)
+    counts = _count_leaves(label_data, label_affine, axis, lookup, tree, grid, mask, midline, finer)
+    split_rows = _split_bilateral_leaves(tree, counts)
+    shares, membership, order, ancestors = _region_shares(tree, split_rows, counts)
+    n_voxels = counts.side_count.reshape(-1) @ membership  # atlas voxels per region row
+    regions = _regions_table(tree, order, ancestors, n_voxels, shares, label_affine, grid)
+    label_volume, coverage = _label_volume(regions, shares, grid, mask)
+    _check_coverage(coverage, min_coverage, shape, label_affine, grid, image_name)
+    warnings = [note] if note else []
+    warnings += _atlas_warnings(tree, hemisphere, counts, n_voxels, midline, image_name, table_name)
+    dice = mirror_dice(mask, grid.affine, midline)
+    if np.isfinite(dice) and dice < MIRROR_DICE_WARNING:
+        warnings.append(
+            f"the analysis mask matches its mirror image about x = {midline:.3f} mm "
+            f"({midline_source}) with a Dice of only {dice:.2f}; the midline may be wrong "
+            "or the mask covers one side more than the other"
+        )
+    return Atlas(
+        regions=regions,
+        shares=shares,
+        label_volume=label_volume,
+        resampling=resampling,
+        midline_mm=float(midline),
+        midline_source=midline_source,
+        mirror_dice=float(dice),
+        orientation=describe_orientation(grid.affine),
+        coverage=coverage,
+        warnings=tuple(warnings),
+    )
+
+
+# --------------------------------------------------------------------------------------
+# The steps of build_atlas
+# --------------------------------------------------------------------------------------
+
+
+def _check_build_inputs(
+    label_data: np.ndarray, label_affine: np.ndarray, mask: np.ndarray, grid: Grid, image_name: str
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """A 3-D label image (a 4-D image with one volume is accepted), the mask on the grid."""
     label_data = np.asarray(label_data)
     if label_data.ndim == 4 and label_data.shape[3] == 1:
         label_data = label_data[..., 0]
     if label_data.ndim != 3:
         raise UserError(f"{image_name}: an atlas image must be 3-D, found {label_data.shape}")
-    label_affine = np.asarray(label_affine, dtype=float)
     mask = np.asarray(mask, dtype=bool)
     if mask.shape != tuple(grid.shape):
         raise ValueError(f"mask shape {mask.shape} differs from the grid {grid.shape}")
-    shape = tuple(int(s) for s in label_data.shape)
-    warnings: list[str] = []
+    return label_data, np.asarray(label_affine, dtype=float), mask
 
-    rows = _validate_table(table, table_name)
-    n_table = len(rows.index)
-    axis = _slab_axis(label_data)
-    max_label = _check_integer_labels(label_data, image_name, axis)
-    lookup = _Lookup(rows.index, max_label)
-    hemisphere = _effective_hemisphere(rows)
+
+def _scan_labels(
+    label_data: np.ndarray,
+    label_affine: np.ndarray,
+    axis: int,
+    lookup: _Lookup,
+    hemisphere: list[str],
+    fit_midline: bool,
+    image_name: str,
+    table_name: str,
+) -> tuple[np.ndarray, _XHistogram | None]:
+    """First pass over the image: voxels per table row and, when the midline is to be
+    fitted, a histogram of left- and right-labelled positions over world x.
+
+    Raises
+    ------
+    UserError
+        When label values of the image are missing from the table (listed).
+    """
+    shape = tuple(int(s) for s in label_data.shape)
+    n_table = len(hemisphere)
     # Indexed by table row, or -1 / -2 (background / unknown) from the end.
     left_rows = np.array([h == "left" for h in hemisphere] + [False, False])
     right_rows = np.array([h == "right" for h in hemisphere] + [False, False])
-    fit_midline = midline_mm is None and left_rows.any() and right_rows.any()
-    histogram = _XHistogram(label_affine, shape) if fit_midline else None
-
-    # Pass 1: unknown labels, voxels per table row, left/right positions for the midline.
+    fit = fit_midline and left_rows.any() and right_rows.any()
+    histogram = _XHistogram(label_affine, shape) if fit else None
     own_count = np.zeros(n_table, dtype=np.int64)
     unknown: set[int] = set()
     for start, stop in _slabs(shape, axis):
@@ -898,167 +1017,277 @@ def build_atlas(
             f"{image_name}: {len(listed)} label value(s) in the image are missing from "
             f"{table_name}: {shown}{more}; add a row for each (index, name) or relabel them 0"
         )
+    return own_count, histogram
 
-    # The midline.
+
+def _place_midline(
+    midline_mm: float | None, histogram: _XHistogram | None, grid: Grid, table_name: str
+) -> tuple[float, str, str | None]:
+    """The midline's world x, where it came from, and a warning when it is a guess."""
     if midline_mm is not None:
-        midline, midline_source = float(midline_mm), MIDLINE_GIVEN
-    else:
-        fitted = histogram.plane() if histogram is not None else None
-        if fitted is not None:
-            midline, midline_source = fitted, MIDLINE_FITTED
-        else:
-            centre = grid.affine[:3, :3] @ ((np.asarray(grid.shape) - 1) / 2.0) + grid.affine[:3, 3]
-            midline, midline_source = float(centre[0]), MIDLINE_GRID_CENTRE
-            warnings.append(
-                f"{table_name}: no regions are labelled left and right on both sides, so the "
-                f"midline is taken as the centre of the study grid (x = {midline:.3f} mm); "
-                "give the midline's x in mm if that is wrong"
-            )
+        return float(midline_mm), MIDLINE_GIVEN, None
+    fitted = histogram.plane() if histogram is not None else None
+    if fitted is not None:
+        return fitted, MIDLINE_FITTED, None
+    centre = grid.affine[:3, :3] @ ((np.asarray(grid.shape) - 1) / 2.0) + grid.affine[:3, 3]
+    midline = float(centre[0])
+    note = (
+        f"{table_name}: no regions are labelled left and right on both sides, so the "
+        f"midline is taken as the centre of the study grid (x = {midline:.3f} mm); "
+        "give the midline's x in mm if that is wrong"
+    )
+    return midline, MIDLINE_GRID_CENTRE, note
 
-    # Leaves: table rows without children, plus an "(other)" leaf for each parent that is
-    # itself painted in the image.
+
+@dataclass
+class _RegionRows:
+    """The region rows being built: the table's rows, then the rows made from them."""
+
+    index: list[int]
+    name: list[str]
+    abbreviation: list[str]
+    parent: list[int]  # row positions, -1 at the top
+    color: list[str]
+    hemisphere: list[str]
+    next_index: int
+    n_table: int
+    leaves: np.ndarray = None  # type: ignore[assignment]  # rows that are leaves
+    leaf_of_row: np.ndarray = None  # type: ignore[assignment]  # table row → leaf number
+
+    def add(self, name: str, abbreviation: str, parent: int, color: str, hemi: str) -> int:
+        """Append a row (a new index after the table's largest); return its position."""
+        self.index.append(self.next_index)
+        self.next_index += 1
+        self.name.append(name)
+        self.abbreviation.append(abbreviation)
+        self.parent.append(int(parent))
+        self.color.append(color)
+        self.hemisphere.append(hemi)
+        return len(self.index) - 1
+
+
+def _leaf_rows(rows: _Table, hemisphere: list[str], own_count: np.ndarray) -> _RegionRows:
+    """Leaves: table rows without children, plus an "(other)" leaf for each parent that is
+    itself painted in the image."""
+    n_table = len(rows.index)
     has_child = np.zeros(n_table, dtype=bool)
     has_child[rows.parent[rows.parent >= 0]] = True
-    next_index = int(rows.index.max(initial=0)) + 1
-    region_index = list(rows.index.tolist())
-    region_name = list(rows.name)
-    region_abbreviation = list(rows.abbreviation)
-    region_parent = list(rows.parent.tolist())  # row positions
-    region_color = list(rows.color)
-    region_hemisphere = list(hemisphere)
+    tree = _RegionRows(
+        index=list(rows.index.tolist()),
+        name=list(rows.name),
+        abbreviation=list(rows.abbreviation),
+        parent=list(rows.parent.tolist()),
+        color=list(rows.color),
+        hemisphere=list(hemisphere),
+        next_index=int(rows.index.max(initial=0)) + 1,
+        n_table=n_table,
+    )
     leaf_of_table_row = np.where(has_child, -1, np.arange(n_table))
     for r in np.flatnonzero(has_child & (own_count > 0)):
-        region_index.append(next_index)
-        next_index += 1
-        region_name.append(f"{rows.name[r]} (other)")
-        region_abbreviation.append(f"{rows.abbreviation[r]}-other" if rows.abbreviation[r] else "")
-        region_parent.append(int(r))
-        region_color.append(rows.color[r])
-        region_hemisphere.append(hemisphere[r])
-        leaf_of_table_row[r] = len(region_index) - 1
-    leaves = np.flatnonzero(~np.append(has_child, np.zeros(len(region_index) - n_table, bool)))
-    leaf_column = np.full(len(region_index), -1, dtype=np.int64)
-    leaf_column[leaves] = np.arange(leaves.size)
-    n_leaves = leaves.size
-    # Table row → leaf number (0..n_leaves-1); -1 background.
-    leaf_of_row = np.append(leaf_column[leaf_of_table_row], [-1, -1])  # index -1 and -2
+        abbreviation = f"{rows.abbreviation[r]}-other" if rows.abbreviation[r] else ""
+        leaf_of_table_row[r] = tree.add(
+            f"{rows.name[r]} (other)", abbreviation, r, rows.color[r], hemisphere[r]
+        )
+    n_rows = len(tree.index)
+    tree.leaves = np.flatnonzero(~np.append(has_child, np.zeros(n_rows - n_table, bool)))
+    leaf_column = np.full(n_rows, -1, dtype=np.int64)
+    leaf_column[tree.leaves] = np.arange(tree.leaves.size)
+    # Table row → leaf number (0..n_leaves-1); -1 background (index -1 and -2).
+    tree.leaf_of_row = np.append(leaf_column[leaf_of_table_row], [-1, -1])
+    return tree
 
-    # Pass 2: counts per leaf and side over the whole atlas, and (atlas finer than the
-    # statistics) the weighted counts of atlas voxels per statistical voxel and leaf side.
+
+def _resampling(shape: tuple[int, ...], label_affine: np.ndarray, grid: Grid) -> tuple[str, bool]:
+    """How the atlas reaches the study grid, and whether it is finer than the grid."""
     same = _same_grid(shape, label_affine, grid)
     finer = (not same) and abs(np.linalg.det(label_affine[:3, :3])) < grid.voxel_volume * (
         1.0 - 1e-6
     )
-    resampling = RESAMPLING_SAME if same else RESAMPLING_FRACTIONAL if finer else RESAMPLING_NEAREST
+    return (
+        RESAMPLING_SAME if same else RESAMPLING_FRACTIONAL if finer else RESAMPLING_NEAREST
+    ), finer
+
+
+@dataclass
+class _LeafCounts:
+    """Per-leaf voxel counts by side, and weighted (statistical voxel, leaf side) pairs."""
+
+    side_count: np.ndarray  # (n_leaves, 2) atlas voxels per side (midline voxels: half)
+    strict: np.ndarray  # (n_leaves, 2) voxels strictly on each side
+    far: np.ndarray  # (n_leaves,) voxels more than one study voxel from the midline
+    keys: list[np.ndarray]  # statistical voxel * 2 n_leaves + 2 leaf + side
+    weights: list[np.ndarray]
+    denominator: np.ndarray  # (n_mask,) atlas voxels falling in each statistical voxel
+
+
+def _left_weight(offset: np.ndarray) -> np.ndarray:
+    """1 left of the midline, 0 right of it, 1/2 on it."""
+    return np.where(
+        offset < -MIDLINE_TOLERANCE_MM, 1.0, np.where(offset > MIDLINE_TOLERANCE_MM, 0.0, 0.5)
+    )
+
+
+def _count_leaves(
+    label_data: np.ndarray,
+    label_affine: np.ndarray,
+    axis: int,
+    lookup: _Lookup,
+    tree: _RegionRows,
+    grid: Grid,
+    mask: np.ndarray,
+    midline: float,
+    finer: bool,
+) -> _LeafCounts:
+    """Second pass: counts per leaf and side over the whole atlas, and each statistical
+    voxel's share of each leaf side (fractional when the atlas is finer, else nearest)."""
+    shape = tuple(int(s) for s in label_data.shape)
+    n_leaves = tree.leaves.size
     mask_row = np.full(grid.shape, -1, dtype=np.int64)
     n_mask = int(mask.sum())
     mask_row[mask] = np.arange(n_mask)
     band = float(np.abs(grid.affine[0, :3]).max())  # world-x extent of one study voxel step
-
-    side_count = np.zeros((n_leaves, 2))
-    strict = np.zeros((n_leaves, 2), dtype=np.int64)
-    far = np.zeros(n_leaves, dtype=np.int64)
-    keys: list[np.ndarray] = []
-    weights: list[np.ndarray] = []
-    denominator = np.zeros(n_mask)
+    counts = _LeafCounts(
+        side_count=np.zeros((n_leaves, 2)),
+        strict=np.zeros((n_leaves, 2), dtype=np.int64),
+        far=np.zeros(n_leaves, dtype=np.int64),
+        keys=[],
+        weights=[],
+        denominator=np.zeros(n_mask),
+    )
     to_grid = np.linalg.inv(grid.affine) @ label_affine
     for start, stop in _slabs(shape, axis):
         labels = _take_slab(label_data, axis, start, stop).ravel()
-        leaf = leaf_of_row[lookup(labels)]
+        leaf = tree.leaf_of_row[lookup(labels)]
         matrix = np.vstack([label_affine[:1], to_grid[:3]]) if finer else label_affine[:1]
         coords = _slab_coordinates(shape, axis, start, stop, matrix)
         offset = coords[0] - midline
-        w_left = np.where(
-            offset < -MIDLINE_TOLERANCE_MM, 1.0, np.where(offset > MIDLINE_TOLERANCE_MM, 0.0, 0.5)
-        )
+        w_left = _left_weight(offset)
         labelled = leaf >= 0
         lf = leaf[labelled]
         wl = w_left[labelled]
-        side_count[:, 0] += np.bincount(lf, weights=wl, minlength=n_leaves)
-        side_count[:, 1] += np.bincount(lf, weights=1.0 - wl, minlength=n_leaves)
-        strict[:, 0] += np.bincount(lf[wl == 1.0], minlength=n_leaves)
-        strict[:, 1] += np.bincount(lf[wl == 0.0], minlength=n_leaves)
-        far += np.bincount(
+        counts.side_count[:, 0] += np.bincount(lf, weights=wl, minlength=n_leaves)
+        counts.side_count[:, 1] += np.bincount(lf, weights=1.0 - wl, minlength=n_leaves)
+        counts.strict[:, 0] += np.bincount(lf[wl == 1.0], minlength=n_leaves)
+        counts.strict[:, 1] += np.bincount(lf[wl == 0.0], minlength=n_leaves)
+        counts.far += np.bincount(
             lf[np.abs(offset[labelled]) > band + MIDLINE_TOLERANCE_MM], minlength=n_leaves
         )
         if finer:
-            ijk = [np.floor(c + 0.5).astype(np.int64) for c in coords[1:]]
-            inside = np.ones(labels.shape, dtype=bool)
-            for d in range(3):
-                inside &= (ijk[d] >= 0) & (ijk[d] < grid.shape[d])
-            target = np.full(labels.shape, -1, dtype=np.int64)
-            target[inside] = mask_row[ijk[0][inside], ijk[1][inside], ijk[2][inside]]
-            in_mask = target >= 0
-            denominator += np.bincount(target[in_mask], minlength=n_mask)
-            use = in_mask & labelled
-            t, lf2, wl2 = target[use], leaf[use], w_left[use]
-            for side, weight in ((_SIDE_LEFT, wl2), (_SIDE_RIGHT, 1.0 - wl2)):
-                keep = weight > 0
-                key = t[keep] * (2 * n_leaves) + lf2[keep] * 2 + side
-                _add_weighted(keys, weights, key, weight[keep])
+            _add_fine_shares(counts, coords[1:], labels, leaf, w_left, mask_row, grid, n_leaves)
+    if not finer:
+        _add_nearest_shares(counts, label_data, label_affine, lookup, tree, grid, mask, midline)
+    return counts
 
-    if not finer:  # nearest neighbour (or the same grid) at the statistical voxel centres
-        to_atlas = np.linalg.inv(label_affine) @ grid.affine
-        mask_ijk = np.argwhere(mask)  # C order, the order of volume[mask]
-        denominator = np.ones(n_mask)
-        for start in range(0, n_mask, SLAB_VOXELS):
-            chunk = mask_ijk[start : start + SLAB_VOXELS].astype(np.float64)
-            atlas_ijk = np.floor(chunk @ to_atlas[:3, :3].T + to_atlas[:3, 3] + 0.5).astype(
-                np.int64
-            )
-            inside = np.all((atlas_ijk >= 0) & (atlas_ijk < np.asarray(shape)), axis=1)
-            labels = np.zeros(chunk.shape[0], dtype=np.int64)
-            a = atlas_ijk[inside]
-            labels[inside] = np.asarray(label_data[a[:, 0], a[:, 1], a[:, 2]], dtype=np.int64)
-            leaf = leaf_of_row[lookup(labels)]
-            x = chunk @ grid.affine[0, :3] + grid.affine[0, 3]
-            offset = x - midline
-            w_left = np.where(
-                offset < -MIDLINE_TOLERANCE_MM,
-                1.0,
-                np.where(offset > MIDLINE_TOLERANCE_MM, 0.0, 0.5),
-            )
-            t = np.arange(start, start + chunk.shape[0])
-            use = leaf >= 0
-            for side, weight in ((_SIDE_LEFT, w_left), (_SIDE_RIGHT, 1.0 - w_left)):
-                keep = use & (weight > 0)
-                key = t[keep] * (2 * n_leaves) + leaf[keep] * 2 + side
-                _add_weighted(keys, weights, key, weight[keep])
 
-    # Split decisions for leaves without a hemisphere of their own.
-    split_rows: dict[int, tuple[int, int]] = {}  # leaf number → (left row, right row)
-    for number, region in enumerate(leaves):
-        if region_hemisphere[region] in ("left", "right"):
+def _add_fine_shares(
+    counts: _LeafCounts,
+    grid_coords: np.ndarray,
+    labels: np.ndarray,
+    leaf: np.ndarray,
+    w_left: np.ndarray,
+    mask_row: np.ndarray,
+    grid: Grid,
+    n_leaves: int,
+) -> None:
+    """Atlas finer than the statistics: each atlas voxel counts towards the statistical
+    voxel its centre falls in."""
+    n_mask = counts.denominator.size
+    ijk = [np.floor(c + 0.5).astype(np.int64) for c in grid_coords]
+    inside = np.ones(labels.shape, dtype=bool)
+    for d in range(3):
+        inside &= (ijk[d] >= 0) & (ijk[d] < grid.shape[d])
+    target = np.full(labels.shape, -1, dtype=np.int64)
+    target[inside] = mask_row[ijk[0][inside], ijk[1][inside], ijk[2][inside]]
+    in_mask = target >= 0
+    counts.denominator += np.bincount(target[in_mask], minlength=n_mask)
+    use = in_mask & (leaf >= 0)
+    t, lf2, wl2 = target[use], leaf[use], w_left[use]
+    for side, weight in ((_SIDE_LEFT, wl2), (_SIDE_RIGHT, 1.0 - wl2)):
+        keep = weight > 0
+        key = t[keep] * (2 * n_leaves) + lf2[keep] * 2 + side
+        _add_weighted(counts.keys, counts.weights, key, weight[keep])
+
+
+def _add_nearest_shares(
+    counts: _LeafCounts,
+    label_data: np.ndarray,
+    label_affine: np.ndarray,
+    lookup: _Lookup,
+    tree: _RegionRows,
+    grid: Grid,
+    mask: np.ndarray,
+    midline: float,
+) -> None:
+    """Nearest neighbour (or the same grid): the atlas label at each statistical voxel's
+    centre."""
+    shape = tuple(int(s) for s in label_data.shape)
+    n_leaves = tree.leaves.size
+    to_atlas = np.linalg.inv(label_affine) @ grid.affine
+    mask_ijk = np.argwhere(mask)  # C order, the order of volume[mask]
+    n_mask = mask_ijk.shape[0]
+    counts.denominator = np.ones(n_mask)
+    for start in range(0, n_mask, SLAB_VOXELS):
+        chunk = mask_ijk[start : start + SLAB_VOXELS].astype(np.float64)
+        atlas_ijk = np.floor(chunk @ to_atlas[:3, :3].T + to_atlas[:3, 3] + 0.5).astype(np.int64)
+        inside = np.all((atlas_ijk >= 0) & (atlas_ijk < np.asarray(shape)), axis=1)
+        labels = np.zeros(chunk.shape[0], dtype=np.int64)
+        a = atlas_ijk[inside]
+        labels[inside] = np.asarray(label_data[a[:, 0], a[:, 1], a[:, 2]], dtype=np.int64)
+        leaf = tree.leaf_of_row[lookup(labels)]
+        x = chunk @ grid.affine[0, :3] + grid.affine[0, 3]
+        w_left = _left_weight(x - midline)
+        t = np.arange(start, start + chunk.shape[0])
+        use = leaf >= 0
+        for side, weight in ((_SIDE_LEFT, w_left), (_SIDE_RIGHT, 1.0 - w_left)):
+            keep = use & (weight > 0)
+            key = t[keep] * (2 * n_leaves) + leaf[keep] * 2 + side
+            _add_weighted(counts.keys, counts.weights, key, weight[keep])
+
+
+def _split_bilateral_leaves(tree: _RegionRows, counts: _LeafCounts) -> dict[int, tuple[int, int]]:
+    """Leaves without a hemisphere of their own that lie on both sides of the midline
+    get a left and a right row; one-sided ones get that side, the rest "both".
+
+    Returns leaf number → (left row, right row) of the split leaves.
+    """
+    split_rows: dict[int, tuple[int, int]] = {}
+    for number, region in enumerate(tree.leaves):
+        if tree.hemisphere[region] in ("left", "right"):
             continue
-        on_left, on_right = strict[number]
-        if on_left > 0 and on_right > 0 and far[number] > 0:
-            pair = []
-            for side in ("left", "right"):
-                region_index.append(next_index)
-                next_index += 1
-                region_name.append(region_name[region])
-                region_abbreviation.append(region_abbreviation[region])
-                region_parent.append(int(region))
-                region_color.append(region_color[region])
-                region_hemisphere.append(side)
-                pair.append(len(region_index) - 1)
-            split_rows[number] = (pair[0], pair[1])
-        elif on_left > 0 and on_right == 0 and far[number] > 0:
-            region_hemisphere[region] = "left"
-        elif on_right > 0 and on_left == 0 and far[number] > 0:
-            region_hemisphere[region] = "right"
+        on_left, on_right = counts.strict[number]
+        far = counts.far[number] > 0
+        if on_left > 0 and on_right > 0 and far:
+            name, abbreviation, color = (
+                tree.name[region],
+                tree.abbreviation[region],
+                tree.color[region],
+            )
+            left = tree.add(name, abbreviation, region, color, "left")
+            right = tree.add(name, abbreviation, region, color, "right")
+            split_rows[number] = (left, right)
+        elif on_left > 0 and on_right == 0 and far:
+            tree.hemisphere[region] = "left"
+        elif on_right > 0 and on_left == 0 and far:
+            tree.hemisphere[region] = "right"
         else:
-            region_hemisphere[region] = "both"
-    n_regions = len(region_index)
-    parent = np.asarray(region_parent, dtype=np.int64)
+            tree.hemisphere[region] = "both"
+    return split_rows
 
+
+def _region_shares(
+    tree: _RegionRows, split_rows: dict[int, tuple[int, int]], counts: _LeafCounts
+) -> tuple[sp.csr_matrix, sp.csr_matrix, np.ndarray, list[list[int]]]:
+    """Each in-mask voxel's share of every region (columns in display order), the leaf
+    side → region membership, the display order and each row's ancestors."""
+    n_leaves = tree.leaves.size
+    n_regions = len(tree.index)
+    parent = np.asarray(tree.parent, dtype=np.int64)
     # Display order: each row followed by the rows made from it.
-    order = _display_order(parent, n_table)
+    order = _display_order(parent, tree.n_table)
     ancestors = _ancestor_lists(parent)
-
     # Leaf side (2·leaf + side) → every region row it belongs to.
     src, dst = [], []
-    for number, region in enumerate(leaves):
+    for number, region in enumerate(tree.leaves):
         for side in (_SIDE_LEFT, _SIDE_RIGHT):
             target = split_rows[number][side] if number in split_rows else int(region)
             for a in ancestors[target]:
@@ -1068,42 +1297,52 @@ def build_atlas(
         (np.ones(len(src)), (np.asarray(src, dtype=np.int64), np.asarray(dst, dtype=np.int64))),
         shape=(2 * n_leaves, n_regions),
     )
-
-    if keys:
-        key = np.concatenate(keys)
-        weight = np.concatenate(weights)
+    if counts.keys:
+        key = np.concatenate(counts.keys)
+        weight = np.concatenate(counts.weights)
     else:
         key = np.zeros(0, dtype=np.int64)
         weight = np.zeros(0)
+    denominator = counts.denominator
+    n_mask = denominator.size
     with np.errstate(divide="ignore", invalid="ignore"):
         scale = np.where(denominator > 0, 1.0 / np.maximum(denominator, 1e-300), 0.0)
-    counts = sp.csr_matrix(
+    voxel_counts = sp.csr_matrix(
         (weight * scale[key // (2 * n_leaves)], (key // (2 * n_leaves), key % (2 * n_leaves))),
         shape=(n_mask, 2 * n_leaves),
     )
-    counts.sum_duplicates()
-    shares = (counts @ membership).tocsr()
-    # Columns in display order.
+    voxel_counts.sum_duplicates()
+    shares = (voxel_counts @ membership).tocsr()
     shares = shares[:, order].tocsr()
     shares.sort_indices()
+    return shares, membership, order, ancestors
 
-    # The regions table.
-    position_of = np.empty(n_regions, dtype=np.int64)
-    position_of[order] = np.arange(n_regions)
+
+def _regions_table(
+    tree: _RegionRows,
+    order: np.ndarray,
+    ancestors: list[list[int]],
+    n_voxels: np.ndarray,
+    shares: sp.csr_matrix,
+    label_affine: np.ndarray,
+    grid: Grid,
+) -> pd.DataFrame:
+    """One row per region in display order (the columns of :attr:`Atlas.regions`)."""
+    n_regions = len(tree.index)
+    parent = np.asarray(tree.parent, dtype=np.int64)
     is_leaf = np.ones(n_regions, dtype=bool)
     is_leaf[parent[parent >= 0]] = False
     depth = np.array([len(ancestors[r]) - 1 for r in range(n_regions)], dtype=np.int64)
-    n_voxels = side_count.reshape(-1) @ membership
-    hemisphere_final = _aggregate_hemispheres(parent, region_hemisphere, is_leaf, n_voxels)
-    index_array = np.asarray(region_index, dtype=np.int64)
+    hemisphere_final = _aggregate_hemispheres(parent, tree.hemisphere, is_leaf, n_voxels)
+    index_array = np.asarray(tree.index, dtype=np.int64)
     parent_index = np.where(parent >= 0, index_array[np.maximum(parent, 0)], -1)
     atlas_voxel_volume = float(abs(np.linalg.det(label_affine[:3, :3])))
     mask_volume = np.asarray(shares.sum(axis=0)).ravel() * grid.voxel_volume
-    regions = pd.DataFrame(
+    return pd.DataFrame(
         {
             "index": index_array[order],
-            "name": np.asarray(region_name, dtype=object)[order],
-            "abbreviation": np.asarray(region_abbreviation, dtype=object)[order],
+            "name": np.asarray(tree.name, dtype=object)[order],
+            "abbreviation": np.asarray(tree.abbreviation, dtype=object)[order],
             "hemisphere": np.asarray(hemisphere_final, dtype=object)[order],
             "parent": parent_index[order],
             "depth": depth[order],
@@ -1111,11 +1350,15 @@ def build_atlas(
             "n_voxels": n_voxels[order],
             "volume_mm3": n_voxels[order] * atlas_voxel_volume,
             "mask_volume_mm3": mask_volume,
-            "color": np.asarray(region_color, dtype=object)[order],
+            "color": np.asarray(tree.color, dtype=object)[order],
         }
     )
 
-    # The leaf with the largest share at each in-mask voxel.
+
+def _label_volume(
+    regions: pd.DataFrame, shares: sp.csr_matrix, grid: Grid, mask: np.ndarray
+) -> tuple[np.ndarray, float]:
+    """The leaf with the largest share at each in-mask voxel, and the mask's coverage."""
     leaf_positions = np.flatnonzero(regions["is_leaf"].to_numpy())
     leaf_shares = shares[:, leaf_positions].tocsr()
     label_volume = np.zeros(grid.shape, dtype=np.int64)
@@ -1123,69 +1366,74 @@ def build_atlas(
     best_leaf = _row_argmax(leaf_shares)
     leaf_indices = regions["index"].to_numpy()[leaf_positions]
     label_volume[mask] = np.where(best_leaf >= 0, leaf_indices[np.maximum(best_leaf, 0)], 0)
-    coverage = float(covered.mean()) if n_mask else 0.0
+    coverage = float(covered.mean()) if covered.size else 0.0
+    return label_volume, coverage
 
-    if coverage < min_coverage:
-        low, high = _world_box(shape, label_affine)
-        glow, ghigh = _world_box(tuple(grid.shape), grid.affine)
-        apart = bool(np.any(high < glow) or np.any(ghigh < low))
-        where = (
-            " — the atlas does not overlap the study grid in world space at all "
-            f"(atlas x,y,z from {np.round(low, 2).tolist()} to {np.round(high, 2).tolist()} "
-            f"mm, study grid from {np.round(glow, 2).tolist()} to {np.round(ghigh, 2).tolist()}"
-            " mm)"
-            if apart
-            else ""
-        )
-        raise UserError(
-            f"{image_name}: the atlas labels cover {100 * coverage:.1f}% of the analysis mask, "
-            f"less than the {100 * min_coverage:.0f}% required{where}; check that the atlas "
-            "is in the template's space (same affine origin and orientation)"
-        )
 
-    # Warnings.
-    absent = [r for r in range(n_table) if n_voxels[r] == 0]
+def _check_coverage(
+    coverage: float,
+    min_coverage: float,
+    shape: tuple[int, ...],
+    label_affine: np.ndarray,
+    grid: Grid,
+    image_name: str,
+) -> None:
+    """Refuse an atlas that labels less than ``min_coverage`` of the mask."""
+    if coverage >= min_coverage:
+        return
+    low, high = _world_box(shape, label_affine)
+    glow, ghigh = _world_box(tuple(grid.shape), grid.affine)
+    apart = bool(np.any(high < glow) or np.any(ghigh < low))
+    where = (
+        " — the atlas does not overlap the study grid in world space at all "
+        f"(atlas x,y,z from {np.round(low, 2).tolist()} to {np.round(high, 2).tolist()} "
+        f"mm, study grid from {np.round(glow, 2).tolist()} to {np.round(ghigh, 2).tolist()}"
+        " mm)"
+        if apart
+        else ""
+    )
+    raise UserError(
+        f"{image_name}: the atlas labels cover {100 * coverage:.1f}% of the analysis mask, "
+        f"less than the {100 * min_coverage:.0f}% required{where}; check that the atlas "
+        "is in the template's space (same affine origin and orientation)"
+    )
+
+
+def _atlas_warnings(
+    tree: _RegionRows,
+    hemisphere: list[str],
+    counts: _LeafCounts,
+    n_voxels: np.ndarray,
+    midline: float,
+    image_name: str,
+    table_name: str,
+) -> list[str]:
+    """Table regions absent from the image; left/right regions on the wrong side."""
+    warnings: list[str] = []
+    leaf_total = counts.side_count.sum(axis=1)
+    absent = [r for r in range(tree.n_table) if n_voxels[r] == 0]
     if absent:
-        shown = ", ".join(f"{region_index[r]} ({region_name[r]})" for r in absent[:_MAX_LISTED])
+        shown = ", ".join(f"{tree.index[r]} ({tree.name[r]})" for r in absent[:_MAX_LISTED])
         more = f" and {len(absent) - _MAX_LISTED} more" if len(absent) > _MAX_LISTED else ""
         warnings.append(
             f"{table_name}: {len(absent)} region(s) of the table are not in the image "
             f"(nor any of their sub-regions): {shown}{more}"
         )
     wrong = []
-    for number, region in enumerate(leaves):
-        own = hemisphere[region] if region < n_table else region_hemisphere[region]
-        total = side_count[number].sum()
+    for number, region in enumerate(tree.leaves):
+        own = hemisphere[region] if region < tree.n_table else tree.hemisphere[region]
+        total = leaf_total[number]
         if own in ("left", "right") and total > 0:
-            other = side_count[number, 1 if own == "left" else 0] / total
+            other = counts.side_count[number, 1 if own == "left" else 0] / total
             if other > WRONG_SIDE_WARNING:
-                wrong.append(f"{region_index[region]} ({region_name[region]}, {own})")
+                wrong.append(f"{tree.index[region]} ({tree.name[region]}, {own})")
     if wrong:
         warnings.append(
             f"{image_name}: {len(wrong)} region(s) labelled left or right lie mostly on the "
             f"other side of the midline x = {midline:.3f} mm: {', '.join(wrong[:_MAX_LISTED])}"
             "; check the atlas affine (x must grow towards the animal's right) and the table"
         )
-    dice = mirror_dice(mask, grid.affine, midline)
-    if np.isfinite(dice) and dice < MIRROR_DICE_WARNING:
-        warnings.append(
-            f"the analysis mask matches its mirror image about x = {midline:.3f} mm "
-            f"({midline_source}) with a Dice of only {dice:.2f}; the midline may be wrong "
-            "or the mask covers one side more than the other"
-        )
-
-    return Atlas(
-        regions=regions,
-        shares=shares,
-        label_volume=label_volume,
-        resampling=resampling,
-        midline_mm=float(midline),
-        midline_source=midline_source,
-        mirror_dice=float(dice),
-        orientation=describe_orientation(grid.affine),
-        coverage=coverage,
-        warnings=tuple(warnings),
-    )
+    return warnings
 
 
 def _row_argmax(matrix: sp.csr_matrix) -> np.ndarray:

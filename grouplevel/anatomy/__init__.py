@@ -1,0 +1,12 @@
+"""Anatomy: where the results are.
+
+* :mod:`~grouplevel.anatomy.atlas` — label image + table → ``Atlas`` (hierarchy,
+  hemispheres, each voxel's share of each region);
+* :mod:`~grouplevel.anatomy.coordinates` — template millimetres ↔ stereotaxic
+  coordinates;
+* :mod:`~grouplevel.anatomy.regions` — cluster, region and per-animal tables (pure);
+* :mod:`~grouplevel.anatomy.tables` — the step of the pipeline that labels a group map:
+  atlas + group map → the three tables.
+
+The package imports nothing on its own: import the module you need.
+"""
