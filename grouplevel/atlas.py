@@ -70,6 +70,7 @@ from grouplevel.config import DEFAULT_ATLAS_MIN_COVERAGE
 from grouplevel.coordinates import describe_orientation
 from grouplevel.errors import UserError
 from grouplevel.images import AFFINE_TOLERANCE_MM, Grid
+from grouplevel.textcheck import control_characters
 
 # Smallest share of the analysis mask that the atlas labels must cover (defined with the
 # other defaults in grouplevel.config).
@@ -397,6 +398,14 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
         label_name = raw["name"][row]
         if not label_name:
             problems.append(f"{where}: index {value} has an empty name")
+        for key in ("name", "abbreviation"):
+            bad = control_characters(raw[key][row])
+            if bad:
+                problems.append(
+                    f"{where}: the {key} {raw[key][row]!r} of index {value} holds "
+                    f"{', '.join(bad)}, which would break the rows of the region tables; "
+                    "remove it"
+                )
         side = raw["hemisphere"][row].casefold()
         if side not in _HEMISPHERE_WORDS:
             problems.append(

@@ -26,6 +26,10 @@ DEFAULT_CONTRAST_NAME = "mean"
 # fewer are run when every distinct permutation can be enumerated.
 DEFAULT_PERMUTATIONS = 5000
 DEFAULT_SEED = 1
+# Seeds are whole numbers 0 ... 2**63 - 1: numpy's generators refuse negative seeds, and
+# a seed that fits a signed 64-bit integer survives summary.json in any reader (common
+# practice for 64-bit integer fields).
+MAX_SEED = 2**63 - 1
 DEFAULT_SIDED = "two"
 DEFAULT_CONNECTIVITY = 26  # faces, edges and corners (common practice for 3-D clusters)
 DEFAULT_CLUSTER_FORMING_P = 0.001  # Eklund et al. 2016: p = 0.001 keeps cluster FWE valid
@@ -474,9 +478,14 @@ def load_settings(path: str | Path) -> Settings:
     tfce_h = r.get("inference", inf, "tfce_h", float, DEFAULT_TFCE_H)
     if tfce_e <= 0 or tfce_h <= 0:
         r.problem("[inference] tfce_e / tfce_h", "TFCE exponents must be positive")
+    seed = r.get("inference", inf, "seed", int, DEFAULT_SEED)
+    seed_problem = seed_error(seed)
+    if seed_problem:
+        r.problem("[inference] seed", seed_problem)
+        seed = DEFAULT_SEED
     inference = InferenceSettings(
         permutations=permutations,
-        seed=r.get("inference", inf, "seed", int, DEFAULT_SEED),
+        seed=seed,
         sided=sided,
         connectivity=connectivity,
         cluster_forming_p=cfp,
@@ -609,6 +618,13 @@ def _read_questions(
     )
 
 
+def seed_error(seed: int) -> str | None:
+    """What is wrong with a seed, or None when it is a whole number 0 ... MAX_SEED."""
+    if not 0 <= seed <= MAX_SEED:
+        return f"must be a whole number from 0 to {MAX_SEED} (2**63 - 1), got {seed}"
+    return None
+
+
 def with_overrides(
     settings: Settings, *, permutations: int | None = None, seed: int | None = None
 ) -> Settings:
@@ -619,5 +635,8 @@ def with_overrides(
             raise UserError(f"--permutations must be 0 or more, got {permutations}")
         inf = replace(inf, permutations=permutations)
     if seed is not None:
+        seed_problem = seed_error(seed)
+        if seed_problem:
+            raise UserError(f"--seed {seed_problem}")
         inf = replace(inf, seed=seed)
     return replace(settings, inference=inf)

@@ -51,6 +51,8 @@ def read_header_grid(path: Path) -> Grid:
         When the file is missing, unreadable or not a 3-D volume.
     """
     img = _open(path)
+    _check_real(path, img)
+    _check_scaling(path, img)
     shape = tuple(int(s) for s in img.shape)
     if len(shape) == 4 and shape[3] == 1:
         shape = shape[:3]
@@ -70,9 +72,48 @@ def _open(path: Path):
         raise UserError(f"{path}: cannot read as NIfTI ({exc})") from None
 
 
+def _check_real(path: Path, img) -> None:
+    """Refuse complex or compound (e.g. RGB) voxel types: a map holds real numbers."""
+    dtype = img.get_data_dtype()
+    if dtype.kind == "c":
+        raise UserError(
+            f"{path}: the map holds complex numbers ({dtype}); an effect or variance map "
+            "must hold real numbers: write the real-valued map from the first-level fit"
+        )
+    if dtype.kind not in "biuf":
+        raise UserError(
+            f"{path}: the map holds {dtype} voxels (not plain numbers, e.g. a colour "
+            "image); write the map with one real number per voxel"
+        )
+
+
+def _check_scaling(path: Path, img) -> None:
+    """Refuse an infinite scl_slope or scl_inter in a NIfTI header.
+
+    nibabel replaces such values by NaN when it reads the header and then applies no
+    scaling, so the voxel values would silently lose the scaling the writer meant. A
+    NaN slope is accepted: NIfTI writers use it for "no scaling" (common practice).
+    """
+    if not isinstance(img, nib.Nifti1Image | nib.Nifti2Image):
+        return
+    try:
+        with nib.openers.ImageOpener(str(path)) as fobj:
+            raw = type(img.header).from_fileobj(fobj, check=False)
+    except Exception:  # the header was readable a moment ago; leave it to nibabel
+        return
+    for key in ("scl_slope", "scl_inter"):
+        value = float(raw[key])
+        if np.isinf(value):
+            raise UserError(
+                f"{path}: the header's {key} is {value}, so the voxel values cannot be "
+                "scaled to their true units; rewrite the map (without integer scaling)"
+            )
+
+
 def read_volume(path: Path) -> np.ndarray:
     """Read a 3-D volume as float64 (a trailing axis of length 1 is dropped)."""
     img = _open(path)
+    _check_real(path, img)
     try:
         data = np.asarray(img.dataobj, dtype=np.float64)
     except Exception as exc:
