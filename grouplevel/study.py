@@ -362,7 +362,8 @@ def _check_run_maps(
     if user_mask is None:
         has_value &= effect != 0  # 0 is 'no data' without a mask
     region = user_mask if user_mask is not None else np.ones(effect.shape, dtype=bool)
-    if user_mask is not None:
+    unusable = not ok[region].any()
+    if user_mask is not None and not unusable:  # (a run without data: one message below)
         nan_in = int((np.isnan(effect) & user_mask).sum())
         if nan_in and min_coverage >= 1.0:
             problems.append(
@@ -373,7 +374,7 @@ def _check_run_maps(
     if raw_variance is not None:
         problems.extend(_variance_problems(var_at, kind, raw_variance, has_value, user_mask))
         warnings.extend(_variance_warnings(var_at, kind, raw_variance, has_value, user_mask))
-    if not ok[region].any():
+    if unusable:
         problems.append(_unusable_message(effect_at, var_at, kind, effect, raw_variance, region))
     elif has_value[region].sum() > 1:
         values = effect[has_value & region]
@@ -469,10 +470,18 @@ def _unusable_message(
     )
 
 
-def _single_run_warning(label: str, runs: pd.DataFrame, settings: Settings) -> str | None:
+def _single_run_warning(
+    label: str, runs: pd.DataFrame, settings: Settings, variance_kind: str
+) -> str | None:
     """Warn when every animal has one run: animal and run variance are then confounded."""
     if settings.model.run_variance != "estimate" or runs.groupby("animal").size().max() > 1:
         return None
+    remedy = "Add runs per animal to separate the two"
+    if variance_kind != "none":
+        remedy += (
+            ', or set [model] run_variance = "known" (σ² = 0) when the first-level '
+            "variance maps are trusted to hold all the run noise"
+        )
     return (
         f"{label}: every animal has a single run, so the data hold no within-animal "
         "information: the between-animal variance (var_animal) and the run variance "
@@ -481,8 +490,7 @@ def _single_run_warning(label: str, runs: pd.DataFrame, settings: Settings) -> s
         "pseudo-inverse is used), so the var_animal and var_run maps are an arbitrary "
         "split of that sum and must not be read one by one. The group effect, its "
         "standard error, t and df (animals minus the design's rank) are still valid, as "
-        "in a one-map-per-animal analysis. Add runs per animal to separate the two, or "
-        'set [model] run_variance = "known" when the first-level variances are trusted'
+        f"in a one-map-per-animal analysis. {remedy}"
     )
 
 
@@ -690,7 +698,7 @@ def inspect_study(settings: Settings) -> Study:
                 "effect map, or add a 'variance' or 'se' column"
             )
             continue
-        single = _single_run_warning(label, inc, settings)
+        single = _single_run_warning(label, inc, settings, variance_kind)
         if single:
             warnings.append(single)
         if user_mask is not None and settings.study.min_coverage < 1.0:

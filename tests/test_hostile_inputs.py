@@ -481,3 +481,16 @@ def test_bom_csv_crlf_and_blank_rows_are_read(tmp_path, capsys):
     # a problem on the row after the blank one is reported at its physical line (5)
     save(toml.parent / "maps" / "run002_effect.nii.gz", np.full(SHAPE, np.nan))
     refused_alike(toml, capsys, "runs.csv line 5 (animal b)", "are NaN")
+
+
+def test_all_nan_map_inside_a_mask_gets_one_message(tmp_path, capsys):
+    # lowering min_coverage would not help a run without any value: only one message
+    effects = np.random.default_rng(7).normal(1, 1, size=(6, *SHAPE))
+    effects[1] = np.nan
+    toml = study(tmp_path, effects=effects, mask=np.ones(SHAPE, bool))
+    text = refused_alike(
+        toml,
+        capsys,
+        f"runs.tsv line 3 (animal a): run001_effect.nii.gz: all {N_VOXELS} voxel(s) are NaN",
+    )
+    assert "min_coverage below 1" not in text
