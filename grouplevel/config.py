@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from grouplevel.errors import UserError
+from grouplevel.textcheck import control_characters
 
 # --- defaults (one place) -----------------------------------------------------------
 DEFAULT_MIN_COVERAGE = 1.0  # every run must have data at a voxel unless the user allows less
@@ -441,6 +442,14 @@ def load_settings(path: str | Path) -> Settings:
             r.problem(f"[{where}] weights", "all weights are zero")
         contrasts.append(ContrastSpec(name=name, weights=clean))
     user_contrasts = bool(contrasts)
+    for spec in contrasts:  # names become table cells: no tab or line break in them
+        bad = control_characters(spec.name)
+        if bad:
+            r.problem(
+                "[[contrast]] name",
+                f"{spec.name!r} holds {', '.join(bad)}, which would break the rows of the "
+                "tables written; remove it",
+            )
     if not contrasts:
         contrasts.append(ContrastSpec(name=DEFAULT_CONTRAST_NAME, weights={"Intercept": 1.0}))
 

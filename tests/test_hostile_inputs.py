@@ -494,3 +494,11 @@ def test_all_nan_map_inside_a_mask_gets_one_message(tmp_path, capsys):
         f"runs.tsv line 3 (animal a): run001_effect.nii.gz: all {N_VOXELS} voxel(s) are NaN",
     )
     assert "min_coverage below 1" not in text
+
+
+def test_control_character_in_a_contrast_name_of_the_study_file(tmp_path, capsys):
+    toml = study(
+        tmp_path,
+        toml_extra='\n[[contrast]]\nname = "mean\\tresponse"\nweights = { Intercept = 1 }\n',
+    )
+    refused_alike(toml, capsys, "study.toml: [[contrast]] name: 'mean\\tresponse' holds a tab")
