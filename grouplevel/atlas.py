@@ -70,7 +70,7 @@ from grouplevel.config import DEFAULT_ATLAS_MIN_COVERAGE
 from grouplevel.coordinates import describe_orientation
 from grouplevel.errors import UserError
 from grouplevel.images import AFFINE_TOLERANCE_MM, Grid
-from grouplevel.textcheck import control_characters
+from grouplevel.textcheck import control_characters, read_text_table
 
 # Smallest share of the analysis mask that the atlas labels must cover (defined with the
 # other defaults in grouplevel.config).
@@ -249,11 +249,7 @@ def read_label_table(path: Path) -> pd.DataFrame:
     path = Path(path)
     if not path.is_file():
         raise UserError(f"{path}: atlas label table not found")
-    sep = "," if path.suffix.lower() == ".csv" else "\t"
-    try:
-        table = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False)
-    except Exception as exc:  # pandas raises several types for malformed text
-        raise UserError(f"{path}: cannot read the atlas label table ({exc})") from None
+    table = read_text_table(path, "atlas label table", "index, name, ...")
     table.columns = [str(c).strip().lower() for c in table.columns]
     return table
 
@@ -365,9 +361,10 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
     table = table.rename(columns=lambda c: str(c).strip().lower())
     missing = [c for c in ("index", "name") if c not in table.columns]
     if missing:
+        found = ", ".join(repr(c) for c in table.columns if c != "line") or "none"
         raise UserError(
             f"{source}: the atlas label table has no {' and no '.join(repr(c) for c in missing)} "
-            f"column (found {', '.join(map(repr, table.columns)) or 'none'}); it needs at "
+            f"column (found {found}); it needs at "
             "least 'index' and 'name', as in a BIDS dseg.tsv"
         )
     problems: list[str] = []
@@ -387,8 +384,10 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
     raw = {key: column(key) for key in ("index", "name", "abbreviation", "hemisphere")}
     raw_parent = column("parent")
     raw_color = column("color")
+    # physical lines when the table was read by read_label_table, else header + row
+    lines = table["line"].tolist() if "line" in table.columns else range(2, len(table) + 2)
     for row in range(len(table)):
-        where = f"{source}, line {row + 2}"
+        where = f"{source}, line {lines[row]}"
         value = _as_integer(raw["index"][row])
         if value is None or value < 0:
             problems.append(f"{where}: index {raw['index'][row]!r} is not a whole number ≥ 0")
@@ -419,7 +418,7 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
         hemisphere.append(_HEMISPHERE_WORDS[side])
         parent_text.append(raw_parent[row])
         color.append(raw_color[row])
-        line.append(row + 2)
+        line.append(int(lines[row]))
     if problems:
         raise UserError(f"{source}: the atlas label table has {len(problems)} problem(s)", problems)
 

@@ -14,7 +14,6 @@ positive. A run without a usable value at a voxel carries no weight there.
 
 from __future__ import annotations
 
-import io
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -33,7 +32,7 @@ from grouplevel.design import (
 )
 from grouplevel.errors import UserError
 from grouplevel.images import Grid, grid_mismatch, read_header_grid, read_volume
-from grouplevel.textcheck import control_characters
+from grouplevel.textcheck import control_characters, read_text_table
 
 TRUE_WORDS = {"true", "yes", "1", "y", "t", "x"}
 FALSE_WORDS = {"false", "no", "0", "n", "f", ""}
@@ -102,31 +101,9 @@ def read_table(path: Path) -> pd.DataFrame:
     """
     if not path.is_file():
         raise UserError(f"{path}: runs table not found ([study] table)")
-    sep = "," if path.suffix.lower() == ".csv" else "\t"
-    try:
-        text = path.read_text(encoding="utf-8-sig")
-    except UnicodeDecodeError as exc:
-        raise UserError(
-            f"{path}: the runs table is not UTF-8 text (byte {exc.start}); save it as UTF-8"
-        ) from None
-    if not text.strip():
-        raise UserError(
-            f"{path}: the runs table is empty; write a header line (animal, effect, ...) "
-            "and one line per run"
-        )
-    try:
-        raw = pd.read_csv(io.StringIO(text), sep=sep, dtype=str, keep_default_na=False, header=None)
-    except Exception as exc:
-        hint = _quote_hint(path, text)
-        raise UserError(f"{path}: cannot read the runs table: {exc}{hint}") from None
-    header = [str(c).strip() for c in raw.iloc[0]]
-    _check_header(path, header)
-    table = raw.iloc[1:].reset_index(drop=True)
-    table.columns = header
-    lines = _row_lines(path, text, sep, len(raw))
-    if len(table.columns) == 1 and sep == "\t" and "," in table.columns[0]:
+    table = read_text_table(path, "runs table", "animal, effect, ...")
+    if len(table.columns) == 2 and path.suffix.lower() != ".csv" and "," in table.columns[1]:
         raise UserError(f"{path}: looks comma-separated; name it .csv or use tabs")
-    table.insert(0, "line", lines)
     _check_control_characters(path, table)
     table = table.apply(lambda col: col.str.strip() if col.name != "line" else col)
     blank = (table.drop(columns="line") == "").all(axis=1)
@@ -136,45 +113,6 @@ def read_table(path: Path) -> pd.DataFrame:
             f"{path}: the runs table has no rows (only a header line); add one line per run"
         )
     return table
-
-
-def _check_header(path: Path, header: list[str]) -> None:
-    repeated = sorted({c for c in header if header.count(c) > 1})
-    if repeated:
-        raise UserError(
-            f"{path} line 1: column name(s) {', '.join(map(repr, repeated))} appear more "
-            "than once in the header; give every column its own name"
-        )
-    for col in header:
-        bad = control_characters(col)
-        if bad:
-            raise UserError(f"{path} line 1: column name {col!r} holds {', '.join(bad)}; remove it")
-
-
-def _row_lines(path: Path, text: str, sep: str, n_rows: int) -> np.ndarray:
-    """Physical line numbers of the header and rows; refuse rows merged by quotes."""
-    physical = text.replace("\r\n", "\n").replace("\r", "\n").split("\n")
-    # the parser skips a line that is empty or holds only spaces (no separator)
-    filled = [i + 1 for i, s in enumerate(physical) if s.strip() or sep in s]
-    if len(filled) != n_rows:
-        raise UserError(
-            f"{path}: {len(filled) - 1} line(s) hold runs but {n_rows - 1} row(s) were "
-            f"read{_quote_hint(path, text) or ''}; a quoted value must open and close on "
-            "one line"
-        )
-    return np.asarray(filled[1:])
-
-
-def _quote_hint(path: Path, text: str) -> str:
-    """Name the lines with an odd number of double quotes (a quote left open)."""
-    physical = text.replace("\r\n", "\n").replace("\r", "\n").split("\n")
-    odd = [str(i + 1) for i, s in enumerate(physical) if s.count('"') % 2]
-    if not odd:
-        return ""
-    return (
-        f'; line(s) {", ".join(odd)} hold an unbalanced double quote ("), which makes the '
-        "reader join the following lines into one row: remove the quote or close it"
-    )
 
 
 def _check_control_characters(path: Path, table: pd.DataFrame) -> None:

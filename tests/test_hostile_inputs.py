@@ -226,7 +226,7 @@ def test_unbalanced_quote_that_merges_rows_is_refused(tmp_path, capsys):
     lines[6] += 'end of note"'
     path.write_text("\n".join(lines) + "\n")
     refused_alike(
-        toml, capsys, "12 line(s) hold runs but 9 row(s) were read", "line(s) 4, 7 hold an"
+        toml, capsys, "12 line(s) hold rows but 9 row(s) were read", "line(s) 4, 7 hold an"
     )
 
 
@@ -502,3 +502,32 @@ def test_control_character_in_a_contrast_name_of_the_study_file(tmp_path, capsys
         toml_extra='\n[[contrast]]\nname = "mean\\tresponse"\nweights = { Intercept = 1 }\n',
     )
     refused_alike(toml, capsys, "study.toml: [[contrast]] name: 'mean\\tresponse' holds a tab")
+
+
+def _with_atlas(tmp_path: Path, label_text: str) -> Path:
+    toml = study(tmp_path, mask=np.ones(SHAPE, bool))
+    labels = np.ones(SHAPE)
+    labels[2:] = 2
+    save(toml.parent / "atlas.nii.gz", labels)
+    (toml.parent / "atlas.tsv").write_text(label_text)
+    toml.write_text(toml.read_text() + '\n[atlas]\nimage = "atlas.nii.gz"\nlabels = "atlas.tsv"\n')
+    return toml
+
+
+def test_atlas_label_table_with_merged_rows_is_refused(tmp_path, capsys):
+    # the same quote rule as the runs table (RFC 4180, section 2): rows 2-3 would merge
+    toml = _with_atlas(
+        tmp_path, 'index\tname\themisphere\n1\t"left part\tleft\n2\tright part"\tright\n'
+    )
+    refused_alike(toml, capsys, "atlas.tsv: 2 line(s) hold rows but 1 row(s)", "line(s) 2, 3")
+
+
+def test_atlas_label_table_problems_name_physical_lines(tmp_path, capsys):
+    # a blank line 3 keeps the bad hemisphere on line 4
+    toml = _with_atlas(tmp_path, "index\tname\themisphere\n1\tleft\tleft\n\n2\tright\tnorth\n")
+    refused_alike(toml, capsys, "atlas.tsv, line 4: hemisphere 'north'")
+
+
+def test_reserved_line_column_is_refused(tmp_path, capsys):
+    toml = study(tmp_path, columns={"line": ["1"] * 6})
+    refused_alike(toml, capsys, "runs.tsv line 1: 'line' is a column name grouplevel uses")
