@@ -69,7 +69,7 @@ import scipy.sparse as sp
 from grouplevel.config import DEFAULT_ATLAS_MIN_COVERAGE
 from grouplevel.coordinates import describe_orientation
 from grouplevel.errors import UserError
-from grouplevel.images import AFFINE_TOLERANCE_MM, Grid
+from grouplevel.images import AFFINE_TOLERANCE_MM, Grid, affine_problem
 from grouplevel.textcheck import control_characters, read_text_table
 
 # Smallest share of the analysis mask that the atlas labels must cover (defined with the
@@ -303,6 +303,9 @@ def read_atlas(
         raise UserError(
             f"{image}: an atlas image must be one 3-D volume of labels, found shape {data.shape}"
         )
+    why = affine_problem(np.asarray(img.affine, dtype=float))
+    if why:
+        raise UserError(f"{image}: {why} ([atlas] image)")
     table = read_label_table(Path(labels))
     return build_atlas(
         data,

@@ -17,6 +17,10 @@ from grouplevel.errors import UserError
 # Affines may differ by rounding in the header (float32 storage); 1e-3 mm is far below
 # any rodent voxel (0.05-0.3 mm) yet above float32 round-off for typical coordinates.
 AFFINE_TOLERANCE_MM = 1e-3
+# A voxel whose volume is below this fraction of the product of its edge lengths is flat
+# (our own choice: only axes within about a millionth of a radian of a plane fall below
+# it, far from the shear of any real acquisition).
+SINGULAR_AFFINE_RATIO = 1e-6
 
 
 @dataclass(frozen=True)
@@ -60,7 +64,33 @@ def read_header_grid(path: Path) -> Grid:
         raise UserError(
             f"{path}: expected one 3-D volume, found shape {shape}; write one map per file"
         )
+    why = affine_problem(np.asarray(img.affine, dtype=float))
+    if why:
+        raise UserError(f"{path}: {why}")
     return Grid(shape=shape, affine=np.asarray(img.affine, dtype=float))  # type: ignore[arg-type]
+
+
+def affine_problem(affine: np.ndarray) -> str | None:
+    """Why a header's voxel-to-world affine cannot place the grid, or None if it can.
+
+    The affine must hold finite numbers and its 3 × 3 part must be invertible (a zero
+    voxel size, or two axes pointing the same way, collapse the grid onto a plane).
+    """
+    if not np.all(np.isfinite(affine)):
+        return (
+            "the header's affine (sform/qform) holds NaN or infinite values, so the map "
+            "has no position in space; fix the header (e.g. copy the template's affine)"
+        )
+    sizes = np.sqrt((affine[:3, :3] ** 2).sum(axis=0))
+    det = abs(float(np.linalg.det(affine[:3, :3])))
+    # relative to the voxel sizes, so that 0.05 mm rodent voxels are not mistaken
+    if sizes.min() == 0 or det <= SINGULAR_AFFINE_RATIO * float(np.prod(sizes)):
+        return (
+            "the header's affine (sform/qform) is degenerate: a voxel size is 0 or two "
+            "axes point the same way, so the grid has no volume; fix the header (e.g. "
+            "copy the template's affine)"
+        )
+    return None
 
 
 def _open(path: Path):

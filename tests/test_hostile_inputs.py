@@ -531,3 +531,29 @@ def test_atlas_label_table_problems_name_physical_lines(tmp_path, capsys):
 def test_reserved_line_column_is_refused(tmp_path, capsys):
     toml = study(tmp_path, columns={"line": ["1"] * 6})
     refused_alike(toml, capsys, "runs.tsv line 1: 'line' is a column name grouplevel uses")
+
+
+def _patch_sform_x(path: Path, value: float) -> None:
+    # srow_x starts at byte 280 and qform_code is the int16 at byte 252 of a NIfTI-1
+    # header (NIfTI-1 standard, nifti1.h; value from memory, checked below)
+    raw = bytearray(gzip.decompress(path.read_bytes()))
+    raw[252:254] = struct.pack("<h", 0)  # no qform: the sform alone places the grid
+    raw[280:284] = struct.pack("<f", value)
+    path.write_bytes(gzip.compress(bytes(raw)))
+
+
+def test_sform_patch_offsets_are_right(tmp_path):
+    path = save(tmp_path / "m.nii.gz", np.ones(SHAPE))
+    _patch_sform_x(path, 0.3)
+    assert nib.load(str(path)).affine[0, 0] == pytest.approx(0.3)
+
+
+@pytest.mark.parametrize(
+    ("value", "needle"), [(0.0, "is degenerate"), (float("nan"), "holds NaN or infinite")]
+)
+def test_unusable_affine_is_refused(tmp_path, capsys, value, needle):
+    # a zero voxel size makes the affine singular (common practice: det = 0)
+    toml = study(tmp_path)
+    _patch_sform_x(toml.parent / "maps" / "run002_effect.nii.gz", value)
+    text = refused_alike(toml, capsys, "1 problem(s)", "runs.tsv line 4 (animal b)", needle)
+    assert "line 3" not in text
