@@ -149,6 +149,11 @@ def _fit_first_level(
         # Without first-level variances a voxel whose runs all hold the same value has
         # no variance to estimate; it cannot be fitted.
         flat = np.nanmax(data.effect, axis=0) == np.nanmin(data.effect, axis=0)
+        if flat.all():  # inspect_study refuses this; kept so no traceback can follow
+            raise UserError(
+                f"{label}: every run holds the same value at every voxel and there are no "
+                "first-level variance maps: nothing can be fitted"
+            )
         if flat.any():
             keep = ~flat
             warnings.append(

@@ -68,8 +68,9 @@ import scipy.sparse as sp
 
 from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM, describe_orientation
 from grouplevel.errors import UserError
-from grouplevel.intake.images import AFFINE_TOLERANCE_MM, Grid
+from grouplevel.intake.images import AFFINE_TOLERANCE_MM, Grid, affine_problem
 from grouplevel.intake.settings import DEFAULT_ATLAS_MIN_COVERAGE
+from grouplevel.intake.textcheck import control_characters, read_text_table
 
 # Smallest share of the analysis mask that the atlas labels must cover (defined with the
 # other defaults in grouplevel.config).
@@ -245,11 +246,7 @@ def read_label_table(path: Path) -> pd.DataFrame:
     path = Path(path)
     if not path.is_file():
         raise UserError(f"{path}: atlas label table not found")
-    sep = "," if path.suffix.lower() == ".csv" else "\t"
-    try:
-        table = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False)
-    except Exception as exc:  # pandas raises several types for malformed text
-        raise UserError(f"{path}: cannot read the atlas label table ({exc})") from None
+    table = read_text_table(path, "atlas label table", "index, name, ...")
     table.columns = [str(c).strip().lower() for c in table.columns]
     return table
 
@@ -303,6 +300,9 @@ def read_atlas(
         raise UserError(
             f"{image}: an atlas image must be one 3-D volume of labels, found shape {data.shape}"
         )
+    why = affine_problem(np.asarray(img.affine, dtype=float))
+    if why:
+        raise UserError(f"{image}: {why} ([atlas] image)")
     table = read_label_table(Path(labels))
     return build_atlas(
         data,
@@ -362,9 +362,10 @@ def _validate_table(table: pd.DataFrame, source: str) -> _Table:
     table = table.rename(columns=lambda c: str(c).strip().lower())
     missing = [c for c in ("index", "name") if c not in table.columns]
     if missing:
+        found = ", ".join(repr(c) for c in table.columns if c != "line") or "none"
         raise UserError(
             f"{source}: the atlas label table has no {' and no '.join(repr(c) for c in missing)} "
-            f"column (found {', '.join(map(repr, table.columns)) or 'none'}); it needs at "
+            f"column (found {found}); it needs at "
             "least 'index' and 'name', as in a BIDS dseg.tsv"
         )
     rows = _table_rows(table, source)
@@ -405,8 +406,10 @@ def _table_rows(table: pd.DataFrame, source: str) -> dict[str, list]:
     keys = ("index", "name", "abbreviation", "hemisphere", "parent", "color", "line")
     rows: dict[str, list] = {key: [] for key in keys}
     problems: list[str] = []
+    # physical lines when the table was read by read_label_table, else header + row
+    lines = table["line"].tolist() if "line" in table.columns else range(2, len(table) + 2)
     for row in range(len(table)):
-        where = f"{source}, line {row + 2}"
+        where = f"{source}, line {lines[row]}"
         value = _as_integer(raw["index"][row])
         if value is None or value < 0:
             problems.append(f"{where}: index {raw['index'][row]!r} is not a whole number ≥ 0")
@@ -415,6 +418,14 @@ def _table_rows(table: pd.DataFrame, source: str) -> dict[str, list]:
             continue
         if not raw["name"][row]:
             problems.append(f"{where}: index {value} has an empty name")
+        for key in ("name", "abbreviation"):
+            bad = control_characters(raw[key][row])
+            if bad:
+                problems.append(
+                    f"{where}: the {key} {raw[key][row]!r} of index {value} holds "
+                    f"{', '.join(bad)}, which would break the rows of the region tables; "
+                    "remove it"
+                )
         side = raw["hemisphere"][row].casefold()
         if side not in _HEMISPHERE_WORDS:
             problems.append(
@@ -429,7 +440,7 @@ def _table_rows(table: pd.DataFrame, source: str) -> dict[str, list]:
             ("hemisphere", _HEMISPHERE_WORDS[side]),
             ("parent", raw["parent"][row]),
             ("color", raw["color"][row]),
-            ("line", row + 2),
+            ("line", int(lines[row])),
         ):
             rows[key].append(cell)
     if problems:

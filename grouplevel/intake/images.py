@@ -17,6 +17,10 @@ from grouplevel.errors import UserError
 # Affines may differ by rounding in the header (float32 storage); 1e-3 mm is far below
 # any rodent voxel (0.05-0.3 mm) yet above float32 round-off for typical coordinates.
 AFFINE_TOLERANCE_MM = 1e-3
+# A voxel whose volume is below this fraction of the product of its edge lengths is flat
+# (our own choice: only axes within about a millionth of a radian of a plane fall below
+# it, far from the shear of any real acquisition).
+SINGULAR_AFFINE_RATIO = 1e-6
 
 
 @dataclass(frozen=True)
@@ -51,6 +55,8 @@ def read_header_grid(path: Path) -> Grid:
         When the file is missing, unreadable or not a 3-D volume.
     """
     img = _open(path)
+    _check_real(path, img)
+    _check_scaling(path, img)
     shape = tuple(int(s) for s in img.shape)
     if len(shape) == 4 and shape[3] == 1:
         shape = shape[:3]
@@ -58,7 +64,33 @@ def read_header_grid(path: Path) -> Grid:
         raise UserError(
             f"{path}: expected one 3-D volume, found shape {shape}; write one map per file"
         )
+    why = affine_problem(np.asarray(img.affine, dtype=float))
+    if why:
+        raise UserError(f"{path}: {why}")
     return Grid(shape=shape, affine=np.asarray(img.affine, dtype=float))  # type: ignore[arg-type]
+
+
+def affine_problem(affine: np.ndarray) -> str | None:
+    """Why a header's voxel-to-world affine cannot place the grid, or None if it can.
+
+    The affine must hold finite numbers and its 3 × 3 part must be invertible (a zero
+    voxel size, or two axes pointing the same way, collapse the grid onto a plane).
+    """
+    if not np.all(np.isfinite(affine)):
+        return (
+            "the header's affine (sform/qform) holds NaN or infinite values, so the map "
+            "has no position in space; fix the header (e.g. copy the template's affine)"
+        )
+    sizes = np.sqrt((affine[:3, :3] ** 2).sum(axis=0))
+    det = abs(float(np.linalg.det(affine[:3, :3])))
+    # relative to the voxel sizes, so that 0.05 mm rodent voxels are not mistaken
+    if sizes.min() == 0 or det <= SINGULAR_AFFINE_RATIO * float(np.prod(sizes)):
+        return (
+            "the header's affine (sform/qform) is degenerate: a voxel size is 0 or two "
+            "axes point the same way, so the grid has no volume; fix the header (e.g. "
+            "copy the template's affine)"
+        )
+    return None
 
 
 def _open(path: Path):
@@ -70,9 +102,48 @@ def _open(path: Path):
         raise UserError(f"{path}: cannot read as NIfTI ({exc})") from None
 
 
+def _check_real(path: Path, img) -> None:
+    """Refuse complex or compound (e.g. RGB) voxel types: a map holds real numbers."""
+    dtype = img.get_data_dtype()
+    if dtype.kind == "c":
+        raise UserError(
+            f"{path}: the map holds complex numbers ({dtype}); an effect or variance map "
+            "must hold real numbers: write the real-valued map from the first-level fit"
+        )
+    if dtype.kind not in "biuf":
+        raise UserError(
+            f"{path}: the map holds {dtype} voxels (not plain numbers, e.g. a colour "
+            "image); write the map with one real number per voxel"
+        )
+
+
+def _check_scaling(path: Path, img) -> None:
+    """Refuse an infinite scl_slope or scl_inter in a NIfTI header.
+
+    nibabel replaces such values by NaN when it reads the header and then applies no
+    scaling, so the voxel values would silently lose the scaling the writer meant. A
+    NaN slope is accepted: NIfTI writers use it for "no scaling" (common practice).
+    """
+    if not isinstance(img, nib.Nifti1Image | nib.Nifti2Image):
+        return
+    try:
+        with nib.openers.ImageOpener(str(path)) as fobj:
+            raw = type(img.header).from_fileobj(fobj, check=False)
+    except Exception:  # the header was readable a moment ago; leave it to nibabel
+        return
+    for key in ("scl_slope", "scl_inter"):
+        value = float(raw[key])
+        if np.isinf(value):
+            raise UserError(
+                f"{path}: the header's {key} is {value}, so the voxel values cannot be "
+                "scaled to their true units; rewrite the map (without integer scaling)"
+            )
+
+
 def read_volume(path: Path) -> np.ndarray:
     """Read a 3-D volume as float64 (a trailing axis of length 1 is dropped)."""
     img = _open(path)
+    _check_real(path, img)
     try:
         data = np.asarray(img.dataobj, dtype=np.float64)
     except Exception as exc:

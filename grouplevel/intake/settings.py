@@ -19,6 +19,7 @@ from grouplevel.errors import UserError
 # cannot read this module); they are defaults of the settings all the same.
 from grouplevel.inference.significance import DEFAULT_ALPHA, DEFAULT_SIDED
 from grouplevel.inference.significance import SIDES as SIDED_CHOICES
+from grouplevel.intake.textcheck import control_characters
 
 # --- defaults (one place) -----------------------------------------------------------
 DEFAULT_MIN_COVERAGE = 1.0  # every run must have data at a voxel unless the user allows less
@@ -31,6 +32,10 @@ DEFAULT_CONTRAST_NAME = "mean"
 # fewer are run when every distinct permutation can be enumerated.
 DEFAULT_PERMUTATIONS = 5000
 DEFAULT_SEED = 1
+# Seeds are whole numbers 0 ... 2**63 - 1: numpy's generators refuse negative seeds, and
+# a seed that fits a signed 64-bit integer survives summary.json in any reader (common
+# practice for 64-bit integer fields).
+MAX_SEED = 2**63 - 1
 DEFAULT_CONNECTIVITY = 26  # faces, edges and corners (common practice for 3-D clusters)
 DEFAULT_CLUSTER_FORMING_P = 0.001  # Eklund et al. 2016: p = 0.001 keeps cluster FWE valid
 DEFAULT_FDR = "bh"  # Benjamini & Hochberg 1995
@@ -456,6 +461,14 @@ def load_settings(path: str | Path) -> Settings:
         contrasts.append(ContrastSpec(name=name, weights=clean))
     user_contrasts = bool(contrasts)
     comparisons = _read_comparisons(r, raw)
+    for spec in contrasts:  # names become table cells: no tab or line break in them
+        bad = control_characters(spec.name)
+        if bad:
+            r.problem(
+                "[[contrast]] name",
+                f"{spec.name!r} holds {', '.join(bad)}, which would break the rows of the "
+                "tables written; remove it",
+            )
     if not contrasts:
         contrasts.append(ContrastSpec(name=DEFAULT_CONTRAST_NAME, weights={"Intercept": 1.0}))
 
@@ -493,9 +506,14 @@ def load_settings(path: str | Path) -> Settings:
     tfce_h = r.get("inference", inf, "tfce_h", float, DEFAULT_TFCE_H)
     if tfce_e <= 0 or tfce_h <= 0:
         r.problem("[inference] tfce_e / tfce_h", "TFCE exponents must be positive")
+    seed = r.get("inference", inf, "seed", int, DEFAULT_SEED)
+    seed_problem = seed_error(seed)
+    if seed_problem:
+        r.problem("[inference] seed", seed_problem)
+        seed = DEFAULT_SEED
     inference = InferenceSettings(
         permutations=permutations,
-        seed=r.get("inference", inf, "seed", int, DEFAULT_SEED),
+        seed=seed,
         sided=sided,
         connectivity=connectivity,
         cluster_forming_p=cfp,
@@ -668,6 +686,13 @@ def _read_questions(
     )
 
 
+def seed_error(seed: int) -> str | None:
+    """What is wrong with a seed, or None when it is a whole number 0 ... MAX_SEED."""
+    if not 0 <= seed <= MAX_SEED:
+        return f"must be a whole number from 0 to {MAX_SEED} (2**63 - 1), got {seed}"
+    return None
+
+
 def with_overrides(
     settings: Settings, *, permutations: int | None = None, seed: int | None = None
 ) -> Settings:
@@ -678,5 +703,8 @@ def with_overrides(
             raise UserError(f"--permutations must be 0 or more, got {permutations}")
         inf = replace(inf, permutations=permutations)
     if seed is not None:
+        seed_problem = seed_error(seed)
+        if seed_problem:
+            raise UserError(f"--seed {seed_problem}")
         inf = replace(inf, seed=seed)
     return replace(settings, inference=inf)

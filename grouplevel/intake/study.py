@@ -34,6 +34,7 @@ from grouplevel.intake.design import (
 )
 from grouplevel.intake.images import Grid, grid_mismatch, read_header_grid, read_volume
 from grouplevel.intake.settings import Settings, load_settings, with_overrides
+from grouplevel.intake.textcheck import control_characters, read_text_table
 
 TRUE_WORDS = {"true", "yes", "1", "y", "t", "x"}
 FALSE_WORDS = {"false", "no", "0", "n", "f", ""}
@@ -100,6 +101,10 @@ class Study:
 def read_table(path: Path) -> pd.DataFrame:
     """Read the runs table (TSV, or CSV by extension) as text, with a ``line`` column.
 
+    ``line`` is the physical line of the file (the header is line 1; blank lines count).
+    A byte-order mark and Windows line endings are accepted. Refused, each with the
+    line named: a repeated column name, a quote that runs over line ends (rows would
+    merge silently), and control characters (tab, line break...) inside a value.
     A folder is read as a BIDS-style derivatives folder (:mod:`grouplevel.intake.bids`); its
     ``line`` numbers are those of the table ``grouplevel table FOLDER`` writes, and
     ``table.attrs["skipped"]`` lists the files it left out.
@@ -112,19 +117,35 @@ def read_table(path: Path) -> pd.DataFrame:
         return table
     if not path.is_file():
         raise UserError(f"{path}: runs table not found ([study] table)")
-    sep = "," if path.suffix.lower() == ".csv" else "\t"
-    try:
-        table = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False)
-    except Exception as exc:
-        raise UserError(f"{path}: cannot read the runs table: {exc}") from None
-    table.columns = [str(c).strip() for c in table.columns]
-    if table.empty:
-        raise UserError(f"{path}: the runs table has no rows")
-    if len(table.columns) == 1 and sep == "\t" and "," in table.columns[0]:
+    table = read_text_table(path, "runs table", "animal, effect, ...")
+    if len(table.columns) == 2 and path.suffix.lower() != ".csv" and "," in table.columns[1]:
         raise UserError(f"{path}: looks comma-separated; name it .csv or use tabs")
-    table = table.apply(lambda col: col.str.strip())
-    table.insert(0, "line", np.arange(len(table)) + 2)  # header is line 1
+    _check_control_characters(path, table)
+    table = table.apply(lambda col: col.str.strip() if col.name != "line" else col)
+    blank = (table.drop(columns="line") == "").all(axis=1)
+    table = table[~blank].reset_index(drop=True)  # a row of empty cells (",,,") is blank
+    if table.empty:
+        raise UserError(
+            f"{path}: the runs table has no rows (only a header line); add one line per run"
+        )
     return table
+
+
+def _check_control_characters(path: Path, table: pd.DataFrame) -> None:
+    problems = []
+    for col in table.columns:
+        if col == "line":
+            continue
+        for line, value in zip(table["line"], table[col], strict=True):
+            bad = control_characters(value)
+            if bad:
+                problems.append(
+                    f"{path.name} line {line}, column '{col}': the value {value!r} holds "
+                    f"{', '.join(bad)}, which would break the rows of the tables written "
+                    "from it; remove it"
+                )
+    if problems:
+        raise UserError(f"{path}: {len(problems)} value(s) hold control characters", problems)
 
 
 def _where(path: Path, row: pd.Series) -> str:
@@ -219,6 +240,7 @@ def _check_rows(path: Path, table: pd.DataFrame, problems: list[str]) -> pd.Data
             table[col] = ""
     if "condition" not in table.columns:
         table["condition"] = ""
+    problems.extend(_shared_files(path, table))
     if not problems and "run" in table.columns:
         key = ["condition", "animal", "session", "run"]
         keyed = table[table["run"] != ""]
@@ -233,10 +255,33 @@ def _check_rows(path: Path, table: pd.DataFrame, problems: list[str]) -> pd.Data
     return table
 
 
+def _shared_files(path: Path, table: pd.DataFrame) -> list[str]:
+    """One map file named for two included runs (a copy-paste slip in the table)."""
+    problems = []
+    included = table[~table["exclude"]]
+    for col in ("effect", "variance", "se"):
+        if col not in included.columns:
+            continue
+        named = included[included[col] != ""]
+        shared = named[named.duplicated(col, keep=False)]
+        for file, group in shared.groupby(col, sort=False):
+            lines = ", ".join(str(v) for v in group["line"])
+            problems.append(
+                f"{path.name} lines {lines}: the same '{col}' file {Path(file).name} is "
+                "listed for several runs; each run needs its own map (fix the path, or "
+                "exclude the duplicate runs)"
+            )
+    return problems
+
+
 def _covariates(
     path: Path, runs: pd.DataFrame, variables: list[str], problems: list[str]
 ) -> pd.DataFrame:
-    """Convert the formula's covariates: numeric when every value parses, else text."""
+    """Convert the formula's covariates: numeric when every value parses, else text.
+
+    A column whose values all parse as numbers once a single decimal comma is read as a
+    point (``2,5``) is refused: taken as text it would silently become a factor.
+    """
     runs = runs.copy()
     for var in variables:
         if var not in runs.columns:
@@ -249,6 +294,17 @@ def _covariates(
         numeric = pd.to_numeric(runs[var], errors="coerce")
         if numeric.notna().all():
             runs[var] = numeric.astype(float)
+            continue
+        filled = runs[var][~runs[var].isin(["", "NA", "n/a", "NaN", "nan"])]
+        commas = filled[filled.str.count(",") == 1]
+        as_point = pd.to_numeric(filled.str.replace(",", ".", regex=False), errors="coerce")
+        if len(commas) and as_point.notna().all():
+            first = runs.loc[commas.index[0]]
+            problems.append(
+                f"{_where(path, first)}: covariate '{var}' is written with a decimal comma "
+                f"({first[var]!r}); {len(commas)} value(s) of the column would be read as "
+                "text and make it a categorical factor. Write decimals with a point (2.5)"
+            )
     return runs
 
 
@@ -299,6 +355,171 @@ def _row_files(row: pd.Series, kind: str) -> list[str]:
     return [f for f in (row["effect"], row.get(kind, "") if kind != "none" else "") if f]
 
 
+@dataclass(frozen=True)
+class _MapCheck:
+    problems: list[str]
+    warnings: list[str]
+
+
+def _check_run_maps(
+    where: str,
+    row: pd.Series,
+    kind: str,
+    effect: np.ndarray,
+    raw_variance: np.ndarray | None,
+    ok: np.ndarray,
+    user_mask: np.ndarray | None,
+    min_coverage: float,
+) -> _MapCheck:
+    """Problems and warnings of one run's effect and variance (or se) maps.
+
+    ``ok`` marks the voxels where the run is usable (see :func:`_valid`); ``raw_variance``
+    is the map as written (standard errors not yet squared).
+    """
+    problems: list[str] = []
+    warnings: list[str] = []
+    effect_at = f"{where}: {Path(row['effect']).name}"
+    var_at = f"{where}: {Path(row[kind]).name}" if raw_variance is not None else ""
+    if np.isinf(effect).any():
+        problems.append(f"{effect_at}: {int(np.isinf(effect).sum())} infinite value(s)")
+    if raw_variance is not None and np.isinf(raw_variance).any():
+        problems.append(f"{var_at}: {int(np.isinf(raw_variance).sum())} infinite value(s)")
+    has_value = np.isfinite(effect)
+    if user_mask is None:
+        has_value &= effect != 0  # 0 is 'no data' without a mask
+    region = user_mask if user_mask is not None else np.ones(effect.shape, dtype=bool)
+    unusable = not ok[region].any()
+    if user_mask is not None and not unusable:  # (a run without data: one message below)
+        nan_in = int((np.isnan(effect) & user_mask).sum())
+        if nan_in and min_coverage >= 1.0:
+            problems.append(
+                f"{effect_at}: {nan_in} voxel(s) inside the mask have no value (NaN); "
+                "to fit those voxels with the runs that do have data, set "
+                "[study] min_coverage below 1 (e.g. 0.8)"
+            )
+    if raw_variance is not None:
+        problems.extend(_variance_problems(var_at, kind, raw_variance, has_value, user_mask))
+        warnings.extend(_variance_warnings(var_at, kind, raw_variance, has_value, user_mask))
+    if unusable:
+        problems.append(_unusable_message(effect_at, var_at, kind, effect, raw_variance, region))
+    elif has_value[region].sum() > 1:
+        values = effect[has_value & region]
+        if values.min() == values.max():
+            warnings.append(
+                f"{effect_at}: every one of its {values.size} voxel(s) with a value holds "
+                f"the same number ({values[0]:g}); a first-level effect map varies across "
+                "the brain, so check that the table names the right file"
+            )
+    return _MapCheck(problems, warnings)
+
+
+def _variance_problems(
+    var_at: str,
+    kind: str,
+    raw: np.ndarray,
+    has_value: np.ndarray,
+    user_mask: np.ndarray | None,
+) -> list[str]:
+    """Negative variances (or se) anywhere; zero ones inside a given mask."""
+    finite = np.isfinite(raw)
+    if user_mask is not None:
+        inside = finite & has_value & user_mask
+        negative = int((raw[inside] < 0).sum())
+        zero = int((raw[inside] == 0).sum())
+        if negative or zero:
+            return [
+                f"{var_at}: {negative + zero} voxel(s) inside the mask have zero or negative "
+                f"{kind} ({negative} negative, {zero} zero); a {kind} must be positive "
+                "wherever the run has data: check that the column names the right map, or "
+                "shrink the [study] mask to where the first-level fit had data"
+            ]
+        return []
+    negative = int((raw[finite] < 0).sum())
+    if negative:
+        return [
+            f"{var_at}: {negative} voxel(s) hold a negative {kind}; a {kind} cannot be "
+            f"negative: check that the '{kind}' column names the {kind} map (not an "
+            "effect or t map) and that the first-level tool wrote it correctly"
+        ]
+    return []
+
+
+def _variance_warnings(
+    var_at: str,
+    kind: str,
+    raw: np.ndarray,
+    has_value: np.ndarray,
+    user_mask: np.ndarray | None,
+) -> list[str]:
+    """Zero variances where the effect has a value (no mask: those voxels are dropped)."""
+    if user_mask is not None:
+        return []  # inside a mask a zero is an error (see _variance_problems)
+    zero = has_value & (raw == 0)
+    n_zero, n_value = int(zero.sum()), int(has_value.sum())
+    if not n_zero or n_zero == n_value:
+        return []  # none, or all: then the run has no usable voxel (an error)
+    return [
+        f"{var_at}: {n_zero} of the {n_value} voxel(s) where the effect has a value have "
+        f"{kind} 0. A zero first-level {kind} says the run was measured without error, "
+        "which is almost always a masking artefact of the first-level tool; grouplevel "
+        "treats these voxels as having no data for this run. Give a [study] mask to "
+        "have them refused instead"
+    ]
+
+
+def _unusable_message(
+    effect_at: str,
+    var_at: str,
+    kind: str,
+    effect: np.ndarray,
+    raw: np.ndarray | None,
+    region: np.ndarray,
+) -> str:
+    """Why a run has no usable voxel at all (all NaN, all 0, or no positive variance)."""
+    n = int(region.sum())
+    values = effect[region]
+    if np.isnan(values).all():
+        why = f"{effect_at}: all {n} voxel(s) are NaN (no value)"
+    elif np.all((values == 0) | ~np.isfinite(values)):
+        why = (
+            f"{effect_at}: all {n} voxel(s) are 0 or NaN (without a [study] mask, 0 is "
+            "read as 'no data', as first-level tools write 0 outside their brain mask)"
+        )
+    elif raw is not None:
+        why = f"{var_at}: the {kind} is zero, negative or NaN wherever the effect has a value"
+    else:
+        why = f"{effect_at}: no voxel holds a finite value"
+    return (
+        f"{why}; the run has no usable voxel. Check that the table names the right file "
+        "(rewrite it if the first-level fit failed), or exclude the run "
+        "(exclude = true, with a reason)"
+    )
+
+
+def _single_run_warning(
+    label: str, runs: pd.DataFrame, settings: Settings, variance_kind: str
+) -> str | None:
+    """Warn when every animal has one run: animal and run variance are then confounded."""
+    if settings.model.run_variance != "estimate" or runs.groupby("animal").size().max() > 1:
+        return None
+    remedy = "Add runs per animal to separate the two"
+    if variance_kind != "none":
+        remedy += (
+            ', or set [model] run_variance = "known" (σ² = 0) when the first-level '
+            "variance maps are trusted to hold all the run noise"
+        )
+    return (
+        f"{label}: every animal has a single run, so the data hold no within-animal "
+        "information: the between-animal variance (var_animal) and the run variance "
+        "(var_run) cannot be told apart. grouplevel still fits the model; the REML fit "
+        "then estimates only their sum (its information matrix is singular and a "
+        "pseudo-inverse is used), so the var_animal and var_run maps are an arbitrary "
+        "split of that sum and must not be read one by one. The group effect, its "
+        "standard error, t and df (animals minus the design's rank) are still valid, as "
+        f"in a one-map-per-animal analysis. {remedy}"
+    )
+
+
 def inspect_study(settings: Settings) -> Study:
     """Validate a study completely and return it, or raise with every problem found.
 
@@ -328,12 +549,6 @@ def inspect_study(settings: Settings) -> Study:
         raise UserError(f"{path}: {len(problems)} problem(s) in the runs table", problems)
 
     # -- grids (headers only) --
-    reference_path = settings.study.template or settings.study.mask or Path(table["effect"][0])
-    grid: Grid | None = None
-    try:
-        grid = read_header_grid(reference_path)
-    except UserError as exc:
-        problems.append(str(exc))
     files: dict[str, str] = {}  # path -> where it is named
     for key, p in (
         ("[study] template", settings.study.template),
@@ -351,18 +566,20 @@ def inspect_study(settings: Settings) -> Study:
         for col in ("effect", "variance", "se"):
             if col in table.columns and row[col]:
                 files.setdefault(row[col], f"{_where(path, row)} '{col}'")
+    grids: dict[str, Grid] = {}
     bad_files: set[str] = set()
     for p, where in files.items():
         try:
-            g = read_header_grid(Path(p))
+            grids[p] = read_header_grid(Path(p))
         except UserError as exc:
             problems.append(f"{where}: {exc}")
             bad_files.add(p)
-            continue
-        if grid is not None:
+    grid, source = _study_grid(settings, grids, list(included["effect"]))
+    if grid is not None:
+        for p, g in grids.items():
             why = grid_mismatch(grid, g)
             if why:
-                problems.append(f"{where}: {p}: {why}")
+                problems.append(f"{files[p]}: {p}: {why} ({source})")
                 bad_files.add(p)
     if grid is None or problems:
         raise UserError(f"{path}: {len(problems)} problem(s) in the study's files", problems)
@@ -459,45 +676,47 @@ def inspect_study(settings: Settings) -> Study:
         # -- data pass over this contrast's maps --
         cov_runs = np.zeros(grid.shape, dtype=np.int32)
         animal_seen = np.zeros((design.n_animals, *grid.shape), dtype=bool)
+        low = np.full(grid.shape, np.nan)
+        high = np.full(grid.shape, np.nan)
         readable = True
         for i, (_, row) in enumerate(inc.iterrows()):
             if any(f in bad_files for f in _row_files(row, variance_kind)):
                 readable = False
                 continue
             try:
+                comparison = isinstance(row.get(TERMS), tuple)
                 effect = _read_effect(row)
-                variance = _read_variance(row, variance_kind)
+                raw_variance = None
+                if comparison:  # the weighted sum of the conditions' variances
+                    raw_variance = _read_variance(row, variance_kind)
+                elif variance_kind != "none":
+                    raw_variance = read_volume(Path(row[variance_kind]))
             except UserError as exc:
                 problems.append(f"{_where(path, row)}: {exc}")
                 readable = False
                 continue
-            where = f"{_where(path, row)}: {Path(row['effect']).name}"
-            if np.isinf(effect).any():
-                problems.append(f"{where}: {int(np.isinf(effect).sum())} infinite value(s)")
-            if variance is not None and np.isinf(variance).any():
-                problems.append(
-                    f"{_where(path, row)}: {Path(row[variance_kind]).name}: "
-                    f"{int(np.isinf(variance).sum())} infinite value(s)"
-                )
-            if user_mask is not None:
-                nan_in = int((np.isnan(effect) & user_mask).sum())
-                if nan_in and settings.study.min_coverage >= 1.0:
-                    problems.append(
-                        f"{where}: {nan_in} voxel(s) inside the mask have no value (NaN); "
-                        "to fit those voxels with the runs that do have data, set "
-                        "[study] min_coverage below 1 (e.g. 0.8)"
-                    )
-                if variance is not None:
-                    finite = np.isfinite(effect) & np.isfinite(variance) & user_mask
-                    bad = int((variance[finite] <= 0).sum())
-                    if bad:
-                        problems.append(
-                            f"{_where(path, row)}: {Path(row[variance_kind]).name}: {bad} "
-                            f"voxel(s) inside the mask have zero or negative {variance_kind}"
-                        )
+            variance = raw_variance
+            if raw_variance is not None and variance_kind == "se" and not comparison:
+                variance = raw_variance**2
             ok = _valid(effect, variance, user_mask is not None)
+            if not comparison:  # a comparison's maps are checked with their conditions
+                checked = _check_run_maps(
+                    _where(path, row),
+                    row,
+                    variance_kind,
+                    effect,
+                    raw_variance,
+                    ok,
+                    user_mask,
+                    settings.study.min_coverage,
+                )
+                problems.extend(checked.problems)
+                warnings.extend(checked.warnings)
             cov_runs += ok
             animal_seen[design.animal[i]] |= ok
+            if variance_kind == "none":  # per-voxel range over runs (no variance: case 6)
+                low = np.fmin(low, np.where(ok, effect, np.nan))
+                high = np.fmax(high, np.where(ok, effect, np.nan))
         if not readable:
             continue
         cov_animals = animal_seen.sum(axis=0).astype(np.int32)
@@ -512,6 +731,17 @@ def inspect_study(settings: Settings) -> Study:
                 f"([study] min_coverage = {settings.study.min_coverage}) and 2 animals"
             )
             continue
+        if variance_kind == "none" and np.all(low[mask] == high[mask]):
+            problems.append(
+                f"{label}: at every analysed voxel all {n_runs} runs hold the same value and "
+                "the runs table gives no first-level variance maps, so there is no variance "
+                "to estimate and nothing can be fitted; check that each run names its own "
+                "effect map, or add a 'variance' or 'se' column"
+            )
+            continue
+        single = _single_run_warning(label, inc, settings, variance_kind)
+        if single:
+            warnings.append(single)
         if user_mask is not None and settings.study.min_coverage < 1.0:
             dropped = int((user_mask & ~mask).sum())
             if dropped:
@@ -577,6 +807,38 @@ def inspect_study(settings: Settings) -> Study:
         user_mask=user_mask,
         warnings=tuple(warnings),
         atlas=atlas,
+    )
+
+
+def _study_grid(
+    settings: Settings, grids: dict[str, Grid], effects: list[str]
+) -> tuple[Grid | None, str]:
+    """The study grid: the template's, else the mask's, else the one most maps share.
+
+    Choosing the majority grid when no template or mask is given names only the odd
+    map(s) when one file differs, whichever line of the table it is on.
+    """
+    for key, p in (("template", settings.study.template), ("mask", settings.study.mask)):
+        if p is not None:
+            return grids.get(str(p)), f"the grid of [study] {key}"
+    groups: list[tuple[Grid, int]] = []
+    for p in effects:
+        g = grids.get(p)
+        if g is None:
+            continue
+        for k, (ref, count) in enumerate(groups):
+            if grid_mismatch(ref, g) is None:
+                groups[k] = (ref, count + 1)
+                break
+        else:
+            groups.append((g, 1))
+    if not groups:
+        return None, ""
+    grid, count = max(groups, key=lambda item: item[1])  # ties: the earliest in the table
+    n = sum(c for _, c in groups)
+    return grid, (
+        f"the grid shared by {count} of {n} effect maps; give [study] template to set the "
+        "grid explicitly"
     )
 
 

@@ -35,6 +35,9 @@ TEMPLATE_CMAP = "gray"
 DPI = 110  # screen resolution of the embedded PNGs; sharp on print at page width
 MONTAGE_SLICES = 12  # coronal slices from anterior to posterior (two rows of six)
 MONTAGE_COLUMNS = 6
+# Narrowest share of the figure's width a projection panel gets (our own choice: a
+# panel of a one-voxel-thin grid stays readable next to a long one).
+MIN_PANEL_SHARE = 0.2
 END_TRIM = 0.06  # share of the brain's AP extent skipped at each end of the montage
 OUTLINE_COLOUR = "0.35"
 ACCENT = "#3a6ea5"  # points and bars of the plots (one calm colour)
@@ -277,10 +280,13 @@ def projection_views(
             "DV (mm)",
         ),
     )
-    widths = [ml[-1] - ml[0], ap[-1] - ap[0]]
+    # panel widths follow the brain's extent (voxel edges included, so a grid one voxel
+    # thin still has a width), each panel keeping at least MIN_PANEL_SHARE of the row
+    widths = np.array([ml[-1] - ml[0] + 2 * half[0], ap[-1] - ap[0] + 2 * half[1]])
     left = 0.08
     total = 0.86
-    share = np.asarray(widths) / sum(widths)
+    share = np.maximum(widths / widths.sum(), MIN_PANEL_SHARE)
+    share = share / share.sum()
     image = None
     for n, (title, along, _h, _v, ext, xlab, ylab) in enumerate(views):
         ax = fig.add_axes(
@@ -306,7 +312,8 @@ def projection_views(
             extent=ext,
             interpolation="nearest",
         )
-        if 0 < outline.sum() < outline.size:  # a contour needs inside and outside
+        # a contour needs inside and outside, and at least 2 × 2 points
+        if 0 < outline.sum() < outline.size and min(outline.shape) >= 2:
             ax.contour(
                 outline.astype(float),
                 levels=[0.5],
