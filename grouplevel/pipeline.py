@@ -24,6 +24,7 @@ from tqdm import tqdm
 from grouplevel import __version__
 from grouplevel.compute import Backend, fit_voxel_chunks, open_backend
 from grouplevel.config import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
+from grouplevel.design import weights_dict
 from grouplevel.errors import UserError
 from grouplevel.images import Grid, write_map
 from grouplevel.inference import FdrResult, Smoothness, estimate_smoothness, fdr
@@ -330,7 +331,6 @@ def _fit_first_level(
             df = between_animal_df(design.matrix, design.animal, present, c)
         res = test_contrast(fit, c, df)
         default = cname == DEFAULT_CONTRAST_NAME
-        spec = next(s for s in settings.contrasts if s.name == cname)
         name = fl.output_name(cname, default)
         df_full = np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy()
         corrected = _correct(
@@ -341,7 +341,7 @@ def _fit_first_level(
             name=name,
             first_level=fl.name,
             contrast=cname,
-            weights=dict(spec.weights),
+            weights=weights_dict(c, design.columns),
             grid=study.grid,
             mask=mask,
             effect=res.effect,

@@ -55,6 +55,8 @@ class FirstLevel:
     coverage_runs: np.ndarray  # (3-D int) runs with data per voxel
     coverage_animals: np.ndarray  # (3-D int) animals with data per voxel
     variance_kind: str  # "variance", "se" or "none"
+    # group contrast name -> what it tests, in plain words (default contrasts)
+    contrast_meanings: dict[str, str] = field(default_factory=dict)
 
     def output_name(self, contrast_name: str, default_contrast: bool) -> str:
         """Folder name of a group contrast's maps (see DESIGN.md, output contract)."""
@@ -328,7 +330,12 @@ def inspect_study(settings: Settings) -> Study:
         if missing or covariate_problems:
             continue
         try:
-            design = build_design(inc, settings.model.formula)
+            design = build_design(
+                inc,
+                settings.model.formula,
+                center_covariates=settings.model.center_covariates,
+                reference=settings.model.reference,
+            )
         except UserError as exc:
             problems.append(f"{label}: {exc}")
             continue
@@ -344,15 +351,7 @@ def inspect_study(settings: Settings) -> Study:
                 "cannot be permuted without breaking the nesting of runs in animals. Set "
                 "permutations = 0 (parametric maps only) or use animal-level covariates"
             )
-        contrasts = []
-        for spec in settings.contrasts:
-            try:
-                contrasts.append(
-                    (spec.name, contrast_vector(spec.weights, design.columns, spec.name))
-                )
-            except UserError as exc:
-                problems.append(str(exc))
-                problems.extend(exc.problems)
+        contrasts, meanings = _group_contrasts(settings, design, label, problems)
         # -- data pass over this contrast's maps --
         cov_runs = np.zeros(grid.shape, dtype=np.int32)
         animal_seen = np.zeros((design.n_animals, *grid.shape), dtype=bool)
@@ -429,6 +428,7 @@ def inspect_study(settings: Settings) -> Study:
                 coverage_runs=cov_runs,
                 coverage_animals=cov_animals,
                 variance_kind=variance_kind,
+                contrast_meanings=meanings,
             )
         )
 
@@ -476,6 +476,35 @@ def inspect_study(settings: Settings) -> Study:
         warnings=tuple(warnings),
         atlas=atlas,
     )
+
+
+def _group_contrasts(
+    settings: Settings, design: Design, label: str, problems: list[str]
+) -> tuple[list[tuple[str, np.ndarray]], dict[str, str]]:
+    """The study's [[contrast]]s, or the design's default contrasts when it has none."""
+    contrasts: list[tuple[str, np.ndarray]] = []
+    if settings.user_contrasts:
+        for spec in settings.contrasts:
+            try:
+                contrasts.append(
+                    (spec.name, contrast_vector(spec.weights, design.columns, spec.name))
+                )
+            except UserError as exc:
+                problems.append(str(exc))
+                problems.extend(exc.problems)
+        return contrasts, {}
+    if not design.default_contrasts:
+        problems.append(
+            f"{label}: [model] formula {settings.model.formula!r}: no default contrast can "
+            "be named after what it tests ("
+            + "; ".join(design.left_out)
+            + "); define the contrasts to test as [[contrast]] blocks (name and weights on "
+            f"the coefficients {', '.join(design.columns)})"
+        )
+        return contrasts, {}
+    for gc in design.default_contrasts:
+        contrasts.append((gc.name, gc.weights))
+    return contrasts, {gc.name: gc.meaning for gc in design.default_contrasts}
 
 
 def _check_questions(settings: Settings, contrast_names: list[str], atlas: Atlas | None):
