@@ -38,6 +38,7 @@ from grouplevel.model import (
     satterthwaite_df,
     test_contrast,
 )
+from grouplevel.overview import design_description
 from grouplevel.questions import Answers, answer_questions, asks_questions
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.study import FirstLevel, Study, load_runs, load_study
@@ -708,6 +709,7 @@ def _inference_summary(gm: GroupMap, alpha: float) -> dict:
             "exhaustive": perm.scheme.exhaustive,
             "distinct_permutations": perm.scheme.n_distinct,
             "smallest_attainable_p": perm.scheme.smallest_p,
+            "equivalent_to_identity": perm.scheme.n_equivalent,
             "cluster_forming_z": perm.cluster_forming_z,
             "surviving": {
                 "voxel": int((perm.p_fwe_voxel <= alpha).sum()),
@@ -767,6 +769,9 @@ def write_outputs(
                 "affine": grid.affine.tolist(),
             },
             "atlas": _atlas_summary(study),
+            "design": {
+                fl.name or "runs": design_description(study, fl) for fl in study.first_levels
+            },
             "results": {gm.name: _result_summary(study, gm) for gm in maps},
             "warnings": list(study.warnings) + list(warnings or []),
         }

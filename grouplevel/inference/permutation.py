@@ -291,7 +291,7 @@ def count_design_symmetries(design: np.ndarray, rearranged: np.ndarray, sided: s
     return int(np.sum(exact & rest_zero & keeps))
 
 
-def tests_a_mean(x_interest: np.ndarray, nuisance: np.ndarray) -> bool:
+def is_mean_contrast(x_interest: np.ndarray, nuisance: np.ndarray) -> bool:
     """Whether the contrast changes when every animal's data shift by one constant.
 
     Such a contrast (the group mean, the mean of one group, the mean over groups) is
@@ -330,7 +330,7 @@ def plan_permutations(
     m = x_interest.shape[0]
     if n_requested < 1:
         raise UserError("[inference] permutations must be at least 1 for a permutation test")
-    if tests_a_mean(x_interest, nuisance):
+    if is_mean_contrast(x_interest, nuisance):
         n_distinct = 2.0**m
         if n_distinct <= n_requested:
             bits = (np.arange(2**m)[:, None] >> np.arange(m)[None, :]) & 1
