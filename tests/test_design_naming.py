@@ -26,10 +26,11 @@ from grouplevel.cli import main
 from grouplevel.design import build_design, column_levels, formula_variables
 from grouplevel.inference.permutation import (
     count_design_symmetries,
+    is_mean_contrast,
     partition_design,
     plan_permutations,
-    is_mean_contrast,
 )
+from grouplevel.pipeline import run_study
 from tests.conftest import write_study
 
 # 3 ko and 3 wt animals, two runs each; dose 0, 1, 2 within each genotype
@@ -390,7 +391,7 @@ def test_bad_reference_or_unnamable_defaults_give_clear_errors(tmp_path, capsys,
 
 def test_run_reports_design_and_exact_floor(tmp_path):
     toml = _two_group_study(tmp_path, extra="\n[inference]\npermutations = 100\n")
-    out = grouplevel.pipeline.run_study(toml, tmp_path / "out")
+    out = run_study(toml, tmp_path / "out")
     summary = json.loads((out / "summary.json").read_text())
     design = summary["design"]["runs"]
     assert [c["name"] for c in design["contrasts"]] == [
