@@ -462,9 +462,9 @@ def load_settings(path: str | Path) -> Settings:
         if clean and all(w == 0 for w in clean.values()):
             r.problem(f"[{where}] weights", "all weights are zero")
         contrasts.append(ContrastSpec(name=name, weights=clean))
+    # without [[contrast]] blocks the design's default contrasts are tested, each named
+    # after what it tests (grouplevel.design); none is assumed here
     user_contrasts = bool(contrasts)
-    if not contrasts:
-        contrasts.append(ContrastSpec(name=DEFAULT_CONTRAST_NAME, weights={"Intercept": 1.0}))
 
     inf = section("inference")
     permutations = r.get("inference", inf, "permutations", int, DEFAULT_PERMUTATIONS)

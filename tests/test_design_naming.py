@@ -378,6 +378,14 @@ def test_center_of_a_text_table_column_no_longer_fails(tmp_path, capsys):
             "[model] reference names 'strain', which the formula does not use",
         ),
         (
+            'formula = "1 + genotype"\nreference = { genotype = 1 }',
+            "[model] reference.genotype: must be the name of a level (text), got 1",
+        ),
+        (
+            'formula = "1 + genotype"\ncenter_covariates = "yes"',
+            "[model] center_covariates: expected bool, got 'yes'",
+        ),
+        (
             'formula = "1 + np.log(dose + 1)"',
             "no default contrast can be named after what it tests",
         ),
@@ -407,6 +415,9 @@ def test_run_reports_design_and_exact_floor(tmp_path):
     diff = summary["results"]["ko-minus-wt"]["inference"]["permutation"]
     assert diff["permutations"] == 20 and diff["smallest_attainable_p"] == pytest.approx(0.1)
     assert any("ko-minus-wt" in w and "0.1" in w for w in summary["warnings"])
+    # the report lists the contrasts tested, not an intercept called "mean"
+    html = (out / "report.html").read_text()
+    assert "contrast ko-minus-wt" in html and "contrast mean<" not in html
     # the null maxima come in identical pairs: each relabelling and its mirror
     null = pd.read_csv(out / "ko-minus-wt" / "null_max.tsv", sep="\t")["max_z"].to_numpy()
     counts = pd.Series(np.round(null, 4)).value_counts()
