@@ -324,6 +324,17 @@ def _factor_list(spec, data: pd.DataFrame, animal: np.ndarray) -> tuple[list[Fac
     return factors, raw_levels
 
 
+class _NamedContrasts(dict):
+    """name -> (weights, meaning); a name that is taken gets a number (levels whose
+    folder-safe spellings coincide, e.g. ``a b`` and ``a_b``)."""
+
+    def __setitem__(self, name: str, value: tuple[np.ndarray, str]) -> None:
+        unique, k = name, 2
+        while unique in self:
+            unique, k = f"{name}-{k}", k + 1
+        super().__setitem__(unique, value)
+
+
 class _NoGrid(Exception):
     """The reference grid cannot be built (the reason is its message)."""
 
@@ -351,7 +362,7 @@ def _grid(spec, columns, factors, raw_levels, data, values: dict[str, float]):
 def _contrasts_at(spec, columns, factors, raw_levels, data, values, slopes, where: str):
     """Named contrasts with the covariates at ``values``: name -> (weights, meaning)."""
     cells, L = _grid(spec, columns, factors, raw_levels, data, values)
-    out: dict[str, tuple[np.ndarray, str]] = {}
+    out = _NamedContrasts()
     one = len(factors) == 1
     for k, f in enumerate(factors):
         prefix = "" if one else f"{_safe(f.variable)}-"

@@ -77,6 +77,7 @@ _FOLDED_FLOOR_SHARE = 1e-10
 # Tolerance (relative to the design's largest entry) when deciding that a rearranged
 # design equals the design times a matrix: exact arithmetic up to rounding.
 _SYMMETRY_TOL = 1e-8
+_SYMMETRY_BLOCK = 4096  # rearrangements checked at once
 
 
 @dataclass(frozen=True)
@@ -278,17 +279,21 @@ def count_design_symmetries(design: np.ndarray, rearranged: np.ndarray, sided: s
     blocks and the permutation group of a design).
     """
     D = np.asarray(design, dtype=float)
-    A = np.asarray(rearranged, dtype=float)
-    scale = max(1.0, float(np.abs(D).max()))
-    tol = _SYMMETRY_TOL * scale
-    M = np.linalg.pinv(D) @ A  # (n, p, p) least-squares solutions of D·M = A
-    exact = np.abs(A - D @ M).max(axis=(1, 2)) <= tol
-    first = M[:, 0, :]
-    rest_zero = np.abs(first[:, 1:]).max(axis=1, initial=0.0) <= tol
-    plus = np.abs(first[:, 0] - 1.0) <= tol
-    minus = np.abs(first[:, 0] + 1.0) <= tol
-    keeps = plus | minus if sided == "two" else plus
-    return int(np.sum(exact & rest_zero & keeps))
+    tol = _SYMMETRY_TOL * max(1.0, float(np.abs(D).max()))
+    pinv = np.linalg.pinv(D)
+    count = 0
+    # blocks of rearrangements keep the (n, m, p) temporaries small
+    for lo in range(0, rearranged.shape[0], _SYMMETRY_BLOCK):
+        A = np.asarray(rearranged[lo : lo + _SYMMETRY_BLOCK], dtype=float)
+        M = pinv @ A  # (n, p, p) least-squares solutions of D·M = A
+        exact = np.abs(A - D @ M).max(axis=(1, 2)) <= tol
+        first = M[:, 0, :]
+        rest_zero = np.abs(first[:, 1:]).max(axis=1, initial=0.0) <= tol
+        plus = np.abs(first[:, 0] - 1.0) <= tol
+        minus = np.abs(first[:, 0] + 1.0) <= tol
+        keeps = plus | minus if sided == "two" else plus
+        count += int(np.sum(exact & rest_zero & keeps))
+    return count
 
 
 def is_mean_contrast(x_interest: np.ndarray, nuisance: np.ndarray) -> bool:
@@ -309,6 +314,26 @@ def is_mean_contrast(x_interest: np.ndarray, nuisance: np.ndarray) -> bool:
     if np.abs(D @ w - ones).max() <= tol:
         return bool(abs(w[0]) > tol)
     return bool(np.allclose(x_interest, x_interest[0]))
+
+
+class _SignFlipped:
+    """The design under every sign flip, built block by block: ``signs[k] · D``."""
+
+    def __init__(self, design: np.ndarray, signs: np.ndarray) -> None:
+        self.design, self.signs, self.shape = design, signs, (signs.shape[0], *design.shape)
+
+    def __getitem__(self, rows: slice) -> np.ndarray:
+        return self.signs[rows, :, None] * self.design[None]
+
+
+class _Reordered:
+    """The design under every animal permutation, block by block: ``D[orders[k]]``."""
+
+    def __init__(self, design: np.ndarray, orders: np.ndarray) -> None:
+        self.design, self.orders, self.shape = design, orders, (orders.shape[0], *design.shape)
+
+    def __getitem__(self, rows: slice) -> np.ndarray:
+        return self.design[self.orders[rows]]
 
 
 def plan_permutations(
@@ -345,7 +370,7 @@ def plan_permutations(
         same = 1
         if exhaustive:
             D = np.column_stack([x_interest, nuisance])
-            same = count_design_symmetries(D, signs[:, :, None] * D[None], sided)
+            same = count_design_symmetries(D, _SignFlipped(D, signs), sided)
         return PermutationScheme(
             "sign flips", signs.astype(np.int8), orders, exhaustive, n_distinct, same / n, same
         )
@@ -367,7 +392,7 @@ def plan_permutations(
     same = 1
     if exhaustive:
         D = np.column_stack([x_interest, nuisance])
-        same = count_design_symmetries(D, D[orders], sided)
+        same = count_design_symmetries(D, _Reordered(D, orders), sided)
     n = orders.shape[0]
     return PermutationScheme(
         "animal permutations", signs, orders, exhaustive, n_distinct, same / n, same
