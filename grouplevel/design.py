@@ -209,6 +209,14 @@ def _level_text(value) -> str:
     return str(value)
 
 
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
 def _safe(text: str) -> str:
     """A piece of a contrast name that is safe in a folder name (ASCII, no separators)."""
     return _UNSAFE.sub("_", text).strip("._") or "level"
@@ -246,6 +254,25 @@ def _apply_reference(
         data[var] = pd.Categorical(
             data[var].astype(str), categories=[level] + [v for v in levels if v != level]
         )
+
+
+def _categorical_variables(f: Formula) -> set[str]:
+    """Variables made factors by the formula: the first argument of ``C(...)``."""
+    out = set()
+    for factor in _factors_of(f):
+        try:
+            tree = ast.parse(str(factor.expr), mode="eval")
+        except SyntaxError:
+            continue
+        for node in ast.walk(tree):
+            if (
+                isinstance(node, ast.Call)
+                and isinstance(node.func, ast.Name)
+                and node.func.id == "C"
+                and node.args
+            ):
+                out |= _names_in(ast.unparse(node.args[0]))
+    return out
 
 
 def _plain_and_transformed(f: Formula) -> tuple[set[str], set[str], set[str]]:
@@ -363,9 +390,11 @@ def _contrasts_at(spec, columns, factors, raw_levels, data, values, slopes, wher
     """Named contrasts with the covariates at ``values``: name -> (weights, meaning)."""
     cells, L = _grid(spec, columns, factors, raw_levels, data, values)
     out = _NamedContrasts()
-    one = len(factors) == 1
     for k, f in enumerate(factors):
-        prefix = "" if one else f"{_safe(f.variable)}-"
+        # the variable is part of the name with several factors, or numeric levels
+        # ("mean-dose-2" rather than "mean-2")
+        bare = len(factors) == 1 and not any(_is_number(lv) for lv in f.levels)
+        prefix = "" if bare else f"{_safe(f.variable)}-"
         rows = {}
         for j, level in enumerate(raw_levels[k]):
             pick = [i for i, cell in enumerate(cells) if cell[k] == level]
@@ -497,8 +526,11 @@ def build_design(
     data = runs.reset_index(drop=True).copy()
     f = _parse(formula)
     variables = [v for v in formula_variables(formula) if v in data.columns]
-    numeric = [v for v in variables if pd.api.types.is_numeric_dtype(data[v])]
-    text_vars = [v for v in variables if v not in numeric]
+    categorical = _categorical_variables(f)
+    numeric = [
+        v for v in variables if pd.api.types.is_numeric_dtype(data[v]) and v not in categorical
+    ]
+    text_vars = [v for v in variables if not pd.api.types.is_numeric_dtype(data[v])]
     for var in text_vars:
         data[var] = data[var].astype(str)
     _apply_reference(data, dict(reference or {}), variables, text_vars)

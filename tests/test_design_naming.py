@@ -230,6 +230,20 @@ def test_center_and_scale_in_the_formula():
     assert _names_and_weights(s)["dose-slope"] == pytest.approx([0.0, 1.0 / sd])
 
 
+def test_numeric_factor_with_three_levels():
+    d = build_design(_runs(), "1 + C(dose)")
+    assert d.columns == ("Intercept", "C(dose)[T.1.0]", "C(dose)[T.2.0]")
+    assert _names_and_weights(d) == {
+        "mean-dose-0": [1.0, 0.0, 0.0],
+        "mean-dose-1": [1.0, 1.0, 0.0],
+        "mean-dose-2": [1.0, 0.0, 1.0],
+        "dose-1-minus-0": [0.0, 1.0, 0.0],
+        "dose-2-minus-0": [0.0, 0.0, 1.0],
+        "mean-over-groups": pytest.approx([1.0, 1 / 3, 1 / 3]),
+    }
+    assert d.factors[0].animals == (2, 2, 2)
+
+
 def test_interaction_slope_is_averaged_over_groups():
     d = build_design(_runs(), "1 + genotype * dose")
     assert _names_and_weights(d)["dose-slope"] == [0.0, 0.0, 1.0, 0.5]
