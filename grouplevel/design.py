@@ -63,7 +63,8 @@ class Covariate:
 
     variable: str
     centring: str  # plain words: how (and whether) it is centred
-    centre: float | None  # the value the default contrasts are evaluated at, None: 0
+    centre: float | None  # the (raw) value the default contrasts are evaluated at; None:
+    # not centred (the intercept is the response at 0)
 
 
 @dataclass(frozen=True)
@@ -429,12 +430,12 @@ def _covariate_list(
     covariates, values, uncentred, linear = [], {}, [], []
     for var in numeric:
         if var in centres:
-            how, centre = f"centred at its mean over animals ({centres[var]:.4g})", 0.0
+            how, centre = f"centred at its mean over animals ({centres[var]:.4g})", centres[var]
             values[var] = 0.0
         elif var in centring:
             run_mean = float(data[var].mean())
-            how, centre = f"centred by the formula at its mean over runs ({run_mean:.4g})", None
-            values[var] = run_mean
+            how = f"centred by the formula at its mean over runs ({run_mean:.4g})"
+            centre = values[var] = run_mean
         else:
             how, centre = "not centred", None
             values[var] = float(data[var].mean())

@@ -116,7 +116,8 @@ def design_description(study: Study, fl: FirstLevel) -> dict:
             for f in design.factors
         ],
         "covariates": [
-            {"variable": cv.variable, "centring": cv.centring} for cv in design.covariates
+            {"variable": cv.variable, "centring": cv.centring, "centre": cv.centre}
+            for cv in design.covariates
         ],
         "contrasts": contrasts,
         "left_out": list(design.left_out) if not study.settings.user_contrasts else [],

@@ -196,6 +196,7 @@ def test_defaults_for_a_covariate_are_centred():
     first = [ANIMALS.index(a) for a in dict.fromkeys(ANIMALS)]
     assert d.matrix[first, 1].mean() == pytest.approx(0.0, abs=1e-12)
     assert "centred at its mean over animals (1)" in d.covariates[0].centring
+    assert d.covariates[0].centre == pytest.approx(1.0)
 
 
 def test_uncentred_covariate_leaves_the_mean_out():
