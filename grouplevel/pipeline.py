@@ -26,6 +26,7 @@ import pandas as pd
 
 from grouplevel import __version__
 from grouplevel.anatomy.tables import region_data, region_tables
+from grouplevel.cli.overview import design_description
 from grouplevel.errors import UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
@@ -33,6 +34,7 @@ from grouplevel.inference.permutation import (
     permutation_test,
 )
 from grouplevel.inference.significance import sided_p
+from grouplevel.intake.design import weights_dict
 from grouplevel.intake.images import Grid, write_map
 from grouplevel.intake.settings import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
 from grouplevel.intake.study import FirstLevel, Study, load_runs, load_study
@@ -213,7 +215,6 @@ def _fit_first_level(
             df = between_animal_df(design.matrix, design.animal, present, c)
         res = test_contrast(fit, c, df)
         default = cname == DEFAULT_CONTRAST_NAME
-        spec = next(s for s in settings.contrasts if s.name == cname)
         name = fl.output_name(cname, default)
         df_full = np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy()
         corrected = _correct(
@@ -224,7 +225,7 @@ def _fit_first_level(
             name=name,
             first_level=fl.name,
             contrast=cname,
-            weights=dict(spec.weights),
+            weights=weights_dict(c, design.columns),
             grid=study.grid,
             mask=mask,
             effect=res.effect,
@@ -594,6 +595,7 @@ def _inference_summary(gm: GroupMap, alpha: float) -> dict:
             "exhaustive": perm.scheme.exhaustive,
             "distinct_permutations": perm.scheme.n_distinct,
             "smallest_attainable_p": perm.scheme.smallest_p,
+            "equivalent_to_identity": perm.scheme.n_equivalent,
             "cluster_forming_z": perm.cluster_forming_z,
             "surviving": {
                 "voxel": int((perm.p_fwe_voxel <= alpha).sum()),
@@ -653,6 +655,9 @@ def write_outputs(
                 "affine": grid.affine.tolist(),
             },
             "atlas": _atlas_summary(study),
+            "design": {
+                fl.name or "runs": design_description(study, fl) for fl in study.first_levels
+            },
             "results": {gm.name: _result_summary(study, gm) for gm in maps},
             "warnings": list(study.warnings) + list(warnings or []),
         }

@@ -332,7 +332,11 @@ def test_two_group_label_permutations_count(m1, m2, seed):
     members = {frozenset(int(a) for a in order[group == 1]) for order in scheme.orders}
     assert len(members) == math.comb(m, m1)
     assert np.array_equal(scheme.orders[0], np.arange(m))
-    assert scheme.smallest_p == pytest.approx(1.0 / math.comb(m, m1))
+    # two-sided: with equal groups, swapping the two label sets gives -t, so every
+    # assignment pairs with its mirror and the smallest p is 2/C(m, m1) (common practice)
+    mirror = 2.0 if m1 == m2 else 1.0
+    assert scheme.n_equivalent == mirror
+    assert scheme.smallest_p == pytest.approx(mirror / math.comb(m, m1))
 
 
 def test_sign_flip_count_is_two_to_the_m():

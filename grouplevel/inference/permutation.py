@@ -72,6 +72,10 @@ _CHUNK_VOXELS = 65536
 # τ̂² + σ̂², which keeps the floor relative to the data's scale (our own choice: far below
 # any variance that changes a t statistic in its leading digits).
 _FOLDED_FLOOR_SHARE = 1e-10
+# Tolerance (relative to the design's largest entry) when deciding that a rearranged
+# design equals the design times a matrix: exact arithmetic up to rounding.
+_SYMMETRY_TOL = 1e-8
+_SYMMETRY_BLOCK = 4096  # rearrangements checked at once
 
 
 @dataclass(frozen=True)
@@ -211,7 +215,12 @@ class PermutationScheme:
     n_distinct
         Number of distinct permutations (may be astronomically large: a float).
     smallest_p
-        The smallest p-value that these permutations can give.
+        The smallest p-value that these permutations can give: ``n_equivalent / n``
+        for an exhaustive scheme, ``1 / n`` for a random one.
+    n_equivalent
+        How many of the enumerated rearrangements (the identity included) give the
+        observed statistic back for any data: the design symmetries of the test (see
+        :func:`count_design_symmetries`). 1 for a random scheme.
     """
 
     kind: str
@@ -220,10 +229,107 @@ class PermutationScheme:
     exhaustive: bool
     n_distinct: float
     smallest_p: float
+    n_equivalent: int = 1
 
     @property
     def n(self) -> int:
         return int(self.signs.shape[0])
+
+
+def count_design_symmetries(design: np.ndarray, rearranged: np.ndarray, sided: str = "two") -> int:
+    """How many rearranged designs give the same statistic as the design itself.
+
+    A rearrangement moves (or flips) the animals' data; testing the rearranged data on
+    the design ``D = [x_interest, nuisance]`` is the same as testing the data on the
+    rearranged design ``A``. When ``A = D·M`` for an invertible ``M`` whose first row
+    is ``±e₀ᵀ`` — the nuisance columns keep no part of the regressor of interest, and
+    that regressor maps onto ± itself plus nuisance — both designs span the same space
+    and their coefficient of interest is the same up to sign, so the t statistic is
+    ``±t`` for every data set, and so are the refitted variance components (REML sees
+    the data only through the residuals off that space). Such rearrangements form a
+    group, which pairs every rearrangement with the same number of others, so an
+    exhaustive test cannot give a p below (group size) / (rearrangements).
+
+    Examples: all animals flipped (``M = −1`` on the regressor of interest) for a
+    two-sided sign-flip test; the two label sets swapped in a balanced two-group
+    comparison, two-sided.
+
+    Parameters
+    ----------
+    design
+        (m, p) ``[x_interest, nuisance]`` of full column rank.
+    rearranged
+        (n, m, p) the design as rearranged by each enumerated rearrangement.
+    sided
+        ``"two"`` counts M with ±e₀ᵀ (|t| unchanged); one-sided tests only +e₀ᵀ.
+
+    Returns
+    -------
+    int
+        The number of rearrangements equivalent to the identity (the identity included).
+
+    References
+    ----------
+    Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014). Permutation
+    inference for the general linear model. NeuroImage 92:381-397 (exchangeability
+    blocks and the permutation group of a design).
+    """
+    D = np.asarray(design, dtype=float)
+    tol = _SYMMETRY_TOL * max(1.0, float(np.abs(D).max()))
+    pinv = np.linalg.pinv(D)
+    count = 0
+    # blocks of rearrangements keep the (n, m, p) temporaries small
+    for lo in range(0, rearranged.shape[0], _SYMMETRY_BLOCK):
+        A = np.asarray(rearranged[lo : lo + _SYMMETRY_BLOCK], dtype=float)
+        M = pinv @ A  # (n, p, p) least-squares solutions of D·M = A
+        exact = np.abs(A - D @ M).max(axis=(1, 2)) <= tol
+        first = M[:, 0, :]
+        rest_zero = np.abs(first[:, 1:]).max(axis=1, initial=0.0) <= tol
+        plus = np.abs(first[:, 0] - 1.0) <= tol
+        minus = np.abs(first[:, 0] + 1.0) <= tol
+        keeps = plus | minus if sided == "two" else plus
+        count += int(np.sum(exact & rest_zero & keeps))
+    return count
+
+
+def is_mean_contrast(x_interest: np.ndarray, nuisance: np.ndarray) -> bool:
+    """Whether the contrast changes when every animal's data shift by one constant.
+
+    Such a contrast (the group mean, the mean of one group, the mean over groups) is
+    tested by sign flips: permuting animals keeps a common shift in the data, so it
+    cannot test whether a mean is zero. A contrast that a common shift leaves alone (a
+    difference between groups, a slope) is tested by permuting animals. When the
+    constant is not in the design's span, a regressor of interest that is the same for
+    every animal is taken as a mean (Winkler et al. 2014, sign flips for one-sample
+    tests).
+    """
+    D = np.column_stack([x_interest, nuisance]).astype(float)
+    ones = np.ones(D.shape[0])
+    w, *_ = np.linalg.lstsq(D, ones, rcond=None)
+    tol = _SYMMETRY_TOL * max(1.0, float(np.abs(D).max()))
+    if np.abs(D @ w - ones).max() <= tol:
+        return bool(abs(w[0]) > tol)
+    return bool(np.allclose(x_interest, x_interest[0]))
+
+
+class _SignFlipped:
+    """The design under every sign flip, built block by block: ``signs[k] · D``."""
+
+    def __init__(self, design: np.ndarray, signs: np.ndarray) -> None:
+        self.design, self.signs, self.shape = design, signs, (signs.shape[0], *design.shape)
+
+    def __getitem__(self, rows: slice) -> np.ndarray:
+        return self.signs[rows, :, None] * self.design[None]
+
+
+class _Reordered:
+    """The design under every animal permutation, block by block: ``D[orders[k]]``."""
+
+    def __init__(self, design: np.ndarray, orders: np.ndarray) -> None:
+        self.design, self.orders, self.shape = design, orders, (orders.shape[0], *design.shape)
+
+    def __getitem__(self, rows: slice) -> np.ndarray:
+        return self.design[self.orders[rows]]
 
 
 def plan_permutations(
@@ -237,12 +343,15 @@ def plan_permutations(
 
     All distinct permutations are enumerated when there are no more than requested
     (an exact test); otherwise ``n_requested`` are drawn at random with the identity
-    first. The identity is always counted.
+    first. The identity is always counted. The smallest attainable p of an exhaustive
+    scheme counts the rearrangements that give the observed statistic back
+    (:func:`count_design_symmetries`): 2/2ᵐ for two-sided sign flips, 2/C(m, m/2)
+    for a balanced two-group comparison, two-sided.
     """
     m = x_interest.shape[0]
     if n_requested < 1:
         raise ArgumentError(f"n_permutations must be at least 1, got {n_requested}")
-    if np.allclose(x_interest, x_interest[0]):
+    if is_mean_contrast(x_interest, nuisance):
         n_distinct = 2.0**m
         if n_distinct <= n_requested:
             bits = (np.arange(2**m)[:, None] >> np.arange(m)[None, :]) & 1
@@ -254,11 +363,12 @@ def plan_permutations(
             exhaustive = False
         orders = np.tile(np.arange(m), (signs.shape[0], 1))
         n = signs.shape[0]
-        # with every animal flipped, |t| is unchanged: two-sided exhaustive tests
-        # cannot go below 2/n
-        smallest = (2.0 if exhaustive and sided == "two" else 1.0) / n
+        same = 1
+        if exhaustive:
+            D = np.column_stack([x_interest, nuisance])
+            same = count_design_symmetries(D, _SignFlipped(D, signs), sided)
         return PermutationScheme(
-            "sign flips", signs.astype(np.int8), orders, exhaustive, n_distinct, smallest
+            "sign flips", signs.astype(np.int8), orders, exhaustive, n_distinct, same / n, same
         )
     rows = np.column_stack([x_interest, nuisance]).round(12)
     _, cls = np.unique(rows, axis=0, return_inverse=True)
@@ -275,8 +385,13 @@ def plan_permutations(
             orders[i] = rng.permutation(m)
         exhaustive = False
     signs = np.ones(orders.shape, dtype=np.int8)
+    same = 1
+    if exhaustive:
+        D = np.column_stack([x_interest, nuisance])
+        same = count_design_symmetries(D, _Reordered(D, orders), sided)
+    n = orders.shape[0]
     return PermutationScheme(
-        "animal permutations", signs, orders, exhaustive, n_distinct, 1.0 / orders.shape[0]
+        "animal permutations", signs, orders, exhaustive, n_distinct, same / n, same
     )
 
 

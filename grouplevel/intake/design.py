@@ -1,21 +1,79 @@
 """Fixed-effects design matrix from a Wilkinson-style formula, and group contrasts.
 
 The formula's right-hand side is written as in R or statsmodels (``"1"``,
-``"1 + group"``, ``"1 + group + age"``); columns of the runs table are its variables.
-Text columns become treatment-coded factors. A column whose value is the same for every
-run of an animal is an animal-level covariate; otherwise it is a run-level covariate.
+``"1 + genotype"``, ``"1 + genotype + center(dose)"``); columns of the runs table are its
+variables. Text columns become treatment-coded factors whose reference level is the
+first in alphabetical order unless ``[model] reference`` names another. Numeric columns
+named directly in the formula are centred at their mean over animals unless
+``[model] center_covariates = false``; ``center(x)`` and ``scale(x)`` centre (and scale)
+at the mean over runs. A column whose value is the same for every run of an animal is
+an animal-level covariate; otherwise it is session- or run-level (:func:`column_levels`).
+
+Default group contrasts are built on a reference grid: the design row of each group
+(every combination of factor levels) with every covariate at its centre. A contrast
+is named after what it tests (``mean``, ``mean-ko``, ``ko-minus-wt``, ``mean-over-groups``,
+``dose-slope``; see docs/model.md), and one that would depend on where an uncentred
+covariate is evaluated is left out rather than given a misleading name.
 """
 
 from __future__ import annotations
 
+import ast
 import difflib
-from dataclasses import dataclass
+import itertools
+import re
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 from formulaic import Formula, model_matrix
+from formulaic.transforms import TRANSFORMS
 
 from grouplevel.errors import UserError
+
+# Names a formula may call without them being table columns: formulaic's transforms
+# (center, scale, C, contr, np, log ...).
+_FORMULA_FUNCTIONS = frozenset(TRANSFORMS)
+# Transforms that keep a covariate linear and centred (formulaic's stateful transforms).
+_CENTRING_TRANSFORMS = ("center", "scale", "standardize")
+# Characters kept in a contrast name built from the data (it becomes a folder name).
+_UNSAFE = re.compile(r"[^A-Za-z0-9._+-]+")
+# Relative tolerance when comparing reference-grid rows (exact arithmetic up to rounding).
+_GRID_TOL = 1e-9
+
+
+@dataclass(frozen=True)
+class Factor:
+    """A factor of the design and its levels (reference level first).
+
+    ``animals`` counts the animals with runs at each level (an animal counts in every
+    level it has runs at when the factor varies within animals).
+    """
+
+    variable: str
+    term: str  # as it appears in the coefficient names: ``genotype`` or ``C(dose)``
+    levels: tuple[str, ...]
+    reference: str
+    animals: tuple[int, ...]
+
+
+@dataclass(frozen=True)
+class Covariate:
+    """A numeric variable of the formula and where the intercept sits on it."""
+
+    variable: str
+    centring: str  # plain words: how (and whether) it is centred
+    centre: float | None  # the (raw) value the default contrasts are evaluated at; None:
+    # not centred (the intercept is the response at 0)
+
+
+@dataclass(frozen=True)
+class GroupContrast:
+    """A group contrast: its name, weights on the design columns, and what it tests."""
+
+    name: str
+    weights: np.ndarray
+    meaning: str
 
 
 @dataclass(frozen=True)
@@ -27,13 +85,22 @@ class Design:
     matrix
         (n_runs, p) fixed-effects design.
     columns
-        Coefficient names, e.g. ``Intercept``, ``group[T.sham]``.
+        Coefficient names, e.g. ``Intercept``, ``genotype[T.wt]``.
     animal_level
         (p,) True for columns constant within every animal.
     animal
         (n_runs,) integer animal codes 0..m-1, in order of first appearance.
     animal_ids
         The m animal identifiers.
+    factors, covariates
+        The formula's factors (levels, reference, animals per level) and numeric
+        variables (how they are centred).
+    default_contrasts
+        Contrasts named after what they test (used when the study defines none).
+    left_out
+        Default contrasts that could not be named honestly, with the reason.
+    variable_levels
+        Each formula variable's level: ``"animal"``, ``"session"`` or ``"run"``.
     """
 
     matrix: np.ndarray
@@ -41,25 +108,60 @@ class Design:
     animal_level: np.ndarray
     animal: np.ndarray
     animal_ids: tuple[str, ...]
+    factors: tuple[Factor, ...] = ()
+    covariates: tuple[Covariate, ...] = ()
+    default_contrasts: tuple[GroupContrast, ...] = ()
+    left_out: tuple[str, ...] = ()
+    variable_levels: dict[str, str] = field(default_factory=dict)
 
     @property
     def n_animals(self) -> int:
         return len(self.animal_ids)
 
 
+def _parse(formula: str) -> Formula:
+    try:
+        return Formula(formula)
+    except Exception as exc:  # formulaic raises its own parser errors
+        raise UserError(f"[model] formula {formula!r} cannot be parsed: {exc}") from None
+
+
+def _names_in(expr: str) -> set[str]:
+    """Variable names an expression reads (called functions and attributes excluded)."""
+    try:
+        tree = ast.parse(expr, mode="eval")
+    except SyntaxError:
+        return set()
+    called = {id(node.func) for node in ast.walk(tree) if isinstance(node, ast.Call)} | {
+        id(node.value) for node in ast.walk(tree) if isinstance(node, ast.Attribute)
+    }
+    return {
+        node.id for node in ast.walk(tree) if isinstance(node, ast.Name) and id(node) not in called
+    }
+
+
+def _factors_of(f: Formula):
+    for term in f:
+        yield from term.factors
+
+
 def formula_variables(formula: str) -> list[str]:
     """The table columns a formula needs.
+
+    formulaic's own ``required_variables`` leaves out the arguments of its stateful
+    transforms (``center(dose)`` needs ``dose``), so the variables are read from every
+    factor's expression instead.
 
     Raises
     ------
     UserError
         When the formula cannot be parsed.
     """
-    try:
-        f = Formula(formula)
-    except Exception as exc:  # formulaic raises its own parser errors
-        raise UserError(f"[model] formula {formula!r} cannot be parsed: {exc}") from None
-    return sorted(str(v) for v in f.required_variables)
+    f = _parse(formula)
+    names = {str(v) for v in f.required_variables}
+    for factor in _factors_of(f):
+        names |= _names_in(str(factor.expr))
+    return sorted(names - _FORMULA_FUNCTIONS - {"True", "False", "None"})
 
 
 def missing_variables(formula: str, columns: list[str]) -> list[str]:
@@ -76,27 +178,365 @@ def missing_variables(formula: str, columns: list[str]) -> list[str]:
     return problems
 
 
-def build_design(runs: pd.DataFrame, formula: str) -> Design:
+def column_levels(
+    table: pd.DataFrame, variables: list[str], animal: str = "animal", session: str = "session"
+) -> dict[str, str]:
+    """The level at which each variable varies: ``"animal"``, ``"session"`` or ``"run"``.
+
+    A variable is animal-level when it takes one value within every animal,
+    session-level when it takes one value within every session of an animal (and the
+    table has sessions), else run-level.
+    """
+    out = {}
+    has_sessions = session in table.columns and (table[session].astype(str) != "").any()
+    for var in variables:
+        if var not in table.columns:
+            continue
+        if (table.groupby(animal, sort=False)[var].nunique() <= 1).all():
+            out[var] = "animal"
+        elif (
+            has_sessions
+            and (table.groupby([animal, session], sort=False)[var].nunique() <= 1).all()
+        ):
+            out[var] = "session"
+        else:
+            out[var] = "run"
+    return out
+
+
+def _level_text(value) -> str:
+    if isinstance(value, float | np.floating):
+        return f"{float(value):g}"
+    return str(value)
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _safe(text: str) -> str:
+    """A piece of a contrast name that is safe in a folder name (ASCII, no separators)."""
+    return _UNSAFE.sub("_", text).strip("._") or "level"
+
+
+def _variable_of_factor(expr: str, columns: list[str]) -> str | None:
+    """The one table column a categorical factor (``genotype``, ``C(dose, ...)``) reads."""
+    if expr in columns:
+        return expr
+    names = [n for n in _names_in(expr) if n in columns]
+    return names[0] if len(names) == 1 else None
+
+
+def _apply_reference(
+    data: pd.DataFrame, reference: dict[str, str], variables: list[str], text_vars: list[str]
+) -> None:
+    """Order each text variable's levels with its reference level first."""
+    for var, level in reference.items():
+        if var not in data.columns or var not in variables:
+            raise UserError(
+                f"[model] reference names '{var}', which the formula does not use; "
+                f"text columns of the formula: {', '.join(text_vars) or 'none'}"
+            )
+        if var not in text_vars:
+            raise UserError(
+                f"[model] reference.{var}: '{var}' is numeric, not a factor; to treat it "
+                f"as one write C({var}) in the formula and use C({var}, contr.treatment(...))"
+            )
+        levels = sorted(str(v) for v in data[var].unique())
+        if level not in levels:
+            raise UserError(
+                f"[model] reference.{var} = {level!r} is not a level of '{var}'; "
+                f"levels: {', '.join(levels)}"
+            )
+        data[var] = pd.Categorical(
+            data[var].astype(str), categories=[level] + [v for v in levels if v != level]
+        )
+
+
+def _categorical_variables(f: Formula) -> set[str]:
+    """Variables made factors by the formula: the first argument of ``C(...)``."""
+    out = set()
+    for factor in _factors_of(f):
+        try:
+            tree = ast.parse(str(factor.expr), mode="eval")
+        except SyntaxError:
+            continue
+        for node in ast.walk(tree):
+            if (
+                isinstance(node, ast.Call)
+                and isinstance(node.func, ast.Name)
+                and node.func.id == "C"
+                and node.args
+            ):
+                out |= _names_in(ast.unparse(node.args[0]))
+    return out
+
+
+def _plain_and_transformed(f: Formula) -> tuple[set[str], set[str], set[str]]:
+    """Variables named directly, inside center()/scale(), and inside other expressions."""
+    plain, centring, other = set(), set(), set()
+    for factor in _factors_of(f):
+        expr = str(factor.expr)
+        if factor.eval_method.value == "lookup":
+            plain.add(expr)
+            continue
+        try:
+            node = ast.parse(expr, mode="eval").body
+        except SyntaxError:
+            continue
+        names = _names_in(expr)
+        if (
+            isinstance(node, ast.Call)
+            and isinstance(node.func, ast.Name)
+            and node.func.id in _CENTRING_TRANSFORMS
+            and len(node.args) == 1
+            and isinstance(node.args[0], ast.Name)
+        ):
+            centring |= names
+        else:
+            other |= names
+    return plain, centring, other
+
+
+def _centre_covariates(
+    data: pd.DataFrame, animal: np.ndarray, numeric: list[str], plain: set[str], enabled: bool
+) -> dict[str, float]:
+    """Centre numeric variables named directly in the formula at their mean over animals.
+
+    Each animal counts once (its mean value over its runs), so an animal with more runs
+    does not pull the centre: the intercept is the mean response at the average animal's
+    covariate value.
+    """
+    centres = {}
+    if not enabled:
+        return centres
+    for var in sorted(plain & set(numeric)):
+        values = data[var].to_numpy(dtype=float)
+        per_animal = pd.Series(values).groupby(animal).mean()
+        centres[var] = float(per_animal.mean())
+        data[var] = values - centres[var]
+    return centres
+
+
+def _factor_list(spec, data: pd.DataFrame, animal: np.ndarray) -> tuple[list[Factor], list]:
+    """The design's categorical factors (from formulaic's encoder state) and raw levels."""
+    factors, raw_levels = [], []
+    for term, (kind, state) in spec.encoder_state.items():
+        if getattr(kind, "value", kind) != "categorical":
+            continue
+        variable = _variable_of_factor(str(term), list(data.columns))
+        if variable is None:
+            raise _NoGrid(f"the factor {term} does not read exactly one table column")
+        levels = list(state.get("categories", []))
+        coding = state.get("contrasts")
+        base = getattr(getattr(coding, "contrasts", None), "base", None)
+        texts = [_level_text(v) for v in levels]
+        ref = _level_text(base) if base is not None and _level_text(base) in texts else texts[0]
+        order = [texts.index(ref)] + [i for i, t in enumerate(texts) if t != ref]
+        column = data[variable].astype(object).map(_level_text).to_numpy()
+        counts = tuple(len(set(animal[column == texts[i]])) for i in order)
+        factors.append(
+            Factor(
+                variable=variable,
+                term=str(term),
+                levels=tuple(texts[i] for i in order),
+                reference=ref,
+                animals=counts,
+            )
+        )
+        raw_levels.append([levels[i] for i in order])
+    return factors, raw_levels
+
+
+class _NamedContrasts(dict):
+    """name -> (weights, meaning); a name that is taken gets a number (levels whose
+    folder-safe spellings coincide, e.g. ``a b`` and ``a_b``)."""
+
+    def __setitem__(self, name: str, value: tuple[np.ndarray, str]) -> None:
+        unique, k = name, 2
+        while unique in self:
+            unique, k = f"{name}-{k}", k + 1
+        super().__setitem__(unique, value)
+
+
+class _NoGrid(Exception):
+    """The reference grid cannot be built (the reason is its message)."""
+
+
+def _grid(spec, columns, factors, raw_levels, data, values: dict[str, float]):
+    """Design rows of every factor-level combination with covariates at ``values``."""
+    cells = list(itertools.product(*raw_levels)) if factors else [()]
+    new: dict[str, object] = {}
+    for k, f in enumerate(factors):
+        col = [cell[k] for cell in cells]
+        if isinstance(data[f.variable].dtype, pd.CategoricalDtype):
+            col = pd.Categorical(col, categories=data[f.variable].cat.categories)
+        new[f.variable] = col
+    for var, v in values.items():
+        new[var] = np.full(len(cells), v, dtype=float)
+    try:
+        mm = spec.get_model_matrix(pd.DataFrame(new, index=pd.RangeIndex(len(cells))))
+    except Exception as exc:  # formulaic evaluation errors on the grid
+        raise _NoGrid(f"the design cannot be evaluated on a reference grid ({exc})") from None
+    if tuple(str(c) for c in mm.columns) != columns:
+        raise _NoGrid("the reference grid gives other columns than the design")
+    return cells, np.asarray(mm, dtype=float)
+
+
+def _contrasts_at(spec, columns, factors, raw_levels, data, values, slopes, where: str):
+    """Named contrasts with the covariates at ``values``: name -> (weights, meaning)."""
+    cells, L = _grid(spec, columns, factors, raw_levels, data, values)
+    out = _NamedContrasts()
+    for k, f in enumerate(factors):
+        # the variable is part of the name with several factors, or numeric levels
+        # ("mean-dose-2" rather than "mean-2")
+        bare = len(factors) == 1 and not any(_is_number(lv) for lv in f.levels)
+        prefix = "" if bare else f"{_safe(f.variable)}-"
+        rows = {}
+        for j, level in enumerate(raw_levels[k]):
+            pick = [i for i, cell in enumerate(cells) if cell[k] == level]
+            rows[f.levels[j]] = L[pick].mean(axis=0)
+        for level, row in rows.items():
+            out[f"mean-{prefix}{_safe(level)}"] = (row, f"mean of {f.variable} = {level}{where}")
+        for level in f.levels[1:]:
+            out[f"{prefix}{_safe(level)}-minus-{_safe(f.reference)}"] = (
+                rows[level] - rows[f.reference],
+                f"{f.variable} {level} minus {f.reference}{where}",
+            )
+    if factors:
+        groups = " and ".join(f.variable for f in factors)
+        out["mean-over-groups"] = (
+            L.mean(axis=0),
+            f"mean over the {groups} groups, each weighted equally{where}",
+        )
+    else:
+        out["mean"] = (L[0], f"group mean{where}")
+    for var in slopes:
+        _, L1 = _grid(spec, columns, factors, raw_levels, data, {**values, var: values[var] + 1})
+        avg = " (averaged over groups, each weighted equally)" if factors else ""
+        out[f"{_safe(var)}-slope"] = ((L1 - L).mean(axis=0), f"change per unit of {var}{avg}")
+    return out
+
+
+def _covariate_list(
+    f: Formula, data: pd.DataFrame, numeric: list[str], centres: dict[str, float]
+) -> tuple[list[Covariate], dict[str, float], list[str], list[str]]:
+    """Covariates, where the grid puts them, which are uncentred, which enter linearly."""
+    plain, centring, other = _plain_and_transformed(f)
+    covariates, values, uncentred, linear = [], {}, [], []
+    for var in numeric:
+        if var in centres:
+            how, centre = f"centred at its mean over animals ({centres[var]:.4g})", centres[var]
+            values[var] = 0.0
+        elif var in centring:
+            run_mean = float(data[var].mean())
+            how = f"centred by the formula at its mean over runs ({run_mean:.4g})"
+            centre = values[var] = run_mean
+        else:
+            how, centre = "not centred", None
+            values[var] = float(data[var].mean())
+            uncentred.append(var)
+        if var not in other:
+            linear.append(var)
+        covariates.append(Covariate(variable=var, centring=how, centre=centre))
+    return covariates, values, uncentred, linear
+
+
+def _default_contrasts(spec, columns, data, animal, f: Formula, numeric, centres):
+    """Default contrasts named after what they test, and those left out (with why)."""
+    covariates, values, uncentred, linear = _covariate_list(f, data, numeric, centres)
+    try:
+        factors, raw_levels = _factor_list(spec, data, animal)
+    except _NoGrid as exc:
+        return [], covariates, [], [f"no default contrasts: {exc}; define [[contrast]]s"]
+    centred = [v for v in numeric if v not in uncentred]
+    where = f" at the average {', '.join(centred)}" if centred else ""
+    try:
+        found = _contrasts_at(spec, columns, factors, raw_levels, data, values, linear, where)
+        moved = [
+            _contrasts_at(
+                spec, columns, factors, raw_levels, data, {**values, u: values[u] + 1}, linear, ""
+            )
+            for u in uncentred
+        ]
+    except _NoGrid as exc:
+        return factors, covariates, [], [f"no default contrasts: {exc}; define [[contrast]]s"]
+    contrasts, left_out = [], []
+    scale = max(1.0, float(np.abs(np.asarray([w for w, _ in found.values()])).max()))
+    for name, (w, meaning) in found.items():
+        depends = [
+            u
+            for u, other in zip(uncentred, moved, strict=True)
+            if not np.allclose(other[name][0], w, rtol=0, atol=_GRID_TOL * scale)
+        ]
+        if depends:
+            left_out.append(
+                f"{name}: depends on where {', '.join(depends)} is evaluated (not centred: "
+                "the intercept is the response where every uncentred term is 0); set "
+                "[model] center_covariates = true, write center(...), or define a [[contrast]]"
+            )
+        elif np.allclose(w, 0.0, atol=_GRID_TOL * scale):
+            left_out.append(f"{name}: not estimable from this design (all weights zero)")
+        else:
+            w = np.where(np.abs(w) < _GRID_TOL * scale, 0.0, w)
+            contrasts.append(GroupContrast(name=name, weights=w, meaning=meaning))
+    for var in numeric:
+        if var not in linear:
+            left_out.append(
+                f"{var}: enters the formula through a non-linear expression, so it has no "
+                "single slope; define a [[contrast]] on its column if you want one"
+            )
+    return factors, covariates, contrasts, left_out
+
+
+def build_design(
+    runs: pd.DataFrame,
+    formula: str,
+    *,
+    center_covariates: bool = True,
+    reference: dict[str, str] | None = None,
+) -> Design:
     """Build the design matrix for the included runs of one first-level contrast.
 
     Parameters
     ----------
     runs
         Included runs, one row per run, with an ``animal`` column and every variable
-        the formula names (no missing values).
+        the formula names (no missing values; numeric columns already numeric).
     formula
         Right-hand side of a Wilkinson-style formula.
+    center_covariates
+        Centre numeric variables named directly in the formula at their mean over
+        animals, so that the intercept is a mean at the average covariate.
+    reference
+        Reference level per text variable (default: the first in alphabetical order).
 
     Raises
     ------
     UserError
-        When the design is rank-deficient, or leaves no between-animal degrees of
-        freedom.
+        When the formula cannot be evaluated, the design is rank-deficient, or leaves
+        no between-animal degrees of freedom, or a reference level is wrong.
     """
     animal_ids = tuple(dict.fromkeys(runs["animal"].astype(str)))
     codes = {a: i for i, a in enumerate(animal_ids)}
     animal = np.array([codes[a] for a in runs["animal"].astype(str)], dtype=np.intp)
-    data = runs.reset_index(drop=True)
+    data = runs.reset_index(drop=True).copy()
+    f = _parse(formula)
+    variables = [v for v in formula_variables(formula) if v in data.columns]
+    categorical = _categorical_variables(f)
+    numeric = [
+        v for v in variables if pd.api.types.is_numeric_dtype(data[v]) and v not in categorical
+    ]
+    text_vars = [v for v in variables if not pd.api.types.is_numeric_dtype(data[v])]
+    for var in text_vars:
+        data[var] = data[var].astype(str)
+    _apply_reference(data, dict(reference or {}), variables, text_vars)
+    plain, _, _ = _plain_and_transformed(f)
+    centres = _centre_covariates(data, animal, numeric, plain, center_covariates)
     try:
         mm = model_matrix(formula, data, na_action="raise")
     except Exception as exc:
@@ -105,6 +545,26 @@ def build_design(runs: pd.DataFrame, formula: str) -> Design:
     columns = tuple(str(c) for c in mm.columns)
     if X.shape[1] == 0:
         raise UserError(f'[model] formula {formula!r} gives no columns; use "1" for the mean')
+    animal_level = _check_rank(X, columns, animal, len(animal_ids), formula)
+    factors, covariates, contrasts, left_out = _default_contrasts(
+        mm.model_spec, columns, data, animal, f, numeric, centres
+    )
+    return Design(
+        matrix=X,
+        columns=columns,
+        animal_level=animal_level,
+        animal=animal,
+        animal_ids=animal_ids,
+        factors=tuple(factors),
+        covariates=tuple(covariates),
+        default_contrasts=tuple(contrasts),
+        left_out=tuple(left_out),
+        variable_levels=column_levels(runs.reset_index(drop=True), variables),
+    )
+
+
+def _check_rank(X, columns, animal, n_animals: int, formula: str) -> np.ndarray:
+    """Full rank overall and across animals; returns which columns are animal-level."""
     rank = np.linalg.matrix_rank(X)
     if rank < X.shape[1]:
         raise UserError(
@@ -116,7 +576,7 @@ def build_design(runs: pd.DataFrame, formula: str) -> Design:
     between = X[:, animal_level]
     if between.shape[1]:
         # one row per animal carries the animal-level design
-        first = np.array([np.flatnonzero(animal == a)[0] for a in range(len(animal_ids))])
+        first = np.array([np.flatnonzero(animal == a)[0] for a in range(n_animals)])
         rank_between = np.linalg.matrix_rank(between[first])
         if rank_between < between.shape[1]:
             names = [c for c, b in zip(columns, animal_level, strict=True) if b]
@@ -125,19 +585,13 @@ def build_design(runs: pd.DataFrame, formula: str) -> Design:
                 "are rank-deficient across animals; an animal-level covariate must differ "
                 "between animals and not be confounded with another"
             )
-        if len(animal_ids) - rank_between < 1:
+        if n_animals - rank_between < 1:
             raise UserError(
-                f"[model] formula {formula!r}: {len(animal_ids)} animals leave no "
+                f"[model] formula {formula!r}: {n_animals} animals leave no "
                 f"between-animal degrees of freedom for {rank_between} animal-level columns; "
                 "add animals or simplify the formula"
             )
-    return Design(
-        matrix=X,
-        columns=columns,
-        animal_level=animal_level,
-        animal=animal,
-        animal_ids=animal_ids,
-    )
+    return animal_level
 
 
 def contrast_vector(weights: dict[str, float], columns: tuple[str, ...], name: str) -> np.ndarray:
@@ -165,3 +619,8 @@ def contrast_vector(weights: dict[str, float], columns: tuple[str, ...], name: s
     if problems:
         raise UserError(f"contrast '{name}': {len(problems)} problems", problems)
     return c
+
+
+def weights_dict(c: np.ndarray, columns: tuple[str, ...]) -> dict[str, float]:
+    """A contrast vector as coefficient name → weight (non-zero weights only)."""
+    return {col: float(w) for col, w in zip(columns, c, strict=True) if w != 0.0}

@@ -26,7 +26,14 @@ DEFAULT_MIN_COVERAGE = 1.0  # every run must have data at a voxel unless the use
 DEFAULT_FORMULA = "1"  # one-sample design: the group mean
 DEFAULT_RUN_VARIANCE = "estimate"  # estimate σ² (between-run variance) by REML
 DEFAULT_DF_METHOD = "between"  # conservative between-animal df (Pinheiro & Bates 2000)
+# The one contrast of an intercept-only design. With factors or covariates the default
+# contrasts are named after what they test (grouplevel.design: mean-<level>,
+# <level>-minus-<reference>, mean-over-groups, <covariate>-slope).
 DEFAULT_CONTRAST_NAME = "mean"
+# Centre numeric covariates at their mean over animals, so that an intercept is a mean
+# at the average covariate, never an effect at covariate 0 (common practice for
+# covariates in group models).
+DEFAULT_CENTER_COVARIATES = True
 # Permutation inference is the default: parametric cluster inference is unreliable
 # (Eklund, Nichols & Knutsson 2016, PNAS 113:7900). 5000 permutations is common practice;
 # fewer are run when every distinct permutation can be enumerated.
@@ -150,6 +157,9 @@ class ModelSettings:
     run_variance: str = DEFAULT_RUN_VARIANCE
     df: str = DEFAULT_DF_METHOD
     max_iter: int = DEFAULT_MAX_ITER
+    center_covariates: bool = DEFAULT_CENTER_COVARIATES
+    # reference level per text variable of the formula (default: alphabetically first)
+    reference: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -242,7 +252,7 @@ _SCHEMA: dict[str, tuple[str, ...]] = {
         "edge_distance_voxels",
         "outlier_z",
     ),
-    "model": ("formula", "run_variance", "df", "max_iter"),
+    "model": ("formula", "run_variance", "df", "max_iter", "center_covariates", "reference"),
     "contrast": ("name", "weights"),
     "comparison": ("name", "conditions"),
     "inference": (
@@ -426,7 +436,23 @@ def load_settings(path: str | Path) -> Settings:
     formula = r.get("model", m, "formula", str, DEFAULT_FORMULA).strip()
     if not formula:
         r.problem("[model] formula", 'is empty; use "1" for the group mean')
-    model = ModelSettings(formula=formula, run_variance=run_variance, df=df, max_iter=max_iter)
+    reference = r.get("model", m, "reference", dict, {})
+    for var, level in list(reference.items()):
+        if not isinstance(level, str) or not level:
+            r.problem(
+                f"[model] reference.{var}",
+                f"must be the name of a level (text), got {level!r}; e.g. reference = "
+                '{ genotype = "wt" }',
+            )
+            reference.pop(var)
+    model = ModelSettings(
+        formula=formula,
+        run_variance=run_variance,
+        df=df,
+        max_iter=max_iter,
+        center_covariates=r.get("model", m, "center_covariates", bool, DEFAULT_CENTER_COVARIATES),
+        reference=dict(reference),
+    )
 
     contrasts: list[ContrastSpec] = []
     raw_contrasts = raw.get("contrast", [])
@@ -459,6 +485,8 @@ def load_settings(path: str | Path) -> Settings:
         if clean and all(w == 0 for w in clean.values()):
             r.problem(f"[{where}] weights", "all weights are zero")
         contrasts.append(ContrastSpec(name=name, weights=clean))
+    # without [[contrast]] blocks the design's default contrasts are tested, each named
+    # after what it tests (grouplevel.design); none is assumed here
     user_contrasts = bool(contrasts)
     comparisons = _read_comparisons(r, raw)
     for spec in contrasts:  # names become table cells: no tab or line break in them
@@ -469,8 +497,6 @@ def load_settings(path: str | Path) -> Settings:
                 f"{spec.name!r} holds {', '.join(bad)}, which would break the rows of the "
                 "tables written; remove it",
             )
-    if not contrasts:
-        contrasts.append(ContrastSpec(name=DEFAULT_CONTRAST_NAME, weights={"Intercept": 1.0}))
 
     inf = section("inference")
     permutations = r.get("inference", inf, "permutations", int, DEFAULT_PERMUTATIONS)

@@ -63,6 +63,8 @@ class FirstLevel:
     variance_kind: str  # "variance", "se" or "none"
     # for a within-animal comparison ([[comparison]]): condition -> weight; else None
     conditions: dict[str, float] | None = None
+    # group contrast name -> what it tests, in plain words (default contrasts)
+    contrast_meanings: dict[str, str] = field(default_factory=dict)
 
     def output_name(self, contrast_name: str, default_contrast: bool) -> str:
         """Folder name of a group contrast's maps (see DESIGN.md, output contract)."""
@@ -648,7 +650,12 @@ def inspect_study(settings: Settings) -> Study:
         if missing or covariate_problems:
             continue
         try:
-            design = build_design(inc, settings.model.formula)
+            design = build_design(
+                inc,
+                settings.model.formula,
+                center_covariates=settings.model.center_covariates,
+                reference=settings.model.reference,
+            )
         except UserError as exc:
             problems.append(f"{label}: {exc}")
             continue
@@ -664,15 +671,7 @@ def inspect_study(settings: Settings) -> Study:
                 "cannot be permuted without breaking the nesting of runs in animals. Set "
                 "permutations = 0 (parametric maps only) or use animal-level covariates"
             )
-        contrasts = []
-        for spec in settings.contrasts:
-            try:
-                contrasts.append(
-                    (spec.name, contrast_vector(spec.weights, design.columns, spec.name))
-                )
-            except UserError as exc:
-                problems.append(str(exc))
-                problems.extend(exc.problems)
+        contrasts, meanings = _group_contrasts(settings, design, label, problems)
         # -- data pass over this contrast's maps --
         cov_runs = np.zeros(grid.shape, dtype=np.int32)
         animal_seen = np.zeros((design.n_animals, *grid.shape), dtype=bool)
@@ -761,6 +760,7 @@ def inspect_study(settings: Settings) -> Study:
                 coverage_animals=cov_animals,
                 variance_kind=variance_kind,
                 conditions=comparison_weights.get(name),
+                contrast_meanings=meanings,
             )
         )
 
@@ -840,6 +840,35 @@ def _study_grid(
         f"the grid shared by {count} of {n} effect maps; give [study] template to set the "
         "grid explicitly"
     )
+
+
+def _group_contrasts(
+    settings: Settings, design: Design, label: str, problems: list[str]
+) -> tuple[list[tuple[str, np.ndarray]], dict[str, str]]:
+    """The study's [[contrast]]s, or the design's default contrasts when it has none."""
+    contrasts: list[tuple[str, np.ndarray]] = []
+    if settings.user_contrasts:
+        for spec in settings.contrasts:
+            try:
+                contrasts.append(
+                    (spec.name, contrast_vector(spec.weights, design.columns, spec.name))
+                )
+            except UserError as exc:
+                problems.append(str(exc))
+                problems.extend(exc.problems)
+        return contrasts, {}
+    if not design.default_contrasts:
+        problems.append(
+            f"{label}: [model] formula {settings.model.formula!r}: no default contrast can "
+            "be named after what it tests ("
+            + "; ".join(design.left_out)
+            + "); define the contrasts to test as [[contrast]] blocks (name and weights on "
+            f"the coefficients {', '.join(design.columns)})"
+        )
+        return contrasts, {}
+    for gc in design.default_contrasts:
+        contrasts.append((gc.name, gc.weights))
+    return contrasts, {gc.name: gc.meaning for gc in design.default_contrasts}
 
 
 def _check_questions(settings: Settings, contrast_names: list[str], atlas: Atlas | None):

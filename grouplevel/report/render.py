@@ -617,12 +617,18 @@ def _study_context(summary: dict) -> dict:
         }
     inf = settings.get("inference") or {}
     model = settings.get("model") or {}
+    # the contrasts actually tested (the design's defaults when the study defines none)
+    tested: dict[str, dict] = {}
+    for design in (summary.get("design") or {}).values():
+        for c in design.get("contrasts") or []:
+            tested.setdefault(c.get("name"), c)
     contrasts = [
         {
             "name": c.get("name"),
-            "weights": ", ".join(f"{k} × {v:g}" for k, v in (c.get("weights") or {}).items()),
+            "weights": ", ".join(f"{k} × {v:g}" for k, v in (c.get("weights") or {}).items())
+            + (f" ({c['meaning']})" if c.get("meaning") else ""),
         }
-        for c in settings.get("contrasts") or []
+        for c in (tested.values() if tested else settings.get("contrasts") or [])
     ]
     inference_rows = [
         (
