@@ -37,7 +37,7 @@ from grouplevel.model import (
     satterthwaite_df,
     test_contrast,
 )
-from grouplevel.questions import Answers, answer_questions, asks_questions
+from grouplevel.questions import Answers, answer_questions, question_plan, skipped_warning
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.study import FirstLevel, Study, load_runs, load_study
 from grouplevel.tables import RegionTables, region_data, region_tables
@@ -120,7 +120,7 @@ class GroupMap:
     n_runs: int
     inference: Corrected
     tables: RegionTables | None = None  # with an atlas: clusters, regions, animals
-    answers: Answers | None = None  # the questions (group mean of an intercept-only design)
+    answers: Answers | None = None  # the questions (asked of group means; else the reason)
 
     def volume(self, key: str) -> np.ndarray:
         """A per-voxel quantity as a full 3-D array (0 outside the mask).
@@ -361,21 +361,23 @@ def _fit_first_level(
         )
         if regions is not None:
             gm = replace(gm, tables=region_tables(gm, regions, design, c, settings))
-        if asks_questions(design.columns, cname):
+        plan = question_plan(design, c)
+        if plan.asked:
             log(f"  questions of {name}: symmetry, specificity, consistency, run quality")
-            answers = answer_questions(
-                gm,
-                y,
-                s2,
-                fit,
-                design,
-                fl.runs,
-                c,
-                regions,
-                settings.questions_for(fl.name),
-                settings,
-            )
-            gm = replace(gm, answers=answers)
+        answers = answer_questions(
+            gm,
+            y,
+            s2,
+            fit,
+            design,
+            fl.runs,
+            c,
+            regions,
+            settings.questions_for(fl.name),
+            settings,
+            plan,
+        )
+        gm = replace(gm, answers=answers)
         results.append(gm)
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings
@@ -404,6 +406,7 @@ def fit_study(
             m, w = _fit_first_level(study, fl, log, quiet, backend)
             maps.extend(m)
             warnings.extend(w)
+    warnings.extend(skipped_warning([m.name for m in maps if m.answers and not m.answers.asked]))
     return maps, warnings
 
 

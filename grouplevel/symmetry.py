@@ -17,7 +17,10 @@ written rule that turns them into plain words:
   against a margin derived from a bound on ``|LI|``.
 * **Verdict** (:func:`symmetry_verdict`): "no activation", "unilateral", "left-/right-
   dominant", "bilateral (equivalence shown)" or "bilateral, asymmetry not excluded",
-  each with the sentences and numbers that decided it. The rule is written out in
+  each with the sentences and numbers that decided it. The verdict is sign-aware: a
+  significant negative response is a response ("negative response, bilateral ..."), and
+  ``[inference] sided`` says which signs count. The LIs of a negative response are
+  computed on the sign-flipped maps. The rule is written out in
   ``docs/verdicts-symmetry.md``.
 
 :func:`analyse_symmetry` runs all of it for a list of region names;
@@ -56,6 +59,7 @@ from scipy import stats
 from grouplevel.atlas import MIDLINE_TOLERANCE_MM, Atlas
 from grouplevel.errors import UserError
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.sides import split_side
 
 # --------------------------------------------------------------------------------------
 # Defaults (the lead's config section [questions] may override every one of them)
@@ -89,6 +93,10 @@ _BOOT_CHUNK = 256
 #: Stimulus sides understood by the verdict.
 SIDES = ("left", "right")
 
+#: Signs a response may have, and the signs each ``[inference] sided`` counts.
+SIGNS = ("positive", "negative")
+SIGNS_COUNTED = {"two": SIGNS, "positive": ("positive",), "negative": ("negative",)}
+
 #: Verdict labels, as written in the tables.
 NO_ACTIVATION = "no activation"
 UNILATERAL = "unilateral ({side})"
@@ -97,6 +105,9 @@ DOMINANT = "{side}-dominant"
 BILATERAL_EQUIVALENT = "bilateral (equivalence shown)"
 BILATERAL_UNRESOLVED = "bilateral, asymmetry not excluded"
 UNCLEAR = "unclear ({larger} larger, only {active} active)"
+OPPOSITE_SIGNS = "opposite signs (left {left}, right {right})"
+#: Put before the label of a negative response ("negative response, bilateral ...").
+NEGATIVE_PREFIX = "negative response, "
 
 #: Weightings of the threshold-free LI.
 TF_WEIGHTINGS = ("mean", "threshold")
@@ -661,8 +672,9 @@ def threshold_free_li(
 class HemisphereTest:
     """Region-mean effects of the two sides, their difference and its equivalence test.
 
-    Every estimate comes from the run-within-animal REML model with an intercept only
-    (σ² estimated, no first-level variances), tested on the between-animal df.
+    Every estimate comes from the run-within-animal REML model with the group design
+    (intercept only by default; σ² estimated, no first-level variances), tested on the
+    between-animal df.
 
     Attributes
     ----------
@@ -676,7 +688,7 @@ class HemisphereTest:
     margin_li
         The bound ``m`` on ``|LI|`` that defines equivalence.
     margin
-        ``Δ = m · max(L̂ + R̂, 0)``, the equivalence bound on the difference.
+        ``Δ = m · |L̂ + R̂|``, the equivalence bound on the difference.
     tost_p_lower, tost_p_upper, tost_p
         One-sided p of ``H0: difference ≤ −Δ`` and of ``H0: difference ≥ Δ``, and their
         maximum (the TOST p).
@@ -751,19 +763,23 @@ def hemisphere_test(
     *,
     equivalence_margin: float = DEFAULT_EQUIVALENCE_MARGIN,
     confidence: float = CONFIDENCE_LEVEL,
+    X: np.ndarray | None = None,
+    c: np.ndarray | None = None,
 ) -> HemisphereTest:
     """Test the hemispheric difference of a region pair, and its equivalence to zero.
 
     The per-run region means ``L``, ``R``, ``L − R`` and ``L + R`` are fitted together with
-    :func:`grouplevel.model.fit_reml` (intercept only, σ² estimated, no first-level
-    variances: the run-to-run spread contains the first-level noise of a region mean),
-    and each intercept is tested with :func:`grouplevel.model.test_contrast` on the
+    :func:`grouplevel.model.fit_reml` (σ² estimated, no first-level variances: the
+    run-to-run spread contains the first-level noise of a region mean) with the group
+    design ``X`` (default: intercept only), and the group mean ``c`` (default: the
+    intercept) is tested with :func:`grouplevel.model.test_contrast` on the
     between-animal df. A run enters ``L − R`` and ``L + R`` only when it has both sides.
 
     Equivalence: the LI of the region means is ``(L − R)/(L + R)``; ``|LI| ≤ m`` with
     ``L + R > 0`` is ``|L − R| ≤ m (L + R)``, so the margin on the difference is
-    ``Δ = m · (L̂ + R̂)`` with the fitted mean of ``L + R`` (0 when that mean is not
-    positive, which makes equivalence impossible to show). The TOST p is the larger of
+    ``Δ = m · |L̂ + R̂|`` with the fitted mean of ``L + R``; taking the magnitude makes
+    the same margin serve a negative response (both sides below 0), whose LI is that of
+    the magnitudes. The TOST p is the larger of
     the two one-sided t-test p-values on the model df. Δ is itself an estimate; treating
     it as fixed ignores its uncertainty, which is small when ``L + R`` is well above 0.
 
@@ -777,6 +793,10 @@ def hemisphere_test(
         The bound ``m`` on ``|LI|``.
     confidence
         Level of the interval of the difference.
+    X, c
+        ``(n_runs, p)`` group design and ``(p,)`` contrast giving the group mean tested
+        (a group mean of a larger design, see :mod:`grouplevel.means`); default the
+        intercept-only design and its intercept.
 
     Returns
     -------
@@ -798,13 +818,16 @@ def hemisphere_test(
     diff = np.where(both, left - right, np.nan)
     total = np.where(both, left + right, np.nan)
     y = np.column_stack([left, right, diff, total])
-    X = np.ones((len(left), 1))
+    X = np.ones((len(left), 1)) if X is None else np.asarray(X, dtype=float)
+    c = np.ones(1) if c is None else np.asarray(c, dtype=float).ravel()
+    if X.ndim != 2 or X.shape[0] != len(left) or X.shape[1] != c.size:
+        raise ValueError(f"X must be ({len(left)} runs, {c.size}) for a contrast of {c.size}")
     fit = fit_reml(y, None, X, animal, estimate_run_variance=True)
-    df = between_animal_df(X, animal, np.isfinite(y), [1.0])
-    res = test_contrast(fit, [1.0], df)
+    df = between_animal_df(X, animal, np.isfinite(y), c)
+    res = test_contrast(fit, c, df)
     d, se, dfd = float(res.effect[2]), float(res.se[2]), float(res.df[2])
     crit = float(stats.t.ppf(0.5 + confidence / 2.0, dfd)) if dfd > 0 else float("nan")
-    margin = margin_li * max(float(res.effect[3]), 0.0)
+    margin = margin_li * abs(float(res.effect[3]))
     p_lower, p_upper, p_tost = tost(d, se, dfd, margin)
     return HemisphereTest(
         left_effect=float(res.effect[0]),
@@ -852,17 +875,22 @@ class Verdict:
     side
         "contralateral" / "ipsilateral" for the dominant or only active side when the
         stimulated side is known, else "".
+    sign
+        "positive" / "negative": the sign of the response the label is about; "" when
+        no side responds or the two sides respond with opposite signs.
     """
 
     label: str
     reasons: tuple[str, ...]
     numbers: dict
     side: str = ""
+    sign: str = ""
 
     def summary(self) -> dict:
         return {
             "label": self.label,
             "side": self.side,
+            "sign": self.sign,
             "reasons": list(self.reasons),
             "numbers": dict(self.numbers),
         }
@@ -874,27 +902,49 @@ def _fmt_p(p: float) -> str:
     return f"p = {p:.2g}" if p >= 1e-4 else "p < 0.0001"
 
 
+def _sign_of(effect: float) -> str:
+    if not np.isfinite(effect) or effect == 0:
+        return ""
+    return "positive" if effect > 0 else "negative"
+
+
+def counted_signs(sided: str) -> tuple[str, ...]:
+    """The response signs an ``[inference] sided`` value counts."""
+    if sided not in SIGNS_COUNTED:
+        raise UserError(
+            f"[inference] sided = {sided!r}: use one of {', '.join(map(repr, SIGNS_COUNTED))}."
+        )
+    return SIGNS_COUNTED[sided]
+
+
 def symmetry_verdict(
     test: HemisphereTest,
     *,
     alpha: float = DEFAULT_ALPHA,
     stimulus_side: str | None = None,
+    sided: str = "two",
+    signs: Sequence[str] | None = None,
 ) -> Verdict:
     """Turn the hemispheric test of a region pair into a verdict with its reasons.
 
     The rule, applied in this order:
 
-    1. A side is **active** when its region-mean effect is positive and its two-sided
-       p < α (so one-sided evidence at α/2 for a positive effect).
+    1. A side is **active** when its two-sided p < α and the sign of its region-mean
+       effect is counted: ``sided = "positive"`` counts only positive effects,
+       ``"negative"`` only negative ones, ``"two"`` either. ``signs`` narrows this further
+       (the questions pass the signs of the map's surviving response).
     2. Neither side active → "no activation".
-    3. The difference is **significant** when its two-sided p < α; its sign names the
-       larger side.
-    4. One side active: significant difference towards it → "unilateral (<side>)";
+    3. The two sides active with opposite signs → "opposite signs (left ..., right ...)".
+    4. Otherwise the response has one sign ``s``. The difference is **significant** when
+       its two-sided p < α; the **larger** side is the one whose response is larger in
+       magnitude in the direction of ``s`` (the left when ``s · (L − R) > 0``).
+    5. One side active: significant difference towards it → "unilateral (<side>)";
        difference not significant → "<side> only, difference not significant";
        significant difference towards the inactive side → "unclear (...)".
-    5. Both active: significant difference → "<side>-dominant"; otherwise TOST p < α →
+    6. Both active: significant difference → "<side>-dominant"; otherwise TOST p < α →
        "bilateral (equivalence shown)"; otherwise "bilateral, asymmetry not excluded".
        "Bilateral" never follows from a non-significant difference alone.
+    7. A negative response's label starts with "negative response, ".
 
     With ``stimulus_side`` the dominant (or only active) side is called
     "contralateral" when it is opposite to the stimulated side, else "ipsilateral".
@@ -907,6 +957,11 @@ def symmetry_verdict(
         Significance level of every test in the rule.
     stimulus_side
         "left", "right" or None.
+    sided
+        "two" (default), "positive" or "negative", as ``[inference] sided``.
+    signs
+        The signs that may count (a subset of those ``sided`` counts); default all of
+        those ``sided`` counts. An empty sequence makes every side inactive.
 
     Returns
     -------
@@ -923,23 +978,36 @@ def symmetry_verdict(
             f'[questions] stimulus_side = {stimulus_side!r}: use "left", "right" or leave '
             "it out when the stimulus was not lateralised."
         )
+    allowed = counted_signs(sided)
+    if signs is not None:
+        allowed = tuple(s for s in allowed if s in signs)
     reasons: list[str] = []
-    active = {}
+    active: dict[str, str] = {}  # side -> sign of its response, "" when not active
     for side, effect, p in (
         ("left", test.left_effect, test.left_p),
         ("right", test.right_effect, test.right_p),
     ):
-        is_active = bool(np.isfinite(p) and effect > 0 and p < alpha)
-        active[side] = is_active
-        word = "active" if is_active else "not active"
+        sign = _sign_of(effect)
+        significant_side = bool(np.isfinite(p) and p < alpha)
+        active[side] = sign if (significant_side and sign in allowed) else ""
+        if active[side]:
+            word = f"active ({sign})"
+        elif significant_side and sign:
+            word = f"not counted ({sign} effect; counted: {' or '.join(allowed) or 'none'})"
+        else:
+            word = "not active"
         reasons.append(f"{side} side {word}: region-mean effect {effect:.3g}, {_fmt_p(p)}")
+    on = [side for side in ("left", "right") if active[side]]
+    response = active[on[0]] if on else ""
+    direction = -1.0 if response == "negative" else 1.0
     significant = bool(np.isfinite(test.p) and test.p < alpha)
-    larger = "left" if test.difference > 0 else "right"
+    larger = "left" if direction * test.difference > 0 else "right"
     equivalent = bool(np.isfinite(test.tost_p) and test.tost_p < alpha)
     numbers = {
         "alpha": float(alpha),
-        "left_active": active["left"],
-        "right_active": active["right"],
+        "sided": sided,
+        "left_active": bool(active["left"]),
+        "right_active": bool(active["right"]),
         "left_effect": _float(test.left_effect),
         "left_p": _float(test.left_p),
         "right_effect": _float(test.right_effect),
@@ -960,21 +1028,26 @@ def symmetry_verdict(
         f"{_fmt_p(test.tost_p)}"
     )
     dominant = ""
-    if not active["left"] and not active["right"]:
+    sign = response
+    if not on:
         label = NO_ACTIVATION
-    elif active["left"] != active["right"]:
-        on = "left" if active["left"] else "right"
+    elif len(on) == 2 and active["left"] != active["right"]:
+        label = OPPOSITE_SIGNS.format(left=active["left"], right=active["right"])
+        sign = ""
+        reasons.append(f"The two sides respond with opposite signs: {diff_text}")
+    elif len(on) == 1:
+        only = on[0]
         reasons.append(
             f"Difference {'significant' if significant else 'not significant'}: {diff_text}"
         )
-        if significant and larger == on:
-            label = UNILATERAL.format(side=on)
-            dominant = on
+        if significant and larger == only:
+            label = UNILATERAL.format(side=only)
+            dominant = only
         elif significant:
-            label = UNCLEAR.format(larger=larger, active=on)
+            label = UNCLEAR.format(larger=larger, active=only)
         else:
-            label = ONE_SIDE_ONLY.format(side=on)
-            dominant = on
+            label = ONE_SIDE_ONLY.format(side=only)
+            dominant = only
     else:
         if significant:
             label = DOMINANT.format(side=larger)
@@ -988,12 +1061,21 @@ def symmetry_verdict(
                 f"{'Equivalence shown' if equivalent else 'Equivalence not shown'}: {tost_text}"
             )
             label = BILATERAL_EQUIVALENT if equivalent else BILATERAL_UNRESOLVED
+    if sign == "negative":
+        label = NEGATIVE_PREFIX + label
+        reasons.append(
+            "The response is negative (both counted sides below 0); 'larger' means larger "
+            "in magnitude"
+            if len(on) == 2
+            else "The response is negative; 'larger' means larger in magnitude"
+        )
     side = ""
     if dominant and stimulus_side is not None:
         side = "ipsilateral" if dominant == stimulus_side else "contralateral"
         reasons.append(f"The {dominant} side is {side} to the stimulated {stimulus_side} side")
     numbers["dominant_side"] = dominant
-    return Verdict(label=label, reasons=tuple(reasons), numbers=numbers, side=side)
+    numbers["sign"] = sign
+    return Verdict(label=label, reasons=tuple(reasons), numbers=numbers, side=side, sign=sign)
 
 
 # --------------------------------------------------------------------------------------
@@ -1030,12 +1112,21 @@ class RegionSymmetry:
 def region_pair(atlas: Atlas, name: str) -> tuple[int, int]:
     """Rows (left, right) of ``atlas.regions`` for a region name or abbreviation.
 
+    A side suffix ("forelimb area (right)", see :mod:`grouplevel.sides`) is allowed and
+    names the same pair: symmetry always compares the two sides of the structure.
+
     Raises
     ------
     UserError
         When the name is unknown, or does not give exactly one left and one right row.
     """
-    rows = atlas.region_rows(name)
+    try:
+        rows = atlas.region_rows(name)
+    except UserError:
+        base, word = split_side(name)
+        if not word:
+            raise
+        rows = atlas.region_rows(base)
     hemi = atlas.regions["hemisphere"].to_numpy()
     left = [r for r in rows if hemi[r] == "left"]
     right = [r for r in rows if hemi[r] == "right"]
@@ -1076,6 +1167,11 @@ def analyse_symmetry(
     n_boot: int = DEFAULT_BOOTSTRAP,
     n_thresholds: int = DEFAULT_LI_THRESHOLDS,
     weighting: str = "mean",
+    sided: str = "two",
+    signs: Sequence[str] | None = None,
+    X: np.ndarray | None = None,
+    c: np.ndarray | None = None,
+    bootstrap_animals: np.ndarray | None = None,
 ) -> tuple[RegionSymmetry, ...]:
     """Laterality, hemispheric test and verdict for each named region pair.
 
@@ -1099,10 +1195,24 @@ def analyse_symmetry(
     threshold, equivalence_margin, alpha, stimulus_side, n_boot, n_thresholds, weighting
         See :func:`bootstrap_li`, :func:`hemisphere_test`, :func:`symmetry_verdict` and
         :func:`threshold_free_li`.
+    sided, signs
+        Which response signs count (:func:`symmetry_verdict`).
+    X, c
+        Group design and the contrast of the group mean asked about (default intercept
+        only, see :func:`hemisphere_test`).
+    bootstrap_animals
+        ``(m,)`` bool: the animals the bootstrap resamples (those whose mean ``c`` is);
+        default all.
 
     Returns
     -------
     tuple of RegionSymmetry
+
+    Notes
+    -----
+    The hemispheric test and verdict come first; when the verdict's response is
+    negative, the LIs are computed on the sign-flipped maps (``−z``, ``−effect``,
+    ``−y``), so that they describe the magnitude of the negative response.
     """
     _check_margin(equivalence_margin)
     shares = sp.csc_matrix(atlas.shares)
@@ -1116,6 +1226,10 @@ def analyse_symmetry(
         raise ValueError(
             f"region_values must be (runs, {shares.shape[1]} regions), got {region_values.shape}"
         )
+    animal = np.asarray(animal, dtype=np.int64)
+    yb, present_b, animal_b, variance_b = _bootstrap_runs(
+        y, present, animal, variance, bootstrap_animals
+    )
     out = []
     seen: set[tuple[int, int]] = set()
     for name in names:
@@ -1128,26 +1242,39 @@ def analyse_symmetry(
         seen.add((left_row, right_row))
         lc, lw = _column(shares, left_row)
         rc, rw = _column(shares, right_row)
-        li_extent = laterality(
-            extent_amount(z[lc], lw, threshold), extent_amount(z[rc], rw, threshold)
-        )
-        li_effect = laterality(effect_amount(effect[lc], lw), effect_amount(effect[rc], rw))
-        boot = bootstrap_li(
-            y,
-            present,
+        test = hemisphere_test(
+            region_values[:, left_row],
+            region_values[:, right_row],
             animal,
+            equivalence_margin=equivalence_margin,
+            X=X,
+            c=c,
+        )
+        verdict = symmetry_verdict(
+            test, alpha=alpha, stimulus_side=stimulus_side, sided=sided, signs=signs
+        )
+        flip = -1.0 if verdict.sign == "negative" else 1.0
+        zs, es = flip * z, flip * effect
+        li_extent = laterality(
+            extent_amount(zs[lc], lw, threshold), extent_amount(zs[rc], rw, threshold)
+        )
+        li_effect = laterality(effect_amount(es[lc], lw), effect_amount(es[rc], rw))
+        boot = bootstrap_li(
+            flip * yb,
+            present_b,
+            animal_b,
             lc,
             rc,
             left_weights=lw,
             right_weights=rw,
-            variance=variance,
+            variance=variance_b,
             var_run=var_run,
             threshold=threshold,
             n_boot=n_boot,
             rng=rng,
         )
         tf = threshold_free_li(
-            z,
+            zs,
             lc,
             rc,
             left_weights=lw,
@@ -1155,13 +1282,6 @@ def analyse_symmetry(
             n_thresholds=n_thresholds,
             weighting=weighting,
         )
-        test = hemisphere_test(
-            region_values[:, left_row],
-            region_values[:, right_row],
-            animal,
-            equivalence_margin=equivalence_margin,
-        )
-        verdict = symmetry_verdict(test, alpha=alpha, stimulus_side=stimulus_side)
         out.append(
             RegionSymmetry(
                 region=str(name),
@@ -1176,6 +1296,17 @@ def analyse_symmetry(
             )
         )
     return tuple(out)
+
+
+def _bootstrap_runs(y, present, animal, variance, bootstrap_animals):
+    """The runs of the animals the bootstrap resamples, with animal codes 0..k-1."""
+    y = np.asarray(y, dtype=float)
+    if bootstrap_animals is None:
+        return y, present, animal, variance
+    keep = np.asarray(bootstrap_animals, dtype=bool)[animal]
+    codes = np.unique(animal[keep], return_inverse=True)[1].astype(np.int64)
+    sub_var = None if variance is None else np.asarray(variance, dtype=float)[keep]
+    return y[keep], np.asarray(present, dtype=bool)[keep], codes, sub_var
 
 
 #: Columns of :func:`symmetry_table`, in order.
@@ -1202,6 +1333,7 @@ TABLE_COLUMNS = (
     "right_active",
     "verdict",
     "side",
+    "sign",
     "reasons",
 )
 
@@ -1240,6 +1372,7 @@ def symmetry_table(results: Sequence[RegionSymmetry]) -> pd.DataFrame:
                 "right_active": bool(r.verdict.numbers["right_active"]),
                 "verdict": r.verdict.label,
                 "side": r.verdict.side,
+                "sign": r.verdict.sign,
                 "reasons": "; ".join(r.verdict.reasons),
             }
         )
