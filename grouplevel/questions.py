@@ -249,13 +249,19 @@ LABEL_FLAG_SUFFIX = (
 )
 
 
-def _consistency_verdict(cons: Consistency, response: dict, flag_suffix: str) -> dict:
-    """A plain, sign-aware verdict and its reasons for the consistency summary."""
+def _consistency_verdict(
+    cons: Consistency, response: dict, flag_suffix: str, in_mean: np.ndarray
+) -> dict:
+    """A plain, sign-aware verdict and its reasons for the consistency summary.
+
+    Only the animals whose mean the contrast is (``in_mean``, in the order of
+    ``cons.animals``) are counted: the mean of one group is judged on that group.
+    """
     summary = cons.summary()
     table = cons.animals
-    has = table["runs"].to_numpy() > 0
+    has = (table["runs"].to_numpy() > 0) & np.asarray(in_mean, dtype=bool)
     effects = table["effect"].to_numpy(dtype=float)
-    n = summary["animals"]
+    n = int(has.sum())
     signs = response["signs"]
     effect = summary.get("effect")
     if not signs:
@@ -312,6 +318,8 @@ def _consistency_verdict(cons: Consistency, response: dict, flag_suffix: str) ->
         "sign": sign,
         "reasons": reasons,
         **summary,
+        "animals_in_mean": [str(a) for a in table["animal"][has]],
+        "animals_counted": n,
         "animals_agreeing": agree,
         "animals_ci_clear_of_zero": ci_clear,
     }
@@ -508,7 +516,7 @@ def answer_questions(
         not_assessed.update(specificity=reason, consistency=reason)
     suffix = _flag_suffix(spec)
     if cons is not None:
-        cons_summary = _consistency_verdict(cons, response, suffix)
+        cons_summary = _consistency_verdict(cons, response, suffix, plan.animals)
     sym = curves = sym_summary = asym = None
     if questions.symmetry:
         sym, curves, sym_summary = _symmetry(

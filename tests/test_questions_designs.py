@@ -297,6 +297,10 @@ def test_two_group_design_asks_each_group_mean(two_group):
         assert q["symmetry"]["forelimb area"]["verdict"].startswith("bilateral")
         assert q["specificity"]["verdict"] == "specific to target"
         assert q["consistency"]["verdict"] == "all animals agree"
+        # each group's mean is judged on its own four animals
+        group = ["a0", "a1", "a2", "a3"] if name == "mean_a" else ["a4", "a5", "a6", "a7"]
+        assert q["consistency"]["animals_in_mean"] == group
+        assert q["consistency"]["animals_agreeing"] == 4
         assert q["not_assessed"] == {}
     diff = summary["results"]["b_minus_a"]["questions"]
     assert not diff["asked"] and diff["contrast_kind"] == "difference"

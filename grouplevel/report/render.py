@@ -588,7 +588,7 @@ def _cautions(name: str, result: dict, summary: dict, method_words: str) -> list
             f"{len(excluded)} run(s) were excluded before fitting (listed under The study); "
             "the result holds for the runs kept."
         )
-    if result.get("questions"):
+    if (result.get("questions") or {}).get("asked", bool(result.get("questions"))):
         out.append(
             "Each verdict (bilateral, specific, consistent) is a summary by the stated rules "
             "and the numbers beside it, not a separate test: read the reasons with it."
