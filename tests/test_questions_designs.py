@@ -21,7 +21,8 @@ from grouplevel.errors import UserError
 from grouplevel.means import DIFFERENCE, MEAN, OTHER, contrast_kind, design_rows
 from grouplevel.pipeline import fit_study, load_study, run_study
 from grouplevel.planning import _chosen_rows
-from grouplevel.questions import EDGE_FLAG_SUFFIX
+from grouplevel.questions import EDGE_FLAG_SUFFIX, QUESTIONS
+from grouplevel.report.render import _unasked
 from grouplevel.sides import split_side
 from grouplevel.symmetry import NO_ACTIVATION, HemisphereTest, hemisphere_test, symmetry_verdict
 from tests.conftest import save
@@ -509,3 +510,22 @@ targets = ["forelimb area (contralateral)", "septum (left)", "nowhere"]
     assert "no left-hemisphere part of 'septum'" in text
     assert "'nowhere' is not in the atlas" in text
     assert "Traceback" not in text
+
+
+_WORDS = ("bilateral", "specific", "consistent", "run quality")
+
+
+def test_report_never_says_not_assessed_without_a_reason():
+    # a result not asked: every question with the summary's reason
+    reason = "asked of group means only; this contrast is a difference"
+    questions = {"asked": False, "not_assessed": dict.fromkeys(QUESTIONS, reason)}
+    unasked = _unasked({}, questions, {})
+    assert unasked == [f"{word} — {reason}" for word in _WORDS]
+    # an older folder without reasons: the reason is that none was recorded
+    old = _unasked({}, {}, {})
+    assert len(old) == 3 and all("no reason recorded" in u for u in old)
+    # answered questions are not listed
+    assert _unasked({}, {"symmetry": {"x": {}}, "not_assessed": {}}, {"consistency": 1}) == [
+        "specific — no reason recorded (this folder was written by an older version, which "
+        "asked the questions only of the mean of an intercept-only design)"
+    ]
