@@ -792,7 +792,10 @@ def plan_from_output(
             skipped.append(f"{name}: no regions.tsv (the analysis had no atlas)")
             continue
         if not _is_group_mean(entry):
-            skipped.append(f"{name}: not a group mean (the plan covers one-sample designs)")
+            skipped.append(
+                f"{name}: not the mean of an intercept-only design (the plan covers "
+                "one-sample designs only)"
+            )
             continue
         table = _read_regions(path)
         first_level = entry.get("first_level_contrast")
