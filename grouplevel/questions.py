@@ -6,9 +6,10 @@ Glue between the fitted maps (:mod:`grouplevel.pipeline`) and the analyses in
 Which group contrasts are asked: every contrast that is the mean response of a set of
 animals (:func:`grouplevel.means.contrast_kind`: the mean of all animals, of one group,
 an intercept with centred covariates), whatever the design. A difference (genotype,
-drug − vehicle, a slope) is not asked yet; its summary says why in one sentence
-(:func:`question_plan`), and :func:`skipped_warning` makes the one warning ``run``
-prints.
+drug − vehicle, a slope) gets its own symmetry question, whether its lateralisation
+differs (:func:`grouplevel.symmetry.lateralisation_differences`); its specificity,
+consistency and run quality are not asked yet, and its summary says why in one sentence
+(:func:`question_plan`); :func:`skipped_warning` makes the one warning ``run`` prints.
 
 One response for all answers: whether the map has a response, and of which sign, is
 decided once, from the voxels that survive the chosen correction (which honours
@@ -34,7 +35,7 @@ from grouplevel.inference.permutation import (
     cluster_forming_z,
     permutation_test,
 )
-from grouplevel.means import MEAN, ContrastKind, contrast_kind, design_rows
+from grouplevel.means import DIFFERENCE, MEAN, ContrastKind, contrast_kind, design_rows
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.quality import RunQuality, run_quality
 from grouplevel.regions import region_values
@@ -56,6 +57,7 @@ from grouplevel.symmetry import (
     analyse_symmetry,
     asymmetry_data,
     counted_signs,
+    lateralisation_differences,
     li_curves,
     mirror_index,
     symmetry_table,
@@ -92,7 +94,7 @@ class AsymmetryMap:
         return out
 
 
-#: The questions, as summary.json keys, with the words the report uses for them.
+#: The questions, as summary.json keys.
 QUESTIONS = ("symmetry", "specificity", "consistency", "run_quality")
 
 
@@ -123,12 +125,15 @@ def question_plan(design, c: np.ndarray) -> QuestionPlan:
     rows = design_rows(design.matrix, design.animal, design.animal_level)
     kind = contrast_kind(rows, c)
     m = design.n_animals
-    if not kind.is_mean:
-        what = "a difference" if kind.kind == "difference" else "not a group mean"
+    if kind.kind == DIFFERENCE:
         reason = (
-            f"asked of group means only; this contrast is {what} ({kind.why}), and the "
-            "lateralisation, specificity and consistency of a difference are not yet assessed"
+            "asked of group means only; this contrast is a difference (or slope) between "
+            "responses, and the specificity, consistency and run quality of a difference are "
+            "not yet assessed"
         )
+        return QuestionPlan(False, kind, reason, np.zeros(m, dtype=bool))
+    if not kind.is_mean:
+        reason = f"asked of group means only; {kind.why}"
         return QuestionPlan(False, kind, reason, np.zeros(m, dtype=bool))
     weighted = kind.rows_in_mean()
     animals = np.zeros(m, dtype=bool)
@@ -144,9 +149,10 @@ def skipped_warning(skipped: list[str]) -> list[str]:
     if not skipped:
         return []
     return [
-        "the questions (symmetry, specificity, consistency, run quality) are asked of group "
-        f"means only; not asked of {', '.join(skipped)} (differences or other contrasts "
-        "that are not a mean response); each result's summary gives the reason"
+        "specificity, consistency and run quality are asked of group means only; not asked "
+        f"of {', '.join(skipped)} (differences, or contrasts that are not a mean response; "
+        "a difference is asked whether its lateralisation differs); each result's summary "
+        "gives the reason"
     ]
 
 
@@ -175,30 +181,45 @@ class Answers:
     artefact_flag: str = ""
 
     @classmethod
-    def not_asked(cls, plan: QuestionPlan) -> Answers:
-        """The answers of a contrast that is not asked: only the reason."""
+    def not_asked(
+        cls,
+        plan: QuestionPlan,
+        lateralisation: pd.DataFrame | None = None,
+        lateralisation_summary: dict | None = None,
+        symmetry_reason: str | None = None,
+    ) -> Answers:
+        """The answers of a contrast that is not a group mean: the reasons, and for a
+        difference the lateralisation question (table and summary) when it was asked."""
+        reasons = {q: plan.reason for q in QUESTIONS}
+        if lateralisation is not None:
+            del reasons["symmetry"]
+        elif symmetry_reason:
+            reasons["symmetry"] = symmetry_reason
         return cls(
+            lateralisation,
             None,
-            None,
-            None,
+            lateralisation_summary,
             None,
             None,
             None,
             None,
             None,
             (),
-            not_assessed={q: plan.reason for q in QUESTIONS},
+            not_assessed=reasons,
             contrast_kind=plan.kind.kind,
         )
 
     @property
     def asked(self) -> bool:
-        return self.run_quality is not None
+        """Whether the contrast is a group mean (asked every question)."""
+        return self.contrast_kind == MEAN
 
     def tables(self) -> dict[str, pd.DataFrame]:
         """The TSV tables, keyed by file stem."""
         if not self.asked:
-            return {}
+            if self.symmetry is None:
+                return {}
+            return {"lateralisation_difference": self.symmetry}
         out = {"run_quality": self.run_quality.table(), "leave_one_out": self.loo.table()}
         if self.symmetry is not None:
             out["symmetry"] = self.symmetry
@@ -469,7 +490,7 @@ def answer_questions(
     """
     plan = plan or question_plan(design, c)
     if not plan.asked:
-        return Answers.not_asked(plan)
+        return _difference_answers(plan, design, c, regions, questions, settings)
     estimate = settings.model.run_variance == "estimate"
     alpha = settings.inference.alpha
     notes: list[str] = []
@@ -540,6 +561,29 @@ def answer_questions(
         consistency_summary=cons_summary,
         artefact_flag=spec.flag if spec is not None else "",
     )
+
+
+def _difference_answers(plan, design, c, regions, questions, settings) -> Answers:
+    """A contrast that is not a group mean: a difference's lateralisation, else reasons."""
+    if plan.kind.kind != DIFFERENCE:
+        return Answers.not_asked(plan)
+    if regions is None:
+        return Answers.not_asked(
+            plan, symmetry_reason="the study has no [atlas], so no region can be asked about"
+        )
+    if not questions.symmetry:
+        return Answers.not_asked(plan, symmetry_reason="no [questions] symmetry regions were named")
+    table, summary = lateralisation_differences(
+        list(questions.symmetry),
+        regions.atlas,
+        region_values=regions.values,
+        animal=design.animal,
+        X=design.matrix,
+        c=c,
+        alpha=settings.inference.alpha,
+        stimulus_side=questions.stimulus_side,
+    )
+    return Answers.not_asked(plan, table, summary)
 
 
 def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, questions):

@@ -106,6 +106,8 @@ BILATERAL_EQUIVALENT = "bilateral (equivalence shown)"
 BILATERAL_UNRESOLVED = "bilateral, asymmetry not excluded"
 UNCLEAR = "unclear ({larger} larger, only {active} active)"
 OPPOSITE_SIGNS = "opposite signs (left {left}, right {right})"
+LATERALISATION_DIFFERS = "lateralisation differs (the contrast is larger on the {side})"
+LATERALISATION_NOT_SHOWN = "no evidence that the lateralisation differs"
 #: Put before the label of a negative response ("negative response, bilateral ...").
 NEGATIVE_PREFIX = "negative response, "
 
@@ -1394,3 +1396,147 @@ def li_curves(results: Sequence[RegionSymmetry]) -> pd.DataFrame:
     if not frames:
         return pd.DataFrame(columns=["region", "threshold", "li"])
     return pd.concat(frames, ignore_index=True)
+
+
+# --------------------------------------------------------------------------------------
+# The lateralisation of a difference
+# --------------------------------------------------------------------------------------
+
+
+def lateralisation_difference_verdict(
+    test: HemisphereTest, *, alpha: float = DEFAULT_ALPHA, stimulus_side: str | None = None
+) -> Verdict:
+    """Does a difference contrast (group b − a, drug − vehicle) differ between the sides?
+
+    ``test`` is :func:`hemisphere_test` with the difference contrast: its ``left_effect``
+    and ``right_effect`` are the contrast on each side's region mean, and its
+    ``difference`` is the contrast of ``L − R``, the difference of the two hemispheric
+    differences (an interaction of side and contrast).
+
+    The rule: p of ``c(L − R)`` < α → "lateralisation differs (the contrast is larger on
+    the <side>)", the side where the contrast is larger (the left when ``c(L − R) > 0``);
+    otherwise "no evidence that the lateralisation differs". No equivalence test is made:
+    the LI margin of :func:`hemisphere_test` is defined for a response, not for a
+    difference, so "the same lateralisation" is never concluded.
+
+    With ``stimulus_side`` the side is also called contralateral or ipsilateral.
+    """
+    if not 0.0 < alpha < 1.0:
+        raise UserError(f"[questions] alpha = {alpha}: give a level between 0 and 1.")
+    if stimulus_side is not None and stimulus_side not in SIDES:
+        raise UserError(
+            f'[questions] stimulus_side = {stimulus_side!r}: use "left", "right" or leave '
+            "it out when the stimulus was not lateralised."
+        )
+    reasons = [
+        f"{side} side: contrast {effect:.3g}, {_fmt_p(p)}"
+        for side, effect, p in (
+            ("left", test.left_effect, test.left_p),
+            ("right", test.right_effect, test.right_p),
+        )
+    ]
+    significant = bool(np.isfinite(test.p) and test.p < alpha)
+    larger = "left" if test.difference > 0 else "right"
+    reasons.append(
+        f"Contrast of left minus right {test.difference:.3g} (95% CI {test.ci_low:.3g} to "
+        f"{test.ci_high:.3g}), {_fmt_p(test.p)}"
+    )
+    side = ""
+    if significant:
+        label = LATERALISATION_DIFFERS.format(side=larger)
+        if stimulus_side is not None:
+            side = "ipsilateral" if larger == stimulus_side else "contralateral"
+            reasons.append(f"The {larger} side is {side} to the stimulated {stimulus_side} side")
+    else:
+        label = LATERALISATION_NOT_SHOWN
+        reasons.append(
+            "Not significant: this does not show that the lateralisation is the same (no "
+            "equivalence test is made for a difference)"
+        )
+    numbers = {
+        "alpha": float(alpha),
+        "left_effect": _float(test.left_effect),
+        "left_p": _float(test.left_p),
+        "right_effect": _float(test.right_effect),
+        "right_p": _float(test.right_p),
+        "difference": _float(test.difference),
+        "difference_p": _float(test.p),
+        "stimulus_side": stimulus_side or "",
+        "larger_side": larger if significant else "",
+    }
+    return Verdict(label=label, reasons=tuple(reasons), numbers=numbers, side=side)
+
+
+#: Columns of :func:`lateralisation_differences`, in order.
+DIFFERENCE_TABLE_COLUMNS = (
+    "region",
+    "left_effect",
+    "left_p",
+    "right_effect",
+    "right_p",
+    "difference",
+    "se",
+    "ci_low",
+    "ci_high",
+    "df",
+    "p",
+    "verdict",
+    "side",
+    "reasons",
+)
+
+
+def lateralisation_differences(
+    names: Sequence[str],
+    atlas: Atlas,
+    *,
+    region_values: np.ndarray,
+    animal: np.ndarray,
+    X: np.ndarray,
+    c: np.ndarray,
+    alpha: float = DEFAULT_ALPHA,
+    stimulus_side: str | None = None,
+) -> tuple[pd.DataFrame, dict]:
+    """The lateralisation of a difference contrast for each named region pair.
+
+    Parameters
+    ----------
+    names, atlas, region_values, animal
+        As :func:`analyse_symmetry`.
+    X, c
+        Group design and the difference contrast.
+    alpha, stimulus_side
+        See :func:`lateralisation_difference_verdict`.
+
+    Returns
+    -------
+    table, summary
+        One row per region (:data:`DIFFERENCE_TABLE_COLUMNS`), and per region the
+        verdict, side, reasons and numbers for summary.json.
+    """
+    region_values = np.asarray(region_values, dtype=float)
+    rows, summary = [], {}
+    for name in names:
+        left_row, right_row = region_pair(atlas, name)
+        test = hemisphere_test(
+            region_values[:, left_row], region_values[:, right_row], animal, X=X, c=c
+        )
+        verdict = lateralisation_difference_verdict(test, alpha=alpha, stimulus_side=stimulus_side)
+        rows.append(
+            {
+                "region": str(name),
+                **{k: getattr(test, k) for k in DIFFERENCE_TABLE_COLUMNS[1:11]},
+                "verdict": verdict.label,
+                "side": verdict.side,
+                "reasons": "; ".join(verdict.reasons),
+            }
+        )
+        summary[str(name)] = {
+            "verdict": verdict.label,
+            "side": verdict.side,
+            "question": "does the lateralisation differ",
+            "reasons": list(verdict.reasons),
+            "test": test.summary(),
+            "numbers": verdict.numbers,
+        }
+    return pd.DataFrame(rows, columns=list(DIFFERENCE_TABLE_COLUMNS)), summary

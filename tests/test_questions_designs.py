@@ -24,7 +24,13 @@ from grouplevel.planning import _chosen_rows
 from grouplevel.questions import EDGE_FLAG_SUFFIX, QUESTIONS
 from grouplevel.report.render import _unasked
 from grouplevel.sides import split_side
-from grouplevel.symmetry import NO_ACTIVATION, HemisphereTest, hemisphere_test, symmetry_verdict
+from grouplevel.symmetry import (
+    NO_ACTIVATION,
+    HemisphereTest,
+    hemisphere_test,
+    lateralisation_difference_verdict,
+    symmetry_verdict,
+)
 from tests.conftest import save
 
 SHAPE = (12, 8, 8)
@@ -231,6 +237,33 @@ def test_opposite_signs_and_narrowed_signs():
     assert narrowed.label == NO_ACTIVATION
 
 
+def test_lateralisation_of_a_difference_equals_statsmodels():
+    # Reference: statsmodels MixedLM (REML, random intercept per animal) of the per-run
+    # L − R on the group indicator: the group coefficient is the difference of the two
+    # groups' hemispheric differences. Group b's response is planted on the left only.
+    rng = np.random.default_rng(12)
+    animals = np.repeat(np.arange(12), 2)
+    group = (animals >= 6).astype(float)
+    u = rng.normal(0, 0.3, 12)[animals]
+    tilt = rng.normal(0, 0.3, 12)[animals]  # each animal's own left/right imbalance
+    left = 0.5 + 0.8 * group + u + tilt + rng.normal(0, 0.3, 24)
+    right = 0.5 + u + rng.normal(0, 0.3, 24)
+    X = np.column_stack([np.ones(24), group])
+    c = np.array([0.0, 1.0])
+    res = hemisphere_test(left, right, animals, X=X, c=c)
+    frame = pd.DataFrame({"d": left - right, "g": group, "a": animals})
+    fit = smf.mixedlm("d ~ g", frame, groups=frame["a"]).fit(reml=True)
+    assert res.difference == pytest.approx(float(fit.fe_params["g"]), abs=1e-4)
+    assert res.se == pytest.approx(float(fit.bse_fe["g"]), rel=1e-3)
+    v = lateralisation_difference_verdict(res, stimulus_side="right")
+    assert res.p < 0.05
+    assert v.label == "lateralisation differs (the contrast is larger on the left)"
+    assert v.side == "contralateral"
+    flat = lateralisation_difference_verdict(_test((0.2, 0.01), (0.2, 0.01), diff=(0.0, 0.9)))
+    assert flat.label == "no evidence that the lateralisation differs"
+    assert any("does not show that the lateralisation is the same" in r for r in flat.reasons)
+
+
 def test_hemisphere_test_of_a_group_mean_equals_statsmodels():
     # Reference: statsmodels MixedLM (REML, random intercept per animal) of the per-run
     # L − R on the group indicator; the mean of group b is Intercept + group[T.b].
@@ -305,16 +338,23 @@ def test_two_group_design_asks_each_group_mean(two_group):
         assert q["not_assessed"] == {}
     diff = summary["results"]["b_minus_a"]["questions"]
     assert not diff["asked"] and diff["contrast_kind"] == "difference"
-    assert diff["symmetry"] is None and diff["consistency"] is None
-    for key in ("symmetry", "specificity", "consistency", "run_quality"):
-        assert diff["not_assessed"][key].startswith("asked of group means only")
+    assert diff["consistency"] is None and diff["specificity"] is None
+    assert set(diff["not_assessed"]) == {"specificity", "consistency", "run_quality"}
+    for reason in diff["not_assessed"].values():
+        assert reason.startswith("asked of group means only; this contrast is a difference")
+    # the difference's own symmetry question: does the lateralisation differ? Group b
+    # has a larger response on both sides alike, so no evidence that it differs.
+    lat = diff["symmetry"]["forelimb area"]
+    assert lat["verdict"] == "no evidence that the lateralisation differs"
+    assert lat["test"]["p"] > 0.05
+    assert (two_group / "b_minus_a" / "lateralisation_difference.tsv").is_file()
     # one warning for the whole run
     skipped = [w for w in summary["warnings"] if "asked of group means only" in w]
     assert len(skipped) == 1 and "b_minus_a" in skipped[0]
     html = (two_group / "report.html").read_text()
     # the short answer names each question not assessed with its reason
-    assert "bilateral — asked of group means only" in html
     assert "consistent — asked of group means only" in html
+    assert "Lateralisation differs?" in html
 
 
 def test_group_mean_consistency_equals_statsmodels(two_group):

@@ -220,7 +220,9 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
                     f"{region}: {v.get('verdict', 'no verdict')}{side}"
                     + (f" ({reasons})" if reasons else "")
                 )
-        items.append(("Bilateral?", "", "; ".join(parts) + "."))
+        difference = questions.get("contrast_kind") == "difference"
+        question = "Lateralisation differs?" if difference else "Bilateral?"
+        items.append((question, "", "; ".join(parts) + "."))
     elif "symmetry" in views:
         sym = frames["symmetry"]
         if "verdict" in sym:
