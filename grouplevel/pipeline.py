@@ -37,7 +37,13 @@ from grouplevel.model import (
     satterthwaite_df,
     test_contrast,
 )
-from grouplevel.questions import Answers, answer_questions, question_plan, skipped_warning
+from grouplevel.questions import (
+    Answers,
+    answer_questions,
+    answers_not_asked,
+    question_plan,
+    skipped_warning,
+)
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.study import FirstLevel, Study, load_runs, load_study
 from grouplevel.tables import RegionTables, region_data, region_tables
@@ -364,20 +370,22 @@ def _fit_first_level(
         plan = question_plan(design, c)
         if plan.asked:
             log(f"  questions of {name}: symmetry, specificity, consistency, run quality")
-        answers = answer_questions(
-            gm,
-            y,
-            s2,
-            fit,
-            design,
-            fl.runs,
-            c,
-            regions,
-            settings.questions_for(fl.name),
-            settings,
-            plan,
-        )
-        gm = replace(gm, answers=answers)
+            answers = answer_questions(
+                gm,
+                y,
+                s2,
+                fit,
+                design,
+                fl.runs,
+                c,
+                regions,
+                settings.questions_for(fl.name),
+                settings,
+            )
+            gm = replace(gm, answers=answers)
+        else:
+            q = settings.questions_for(fl.name)
+            gm = replace(gm, answers=answers_not_asked(plan, design, c, regions, q, settings))
         results.append(gm)
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings

@@ -490,7 +490,7 @@ def answer_questions(
     """
     plan = plan or question_plan(design, c)
     if not plan.asked:
-        return _difference_answers(plan, design, c, regions, questions, settings)
+        return answers_not_asked(plan, design, c, regions, questions, settings)
     estimate = settings.model.run_variance == "estimate"
     alpha = settings.inference.alpha
     notes: list[str] = []
@@ -563,7 +563,7 @@ def answer_questions(
     )
 
 
-def _difference_answers(plan, design, c, regions, questions, settings) -> Answers:
+def answers_not_asked(plan, design, c, regions, questions, settings) -> Answers:
     """A contrast that is not a group mean: a difference's lateralisation, else reasons."""
     if plan.kind.kind != DIFFERENCE:
         return Answers.not_asked(plan)
