@@ -385,7 +385,8 @@ def _fit_first_level(
             gm = replace(gm, answers=answers)
         else:
             q = settings.questions_for(fl.name)
-            gm = replace(gm, answers=answers_not_asked(plan, design, c, regions, q, settings))
+            answers = answers_not_asked(plan, design, c, regions, q, settings, gm, y)
+            gm = replace(gm, answers=answers)
         results.append(gm)
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings

@@ -7,9 +7,10 @@ Which group contrasts are asked: every contrast that is the mean response of a s
 animals (:func:`grouplevel.means.contrast_kind`: the mean of all animals, of one group,
 an intercept with centred covariates), whatever the design. A difference (genotype,
 drug − vehicle, a slope) gets its own symmetry question, whether its lateralisation
-differs (:func:`grouplevel.symmetry.lateralisation_differences`); its specificity,
-consistency and run quality are not asked yet, and its summary says why in one sentence
-(:func:`question_plan`); :func:`skipped_warning` makes the one warning ``run`` prints.
+differs (:func:`grouplevel.symmetry.lateralisation_differences`), and the specificity
+question of its surviving voxels; its consistency and run quality are not asked yet, and
+its summary says why in one sentence (:func:`question_plan`); :func:`skipped_warning`
+makes the one warning ``run`` prints.
 
 One response for all answers: whether the map has a response, and of which sign, is
 decided once, from the voxels that survive the chosen correction (which honours
@@ -128,8 +129,8 @@ def question_plan(design, c: np.ndarray) -> QuestionPlan:
     if kind.kind == DIFFERENCE:
         reason = (
             "asked of group means only; this contrast is a difference (or slope) between "
-            "responses, and the specificity, consistency and run quality of a difference are "
-            "not yet assessed"
+            "responses, and the consistency across animals and run quality of a difference "
+            "are not yet assessed"
         )
         return QuestionPlan(False, kind, reason, np.zeros(m, dtype=bool))
     if not kind.is_mean:
@@ -149,10 +150,10 @@ def skipped_warning(skipped: list[str]) -> list[str]:
     if not skipped:
         return []
     return [
-        "specificity, consistency and run quality are asked of group means only; not asked "
-        f"of {', '.join(skipped)} (differences, or contrasts that are not a mean response; "
-        "a difference is asked whether its lateralisation differs); each result's summary "
-        "gives the reason"
+        "consistency and run quality are asked of group means only; not asked of "
+        f"{', '.join(skipped)} (differences, or contrasts that are not a mean response; a "
+        "difference is asked whether its lateralisation differs and whether it is specific "
+        "to the targets); each result's summary gives the reason"
     ]
 
 
@@ -181,32 +182,35 @@ class Answers:
     artefact_flag: str = ""
 
     @classmethod
-    def not_asked(
+    def not_asked(cls, plan: QuestionPlan) -> Answers:
+        """The answers of a contrast that is neither a mean nor a difference: reasons."""
+        return cls.for_difference(plan, {q: plan.reason for q in QUESTIONS})
+
+    @classmethod
+    def for_difference(
         cls,
         plan: QuestionPlan,
+        not_assessed: dict[str, str],
         lateralisation: pd.DataFrame | None = None,
         lateralisation_summary: dict | None = None,
-        symmetry_reason: str | None = None,
+        spec: Specificity | None = None,
+        response: dict | None = None,
     ) -> Answers:
-        """The answers of a contrast that is not a group mean: the reasons, and for a
-        difference the lateralisation question (table and summary) when it was asked."""
-        reasons = {q: plan.reason for q in QUESTIONS}
-        if lateralisation is not None:
-            del reasons["symmetry"]
-        elif symmetry_reason:
-            reasons["symmetry"] = symmetry_reason
+        """The answers of a difference: its lateralisation and specificity where asked."""
         return cls(
             lateralisation,
             None,
             lateralisation_summary,
             None,
-            None,
+            spec,
             None,
             None,
             None,
             (),
-            not_assessed=reasons,
+            not_assessed=not_assessed,
             contrast_kind=plan.kind.kind,
+            response=response,
+            artefact_flag=spec.flag if spec is not None else "",
         )
 
     @property
@@ -217,9 +221,12 @@ class Answers:
     def tables(self) -> dict[str, pd.DataFrame]:
         """The TSV tables, keyed by file stem."""
         if not self.asked:
-            if self.symmetry is None:
-                return {}
-            return {"lateralisation_difference": self.symmetry}
+            out = {}
+            if self.symmetry is not None:
+                out["lateralisation_difference"] = self.symmetry
+            if self.specificity is not None:
+                out["specificity"] = self.specificity.table()
+            return out
         out = {"run_quality": self.run_quality.table(), "leave_one_out": self.loo.table()}
         if self.symmetry is not None:
             out["symmetry"] = self.symmetry
@@ -253,7 +260,11 @@ class Answers:
         out = self.specificity.summary()
         signs = (self.response or {}).get("signs") or []
         out["sign"] = " and ".join(signs)
-        if out["verdict"] != VERDICT_NONE and signs and signs != ["positive"]:
+        if self.contrast_kind == DIFFERENCE:
+            # the direction of a difference always matters: name it
+            if out["verdict"] != VERDICT_NONE and signs:
+                out["verdict"] = f"{out['verdict']} ({' and '.join(signs)} difference)"
+        elif out["verdict"] != VERDICT_NONE and signs and signs != ["positive"]:
             out["verdict"] = f"{out['verdict']} ({' and '.join(signs)} response)"
         return out
 
@@ -490,7 +501,7 @@ def answer_questions(
     """
     plan = plan or question_plan(design, c)
     if not plan.asked:
-        return answers_not_asked(plan, design, c, regions, questions, settings)
+        return answers_not_asked(plan, design, c, regions, questions, settings, gm, y)
     estimate = settings.model.run_variance == "estimate"
     alpha = settings.inference.alpha
     notes: list[str] = []
@@ -563,35 +574,59 @@ def answer_questions(
     )
 
 
-def answers_not_asked(plan, design, c, regions, questions, settings) -> Answers:
-    """A contrast that is not a group mean: a difference's lateralisation, else reasons."""
+def answers_not_asked(plan, design, c, regions, questions, settings, gm=None, y=None) -> Answers:
+    """A contrast that is not a group mean.
+
+    A difference is asked whether its lateralisation differs (with ``[questions]
+    symmetry``) and whether it is specific to the targets (with ``[questions] targets``;
+    needs the group map ``gm`` and the runs' data ``y``); its consistency and run quality
+    are not asked, with the reason. Any other contrast gets only the reasons.
+    """
     if plan.kind.kind != DIFFERENCE:
         return Answers.not_asked(plan)
+    not_assessed = {q: plan.reason for q in ("consistency", "run_quality")}
     if regions is None:
-        return Answers.not_asked(
-            plan, symmetry_reason="the study has no [atlas], so no region can be asked about"
+        reason = "the study has no [atlas], so no region can be asked about"
+        not_assessed.update(symmetry=reason, specificity=reason)
+        return Answers.for_difference(plan, not_assessed)
+    spec = response = None
+    if questions.targets and gm is not None and y is not None:
+        method = settings.clusters.resolved_method(settings.inference)
+        alpha = settings.inference.alpha
+        surviving = surviving_voxels(gm, alpha)[method]
+        response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
+        shell = edge_shell(gm.mask, questions.edge_distance_voxels)
+        spec = _target_specificity(gm, y, design, c, regions.atlas, surviving, shell, questions)
+    else:
+        not_assessed["specificity"] = "no [questions] targets were named"
+    table = summary = None
+    if questions.symmetry:
+        table, summary = lateralisation_differences(
+            list(questions.symmetry),
+            regions.atlas,
+            region_values=regions.values,
+            animal=design.animal,
+            X=design.matrix,
+            c=c,
+            alpha=settings.inference.alpha,
+            stimulus_side=questions.stimulus_side,
         )
-    if not questions.symmetry:
-        return Answers.not_asked(plan, symmetry_reason="no [questions] symmetry regions were named")
-    table, summary = lateralisation_differences(
-        list(questions.symmetry),
-        regions.atlas,
-        region_values=regions.values,
-        animal=design.animal,
-        X=design.matrix,
-        c=c,
-        alpha=settings.inference.alpha,
-        stimulus_side=questions.stimulus_side,
-    )
-    return Answers.not_asked(plan, table, summary)
+        suffix = _flag_suffix(spec)
+        if suffix:
+            for entry in summary.values():
+                if entry["numbers"]["larger_side"]:
+                    entry["verdict"] += suffix
+            table["verdict"] = [entry["verdict"] for entry in summary.values()]
+    else:
+        not_assessed["symmetry"] = "no [questions] symmetry regions were named"
+    return Answers.for_difference(plan, not_assessed, table, summary, spec, response)
 
 
-def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, questions):
-    """Specificity of the surviving voxels and consistency of the target effect."""
-    where = "[questions] targets"
-    rows = asked_rows(atlas, questions.targets, questions.stimulus_side, where)
+def _target_specificity(gm, y, design, c, atlas, surviving, shell, questions) -> Specificity:
+    """Specificity of the surviving voxels for the (possibly one-sided) targets."""
+    rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
     height = (np.argwhere(gm.mask) @ gm.grid.affine[:3, :3].T + gm.grid.affine[:3, 3])[:, 2]
-    spec = specificity(
+    return specificity(
         surviving,
         gm.z,
         gm.effect,
@@ -606,6 +641,12 @@ def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, ques
         design.animal,
         c,
     )
+
+
+def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, questions):
+    """Specificity of the surviving voxels and consistency of the target effect."""
+    spec = _target_specificity(gm, y, design, c, atlas, surviving, shell, questions)
+    rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
     leaves = leaf_rows(atlas, rows)
     weights = sp.csr_matrix(np.asarray(atlas.shares[:, leaves].sum(axis=1)))
     target_values, _ = region_values(y, np.isfinite(y), weights)

@@ -316,7 +316,7 @@ def two_group(tmp_path_factory) -> Path:
     toml = _study(
         folder / "study",
         _both_sides(),
-        amplitude=[1.0] * 4 + [1.6] * 4,
+        amplitude=[1.0] * 4 + [2.5] * 4,
         groups=groups,
         toml=TWO_GROUP_TOML,
     )
@@ -338,10 +338,14 @@ def test_two_group_design_asks_each_group_mean(two_group):
         assert q["not_assessed"] == {}
     diff = summary["results"]["b_minus_a"]["questions"]
     assert not diff["asked"] and diff["contrast_kind"] == "difference"
-    assert diff["consistency"] is None and diff["specificity"] is None
-    assert set(diff["not_assessed"]) == {"specificity", "consistency", "run_quality"}
+    assert diff["consistency"] is None and diff["run_quality"] is None
+    assert set(diff["not_assessed"]) == {"consistency", "run_quality"}
     for reason in diff["not_assessed"].values():
         assert reason.startswith("asked of group means only; this contrast is a difference")
+    # the difference (b larger than a, planted in the forelimb area only) is specific to
+    # the target, and its direction is named
+    assert diff["specificity"]["verdict"] == "specific to target (positive difference)"
+    assert diff["response"]["signs"] == ["positive"]
     # the difference's own symmetry question: does the lateralisation differ? Group b
     # has a larger response on both sides alike, so no evidence that it differs.
     lat = diff["symmetry"]["forelimb area"]

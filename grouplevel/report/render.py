@@ -590,7 +590,8 @@ def _cautions(name: str, result: dict, summary: dict, method_words: str) -> list
             f"{len(excluded)} run(s) were excluded before fitting (listed under The study); "
             "the result holds for the runs kept."
         )
-    if (result.get("questions") or {}).get("asked", bool(result.get("questions"))):
+    answered = result.get("questions") or {}
+    if any(answered.get(k) for k in ("symmetry", "specificity", "consistency")):
         out.append(
             "Each verdict (bilateral, specific, consistent) is a summary by the stated rules "
             "and the numbers beside it, not a separate test: read the reasons with it."
