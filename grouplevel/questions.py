@@ -515,9 +515,7 @@ def answer_questions(
         animal_ids=design.animal_ids,
         estimate_run_variance=estimate or s2 is None,
     )
-    quality = run_quality(
-        y, s2, design.animal, runs, loo.effect, shell, threshold=questions.outlier_z
-    )
+    quality = _run_quality(y, s2, design, runs, loo, shell, questions, plan.animals)
     method = settings.clusters.resolved_method(settings.inference)
     surviving = surviving_voxels(gm, alpha)[method]
     response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
@@ -620,6 +618,29 @@ def answers_not_asked(plan, design, c, regions, questions, settings, gm=None, y=
     else:
         not_assessed["symmetry"] = "no [questions] symmetry regions were named"
     return Answers.for_difference(plan, not_assessed, table, summary, spec, response)
+
+
+def _run_quality(y, s2, design, runs, loo, shell, questions, in_mean) -> RunQuality:
+    """Run quality among the runs of the animals whose mean is asked about.
+
+    The robust z compares runs with each other; runs of another group (with another
+    response) would make the runs of either group look unusual.
+    """
+    keep = np.asarray(in_mean, dtype=bool)[design.animal]
+    if keep.all():
+        return run_quality(
+            y, s2, design.animal, runs, loo.effect, shell, threshold=questions.outlier_z
+        )
+    codes = np.unique(design.animal[keep], return_inverse=True)[1]
+    return run_quality(
+        y[keep],
+        None if s2 is None else s2[keep],
+        codes,
+        runs[keep].reset_index(drop=True),
+        loo.effect[np.asarray(in_mean, dtype=bool)],
+        shell,
+        threshold=questions.outlier_z,
+    )
 
 
 def _target_specificity(gm, y, design, c, atlas, surviving, shell, questions) -> Specificity:

@@ -335,6 +335,8 @@ def test_two_group_design_asks_each_group_mean(two_group):
         group = ["a0", "a1", "a2", "a3"] if name == "mean_a" else ["a4", "a5", "a6", "a7"]
         assert q["consistency"]["animals_in_mean"] == group
         assert q["consistency"]["animals_agreeing"] == 4
+        # run quality compares the runs of that group only (2 runs × 4 animals)
+        assert q["run_quality"]["runs"] == 8
         assert q["not_assessed"] == {}
     diff = summary["results"]["b_minus_a"]["questions"]
     assert not diff["asked"] and diff["contrast_kind"] == "difference"
