@@ -45,7 +45,12 @@ from grouplevel.model import (
 )
 from grouplevel.outputs.summary import write_summary
 from grouplevel.progress import Progress
-from grouplevel.questions.ask import answer_questions, asks_questions
+from grouplevel.questions.ask import (
+    answer_questions,
+    answers_not_asked,
+    question_plan,
+    skipped_warning,
+)
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.results.compute import Backend, fit_voxel_chunks, open_backend
 from grouplevel.results.correction import permutation_arguments
@@ -245,7 +250,8 @@ def _fit_first_level(
         )
         if regions is not None:
             gm = replace(gm, tables=region_tables(gm, regions, design, c, settings))
-        if asks_questions(design.columns, cname):
+        plan = question_plan(design, c)
+        if plan.asked:
             log(f"  questions of {name}: symmetry, specificity, consistency, run quality")
             answers = answer_questions(
                 gm,
@@ -260,6 +266,10 @@ def _fit_first_level(
                 settings,
                 backend=backend,
             )
+            gm = replace(gm, answers=answers)
+        else:
+            q = settings.questions_for(fl.name)
+            answers = answers_not_asked(plan, design, c, regions, q, settings, gm, y)
             gm = replace(gm, answers=answers)
         results.append(gm)
     log(f"  done in {time.perf_counter() - start:.1f} s")
@@ -289,6 +299,7 @@ def fit_study(
             m, w = _fit_first_level(study, fl, log, quiet, backend)
             maps.extend(m)
             warnings.extend(w)
+    warnings.extend(skipped_warning([m.name for m in maps if m.answers and not m.answers.asked]))
     return maps, warnings
 
 

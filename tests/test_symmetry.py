@@ -355,7 +355,7 @@ def _test(left=(0.5, 0.001), right=(0.5, 0.001), diff=(0.0, 0.9), tost_p=0.5, ma
 @pytest.mark.parametrize(
     ("kwargs", "stim", "label", "side"),
     [
-        (dict(left=(0.1, 0.4), right=(-0.1, 0.01)), None, NO_ACTIVATION, ""),
+        (dict(left=(0.1, 0.4), right=(-0.1, 0.01), sided="positive"), None, NO_ACTIVATION, ""),
         (dict(right=(0.05, 0.3), diff=(0.4, 0.001)), "right", "unilateral (left)", "contralateral"),
         (dict(left=(0.05, 0.3), diff=(-0.4, 0.001)), "right", "unilateral (right)", "ipsilateral"),
         (
@@ -379,7 +379,9 @@ def _test(left=(0.5, 0.001), right=(0.5, 0.001), diff=(0.0, 0.9), tost_p=0.5, ma
 def test_verdict_rule(kwargs, stim, label, side):
     # The written rule of docs/verdicts-symmetry.md, branch by branch (our own rule; the
     # alpha of 0.05 is common practice).
-    v = symmetry_verdict(_test(**kwargs), alpha=0.05, stimulus_side=stim)
+    kwargs = dict(kwargs)
+    sided = kwargs.pop("sided", "two")
+    v = symmetry_verdict(_test(**kwargs), alpha=0.05, stimulus_side=stim, sided=sided)
     assert v.label == label
     assert v.side == side
     assert v.reasons and all(isinstance(r, str) for r in v.reasons)

@@ -872,7 +872,14 @@ def _group_contrasts(
 
 
 def _check_questions(settings: Settings, contrast_names: list[str], atlas: Atlas | None):
-    """Problems with [questions]: unknown contrasts, regions, or no atlas to ask."""
+    """Problems with [questions]: unknown contrasts, regions, or no atlas to ask.
+
+    Every region is checked the way the questions will use it, so that nothing ``run``
+    refuses later for a region passes ``check``: a target (with an optional side
+    suffix, :mod:`grouplevel.questions.sides`) must exist and have that side; a symmetry
+    region must give exactly one left and one right row
+    (:func:`grouplevel.questions.symmetry.region_pair`) and be listed once.
+    """
     problems = []
     known = [n for n in contrast_names if n]
     for name in settings.questions_by_contrast:
@@ -886,19 +893,46 @@ def _check_questions(settings: Settings, contrast_names: list[str], atlas: Atlas
                     else " (no 'condition' column)"
                 )
             )
-    asked = [settings.questions, *settings.questions_by_contrast.values()]
-    regions = sorted({r for q in asked for r in (*q.symmetry, *q.targets)})
+    asked = {"questions": settings.questions}
+    asked.update({f"questions.{k}": q for k, q in settings.questions_by_contrast.items()})
+    regions = sorted({r for q in asked.values() for r in (*q.symmetry, *q.targets)})
     if regions and settings.atlas is None:
         problems.append(
             "[questions] names regions (" + ", ".join(regions) + ") but the study has no "
             "[atlas]; add one (image and labels) to ask about regions"
         )
     elif regions and atlas is not None:
-        for region in regions:
-            try:
-                atlas.region_rows(region)
-            except UserError as exc:
-                problems.append(f"[questions]: {exc}")
+        for where, q in asked.items():
+            problems.extend(_check_question_regions(where, q, atlas))
+    return list(dict.fromkeys(problems))
+
+
+def _check_question_regions(where: str, q, atlas: Atlas) -> list[str]:
+    """Problems with the targets and symmetry regions of one [questions] table."""
+    from grouplevel.questions.sides import asked_region, resolve_side, split_side
+    from grouplevel.questions.symmetry import region_pair
+
+    problems = []
+    for name in q.targets:
+        try:
+            asked_region(atlas, name, q.stimulus_side, f"[{where}] targets")
+        except UserError as exc:
+            problems.append(str(exc))
+    pairs: dict[tuple[int, int], str] = {}
+    for name in q.symmetry:
+        try:
+            resolve_side(split_side(name)[1], q.stimulus_side, f"[{where}] symmetry", name)
+            pair = region_pair(atlas, name)
+        except UserError as exc:
+            text = str(exc)
+            problems.append(text if text.startswith("[") else f"[{where}] symmetry: {text}")
+            continue
+        if pair in pairs:
+            problems.append(
+                f"[{where}] symmetry: {name!r} names the same left/right pair as "
+                f"{pairs[pair]!r}; give each region once"
+            )
+        pairs.setdefault(pair, name)
     return problems
 
 

@@ -43,6 +43,7 @@ from grouplevel.planning.power import (
     design_power,
     power_grid,
 )
+from grouplevel.questions.sides import resolve_side, split_side
 
 # --------------------------------------------------------------------------------------
 # Results
@@ -236,6 +237,30 @@ def _target_names(settings: dict[str, Any], first_level: str | None) -> list[str
             return [str(t) for t in targets]
     questions = settings.get("questions") or {}
     return [str(t) for t in (questions.get("targets") or [])]
+
+
+def _stimulus_side(settings: dict[str, Any], first_level: str | None) -> str | None:
+    """``[questions] stimulus_side`` of a first-level contrast, as saved in the summary."""
+    by_contrast = settings.get("questions_by_contrast") or {}
+    if first_level is not None and isinstance(by_contrast.get(first_level), dict):
+        return by_contrast[first_level].get("stimulus_side")
+    return (settings.get("questions") or {}).get("stimulus_side")
+
+
+def _side_rows(table: pd.DataFrame, name: str, stimulus_side: str | None, source: str):
+    """Rows of a one-sided name ("forelimb area (right)"), or None without a side suffix."""
+    base, word = split_side(name)
+    if not word:
+        return None
+    side = resolve_side(word, stimulus_side, source, name)
+    hit = _match_region(table, base)
+    on_side = [int(i) for i in hit if str(table["hemisphere"].iloc[i]) == side]
+    if hit.size and not on_side:
+        raise UserError(
+            f"{source}: {name!r}: regions.tsv has no {side}-hemisphere row of {base!r}; name "
+            "it without a side"
+        )
+    return np.asarray(on_side, dtype=np.int64)
 
 
 def _is_group_mean(entry: dict[str, Any]) -> bool:
@@ -440,11 +465,19 @@ def plan_from_output(
             skipped.append(f"{name}: no regions.tsv (the analysis had no atlas)")
             continue
         if not _is_group_mean(entry):
-            skipped.append(f"{name}: not a group mean (the plan covers one-sample designs)")
+            skipped.append(
+                f"{name}: not the mean of an intercept-only design (the plan covers "
+                "one-sample designs only)"
+            )
             continue
         table = _read_regions(path)
+        first_level = entry.get("first_level_contrast")
         rows = _chosen_rows(
-            table, regions, _target_names(settings, entry.get("first_level_contrast")), path
+            table,
+            regions,
+            _target_names(settings, first_level),
+            path,
+            _stimulus_side(settings, first_level),
         )
         if rows.size == 0:
             skipped.append(f"{name}: no region has a test")
@@ -474,8 +507,13 @@ def plan_from_output(
 
 
 def _chosen_rows(
-    table: pd.DataFrame, regions: Sequence[str] | None, targets: list[str], path: Path
+    table: pd.DataFrame,
+    regions: Sequence[str] | None,
+    targets: list[str],
+    path: Path,
+    stimulus_side: str | None = None,
 ) -> np.ndarray:
+    """Rows of regions.tsv to plan for; a one-sided name keeps only that hemisphere."""
     if isinstance(regions, str):
         regions = [regions]
     names = list(regions) if regions else targets
@@ -484,6 +522,9 @@ def _chosen_rows(
         rows: list[int] = []
         for n in names:
             hit = _match_region(table, str(n))
+            if hit.size == 0:
+                one_side = _side_rows(table, str(n), stimulus_side, f"{path}: {source}")
+                hit = hit if one_side is None else one_side
             if hit.size == 0:
                 known = ", ".join(dict.fromkeys(table["name"].astype(str)))
                 raise UserError(

@@ -8,7 +8,7 @@
 * :mod:`~grouplevel.questions.ask` — the pipeline step: asks the configured questions of
   a group mean and collects the verdicts.
 
-``Answers``, ``answer_questions`` and ``asks_questions`` are re-exported here (this was
+``Answers``, ``answer_questions``, ``question_plan`` and their helpers are re-exported here (this was
 the module ``grouplevel.questions`` before 0.2); they are imported on first use, so that
 the pure modules can be imported without the settings.
 """
@@ -17,7 +17,14 @@ from __future__ import annotations
 
 from typing import Any
 
-_EXPORTS = {"Answers", "AsymmetryMap", "answer_questions", "asks_questions"}
+_EXPORTS = {
+    "Answers",
+    "AsymmetryMap",
+    "answer_questions",
+    "answers_not_asked",
+    "question_plan",
+    "skipped_warning",
+}
 
 __all__ = sorted(_EXPORTS)
 

@@ -1,27 +1,36 @@
 """The reviewer's questions of one group map: symmetry, specificity, consistency, quality.
 
-Glue between the fitted maps (:class:`~grouplevel.results.maps.GroupMap`) and the
-analyses in :mod:`~grouplevel.questions.symmetry`, :mod:`~grouplevel.questions.specificity`
-and :mod:`~grouplevel.questions.quality`.
-The questions are asked of the group mean ("mean" contrast) of a first-level contrast
-whose design is intercept-only; for other designs this version answers none of them and
-says so in summary.json (a left/right test or a target effect of a group difference
-needs rules of its own).
+Glue between the fitted maps (:mod:`grouplevel.pipeline`) and the analyses in
+:mod:`grouplevel.questions.symmetry`, :mod:`grouplevel.questions.specificity` and
+:mod:`grouplevel.questions.quality`.
+
+Which group contrasts are asked: every contrast that is the mean response of a set of
+animals (:func:`grouplevel.questions.means.contrast_kind`: the mean of all animals, of one group,
+an intercept with centred covariates), whatever the design. A difference (genotype,
+drug − vehicle, a slope) gets its own symmetry question, whether its lateralisation
+differs (:func:`grouplevel.symmetry.lateralisation_differences`), and the specificity
+question of its surviving voxels; its consistency and run quality are not asked yet, and
+its summary says why in one sentence (:func:`question_plan`); :func:`skipped_warning`
+makes the one warning ``run`` prints.
+
+One response for all answers: whether the map has a response, and of which sign, is
+decided once, from the voxels that survive the chosen correction (which honours
+``[inference] sided``). The symmetry verdict counts only sides of those signs, the
+specificity verdict names the sign, and the consistency verdict counts animals of that
+sign, so the three never disagree on whether there is a response. When specificity
+flags an edge/rim or artefact-label pattern, the symmetry and consistency verdicts say so.
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
-from grouplevel.anatomy.atlas import Atlas
 from grouplevel.anatomy.regions import region_values
 from grouplevel.anatomy.tables import RegionData, surviving_voxels
-from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference import fdr
 from grouplevel.inference.permutation import (
     PermutationResult,
@@ -32,8 +41,11 @@ from grouplevel.inference.permutation import (
 from grouplevel.intake.design import Design
 from grouplevel.intake.settings import QuestionSettings, Settings
 from grouplevel.model import MixedFit, between_animal_df, fit_reml, test_contrast
+from grouplevel.questions.means import DIFFERENCE, MEAN, ContrastKind, contrast_kind, design_rows
 from grouplevel.questions.quality import RunQuality, run_quality
+from grouplevel.questions.sides import asked_rows, split_side
 from grouplevel.questions.specificity import (
+    VERDICT_NONE,
     Consistency,
     LooMaps,
     Specificity,
@@ -48,9 +60,10 @@ from grouplevel.questions.specificity import (
 from grouplevel.questions.symmetry import (
     analyse_symmetry,
     asymmetry_data,
+    counted_signs,
+    lateralisation_differences,
     li_curves,
     mirror_index,
-    region_pair,
     symmetry_table,
 )
 from grouplevel.results.compute import Backend
@@ -87,9 +100,76 @@ class AsymmetryMap:
         return out
 
 
+#: The questions, as summary.json keys.
+QUESTIONS = ("symmetry", "specificity", "consistency", "run_quality")
+
+
+@dataclass(frozen=True)
+class QuestionPlan:
+    """Whether a group contrast gets the questions, and why not when it does not.
+
+    Attributes
+    ----------
+    asked
+        True for a group mean.
+    kind
+        :func:`grouplevel.questions.means.contrast_kind` of the contrast.
+    reason
+        One plain sentence when not asked, else "".
+    animals
+        ``(m,)`` bool: the animals whose mean the contrast is (all False when not asked).
+    """
+
+    asked: bool
+    kind: ContrastKind
+    reason: str
+    animals: np.ndarray
+
+
+def question_plan(design, c: np.ndarray) -> QuestionPlan:
+    """Decide from the design and contrast whether the questions are asked of ``c``."""
+    rows = design_rows(design.matrix, design.animal, design.animal_level)
+    kind = contrast_kind(rows, c)
+    m = design.n_animals
+    if kind.kind == DIFFERENCE:
+        reason = (
+            "asked of group means only; this contrast is a difference (or slope) between "
+            "responses, and the consistency across animals and run quality of a difference "
+            "are not yet assessed"
+        )
+        return QuestionPlan(False, kind, reason, np.zeros(m, dtype=bool))
+    if not kind.is_mean:
+        reason = f"asked of group means only; {kind.why}"
+        return QuestionPlan(False, kind, reason, np.zeros(m, dtype=bool))
+    weighted = kind.rows_in_mean()
+    animals = np.zeros(m, dtype=bool)
+    if rows.shape[0] == m and np.all(design.animal_level):
+        animals = weighted
+    else:
+        animals[np.asarray(design.animal)[weighted]] = True
+    return QuestionPlan(True, kind, "", animals)
+
+
+def skipped_warning(skipped: list[str]) -> list[str]:
+    """The one warning ``run`` prints about the contrasts not asked (empty when none)."""
+    if not skipped:
+        return []
+    return [
+        "consistency and run quality are asked of group means only; not asked of "
+        f"{', '.join(skipped)} (differences, or contrasts that are not a mean response; a "
+        "difference is asked whether its lateralisation differs and whether it is specific "
+        "to the targets); each result's summary gives the reason"
+    ]
+
+
 @dataclass(frozen=True)
 class Answers:
-    """Everything the questions produced for one group map."""
+    """Everything the questions produced for one group map.
+
+    ``not_assessed`` maps each question not answered to the plain reason why; for a
+    contrast that is not a group mean every question is in it and everything else is
+    None (:meth:`not_asked`).
+    """
 
     symmetry: pd.DataFrame | None
     li_curves: pd.DataFrame | None
@@ -97,12 +177,61 @@ class Answers:
     asymmetry: AsymmetryMap | None
     specificity: Specificity | None
     consistency: Consistency | None
-    loo: LooMaps
-    run_quality: RunQuality
+    loo: LooMaps | None
+    run_quality: RunQuality | None
     notes: tuple[str, ...]
+    not_assessed: dict[str, str] = field(default_factory=dict)
+    contrast_kind: str = MEAN
+    response: dict | None = None
+    consistency_summary: dict | None = None
+    artefact_flag: str = ""
+
+    @classmethod
+    def not_asked(cls, plan: QuestionPlan) -> Answers:
+        """The answers of a contrast that is neither a mean nor a difference: reasons."""
+        return cls.for_difference(plan, {q: plan.reason for q in QUESTIONS})
+
+    @classmethod
+    def for_difference(
+        cls,
+        plan: QuestionPlan,
+        not_assessed: dict[str, str],
+        lateralisation: pd.DataFrame | None = None,
+        lateralisation_summary: dict | None = None,
+        spec: Specificity | None = None,
+        response: dict | None = None,
+    ) -> Answers:
+        """The answers of a difference: its lateralisation and specificity where asked."""
+        return cls(
+            lateralisation,
+            None,
+            lateralisation_summary,
+            None,
+            spec,
+            None,
+            None,
+            None,
+            (),
+            not_assessed=not_assessed,
+            contrast_kind=plan.kind.kind,
+            response=response,
+            artefact_flag=spec.flag if spec is not None else "",
+        )
+
+    @property
+    def asked(self) -> bool:
+        """Whether the contrast is a group mean (asked every question)."""
+        return self.contrast_kind == MEAN
 
     def tables(self) -> dict[str, pd.DataFrame]:
         """The TSV tables, keyed by file stem."""
+        if not self.asked:
+            out = {}
+            if self.symmetry is not None:
+                out["lateralisation_difference"] = self.symmetry
+            if self.specificity is not None:
+                out["specificity"] = self.specificity.table()
+            return out
         out = {"run_quality": self.run_quality.table(), "leave_one_out": self.loo.table()}
         if self.symmetry is not None:
             out["symmetry"] = self.symmetry
@@ -114,42 +243,101 @@ class Answers:
         return out
 
     def summary(self, alpha: float) -> dict:
-        return {
+        out = {
+            "asked": self.asked,
+            "contrast_kind": self.contrast_kind,
+            "not_assessed": dict(self.not_assessed),
+            "response": self.response,
+            "artefact_flag": self.artefact_flag,
             "symmetry": self.symmetry_summary,
             "asymmetry_map": None if self.asymmetry is None else self.asymmetry.summary(alpha),
-            "specificity": None if self.specificity is None else self.specificity.summary(),
-            "consistency": None
-            if self.consistency is None
-            else _consistency_verdict(self.consistency.summary()),
-            "leave_one_out": self.loo.summary(),
-            "run_quality": _quality_verdict(self.run_quality.summary()),
+            "specificity": None if self.specificity is None else self._specificity_summary(),
+            "consistency": self.consistency_summary,
+            "leave_one_out": None if self.loo is None else self.loo.summary(),
+            "run_quality": None
+            if self.run_quality is None
+            else _quality_verdict(self.run_quality.summary()),
             "notes": list(self.notes),
         }
+        return out
+
+    def _specificity_summary(self) -> dict:
+        out = self.specificity.summary()
+        signs = (self.response or {}).get("signs") or []
+        out["sign"] = " and ".join(signs)
+        if self.contrast_kind == DIFFERENCE:
+            # the direction of a difference always matters: name it
+            if out["verdict"] != VERDICT_NONE and signs:
+                out["verdict"] = f"{out['verdict']} ({' and '.join(signs)} difference)"
+        elif out["verdict"] != VERDICT_NONE and signs and signs != ["positive"]:
+            out["verdict"] = f"{out['verdict']} ({' and '.join(signs)} response)"
+        return out
 
 
 # Consistency verdict (docs/verdicts-specificity.md): the share of animals whose own
-# target effect has the sign of the group effect, and whether leaving out any one animal
+# target effect has the sign of the response, and whether leaving out any one animal
 # keeps the group effect's sign. "Most" = at least this share of animals (our own rule).
 MOST_ANIMALS = 0.75
 
+#: Added to the symmetry and consistency verdicts when specificity flags an artefact.
+EDGE_FLAG_SUFFIX = " — but most of it lies in the brain-edge rim; see specificity"
+LABEL_FLAG_SUFFIX = (
+    " — but much of it lies in artefact labels (ventricles, vessels); see specificity"
+)
 
-def _consistency_verdict(summary: dict) -> dict:
-    """Add a plain verdict and its reasons to the consistency summary."""
-    n = summary["animals"]
-    positive = summary["animals_positive"]
-    effect = summary.get("effect") or 0.0
-    agree = positive if effect >= 0 else n - positive
+
+def _consistency_verdict(
+    cons: Consistency, response: dict, flag_suffix: str, in_mean: np.ndarray
+) -> dict:
+    """A plain, sign-aware verdict and its reasons for the consistency summary.
+
+    Only the animals whose mean the contrast is (``in_mean``, in the order of
+    ``cons.animals``) are counted: the mean of one group is judged on that group.
+    """
+    summary = cons.summary()
+    table = cons.animals
+    has = (table["runs"].to_numpy() > 0) & np.asarray(in_mean, dtype=bool)
+    effects = table["effect"].to_numpy(dtype=float)
+    n = int(has.sum())
+    signs = response["signs"]
+    effect = summary.get("effect")
+    if not signs:
+        sign = ""
+    elif len(signs) == 1:
+        sign = signs[0]
+    else:
+        sign = "negative" if (effect or 0.0) < 0 else "positive"
+    s = -1.0 if sign == "negative" else 1.0
+    agree = int((has & (np.nan_to_num(s * effects) > 0)).sum())
+    ci_side = table["ci_high"] if sign == "negative" else table["ci_low"]
+    ci_clear = int((has & (np.nan_to_num(s * ci_side.to_numpy(dtype=float)) > 0)).sum())
     low, high = summary.get("loo_effect_range") or [None, None]
-    keeps_sign = low is not None and high is not None and (low > 0 or high < 0)
-    if agree == n and keeps_sign:
+    keeps_sign = low is not None and high is not None and s * low > 0 and s * high > 0
+    word = "negative response" if sign == "negative" else "response"
+    if not sign:
+        verdict = "no response to be consistent about"
+    elif effect is None or s * effect <= 0:
+        verdict = f"animals disagree (the target's group effect is not of the {sign} sign)"
+    elif agree == n and keeps_sign:
         verdict = "all animals agree"
     elif agree >= MOST_ANIMALS * n and keeps_sign:
         verdict = f"most animals agree ({agree} of {n})"
     else:
-        verdict = f"animals disagree ({agree} of {n} with the group's sign)"
-    reasons = [
-        f"{agree} of {n} animals have a target effect of the group's sign; "
-        f"{summary['animals_ci_above_zero']} have a 95% CI above 0",
+        verdict = f"animals disagree ({agree} of {n} with the {sign} sign)"
+    if sign == "negative" and not verdict.startswith("no response"):
+        verdict = f"{verdict} ({word})"
+    if sign and flag_suffix:
+        verdict += flag_suffix
+    reasons = [_response_sentence(response)]
+    if sign:
+        reasons.append(
+            f"{agree} of {n} animals have a target effect of the {sign} sign; {ci_clear} have "
+            f"a 95% CI {'below' if sign == 'negative' else 'above'} 0"
+        )
+    reasons += [
+        f"target group effect {effect:.3g} (p = {summary['p']:.2g})"
+        if effect is not None and summary.get("p") is not None
+        else "no target group effect",
         f"leaving out one animal at a time, the target effect ranges from {low:.3g} to {high:.3g}"
         if low is not None
         else "no leave-one-out range",
@@ -162,7 +350,79 @@ def _consistency_verdict(summary: dict) -> dict:
         reasons.append(
             f"between-animal share of variance (ICC) in the target: {summary['icc']:.2f}"
         )
-    return {"verdict": verdict, "reasons": reasons, **summary}
+    return {
+        "verdict": verdict,
+        "sign": sign,
+        "reasons": reasons,
+        **summary,
+        "animals_in_mean": [str(a) for a in table["animal"][has]],
+        "animals_counted": n,
+        "animals_agreeing": agree,
+        "animals_ci_clear_of_zero": ci_clear,
+    }
+
+
+def _response_sentence(response: dict) -> str:
+    """One sentence: the map's response, as every verdict counts it."""
+    counted = " or ".join(response["counted"])
+    if not response["signs"]:
+        return (
+            f"No voxel survives {response['method']} ({counted} effects counted), so the map "
+            "shows no response"
+        )
+    parts = [f"{response[f'{sign}_voxels']} {sign}" for sign in response["signs"]]
+    text = (
+        f"The map's response: {' and '.join(parts)} voxels survive {response['method']} "
+        f"({counted} effects counted)"
+    )
+    minor = [
+        f"{response[f'{sign}_voxels']} {sign}"
+        for sign in response["counted"]
+        if sign not in response["signs"] and response[f"{sign}_voxels"]
+    ]
+    if minor:
+        text += (
+            f"; {' and '.join(minor)} surviving voxel(s) are no more than "
+            f"{100 * response['minor_sign_share']:g}% of the surviving voxels and are not "
+            "counted as a response"
+        )
+    return text
+
+
+def map_response(
+    surviving: np.ndarray, z: np.ndarray, method: str, sided: str, alpha: float
+) -> dict:
+    """The map's response: the signs of the surviving voxels, as the verdicts count them.
+
+    A sign is part of the response when ``sided`` counts it and it holds more than a
+    share ``alpha`` of the surviving voxels. FDR lets up to that share of the surviving
+    voxels be false discoveries (Benjamini & Hochberg 1995, J R Stat Soc B 57:289), so a
+    handful of voxels of the other sign beside a large response is not called a
+    response of that sign; their count is kept in the summary.
+    """
+    counted = counted_signs(sided)
+    z = np.nan_to_num(np.asarray(z, dtype=float))
+    surviving = np.asarray(surviving, dtype=bool)
+    counts = {
+        "positive": int((surviving & (z > 0)).sum()),
+        "negative": int((surviving & (z < 0)).sum()),
+    }
+    total = counts["positive"] + counts["negative"]
+    signs = [sign for sign in counted if counts[sign] > 0 and counts[sign] > alpha * total]
+    return {
+        "signs": signs,
+        "counted": list(counted),
+        "method": method,
+        "positive_voxels": counts["positive"],
+        "negative_voxels": counts["negative"],
+        "minor_sign_share": float(alpha),
+    }
+
+
+def _flag_suffix(spec: Specificity | None) -> str:
+    if spec is None or not spec.flag:
+        return ""
+    return EDGE_FLAG_SUFFIX if (spec.edge_rule or spec.rim_rule) else LABEL_FLAG_SUFFIX
 
 
 def _quality_verdict(summary: dict) -> dict:
@@ -176,34 +436,6 @@ def _quality_verdict(summary: dict) -> dict:
     )
     reasons = [f"{r['animal']} run {r['run']}: {r['why']}" for r in flagged]
     return {"verdict": verdict, "reasons": reasons, **summary}
-
-
-def asks_questions(design_columns: tuple[str, ...], contrast: str) -> bool:
-    """Whether the questions apply: the group mean of an intercept-only design."""
-    return contrast == "mean" and design_columns == ("Intercept",)
-
-
-def _check_symmetry_regions(atlas: Atlas, names: Sequence[str]) -> None:
-    """Every ``[questions] symmetry`` name is one left/right region pair, named once."""
-    seen: dict[tuple[int, int], str] = {}
-    for name in names:
-        try:
-            pair = region_pair(atlas, name)
-        except ArgumentError as exc:
-            raise UserError(f"[questions] symmetry: {exc}") from None
-        if pair in seen:
-            raise UserError(
-                f"[questions] symmetry: {name!r} and {seen[pair]!r} name the same region "
-                "pair; give each region once"
-            )
-        seen[pair] = name
-
-
-def _target_rows(atlas: Atlas, names: Sequence[str]) -> list[int]:
-    rows: list[int] = []
-    for name in names:
-        rows.extend(atlas.region_rows(name))
-    return sorted(set(rows))
 
 
 def _asymmetry(
@@ -269,14 +501,20 @@ def answer_questions(
     regions: RegionData | None,
     questions: QuestionSettings,
     settings: Settings,
+    plan: QuestionPlan | None = None,
     *,
     backend: Backend | None = None,
 ) -> Answers:
-    """Answer the configured questions of one group map (see the module docstring).
+    """Answer the configured questions of one group mean (see the module docstring).
 
-    ``backend`` is where the permutations of the asymmetry maps run (``None``: local
-    threads), the same as for the group maps.
+    ``plan`` is :func:`question_plan` of ``c`` (computed when omitted); a contrast that
+    is not a group mean gets :meth:`Answers.not_asked`. ``backend`` is where the
+    permutations of the asymmetry maps run (``None``: local threads), the same as for
+    the group maps.
     """
+    plan = plan or question_plan(design, c)
+    if not plan.asked:
+        return answers_not_asked(plan, design, c, regions, questions, settings, gm, y)
     estimate = settings.model.run_variance == "estimate"
     alpha = settings.inference.alpha
     notes: list[str] = []
@@ -292,79 +530,223 @@ def answer_questions(
         var_animal=fit.var_animal,
         var_run=fit.var_run,
     )
-    quality = run_quality(
-        y, s2, design.animal, runs, loo.effect, shell, threshold=questions.outlier_z
-    )
-    sym = curves = sym_summary = asym = spec = cons = None
-    if regions is None:
-        if questions.symmetry or questions.targets:
-            notes.append("no atlas: symmetry, specificity and consistency were not assessed")
-        return Answers(None, None, None, None, None, None, loo, quality, tuple(notes))
-    atlas = regions.atlas
+    quality = _run_quality(y, s2, design, runs, loo, shell, questions, plan.animals)
     method = settings.clusters.resolved_method(settings.inference)
     surviving = surviving_voxels(gm, alpha)[method]
-    present = np.isfinite(y)
+    response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
+    if regions is None:
+        reason = "the study has no [atlas], so no region can be asked about"
+        return Answers(
+            None,
+            None,
+            None,
+            None,
+            None,
+            None,
+            loo,
+            quality,
+            tuple(notes),
+            not_assessed={q: reason for q in ("symmetry", "specificity", "consistency")},
+            response=response,
+        )
+    atlas = regions.atlas
+    not_assessed: dict[str, str] = {}
+    spec = cons = cons_summary = None
+    if questions.targets:
+        spec, cons = _specificity_and_consistency(
+            gm, y, design, c, atlas, surviving, shell, questions
+        )
+    else:
+        reason = "no [questions] targets were named"
+        not_assessed.update(specificity=reason, consistency=reason)
+    suffix = _flag_suffix(spec)
+    if cons is not None:
+        cons_summary = _consistency_verdict(cons, response, suffix, plan.animals)
+    sym = curves = sym_summary = asym = None
     if questions.symmetry:
-        _check_symmetry_regions(atlas, questions.symmetry)
-        results = analyse_symmetry(
+        sym, curves, sym_summary = _symmetry(
+            gm, y, s2, fit, design, c, regions, questions, settings, plan, response, suffix
+        )
+        asym = _asymmetry(gm, y, s2, design, c, settings, atlas.midline_mm, backend)
+    else:
+        not_assessed["symmetry"] = "no [questions] symmetry regions were named"
+    return Answers(
+        sym,
+        curves,
+        sym_summary,
+        asym,
+        spec,
+        cons,
+        loo,
+        quality,
+        tuple(notes),
+        not_assessed=not_assessed,
+        response=response,
+        consistency_summary=cons_summary,
+        artefact_flag=spec.flag if spec is not None else "",
+    )
+
+
+def answers_not_asked(plan, design, c, regions, questions, settings, gm=None, y=None) -> Answers:
+    """A contrast that is not a group mean.
+
+    A difference is asked whether its lateralisation differs (with ``[questions]
+    symmetry``) and whether it is specific to the targets (with ``[questions] targets``;
+    needs the group map ``gm`` and the runs' data ``y``); its consistency and run quality
+    are not asked, with the reason. Any other contrast gets only the reasons.
+    """
+    if plan.kind.kind != DIFFERENCE:
+        return Answers.not_asked(plan)
+    not_assessed = {q: plan.reason for q in ("consistency", "run_quality")}
+    if regions is None:
+        reason = "the study has no [atlas], so no region can be asked about"
+        not_assessed.update(symmetry=reason, specificity=reason)
+        return Answers.for_difference(plan, not_assessed)
+    spec = response = None
+    if questions.targets and gm is not None and y is not None:
+        method = settings.clusters.resolved_method(settings.inference)
+        alpha = settings.inference.alpha
+        surviving = surviving_voxels(gm, alpha)[method]
+        response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
+        shell = edge_shell(gm.mask, questions.edge_distance_voxels)
+        spec = _target_specificity(gm, y, design, c, regions.atlas, surviving, shell, questions)
+    else:
+        not_assessed["specificity"] = "no [questions] targets were named"
+    table = summary = None
+    if questions.symmetry:
+        table, summary = lateralisation_differences(
             list(questions.symmetry),
-            atlas,
-            y=y,
-            present=present,
-            animal=design.animal,
-            z=gm.z,
-            effect=gm.effect,
+            regions.atlas,
             region_values=regions.values,
-            rng=np.random.default_rng([settings.inference.seed, _BOOTSTRAP_STREAM]),
-            variance=s2,
-            var_run=fit.var_run,
-            threshold=cluster_forming_z(settings.inference.cluster_forming_p, "positive"),
-            equivalence_margin=questions.equivalence_margin,
-            alpha=alpha,
+            animal=design.animal,
+            X=design.matrix,
+            c=c,
+            alpha=settings.inference.alpha,
             stimulus_side=questions.stimulus_side,
         )
-        sym = symmetry_table(results)
-        curves = li_curves(results)
-        sym_summary = {}
-        for r in results:
-            detail = r.summary()
-            verdict = detail["verdict"]
-            sym_summary[r.region] = {
-                "verdict": verdict["label"],
-                "side": verdict["side"],
-                "reasons": verdict["reasons"],
-                **{k: v for k, v in detail.items() if k != "verdict"},
-                "numbers": verdict["numbers"],
-            }
-        asym = _asymmetry(gm, y, s2, design, c, settings, atlas.midline_mm, backend)
-    if questions.targets:
-        rows = _target_rows(atlas, questions.targets)
-        height = (np.argwhere(gm.mask) @ gm.grid.affine[:3, :3].T + gm.grid.affine[:3, 3])[:, 2]
-        spec = specificity(
-            surviving,
-            gm.z,
-            gm.effect,
-            atlas,
-            rows,
-            shell,
-            inner_layer(gm.mask, questions.edge_distance_voxels),
-            height,
-            artefact_rows(atlas),
-            y,
-            design.matrix,
-            design.animal,
-            c,
+        suffix = _flag_suffix(spec)
+        if suffix:
+            for entry in summary.values():
+                if entry["numbers"]["larger_side"]:
+                    entry["verdict"] += suffix
+            table["verdict"] = [entry["verdict"] for entry in summary.values()]
+    else:
+        not_assessed["symmetry"] = "no [questions] symmetry regions were named"
+    return Answers.for_difference(plan, not_assessed, table, summary, spec, response)
+
+
+def _run_quality(y, s2, design, runs, loo, shell, questions, in_mean) -> RunQuality:
+    """Run quality among the runs of the animals whose mean is asked about.
+
+    The robust z compares runs with each other; runs of another group (with another
+    response) would make the runs of either group look unusual.
+    """
+    keep = np.asarray(in_mean, dtype=bool)[design.animal]
+    if keep.all():
+        return run_quality(
+            y, s2, design.animal, runs, loo.effect, shell, threshold=questions.outlier_z
         )
-        leaves = leaf_rows(atlas, rows)
-        weights = sp.csr_matrix(np.asarray(atlas.shares[:, leaves].sum(axis=1)))
-        target_values, _ = region_values(y, present, weights)
-        cons = consistency(
-            target_values[:, 0],
-            None,
-            design.matrix,
-            design.animal,
-            design.animal_ids,
-            c,
-            estimate_run_variance=True,
-        )
-    return Answers(sym, curves, sym_summary, asym, spec, cons, loo, quality, tuple(notes))
+    codes = np.unique(design.animal[keep], return_inverse=True)[1]
+    return run_quality(
+        y[keep],
+        None if s2 is None else s2[keep],
+        codes,
+        runs[keep].reset_index(drop=True),
+        loo.effect[np.asarray(in_mean, dtype=bool)],
+        shell,
+        threshold=questions.outlier_z,
+    )
+
+
+def _target_specificity(gm, y, design, c, atlas, surviving, shell, questions) -> Specificity:
+    """Specificity of the surviving voxels for the (possibly one-sided) targets."""
+    rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
+    height = (np.argwhere(gm.mask) @ gm.grid.affine[:3, :3].T + gm.grid.affine[:3, 3])[:, 2]
+    return specificity(
+        surviving,
+        gm.z,
+        gm.effect,
+        atlas,
+        rows,
+        shell,
+        inner_layer(gm.mask, questions.edge_distance_voxels),
+        height,
+        artefact_rows(atlas),
+        y,
+        design.matrix,
+        design.animal,
+        c,
+    )
+
+
+def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, questions):
+    """Specificity of the surviving voxels and consistency of the target effect."""
+    spec = _target_specificity(gm, y, design, c, atlas, surviving, shell, questions)
+    rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
+    leaves = leaf_rows(atlas, rows)
+    weights = sp.csr_matrix(np.asarray(atlas.shares[:, leaves].sum(axis=1)))
+    target_values, _ = region_values(y, np.isfinite(y), weights)
+    cons = consistency(
+        target_values[:, 0],
+        None,
+        design.matrix,
+        design.animal,
+        design.animal_ids,
+        c,
+        estimate_run_variance=True,
+    )
+    return spec, cons
+
+
+def _symmetry(gm, y, s2, fit, design, c, regions, questions, settings, plan, response, suffix):
+    """Symmetry of each named region pair, counted with the map's response signs."""
+    alpha = settings.inference.alpha
+    results = analyse_symmetry(
+        list(questions.symmetry),
+        regions.atlas,
+        y=y,
+        present=np.isfinite(y),
+        animal=design.animal,
+        z=gm.z,
+        effect=gm.effect,
+        region_values=regions.values,
+        rng=np.random.default_rng([settings.inference.seed, _BOOTSTRAP_STREAM]),
+        variance=s2,
+        var_run=fit.var_run,
+        threshold=cluster_forming_z(settings.inference.cluster_forming_p, "positive"),
+        equivalence_margin=questions.equivalence_margin,
+        alpha=alpha,
+        stimulus_side=questions.stimulus_side,
+        sided=settings.inference.sided,
+        signs=response["signs"],
+        X=design.matrix,
+        c=c,
+        bootstrap_animals=plan.animals,
+    )
+    table = symmetry_table(results)
+    summary = {}
+    labels = []
+    for r in results:
+        detail = r.summary()
+        verdict = detail["verdict"]
+        label = verdict["label"]
+        reasons = [_response_sentence(response), *verdict["reasons"]]
+        if suffix and verdict["sign"]:
+            label += suffix
+        named = split_side(r.region)[1]
+        if named:
+            reasons.append(
+                f"The region was named with the {named} side; symmetry compares both sides "
+                "of the structure"
+            )
+        labels.append(label)
+        summary[r.region] = {
+            "verdict": label,
+            "side": verdict["side"],
+            "sign": verdict["sign"],
+            "reasons": reasons,
+            **{k: v for k, v in detail.items() if k != "verdict"},
+            "numbers": verdict["numbers"],
+        }
+    table["verdict"] = labels
+    return table, li_curves(results), summary

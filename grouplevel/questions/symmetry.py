@@ -17,7 +17,10 @@ written rule that turns them into plain words:
   against a margin derived from a bound on ``|LI|``.
 * **Verdict** (:func:`symmetry_verdict`): "no activation", "unilateral", "left-/right-
   dominant", "bilateral (equivalence shown)" or "bilateral, asymmetry not excluded",
-  each with the sentences and numbers that decided it. The rule is written out in
+  each with the sentences and numbers that decided it. The verdict is sign-aware: a
+  significant negative response is a response ("negative response, bilateral ..."), and
+  ``[inference] sided`` says which signs count. The LIs of a negative response are
+  computed on the sign-flipped maps. The rule is written out in
   ``docs/verdicts-symmetry.md``.
 
 :func:`analyse_symmetry` runs all of it for a list of region names;
@@ -54,7 +57,7 @@ import scipy.sparse as sp
 from scipy import stats
 
 from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM
-from grouplevel.errors import ArgumentError
+from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.model.animals import animal_means
@@ -62,19 +65,28 @@ from grouplevel.questions.verdicts import (  # noqa: F401  (the rule's names, re
     BILATERAL_EQUIVALENT,
     BILATERAL_UNRESOLVED,
     DOMINANT,
+    LATERALISATION_DIFFERS,
+    LATERALISATION_NOT_SHOWN,
+    NEGATIVE_PREFIX,
     NO_ACTIVATION,
     ONE_SIDE_ONLY,
+    OPPOSITE_SIGNS,
     SIDES,
+    SIGNS,
+    SIGNS_COUNTED,
     UNCLEAR,
     UNILATERAL,
     Verdict,
     _float,
     _fmt_p,
+    _sign_of,
+    counted_signs,
     symmetry_verdict,
 )
 
 if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
     from grouplevel.anatomy.atlas import Atlas
+from grouplevel.questions.sides import split_side
 
 # --------------------------------------------------------------------------------------
 # Defaults (the lead's config section [questions] may override every one of them)
@@ -645,8 +657,9 @@ def threshold_free_li(
 class HemisphereTest:
     """Region-mean effects of the two sides, their difference and its equivalence test.
 
-    Every estimate comes from the run-within-animal REML model with an intercept only
-    (σ² estimated, no first-level variances), tested on the between-animal df.
+    Every estimate comes from the run-within-animal REML model with the group design
+    (intercept only by default; σ² estimated, no first-level variances), tested on the
+    between-animal df.
 
     Attributes
     ----------
@@ -660,7 +673,7 @@ class HemisphereTest:
     margin_li
         The bound ``m`` on ``|LI|`` that defines equivalence.
     margin
-        ``Δ = m · max(L̂ + R̂, 0)``, the equivalence bound on the difference.
+        ``Δ = m · |L̂ + R̂|``, the equivalence bound on the difference.
     tost_p_lower, tost_p_upper, tost_p
         One-sided p of ``H0: difference ≤ −Δ`` and of ``H0: difference ≥ Δ``, and their
         maximum (the TOST p).
@@ -735,19 +748,23 @@ def hemisphere_test(
     *,
     equivalence_margin: float = DEFAULT_EQUIVALENCE_MARGIN,
     confidence: float = CONFIDENCE_LEVEL,
+    X: np.ndarray | None = None,
+    c: np.ndarray | None = None,
 ) -> HemisphereTest:
     """Test the hemispheric difference of a region pair, and its equivalence to zero.
 
     The per-run region means ``L``, ``R``, ``L − R`` and ``L + R`` are fitted together with
-    :func:`grouplevel.model.fit_reml` (intercept only, σ² estimated, no first-level
-    variances: the run-to-run spread contains the first-level noise of a region mean),
-    and each intercept is tested with :func:`grouplevel.model.test_contrast` on the
+    :func:`grouplevel.model.fit_reml` (σ² estimated, no first-level variances: the
+    run-to-run spread contains the first-level noise of a region mean) with the group
+    design ``X`` (default: intercept only), and the group mean ``c`` (default: the
+    intercept) is tested with :func:`grouplevel.model.test_contrast` on the
     between-animal df. A run enters ``L − R`` and ``L + R`` only when it has both sides.
 
     Equivalence: the LI of the region means is ``(L − R)/(L + R)``; ``|LI| ≤ m`` with
     ``L + R > 0`` is ``|L − R| ≤ m (L + R)``, so the margin on the difference is
-    ``Δ = m · (L̂ + R̂)`` with the fitted mean of ``L + R`` (0 when that mean is not
-    positive, which makes equivalence impossible to show). The TOST p is the larger of
+    ``Δ = m · |L̂ + R̂|`` with the fitted mean of ``L + R``; taking the magnitude makes
+    the same margin serve a negative response (both sides below 0), whose LI is that of
+    the magnitudes. The TOST p is the larger of
     the two one-sided t-test p-values on the model df. Δ is itself an estimate; treating
     it as fixed ignores its uncertainty, which is small when ``L + R`` is well above 0.
 
@@ -761,6 +778,10 @@ def hemisphere_test(
         The bound ``m`` on ``|LI|``.
     confidence
         Level of the interval of the difference.
+    X, c
+        ``(n_runs, p)`` group design and ``(p,)`` contrast giving the group mean tested
+        (a group mean of a larger design, see :mod:`grouplevel.questions.means`); default the
+        intercept-only design and its intercept.
 
     Returns
     -------
@@ -782,13 +803,16 @@ def hemisphere_test(
     diff = np.where(both, left - right, np.nan)
     total = np.where(both, left + right, np.nan)
     y = np.column_stack([left, right, diff, total])
-    X = np.ones((len(left), 1))
+    X = np.ones((len(left), 1)) if X is None else np.asarray(X, dtype=float)
+    c = np.ones(1) if c is None else np.asarray(c, dtype=float).ravel()
+    if X.ndim != 2 or X.shape[0] != len(left) or X.shape[1] != c.size:
+        raise ValueError(f"X must be ({len(left)} runs, {c.size}) for a contrast of {c.size}")
     fit = fit_reml(y, None, X, animal, estimate_run_variance=True)
-    df = between_animal_df(X, animal, np.isfinite(y), [1.0])
-    res = test_contrast(fit, [1.0], df)
+    df = between_animal_df(X, animal, np.isfinite(y), c)
+    res = test_contrast(fit, c, df)
     d, se, dfd = float(res.effect[2]), float(res.se[2]), float(res.df[2])
     crit = float(stats.t.ppf(0.5 + confidence / 2.0, dfd)) if dfd > 0 else float("nan")
-    margin = margin_li * max(float(res.effect[3]), 0.0)
+    margin = margin_li * abs(float(res.effect[3]))
     p_lower, p_upper, p_tost = tost(d, se, dfd, margin)
     return HemisphereTest(
         left_effect=float(res.effect[0]),
@@ -850,12 +874,21 @@ class RegionSymmetry:
 def region_pair(atlas: Atlas, name: str) -> tuple[int, int]:
     """Rows (left, right) of ``atlas.regions`` for a region name or abbreviation.
 
+    A side suffix ("forelimb area (right)", see :mod:`grouplevel.questions.sides`) is allowed and
+    names the same pair: symmetry always compares the two sides of the structure.
+
     Raises
     ------
     ArgumentError
         When the name is unknown, or does not give exactly one left and one right row.
     """
-    rows = atlas.region_rows(name)
+    try:
+        rows = atlas.region_rows(name)
+    except UserError:
+        base, word = split_side(name)
+        if not word:
+            raise
+        rows = atlas.region_rows(base)
     hemi = atlas.regions["hemisphere"].to_numpy()
     left = [r for r in rows if hemi[r] == "left"]
     right = [r for r in rows if hemi[r] == "right"]
@@ -896,6 +929,11 @@ def analyse_symmetry(
     n_boot: int = DEFAULT_BOOTSTRAP,
     n_thresholds: int = DEFAULT_LI_THRESHOLDS,
     weighting: str = "mean",
+    sided: str = "two",
+    signs: Sequence[str] | None = None,
+    X: np.ndarray | None = None,
+    c: np.ndarray | None = None,
+    bootstrap_animals: np.ndarray | None = None,
 ) -> tuple[RegionSymmetry, ...]:
     """Laterality, hemispheric test and verdict for each named region pair.
 
@@ -919,10 +957,24 @@ def analyse_symmetry(
     threshold, equivalence_margin, alpha, stimulus_side, n_boot, n_thresholds, weighting
         See :func:`bootstrap_li`, :func:`hemisphere_test`, :func:`symmetry_verdict` and
         :func:`threshold_free_li`.
+    sided, signs
+        Which response signs count (:func:`symmetry_verdict`).
+    X, c
+        Group design and the contrast of the group mean asked about (default intercept
+        only, see :func:`hemisphere_test`).
+    bootstrap_animals
+        ``(m,)`` bool: the animals the bootstrap resamples (those whose mean ``c`` is);
+        default all.
 
     Returns
     -------
     tuple of RegionSymmetry
+
+    Notes
+    -----
+    The hemispheric test and verdict come first; when the verdict's response is
+    negative, the LIs are computed on the sign-flipped maps (``−z``, ``−effect``,
+    ``−y``), so that they describe the magnitude of the negative response.
     """
     _check_margin(equivalence_margin)
     shares = sp.csc_matrix(atlas.shares)
@@ -936,6 +988,10 @@ def analyse_symmetry(
         raise ValueError(
             f"region_values must be (runs, {shares.shape[1]} regions), got {region_values.shape}"
         )
+    animal = np.asarray(animal, dtype=np.int64)
+    yb, present_b, animal_b, variance_b = _bootstrap_runs(
+        y, present, animal, variance, bootstrap_animals
+    )
     out = []
     seen: set[tuple[int, int]] = set()
     for name in names:
@@ -947,26 +1003,39 @@ def analyse_symmetry(
         seen.add((left_row, right_row))
         lc, lw = _column(shares, left_row)
         rc, rw = _column(shares, right_row)
-        li_extent = laterality(
-            extent_amount(z[lc], lw, threshold), extent_amount(z[rc], rw, threshold)
-        )
-        li_effect = laterality(effect_amount(effect[lc], lw), effect_amount(effect[rc], rw))
-        boot = bootstrap_li(
-            y,
-            present,
+        test = hemisphere_test(
+            region_values[:, left_row],
+            region_values[:, right_row],
             animal,
+            equivalence_margin=equivalence_margin,
+            X=X,
+            c=c,
+        )
+        verdict = symmetry_verdict(
+            test, alpha=alpha, stimulus_side=stimulus_side, sided=sided, signs=signs
+        )
+        flip = -1.0 if verdict.sign == "negative" else 1.0
+        zs, es = flip * z, flip * effect
+        li_extent = laterality(
+            extent_amount(zs[lc], lw, threshold), extent_amount(zs[rc], rw, threshold)
+        )
+        li_effect = laterality(effect_amount(es[lc], lw), effect_amount(es[rc], rw))
+        boot = bootstrap_li(
+            flip * yb,
+            present_b,
+            animal_b,
             lc,
             rc,
             left_weights=lw,
             right_weights=rw,
-            variance=variance,
+            variance=variance_b,
             var_run=var_run,
             threshold=threshold,
             n_boot=n_boot,
             rng=rng,
         )
         tf = threshold_free_li(
-            z,
+            zs,
             lc,
             rc,
             left_weights=lw,
@@ -974,13 +1043,6 @@ def analyse_symmetry(
             n_thresholds=n_thresholds,
             weighting=weighting,
         )
-        test = hemisphere_test(
-            region_values[:, left_row],
-            region_values[:, right_row],
-            animal,
-            equivalence_margin=equivalence_margin,
-        )
-        verdict = symmetry_verdict(test, alpha=alpha, stimulus_side=stimulus_side)
         out.append(
             RegionSymmetry(
                 region=str(name),
@@ -995,6 +1057,17 @@ def analyse_symmetry(
             )
         )
     return tuple(out)
+
+
+def _bootstrap_runs(y, present, animal, variance, bootstrap_animals):
+    """The runs of the animals the bootstrap resamples, with animal codes 0..k-1."""
+    y = np.asarray(y, dtype=float)
+    if bootstrap_animals is None:
+        return y, present, animal, variance
+    keep = np.asarray(bootstrap_animals, dtype=bool)[animal]
+    codes = np.unique(animal[keep], return_inverse=True)[1].astype(np.int64)
+    sub_var = None if variance is None else np.asarray(variance, dtype=float)[keep]
+    return y[keep], np.asarray(present, dtype=bool)[keep], codes, sub_var
 
 
 #: Columns of :func:`symmetry_table`, in order.
@@ -1021,6 +1094,7 @@ TABLE_COLUMNS = (
     "right_active",
     "verdict",
     "side",
+    "sign",
     "reasons",
 )
 
@@ -1059,6 +1133,7 @@ def symmetry_table(results: Sequence[RegionSymmetry]) -> pd.DataFrame:
                 "right_active": bool(r.verdict.numbers["right_active"]),
                 "verdict": r.verdict.label,
                 "side": r.verdict.side,
+                "sign": r.verdict.sign,
                 "reasons": "; ".join(r.verdict.reasons),
             }
         )
@@ -1080,3 +1155,147 @@ def li_curves(results: Sequence[RegionSymmetry]) -> pd.DataFrame:
     if not frames:
         return pd.DataFrame(columns=["region", "threshold", "li"])
     return pd.concat(frames, ignore_index=True)
+
+
+# --------------------------------------------------------------------------------------
+# The lateralisation of a difference
+# --------------------------------------------------------------------------------------
+
+
+def lateralisation_difference_verdict(
+    test: HemisphereTest, *, alpha: float = DEFAULT_ALPHA, stimulus_side: str | None = None
+) -> Verdict:
+    """Does a difference contrast (group b − a, drug − vehicle) differ between the sides?
+
+    ``test`` is :func:`hemisphere_test` with the difference contrast: its ``left_effect``
+    and ``right_effect`` are the contrast on each side's region mean, and its
+    ``difference`` is the contrast of ``L − R``, the difference of the two hemispheric
+    differences (an interaction of side and contrast).
+
+    The rule: p of ``c(L − R)`` < α → "lateralisation differs (the contrast is larger on
+    the <side>)", the side where the contrast is larger (the left when ``c(L − R) > 0``);
+    otherwise "no evidence that the lateralisation differs". No equivalence test is made:
+    the LI margin of :func:`hemisphere_test` is defined for a response, not for a
+    difference, so "the same lateralisation" is never concluded.
+
+    With ``stimulus_side`` the side is also called contralateral or ipsilateral.
+    """
+    if not 0.0 < alpha < 1.0:
+        raise ArgumentError(f"alpha = {alpha}: give a level between 0 and 1")
+    if stimulus_side is not None and stimulus_side not in SIDES:
+        raise ArgumentError(
+            f'stimulus_side = {stimulus_side!r}: use "left", "right" or None when the '
+            "stimulus was not lateralised"
+        )
+    reasons = [
+        f"{side} side: contrast {effect:.3g}, {_fmt_p(p)}"
+        for side, effect, p in (
+            ("left", test.left_effect, test.left_p),
+            ("right", test.right_effect, test.right_p),
+        )
+    ]
+    significant = bool(np.isfinite(test.p) and test.p < alpha)
+    larger = "left" if test.difference > 0 else "right"
+    reasons.append(
+        f"Contrast of left minus right {test.difference:.3g} (95% CI {test.ci_low:.3g} to "
+        f"{test.ci_high:.3g}), {_fmt_p(test.p)}"
+    )
+    side = ""
+    if significant:
+        label = LATERALISATION_DIFFERS.format(side=larger)
+        if stimulus_side is not None:
+            side = "ipsilateral" if larger == stimulus_side else "contralateral"
+            reasons.append(f"The {larger} side is {side} to the stimulated {stimulus_side} side")
+    else:
+        label = LATERALISATION_NOT_SHOWN
+        reasons.append(
+            "Not significant: this does not show that the lateralisation is the same (no "
+            "equivalence test is made for a difference)"
+        )
+    numbers = {
+        "alpha": float(alpha),
+        "left_effect": _float(test.left_effect),
+        "left_p": _float(test.left_p),
+        "right_effect": _float(test.right_effect),
+        "right_p": _float(test.right_p),
+        "difference": _float(test.difference),
+        "difference_p": _float(test.p),
+        "stimulus_side": stimulus_side or "",
+        "larger_side": larger if significant else "",
+    }
+    return Verdict(label=label, reasons=tuple(reasons), numbers=numbers, side=side)
+
+
+#: Columns of :func:`lateralisation_differences`, in order.
+DIFFERENCE_TABLE_COLUMNS = (
+    "region",
+    "left_effect",
+    "left_p",
+    "right_effect",
+    "right_p",
+    "difference",
+    "se",
+    "ci_low",
+    "ci_high",
+    "df",
+    "p",
+    "verdict",
+    "side",
+    "reasons",
+)
+
+
+def lateralisation_differences(
+    names: Sequence[str],
+    atlas: Atlas,
+    *,
+    region_values: np.ndarray,
+    animal: np.ndarray,
+    X: np.ndarray,
+    c: np.ndarray,
+    alpha: float = DEFAULT_ALPHA,
+    stimulus_side: str | None = None,
+) -> tuple[pd.DataFrame, dict]:
+    """The lateralisation of a difference contrast for each named region pair.
+
+    Parameters
+    ----------
+    names, atlas, region_values, animal
+        As :func:`analyse_symmetry`.
+    X, c
+        Group design and the difference contrast.
+    alpha, stimulus_side
+        See :func:`lateralisation_difference_verdict`.
+
+    Returns
+    -------
+    table, summary
+        One row per region (:data:`DIFFERENCE_TABLE_COLUMNS`), and per region the
+        verdict, side, reasons and numbers for summary.json.
+    """
+    region_values = np.asarray(region_values, dtype=float)
+    rows, summary = [], {}
+    for name in names:
+        left_row, right_row = region_pair(atlas, name)
+        test = hemisphere_test(
+            region_values[:, left_row], region_values[:, right_row], animal, X=X, c=c
+        )
+        verdict = lateralisation_difference_verdict(test, alpha=alpha, stimulus_side=stimulus_side)
+        rows.append(
+            {
+                "region": str(name),
+                **{k: getattr(test, k) for k in DIFFERENCE_TABLE_COLUMNS[1:11]},
+                "verdict": verdict.label,
+                "side": verdict.side,
+                "reasons": "; ".join(verdict.reasons),
+            }
+        )
+        summary[str(name)] = {
+            "verdict": verdict.label,
+            "side": verdict.side,
+            "question": "does the lateralisation differ",
+            "reasons": list(verdict.reasons),
+            "test": test.summary(),
+            "numbers": verdict.numbers,
+        }
+    return pd.DataFrame(rows, columns=list(DIFFERENCE_TABLE_COLUMNS)), summary

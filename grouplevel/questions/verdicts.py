@@ -15,6 +15,7 @@ Pure: numbers in, labels and sentences out.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -49,6 +50,10 @@ def _fmt_p(p: float) -> str:
 STIMULUS_SIDES = ("left", "right")
 SIDES = STIMULUS_SIDES  # the name in grouplevel.questions.symmetry before 0.2
 
+#: Signs a response may have, and the signs each ``[inference] sided`` counts.
+SIGNS = ("positive", "negative")
+SIGNS_COUNTED = {"two": SIGNS, "positive": ("positive",), "negative": ("negative",)}
+
 #: Verdict labels, as written in the tables.
 NO_ACTIVATION = "no activation"
 UNILATERAL = "unilateral ({side})"
@@ -57,6 +62,11 @@ DOMINANT = "{side}-dominant"
 BILATERAL_EQUIVALENT = "bilateral (equivalence shown)"
 BILATERAL_UNRESOLVED = "bilateral, asymmetry not excluded"
 UNCLEAR = "unclear ({larger} larger, only {active} active)"
+OPPOSITE_SIGNS = "opposite signs (left {left}, right {right})"
+LATERALISATION_DIFFERS = "lateralisation differs (the contrast is larger on the {side})"
+LATERALISATION_NOT_SHOWN = "no evidence that the lateralisation differs"
+#: Put before the label of a negative response ("negative response, bilateral ...").
+NEGATIVE_PREFIX = "negative response, "
 
 
 @dataclass(frozen=True)
@@ -74,20 +84,40 @@ class Verdict:
     side
         "contralateral" / "ipsilateral" for the dominant or only active side when the
         stimulated side is known, else "".
+    sign
+        "positive" / "negative": the sign of the response the label is about; "" when
+        no side responds or the two sides respond with opposite signs.
     """
 
     label: str
     reasons: tuple[str, ...]
     numbers: dict
     side: str = ""
+    sign: str = ""
 
     def summary(self) -> dict:
         return {
             "label": self.label,
             "side": self.side,
+            "sign": self.sign,
             "reasons": list(self.reasons),
             "numbers": dict(self.numbers),
         }
+
+
+def _sign_of(effect: float) -> str:
+    if not np.isfinite(effect) or effect == 0:
+        return ""
+    return "positive" if effect > 0 else "negative"
+
+
+def counted_signs(sided: str) -> tuple[str, ...]:
+    """The response signs an ``[inference] sided`` value counts."""
+    if sided not in SIGNS_COUNTED:
+        raise ArgumentError(
+            f"sided = {sided!r}: use one of {', '.join(map(repr, SIGNS_COUNTED))}"
+        )
+    return SIGNS_COUNTED[sided]
 
 
 def symmetry_verdict(
@@ -95,22 +125,29 @@ def symmetry_verdict(
     *,
     alpha: float = DEFAULT_ALPHA,
     stimulus_side: str | None = None,
+    sided: str = "two",
+    signs: Sequence[str] | None = None,
 ) -> Verdict:
     """Turn the hemispheric test of a region pair into a verdict with its reasons.
 
     The rule, applied in this order:
 
-    1. A side is **active** when its region-mean effect is positive and its two-sided
-       p < α (so one-sided evidence at α/2 for a positive effect).
+    1. A side is **active** when its two-sided p < α and the sign of its region-mean
+       effect is counted: ``sided = "positive"`` counts only positive effects,
+       ``"negative"`` only negative ones, ``"two"`` either. ``signs`` narrows this further
+       (the questions pass the signs of the map's surviving response).
     2. Neither side active → "no activation".
-    3. The difference is **significant** when its two-sided p < α; its sign names the
-       larger side.
-    4. One side active: significant difference towards it → "unilateral (<side>)";
+    3. The two sides active with opposite signs → "opposite signs (left ..., right ...)".
+    4. Otherwise the response has one sign ``s``. The difference is **significant** when
+       its two-sided p < α; the **larger** side is the one whose response is larger in
+       magnitude in the direction of ``s`` (the left when ``s · (L − R) > 0``).
+    5. One side active: significant difference towards it → "unilateral (<side>)";
        difference not significant → "<side> only, difference not significant";
        significant difference towards the inactive side → "unclear (...)".
-    5. Both active: significant difference → "<side>-dominant"; otherwise TOST p < α →
+    6. Both active: significant difference → "<side>-dominant"; otherwise TOST p < α →
        "bilateral (equivalence shown)"; otherwise "bilateral, asymmetry not excluded".
        "Bilateral" never follows from a non-significant difference alone.
+    7. A negative response's label starts with "negative response, ".
 
     With ``stimulus_side`` the dominant (or only active) side is called
     "contralateral" when it is opposite to the stimulated side, else "ipsilateral".
@@ -123,6 +160,11 @@ def symmetry_verdict(
         Significance level of every test in the rule.
     stimulus_side
         "left", "right" or None.
+    sided
+        "two" (default), "positive" or "negative", as ``[inference] sided``.
+    signs
+        The signs that may count (a subset of those ``sided`` counts); default all of
+        those ``sided`` counts. An empty sequence makes every side inactive.
 
     Returns
     -------
@@ -133,84 +175,42 @@ def symmetry_verdict(
     Schuirmann DJ (1987). J Pharmacokinet Biopharm 15:657-680 (equivalence by TOST).
     """
     if not 0.0 < alpha < 1.0:
-        raise ArgumentError(f"alpha = {alpha}: give a level between 0 and 1.")
-    if stimulus_side is not None and stimulus_side not in STIMULUS_SIDES:
+        raise ArgumentError(f"alpha = {alpha}: give a level between 0 and 1")
+    if stimulus_side is not None and stimulus_side not in SIDES:
         raise ArgumentError(
             f'stimulus_side = {stimulus_side!r}: use "left", "right" or None when the '
-            "stimulus was not lateralised."
+            "stimulus was not lateralised"
         )
-    active, reasons = _active_sides(test, alpha)
-    label, dominant, more = _symmetry_label(test, active, alpha)
-    reasons += more
-    side = ""
-    if dominant and stimulus_side is not None:
-        side = "ipsilateral" if dominant == stimulus_side else "contralateral"
-        reasons.append(f"The {dominant} side is {side} to the stimulated {stimulus_side} side")
-    numbers = _symmetry_numbers(test, active, alpha, stimulus_side)
-    numbers["dominant_side"] = dominant
-    return Verdict(label=label, reasons=tuple(reasons), numbers=numbers, side=side)
-
-
-def _active_sides(test: HemisphereTest, alpha: float) -> tuple[dict[str, bool], list[str]]:
-    """Rule 1: a side is active when its effect is positive and its two-sided p < α."""
+    allowed = counted_signs(sided)
+    if signs is not None:
+        allowed = tuple(s for s in allowed if s in signs)
     reasons: list[str] = []
-    active = {}
+    active: dict[str, str] = {}  # side -> sign of its response, "" when not active
     for side, effect, p in (
         ("left", test.left_effect, test.left_p),
         ("right", test.right_effect, test.right_p),
     ):
-        is_active = bool(np.isfinite(p) and effect > 0 and p < alpha)
-        active[side] = is_active
-        word = "active" if is_active else "not active"
+        sign = _sign_of(effect)
+        significant_side = bool(np.isfinite(p) and p < alpha)
+        active[side] = sign if (significant_side and sign in allowed) else ""
+        if active[side]:
+            word = f"active ({sign})"
+        elif significant_side and sign:
+            word = f"not counted ({sign} effect; counted: {' or '.join(allowed) or 'none'})"
+        else:
+            word = "not active"
         reasons.append(f"{side} side {word}: region-mean effect {effect:.3g}, {_fmt_p(p)}")
-    return active, reasons
-
-
-def _symmetry_label(
-    test: HemisphereTest, active: dict[str, bool], alpha: float
-) -> tuple[str, str, list[str]]:
-    """Rules 2-5: the label, the dominant (or only active) side and the reasons."""
+    on = [side for side in ("left", "right") if active[side]]
+    response = active[on[0]] if on else ""
+    direction = -1.0 if response == "negative" else 1.0
     significant = bool(np.isfinite(test.p) and test.p < alpha)
-    larger = "left" if test.difference > 0 else "right"
+    larger = "left" if direction * test.difference > 0 else "right"
     equivalent = bool(np.isfinite(test.tost_p) and test.tost_p < alpha)
-    diff_text = (
-        f"left minus right {test.difference:.3g} (95% CI {test.ci_low:.3g} to "
-        f"{test.ci_high:.3g}), {_fmt_p(test.p)}"
-    )
-    tost_text = (
-        f"equivalence within ±{test.margin:.3g} (|LI| ≤ {test.margin_li:g}): TOST "
-        f"{_fmt_p(test.tost_p)}"
-    )
-    if not active["left"] and not active["right"]:
-        return NO_ACTIVATION, "", []
-    if active["left"] != active["right"]:
-        on = "left" if active["left"] else "right"
-        reasons = [f"Difference {'significant' if significant else 'not significant'}: {diff_text}"]
-        if significant and larger == on:
-            return UNILATERAL.format(side=on), on, reasons
-        if significant:
-            return UNCLEAR.format(larger=larger, active=on), "", reasons
-        return ONE_SIDE_ONLY.format(side=on), on, reasons
-    if significant:
-        reasons = [f"Difference significant: {diff_text}"]
-        if equivalent:
-            reasons.append(f"The difference is small: {tost_text}")
-        return DOMINANT.format(side=larger), larger, reasons
-    reasons = [
-        f"Difference not significant: {diff_text}",
-        f"{'Equivalence shown' if equivalent else 'Equivalence not shown'}: {tost_text}",
-    ]
-    return (BILATERAL_EQUIVALENT if equivalent else BILATERAL_UNRESOLVED), "", reasons
-
-
-def _symmetry_numbers(
-    test: HemisphereTest, active: dict[str, bool], alpha: float, stimulus_side: str | None
-) -> dict:
-    """The deciding numbers, as plain JSON values."""
-    return {
+    numbers = {
         "alpha": float(alpha),
-        "left_active": active["left"],
-        "right_active": active["right"],
+        "sided": sided,
+        "left_active": bool(active["left"]),
+        "right_active": bool(active["right"]),
         "left_effect": _float(test.left_effect),
         "left_p": _float(test.left_p),
         "right_effect": _float(test.right_effect),
@@ -222,10 +222,65 @@ def _symmetry_numbers(
         "tost_p": _float(test.tost_p),
         "stimulus_side": stimulus_side or "",
     }
+    diff_text = (
+        f"left minus right {test.difference:.3g} (95% CI {test.ci_low:.3g} to "
+        f"{test.ci_high:.3g}), {_fmt_p(test.p)}"
+    )
+    tost_text = (
+        f"equivalence within ±{test.margin:.3g} (|LI| ≤ {test.margin_li:g}): TOST "
+        f"{_fmt_p(test.tost_p)}"
+    )
+    dominant = ""
+    sign = response
+    if not on:
+        label = NO_ACTIVATION
+    elif len(on) == 2 and active["left"] != active["right"]:
+        label = OPPOSITE_SIGNS.format(left=active["left"], right=active["right"])
+        sign = ""
+        reasons.append(f"The two sides respond with opposite signs: {diff_text}")
+    elif len(on) == 1:
+        only = on[0]
+        reasons.append(
+            f"Difference {'significant' if significant else 'not significant'}: {diff_text}"
+        )
+        if significant and larger == only:
+            label = UNILATERAL.format(side=only)
+            dominant = only
+        elif significant:
+            label = UNCLEAR.format(larger=larger, active=only)
+        else:
+            label = ONE_SIDE_ONLY.format(side=only)
+            dominant = only
+    else:
+        if significant:
+            label = DOMINANT.format(side=larger)
+            dominant = larger
+            reasons.append(f"Difference significant: {diff_text}")
+            if equivalent:
+                reasons.append(f"The difference is small: {tost_text}")
+        else:
+            reasons.append(f"Difference not significant: {diff_text}")
+            reasons.append(
+                f"{'Equivalence shown' if equivalent else 'Equivalence not shown'}: {tost_text}"
+            )
+            label = BILATERAL_EQUIVALENT if equivalent else BILATERAL_UNRESOLVED
+    if sign == "negative":
+        label = NEGATIVE_PREFIX + label
+        reasons.append(
+            "The response is negative (both counted sides below 0); 'larger' means larger "
+            "in magnitude"
+            if len(on) == 2
+            else "The response is negative; 'larger' means larger in magnitude"
+        )
+    side = ""
+    if dominant and stimulus_side is not None:
+        side = "ipsilateral" if dominant == stimulus_side else "contralateral"
+        reasons.append(f"The {dominant} side is {side} to the stimulated {stimulus_side} side")
+    numbers["dominant_side"] = dominant
+    numbers["sign"] = sign
+    return Verdict(label=label, reasons=tuple(reasons), numbers=numbers, side=side, sign=sign)
 
 
-# --------------------------------------------------------------------------------------
-# Specificity
 # --------------------------------------------------------------------------------------
 
 #: Edge rule: the shell holds at least this share of the surviving activation ...

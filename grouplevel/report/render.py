@@ -192,7 +192,9 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
                     f"{region}: {v.get('verdict', 'no verdict')}{side}"
                     + (f" ({reasons})" if reasons else "")
                 )
-        items.append(("Bilateral?", "", "; ".join(parts) + "."))
+        difference = questions.get("contrast_kind") == "difference"
+        question = "Lateralisation differs?" if difference else "Bilateral?"
+        items.append((question, "", "; ".join(parts) + "."))
     elif "symmetry" in views:
         sym = frames["symmetry"]
         if "verdict" in sym:
@@ -216,15 +218,7 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
     if isinstance(quality, dict) and quality.get("verdict") is not None:
         reasons = _reasons(quality.get("reasons"))
         items.append(("Runs?", str(quality["verdict"]), f"{reasons}." if reasons else ""))
-    unasked = [
-        label
-        for key, label in (
-            ("symmetry", "bilateral"),
-            ("specificity", "specific"),
-            ("consistency", "consistent"),
-        )
-        if key not in questions and key not in frames
-    ]
+    unasked = _unasked(result, questions, frames)
     label = result.get("first_level_contrast") or name
     group = result.get("group_contrast", "mean")
     return {
@@ -236,6 +230,32 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
         "runs": result.get("runs"),
         "method": method_words,
     }
+
+
+#: The questions the short answer lists, as summary.json keys and the report's words.
+_QUESTION_WORDS = (
+    ("symmetry", "bilateral"),
+    ("specificity", "specific"),
+    ("consistency", "consistent"),
+    ("run_quality", "run quality"),
+)
+
+
+def _unasked(result: dict, questions: dict, frames) -> list[str]:
+    """Each question not answered in this result, with the reason summary.json gives."""
+    reasons = questions.get("not_assessed") or {}
+    out = []
+    for key, word in _QUESTION_WORDS:
+        if questions.get(key) or key in frames:
+            continue
+        if key == "run_quality" and not reasons.get(key):
+            continue  # older folders did not record run quality for every result
+        reason = reasons.get(key) or (
+            "no reason recorded (this folder was written by an older version, which asked "
+            "the questions only of the mean of an intercept-only design)"
+        )
+        out.append(f"{word} — {reason}")
+    return out
 
 
 def _overlay(folder: Path, method: str, alpha: float) -> tuple[np.ndarray | None, str, str]:
@@ -581,7 +601,8 @@ def _cautions(name: str, result: dict, summary: dict, method_words: str) -> list
             f"{len(excluded)} run(s) were excluded before fitting (listed under The study); "
             "the result holds for the runs kept."
         )
-    if result.get("questions"):
+    answered = result.get("questions") or {}
+    if any(answered.get(k) for k in ("symmetry", "specificity", "consistency")):
         out.append(
             "Each verdict (bilateral, specific, consistent) is a summary by the stated rules "
             "and the numbers beside it, not a separate test: read the reasons with it."

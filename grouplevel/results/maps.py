@@ -98,7 +98,7 @@ class GroupMap:
     n_runs: int
     inference: Corrected
     tables: RegionTables | None = None  # with an atlas: clusters, regions, animals
-    answers: Answers | None = None  # the questions (group mean of an intercept-only design)
+    answers: Answers | None = None  # the questions (asked of group means; else the reason)
 
     def volume(self, key: str) -> np.ndarray:
         """A per-voxel quantity as a full 3-D array (0 outside the mask).
