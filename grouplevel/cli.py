@@ -27,7 +27,8 @@ def _parser() -> argparse.ArgumentParser:
 
     r = sub.add_parser("run", help="fit the group model and write maps and summary")
     r.add_argument("study", type=Path, help="the study's TOML file")
-    r.add_argument("--out", type=Path, required=True, help="output folder")
+    # a string, not a Path: Path("") is the working folder, and an empty --out is refused
+    r.add_argument("--out", required=True, help="output folder (a new folder of its own)")
     r.add_argument("--force", action="store_true", help="replace an existing output folder")
     r.add_argument("--quiet", action="store_true", help="print only errors and the result")
     r.add_argument(
@@ -130,8 +131,10 @@ def _run(args: argparse.Namespace) -> int:
 
 
 def _report(args: argparse.Namespace) -> int:
+    from grouplevel.output_folder import require_grouplevel_output
     from grouplevel.report import render_report, write_manuscript_tables, write_methods
 
+    require_grouplevel_output(args.folder)
     write_methods(args.folder)
     tables = write_manuscript_tables(args.folder)
     report = render_report(args.folder, title=args.title)
@@ -142,8 +145,10 @@ def _report(args: argparse.Namespace) -> int:
 
 
 def _plan(args: argparse.Namespace) -> int:
+    from grouplevel.output_folder import require_grouplevel_output
     from grouplevel.planning import plan_from_output, write_plan
 
+    require_grouplevel_output(args.folder)
     plans = plan_from_output(
         args.folder,
         regions=args.regions,

@@ -9,8 +9,8 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import json
-import os
 import shutil
+import tempfile
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, replace
@@ -36,6 +36,12 @@ from grouplevel.model import (
     between_animal_df,
     satterthwaite_df,
     test_contrast,
+)
+from grouplevel.output_folder import (
+    TOOL_NAME,
+    check_output_folder,
+    child_path,
+    study_inputs,
 )
 from grouplevel.questions import Answers, answer_questions, asks_questions
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
@@ -741,21 +747,20 @@ def write_outputs(
     Raises
     ------
     UserError
-        When ``out_dir`` exists and ``force`` is false.
+        When ``out_dir`` may not be written (see
+        :func:`grouplevel.output_folder.check_output_folder`): it exists and ``force``
+        is false, it holds an input of the study, it is not a folder grouplevel wrote,
+        or it cannot be created.
     """
-    out = Path(out_dir).expanduser().resolve()
-    check_output_folder(out, force)
+    out = check_output_folder(out_dir, force, inputs=study_inputs(study))
     out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.parent / f".{out.name}.partial-{os.getpid()}"
-    if tmp.exists():
-        shutil.rmtree(tmp)
-    tmp.mkdir()
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
     try:
         grid = study.grid
         for gm in maps:
-            _write_group_map(tmp / gm.name, gm)
+            _write_group_map(child_path(tmp, gm.name), gm)
         summary = {
-            "tool": {"name": "grouplevel", "version": __version__, "versions": _versions()},
+            "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
             "title": study.settings.study.title,
             "inputs": _inputs(study),
@@ -781,20 +786,14 @@ def write_outputs(
         raise
     old = None
     if out.exists():
-        old = out.parent / f".{out.name}.old-{os.getpid()}"
-        out.rename(old)
+        # the earlier output moves into a hidden holder first, so a crash between the
+        # two renames leaves it intact there
+        old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
+        out.rename(old / out.name)
     tmp.rename(out)
     if old is not None:
         shutil.rmtree(old, ignore_errors=True)
     return out
-
-
-def check_output_folder(out: Path, force: bool) -> None:
-    """Refuse an existing output folder unless ``force`` is given."""
-    if out.exists() and not force:
-        raise UserError(f"{out}: output folder exists; choose another or add --force")
-    if out.exists() and not out.is_dir():
-        raise UserError(f"{out}: exists and is not a folder")
 
 
 def run_study(
@@ -813,9 +812,10 @@ def run_study(
     """
     quiet = log is None
     log = log or (lambda _msg: None)
-    out = Path(out_dir).expanduser().resolve()
-    check_output_folder(out, force)
+    # the cheap checks first (before the maps are read), then with every input known
+    check_output_folder(out_dir, force, inputs=[("study file", Path(path))])
     study = load_study(path, permutations=permutations, seed=seed)
+    out = check_output_folder(out_dir, force, inputs=study_inputs(study))
     for w in study.warnings:
         log(f"warning: {w}")
     maps, warnings = fit_study(study, log, quiet=quiet)

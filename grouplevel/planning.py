@@ -66,6 +66,7 @@ import pandas as pd
 from scipy import stats
 
 from grouplevel.errors import UserError
+from grouplevel.output_folder import child_path, require_grouplevel_output
 
 #: Sidedness of the test, in the words of ``[inference] sided``: ``two`` tests
 #: ``|T| > t_{1-α/2}``, ``positive`` tests ``T > t_{1-α}``, ``negative`` ``T < -t_{1-α}``.
@@ -937,6 +938,7 @@ def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]
         The files written, summary.json last.
     """
     out = Path(out_dir).expanduser()
+    require_grouplevel_output(out)  # write only into an output folder grouplevel wrote
     summary = _read_summary(out)
     groups: dict[str, list[PlanResult]] = {}
     for res in results:
@@ -946,7 +948,7 @@ def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]
     written: list[Path] = []
     plan = summary.get("plan") if isinstance(summary.get("plan"), dict) else {}
     for name, group in groups.items():
-        folder = out / name
+        folder = child_path(out, name)
         if not folder.is_dir():
             raise UserError(f"{folder}: result folder not found; plan from this output folder")
         table = pd.concat([r.table() for r in group], ignore_index=True)

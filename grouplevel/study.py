@@ -22,7 +22,7 @@ import numpy as np
 import pandas as pd
 
 from grouplevel.atlas import Atlas, read_atlas
-from grouplevel.config import Settings, load_settings, with_overrides
+from grouplevel.config import DEFAULT_CONTRAST_NAME, Settings, load_settings, with_overrides
 from grouplevel.design import (
     Design,
     build_design,
@@ -32,6 +32,7 @@ from grouplevel.design import (
 )
 from grouplevel.errors import UserError
 from grouplevel.images import Grid, grid_mismatch, read_header_grid, read_volume
+from grouplevel.names import NAME_RULE, case_collisions, name_problem, reserved
 
 TRUE_WORDS = {"true", "yes", "1", "y", "t", "x"}
 FALSE_WORDS = {"false", "no", "0", "n", "f", ""}
@@ -170,7 +171,57 @@ def _check_rows(path: Path, table: pd.DataFrame, problems: list[str]) -> pd.Data
             if row["contrast"]:
                 what += f", contrast {row['contrast']}"
             problems.append(f"{path.name} lines {lines}: duplicate run ({what})")
+    _check_contrast_names(path, table, problems)
     return table
+
+
+def _check_contrast_names(path: Path, table: pd.DataFrame, problems: list[str]) -> None:
+    """First-level contrast names become folder names: see :mod:`grouplevel.names`."""
+    named = table[table["contrast"] != ""]
+    if named.empty:
+        return
+    for _, row in table[table["contrast"] == ""].iterrows():
+        problems.append(
+            f"{_where(path, row)}: 'contrast' is empty while other rows name one; "
+            "give every row its first-level contrast"
+        )
+    first_line = named.groupby("contrast", sort=False)["line"].first()
+    for name, line in first_line.items():
+        why = name_problem(name)
+        if why:
+            problems.append(
+                f"{path.name} line {line}: 'contrast' {name!r} {why}; it names a folder: "
+                f"{NAME_RULE}"
+            )
+    for group in case_collisions(first_line.index):
+        lines = ", ".join(f"{n!r} (line {first_line[n]})" for n in group)
+        problems.append(
+            f"{path.name}: first-level contrasts {lines} differ only in upper and lower case; "
+            "they would be one folder on many file systems: rename one"
+        )
+
+
+def _check_output_names(first_levels: list[FirstLevel]) -> list[str]:
+    """Result folder names must differ (ignoring case) and not clash with our own files."""
+    where: dict[str, str] = {}
+    for fl in first_levels:
+        for cname, _ in fl.contrasts:
+            out = fl.output_name(cname, cname == DEFAULT_CONTRAST_NAME)
+            where[out] = f"first-level contrast {fl.name!r}, group contrast {cname!r}"
+    problems = [
+        f"result folder {name!r} ({what}) would clash with grouplevel's own {name!r} in the "
+        "output folder; rename the contrast"
+        for name, what in where.items()
+        if reserved(name)
+    ]
+    for group in case_collisions(where):
+        problems.append(
+            "result folders "
+            + " and ".join(f"{n!r} ({where[n]})" for n in group)
+            + " differ only in case: they would be one folder on many file systems; "
+            "rename a contrast"
+        )
+    return problems
 
 
 def _covariates(
@@ -464,6 +515,7 @@ def inspect_study(settings: Settings) -> Study:
             problems.extend(exc.problems)
         else:
             warnings.extend(atlas.warnings)
+    problems.extend(_check_output_names(first_levels))
     problems.extend(_check_questions(settings, names, atlas))
     if problems:
         raise UserError(f"{path}: {len(problems)} problem(s) in the study", problems)

@@ -27,6 +27,8 @@ from dataclasses import dataclass
 from importlib import metadata
 from pathlib import Path
 
+from grouplevel.output_folder import require_grouplevel_output
+
 REFERENCES = {
     "reml": "Patterson HD, Thompson R (1971). Recovery of inter-block information when "
     "block sizes are unequal. Biometrika 58:545–554.",
@@ -383,6 +385,7 @@ def write_methods(out_dir: Path) -> Path:
     from grouplevel.report.render import load_summary, present_files
 
     out_dir = Path(out_dir)
+    require_grouplevel_output(out_dir)  # never write methods.md into a foreign folder
     summary = load_summary(out_dir)
     text = methods_text(summary, present_files(out_dir, summary)).markdown()
     path = out_dir / "methods.md"

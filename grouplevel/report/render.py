@@ -28,6 +28,7 @@ import nibabel as nib
 import numpy as np
 
 from grouplevel.errors import UserError
+from grouplevel.output_folder import require_grouplevel_output
 from grouplevel.report import figures
 from grouplevel.report.methods import methods_text
 from grouplevel.report.tables import (
@@ -802,6 +803,7 @@ def render_report(out_dir: Path, *, title: str | None = None) -> Path:
         When ``out_dir`` has no readable summary.json.
     """
     out_dir = Path(out_dir)
+    require_grouplevel_output(out_dir)  # never write report.html into a foreign folder
     start = time.perf_counter()
     context = build_context(out_dir, title=title)
     html = (
