@@ -42,6 +42,7 @@ def check_output_folder(
     force: bool,
     *,
     inputs: Iterable[tuple[str, Path]] = (),
+    ownership: bool = True,
 ) -> Path:
     """Refuse an output location that could lose data; return it resolved.
 
@@ -54,6 +55,10 @@ def check_output_folder(
     inputs
         ``(role, path)`` of every input file of the study; a folder holding one of them
         is never written.
+    ownership
+        Whether to check that an existing folder is grouplevel's (false for an early
+        check made before the inputs are known, so that a folder holding inputs is
+        named as such by the full check).
 
     Raises
     ------
@@ -73,7 +78,7 @@ def check_output_folder(
     if out.exists():
         if not force:
             raise UserError(f"{out}: output folder exists; choose another or add --force")
-        why = foreign_reason(out)
+        why = foreign_reason(out) if ownership else None
         if why:
             raise UserError(
                 f"{out}: --force replaces only an output folder written by grouplevel, and "

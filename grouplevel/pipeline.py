@@ -813,7 +813,7 @@ def run_study(
     quiet = log is None
     log = log or (lambda _msg: None)
     # the cheap checks first (before the maps are read), then with every input known
-    check_output_folder(out_dir, force, inputs=[("study file", Path(path))])
+    check_output_folder(out_dir, force, inputs=[("study file", Path(path))], ownership=False)
     study = load_study(path, permutations=permutations, seed=seed)
     out = check_output_folder(out_dir, force, inputs=study_inputs(study))
     for w in study.warnings:
