@@ -186,7 +186,9 @@ def test_force_refuses_a_folder_grouplevel_did_not_write(tmp_path, capsys, no_fi
     before = hashes(tmp_path)
     code, err = cli(["run", toml, "--out", other, "--force"], capsys)
     line = one_line_error(err)
-    assert code == 2 and str(other) in line and "holds no summary.json written by grouplevel" in line
+    assert (
+        code == 2 and str(other) in line and "holds no summary.json written by grouplevel" in line
+    )
     assert_unchanged(before)
 
 
