@@ -563,3 +563,12 @@ def test_toml_typos_are_refused_with_a_suggestion(tmp_path, capsys):
     toml.write_text(toml.read_text().replace("permutations", "permutatons"))
     code, err = cli(["check", toml], capsys)
     assert code == 2 and "did you mean 'permutations'" in err
+
+
+def test_example_is_never_written_over_a_study_of_ones_own(tmp_path, capsys):
+    toml = study(tmp_path / "s")
+    before = hashes(tmp_path)
+    code, err = cli(["example", toml.parent], capsys)
+    line = one_line_error(err)
+    assert code == 2 and str(toml.parent) in line and "holds no earlier example" in line
+    assert_unchanged(before)
