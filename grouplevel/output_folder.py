@@ -92,12 +92,18 @@ def _inside(path: Path, folder: Path) -> bool:
     return path == folder or folder in path.parents
 
 
+def _shared_places() -> list[tuple[str, Path]]:
+    places = []
+    for what, where in (("the current working folder", Path.cwd), ("the home folder", Path.home)):
+        try:
+            places.append((what, where()))
+        except (OSError, RuntimeError):  # a deleted working folder, or no home known
+            continue
+    return places
+
+
 def _refuse_shared_places(out: Path, plain: Path) -> None:
-    places = (
-        ("the current working folder", Path.cwd()),
-        ("the home folder", Path.home()),
-    )
-    for what, place in places:
+    for what, place in _shared_places():
         for p in {place, place.resolve()}:
             if _inside(p, out) or _inside(p, plain):
                 kind = "is" if p in (out, plain) else "contains"

@@ -9,6 +9,8 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import json
+import os
+import secrets
 import shutil
 import tempfile
 import time
@@ -754,7 +756,10 @@ def write_outputs(
     """
     out = check_output_folder(out_dir, force, inputs=study_inputs(study))
     out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    # a new, unique hidden folder (mkdir honours the umask, so the finished folder gets
+    # the usual permissions; an existing folder of that name is never touched)
+    tmp = out.parent / f".{out.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
+    tmp.mkdir()
     try:
         grid = study.grid
         for gm in maps:

@@ -201,6 +201,9 @@ def test_force_replaces_its_own_output_but_not_a_file_added_to_it(tmp_path, caps
     # grouplevel's own folder is replaced with --force ...
     assert cli(["run", toml, "--out", out, "--quiet", "--force"], capsys)[0] == 0
     assert not list(tmp_path.glob(".results.*"))  # no partial or old folder left
+    umask = os.umask(0)
+    os.umask(umask)
+    assert out.stat().st_mode & 0o777 == 0o777 & ~umask  # readable like any new folder
     # ... but not once it holds a file of the user's
     (out / "my_figure.svg").write_text("<svg/>")
     before = hashes(tmp_path)
