@@ -575,3 +575,13 @@ def test_example_is_never_written_over_a_study_of_ones_own(tmp_path, capsys):
     line = one_line_error(err)
     assert code == 2 and str(toml.parent) in line and "holds no earlier example" in line
     assert_unchanged(before)
+
+
+def test_check_lists_a_bad_name_with_the_other_problems_of_the_table(tmp_path, capsys):
+    toml = study(tmp_path / "s", contrasts=["../x"] * 6)
+    table = pd.read_csv(toml.parent / "runs.tsv", sep="\t", dtype=str)
+    table["exclude"] = ["maybe"] + ["no"] * 5
+    table.to_csv(toml.parent / "runs.tsv", sep="\t", index=False)
+    code, err = cli(["check", toml], capsys)
+    assert code == 2 and "2 problem(s) in the runs table" in err
+    assert "'exclude' must be true or false" in err and "'contrast' '../x'" in err
