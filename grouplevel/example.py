@@ -49,6 +49,8 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
+from grouplevel.errors import UserError
+
 __all__ = [
     "EXAMPLE_SEED",
     "Anatomy",
@@ -1044,7 +1046,9 @@ def _save(array: np.ndarray, affine: np.ndarray, path: pathlib.Path, what: str) 
 def write_example(out_dir: pathlib.Path, seed: int = EXAMPLE_SEED) -> pathlib.Path:
     """Write the example study into ``out_dir`` and return the path of its study.toml.
 
-    The folder is created if missing; existing files of the example are overwritten.
+    The folder is created if missing; an earlier example in it (recognised by its
+    ``truth.json``) is overwritten. Any other folder that is not empty is refused: it
+    may hold a study of one's own, whose study.toml and runs.tsv would be replaced.
     Written: ``study.toml``, ``runs.tsv``, ``template.nii.gz``, ``brain_mask.nii.gz``,
     ``atlas.nii.gz``, ``atlas.tsv``, ``truth.json``, ``truth/<contrast>_effect.nii.gz`` and
     ``maps/<animal>_ses-1_run-<r>_<contrast>_{effect,variance}.nii.gz``.
@@ -1062,6 +1066,13 @@ def write_example(out_dir: pathlib.Path, seed: int = EXAMPLE_SEED) -> pathlib.Pa
         ``out_dir / "study.toml"``.
     """
     out_dir = pathlib.Path(out_dir)
+    if out_dir.is_dir() and any(out_dir.iterdir()) and not (out_dir / "truth.json").is_file():
+        raise UserError(
+            f"{out_dir}: is not empty and holds no earlier example; write the example into "
+            "a new or empty folder"
+        )
+    if out_dir.exists() and not out_dir.is_dir():
+        raise UserError(f"{out_dir}: exists and is not a folder; choose a new folder")
     (out_dir / MAP_DIR).mkdir(parents=True, exist_ok=True)
     (out_dir / "truth").mkdir(exist_ok=True)
     anatomy = make_anatomy()

@@ -15,7 +15,9 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import os
+import secrets
 import shutil
+import tempfile
 import time
 from collections.abc import Callable
 from dataclasses import replace
@@ -42,6 +44,12 @@ from grouplevel.model import (
     between_animal_df,
     satterthwaite_df,
     test_contrast,
+)
+from grouplevel.outputs.folder import (
+    TOOL_NAME,
+    check_output_folder,
+    child_path,
+    study_inputs,
 )
 from grouplevel.outputs.summary import write_summary
 from grouplevel.progress import Progress
@@ -640,21 +648,23 @@ def write_outputs(
     Raises
     ------
     UserError
-        When ``out_dir`` exists and ``force`` is false.
+        When ``out_dir`` may not be written (see
+        :func:`grouplevel.outputs.folder.check_output_folder`): it exists and ``force``
+        is false, it holds an input of the study, it is not a folder grouplevel wrote,
+        or it cannot be created.
     """
-    out = Path(out_dir).expanduser().resolve()
-    check_output_folder(out, force)
+    out = check_output_folder(out_dir, force, inputs=study_inputs(study))
     out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.parent / f".{out.name}.partial-{os.getpid()}"
-    if tmp.exists():
-        shutil.rmtree(tmp)
+    # a new, unique hidden folder (mkdir honours the umask, so the finished folder gets
+    # the usual permissions; an existing folder of that name is never touched)
+    tmp = out.parent / f".{out.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
     tmp.mkdir()
     try:
         grid = study.grid
         for gm in maps:
-            _write_group_map(tmp / gm.name, gm)
+            _write_group_map(child_path(tmp, gm.name), gm)
         summary = {
-            "tool": {"name": "grouplevel", "version": __version__, "versions": _versions()},
+            "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
             "title": study.settings.study.title,
             "inputs": _inputs(study),
@@ -683,20 +693,14 @@ def write_outputs(
         raise
     old = None
     if out.exists():
-        old = out.parent / f".{out.name}.old-{os.getpid()}"
-        out.rename(old)
+        # the earlier output moves into a hidden holder first, so a crash between the
+        # two renames leaves it intact there
+        old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
+        out.rename(old / out.name)
     tmp.rename(out)
     if old is not None:
         shutil.rmtree(old, ignore_errors=True)
     return out
-
-
-def check_output_folder(out: Path, force: bool) -> None:
-    """Refuse an existing output folder unless ``force`` is given."""
-    if out.exists() and not force:
-        raise UserError(f"{out}: output folder exists; choose another or add --force")
-    if out.exists() and not out.is_dir():
-        raise UserError(f"{out}: exists and is not a folder")
 
 
 def run_study(
@@ -715,9 +719,10 @@ def run_study(
     """
     quiet = log is None
     log = log or (lambda _msg: None)
-    out = Path(out_dir).expanduser().resolve()
-    check_output_folder(out, force)
+    # the cheap checks first (before the maps are read), then with every input known
+    check_output_folder(out_dir, force, inputs=[("study file", Path(path))], ownership=False)
     study = load_study(path, permutations=permutations, seed=seed)
+    out = check_output_folder(out_dir, force, inputs=study_inputs(study))
     for w in study.warnings:
         log(f"warning: {w}")
     maps, warnings = fit_study(study, log, quiet=quiet)

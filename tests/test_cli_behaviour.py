@@ -13,15 +13,18 @@ from grouplevel.cli.commands import _parser
 from grouplevel.progress import Progress
 
 
-def test_example_does_not_overwrite_a_study_without_force(tmp_path, capsys):
+def test_example_does_not_overwrite_a_study_of_ones_own(tmp_path, capsys):
     folder = tmp_path / "mine"
     folder.mkdir()
     (folder / "study.toml").write_text("# my own study\n")
     assert main(["example", str(folder)]) == 2
-    assert "--force" in capsys.readouterr().err
+    assert "holds no earlier example" in capsys.readouterr().err
     assert (folder / "study.toml").read_text() == "# my own study\n"
-    assert main(["example", str(folder), "--force"]) == 0
-    assert "INVENTED" in (folder / "study.toml").read_text()
+    # an earlier example is ours to write again
+    again = tmp_path / "again"
+    assert main(["example", str(again)]) == 0
+    assert main(["example", str(again)]) == 0
+    assert "INVENTED" in (again / "study.toml").read_text()
 
 
 def test_a_closed_pipe_ends_quietly(tmp_path, monkeypatch, capsys):

@@ -116,9 +116,11 @@ def test_contrast_column_and_group_contrasts_name_the_folders(tmp_path):
 def test_force_replaces_and_keeps_no_partial(tiny_study, tmp_path):
     out = tmp_path / "out"
     assert main(["run", str(tiny_study), "--out", str(out), "--quiet"]) == 0
-    (out / "stale.txt").write_text("old")
+    # a file left inside a result folder (e.g. by `grouplevel plan`) goes with it; a file
+    # the user put at the top of the folder is never deleted (tests/test_output_safety.py)
+    (out / "mean" / "stale.txt").write_text("old")
     assert main(["run", str(tiny_study), "--out", str(out), "--quiet", "--force"]) == 0
-    assert not (out / "stale.txt").exists()
+    assert not (out / "mean" / "stale.txt").exists()
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out.")]
 
 

@@ -27,7 +27,8 @@ def _parser() -> argparse.ArgumentParser:
 
     r = sub.add_parser("run", help="fit the group model and write maps and summary")
     r.add_argument("study", type=Path, help="the study's TOML file")
-    r.add_argument("--out", type=Path, required=True, help="output folder")
+    # a string, not a Path: Path("") is the working folder, and an empty --out is refused
+    r.add_argument("--out", required=True, help="output folder (a new folder of its own)")
     r.add_argument("--force", action="store_true", help="replace an existing output folder")
     r.add_argument("--quiet", action="store_true", help="print only errors and the result")
     r.add_argument(
@@ -108,9 +109,6 @@ def _parser() -> argparse.ArgumentParser:
 
     e = sub.add_parser("example", help="write the invented example study into a folder")
     e.add_argument("folder", type=Path, help="folder to write the example study into")
-    e.add_argument(
-        "--force", action="store_true", help="overwrite an example study already in the folder"
-    )
 
     d = sub.add_parser("demo", help="write the example study and run it")
     d.add_argument(
@@ -161,8 +159,10 @@ def _run(args: argparse.Namespace) -> int:
 
 
 def _report(args: argparse.Namespace) -> int:
+    from grouplevel.outputs.folder import require_grouplevel_output
     from grouplevel.report import render_report, write_manuscript_tables, write_methods
 
+    require_grouplevel_output(args.folder)
     write_methods(args.folder)
     tables = write_manuscript_tables(args.folder)
     report = render_report(args.folder, title=args.title)
@@ -173,8 +173,10 @@ def _report(args: argparse.Namespace) -> int:
 
 
 def _plan(args: argparse.Namespace) -> int:
+    from grouplevel.outputs.folder import require_grouplevel_output
     from grouplevel.planning.plan import plan_from_output, write_plan
 
+    require_grouplevel_output(args.folder)
     plans = plan_from_output(
         args.folder,
         regions=args.regions,
@@ -249,13 +251,7 @@ def _table(args: argparse.Namespace) -> int:
 def _example(args: argparse.Namespace) -> int:
     from grouplevel.example import write_example
 
-    existing = args.folder / "study.toml"
-    if existing.exists() and not args.force:
-        raise UserError(
-            f"{existing}: a study file is already there; choose another folder, or add "
-            "--force to overwrite it with the example"
-        )
-    toml = write_example(args.folder)
+    toml = write_example(args.folder)  # refuses a folder that holds anything else
     print(f"example study written to {toml.parent}")
     print(f"next: grouplevel check {toml}")
     return 0

@@ -20,6 +20,7 @@ from grouplevel.errors import UserError
 from grouplevel.inference.significance import DEFAULT_ALPHA, DEFAULT_SIDED
 from grouplevel.inference.significance import SIDES as SIDED_CHOICES
 from grouplevel.intake.textcheck import control_characters
+from grouplevel.outputs.names import NAME_RULE, name_problem
 
 # --- defaults (one place) -----------------------------------------------------------
 DEFAULT_MIN_COVERAGE = 1.0  # every run must have data at a voxel unless the user allows less
@@ -470,12 +471,17 @@ def load_settings(path: str | Path) -> Settings:
         weights = r.get(where, c, "weights", dict, required=True)
         if name is None or weights is None:
             continue
-        if not name or any(ch in name for ch in '/\\:*?"<>|') or name.startswith("."):
-            r.problem(f"[{where}] name", f"{name!r} cannot be used as a folder name")
+        why = name_problem(name)
+        if why:
+            r.problem(f"[{where}] name", f"{name!r} {why}; it names a folder: {NAME_RULE}")
             continue
-        if name in seen:
-            r.problem(f"[{where}] name", f"contrast name {name!r} is used twice")
-        seen.add(name)
+        if name.casefold() in seen:
+            r.problem(
+                f"[{where}] name",
+                f"contrast name {name!r} is used twice (names that differ only in case "
+                "count as one: they are one folder on many file systems)",
+            )
+        seen.add(name.casefold())
         clean: dict[str, float] = {}
         for coef, w in weights.items():
             if isinstance(w, bool) or not isinstance(w, int | float):

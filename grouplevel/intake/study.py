@@ -33,8 +33,14 @@ from grouplevel.intake.design import (
     missing_variables,
 )
 from grouplevel.intake.images import Grid, grid_mismatch, read_header_grid, read_volume
-from grouplevel.intake.settings import Settings, load_settings, with_overrides
+from grouplevel.intake.settings import (
+    DEFAULT_CONTRAST_NAME,
+    Settings,
+    load_settings,
+    with_overrides,
+)
 from grouplevel.intake.textcheck import control_characters, read_text_table
+from grouplevel.outputs.names import NAME_RULE, case_collisions, name_problem, reserved
 
 TRUE_WORDS = {"true", "yes", "1", "y", "t", "x"}
 FALSE_WORDS = {"false", "no", "0", "n", "f", ""}
@@ -254,7 +260,57 @@ def _check_rows(path: Path, table: pd.DataFrame, problems: list[str]) -> pd.Data
             if row["condition"]:
                 what += f", condition {row['condition']}"
             problems.append(f"{path.name} lines {lines}: duplicate run ({what})")
+    _check_condition_names(path, table, problems)
     return table
+
+
+def _check_condition_names(path: Path, table: pd.DataFrame, problems: list[str]) -> None:
+    """Condition names become folder names: see :mod:`grouplevel.outputs.names`."""
+    named = table[table["condition"] != ""]
+    if named.empty:
+        return
+    for _, row in table[table["condition"] == ""].iterrows():
+        problems.append(
+            f"{_where(path, row)}: 'condition' is empty while other rows name one; "
+            "give every row its first-level condition"
+        )
+    first_line = named.groupby("condition", sort=False)["line"].first()
+    for name, line in first_line.items():
+        why = name_problem(name)
+        if why:
+            problems.append(
+                f"{path.name} line {line}: 'condition' {name!r} {why}; it names a folder: "
+                f"{NAME_RULE}"
+            )
+    for group in case_collisions(first_line.index):
+        lines = ", ".join(f"{n!r} (line {first_line[n]})" for n in group)
+        problems.append(
+            f"{path.name}: conditions {lines} differ only in upper and lower case; "
+            "they would be one folder on many file systems: rename one"
+        )
+
+
+def _check_output_names(first_levels: list[FirstLevel]) -> list[str]:
+    """Result folder names must differ (ignoring case) and not clash with our own files."""
+    where: dict[str, str] = {}
+    for fl in first_levels:
+        for cname, _ in fl.contrasts:
+            out = fl.output_name(cname, cname == DEFAULT_CONTRAST_NAME)
+            where[out] = f"condition {fl.name!r}, group contrast {cname!r}"
+    problems = [
+        f"result folder {name!r} ({what}) would clash with grouplevel's own {name!r} in the "
+        "output folder; rename the contrast"
+        for name, what in where.items()
+        if reserved(name)
+    ]
+    for group in case_collisions(where):
+        problems.append(
+            "result folders "
+            + " and ".join(f"{n!r} ({where[n]})" for n in group)
+            + " differ only in case: they would be one folder on many file systems; "
+            "rename a contrast"
+        )
+    return problems
 
 
 def _shared_files(path: Path, table: pd.DataFrame) -> list[str]:
@@ -796,6 +852,7 @@ def inspect_study(settings: Settings) -> Study:
             problems.extend(exc.problems)
         else:
             warnings.extend(atlas.warnings)
+    problems.extend(_check_output_names(first_levels))
     problems.extend(_check_questions(settings, names, atlas))
     if problems:
         raise UserError(f"{path}: {len(problems)} problem(s) in the study", problems)

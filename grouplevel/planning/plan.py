@@ -27,6 +27,7 @@ from grouplevel.errors import UserError
 from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.inference.significance import SIDES as SIDED_CHOICES
 from grouplevel.outputs.files import atomic_write
+from grouplevel.outputs.folder import child_path, require_grouplevel_output
 from grouplevel.outputs.summary import read_summary, write_summary
 from grouplevel.planning.power import (
     _REGION_COLUMNS,
@@ -639,6 +640,7 @@ def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]
         The files written, summary.json last.
     """
     out = Path(out_dir).expanduser()
+    require_grouplevel_output(out)  # write only into an output folder grouplevel wrote
     summary = read_summary(out)
     groups: dict[str, list[PlanResult]] = {}
     for res in results:
@@ -648,7 +650,7 @@ def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]
     written: list[Path] = []
     plan = summary.get("plan") if isinstance(summary.get("plan"), dict) else {}
     for name, group in groups.items():
-        folder = out / name
+        folder = child_path(out, name)
         if not folder.is_dir():
             raise UserError(f"{folder}: result folder not found; plan from this output folder")
         table = pd.concat([r.table() for r in group], ignore_index=True)

@@ -8,7 +8,8 @@
 * :mod:`~grouplevel.questions.ask` — the pipeline step: asks the configured questions of
   a group mean and collects the verdicts.
 
-``Answers``, ``answer_questions``, ``question_plan`` and their helpers are re-exported here (this was
+``Answers``, ``answer_questions``, ``question_plan`` and their helpers are re-exported
+here (this was
 the module ``grouplevel.questions`` before 0.2); they are imported on first use, so that
 the pure modules can be imported without the settings.
 """

@@ -114,9 +114,7 @@ def _sign_of(effect: float) -> str:
 def counted_signs(sided: str) -> tuple[str, ...]:
     """The response signs an ``[inference] sided`` value counts."""
     if sided not in SIGNS_COUNTED:
-        raise ArgumentError(
-            f"sided = {sided!r}: use one of {', '.join(map(repr, SIGNS_COUNTED))}"
-        )
+        raise ArgumentError(f"sided = {sided!r}: use one of {', '.join(map(repr, SIGNS_COUNTED))}")
     return SIGNS_COUNTED[sided]
 
 

@@ -27,6 +27,7 @@ from dataclasses import dataclass
 from importlib import metadata
 from pathlib import Path
 
+from grouplevel.outputs.folder import require_grouplevel_output
 from grouplevel.outputs.summary import present_files, read_summary
 
 REFERENCES = {
@@ -402,6 +403,7 @@ def write_methods(out_dir: Path) -> Path:
         The written file.
     """
     out_dir = Path(out_dir)
+    require_grouplevel_output(out_dir)  # never write methods.md into a foreign folder
     summary = read_summary(out_dir)
     text = methods_text(summary, present_files(out_dir, summary)).markdown()
     path = out_dir / "methods.md"

@@ -26,6 +26,7 @@ import jinja2
 import nibabel as nib
 import numpy as np
 
+from grouplevel.outputs.folder import require_grouplevel_output
 from grouplevel.outputs.summary import present_files, read_summary, result_names
 from grouplevel.report import figures
 from grouplevel.report.methods import methods_text
@@ -840,6 +841,7 @@ def render_report(out_dir: Path, *, title: str | None = None) -> Path:
         When ``out_dir`` has no readable summary.json.
     """
     out_dir = Path(out_dir)
+    require_grouplevel_output(out_dir)  # never write report.html into a foreign folder
     start = time.perf_counter()
     context = build_context(out_dir, title=title)
     html = (

@@ -19,11 +19,14 @@ HTML report, so the report and the files always agree.
 from __future__ import annotations
 
 import math
+import re
+import unicodedata
 from dataclasses import dataclass
 from pathlib import Path
 
 import pandas as pd
 
+from grouplevel.outputs.folder import child_path, require_grouplevel_output
 from grouplevel.outputs.summary import read_summary, result_names
 
 # Rounding rules (our choice, following the usual reporting of the trade; common practice).
@@ -297,8 +300,14 @@ def result_table_views(out_dir: Path, name: str) -> dict[str, TableView]:
 
 # --- writers ---------------------------------------------------------------------------
 
+# Symbols of our own headers written as maths (before the per-character escaping).
+_LATEX_MATHS = {"τ²": r"$\tau^{2}$", "σ²": r"$\sigma^{2}$", "mm³": r"mm$^{3}$"}
 _LATEX_SPECIALS = {
     "\\": r"\textbackslash{}",
+    "|": r"\textbar{}",
+    "\t": " ",
+    "\n": " ",
+    "\r": " ",
     "&": r"\&",
     "%": r"\%",
     "$": r"\$",
@@ -319,12 +328,63 @@ _LATEX_SPECIALS = {
     "→": r"$\rightarrow$",
     "≤": r"$\leq$",
     "µ": r"$\mu$",
+    "±": r"$\pm$",
+    "×": r"$\times$",
+    "≥": r"$\geq$",
+    "≠": r"$\neq$",
+    "≈": r"$\approx$",
+    "°": r"\textdegree{}",
+    "′": r"$'$",
+    "α": r"$\alpha$",
+    "β": r"$\beta$",
+    "γ": r"$\gamma$",
+    "δ": r"$\delta$",
+    "Δ": r"$\Delta$",
+    "θ": r"$\theta$",
+    "λ": r"$\lambda$",
+    "μ": r"$\mu$",
+    "π": r"$\pi$",
+    "ρ": r"$\rho$",
+    "φ": r"$\varphi$",
+    "χ": r"$\chi$",
+    "ω": r"$\omega$",
 }
+# Characters pdflatex prints with its default font encoding and UTF-8 input (measured
+# with TeX Live's pdflatex: ASCII, Latin-1 and Latin Extended-A letters except these,
+# which need the T1 encoding, and the typographic quotes).
+_LATEX_NEEDS_T1 = frozenset("«»ÐÞðþĄąĐđĘęĦħĮįĸĿŀŉŊŋŦŧŲųſ")
+_LATEX_PLAIN_EXTRA = frozenset("‘’“”…•†")
+
+
+def _latex_char(ch: str) -> str:
+    if ch in _LATEX_SPECIALS:
+        return _LATEX_SPECIALS[ch]
+    code = ord(ch)
+    if 32 <= code < 127 or ch in _LATEX_PLAIN_EXTRA:
+        return ch
+    if 0xA1 <= code < 0x180 and ch not in _LATEX_NEEDS_T1 and ch != "\xad":
+        return ch
+    # anything else: its plain-letter form when it has one (e.g. Ą -> A), else "?"
+    # (a table must compile; the TSV keeps the exact text)
+    plain = unicodedata.normalize("NFKD", ch).encode("ascii", "ignore").decode()
+    return "".join(_LATEX_SPECIALS.get(c, c) for c in plain if 32 <= ord(c) < 127) or "?"
 
 
 def latex_escape(text: str) -> str:
-    """Escape LaTeX's special characters (and a few non-ASCII symbols) in plain text."""
-    return "".join(_LATEX_SPECIALS.get(ch, ch) for ch in str(text))
+    """Escape LaTeX's special characters (and non-ASCII symbols) in plain text.
+
+    The result compiles with pdflatex in a document with no package beyond those a
+    table needs (booktabs): every character is either printable as it is, a LaTeX
+    command or maths, or replaced by its plain-letter form.
+    """
+    text = str(text)
+    parts = []
+    for piece in re.split("(" + "|".join(map(re.escape, _LATEX_MATHS)) + ")", text):
+        if piece in _LATEX_MATHS:
+            parts.append(_LATEX_MATHS[piece])
+        else:
+            parts.append("".join(_latex_char(ch) for ch in piece))
+    return "".join(parts)
 
 
 def _latex_cell(text: str) -> str:
@@ -372,13 +432,38 @@ def to_markdown(view: TableView) -> str:
     return "\n".join(lines) + "\n"
 
 
+# A cell starting with one of these is read as a formula by spreadsheet programs; the
+# CSV tables (made for spreadsheets) prefix such text cells with a single quote (common
+# practice; the OWASP guidance on CSV injection).
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?")
+
+
+def formula_safe(text: str) -> str:
+    """A CSV cell that no spreadsheet runs as a formula; numbers stay numbers."""
+    text = str(text)
+    if text.startswith(FORMULA_STARTS) and not _NUMBER.fullmatch(text):
+        return "'" + text
+    return text
+
+
+def _csv_frame(frame: pd.DataFrame) -> pd.DataFrame:
+    safe = frame.map(formula_safe)
+    safe.columns = [formula_safe(c) for c in frame.columns]
+    return safe
+
+
 def write_view(view: TableView, stem: Path) -> list[Path]:
-    """``stem``.tsv / .csv / .tex / .md; returns the four paths."""
+    """``stem``.tsv / .csv / .tex / .md; returns the four paths.
+
+    The TSV keeps every value exactly; in the CSV, text that a spreadsheet would run as
+    a formula is prefixed with a single quote (see :func:`formula_safe`).
+    """
     frame = view.frame()
     paths = []
     for suffix, writer in (
         (".tsv", lambda p: frame.to_csv(p, sep="\t", index=False)),
-        (".csv", lambda p: frame.to_csv(p, index=False)),
+        (".csv", lambda p: _csv_frame(frame).to_csv(p, index=False)),
         (".tex", lambda p: p.write_text(to_latex(view), encoding="utf-8")),
         (".md", lambda p: p.write_text(to_markdown(view), encoding="utf-8")),
     ):
@@ -406,6 +491,7 @@ def write_manuscript_tables(out_dir: Path) -> list[Path]:
         The files written (empty when no result folder holds a table).
     """
     out_dir = Path(out_dir)
+    require_grouplevel_output(out_dir)  # result names checked: tables stay in tables/
     summary = read_summary(out_dir)
     written: list[Path] = []
     target = out_dir / "tables"
@@ -415,5 +501,5 @@ def write_manuscript_tables(out_dir: Path) -> list[Path]:
             if key not in views:
                 continue
             target.mkdir(exist_ok=True)
-            written += write_view(views[key], target / f"{name}_{key}")
+            written += write_view(views[key], child_path(target, f"{name}_{key}"))
     return written
