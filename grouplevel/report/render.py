@@ -139,7 +139,6 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
     method = _method(summary, result)
     method_words = _METHOD_LABEL[method].format(a=alpha) if method in _METHOD_LABEL else method
     items: list[tuple[str, str, str]] = []  # (question, verdict in bold, the numbers)
-    n_clusters = (result.get("clusters") or {}).get("significant_clusters")
     n_voxels = _surviving_count(result, method)
     peak = result.get("peak") or {}
     peak_text = ""
@@ -149,15 +148,40 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
             f"strongest voxel t = {peak['t']:.2f} (effect {peak['effect']:.2f}) at "
             f"AP {ap:+.2f}, ML {ml:+.2f}, DV {dv:+.2f} mm from {origin_name}"
         )
+    items.append(_present_item(result, n_voxels, method_words, peak_text))
+    items += _where_items(frames.get("clusters"), n_voxels, peak, peak_text)
+    questions = result.get("questions") or {}
+    items += _bilateral_items(questions, views, frames)
+    items += _question_items(questions, frames)
+    unasked = _unasked(result, questions, frames)
+    label = result.get("first_level_contrast") or name
+    group = result.get("group_contrast", "mean")
+    return {
+        "name": name,
+        "heading": f"{label}" + (f" — {group}" if group and group != "mean" else ""),
+        "items": items,
+        "unasked": unasked,
+        "animals": result.get("animals"),
+        "runs": result.get("runs"),
+        "method": method_words,
+    }
+
+
+def _present_item(result: dict, n_voxels, method_words: str, peak_text: str) -> tuple:
+    """Present? — how many voxels and clusters survive, and the strongest voxel."""
+    n_clusters = (result.get("clusters") or {}).get("significant_clusters")
     if n_voxels:
         count = f"{n_voxels:,} voxels survive {method_words}"
         if n_clusters is not None:
             count += f", in {n_clusters} significant cluster{'s' if n_clusters != 1 else ''}"
-        items.append(("Present?", "Yes", "; ".join(t for t in (count, peak_text) if t) + "."))
-    else:
-        detail = "; ".join(t for t in (f"no voxel survives {method_words}", peak_text) if t)
-        items.append(("Present?", "Not shown", detail + "."))
-    clusters = frames.get("clusters")
+        return ("Present?", "Yes", "; ".join(t for t in (count, peak_text) if t) + ".")
+    detail = "; ".join(t for t in (f"no voxel survives {method_words}", peak_text) if t)
+    return ("Present?", "Not shown", detail + ".")
+
+
+def _where_items(clusters, n_voxels, peak: dict, peak_text: str) -> list[tuple]:
+    """Where? — the largest clusters by their peak region, else the strongest voxel."""
+    items: list[tuple[str, str, str]] = []
     if clusters is not None and len(clusters):
         mains = clusters[clusters["peak"].astype(str) == "1"].head(MAX_WHERE)
         places = []
@@ -181,7 +205,12 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
         items.append(("Where?", "", text + "."))
     elif n_voxels and peak:
         items.append(("Where?", "", f"around the strongest voxel ({peak_text.split(' at ')[-1]})."))
-    questions = result.get("questions") or {}
+    return items
+
+
+def _bilateral_items(questions: dict, views: dict[str, TableView], frames) -> list[tuple]:
+    """Bilateral? — each region pair's symmetry verdict with its reasons."""
+    items: list[tuple[str, str, str]] = []
     symmetry = questions.get("symmetry")
     if isinstance(symmetry, dict) and symmetry:
         parts = []
@@ -201,6 +230,12 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
         if "verdict" in sym:
             parts = [f"{r['region']}: {r['verdict']}" for _, r in sym.iterrows()]
             items.append(("Bilateral?", "", "; ".join(parts) + "."))
+    return items
+
+
+def _question_items(questions: dict, frames) -> list[tuple]:
+    """Specific?, Consistent? and Runs? — the verdicts of the other questions."""
+    items: list[tuple[str, str, str]] = []
     for key, label in (("specificity", "Specific?"), ("consistency", "Consistent?")):
         q = questions.get(key)
         if isinstance(q, dict) and q.get("verdict") is not None:
@@ -219,18 +254,7 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
     if isinstance(quality, dict) and quality.get("verdict") is not None:
         reasons = _reasons(quality.get("reasons"))
         items.append(("Runs?", str(quality["verdict"]), f"{reasons}." if reasons else ""))
-    unasked = _unasked(result, questions, frames)
-    label = result.get("first_level_contrast") or name
-    group = result.get("group_contrast", "mean")
-    return {
-        "name": name,
-        "heading": f"{label}" + (f" — {group}" if group and group != "mean" else ""),
-        "items": items,
-        "unasked": unasked,
-        "animals": result.get("animals"),
-        "runs": result.get("runs"),
-        "method": method_words,
-    }
+    return items
 
 
 #: The questions the short answer lists, as summary.json keys and the report's words.
