@@ -89,7 +89,7 @@ if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
 from grouplevel.questions.sides import split_side
 
 # --------------------------------------------------------------------------------------
-# Defaults (the lead's config section [questions] may override every one of them)
+# Defaults (the study file's [questions] section may override every one of them)
 # --------------------------------------------------------------------------------------
 
 #: Equivalence margin on |LI|: ±0.2, a common convention for |LI| (value from memory).
