@@ -35,6 +35,13 @@ DEFAULT_TFCE = True
 DEFAULT_TFCE_E = 0.5  # Smith & Nichols 2009, NeuroImage 44:83
 DEFAULT_TFCE_H = 2.0  # Smith & Nichols 2009
 DEFAULT_MAX_ITER = 100  # Fisher scoring iterations per voxel; REML converges in ~5-15
+# A within-animal effect that a contrast tests gets a random slope per animal: without it
+# its test is anti-conservative (Barr, Levy, Scheepers & Tily 2013, J Mem Lang 68:255).
+DEFAULT_RANDOM_SLOPES = "auto"
+# Sessions nested in animals get their own variance when the runs table has repeated
+# sessions with several runs (otherwise day-to-day variance is pooled into the run
+# variance and a session-level effect is tested against too many df; common practice).
+DEFAULT_SESSIONS = "auto"
 DEFAULT_ORIGIN_NAME = "origin"
 # Share of the analysis mask that the atlas must label (our own choice: below one half the
 # atlas is almost surely on another grid or in another space, and most clusters would be
@@ -64,6 +71,8 @@ SIDED_CHOICES = ("two", "positive", "negative")
 CONNECTIVITY_CHOICES = (6, 18, 26)
 FDR_CHOICES = ("bh", "by")
 DF_CHOICES = ("between", "satterthwaite")
+RANDOM_SLOPES_WORDS = ("auto", "none")
+SESSIONS_CHOICES = ("auto", "model", "none")
 
 
 @dataclass(frozen=True)
@@ -143,6 +152,10 @@ class ModelSettings:
     run_variance: str = DEFAULT_RUN_VARIANCE
     df: str = DEFAULT_DF_METHOD
     max_iter: int = DEFAULT_MAX_ITER
+    # "auto", "none" or the formula variables that get a random slope per animal
+    random_slopes: str | tuple[str, ...] = DEFAULT_RANDOM_SLOPES
+    sessions: str = DEFAULT_SESSIONS
+    variance_groups: str | None = None  # animal-level factor: one τ² per level
 
 
 @dataclass(frozen=True)
@@ -220,7 +233,15 @@ _SCHEMA: dict[str, tuple[str, ...]] = {
         "edge_distance_voxels",
         "outlier_z",
     ),
-    "model": ("formula", "run_variance", "df", "max_iter"),
+    "model": (
+        "formula",
+        "run_variance",
+        "df",
+        "max_iter",
+        "random_slopes",
+        "sessions",
+        "variance_groups",
+    ),
     "contrast": ("name", "weights"),
     "inference": (
         "permutations",
@@ -403,7 +424,13 @@ def load_settings(path: str | Path) -> Settings:
     formula = r.get("model", m, "formula", str, DEFAULT_FORMULA).strip()
     if not formula:
         r.problem("[model] formula", 'is empty; use "1" for the group mean')
-    model = ModelSettings(formula=formula, run_variance=run_variance, df=df, max_iter=max_iter)
+    model = ModelSettings(
+        formula=formula,
+        run_variance=run_variance,
+        df=df,
+        max_iter=max_iter,
+        **_read_random_effects(r, m),
+    )
 
     contrasts: list[ContrastSpec] = []
     raw_contrasts = raw.get("contrast", [])
@@ -568,6 +595,46 @@ def load_settings(path: str | Path) -> Settings:
         compute=compute,
         user_contrasts=user_contrasts,
     )
+
+
+def _read_random_effects(r: _Reader, m: dict[str, Any]) -> dict[str, Any]:
+    """``random_slopes``, ``sessions`` and ``variance_groups`` of [model]."""
+    slopes = r.get("model", m, "random_slopes", (str, list), DEFAULT_RANDOM_SLOPES)
+    if isinstance(slopes, str) and slopes not in RANDOM_SLOPES_WORDS:
+        r.problem(
+            "[model] random_slopes",
+            f'must be "auto", "none" or a list of formula variables, got {slopes!r}'
+            + _suggest(slopes, RANDOM_SLOPES_WORDS),
+        )
+        slopes = DEFAULT_RANDOM_SLOPES
+    elif isinstance(slopes, list):
+        if not slopes or not all(isinstance(v, str) and v.strip() for v in slopes):
+            r.problem(
+                "[model] random_slopes",
+                f'a list must name formula variables (e.g. ["drug"]), got {slopes!r}',
+            )
+            slopes = DEFAULT_RANDOM_SLOPES
+        else:
+            slopes = tuple(dict.fromkeys(v.strip() for v in slopes))
+    sessions = r.get("model", m, "sessions", str, DEFAULT_SESSIONS)
+    if sessions not in SESSIONS_CHOICES:
+        r.problem(
+            "[model] sessions",
+            f"must be one of {', '.join(SESSIONS_CHOICES)}, got {sessions!r}"
+            + _suggest(sessions, SESSIONS_CHOICES),
+        )
+        sessions = DEFAULT_SESSIONS
+    groups = r.get("model", m, "variance_groups", str, None)
+    if groups is not None and not groups.strip():
+        r.problem(
+            "[model] variance_groups", "is empty; name an animal-level column or leave it out"
+        )
+        groups = None
+    return {
+        "random_slopes": slopes,
+        "sessions": sessions,
+        "variance_groups": groups.strip() if groups else None,
+    }
 
 
 def _read_questions(

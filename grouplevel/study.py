@@ -25,10 +25,12 @@ from grouplevel.atlas import Atlas, read_atlas
 from grouplevel.config import Settings, load_settings, with_overrides
 from grouplevel.design import (
     Design,
+    RandomEffects,
     build_design,
     contrast_vector,
     formula_variables,
     missing_variables,
+    model_problems,
 )
 from grouplevel.errors import UserError
 from grouplevel.images import Grid, grid_mismatch, read_header_grid, read_volume
@@ -55,6 +57,7 @@ class FirstLevel:
     coverage_runs: np.ndarray  # (3-D int) runs with data per voxel
     coverage_animals: np.ndarray  # (3-D int) animals with data per voxel
     variance_kind: str  # "variance", "se" or "none"
+    random: RandomEffects = field(default_factory=RandomEffects)  # slopes, sessions, groups
 
     def output_name(self, contrast_name: str, default_contrast: bool) -> str:
         """Folder name of a group contrast's maps (see DESIGN.md, output contract)."""
@@ -332,18 +335,6 @@ def inspect_study(settings: Settings) -> Study:
         except UserError as exc:
             problems.append(f"{label}: {exc}")
             continue
-        if settings.inference.permutations > 0 and not design.animal_level.all():
-            run_level = [
-                c for c, b in zip(design.columns, design.animal_level, strict=True) if not b
-            ]
-            problems.append(
-                f"{label}: [inference] permutations = {settings.inference.permutations} with "
-                f"run-level design columns ({', '.join(run_level)}): permutation inference "
-                "exchanges whole animals, and runs of one animal are not exchangeable with "
-                "each other (their first-level variances differ), so a run-level covariate "
-                "cannot be permuted without breaking the nesting of runs in animals. Set "
-                "permutations = 0 (parametric maps only) or use animal-level covariates"
-            )
         contrasts = []
         for spec in settings.contrasts:
             try:
@@ -353,6 +344,16 @@ def inspect_study(settings: Settings) -> Study:
             except UserError as exc:
                 problems.append(str(exc))
                 problems.extend(exc.problems)
+        random = RandomEffects()
+        try:
+            random, model_notes, model_warnings = model_problems(
+                design, inc, contrasts, settings.model, settings.inference.permutations
+            )
+        except UserError as exc:
+            problems.append(f"{label}: {exc}")
+        else:
+            problems.extend(f"{label}: {p}" for p in model_notes)
+            warnings.extend(f"{label}: {w}" for w in model_warnings)
         # -- data pass over this contrast's maps --
         cov_runs = np.zeros(grid.shape, dtype=np.int32)
         animal_seen = np.zeros((design.n_animals, *grid.shape), dtype=bool)
@@ -429,6 +430,7 @@ def inspect_study(settings: Settings) -> Study:
                 coverage_runs=cov_runs,
                 coverage_animals=cov_animals,
                 variance_kind=variance_kind,
+                random=random,
             )
         )
 

@@ -11,7 +11,15 @@ the units of every permutation are whole animals.
 * Nuisance covariates are handled by Freedman–Lane: the data are reduced to the
   residuals of the nuisance-only model, those are flipped or permuted, and the nuisance
   fit is added back (Winkler et al. 2014).
-* Contrasts that involve run-level covariates are refused (see :func:`animal_level_data`).
+* A contrast of a **within-animal effect with a random slope per animal** (drug vs
+  vehicle within every animal) is tested on each animal's own estimate of that effect
+  (:func:`animal_effect_data`): every animal's runs are reduced to its GLS estimate of
+  the effect and its precision at the fitted variance components, and whole animals'
+  own effects are sign-flipped (or permuted between positions of the slope's
+  animal-level design, for an effect that differs between groups) — multi-level
+  exchangeability with animals as the exchangeable blocks (Winkler et al. 2015).
+* Contrasts that weight a within-animal column without its random slope are refused
+  (see :func:`animal_level_data`).
 
 The mixed-model statistic is recomputed for every permutation, cheaply. For a design
 whose columns are constant within animals, the REML likelihood separates into a
@@ -36,6 +44,9 @@ levels. J Bus Econ Stat 1:292-298.
 
 Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014). Permutation inference
 for the general linear model. NeuroImage 92:381-397.
+
+Winkler AM, Webster MA, Vidaurre D, Nichols TE, Smith SM (2015). Multi-level block
+permutation. NeuroImage 123:253-268.
 
 Smith SM, Nichols TE (2009). Threshold-free cluster enhancement. NeuroImage 44:83-98.
 """
@@ -178,6 +189,154 @@ def animal_level_data(
         design=Xa,
         var_animal=var_animal,
     )
+
+
+# Voxels per chunk of the per-animal dense solves in :func:`animal_effect_data` (each
+# chunk holds a few (chunk, runs of one animal, runs of one animal) arrays).
+_EFFECT_CHUNK_VOXELS = 8192
+# A per-animal coefficient counts as estimable when ``(M⁺M)`` reproduces its unit vector
+# to this tolerance (common practice for rank decisions in double precision).
+_ESTIMABLE_TOL = 1e-8
+
+
+def animal_effect_data(
+    y: np.ndarray,
+    variance: np.ndarray | None,
+    own: np.ndarray,
+    target: int,
+    animal: np.ndarray,
+    design: np.ndarray,
+    var_run: np.ndarray,
+    var_effect: np.ndarray,
+    *,
+    session: np.ndarray | None = None,
+    var_session: np.ndarray | None = None,
+    offset: np.ndarray | None = None,
+) -> AnimalLevelData:
+    """Reduce each animal's runs to its own GLS estimate of one effect and its precision.
+
+    For animal a with runs r, the runs are regressed on the animal's own design
+    ``[1, own[r]]`` (intercept and its within-animal effects) by generalised least
+    squares with the within-animal covariance ``diag(σ̂² + s_k²) + ω̂² S Sᵀ`` (``S`` the
+    runs × sessions indicator; ω̂² = 0 without sessions). Coefficient ``target`` of that
+    fit (0: the animal's intercept; 1 + i: its own i-th within-animal effect) and
+    ``1 / Var`` of it are the animal-level data. Across animals that estimate follows
+    ``design · γ + η_a + ε_a`` with ``η_a ~ N(0, var_effect)`` (the random intercept or
+    slope) and ``ε_a`` of the computed precision, which is the model the permutation
+    refit re-estimates.
+
+    Parameters
+    ----------
+    y, variance
+        (n_runs, V) effects and first-level variances (NaN: no data).
+    own
+        (n_runs, q) the within-animal columns each animal gets its own coefficient for
+        (the random-slope columns); q may be 0.
+    target
+        Which coefficient of ``[1, own]`` is reduced.
+    animal
+        (n_runs,) animal codes 0..m-1.
+    design
+        (m, r) the animal-level design of the target (its rows are one per animal).
+    var_run, var_effect
+        (V,) fitted σ̂² and the target's between-animal variance (start of each refit).
+    session, var_session
+        (n_runs,) session codes and (V,) ω̂², or None.
+    offset
+        (n_runs, V) fixed-effect fit of within-animal columns without a random slope
+        (nuisance), subtracted from ``y`` first; None for none.
+
+    Returns
+    -------
+    AnimalLevelData
+        Animals without information on the target at a voxel (fewer runs than
+        coefficients, or the target column constant over their runs there) get
+        precision 0.
+
+    References
+    ----------
+    Winkler AM, Webster MA, Vidaurre D, Nichols TE, Smith SM (2015). Multi-level block
+    permutation. NeuroImage 123:253-268.
+    """
+    own = np.asarray(own, dtype=float).reshape(len(animal), -1)
+    m = int(animal.max()) + 1
+    n_vox = y.shape[1]
+    mean = np.zeros((n_vox, m))
+    prec = np.zeros((n_vox, m))
+    var_run = np.asarray(var_run, dtype=float)
+    omega = None if session is None else np.asarray(var_session, dtype=float)
+    for a in range(m):  # a loop over animals; every voxel at once inside
+        rows = np.flatnonzero(animal == a)
+        Xa = np.column_stack([np.ones(rows.size), own[rows]])
+        same = None
+        if session is not None:
+            same = (session[rows][:, None] == session[rows][None, :]).astype(float)
+        for lo in range(0, n_vox, _EFFECT_CHUNK_VOXELS):
+            sl = slice(lo, min(n_vox, lo + _EFFECT_CHUNK_VOXELS))
+            b, v = _own_fit(
+                y,
+                variance,
+                offset,
+                rows,
+                sl,
+                Xa,
+                target,
+                var_run[sl],
+                None if omega is None else omega[sl],
+                same,
+            )
+            mean[sl, a] = b
+            prec[sl, a] = v
+    return AnimalLevelData(
+        mean=np.ascontiguousarray(mean),
+        precision=np.ascontiguousarray(prec),
+        design=np.asarray(design, dtype=float).reshape(m, -1),
+        var_animal=np.asarray(var_effect, dtype=float).copy(),
+    )
+
+
+def _own_fit(y, variance, offset, rows, sl, Xa, target, var_run, omega, same):
+    """GLS estimate and precision of one coefficient for one animal, chunk of voxels."""
+    yc = np.asarray(y[rows, sl], dtype=float).T  # (v, n_a)
+    if offset is not None:
+        yc = yc - np.asarray(offset[rows, sl], dtype=float).T
+    present = np.isfinite(yc)
+    s2 = np.zeros_like(yc)
+    if variance is not None:
+        vc = np.asarray(variance[rows, sl], dtype=float).T
+        present &= np.isfinite(vc)
+        s2 = np.where(present, vc, 0.0)
+    d = np.maximum(var_run[:, None] + s2, _VARIANCE_FLOOR)
+    n_a = rows.size
+    cov = np.zeros((yc.shape[0], n_a, n_a))
+    if same is not None:
+        cov += omega[:, None, None] * same[None]
+    cov[:, np.arange(n_a), np.arange(n_a)] += d
+    # runs without data: uncoupled, unit variance, zero rows of design and data
+    off = ~present
+    both = off[:, :, None] | off[:, None, :]
+    cov = np.where(both, 0.0, cov)
+    cov[:, np.arange(n_a), np.arange(n_a)] = np.where(
+        off, 1.0, cov[:, np.arange(n_a), np.arange(n_a)]
+    )
+    Xv = np.where(present[:, :, None], Xa[None], 0.0)  # (v, n_a, k)
+    yv = np.where(present, yc, 0.0)
+    L = np.linalg.cholesky(cov)
+    Xw = np.linalg.solve(L, Xv)
+    yw = np.linalg.solve(L, yv[..., None])[..., 0]
+    M = np.einsum("vnk,vnl->vkl", Xw, Xw)
+    Minv = np.linalg.pinv(M, hermitian=True)
+    coef = np.einsum("vkl,vnl,vn->vk", Minv, Xw, yw)
+    k = Xa.shape[1]
+    unit = np.zeros(k)
+    unit[target] = 1.0
+    recon = np.einsum("vkl,vlj->vkj", Minv, M)[:, target, :]
+    estimable = np.all(np.abs(recon - unit) < _ESTIMABLE_TOL * max(1.0, k), axis=1)
+    var_t = Minv[:, target, target]
+    ok = estimable & (var_t > 0) & np.isfinite(var_t)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        precision = np.where(ok, 1.0 / var_t, 0.0)
+    return np.where(ok, coef[:, target], 0.0), precision
 
 
 def partition_design(design: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -226,6 +226,126 @@ def between_animal_df(X: np.ndarray, animal: np.ndarray, present: np.ndarray, c)
     return df_pattern[inverse]
 
 
+def slope_df(
+    X: np.ndarray,
+    animal: np.ndarray,
+    present: np.ndarray,
+    slope_column: int,
+    slope_design: np.ndarray,
+) -> np.ndarray:
+    """Between-animal degrees of freedom of a within-animal effect with a random slope.
+
+    With a random slope per animal, a within-animal effect is judged against the spread
+    of the animals' own effects, an animal-level quantity: ``animals informative on the
+    slope − rank(the slope's animal-level design on those animals)``. An animal is
+    informative at a voxel when the slope column takes at least two values over its
+    runs with data there. The slope's animal-level design has the intercept (the mean
+    effect) and one column per animal-level moderator that the formula crosses with the
+    slope (e.g. a group for a drug-by-group interaction). Ranks are computed once per
+    distinct presence pattern.
+
+    Parameters
+    ----------
+    X : ndarray, shape (n_runs, p)
+    animal : ndarray of int, shape (n_runs,)
+    present : ndarray of bool, shape (n_runs, V)
+    slope_column : int
+        The column of ``X`` that carries the random slope.
+    slope_design : ndarray, shape (m, r)
+        One row per animal.
+
+    Returns
+    -------
+    ndarray, shape (V,)
+
+    References
+    ----------
+    Pinheiro, J. C., & Bates, D. M. (2000). Mixed-Effects Models in S and S-PLUS.
+    Springer, §2.4.2 (containment rule; section from memory).
+    """
+    X = np.asarray(X, dtype=np.float64)
+    animal = np.asarray(animal, dtype=np.int64)
+    present = np.asarray(present, dtype=bool)
+    if present.ndim == 1:
+        present = present[:, None]
+    G = np.asarray(slope_design, dtype=np.float64).reshape(int(animal.max()) + 1, -1)
+    z = X[:, slope_column]
+    patterns, inverse = presence_patterns(present)
+    df_pattern = np.zeros(len(patterns))
+    for i, pat in enumerate(patterns):  # loop over distinct patterns, not voxels
+        informative = [a for a in np.unique(animal[pat]) if np.ptp(z[pat & (animal == a)]) > 0]
+        rank = np.linalg.matrix_rank(G[informative]) if informative else 0
+        df_pattern[i] = len(informative) - rank
+    return df_pattern[inverse]
+
+
+def welch_df(
+    design: np.ndarray,
+    precision: np.ndarray,
+    var_group: np.ndarray,
+    group: np.ndarray,
+    c,
+) -> np.ndarray:
+    """Welch–Satterthwaite degrees of freedom of an animal-level contrast with one
+    between-animal variance per group of animals.
+
+    With animal-level data (one estimate per animal, sampling precision ``p_a``) and
+    total variances ``v_a = τ²_g(a) + 1/p_a``, the GLS variance of ``cᵀγ̂`` splits into
+    one share per group, ``φ_g = cᵀ Φ (Σ_{a∈g} x_a x_aᵀ / v_a) Φ c`` with
+    ``Φ = (Σ_a x_a x_aᵀ / v_a)⁻¹``, and each share is estimated from its group alone with
+    ``n_g − rank(design of group g)`` degrees of freedom. Then
+    ``df = (Σ_g φ_g)² / Σ_g φ_g² / df_g`` — for two group means Welch's (1947) df.
+
+    Parameters
+    ----------
+    design : ndarray, shape (m, r)
+        Animal-level design, one row per animal.
+    precision : ndarray, shape (V, m)
+        Sampling precision of each animal's estimate (0: no data at the voxel).
+    var_group : ndarray, shape (V, G)
+        Between-animal variance of each group.
+    group : ndarray of int, shape (m,)
+    c : array_like, shape (r,)
+
+    Returns
+    -------
+    ndarray, shape (V,)
+        NaN where the design has no rank on the animals with data.
+
+    References
+    ----------
+    Satterthwaite, F. E. (1946). Biometrics Bulletin 2:110–114.
+    Welch, B. L. (1947). The generalization of 'Student's' problem when several different
+    population variances are involved. Biometrika 34:28–35.
+    """
+    design = np.asarray(design, dtype=np.float64)
+    c = _as_contrast(c, design.shape[1])
+    precision = np.asarray(precision, dtype=np.float64)
+    group = np.asarray(group, dtype=np.int64)
+    tau2 = np.asarray(var_group, dtype=np.float64)[:, group]  # (V, m)
+    has = precision > 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.where(has, 1.0 / (tau2 + 1.0 / np.where(has, precision, 1.0)), 0.0)
+    info = np.einsum("va,ar,as->vrs", w, design, design)
+    ridge = 1e-12 * np.maximum(np.einsum("vrr->v", info), 1e-300)
+    phi = np.linalg.solve(
+        info + ridge[:, None, None] * np.eye(design.shape[1]), np.tile(c, (len(w), 1))[..., None]
+    )[..., 0]
+    num = np.zeros(len(w))
+    den = np.zeros(len(w))
+    for g in range(int(group.max()) + 1):  # a loop over groups of animals
+        in_g = group == g
+        share = np.einsum("va,ar,as,vr,vs->v", w[:, in_g], design[in_g], design[in_g], phi, phi)
+        n_g = has[:, in_g].sum(axis=1)
+        rank_g = np.linalg.matrix_rank(design[in_g])
+        df_g = n_g - rank_g
+        num += share
+        with np.errstate(divide="ignore", invalid="ignore"):
+            den += np.where(df_g > 0, share**2 / df_g, np.where(share > 0, np.inf, 0.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den > 0, num**2 / den, np.nan)
+
+
 def satterthwaite_df(fit: MixedFit, c) -> np.ndarray:
     """Satterthwaite degrees of freedom of a contrast at every voxel.
 
