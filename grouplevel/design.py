@@ -620,12 +620,6 @@ def model_problems(
     )
     problems: list[str] = []
     warnings: list[str] = []
-    if random.extended and model.df == "satterthwaite":
-        problems.append(
-            '[model] df = "satterthwaite" is available for the random-intercept model only; '
-            "this design has " + _describe(design, random) + '. Use df = "between" (the '
-            "between-animal rule for every level)"
-        )
     if model.sessions == SESSIONS_NONE:
         auto = _sessions_on(design, SESSIONS_AUTO)
         if auto:
