@@ -95,6 +95,13 @@ FISHER_RIDGE = 1e-8
 # A step whose predicted increase of ℓ is below this fraction of |ℓ| cannot be resolved
 # in double precision; failing to increase ℓ then means the optimum is reached.
 FLAT_DECREMENT = 1e-11
+# Convergence also when the predicted increase of ℓ (gᵀδ) is below this multiple of
+# tol · (1 + |ℓ|): the estimate cannot be improved by more than that (our own choice).
+GAIN_FRACTION = 1e-2
+# A T_g whose smallest eigenvalue is below this fraction of its largest, or a scalar
+# variance below this fraction of the residual variance, is near the boundary: the
+# projected θ-space step is tried there (our own choice).
+NEAR_BOUNDARY = 1e-2
 # A variance below this fraction of the voxel's residual variance counts as estimated
 # on the boundary 0 (its component, and the covariances involving it, are then left out
 # of the Satterthwaite degrees of freedom); our own choice, well below any variance
@@ -344,6 +351,8 @@ class _Structure:
             quad.append(("run",))
         self.names = tuple(names)
         self.G = np.stack(mats)  # (J, m, w, w)
+        self.G_flat = self.G.reshape(len(mats), -1)
+        self.X_flat = self.X.reshape(m * w, p)
         self.J = len(names)
         self.r = r
         self.has_session = session is not None
@@ -365,6 +374,13 @@ class _Structure:
             else:
                 C[j, j, j] = 1.0
         self.C = C
+        # index of T_g[a, b] in θ, for every group (both triangles)
+        self.t_index = np.zeros((n_groups, r, r), dtype=np.int64)
+        for key, j in index.items():
+            if key[0] == "T":
+                _, g, a_, b_ = key
+                self.t_index[g, a_, b_] = self.t_index[g, b_, a_] = j
+        self.scalar_index = np.array([j for j, k in enumerate(quad) if k[0] != "T"], dtype=int)
         self.quad = tuple(quad)
         self.variance_index = np.array(
             [j for j, k in enumerate(quad) if k[0] != "T" or k[2] == k[3]], dtype=np.int64
@@ -393,22 +409,22 @@ def _cholesky_inverse(V):
     L = np.zeros_like(V)
     ok = np.ones(V.shape[:-2], dtype=bool)
     for j in range(w):
-        d = V[..., j, j] - np.einsum("...k,...k->...", L[..., j, :j], L[..., j, :j])
+        row = L[..., j, :j]
+        d = V[..., j, j] - np.sum(row * row, axis=-1)
         ok &= d > 0
         piv = np.sqrt(np.where(d > 0, d, 1.0))
         L[..., j, j] = piv
         if j + 1 < w:
-            below = V[..., j + 1 :, j] - np.einsum(
-                "...ik,...k->...i", L[..., j + 1 :, :j], L[..., j, :j]
-            )
+            below = V[..., j + 1 :, j] - (L[..., j + 1 :, :j] @ row[..., None])[..., 0]
             L[..., j + 1 :, j] = below / piv[..., None]
-    logdet = 2.0 * np.sum(np.log(np.diagonal(L, axis1=-2, axis2=-1)), axis=-1)
+    diag = np.diagonal(L, axis1=-2, axis2=-1)
+    logdet = 2.0 * np.sum(np.log(diag), axis=-1)
     Li = np.zeros_like(V)
     for i in range(w):
-        Li[..., i, i] = 1.0 / L[..., i, i]
+        Li[..., i, i] = 1.0 / diag[..., i]
         if i:
-            s = np.einsum("...k,...kj->...j", L[..., i, :i], Li[..., :i, :i])
-            Li[..., i, :i] = -s / L[..., i, i, None]
+            s = (L[..., i, None, :i] @ Li[..., :i, :i])[..., 0, :]
+            Li[..., i, :i] = -s / diag[..., i, None]
     inv = np.swapaxes(Li, -1, -2) @ Li
     return inv, logdet, ok
 
@@ -434,60 +450,68 @@ def _solve_small(A, b):
 
 def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
     """ℓ and the GLS quantities at φ; arrays (c, m, w), missing: pres 0, y 0, s2 0."""
+    c, m, w = y.shape
+    p = st.p
     theta = st.theta(phi)
     pp = pres[..., :, None] * pres[..., None, :]
-    V = np.einsum("cj,jmab->cmab", theta, st.G) * pp
-    diag = np.diagonal(V, axis1=-2, axis2=-1)
-    idx = np.arange(st.width)
-    V[..., idx, idx] = diag + s2 * pres + (1.0 - pres)
+    V = (theta @ st.G_flat).reshape(c, m, w, w) * pp
+    idx = np.arange(w)
+    V[..., idx, idx] += s2 * pres + (1.0 - pres)
     A, logdet_v, ok = _cholesky_inverse(V)
     ok = ok.all(axis=1)
-    A = A * pp
-    E = A @ st.X  # (c, m, w, p)
-    M = np.einsum("map,cmaq->cpq", st.X, E)
+    A *= pp
+    E = A @ st.X  # (c, m, w, p): Ã X per animal
+    Ef = E.reshape(c, m * w, p)
+    M = st.X_flat.T @ Ef
     M = 0.5 * (M + np.swapaxes(M, 1, 2))
-    rhs = np.einsum("cmap,cma->cp", E, y)
+    rhs = (y.reshape(c, 1, m * w) @ Ef)[:, 0]
     sign, logdet_m = np.linalg.slogdet(M)
     ok &= sign > 0
-    M_safe = np.where(ok[:, None, None], M, np.eye(st.p))
-    Minv = np.linalg.inv(M_safe)
-    beta = np.einsum("cpq,cq->cp", Minv, rhs)
-    r = (y - np.einsum("map,cp->cma", st.X, beta)) * pres
-    a = np.einsum("cmab,cmb->cma", A, r)
-    quad = np.einsum("cma,cma->c", r, a)
-    ll = -0.5 * (logdet_v.sum(axis=1) + logdet_m + quad + (n_obs - st.p) * _LOG_2PI)
+    Minv = np.linalg.inv(np.where(ok[:, None, None], M, np.eye(p)))
+    beta = (Minv @ rhs[..., None])[..., 0]
+    r = (y - (beta @ st.X_flat.T).reshape(c, m, w)) * pres
+    a = (A @ r[..., None])[..., 0]
+    quad = np.sum((r * a).reshape(c, -1), axis=1)
+    ll = -0.5 * (logdet_v.sum(axis=1) + logdet_m + quad + (n_obs - p) * _LOG_2PI)
     ll = np.where(ok & np.isfinite(ll), ll, -np.inf)
     return {"theta": theta, "A": A, "E": E, "Minv": Minv, "beta": beta, "a": a, "ll": ll}
 
 
 def _information(st: _Structure, ev):
-    """REML score g, expected information F and observed ∂²ℓ H in θ, and Q_j."""
+    """REML score g, expected information F and observed ∂²ℓ H in θ, and Q_j.
+
+    With P = V⁻¹ − V⁻¹X(XᵀV⁻¹X)⁻¹XᵀV⁻¹ and Py = Ã r (Harville 1977):
+    ∂ℓ/∂θ_j = −½ tr(P G_j) + ½ yᵀP G_j P y, F_ij = ½ tr(P G_i P G_j) and
+    ∂²ℓ/∂θ_i∂θ_j = F_ij − yᵀP G_i P G_j P y, each trace split into per-animal sums.
+    """
     A, E, Minv, a = ev["A"], ev["E"], ev["Minv"], ev["a"]
-    c = A.shape[0]
-    J, p = st.J, st.p
+    c, m, w, p = E.shape
+    J = st.J
     B = A[:, None] @ st.G[None]  # (c, J, m, w, w): Ã G_j
-    tr_ag = np.einsum("cjmaa->cj", B)
-    Bf = B.reshape(c, J, -1)
+    tr_ag = np.trace(B, axis1=-2, axis2=-1).sum(axis=-1)
     Bt = np.swapaxes(B, -1, -2).reshape(c, J, -1)
-    tr_bb = Bf @ np.swapaxes(Bt, 1, 2)  # tr(Ã G_i Ã G_j)
+    tr_bb = B.reshape(c, J, -1) @ np.swapaxes(Bt, 1, 2)  # tr(Ã G_i Ã G_j)
+    del B, Bt
     CG = st.G[None] @ E[:, None]  # (c, J, m, w, p): G_j Ã X
-    Q = np.einsum("cmap,cjmaq->cjpq", E, CG)
+    Ef = E.reshape(c, 1, m * w, p)
+    Q = np.swapaxes(Ef, -1, -2) @ CG.reshape(c, J, m * w, p)  # XᵀÃ G_j Ã X
     ACG = A[:, None] @ CG
     Cf = np.moveaxis(CG, 4, 2).reshape(c, J * p, -1)
     ACf = np.moveaxis(ACG, 4, 2).reshape(c, J * p, -1)
     R = (Cf @ np.swapaxes(ACf, 1, 2)).reshape(c, J, p, J, p)
-    tr_mr = np.einsum("cipjq,cqp->cij", R, Minv)
+    tr_mr = np.sum(R * np.swapaxes(Minv, 1, 2)[:, None, :, None, :], axis=(2, 4))
     MQ = Minv[:, None] @ Q
-    tr_mqmq = np.einsum("cipq,cjqp->cij", MQ, MQ)
+    tr_mqmq = MQ.reshape(c, J, -1) @ np.swapaxes(MQ, -1, -2).reshape(c, J, -1).transpose(0, 2, 1)
     F = 0.5 * (tr_bb - 2.0 * tr_mr + tr_mqmq)
     F = 0.5 * (F + np.swapaxes(F, 1, 2))
-    tr_mq = np.einsum("cjpp->cj", MQ)
-    Ga = np.einsum("jmab,cmb->cjma", st.G, a)
-    g = -0.5 * (tr_ag - tr_mq) + 0.5 * np.einsum("cma,cjma->cj", a, Ga)
-    AGa = np.einsum("cmab,cjmb->cjma", A, Ga)
-    W1 = np.einsum("cima,cjma->cij", Ga, AGa)
-    EGa = np.einsum("cmap,cjma->cjp", E, Ga)
-    W2 = np.einsum("cip,cpq,cjq->cij", EGa, Minv, EGa)
+    tr_mq = np.trace(MQ, axis1=-2, axis2=-1)
+    Ga = (st.G[None] @ a[:, None, :, :, None]).reshape(c, J, m * w)  # G_j P y
+    af = a.reshape(c, m * w, 1)
+    g = -0.5 * (tr_ag - tr_mq) + 0.5 * (Ga @ af)[..., 0]
+    AGa = (A[:, None] @ Ga.reshape(c, J, m, w, 1)).reshape(c, J, m * w)
+    W1 = Ga @ np.swapaxes(AGa, 1, 2)
+    EGa = Ga @ Ef[:, 0]  # (c, J, p)
+    W2 = EGa @ Minv @ np.swapaxes(EGa, 1, 2)
     H = F - (W1 - W2)
     H = 0.5 * (H + np.swapaxes(H, 1, 2))
     return g, F, H, Q
@@ -604,6 +628,50 @@ def _direction(st: _Structure, phi, g, F, H):
     return delta, np.einsum("ci,ci->c", g_phi, delta)
 
 
+def _project_to_phi(st: _Structure, theta):
+    """φ of the nearest admissible θ: every T_g projected on the positive semi-definite
+    cone (negative eigenvalues set to 0), scalar variances clipped at 0."""
+    phi = np.zeros_like(theta)
+    for g in range(st.n_groups):
+        T = theta[:, st.t_index[g]]
+        lam, vec = np.linalg.eigh(T)
+        T = (vec * np.maximum(lam, 0.0)[:, None, :]) @ np.swapaxes(vec, 1, 2)
+        L = np.zeros_like(T)
+        for j in range(st.r):  # Cholesky that allows zero pivots (rank-deficient T)
+            d = T[:, j, j] - np.sum(L[:, j, :j] ** 2, axis=1)
+            piv = np.sqrt(np.maximum(d, 0.0))
+            L[:, j, j] = piv
+            below = T[:, j + 1 :, j] - np.einsum("cik,ck->ci", L[:, j + 1 :, :j], L[:, j, :j])
+            safe = np.where(piv > 1e-150, piv, 1.0)
+            L[:, j + 1 :, j] = np.where((piv > 1e-150)[:, None], below / safe[:, None], 0.0)
+        for a_ in range(st.r):
+            for b_ in range(a_ + 1):
+                phi[:, st.t_index[g, a_, b_]] = L[:, a_, b_]
+    phi[:, st.scalar_index] = np.sqrt(np.maximum(theta[:, st.scalar_index], 0.0))
+    return phi
+
+
+def _theta_step(st: _Structure, theta, g, F, H):
+    """Newton (or Fisher-scoring) step in θ, projected: a candidate that reaches a
+    boundary optimum (rank-deficient T) in one move, where steps in φ would crawl."""
+    inv_h, _, ok_h = _cholesky_inverse(-H)
+    inv_f, _, _ = _cholesky_inverse(F)
+    step = np.where(ok_h[:, None, None], inv_h, inv_f)
+    target = theta + np.einsum("cij,cj->ci", step, g)
+    return _project_to_phi(st, np.where(np.isfinite(target), target, theta))
+
+
+def _near_boundary(st: _Structure, theta):
+    """Voxels where a T_g is nearly singular or a scalar variance nearly 0."""
+    near = np.zeros(theta.shape[0], dtype=bool)
+    for g in range(st.n_groups):
+        lam = np.linalg.eigvalsh(theta[:, st.t_index[g]])
+        near |= lam[:, 0] <= NEAR_BOUNDARY * np.maximum(lam[:, -1], 1e-300)
+    if st.scalar_index.size:
+        near |= np.any(theta[:, st.scalar_index] <= NEAR_BOUNDARY, axis=1)
+    return near
+
+
 def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol):
     """Maximise the REML log-likelihood over φ for a chunk of (scaled) voxels."""
     c = phi.shape[0]
@@ -621,6 +689,9 @@ def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol):
         theta = cur["theta"]
         step_theta = st.theta(phi[act] + delta) - theta
         small = np.all(np.abs(step_theta) <= tol * (1.0 + np.abs(theta)), axis=1)
+        # or ℓ within a negligible amount of the maximum of its local quadratic model
+        # (flat ridges, e.g. a rank-one T whose factor can still rotate)
+        small |= gain <= GAIN_FRACTION * tol * (1.0 + np.abs(cur["ll"]))
         # a tiny last step is the most accurate: take it and stop
         done = act[small]
         phi[done] += delta[small]
@@ -631,6 +702,19 @@ def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol):
         gain_pend = gain[~small]
         alpha = 1.0
         n_iter[act] += 1
+        # near a boundary, first try the projected θ-space step; keep it if it increases ℓ
+        near = _near_boundary(st, theta[~small])
+        if near.any():
+            sel = np.nonzero(~small)[0][near]
+            vox = act[sel]
+            trial = _theta_step(st, theta[sel], g[sel], F[sel], H[sel])
+            ev_t = _evaluate(st, trial, y[vox], s2[vox], pres[vox], n_obs[vox])
+            ll0 = ev["ll"][vox]
+            up = ev_t["ll"] > ll0 + FLAT_DECREMENT * (1.0 + np.abs(ll0))
+            phi[vox[up]] = trial[up]
+            _put(ev, vox[up], _take(ev_t, up))
+            keep = ~np.isin(pending, vox[up])
+            pending, d_pend, gain_pend = pending[keep], d_pend[keep], gain_pend[keep]
         for _half in range(MAX_STEP_HALVINGS + 1):
             if pending.size == 0:
                 break
