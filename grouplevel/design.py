@@ -437,26 +437,42 @@ def random_effects(
         slope_columns=tuple(slope_columns),
         slope_variables=tuple(variables),
         terms=tuple(terms),
-        sessions=_sessions_on(design, sessions),
+        sessions=_sessions_on(design, sessions, slope_columns),
         **_variance_groups(design, runs, variance_groups),
     )
 
 
-def _sessions_on(design: Design, sessions: str) -> bool:
+def _sessions_on(design: Design, sessions: str, slope_columns: Sequence[int] = ()) -> bool:
+    """Whether a session variance level is fitted (see :func:`random_effects`).
+
+    The session variance is identified apart from the animal's own effects only by
+    *replicate* sessions: two sessions of one animal with the same values of every
+    session-level column that carries a random slope (with one drug and one vehicle
+    session per animal and a random drug slope, day-to-day variance and the slope
+    variance cannot be told apart, and the slope absorbs it). And apart from the run
+    variance only when some session has two or more runs.
+    """
     if sessions == SESSIONS_NONE:
         return False
-    per_animal = np.bincount(
-        design.animal[np.unique(design.session, return_index=True)[1]],
-        minlength=design.n_animals,
-    )
+    key_columns = [j for j in slope_columns if design.level[j] == "session"]
+    first = np.unique(design.session, return_index=True)[1]
+    keys = pd.DataFrame(design.matrix[first][:, key_columns].round(12))
+    keys["animal"] = design.animal[first]
+    replicate = bool(keys.duplicated().any())
     runs_per_session = np.bincount(design.session)
-    repeated = bool(per_animal.max() >= 2 and runs_per_session.max() >= 2)
+    repeated = replicate and runs_per_session.max() >= 2
     if sessions == SESSIONS_MODEL and not repeated:
+        need = (
+            " with the same value of " + ", ".join(design.columns[j] for j in key_columns)
+            if key_columns
+            else ""
+        )
         raise UserError(
-            '[model] sessions = "model" needs an animal with two or more sessions and a '
-            "session with two or more runs (the runs table's 'session' column); "
-            f"found at most {per_animal.max()} session(s) per animal and "
-            f'{runs_per_session.max()} run(s) per session. Use "auto" or "none"'
+            '[model] sessions = "model" needs an animal with two or more sessions'
+            f"{need} (the runs table's 'session' column) and a session with two or more "
+            "runs; otherwise the session variance cannot be told apart from the animal's "
+            f"own effects or the run variance (found at most {runs_per_session.max()} "
+            'run(s) per session). Use "auto" or "none"'
         )
     return repeated
 
@@ -621,7 +637,7 @@ def model_problems(
     problems: list[str] = []
     warnings: list[str] = []
     if model.sessions == SESSIONS_NONE:
-        auto = _sessions_on(design, SESSIONS_AUTO)
+        auto = _sessions_on(design, SESSIONS_AUTO, random.slope_columns)
         if auto:
             warnings.append(
                 '[model] sessions = "none": animals have repeated sessions, whose day-to-day '
