@@ -150,6 +150,13 @@ class MixedModelFit:
         on the boundary (zero rows and columns for the others).
     dcov_beta_components : ndarray, shape (V, J, p, p)
         Derivative of ``cov_beta`` with respect to each component.
+    group_names : tuple of str
+        The animal groups (one unnamed group when ``animal_group`` was not given).
+    info_by_group : ndarray, shape (V, G, p, p)
+        ``Σ_{a in group} X_aᵀV̂_a⁻¹X_a``, each group's share of ``XᵀV̂⁻¹X`` (used by
+        :func:`group_welch_df`).
+    animals_by_group : ndarray of int, shape (V, G)
+        Animals with data in each group.
 
     Notes
     -----
@@ -174,6 +181,9 @@ class MixedModelFit:
     component_names: tuple[str, ...] = ()
     cov_components: np.ndarray = field(default=None, repr=False)
     dcov_beta_components: np.ndarray = field(default=None, repr=False)
+    group_names: tuple[str, ...] = ()
+    info_by_group: np.ndarray = field(default=None, repr=False)
+    animals_by_group: np.ndarray = field(default=None, repr=False)
 
     @property
     def cov_theta(self) -> np.ndarray:
@@ -319,6 +329,7 @@ class _Structure:
         n_groups = int(groups.max()) + 1
         self.n_groups = n_groups
         self.groups = groups
+        self.group_onehot = (groups[:, None] == np.arange(n_groups)[None, :]).astype(float)
         labels = ("intercept",) + tuple(slope_names)
         for g in range(n_groups):
             in_g = (groups == g).astype(float)[:, None, None]
@@ -764,6 +775,8 @@ def _finish(st: _Structure, phi, y, s2, pres, n_obs, scale2):
     cov_theta = np.where(keep, cov_theta, 0.0) * (scale2**2)[:, None, None]
     Minv = ev["Minv"]
     dcov = Minv[:, None] @ Q @ Minv[:, None]
+    per_animal = np.swapaxes(st.X, 1, 2)[None] @ ev["E"]  # (c, m, p, p)
+    by_group = np.einsum("cmpq,mg->cgpq", per_animal, st.group_onehot) / scale2[:, None, None, None]
     scale = np.sqrt(scale2)
     return {
         "beta": ev["beta"] * scale[:, None],
@@ -772,6 +785,7 @@ def _finish(st: _Structure, phi, y, s2, pres, n_obs, scale2):
         "loglik": ev["ll"] - (n_obs - st.p) * np.log(scale),
         "cov_components": cov_theta,
         "dcov": dcov,
+        "by_group": by_group,
     }
 
 
@@ -922,9 +936,10 @@ def fit_mixed(
     if variance is not None:
         present &= np.isfinite(variance)
     runs_v = present.sum(axis=0)
-    animals_v = np.zeros(n_vox, dtype=np.int64)
+    animals_g = np.zeros((n_vox, int(groups.max()) + 1), dtype=np.int64)
     for a in range(m):  # loop over animals, not voxels
-        animals_v += present[animal == a].any(axis=0)
+        animals_g[:, groups[a]] += present[animal == a].any(axis=0)
+    animals_v = animals_g.sum(axis=1)
     p = X.shape[1]
     out = {
         "beta": np.full((n_vox, p), np.nan),
@@ -933,6 +948,7 @@ def fit_mixed(
         "loglik": np.full(n_vox, np.nan),
         "cov_components": np.full((n_vox, st.J, st.J), np.nan),
         "dcov": np.full((n_vox, st.J, p, p), np.nan),
+        "by_group": np.full((n_vox, st.n_groups, p, p), np.nan),
     }
     converged = np.zeros(n_vox, dtype=bool)
     n_iter = np.zeros(n_vox, dtype=np.int64)
@@ -973,6 +989,9 @@ def fit_mixed(
         component_names=st.names,
         cov_components=out["cov_components"],
         dcov_beta_components=out["dcov"],
+        group_names=group_names or ("all",),
+        info_by_group=out["by_group"],
+        animals_by_group=animals_g,
     )
 
 
@@ -1078,3 +1097,65 @@ def mixed_df(X, animal, present, c, slopes=None) -> np.ndarray:
         rank_a = np.linalg.matrix_rank(xa[pat]) if xa.shape[1] and pat.any() else 0
         out[i] = np.unique(animal[pat]).size - rank_a
     return out[inverse]
+
+
+def group_welch_df(fit: MixedModelFit, c, X, animal, animal_group=None) -> np.ndarray:
+    """Welch–Satterthwaite degrees of freedom with one variance share per animal group.
+
+    ``cᵀΦc`` splits exactly into one share per group, ``v_g = bᵀ K_g b`` with
+    ``b = Φc`` and ``K_g`` the group's part of ``XᵀV̂⁻¹X`` (``fit.info_by_group``);
+    each share is judged against its group's between-animal degrees of freedom
+    ``d_g = animals with data in g − rank(animal-level columns of X within g)``, and
+
+        df = (Σ_g v_g)² / Σ_g (v_g² / d_g).
+
+    With two groups of animals and a contrast between their means this is Welch's
+    degrees of freedom for the animal means; with one group it is the between-animal
+    rule.
+
+    Parameters
+    ----------
+    fit : MixedModelFit
+        A fit with ``animal_group`` (or without: one group).
+    c : array_like, shape (p,)
+    X : ndarray, shape (n_runs, p)
+        The design given to :func:`fit_mixed`.
+    animal : ndarray of int, shape (n_runs,)
+    animal_group : ndarray of int, shape (m,), optional
+        The groups given to :func:`fit_mixed`.
+
+    Returns
+    -------
+    ndarray, shape (V,)
+        NaN where not fitted, or where a group with a share has no degrees of freedom.
+
+    References
+    ----------
+    Welch, B. L. (1947). Biometrika 34:28–35.
+    Satterthwaite, F. E. (1946). Biometrics Bulletin 2:110–114.
+    """
+    from grouplevel.model.contrasts import animal_level_columns
+
+    X = np.asarray(X, dtype=np.float64)
+    X = X[:, None] if X.ndim == 1 else X
+    animal = np.asarray(animal, dtype=np.int64)
+    c = np.asarray(c, dtype=np.float64).ravel()
+    if c.shape != (fit.beta.shape[1],) or X.shape[1] != c.size or animal.shape != (len(X),):
+        raise ValueError("group_welch_df: c, X and animal do not match the fit.")
+    m = int(animal.max()) + 1
+    groups = np.zeros(m, dtype=np.int64) if animal_group is None else np.asarray(animal_group)
+    n_groups = fit.info_by_group.shape[1]
+    if groups.shape != (m,) or int(groups.max()) + 1 != n_groups:
+        raise ValueError("group_welch_df: animal_group does not match the fit's groups.")
+    level = animal_level_columns(X, animal)
+    rank = np.zeros(n_groups)
+    for g in range(n_groups):  # loop over groups, not voxels
+        rows = groups[animal] == g
+        rank[g] = np.linalg.matrix_rank(X[rows][:, level]) if level.any() else 0
+    d = fit.animals_by_group - rank[None, :]
+    b = np.einsum("vpq,q->vp", fit.cov_beta, c)
+    share = np.einsum("vp,vgpq,vq->vg", b, fit.info_by_group, b)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        terms = np.where(share > 0, share**2 / np.where(d > 0, d, np.nan), 0.0)
+        df = share.sum(axis=1) ** 2 / terms.sum(axis=1)
+    return df
