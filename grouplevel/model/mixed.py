@@ -163,8 +163,8 @@ class MixedModelFit:
     ``grouplevel.model.test_contrast`` reads ``beta`` and ``cov_beta`` only and works on
     this fit unchanged. ``grouplevel.model.satterthwaite_df`` is written for the
     two-component random-intercept fit; for this fit use
-    :func:`mixed_satterthwaite_df` (reading ``cov_theta`` raises a ValueError that
-    says so).
+    :func:`mixed_satterthwaite_df` (reading ``cov_theta`` or ``dcov_beta`` raises a
+    ValueError that says so).
     """
 
     beta: np.ndarray
@@ -187,12 +187,20 @@ class MixedModelFit:
 
     @property
     def cov_theta(self) -> np.ndarray:
-        raise ValueError(
-            "this fit has more variance components than the random-intercept model that "
-            "grouplevel.model.satterthwaite_df handles; use "
-            "grouplevel.model.mixed_satterthwaite_df for its Satterthwaite degrees of "
-            "freedom."
-        )
+        """Not available: see :func:`mixed_satterthwaite_df` (raises ValueError)."""
+        raise ValueError(_NOT_TWO_COMPONENTS)
+
+    @property
+    def dcov_beta(self) -> np.ndarray:
+        """Not available: see :func:`mixed_satterthwaite_df` (raises ValueError)."""
+        raise ValueError(_NOT_TWO_COMPONENTS)
+
+
+_NOT_TWO_COMPONENTS = (
+    "this fit is of the generalised mixed model, not the two-component random-intercept "
+    "model that grouplevel.model.satterthwaite_df handles; use "
+    "grouplevel.model.mixed_satterthwaite_df for its Satterthwaite degrees of freedom."
+)
 
 
 # --------------------------------------------------------------------------------------
