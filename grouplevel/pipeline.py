@@ -418,11 +418,12 @@ def _contrast_df(
                     slope_df(design.matrix, design.animal, present, random.slope_columns[i], G),
                 )
     if random.animal_group is not None:
-        # one between-animal variance per group: Welch-type (Satterthwaite) df from the
-        # REML information of the general model, never above the between-animal rule
-        from grouplevel.model.mixed import mixed_satterthwaite_df
+        # one between-animal variance per group: Welch–Satterthwaite df, each group's
+        # share of the contrast's variance judged against that group's own animals;
+        # never above the between-animal rule
+        from grouplevel.model.mixed import group_welch_df
 
-        welch = mixed_satterthwaite_df(fit, c)
+        welch = group_welch_df(fit, c, design.matrix, design.animal, random.animal_group)
         df = np.where(np.isfinite(welch), np.minimum(welch, df), df)
     return df
 

@@ -556,3 +556,55 @@ def test_equal_group_variability_does_not_warn(tmp_path):
     )
     _, _, warns = _fit(toml)
     assert not any("variance_groups" in w for w in warns), warns
+
+
+# --- the per-animal reduction behind within-animal permutations ----------------------
+
+
+def test_animal_effect_data_equals_dense_gls_per_animal():
+    # Each animal's own GLS estimate and precision, against the textbook GLS formulas
+    # with the dense covariance diag(sigma2 + s2) + omega2 * same-session (common
+    # practice: b = (X'V^-1 X)^-1 X'V^-1 y, Var b = (X'V^-1 X)^-1), with a run missing.
+    from grouplevel.inference.permutation import animal_effect_data, animal_level_data
+
+    rng = np.random.default_rng(21)
+    m, per, n_vox = 4, 6, 5
+    animal = np.repeat(np.arange(m), per)
+    session = animal * 2 + np.tile([0, 0, 0, 1, 1, 1], m)
+    drug = np.tile([0.0, 1.0, 1.0, 0.0, 1.0, 0.0], m)
+    y = rng.normal(size=(m * per, n_vox))
+    s2 = rng.uniform(0.1, 0.5, y.shape)
+    y[3, 2] = np.nan
+    var_run = rng.uniform(0.1, 0.3, n_vox)
+    omega = rng.uniform(0.05, 0.4, n_vox)
+    G = np.ones((m, 1))
+    data = animal_effect_data(
+        y,
+        s2,
+        drug[:, None],
+        1,
+        animal,
+        G,
+        var_run,
+        np.ones(n_vox),
+        session=session,
+        var_session=omega,
+    )
+    for a in range(m):
+        for v in range(n_vox):
+            rows = np.flatnonzero((animal == a) & np.isfinite(y[:, v]))
+            X = np.column_stack([np.ones(rows.size), drug[rows]])
+            same = session[rows][:, None] == session[rows][None, :]
+            V = np.diag(var_run[v] + s2[rows, v]) + omega[v] * same
+            Vi = np.linalg.inv(V)
+            cov = np.linalg.inv(X.T @ Vi @ X)
+            b = cov @ X.T @ Vi @ y[rows, v]
+            np.testing.assert_allclose(data.mean[v, a], b[1], rtol=1e-10)
+            np.testing.assert_allclose(data.precision[v, a], 1.0 / cov[1, 1], rtol=1e-10)
+    # without slopes and sessions, the animal's intercept is the precision-weighted mean
+    # of its runs: the same numbers as the random-intercept reduction
+    ones = np.ones((m * per, 1))
+    plain = animal_effect_data(y, s2, np.zeros((m * per, 0)), 0, animal, G, var_run, np.ones(n_vox))
+    ref = animal_level_data(y, s2, ones, animal, var_run, np.ones(n_vox))
+    np.testing.assert_allclose(plain.mean, ref.mean, rtol=1e-10)
+    np.testing.assert_allclose(plain.precision, ref.precision, rtol=1e-10)
