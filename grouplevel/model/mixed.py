@@ -67,6 +67,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+from numba import njit
 
 from grouplevel.memory import CHUNK_SHARE, GIB, WORKING_BYTES
 from grouplevel.model.reml import presence_patterns
@@ -418,34 +419,62 @@ class _Structure:
 # --------------------------------------------------------------------------------------
 
 
+@njit(cache=True, nogil=True, error_model="numpy")
+def _nb_spd_inverse(V, inv, logdet, ok):
+    """Cholesky-based inverse and log-determinant of each matrix of a (N, w, w) stack."""
+    n_mat, w, _ = V.shape
+    L = np.zeros((w, w))
+    Li = np.zeros((w, w))
+    for t in range(n_mat):
+        good = True
+        ld = 0.0
+        for j in range(w):
+            d = V[t, j, j]
+            for k in range(j):
+                d -= L[j, k] * L[j, k]
+            if not d > 0.0:
+                good = False
+                d = 1.0
+            piv = np.sqrt(d)
+            L[j, j] = piv
+            ld += 2.0 * np.log(piv)
+            for i in range(j + 1, w):
+                s = V[t, i, j]
+                for k in range(j):
+                    s -= L[i, k] * L[j, k]
+                L[i, j] = s / piv
+        for i in range(w):
+            Li[i, i] = 1.0 / L[i, i]
+            for j in range(i):
+                s = 0.0
+                for k in range(j, i):
+                    s += L[i, k] * Li[k, j]
+                Li[i, j] = -s / L[i, i]
+        for i in range(w):
+            for j in range(i + 1):
+                s = 0.0
+                for k in range(i, w):
+                    s += Li[k, i] * Li[k, j]
+                inv[t, i, j] = s
+                inv[t, j, i] = s
+        logdet[t] = ld
+        ok[t] = good
+
+
 def _cholesky_inverse(V):
     """Inverse and log-determinant of a stack of SPD matrices (..., w, w).
 
     Returns (inverse, logdet, ok); ``ok`` is False where the matrix is not positive
-    definite (its entries are then meaningless).
+    definite (its entries are then meaningless). A compiled loop over the small
+    matrices (Cholesky factor, its triangular inverse, their product).
     """
-    w = V.shape[-1]
-    L = np.zeros_like(V)
-    ok = np.ones(V.shape[:-2], dtype=bool)
-    for j in range(w):
-        row = L[..., j, :j]
-        d = V[..., j, j] - np.sum(row * row, axis=-1)
-        ok &= d > 0
-        piv = np.sqrt(np.where(d > 0, d, 1.0))
-        L[..., j, j] = piv
-        if j + 1 < w:
-            below = V[..., j + 1 :, j] - (L[..., j + 1 :, :j] @ row[..., None])[..., 0]
-            L[..., j + 1 :, j] = below / piv[..., None]
-    diag = np.diagonal(L, axis1=-2, axis2=-1)
-    logdet = 2.0 * np.sum(np.log(diag), axis=-1)
-    Li = np.zeros_like(V)
-    for i in range(w):
-        Li[..., i, i] = 1.0 / diag[..., i]
-        if i:
-            s = (L[..., i, None, :i] @ Li[..., :i, :i])[..., 0, :]
-            Li[..., i, :i] = -s / diag[..., i, None]
-    inv = np.swapaxes(Li, -1, -2) @ Li
-    return inv, logdet, ok
+    shape = V.shape
+    flat = np.ascontiguousarray(V, dtype=np.float64).reshape(-1, shape[-1], shape[-1])
+    inv = np.empty_like(flat)
+    logdet = np.empty(flat.shape[0])
+    ok = np.empty(flat.shape[0], dtype=np.bool_)
+    _nb_spd_inverse(flat, inv, logdet, ok)
+    return inv.reshape(shape), logdet.reshape(shape[:-2]), ok.reshape(shape[:-2])
 
 
 def _solve_small(A, b):
