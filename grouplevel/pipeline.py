@@ -734,6 +734,9 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "group_contrast": gm.contrast,
         "weights": gm.weights,
         "design_columns": list(fl.design.columns),
+        # where each column varies: "animal", "session" or "run" (docs/model.md)
+        "design_levels": dict(zip(fl.design.columns, fl.design.level, strict=True)),
+        "sessions": fl.design.n_sessions,
         "animals": gm.n_animals,
         "runs": gm.n_runs,
         "runs_per_animal": {str(k): int(v) for k, v in runs_per_animal.items()},
