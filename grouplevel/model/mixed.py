@@ -64,13 +64,14 @@ components. Biometrics Bulletin 2:110–114.
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
 from numba import njit
 
 from grouplevel.memory import CHUNK_SHARE, GIB, WORKING_BYTES
-from grouplevel.model.reml import presence_patterns
+from grouplevel.model.reml import _available_cores, presence_patterns
 
 # Working set of one chunk of voxels when no memory budget is given (common practice:
 # a few tens of MiB, small next to the input maps; same figure as reml.py).
@@ -839,8 +840,9 @@ def _pinv_stack(A):
 # --------------------------------------------------------------------------------------
 
 
-def _chunk_size(st: _Structure, memory_gb) -> int:
-    per_voxel = WORKING_BYTES * st.floats_per_voxel()
+def _chunk_size(st: _Structure, memory_gb, n_threads: int = 1) -> int:
+    """Voxels per chunk: the working sets of ``n_threads`` chunks fit the budget."""
+    per_voxel = WORKING_BYTES * st.floats_per_voxel() * n_threads
     if memory_gb is None:
         budget = DEFAULT_CHUNK_BYTES
     else:
@@ -990,10 +992,12 @@ def fit_mixed(
     converged = np.zeros(n_vox, dtype=bool)
     n_iter = np.zeros(n_vox, dtype=np.int64)
     idx_all = np.nonzero(_estimable(X, present, p))[0]
-    cs = _chunk_size(st, memory_gb)
-    for start in range(0, idx_all.size, cs):  # loop over chunks of voxels
-        idx = idx_all[start : start + cs]
-        pres = _layout(st, present.astype(np.float64), idx, 0.0)
+    n_threads = _available_cores()
+    cs = _chunk_size(st, memory_gb, n_threads)
+    chunks = [idx_all[i : i + cs] for i in range(0, idx_all.size, cs)]
+
+    def work(idx):
+        pres = _layout(st, present, idx, 0.0)
         yc = np.where(pres > 0, _layout(st, y, idx, 0.0), 0.0)
         s2 = np.zeros_like(yc) if variance is None else _layout(st, variance, idx, 0.0)
         s2 = np.where(pres > 0, s2, 0.0)
@@ -1002,12 +1006,15 @@ def fit_mixed(
         fit_idx = np.nonzero(fittable)[0]
         sub = (yc[fit_idx], s2[fit_idx], pres[fit_idx], n_obs[fit_idx])
         phi, conv, its = _iterate(st, phi[fit_idx], *sub, max_iter, tol)
-        res = _finish(st, phi, *sub, scale2[fit_idx])
-        target = idx[fit_idx]
-        for key, value in res.items():
-            out[key][target] = value
-        converged[target] = conv & np.isfinite(res["loglik"])
-        n_iter[target] = its
+        return idx[fit_idx], _finish(st, phi, *sub, scale2[fit_idx]), conv, its
+
+    # chunks of voxels in a few threads (numpy releases the GIL in its array work)
+    with ThreadPoolExecutor(max_workers=n_threads) as pool:
+        for target, res, conv, its in pool.map(work, chunks):
+            for key, value in res.items():
+                out[key][target] = value
+            converged[target] = conv & np.isfinite(res["loglik"])
+            n_iter[target] = its
     theta = out["theta"]
     components = {name: theta[:, j] for j, name in enumerate(st.names)}
     var_run = components["run"] if st.est_run else np.where(np.isnan(out["loglik"]), np.nan, 0.0)
