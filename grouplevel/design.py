@@ -567,17 +567,20 @@ def unslope_warning(design: Design, random: RandomEffects, name: str, c: np.ndar
 
 
 def permutation_refusal(
-    design: Design, random: RandomEffects, name: str, c: np.ndarray, permutations: int
+    design: Design,
+    random: RandomEffects,
+    name: str,
+    c: np.ndarray,
+    permutations: int,
+    full_coverage: bool = True,
 ) -> str | None:
     """Why ``[inference] permutations`` cannot test this contrast correctly, or None."""
     head = f"contrast '{name}': [inference] permutations = {permutations}"
-    if random.variance_groups is not None:
+    if random.variance_groups is not None and not full_coverage:
         return (
-            f"{head} with [model] variance_groups = {random.variance_groups!r}: exchanging "
-            "animals between groups of unequal variance needs a statistic robust to it "
-            "(Winkler et al. 2014, NeuroImage 92:381), which grouplevel does not compute "
-            "yet. Set permutations = 0 (FDR on the parametric maps, whose df allow for the "
-            "unequal variances) or leave variance_groups out"
+            f"{head} with [model] variance_groups = {random.variance_groups!r} needs data "
+            "from every animal at every voxel (the G statistic of Winkler et al. 2014 is "
+            "computed on whole animals); set [study] min_coverage = 1, or permutations = 0"
         )
     kind, _ = contrast_kind(design, random, c)
     if kind == CONTRAST_WITHIN:
@@ -602,6 +605,7 @@ def model_problems(
     contrasts: Sequence[tuple[str, np.ndarray]],
     model,
     permutations: int,
+    full_coverage: bool = True,
 ) -> tuple[RandomEffects, list[str], list[str]]:
     """The random effects of a design from the ``[model]`` settings, with what ``check``
     must refuse and what it must caution about.
@@ -616,6 +620,9 @@ def model_problems(
         The ``[model]`` settings (:class:`grouplevel.config.ModelSettings`).
     permutations
         ``[inference] permutations``.
+    full_coverage
+        True when every run must have data at every voxel (``[study] min_coverage``
+        = 1).
 
     Returns
     -------
@@ -649,7 +656,7 @@ def model_problems(
         if note:
             warnings.append(note)
         if permutations > 0:
-            refusal = permutation_refusal(design, random, name, c, permutations)
+            refusal = permutation_refusal(design, random, name, c, permutations, full_coverage)
             if refusal:
                 problems.append(refusal)
     return random, problems, warnings

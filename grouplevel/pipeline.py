@@ -267,6 +267,7 @@ def _correct(
     label: str,
     quiet: bool,
     backend: Backend | None = None,
+    variance_groups: np.ndarray | None = None,
 ) -> Corrected:
     inf: InferenceSettings = study.settings.inference
     p_sided = _sided_p(t, df, inf.sided)
@@ -294,6 +295,7 @@ def _correct(
             tfce_H=inf.tfce_h,
             progress=lambda done, total: (setattr(bar, "total", total), bar.update(done)),
             backend=backend,
+            variance_groups=variance_groups,
         )
         bar.close()
         if perm.scheme.smallest_p > inf.alpha:
@@ -586,7 +588,17 @@ def _fit_first_level(
             animal_data, columns = reduced_for(slope if kind == CONTRAST_SLOPE else None)
             c_reduced = c[columns]
         corrected = _correct(
-            study, c_reduced, res.t, df_full, animal_data, smooth, mask, name, quiet, backend
+            study,
+            c_reduced,
+            res.t,
+            df_full,
+            animal_data,
+            smooth,
+            mask,
+            name,
+            quiet,
+            backend,
+            random.animal_group,
         )
         warnings.extend(corrected.warnings)
         gm = GroupMap(

@@ -347,7 +347,12 @@ def inspect_study(settings: Settings) -> Study:
         random = RandomEffects()
         try:
             random, model_notes, model_warnings = model_problems(
-                design, inc, contrasts, settings.model, settings.inference.permutations
+                design,
+                inc,
+                contrasts,
+                settings.model,
+                settings.inference.permutations,
+                full_coverage=settings.study.min_coverage >= 1.0,
             )
         except UserError as exc:
             problems.append(f"{label}: {exc}")

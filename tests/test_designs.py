@@ -439,8 +439,8 @@ def _small(tmp_path, model: str, extra: str, **cols) -> Path:
     [
         (
             'formula = "1 + group"\nvariance_groups = "group"',
-            "\n[inference]\npermutations = 100\n",
-            "[inference] permutations = 100 with [model] variance_groups = 'group'",
+            "min_coverage = 0.8\n\n[inference]\npermutations = 100\n",
+            "[inference] permutations = 100 with [model] variance_groups = 'group' needs data",
         ),
         (
             'formula = "1 + drug"\nrandom_slopes = "none"',
@@ -692,3 +692,67 @@ def test_satterthwaite_df_of_a_slope_in_a_balanced_design(tmp_path):
     _, maps, _ = _fit(toml)
     assert np.all(maps["drug"].components["slope[drug]"] > 0)
     np.testing.assert_allclose(maps["drug"].df, m - 1, rtol=1e-6)
+
+
+def test_variance_group_permutations_equal_brute_force_welch(tmp_path):
+    # With variance groups, whole animals are sign-flipped (symmetric errors need no
+    # equal variances) and the statistic is the G statistic, for two group means the
+    # Aspin-Welch v (Winkler et al. 2014, NeuroImage 92:381, Appendix A; Welch 1947,
+    # Biometrika 34:28). Brute force here: the 2^6 flips of the animals' deviations
+    # from the overall mean, Welch's v written out, z at equal p on the map's df.
+    rng = np.random.default_rng(31)
+    m, per, shape = 6, 3, (2, 1, 1)
+    animal = np.repeat(np.arange(m), per)
+    group = np.where(animal < 3, "few", "many")
+    sd = np.where(np.arange(m) < 3, 2.0, 1.0)
+    y = (
+        0.8 * (group == "many")[:, None]
+        + (rng.normal(0, 1, (m, 2)) * sd[:, None])[animal]
+        + rng.normal(0, 0.5, (m * per, 2))
+    )
+    s2 = rng.uniform(0.1, 0.3, y.shape)
+    extra = (
+        "\n[inference]\npermutations = 1000\ntfce = false\n"
+        '\n[[contrast]]\nname = "diff"\nweights = { "group[T.many]" = 1 }\n'
+    )
+    toml = _study(
+        tmp_path / "s",
+        y,
+        animal,
+        shape,
+        columns={"group": list(group)},
+        model='formula = "1 + group"\nvariance_groups = "group"',
+        extra=extra,
+        variances=s2,
+    )
+    _, maps, _ = _fit(toml)
+    gm = maps["diff"]
+    perm = gm.inference.permutation
+    assert perm.scheme.kind == "sign flips" and perm.scheme.n == 2**m
+    means = np.zeros((2, m))
+    for v in range(2):
+        w = 1.0 / (gm.var_run[v] + s2[:, v])
+        for a in range(m):
+            rows = animal == a
+            means[v, a] = np.sum(w[rows] * y[rows, v]) / np.sum(w[rows])
+    few = np.arange(m) < 3
+
+    def welch_z(b: np.ndarray, df: float) -> float:
+        v = (b[~few].mean() - b[few].mean()) / np.sqrt(
+            b[few].var(ddof=1) / few.sum() + b[~few].var(ddof=1) / (~few).sum()
+        )
+        return float(stats.norm.isf(stats.t.sf(abs(v), df)))
+
+    null_max = []
+    for signs in itertools.product([1.0, -1.0], repeat=m):
+        z = []
+        for v in range(2):
+            centre = means[v].mean()
+            z.append(welch_z(centre + np.array(signs) * (means[v] - centre), gm.df[v]))
+        null_max.append(max(z))
+    null_max = np.array(null_max)
+    np.testing.assert_allclose(np.sort(perm.null_max_stat), np.sort(null_max), atol=2e-3)
+    observed = [welch_z(means[v], gm.df[v]) for v in range(2)]
+    np.testing.assert_array_equal(
+        perm.p_fwe_voxel, [(null_max >= o - 1e-6).mean() for o in observed]
+    )

@@ -20,6 +20,10 @@ the units of every permutation are whole animals.
   exchangeability with animals as the exchangeable blocks (Winkler et al. 2015).
 * Contrasts that weight a within-animal column without its random slope are refused
   (see :func:`animal_level_data`).
+* With **one between-animal variance per group of animals** the animals are not
+  exchangeable between groups; the errors are still symmetric, so whole animals are
+  sign-flipped (Freedman–Lane residuals for a group difference) and the statistic is
+  the heteroscedasticity-robust G statistic (:func:`g_statistic`; Winkler et al. 2014).
 
 The mixed-model statistic is recomputed for every permutation, cheaply. For a design
 whose columns are constant within animals, the REML likelihood separates into a
@@ -637,6 +641,75 @@ class _PermutationWork:
         return max_stat, int(extent), float(mass), max_tfce
 
 
+# Smallest residual variance of a variance group, relative to the voxel's largest one,
+# in the G statistic (keeps the weights finite where a group's residuals are all 0;
+# our own choice, far below any variance that data resolve).
+_G_VARIANCE_FLOOR = 1e-12
+
+
+def g_statistic(Y: np.ndarray, X: np.ndarray, c: np.ndarray, groups: np.ndarray) -> np.ndarray:
+    """The G statistic of a rank-one contrast with one variance per group of rows.
+
+    Ordinary least-squares residuals ``ε̂ = R Y`` (``R = I − X X⁺``) give each group's
+    variance ``σ̂²_g = Σ_{a∈g} ε̂_a² / Σ_{a∈g} R_aa``; then weighted least squares with
+    weights ``1/σ̂²_g(a)`` gives ``G = cᵀβ̂ / √(cᵀ(XᵀWX)⁻¹c)`` — the Aspin–Welch v for two
+    group means.
+
+    Parameters
+    ----------
+    Y : ndarray, shape (V, m)
+    X : ndarray, shape (m, r)
+    c : ndarray, shape (r,)
+    groups : ndarray of int, shape (m,)
+
+    Returns
+    -------
+    ndarray, shape (V,)
+
+    References
+    ----------
+    Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014). Permutation
+    inference for the general linear model. NeuroImage 92:381-397 (Appendix A).
+    """
+    n_groups = int(groups.max()) + 1
+    R = np.eye(X.shape[0]) - X @ np.linalg.pinv(X)
+    E = Y @ R.T
+    onehot = np.zeros((X.shape[0], n_groups))
+    onehot[np.arange(X.shape[0]), groups] = 1.0
+    trace = np.diag(R) @ onehot
+    s2 = (E * E) @ onehot / np.maximum(trace, 1e-300)
+    s2 = np.maximum(s2, _G_VARIANCE_FLOOR * np.maximum(s2.max(axis=1, keepdims=True), 1e-300))
+    w = 1.0 / s2[:, groups]  # (V, m)
+    info = np.einsum("va,ar,as->vrs", w, X, X)
+    rhs = np.einsum("va,ar,va->vr", w, X, Y)
+    beta = np.linalg.solve(info, rhs[..., None])[..., 0]
+    var = np.einsum("r,vrs,s->v", c, np.linalg.inv(info), c)
+    return (beta @ c) / np.sqrt(var)
+
+
+@dataclass(frozen=True, eq=False)
+class _GroupVarianceWork(_PermutationWork):
+    """Permutation work whose statistic is the G statistic of the animal-level data."""
+
+    groups: np.ndarray = None  # type: ignore[assignment]  # (m,) variance group codes
+
+    def statistic(self, k: int) -> np.ndarray:
+        Y = self.fitted + self.signs[k][None, :] * self.residual
+        unit = np.zeros(self.X_perm.shape[1])
+        unit[0] = 1.0
+        g = g_statistic(Y, self.X_perm, unit, self.groups)
+        # to z at equal p on each voxel's df (the tables of the refit kernel)
+        u = np.arcsinh(np.abs(g))
+        z = np.empty_like(g)
+        for row in np.unique(self.df_row):  # a loop over distinct df values
+            sel = self.df_row == row
+            z[sel] = np.interp(u[sel], self._u_grid(), self.tables[row])
+        return np.sign(g) * z
+
+    def _u_grid(self) -> np.ndarray:
+        return np.arange(self.tables.shape[1]) * self.du
+
+
 def maxima_rows(work: _PermutationWork, ks: np.ndarray) -> np.ndarray:
     """(len(ks), 4) null maxima of the permutations ``ks``: one task of a distributed run."""
     out = np.zeros((len(ks), 4))
@@ -663,6 +736,7 @@ def permutation_test(
     progress: Callable[[int, int], None] | None = None,
     threads: int | None = None,
     backend: PermutationBackend | None = None,
+    variance_groups: np.ndarray | None = None,
 ) -> PermutationResult:
     """Run the permutation test of contrast ``c`` and return FWE-corrected maps.
 
@@ -698,6 +772,13 @@ def permutation_test(
         there; the plan is drawn here from ``rng`` first, so the same seed gives the
         same null maxima and p-values on either backend. The observed maps are always
         computed here.
+    variance_groups
+        (m,) group code of every animal when the groups have their own between-animal
+        variance. The test then assumes independent and symmetric errors only (not
+        equal variances): whole animals are sign-flipped (Freedman–Lane residuals for a
+        group difference), and the statistic is the G statistic of Winkler et al.
+        (2014) — a weighted least-squares t with one residual variance per group —
+        converted to z at ``df``. Every animal must have data at every voxel.
 
     References
     ----------
@@ -708,11 +789,19 @@ def permutation_test(
         raise UserError(f"[inference] sided must be one of {', '.join(SIDES)}, got {sided!r}")
     x_i, Z = partition_design(data.design, c)
     X_perm = np.column_stack([x_i, Z])
-    scheme = plan_permutations(x_i, Z, n_permutations, rng, sided)
     V, m = data.mean.shape
+    if variance_groups is not None:
+        # unequal variances: only sign flips keep the errors' distribution (symmetric
+        # errors, Winkler et al. 2014, "ISE"); a constant regressor asks for them
+        scheme = plan_permutations(np.ones(m), Z[:, :0], n_permutations, rng, sided)
+    else:
+        scheme = plan_permutations(x_i, Z, n_permutations, rng, sided)
     # Freedman–Lane: nuisance-only GLS fit at the unpermuted τ̂² (per voxel)
     fitted = np.zeros_like(data.mean)
-    if Z.shape[1]:
+    if Z.shape[1] and variance_groups is not None:
+        # the G statistic's own (ordinary least-squares) nuisance fit
+        fitted = data.mean @ (Z @ np.linalg.pinv(Z)).T
+    elif Z.shape[1]:
         w = data.precision / (1.0 + data.var_animal[:, None] * data.precision)
         ZtW = np.einsum("am,va->vma", Z, w)  # (V, q, m)
         A = ZtW @ Z  # (V, q, q)
@@ -723,7 +812,17 @@ def permutation_test(
     to_z = _TtoZ(np.asarray(df, dtype=float))
     thr = cluster_forming_z(cluster_forming_p, sided)
     tables = np.ascontiguousarray(np.array(to_z.tables))
-    work = _PermutationWork(
+    kind = _PermutationWork
+    extra: dict = {}
+    if variance_groups is not None:
+        if np.any(data.precision <= 0):
+            raise UserError(
+                "[model] variance_groups with [inference] permutations needs data from every "
+                "animal at every voxel; set [study] min_coverage = 1 or permutations = 0"
+            )
+        kind = _GroupVarianceWork
+        extra = {"groups": np.asarray(variance_groups, dtype=np.int64)}
+    work = kind(
         fitted=np.ascontiguousarray(fitted),
         residual=np.ascontiguousarray(residual),
         precision=np.ascontiguousarray(data.precision),
@@ -742,6 +841,7 @@ def permutation_test(
         use_tfce=use_tfce,
         tfce_E=tfce_E,
         tfce_H=tfce_H,
+        **extra,
     )
 
     n = scheme.n
