@@ -243,6 +243,7 @@ def test_session_variance_matches_statsmodels_vc_formula(tmp_path):
     assert summary["variance_components"]["session"]["map"] == "var_session.nii.gz"
     assert summary["sessions"] == m * n_sess and summary["design_levels"] == {"Intercept": "animal"}
     assert "a session level" in summary["random_effects"]
+    assert "a session level" in (out / "methods.md").read_text()
     var_session = var_session.reshape(-1)  # the mask is the whole grid, C order
     for v in range(3):
         data = pd.DataFrame({"y": y[:, v], "animal": animal, "session": session})

@@ -196,6 +196,18 @@ def methods_text(summary: dict, present_files: dict[str, set[str]] | None = None
         "iterations, and the fixed effects by generalised least squares; the group-level "
         f'design was the formula "{model.get("formula", "1")}".'
     )
+    extended = {
+        name: r["random_effects"]
+        for name, r in results.items()
+        if r.get("random_effects") not in (None, "a random intercept per animal")
+    }
+    for effects in dict.fromkeys(extended.values()):
+        names = ", ".join(f'"{n}"' for n, e in extended.items() if e == effects)
+        model_sentences.append(
+            f"For {names} the random effects were {effects}; a within-animal effect with "
+            "a random slope was judged against the spread of the animals' own effects, "
+            "with degrees of freedom from the number of animals."
+        )
     if model.get("df") == "satterthwaite":
         df_words = "Satterthwaite degrees of freedom"
     else:
