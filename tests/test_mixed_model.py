@@ -44,14 +44,13 @@ def rel(a, b):
 
 def dense_cov(Ts, omega2, sigma2, Z, animal, group, session, s2):
     """V = Σ_a Z_a T_g(a) Z_aᵀ + ω² [same session] + diag(σ² + s²), dense."""
-    n = animal.size
     V = np.diag(sigma2 + s2)
     for a in np.unique(animal):
         rows = np.nonzero(animal == a)[0]
         V[np.ix_(rows, rows)] += Z[rows] @ Ts[group[a]] @ Z[rows].T
     if session is not None:
         V += omega2 * (session[:, None] == session[None, :])
-    return V if n else V
+    return V
 
 
 def dense_reml(V, y, X):
@@ -641,3 +640,17 @@ def test_compiled_block_inverse_matches_numpy_linalg():
     # numpy.linalg.inv and slogdet (LAPACK) as the reference
     np.testing.assert_allclose(inv[good], np.linalg.inv(V[good]), rtol=1e-9, atol=1e-10)
     np.testing.assert_allclose(logdet[good], np.linalg.slogdet(V[good])[1], rtol=1e-12)
+
+
+def test_unfittable_voxels_are_flagged_not_silent():
+    rng = np.random.default_rng(74)
+    y, X, animal, drug = slope_study(rng, 4, m=4, runs=4)
+    y[:, 1] = np.nan  # no data
+    y[1:, 2] = np.nan  # one run: fewer runs than design columns
+    y[:, 3] = 2.0  # no variation and no first-level variances
+    fit = fit_mixed(y, None, X, animal, slopes=drug)
+    assert fit.converged[0] and not fit.converged[1:].any()
+    assert np.isnan(fit.beta[1:]).all() and np.isnan(fit.loglik[1:]).all()
+    assert np.isnan(fit.components["slope[0]"][1:]).all()
+    assert list(fit.n_runs) == [16, 0, 1, 16]
+    assert list(fit.n_animals) == [4, 0, 1, 4]

@@ -21,8 +21,8 @@ as (voxels, animals, runs of the animal) arrays; every quantity REML needs (log|
 ``XᵀV⁻¹X``, the score and the expected and observed information, with the traces
 ``tr(P G_i P G_j)``) is assembled from batched dense products of the small per-animal
 blocks, summed over animals. No n × n matrix is formed and no Python loop runs over
-voxels; the small Cholesky factorisations are vectorised by looping over the block's
-rows (a handful) instead.
+voxels; the small per-animal Cholesky factorisations run in a compiled (numba) loop,
+and chunks of voxels are fitted in a few threads.
 
 A run missing at a voxel (NaN effect or variance) is decoupled exactly: its row and
 column of the animal block are replaced by those of the identity and its entries of the
@@ -37,7 +37,12 @@ variance, a correlation of ±1) is an ordinary stationary point in φ, reached b
 steps. The step is Newton's on the REML log-likelihood in φ (observed information,
 chain rule through θ(φ)) where that is negative definite, and Fisher scoring in φ
 (expected information, lightly regularised) elsewhere, with step-halving on the
-log-likelihood. Convergence is judged on θ. Each voxel's data are divided by the
+log-likelihood. Near a boundary (a nearly singular ``T_g`` or a nearly zero variance)
+Newton's step in θ itself, projected back on the admissible set (negative eigenvalues
+of ``T_g`` set to 0), is tried first and kept when it increases the log-likelihood: on
+a rank-deficient ``T_g`` the Cholesky factor can otherwise only rotate slowly towards
+the optimum. Convergence is judged on θ, or on a predicted increase of the
+log-likelihood below ``tol`` (flat ridges). Each voxel's data are divided by the
 residual standard deviation of an ordinary least-squares fit, as in
 :mod:`grouplevel.model.reml`, so the iteration works with numbers of order 1.
 
