@@ -654,3 +654,68 @@ def test_unfittable_voxels_are_flagged_not_silent():
     assert np.isnan(fit.components["slope[0]"][1:]).all()
     assert list(fit.n_runs) == [16, 0, 1, 16]
     assert list(fit.n_animals) == [4, 0, 1, 4]
+
+
+# --------------------------------------------------------------------------------------
+# 8. compiled kernels against numpy references
+# --------------------------------------------------------------------------------------
+
+
+def information_reference(st, ev):
+    """numpy reference of the compiled score and information (batched dense products).
+
+    With P = V⁻¹ − V⁻¹X(XᵀV⁻¹X)⁻¹XᵀV⁻¹ and Py = Ã r (Harville 1977):
+    ∂ℓ/∂θ_j = −½ tr(P G_j) + ½ yᵀP G_j P y, F_ij = ½ tr(P G_i P G_j) and
+    ∂²ℓ/∂θ_i∂θ_j = F_ij − yᵀP G_i P G_j P y, each trace split into per-animal sums.
+    """
+    A, E, Minv, a = ev["A"], ev["E"], ev["Minv"], ev["a"]
+    c, m, w, p = E.shape
+    J = st.J
+    B = A[:, None] @ st.G[None]  # (c, J, m, w, w): Ã G_j
+    tr_ag = np.trace(B, axis1=-2, axis2=-1).sum(axis=-1)
+    Bt = np.swapaxes(B, -1, -2).reshape(c, J, -1)
+    tr_bb = B.reshape(c, J, -1) @ np.swapaxes(Bt, 1, 2)  # tr(Ã G_i Ã G_j)
+    del B, Bt
+    CG = st.G[None] @ E[:, None]  # (c, J, m, w, p): G_j Ã X
+    Ef = E.reshape(c, 1, m * w, p)
+    Q = np.swapaxes(Ef, -1, -2) @ CG.reshape(c, J, m * w, p)  # XᵀÃ G_j Ã X
+    ACG = A[:, None] @ CG
+    Cf = np.moveaxis(CG, 4, 2).reshape(c, J * p, -1)
+    ACf = np.moveaxis(ACG, 4, 2).reshape(c, J * p, -1)
+    R = (Cf @ np.swapaxes(ACf, 1, 2)).reshape(c, J, p, J, p)
+    tr_mr = np.sum(R * np.swapaxes(Minv, 1, 2)[:, None, :, None, :], axis=(2, 4))
+    MQ = Minv[:, None] @ Q
+    tr_mqmq = MQ.reshape(c, J, -1) @ np.swapaxes(MQ, -1, -2).reshape(c, J, -1).transpose(0, 2, 1)
+    F = 0.5 * (tr_bb - 2.0 * tr_mr + tr_mqmq)
+    F = 0.5 * (F + np.swapaxes(F, 1, 2))
+    tr_mq = np.trace(MQ, axis1=-2, axis2=-1)
+    Ga = (st.G[None] @ a[:, None, :, :, None]).reshape(c, J, m * w)  # G_j P y
+    af = a.reshape(c, m * w, 1)
+    g = -0.5 * (tr_ag - tr_mq) + 0.5 * (Ga @ af)[..., 0]
+    AGa = (A[:, None] @ Ga.reshape(c, J, m, w, 1)).reshape(c, J, m * w)
+    W1 = Ga @ np.swapaxes(AGa, 1, 2)
+    EGa = Ga @ Ef[:, 0]  # (c, J, p)
+    W2 = EGa @ Minv @ np.swapaxes(EGa, 1, 2)
+    H = F - (W1 - W2)
+    H = 0.5 * (H + np.swapaxes(H, 1, 2))
+    return g, F, H, Q
+
+
+def test_compiled_information_matches_numpy_reference():
+    import grouplevel.model.mixed as mm
+
+    rng = np.random.default_rng(75)
+    y, s2, X, animal, session, cond = _session_slope_study(rng, 30)
+    y[[2, 9], :10] = np.nan  # missing runs decouple in both versions
+    group = np.array([0, 1, 0, 1, 0, 1])
+    fit_args = (X, animal, cond[:, None], ("c",), session, group, ("a", "b"), True)
+    st = mm._Structure(*fit_args)
+    idx = np.arange(30)
+    pres = mm._layout(st, np.isfinite(y), idx, 0.0)
+    yc = np.where(pres > 0, mm._layout(st, y, idx, 0.0), 0.0)
+    vc = np.where(pres > 0, mm._layout(st, s2, idx, 0.0), 0.0)
+    n_obs = pres.sum(axis=(1, 2))
+    yc, vc, _, _, phi = mm._scale_and_start(st, yc, vc, pres, n_obs)
+    ev = mm._evaluate(st, phi, yc, vc, pres, n_obs)
+    for got, want in zip(mm._information(st, ev), information_reference(st, ev), strict=True):
+        np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)

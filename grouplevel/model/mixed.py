@@ -378,6 +378,7 @@ class _Structure:
         self.names = tuple(names)
         self.G = np.stack(mats)  # (J, m, w, w)
         self.G_flat = self.G.reshape(len(mats), -1)
+        self.used = np.any(self.G != 0, axis=(2, 3))  # (J, m): G_j has a block for animal
         self.X_flat = self.X.reshape(m * w, p)
         self.J = len(names)
         self.r = r
@@ -531,40 +532,140 @@ def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
     return {"theta": theta, "A": A, "E": E, "Minv": Minv, "beta": beta, "a": a, "ll": ll}
 
 
+@njit(cache=True, nogil=True, error_model="numpy")
+def _nb_block_sums(A, E, a, G, used, tr_ag, tr_bb, Q, R, W1, EGa, gaa):
+    """Per-voxel sums over animals of the block products that the REML score and
+    information need (see :func:`_information`); outputs are zeroed here."""
+    c, m, w, _ = A.shape
+    J = G.shape[0]
+    p = E.shape[3]
+    B = np.zeros((J, w, w))
+    CG = np.zeros((J, w, p))
+    ACG = np.zeros((J, w, p))
+    Ga = np.zeros((J, w))
+    AGa = np.zeros((J, w))
+    for t in range(c):
+        tr_ag[t] = 0.0
+        tr_bb[t] = 0.0
+        Q[t] = 0.0
+        R[t] = 0.0
+        W1[t] = 0.0
+        EGa[t] = 0.0
+        gaa[t] = 0.0
+        for k in range(m):
+            Ak = A[t, k]
+            Ek = E[t, k]
+            ak = a[t, k]
+            for j in range(J):
+                if not used[j, k]:
+                    continue
+                Gj = G[j, k]
+                for r in range(w):
+                    for s in range(w):
+                        acc = 0.0
+                        for u in range(w):
+                            acc += Ak[r, u] * Gj[u, s]
+                        B[j, r, s] = acc
+                    for q in range(p):
+                        acc = 0.0
+                        for u in range(w):
+                            acc += Gj[r, u] * Ek[u, q]
+                        CG[j, r, q] = acc
+                    acc = 0.0
+                    for u in range(w):
+                        acc += Gj[r, u] * ak[u]
+                    Ga[j, r] = acc
+                for r in range(w):
+                    for q in range(p):
+                        acc = 0.0
+                        for u in range(w):
+                            acc += Ak[r, u] * CG[j, u, q]
+                        ACG[j, r, q] = acc
+                    acc = 0.0
+                    for u in range(w):
+                        acc += Ak[r, u] * Ga[j, u]
+                    AGa[j, r] = acc
+                for r in range(w):
+                    tr_ag[t, j] += B[j, r, r]
+                    gaa[t, j] += Ga[j, r] * ak[r]
+                    for q in range(p):
+                        EGa[t, j, q] += Ek[r, q] * Ga[j, r]
+                for q1 in range(p):
+                    for q2 in range(p):
+                        acc = 0.0
+                        for r in range(w):
+                            acc += Ek[r, q1] * CG[j, r, q2]
+                        Q[t, j, q1, q2] += acc
+            for i in range(J):
+                if not used[i, k]:
+                    continue
+                for j in range(i + 1):
+                    if not used[j, k]:
+                        continue
+                    acc = 0.0
+                    for r in range(w):
+                        for s in range(w):
+                            acc += B[i, r, s] * B[j, s, r]
+                    tr_bb[t, i, j] += acc
+                    acc = 0.0
+                    for r in range(w):
+                        acc += Ga[i, r] * AGa[j, r]
+                    W1[t, i, j] += acc
+                    for q1 in range(p):
+                        for q2 in range(p):
+                            acc = 0.0
+                            acc2 = 0.0
+                            for r in range(w):
+                                acc += CG[i, r, q1] * ACG[j, r, q2]
+                                acc2 += CG[j, r, q1] * ACG[i, r, q2]
+                            R[t, i, q1, j, q2] += acc
+                            if i != j:
+                                R[t, j, q1, i, q2] += acc2
+        for i in range(J):
+            for j in range(i):
+                tr_bb[t, j, i] = tr_bb[t, i, j]
+                W1[t, j, i] = W1[t, i, j]
+
+
 def _information(st: _Structure, ev):
     """REML score g, expected information F and observed ∂²ℓ H in θ, and Q_j.
 
     With P = V⁻¹ − V⁻¹X(XᵀV⁻¹X)⁻¹XᵀV⁻¹ and Py = Ã r (Harville 1977):
     ∂ℓ/∂θ_j = −½ tr(P G_j) + ½ yᵀP G_j P y, F_ij = ½ tr(P G_i P G_j) and
-    ∂²ℓ/∂θ_i∂θ_j = F_ij − yᵀP G_i P G_j P y, each trace split into per-animal sums.
+    ∂²ℓ/∂θ_i∂θ_j = F_ij − yᵀP G_i P G_j P y, each trace split into per-animal sums
+    (compiled loop over voxels and animals in :func:`_nb_block_sums`).
     """
     A, E, Minv, a = ev["A"], ev["E"], ev["Minv"], ev["a"]
     c, m, w, p = E.shape
     J = st.J
-    B = A[:, None] @ st.G[None]  # (c, J, m, w, w): Ã G_j
-    tr_ag = np.trace(B, axis1=-2, axis2=-1).sum(axis=-1)
-    Bt = np.swapaxes(B, -1, -2).reshape(c, J, -1)
-    tr_bb = B.reshape(c, J, -1) @ np.swapaxes(Bt, 1, 2)  # tr(Ã G_i Ã G_j)
-    del B, Bt
-    CG = st.G[None] @ E[:, None]  # (c, J, m, w, p): G_j Ã X
-    Ef = E.reshape(c, 1, m * w, p)
-    Q = np.swapaxes(Ef, -1, -2) @ CG.reshape(c, J, m * w, p)  # XᵀÃ G_j Ã X
-    ACG = A[:, None] @ CG
-    Cf = np.moveaxis(CG, 4, 2).reshape(c, J * p, -1)
-    ACf = np.moveaxis(ACG, 4, 2).reshape(c, J * p, -1)
-    R = (Cf @ np.swapaxes(ACf, 1, 2)).reshape(c, J, p, J, p)
+    tr_ag = np.empty((c, J))
+    tr_bb = np.empty((c, J, J))
+    Q = np.empty((c, J, p, p))
+    R = np.empty((c, J, p, J, p))
+    W1 = np.empty((c, J, J))
+    EGa = np.empty((c, J, p))
+    gaa = np.empty((c, J))
+    _nb_block_sums(
+        np.ascontiguousarray(A),
+        np.ascontiguousarray(E),
+        np.ascontiguousarray(a),
+        st.G,
+        st.used,
+        tr_ag,
+        tr_bb,
+        Q,
+        R,
+        W1,
+        EGa,
+        gaa,
+    )
     tr_mr = np.sum(R * np.swapaxes(Minv, 1, 2)[:, None, :, None, :], axis=(2, 4))
     MQ = Minv[:, None] @ Q
     tr_mqmq = MQ.reshape(c, J, -1) @ np.swapaxes(MQ, -1, -2).reshape(c, J, -1).transpose(0, 2, 1)
     F = 0.5 * (tr_bb - 2.0 * tr_mr + tr_mqmq)
     F = 0.5 * (F + np.swapaxes(F, 1, 2))
     tr_mq = np.trace(MQ, axis1=-2, axis2=-1)
-    Ga = (st.G[None] @ a[:, None, :, :, None]).reshape(c, J, m * w)  # G_j P y
-    af = a.reshape(c, m * w, 1)
-    g = -0.5 * (tr_ag - tr_mq) + 0.5 * (Ga @ af)[..., 0]
-    AGa = (A[:, None] @ Ga.reshape(c, J, m, w, 1)).reshape(c, J, m * w)
-    W1 = Ga @ np.swapaxes(AGa, 1, 2)
-    EGa = Ga @ Ef[:, 0]  # (c, J, p)
+    g = -0.5 * (tr_ag - tr_mq) + 0.5 * gaa
     W2 = EGa @ Minv @ np.swapaxes(EGa, 1, 2)
     H = F - (W1 - W2)
     H = 0.5 * (H + np.swapaxes(H, 1, 2))
