@@ -757,3 +757,45 @@ def test_variance_group_permutations_equal_brute_force_welch(tmp_path):
     np.testing.assert_array_equal(
         perm.p_fwe_voxel, [(null_max >= o - 1e-6).mean() for o in observed]
     )
+
+
+@pytest.mark.slow
+def test_variance_groups_equal_welch_and_null_rates(tmp_path):
+    # 4 vs 8 animals with 3 runs each, the small group's between-animal SD twice the
+    # other's, no group difference; 2048 independent null voxels. With variance groups
+    # the group difference is Welch's test of the animal means: t and df equal
+    # scipy.stats.ttest_ind(equal_var=False) wherever both groups' variances are
+    # estimated inside the parameter space (balanced data: REML equals ANOVA there), and
+    # the false-positive rate at 0.05 is Welch's (itself slightly liberal with 4 animals
+    # in a group: about 0.06-0.07 here). With one pooled variance it is far higher.
+    rng = np.random.default_rng(99)
+    shape = (16, 16, 8)
+    n_vox = int(np.prod(shape))
+    animal, group, y = _two_groups(rng, n_vox, 2.0, 1.0)
+    contrast = '\n[[contrast]]\nname = "diff"\nweights = { "group[T.many]" = 1 }\n'
+    maps = {}
+    for key, setting in (("pooled", ""), ("groups", 'variance_groups = "group"')):
+        toml = _study(
+            tmp_path / key,
+            y,
+            animal,
+            shape,
+            columns={"group": list(group)},
+            model='formula = "1 + group"\n' + setting,
+            extra=NO_PERMUTATIONS + contrast,
+        )
+        maps[key] = _fit(toml)[1]["diff"]
+    m = int(animal.max()) + 1
+    means = np.stack([y[animal == a].mean(axis=0) for a in range(m)])
+    many = np.array([group[animal == a][0] == "many" for a in range(m)])
+    welch = stats.ttest_ind(means[many], means[~many], equal_var=False, axis=0)
+    gm = maps["groups"]
+    interior = (gm.components["animal[few]"] > 1e-6) & (gm.components["animal[many]"] > 1e-6)
+    assert interior.mean() > 0.9
+    np.testing.assert_allclose(gm.t[interior], welch.statistic[interior], rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(gm.df[interior], welch.df[interior], rtol=1e-5)
+    rate = {key: float((g.p < 0.05).mean()) for key, g in maps.items()}
+    assert abs(rate["groups"] - float((welch.pvalue < 0.05).mean())) <= 0.002, rate
+    k_pooled = int(round(rate["pooled"] * n_vox))
+    assert stats.binomtest(k_pooled, n_vox, 0.05).pvalue < 0.05 and rate["pooled"] > 0.09, rate
+    assert rate["groups"] < rate["pooled"] - 0.03, rate
