@@ -532,7 +532,8 @@ def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
     return {"theta": theta, "A": A, "E": E, "Minv": Minv, "beta": beta, "a": a, "ll": ll}
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+# reassociation and fused multiply-add only: NaN and infinity keep their meaning
+@njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
 def _nb_block_sums(A, E, a, G, used, tr_ag, tr_bb, Q, R, W1, EGa, gaa):
     """Per-voxel sums over animals of the block products that the REML score and
     information need (see :func:`_information`); outputs are zeroed here."""
