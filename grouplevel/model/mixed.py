@@ -417,8 +417,14 @@ class _Structure:
         return np.einsum("ci,jik,ck->cj", phi, self.C, phi)
 
     def floats_per_voxel(self) -> int:
+        """Float64 values alive per voxel of a chunk: the animal blocks (covariance,
+        its inverse, presence products, trial copies), the per-animal GLS pieces and the
+        per-voxel information arrays (counted from the code; WORKSPACE_FACTOR covers
+        temporaries)."""
         J, m, w, p = self.J, self.m, self.width, self.p
-        return int(WORKSPACE_FACTOR * ((J + 8) * m * w * w + 4 * J * m * w * p + J * J * p * p))
+        blocks = 8 * m * w * w + 6 * m * w * p + 8 * m * w
+        info = 3 * J * J * p * p + 6 * J * J + 4 * J * p
+        return int(WORKSPACE_FACTOR * (blocks + info))
 
 
 # --------------------------------------------------------------------------------------
