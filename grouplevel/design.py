@@ -314,27 +314,22 @@ class RandomEffects:
         return bool(self.slope_columns) or self.sessions or self.variance_groups is not None
 
 
-def _slope_term(X: np.ndarray, animal: np.ndarray, j: int, l_col: int) -> np.ndarray | None:
-    """The moderator g with ``X[:, j] = X[:, l_col] · g[animal]``, or None."""
+def _slope_term(design: Design, j: int, l_col: int) -> np.ndarray | None:
+    """The moderator g with ``X[:, j] = X[:, l_col] · g[animal]``, or None.
+
+    g is an animal-level column of the design (the intercept for the slope column
+    itself, a group indicator for a slope-by-group interaction), so it is known for
+    every animal, also for one whose runs do not vary the slope column.
+    """
+    X = design.matrix
     xj, xl = X[:, j], X[:, l_col]
-    on = np.abs(xl) > 0
-    if np.any(np.abs(xj[~on]) > 0):
-        return None
-    m = int(animal.max()) + 1
-    g = np.full(m, np.nan)
-    ratio = xj[on] / xl[on]
-    a_on = animal[on]
-    lo = np.full(m, np.inf)
-    hi = np.full(m, -np.inf)
-    np.minimum.at(lo, a_on, ratio)
-    np.maximum.at(hi, a_on, ratio)
-    seen = np.isfinite(lo)
-    if np.any(hi[seen] - lo[seen] > 1e-9 * max(1.0, float(np.abs(ratio).max()))):
-        return None
-    g[seen] = lo[seen]
-    # an animal whose slope column is 0 on every run carries no information on the
-    # slope: its moderator is irrelevant (0)
-    return np.where(seen, g, 0.0)
+    scale = max(1.0, float(np.abs(xj).max()))
+    for k in np.flatnonzero(~design.within):
+        if np.all(np.abs(xj - xl * X[:, k]) <= 1e-9 * scale):
+            return animal_design(design)[:, k]
+    if j == l_col:
+        return np.ones(design.n_animals)
+    return None
 
 
 def tested_columns(design: Design, contrasts: Sequence[np.ndarray]) -> np.ndarray:
@@ -429,7 +424,7 @@ def random_effects(
     terms: list[SlopeTerm | None] = [None] * X.shape[1]
     for j in np.flatnonzero(design.within):
         for i, col in enumerate(slope_columns):
-            g = _slope_term(X, design.animal, int(j), col)
+            g = _slope_term(design, int(j), col)
             if g is not None:
                 terms[j] = SlopeTerm(slope=i, moderator=g)
                 break

@@ -353,9 +353,10 @@ def _target_variance(fit, design: Design, random: RandomEffects, slope: int | No
 
 def _reduced_data(
     y, s2, fit, design: Design, random: RandomEffects, slope: int | None
-) -> tuple[AnimalLevelData, list[int]]:
+) -> tuple[AnimalLevelData, list[int], np.ndarray]:
     """One value per animal and voxel for an animal-level contrast (slope None) or a
-    contrast of one random slope, and the design columns the reduced design stands for.
+    contrast of one random slope, the design columns the reduced design stands for, and
+    which animals take part (those with information on the target at some voxel).
 
     The random-intercept model without run-level columns keeps the exact reduction to
     precision-weighted animal means (:func:`animal_level_data`).
@@ -365,7 +366,7 @@ def _reduced_data(
         data = animal_level_data(
             y, s2, design.matrix, design.animal, fit.var_run, fit.var_animal, design.columns
         )
-        return data, list(range(len(design.columns)))
+        return data, list(range(len(design.columns))), np.ones(design.n_animals, dtype=bool)
     within = design.within
     nuisance = [j for j in np.flatnonzero(within) if not random.terms or random.terms[j] is None]
     offset = None
@@ -391,7 +392,18 @@ def _reduced_data(
         var_session=comps.get("session"),
         offset=offset,
     )
-    return data, columns
+    # an animal with no information on the target anywhere (e.g. only vehicle runs for
+    # a drug effect) takes no part in the rearrangements: flipping it changes nothing,
+    # and counting it would double the number of distinct ones
+    informative = (data.precision > 0).any(axis=0)
+    if not informative.all():
+        data = replace(
+            data,
+            mean=np.ascontiguousarray(data.mean[:, informative]),
+            precision=np.ascontiguousarray(data.precision[:, informative]),
+            design=data.design[informative],
+        )
+    return data, columns, informative
 
 
 def _contrast_df(
@@ -458,12 +470,12 @@ def _group_variance_warning(
             factors[var] = (level, names)
     if not factors:
         return None
-    data = animal_data()
+    data, taking_part = animal_data()
     worst = None
     for var, (level, names) in factors.items():
         spread = {}
         for n in names:
-            sel = level == n
+            sel = (level == n)[taking_part]
             values = np.where(data.precision[:, sel] > 0, data.mean[:, sel], np.nan)
             spread[n] = (np.nanvar(values, axis=1, ddof=1), int(sel.sum()) - 1)
         for i, a in enumerate(names):
@@ -555,12 +567,12 @@ def _fit_first_level(
     smooth = _smoothness(y, s2, fit, design.matrix, mask, study.grid)
     reduced: dict[int | None, tuple[AnimalLevelData, list[int]]] = {}
 
-    def reduced_for(slope: int | None) -> tuple[AnimalLevelData, list[int]]:
+    def reduced_for(slope: int | None) -> tuple[AnimalLevelData, list[int], np.ndarray]:
         if slope not in reduced:
             reduced[slope] = _reduced_data(y, s2, fit, design, random, slope)
         return reduced[slope]
 
-    group_note = _group_variance_warning(label, fl, lambda: reduced_for(None)[0])
+    group_note = _group_variance_warning(label, fl, lambda: reduced_for(None)[::2])
     if group_note:
         warnings.append(group_note)
     regions = None
@@ -582,11 +594,15 @@ def _fit_first_level(
         name = fl.output_name(cname, default)
         df_full = np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy()
         kind, slope = contrast_kind(design, random, c)
-        animal_data, c_reduced = None, c
+        animal_data, c_reduced, groups = None, c, random.animal_group
         if settings.inference.permutations > 0:
             # check refuses every contrast that cannot be permuted correctly
-            animal_data, columns = reduced_for(slope if kind == CONTRAST_SLOPE else None)
+            animal_data, columns, taking_part = reduced_for(
+                slope if kind == CONTRAST_SLOPE else None
+            )
             c_reduced = c[columns]
+            if groups is not None:
+                groups = groups[taking_part]
         corrected = _correct(
             study,
             c_reduced,
@@ -598,7 +614,7 @@ def _fit_first_level(
             name,
             quiet,
             backend,
-            random.animal_group,
+            groups,
         )
         warnings.extend(corrected.warnings)
         gm = GroupMap(

@@ -802,3 +802,31 @@ def test_variance_groups_equal_welch_and_null_rates(tmp_path):
     k_pooled = int(round(rate["pooled"] * n_vox))
     assert stats.binomtest(k_pooled, n_vox, 0.05).pvalue < 0.05 and rate["pooled"] > 0.09, rate
     assert rate["groups"] < rate["pooled"] - 0.03, rate
+
+
+def test_animal_without_the_condition_takes_no_part(tmp_path):
+    # An animal with vehicle runs only carries no information on the drug effect: the
+    # df count the 5 informative animals (5 - 1), and the exhaustive sign flips are the
+    # 2^5 of those animals, not 2^6 (flipping an animal without information changes
+    # nothing; counting it would halve the smallest attainable p). Counting rule:
+    # common practice for exact permutation tests.
+    rng = np.random.default_rng(40)
+    m, per, shape = 6, 4, (2, 1, 1)
+    animal, drug, y = _drug_within(rng, m, per, 2)
+    drug[animal == 0] = 0.0
+    extra = "\n[inference]\npermutations = 1000\ntfce = false\n" + CONTRAST_DRUG
+    toml = _study(
+        tmp_path / "s",
+        y,
+        animal,
+        shape,
+        columns={"drug": drug},
+        model='formula = "1 + drug"',
+        extra=extra,
+    )
+    _, maps, _ = _fit(toml)
+    gm = maps["drug"]
+    np.testing.assert_array_equal(gm.df, 4)
+    scheme = gm.inference.permutation.scheme
+    assert scheme.exhaustive and scheme.n == 2**5
+    assert scheme.smallest_p == pytest.approx(2 / 2**5)
