@@ -540,7 +540,7 @@ def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
 
 # reassociation and fused multiply-add only: NaN and infinity keep their meaning
 @njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
-def _nb_block_sums(A, E, a, G, used, tr_ag, tr_bb, Q, R, W1, EGa, gaa):
+def _nb_block_sums(A, E, a, Minv, G, used, tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa):
     """Per-voxel sums over animals of the block products that the REML score and
     information need (see :func:`_information`); outputs are zeroed here."""
     c, m, w, _ = A.shape
@@ -549,13 +549,15 @@ def _nb_block_sums(A, E, a, G, used, tr_ag, tr_bb, Q, R, W1, EGa, gaa):
     B = np.zeros((J, w, w))
     CG = np.zeros((J, w, p))
     ACG = np.zeros((J, w, p))
+    ACGM = np.zeros((J, w, p))
     Ga = np.zeros((J, w))
     AGa = np.zeros((J, w))
     for t in range(c):
         tr_ag[t] = 0.0
         tr_bb[t] = 0.0
         Q[t] = 0.0
-        R[t] = 0.0
+        tr_mr[t] = 0.0
+        Mt = Minv[t]
         W1[t] = 0.0
         EGa[t] = 0.0
         gaa[t] = 0.0
@@ -592,6 +594,12 @@ def _nb_block_sums(A, E, a, G, used, tr_ag, tr_bb, Q, R, W1, EGa, gaa):
                     for u in range(w):
                         acc += Ak[r, u] * Ga[j, u]
                     AGa[j, r] = acc
+                for r in range(w):  # Ã G_j Ã X M⁻¹
+                    for q in range(p):
+                        acc = 0.0
+                        for u in range(p):
+                            acc += ACG[j, r, u] * Mt[u, q]
+                        ACGM[j, r, q] = acc
                 for r in range(w):
                     tr_ag[t, j] += B[j, r, r]
                     gaa[t, j] += Ga[j, r] * ak[r]
@@ -618,20 +626,17 @@ def _nb_block_sums(A, E, a, G, used, tr_ag, tr_bb, Q, R, W1, EGa, gaa):
                     for r in range(w):
                         acc += Ga[i, r] * AGa[j, r]
                     W1[t, i, j] += acc
-                    for q1 in range(p):
-                        for q2 in range(p):
-                            acc = 0.0
-                            acc2 = 0.0
-                            for r in range(w):
-                                acc += CG[i, r, q1] * ACG[j, r, q2]
-                                acc2 += CG[j, r, q1] * ACG[i, r, q2]
-                            R[t, i, q1, j, q2] += acc
-                            if i != j:
-                                R[t, j, q1, i, q2] += acc2
+                    # tr(M⁻¹ XᵀÃG_iÃG_jÃX), symmetric in (i, j)
+                    acc = 0.0
+                    for r in range(w):
+                        for q in range(p):
+                            acc += CG[i, r, q] * ACGM[j, r, q]
+                    tr_mr[t, i, j] += acc
         for i in range(J):
             for j in range(i):
                 tr_bb[t, j, i] = tr_bb[t, i, j]
                 W1[t, j, i] = W1[t, i, j]
+                tr_mr[t, j, i] = tr_mr[t, i, j]
 
 
 def _information(st: _Structure, ev):
@@ -648,7 +653,7 @@ def _information(st: _Structure, ev):
     tr_ag = np.empty((c, J))
     tr_bb = np.empty((c, J, J))
     Q = np.empty((c, J, p, p))
-    R = np.empty((c, J, p, J, p))
+    tr_mr = np.empty((c, J, J))
     W1 = np.empty((c, J, J))
     EGa = np.empty((c, J, p))
     gaa = np.empty((c, J))
@@ -656,17 +661,17 @@ def _information(st: _Structure, ev):
         np.ascontiguousarray(A),
         np.ascontiguousarray(E),
         np.ascontiguousarray(a),
+        np.ascontiguousarray(Minv),
         st.G,
         st.used,
         tr_ag,
         tr_bb,
         Q,
-        R,
+        tr_mr,
         W1,
         EGa,
         gaa,
     )
-    tr_mr = np.sum(R * np.swapaxes(Minv, 1, 2)[:, None, :, None, :], axis=(2, 4))
     MQ = Minv[:, None] @ Q
     tr_mqmq = MQ.reshape(c, J, -1) @ np.swapaxes(MQ, -1, -2).reshape(c, J, -1).transpose(0, 2, 1)
     F = 0.5 * (tr_bb - 2.0 * tr_mr + tr_mqmq)
