@@ -509,7 +509,8 @@ def _variance_groups(design: Design, runs: pd.DataFrame, column: str | None) -> 
 CONTRAST_ANIMAL = "animal"  # only animal-level columns
 CONTRAST_SLOPE = "slope"  # only columns of one random slope (and its moderators)
 CONTRAST_WITHIN = "within"  # a within-animal column without a random slope
-CONTRAST_MIXED = "mixed"  # animal-level and within-animal columns, or two slopes
+CONTRAST_SLOPES = "slopes"  # a combination of random-slope columns without moderators
+CONTRAST_MIXED = "mixed"  # animal-level and within-animal columns, or slopes with moderators
 
 
 def contrast_kind(design: Design, random: RandomEffects, c: np.ndarray) -> tuple[str, int | None]:
@@ -525,6 +526,18 @@ def contrast_kind(design: Design, random: RandomEffects, c: np.ndarray) -> tuple
         slopes = {t.slope for t in terms}  # type: ignore[union-attr]
         if len(slopes) == 1:
             return CONTRAST_SLOPE, slopes.pop()
+        # several slopes (e.g. condition B minus C, one slope each): fine as long as
+        # no animal-level column moderates them, so every animal's combination of its
+        # own effects has the same expectation
+        pure = all(
+            t is None
+            or t.slope not in slopes
+            or j in weighted
+            and j == random.slope_columns[t.slope]
+            for j, t in enumerate(random.terms)
+        )
+        if pure:
+            return CONTRAST_SLOPES, None
     return CONTRAST_MIXED, None
 
 
@@ -587,9 +600,10 @@ def permutation_refusal(
         )
     if kind == CONTRAST_MIXED:
         return (
-            f"{head}: the contrast mixes animal-level and within-animal columns (or two "
-            "different within-animal effects); permutations exchange one level at a time. "
-            "Test the parts as separate contrasts, or set permutations = 0"
+            f"{head}: the contrast mixes animal-level and within-animal columns (or "
+            "within-animal effects that animal-level columns moderate differently); "
+            "permutations exchange one level at a time. Test the parts as separate "
+            "contrasts, or set permutations = 0"
         )
     return None
 

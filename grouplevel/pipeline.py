@@ -28,6 +28,7 @@ from grouplevel.config import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
 from grouplevel.design import (
     CONTRAST_ANIMAL,
     CONTRAST_SLOPE,
+    CONTRAST_SLOPES,
     Design,
     RandomEffects,
     animal_design,
@@ -335,9 +336,23 @@ def _pooled_var_animal(fit, random: RandomEffects) -> np.ndarray:
     return total / counts.sum()
 
 
-def _target_variance(fit, design: Design, random: RandomEffects, slope: int | None, group=None):
-    """Between-animal variance of the animals' intercepts (slope None) or of a slope."""
+def _target_variance(
+    fit, design: Design, random: RandomEffects, slope: int | None, group=None, weights=None
+):
+    """Between-animal variance of the animals' intercepts (slope None), of a slope, or
+    of a combination of slopes (``weights``, one per slope; one variance group only)."""
     comps = _components(fit)
+    if weights is not None:
+        names = [design.columns[j] for j in random.slope_columns]
+        total = np.zeros_like(fit.var_run)
+        for i, a in enumerate(names):
+            for k, b in enumerate(names):
+                key = f"slope[{a}]" if i == k else f"cov[{a},{b}]"
+                if i != k and key not in comps:
+                    key = f"cov[{b},{a}]"
+                if key in comps:
+                    total = total + weights[i] * weights[k] * comps[key]
+        return np.maximum(total, 0.0)
     suffix = "" if group is None else f"[{group}]"
     if slope is None:
         if random.animal_group is not None and group is None:
@@ -352,13 +367,16 @@ def _target_variance(fit, design: Design, random: RandomEffects, slope: int | No
 
 
 def _reduced_data(
-    y, s2, fit, design: Design, random: RandomEffects, slope: int | None
-) -> tuple[AnimalLevelData, list[int], np.ndarray]:
-    """One value per animal and voxel for an animal-level contrast (slope None) or a
-    contrast of one random slope, the design columns the reduced design stands for, and
-    which animals take part (those with information on the target at some voxel).
+    y, s2, fit, design: Design, random: RandomEffects, c: np.ndarray
+) -> tuple[AnimalLevelData, np.ndarray, np.ndarray]:
+    """One value per animal and voxel for the level contrast ``c`` tests, the contrast on
+    the reduced design, and which animals take part (those with information on the
+    target at some voxel).
 
-    The random-intercept model without run-level columns keeps the exact reduction to
+    An animal-level contrast reduces each animal to its own intercept, a contrast of one
+    random slope to the animal's own slope (with the slope's animal-level design), a
+    combination of slopes to the animal's own combination of them. The
+    random-intercept model without run-level columns keeps the exact reduction to
     precision-weighted animal means (:func:`animal_level_data`).
     """
     comps = _components(fit)
@@ -366,19 +384,26 @@ def _reduced_data(
         data = animal_level_data(
             y, s2, design.matrix, design.animal, fit.var_run, fit.var_animal, design.columns
         )
-        return data, list(range(len(design.columns))), np.ones(design.n_animals, dtype=bool)
+        return data, c, np.ones(design.n_animals, dtype=bool)
+    kind, slope = contrast_kind(design, random, c)
     within = design.within
     nuisance = [j for j in np.flatnonzero(within) if not random.terms or random.terms[j] is None]
     offset = None
     if nuisance:
         offset = design.matrix[:, nuisance] @ fit.beta[:, nuisance].T
-    if slope is None:
+    weights = None
+    if kind == CONTRAST_SLOPE:
+        G, columns = slope_design(design, random, slope)
+        target: int | np.ndarray = 1 + slope
+        c_reduced = c[columns]
+    elif kind == CONTRAST_SLOPES:
+        weights = np.array([c[j] for j in random.slope_columns])
+        target = np.concatenate([[0.0], weights])
+        G, c_reduced = np.ones((design.n_animals, 1)), np.ones(1)
+    else:  # animal-level (check refuses the other kinds for permutations)
         columns = [j for j in range(len(design.columns)) if not within[j]]
         G = animal_design(design)[:, columns]
-        target = 0
-    else:
-        G, columns = slope_design(design, random, slope)
-        target = 1 + slope
+        target, c_reduced = 0, c[columns]
     data = animal_effect_data(
         y,
         s2,
@@ -387,7 +412,7 @@ def _reduced_data(
         design.animal,
         G,
         fit.var_run,
-        _target_variance(fit, design, random, slope),
+        _target_variance(fit, design, random, slope, weights=weights),
         session=design.session if random.sessions else None,
         var_session=comps.get("session"),
         offset=offset,
@@ -403,7 +428,7 @@ def _reduced_data(
             precision=np.ascontiguousarray(data.precision[:, informative]),
             design=data.design[informative],
         )
-    return data, columns, informative
+    return data, c_reduced, informative
 
 
 def _contrast_df(
@@ -421,6 +446,17 @@ def _contrast_df(
     if kind == CONTRAST_SLOPE:
         G, _ = slope_design(design, random, slope)
         df = slope_df(design.matrix, design.animal, present, random.slope_columns[slope], G)
+    elif kind == CONTRAST_SLOPES:
+        # the smallest between-animal df of the slopes combined
+        ones = np.ones((design.n_animals, 1))
+        df = np.min(
+            [
+                slope_df(design.matrix, design.animal, present, col, ones)
+                for col, weight in ((k, c[k]) for k in random.slope_columns)
+                if weight != 0
+            ],
+            axis=0,
+        )
     else:
         df = between_animal_df(design.matrix, design.animal, present, c)
         if kind != CONTRAST_ANIMAL and random.slope_columns:
@@ -565,14 +601,22 @@ def _fit_first_level(
     components = _components(fit)
     var_animal = _pooled_var_animal(fit, random)
     smooth = _smoothness(y, s2, fit, design.matrix, mask, study.grid)
-    reduced: dict[int | None, tuple[AnimalLevelData, list[int]]] = {}
+    reduced: dict[tuple, tuple[AnimalLevelData, np.ndarray, np.ndarray]] = {}
 
-    def reduced_for(slope: int | None) -> tuple[AnimalLevelData, list[int], np.ndarray]:
-        if slope not in reduced:
-            reduced[slope] = _reduced_data(y, s2, fit, design, random, slope)
-        return reduced[slope]
+    def reduced_for(c: np.ndarray) -> tuple[AnimalLevelData, np.ndarray, np.ndarray]:
+        kind, slope = contrast_kind(design, random, c)
+        key = (kind, slope, tuple(c) if kind != CONTRAST_ANIMAL else None)
+        if key not in reduced:
+            reduced[key] = _reduced_data(y, s2, fit, design, random, c)
+        return reduced[key]
 
-    group_note = _group_variance_warning(label, fl, lambda: reduced_for(None)[::2])
+    group_note = None
+    animal_columns = np.flatnonzero(~design.within)
+    if animal_columns.size:
+        # the animals' own intercepts (the reduction of any animal-level contrast)
+        on_animal = np.zeros(len(design.columns))
+        on_animal[animal_columns[0]] = 1.0
+        group_note = _group_variance_warning(label, fl, lambda: reduced_for(on_animal)[::2])
     if group_note:
         warnings.append(group_note)
     regions = None
@@ -597,10 +641,7 @@ def _fit_first_level(
         animal_data, c_reduced, groups = None, c, random.animal_group
         if settings.inference.permutations > 0:
             # check refuses every contrast that cannot be permuted correctly
-            animal_data, columns, taking_part = reduced_for(
-                slope if kind == CONTRAST_SLOPE else None
-            )
-            c_reduced = c[columns]
+            animal_data, c_reduced, taking_part = reduced_for(c)
             if groups is not None:
                 groups = groups[taking_part]
         corrected = _correct(

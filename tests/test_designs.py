@@ -830,3 +830,64 @@ def test_animal_without_the_condition_takes_no_part(tmp_path):
     scheme = gm.inference.permutation.scheme
     assert scheme.exhaustive and scheme.n == 2**5
     assert scheme.smallest_p == pytest.approx(2 / 2**5)
+
+
+def test_difference_of_two_conditions_within_animals(tmp_path):
+    # Three conditions alternated within every animal, each non-reference level with a
+    # random slope. "b minus c" combines two slopes: df = animals - 1, and in this
+    # balanced design its t equals the one-sample t of the animals' own b - c
+    # differences (scipy.stats.ttest_1samp) wherever the 3 x 3 random-effects
+    # covariance is estimated inside the parameter space (REML equals ANOVA there;
+    # common practice). Its permutations flip the signs of the animals' own b - c
+    # differences (2^10, exhaustive). (statsmodels MixedLM does not reach the REML
+    # optimum of this 3 x 3 covariance reliably, so it is not the reference here.)
+    rng = np.random.default_rng(17)
+    m, per, shape = 10, 6, (3, 2, 1)
+    n_vox = 6
+    animal = np.repeat(np.arange(m), per)
+    cond = np.tile(["a", "b", "c"], m * per // 3)
+    level = np.searchsorted(["a", "b", "c"], cond)
+    y = (
+        rng.normal(0, 1, (m, n_vox))[animal]
+        + rng.normal(0, 1.0, (m, 3, n_vox))[animal, level]
+        + rng.normal(0, 0.6, (m * per, n_vox))
+    )
+    extra = (
+        "\n[inference]\npermutations = 2000\ntfce = false\n"
+        '\n[[contrast]]\nname = "b_vs_c"\nweights = { "cond[T.b]" = 1, "cond[T.c]" = -1 }\n'
+    )
+    toml = _study(
+        tmp_path / "s",
+        y,
+        animal,
+        shape,
+        columns={"cond": list(cond)},
+        model='formula = "1 + cond"',
+        extra=extra,
+    )
+    _, maps, _ = _fit(toml)
+    gm = maps["b_vs_c"]
+    assert gm.tested_level == "slopes"
+    np.testing.assert_array_equal(gm.df, m - 1)
+    scheme = gm.inference.permutation.scheme
+    assert scheme.kind == "sign flips" and scheme.exhaustive and scheme.n == 2**m
+    k = gm.components
+    T = np.array(
+        [
+            [k["animal"], k["cov[cond[T.b]]"], k["cov[cond[T.c]]"]],
+            [k["cov[cond[T.b]]"], k["slope[cond[T.b]]"], k["cov[cond[T.b],cond[T.c]]"]],
+            [k["cov[cond[T.c]]"], k["cov[cond[T.b],cond[T.c]]"], k["slope[cond[T.c]]"]],
+        ]
+    ).transpose(2, 0, 1)
+    interior = np.linalg.eigvalsh(T)[:, 0] > 1e-6
+    assert interior.sum() >= 3
+    diff = np.stack(
+        [
+            y[(animal == a) & (cond == "b")].mean(axis=0)
+            - y[(animal == a) & (cond == "c")].mean(axis=0)
+            for a in range(m)
+        ]
+    )
+    ref = stats.ttest_1samp(diff, 0.0, axis=0)
+    np.testing.assert_allclose(gm.effect, diff.mean(axis=0), rtol=1e-6)
+    np.testing.assert_allclose(gm.t[interior], ref.statistic[interior], rtol=1e-5)

@@ -207,7 +207,7 @@ def animal_effect_data(
     y: np.ndarray,
     variance: np.ndarray | None,
     own: np.ndarray,
-    target: int,
+    target: int | np.ndarray,
     animal: np.ndarray,
     design: np.ndarray,
     var_run: np.ndarray,
@@ -237,7 +237,8 @@ def animal_effect_data(
         (n_runs, q) the within-animal columns each animal gets its own coefficient for
         (the random-slope columns); q may be 0.
     target
-        Which coefficient of ``[1, own]`` is reduced.
+        Which coefficient of ``[1, own]`` is reduced, or (1 + q,) weights of a
+        combination of them (e.g. condition B minus condition C).
     animal
         (n_runs,) animal codes 0..m-1.
     design
@@ -332,15 +333,19 @@ def _own_fit(y, variance, offset, rows, sl, Xa, target, var_run, omega, same):
     Minv = np.linalg.pinv(M, hermitian=True)
     coef = np.einsum("vkl,vnl,vn->vk", Minv, Xw, yw)
     k = Xa.shape[1]
-    unit = np.zeros(k)
-    unit[target] = 1.0
-    recon = np.einsum("vkl,vlj->vkj", Minv, M)[:, target, :]
-    estimable = np.all(np.abs(recon - unit) < _ESTIMABLE_TOL * max(1.0, k), axis=1)
-    var_t = Minv[:, target, target]
+    if np.ndim(target) == 0:
+        unit = np.zeros(k)
+        unit[int(target)] = 1.0
+    else:
+        unit = np.asarray(target, dtype=float)
+    recon = unit @ np.einsum("vkl,vlj->vkj", Minv, M)
+    scale = max(1.0, float(np.abs(unit).max()))
+    estimable = np.all(np.abs(recon - unit) < _ESTIMABLE_TOL * max(1.0, k) * scale, axis=1)
+    var_t = np.einsum("k,vkl,l->v", unit, Minv, unit)
     ok = estimable & (var_t > 0) & np.isfinite(var_t)
     with np.errstate(divide="ignore", invalid="ignore"):
         precision = np.where(ok, 1.0 / var_t, 0.0)
-    return np.where(ok, coef[:, target], 0.0), precision
+    return np.where(ok, coef @ unit, 0.0), precision
 
 
 def partition_design(design: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
