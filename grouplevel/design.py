@@ -321,14 +321,14 @@ def _slope_term(design: Design, j: int, l_col: int) -> np.ndarray | None:
     itself, a group indicator for a slope-by-group interaction), so it is known for
     every animal, also for one whose runs do not vary the slope column.
     """
+    if j == l_col:
+        return np.ones(design.n_animals)
     X = design.matrix
     xj, xl = X[:, j], X[:, l_col]
     scale = max(1.0, float(np.abs(xj).max()))
     for k in np.flatnonzero(~design.within):
         if np.all(np.abs(xj - xl * X[:, k]) <= 1e-9 * scale):
             return animal_design(design)[:, k]
-    if j == l_col:
-        return np.ones(design.n_animals)
     return None
 
 
