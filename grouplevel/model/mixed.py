@@ -109,6 +109,11 @@ GAIN_FRACTION = 1e-2
 # variance below this fraction of the residual variance, is near the boundary: the
 # projected θ-space step is tried there (our own choice).
 NEAR_BOUNDARY = 1e-2
+# A zero variance (or a null direction of T_g) is left again when ∂ℓ/∂θ along it
+# exceeds ESCAPE_GRADIENT, by a move of ESCAPE_STEP times the largest eigenvalue of T_g
+# (at least 1; scaled units, residual variance 1); our own choices.
+ESCAPE_GRADIENT = 1e-6
+ESCAPE_STEP = 1e-3
 # A variance below this fraction of the voxel's residual variance counts as estimated
 # on the boundary 0 (its component, and the covariances involving it, are then left out
 # of the Satterthwaite degrees of freedom); our own choice, well below any variance
@@ -839,6 +844,55 @@ def _near_boundary(st: _Structure, theta):
     return near
 
 
+def _escape_saddles(st: _Structure, phi, vox, g, ev, y, s2, pres, n_obs):
+    """Move voxels off a zero variance (or a null direction of T_g) along which the REML
+    log-likelihood increases; returns which of ``vox`` moved (φ and ``ev`` updated).
+
+    A factor column that is exactly 0 has a zero gradient in φ, so the iteration stops
+    there even where ∂ℓ/∂T is positive along the null space of T (the constrained
+    optimality condition fails). The move adds ``ESCAPE_STEP`` times the best null
+    direction to θ and is kept when ℓ increases.
+    """
+    if vox.size == 0:
+        return np.zeros(0, dtype=bool)
+    theta = st.theta(phi[vox])
+    move = np.zeros_like(theta)
+    for grp in range(st.n_groups):
+        T = theta[:, st.t_index[grp]]
+        D = g[:, st.t_index[grp]] * np.where(np.eye(st.r) > 0, 1.0, 0.5)
+        lam, vec = np.linalg.eigh(T)
+        null = lam <= 1e-10 * np.maximum(lam[:, -1:], 1e-300)
+        Dn = np.swapaxes(vec, 1, 2) @ D @ vec
+        keep = null[:, :, None] & null[:, None, :]
+        # D on the null space of T; the other directions pushed far below (decoupled)
+        far = np.where(null, 0.0, 1e30 * (1.0 + np.abs(D).max(axis=(1, 2)))[:, None])
+        Dn = np.where(keep, Dn, 0.0) - far[:, :, None] * np.eye(st.r)
+        mu, u = np.linalg.eigh(Dn)
+        v = (vec @ u[:, :, -1:])[..., 0]
+        up = (mu[:, -1] > ESCAPE_GRADIENT) & null.any(axis=1)
+        step = ESCAPE_STEP * np.maximum(lam[:, -1], 1.0)
+        dT = step[:, None, None] * v[:, :, None] * v[:, None, :]
+        for a_ in range(st.r):
+            for b_ in range(a_ + 1):
+                move[:, st.t_index[grp, a_, b_]] = np.where(up, dT[:, a_, b_], 0.0)
+    sc = st.scalar_index
+    if sc.size:
+        zero = (theta[:, sc] <= 1e-12) & (g[:, sc] > ESCAPE_GRADIENT)
+        move[:, sc] = np.where(zero, ESCAPE_STEP, 0.0)
+    moved = np.any(move != 0, axis=1)
+    if not moved.any():
+        return moved
+    sel = vox[moved]
+    trial = _project_to_phi(st, theta[moved] + move[moved])
+    ev_t = _evaluate(st, trial, y[sel], s2[sel], pres[sel], n_obs[sel])
+    ll0 = ev["ll"][sel]
+    better = ev_t["ll"] > ll0 + FLAT_DECREMENT * (1.0 + np.abs(ll0))
+    phi[sel[better]] = trial[better]
+    _put(ev, sel[better], _take(ev_t, better))
+    moved[np.nonzero(moved)[0][~better]] = False
+    return moved
+
+
 def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol):
     """Maximise the REML log-likelihood over φ for a chunk of (scaled) voxels."""
     c = phi.shape[0]
@@ -859,11 +913,13 @@ def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol):
         # or ℓ within a negligible amount of the maximum of its local quadratic model
         # (flat ridges, e.g. a rank-one T whose factor can still rotate)
         small |= gain <= GAIN_FRACTION * tol * (1.0 + np.abs(cur["ll"]))
-        # a tiny last step is the most accurate: take it and stop
+        # a tiny last step is the most accurate: take it and stop — unless ℓ still
+        # increases along a variance held at exactly 0 (a saddle of the factorisation)
         done = act[small]
         phi[done] += delta[small]
-        converged[done] = True
-        active[done] = False
+        escaped = _escape_saddles(st, phi, done, g[small], ev, y, s2, pres, n_obs)
+        converged[done[~escaped]] = True
+        active[done[~escaped]] = False
         pending = act[~small]
         d_pend = delta[~small]
         gain_pend = gain[~small]
