@@ -15,6 +15,7 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import os
+import re
 import secrets
 import shutil
 import tempfile
@@ -25,6 +26,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from scipy import stats
 
 from grouplevel import __version__
 from grouplevel.anatomy.tables import region_data, region_tables
@@ -32,11 +34,24 @@ from grouplevel.cli.overview import design_description
 from grouplevel.errors import UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
+    AnimalLevelData,
+    animal_effect_data,
     animal_level_data,
     permutation_test,
 )
 from grouplevel.inference.significance import sided_p
-from grouplevel.intake.design import weights_dict
+from grouplevel.intake.design import (
+    CONTRAST_ANIMAL,
+    CONTRAST_SLOPE,
+    CONTRAST_SLOPES,
+    Design,
+    RandomEffects,
+    animal_design,
+    contrast_kind,
+    describe_random_effects,
+    slope_design,
+    weights_dict,
+)
 from grouplevel.intake.images import Grid, write_map
 from grouplevel.intake.settings import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
 from grouplevel.intake.study import FirstLevel, Study, load_runs, load_study
@@ -45,6 +60,7 @@ from grouplevel.model import (
     satterthwaite_df,
     test_contrast,
 )
+from grouplevel.model.contrasts import slope_df
 from grouplevel.outputs.folder import (
     TOOL_NAME,
     check_output_folder,
@@ -60,9 +76,51 @@ from grouplevel.questions.ask import (
     skipped_warning,
 )
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
-from grouplevel.results.compute import Backend, fit_voxel_chunks, open_backend
+from grouplevel.results.compute import Backend, fit_design, open_backend
 from grouplevel.results.correction import permutation_arguments
 from grouplevel.results.maps import MAP_DESCRIPTIONS, Corrected, GroupMap
+
+# Variance components written on top of var_animal and var_run (general model only):
+# component-name pattern -> (file stem, header description). ``{0}`` is the slope or
+# group name made safe for a file name.
+_COMPONENT_FILES = (
+    (r"animal\[(.+)\]", "var_animal_{0}", "between-animal variance of group {1} (REML)"),
+    (r"slope\[(.+)\]\[(.+)\]", "var_slope_{0}_{2}", "variance of the {1} slope, group {3}"),
+    (r"slope\[(.+)\]", "var_slope_{0}", "between-animal variance of the {1} slope (REML)"),
+    (r"cov\[(.+)\]\[(.+)\]", "cov_{0}_{2}", "covariance of animal intercept/slope {1}, group {3}"),
+    (r"cov\[(.+)\]", "cov_{0}", "covariance of the animal intercept and the {1} slope (REML)"),
+    (r"session", "var_session", "between-session variance within animals omega^2 (REML)"),
+)
+
+# Variance groups: a warning when, without [model] variance_groups, the groups of an
+# animal-level factor differ this much in their spread of per-animal means (median over
+# fitted voxels of the ratio of the groups' sample variances, divided by the median of
+# the F distribution it follows when they are equal; our own choice of threshold).
+VARIANCE_RATIO_WARNING = 1.5
+
+
+def safe_stem(name: str) -> str:
+    """A component, slope or group name made safe for a file name."""
+    return re.sub(r"[^A-Za-z0-9.-]+", "_", name).strip("_.") or "unnamed"
+
+
+def component_files(components: dict[str, np.ndarray]) -> dict[str, tuple[str, str]]:
+    """File stem and header description of every component beyond animal and run."""
+    out = {}
+    for name in components:
+        if name in ("animal", "run"):
+            continue
+        for pattern, stem, what in _COMPONENT_FILES:
+            match = re.fullmatch(pattern, name)
+            if match:
+                groups = match.groups()
+                args = [x for g in groups for x in (safe_stem(g), g)]
+                out[name] = (stem.format(*args), what.format(*args))
+                break
+        else:
+            out[name] = (f"var_{safe_stem(name)}", f"variance component {name} (REML)")
+    return out
+
 
 # Runs used for the residual smoothness estimate: at most this many, evenly spread, so
 # that its full-grid float64 copies stay small on large studies (our own choice; 30 maps
@@ -110,6 +168,7 @@ def _correct(
     label: str,
     quiet: bool,
     backend: Backend | None = None,
+    variance_groups: np.ndarray | None = None,
 ) -> Corrected:
     inf: InferenceSettings = study.settings.inference
     p_sided = sided_p(t, df, inf.sided)
@@ -126,6 +185,7 @@ def _correct(
             mask,
             rng=rng,
             progress=bar.update,
+            variance_groups=variance_groups,
             **permutation_arguments(inf, voxel_volume_mm3=study.grid.voxel_volume, backend=backend),
         )
         bar.close()
@@ -143,6 +203,229 @@ def _correct(
         smoothness=smooth,
         permutation=perm,
         warnings=tuple(warnings),
+    )
+
+
+def _components(fit) -> dict[str, np.ndarray]:
+    """The fit's variance components by name (both fit types)."""
+    comps = getattr(fit, "components", None)
+    if comps is not None:
+        return dict(comps)
+    return {"animal": fit.var_animal, "run": fit.var_run}
+
+
+def _pooled_var_animal(fit, random: RandomEffects) -> np.ndarray:
+    """The between-animal intercept variance; with variance groups the animal-weighted
+    mean of the groups' variances (each group's own is written as its own map)."""
+    if random.animal_group is None:
+        return fit.var_animal
+    counts = np.bincount(random.animal_group, minlength=len(random.group_names))
+    total = np.zeros_like(fit.var_animal)
+    for g, name in enumerate(random.group_names):
+        total = total + counts[g] * fit.components[f"animal[{name}]"]
+    return total / counts.sum()
+
+
+def _target_variance(
+    fit, design: Design, random: RandomEffects, slope: int | None, group=None, weights=None
+):
+    """Between-animal variance of the animals' intercepts (slope None), of a slope, or
+    of a combination of slopes (``weights``, one per slope; one variance group only)."""
+    comps = _components(fit)
+    if weights is not None:
+        names = [design.columns[j] for j in random.slope_columns]
+        total = np.zeros_like(fit.var_run)
+        for i, a in enumerate(names):
+            for k, b in enumerate(names):
+                key = f"slope[{a}]" if i == k else f"cov[{a},{b}]"
+                if i != k and key not in comps:
+                    key = f"cov[{b},{a}]"
+                if key in comps:
+                    total = total + weights[i] * weights[k] * comps[key]
+        return np.maximum(total, 0.0)
+    suffix = "" if group is None else f"[{group}]"
+    if slope is None:
+        if random.animal_group is not None and group is None:
+            return _pooled_var_animal(fit, random)
+        return comps[f"animal{suffix}"]
+    name = design.columns[random.slope_columns[slope]]
+    if random.animal_group is not None and group is None:
+        counts = np.bincount(random.animal_group, minlength=len(random.group_names))
+        parts = [counts[g] * comps[f"slope[{name}][{n}]"] for g, n in enumerate(random.group_names)]
+        return sum(parts) / counts.sum()
+    return comps[f"slope[{name}]{suffix}"]
+
+
+def _reduced_data(
+    y, s2, fit, design: Design, random: RandomEffects, c: np.ndarray
+) -> tuple[AnimalLevelData, np.ndarray, np.ndarray]:
+    """One value per animal and voxel for the level contrast ``c`` tests, the contrast on
+    the reduced design, and which animals take part (those with information on the
+    target at some voxel).
+
+    An animal-level contrast reduces each animal to its own intercept, a contrast of one
+    random slope to the animal's own slope (with the slope's animal-level design), a
+    combination of slopes to the animal's own combination of them. The
+    random-intercept model without run-level columns keeps the exact reduction to
+    precision-weighted animal means (:func:`animal_level_data`).
+    """
+    comps = _components(fit)
+    if not random.extended and design.animal_level.all():
+        data = animal_level_data(
+            y, s2, design.matrix, design.animal, fit.var_run, fit.var_animal, design.columns
+        )
+        return data, c, np.ones(design.n_animals, dtype=bool)
+    kind, slope = contrast_kind(design, random, c)
+    within = design.within
+    nuisance = [j for j in np.flatnonzero(within) if not random.terms or random.terms[j] is None]
+    offset = None
+    if nuisance:
+        offset = design.matrix[:, nuisance] @ fit.beta[:, nuisance].T
+    weights = None
+    if kind == CONTRAST_SLOPE:
+        G, columns = slope_design(design, random, slope)
+        target: int | np.ndarray = 1 + slope
+        c_reduced = c[columns]
+    elif kind == CONTRAST_SLOPES:
+        weights = np.array([c[j] for j in random.slope_columns])
+        target = np.concatenate([[0.0], weights])
+        G, c_reduced = np.ones((design.n_animals, 1)), np.ones(1)
+    else:  # animal-level (check refuses the other kinds for permutations)
+        columns = [j for j in range(len(design.columns)) if not within[j]]
+        G = animal_design(design)[:, columns]
+        target, c_reduced = 0, c[columns]
+    data = animal_effect_data(
+        y,
+        s2,
+        design.matrix[:, list(random.slope_columns)],
+        target,
+        design.animal,
+        G,
+        fit.var_run,
+        _target_variance(fit, design, random, slope, weights=weights),
+        session=design.session if random.sessions else None,
+        var_session=comps.get("session"),
+        offset=offset,
+    )
+    # an animal with no information on the target anywhere (e.g. only vehicle runs for
+    # a drug effect) takes no part in the rearrangements: flipping it changes nothing,
+    # and counting it would double the number of distinct ones
+    informative = (data.precision > 0).any(axis=0)
+    if not informative.all():
+        data = replace(
+            data,
+            mean=np.ascontiguousarray(data.mean[:, informative]),
+            precision=np.ascontiguousarray(data.precision[:, informative]),
+            design=data.design[informative],
+        )
+    return data, c_reduced, informative
+
+
+def _contrast_df(
+    study: Study, fl: FirstLevel, fit, present: np.ndarray, c: np.ndarray
+) -> np.ndarray:
+    """Degrees of freedom of one contrast at every voxel (docs/model.md, df rule)."""
+    design, random = fl.design, fl.random
+    if study.settings.model.df == "satterthwaite":
+        if random.extended:
+            from grouplevel.model.mixed import mixed_satterthwaite_df
+
+            return mixed_satterthwaite_df(fit, c)
+        return satterthwaite_df(fit, c)
+    kind, slope = contrast_kind(design, random, c)
+    if kind == CONTRAST_SLOPE:
+        G, _ = slope_design(design, random, slope)
+        df = slope_df(design.matrix, design.animal, present, random.slope_columns[slope], G)
+    elif kind == CONTRAST_SLOPES:
+        # the smallest between-animal df of the slopes combined
+        ones = np.ones((design.n_animals, 1))
+        df = np.min(
+            [
+                slope_df(design.matrix, design.animal, present, col, ones)
+                for col, weight in ((k, c[k]) for k in random.slope_columns)
+                if weight != 0
+            ],
+            axis=0,
+        )
+    else:
+        df = between_animal_df(design.matrix, design.animal, present, c)
+        if kind != CONTRAST_ANIMAL and random.slope_columns:
+            # mixed levels: the smaller df of the animal-level part and of each slope
+            for i in range(len(random.slope_columns)):
+                G, _ = slope_design(design, random, i)
+                df = np.minimum(
+                    df,
+                    slope_df(design.matrix, design.animal, present, random.slope_columns[i], G),
+                )
+    if random.animal_group is not None:
+        # one between-animal variance per group: Welch–Satterthwaite df, each group's
+        # share of the contrast's variance judged against that group's own animals;
+        # never above the between-animal rule
+        from grouplevel.model.mixed import group_welch_df
+
+        welch = group_welch_df(fit, c, design.matrix, design.animal, random.animal_group)
+        df = np.where(np.isfinite(welch), np.minimum(welch, df), df)
+    return df
+
+
+def _group_variance_warning(
+    label: str, fl: FirstLevel, animal_data: Callable[[], AnimalLevelData]
+) -> str | None:
+    """Caution when the groups of an animal-level factor look unequally variable.
+
+    The rule (docs/model.md): for every animal-level text variable of the formula with
+    two or more animals per level, the per-voxel ratio of two groups' sample variances
+    of the per-animal estimates is divided by the median of the F distribution it
+    follows when the groups are equally variable; the median of that over fitted voxels
+    beyond ``VARIANCE_RATIO_WARNING`` (or below its inverse) gives the warning.
+    """
+    design, random = fl.design, fl.random
+    if random.variance_groups is not None:
+        return None
+    runs = fl.runs
+    first = np.array([np.flatnonzero(design.animal == a)[0] for a in range(design.n_animals)])
+    factors = {}
+    for var in sorted(
+        {v for j in np.flatnonzero(design.animal_level) for v in design.column_variables[j]}
+    ):
+        if var not in runs.columns or pd.api.types.is_numeric_dtype(runs[var]):
+            continue
+        level = runs[var].astype(str).to_numpy()[first]
+        names = sorted(set(level))
+        if len(names) >= 2 and min((level == n).sum() for n in names) >= 2:
+            factors[var] = (level, names)
+    if not factors:
+        return None
+    data, taking_part = animal_data()
+    worst = None
+    for var, (level, names) in factors.items():
+        spread = {}
+        for n in names:
+            sel = (level == n)[taking_part]
+            values = np.where(data.precision[:, sel] > 0, data.mean[:, sel], np.nan)
+            spread[n] = (np.nanvar(values, axis=1, ddof=1), int(sel.sum()) - 1)
+        for i, a in enumerate(names):
+            for b in names[i + 1 :]:
+                (va, da), (vb, db) = spread[a], spread[b]
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    ratio = va / vb
+                ratio = ratio[np.isfinite(ratio) & (ratio > 0)]
+                if not ratio.size:
+                    continue
+                score = float(np.median(ratio) / stats.f.median(da, db))
+                big = max(score, 1.0 / score)
+                if big >= VARIANCE_RATIO_WARNING and (worst is None or big > worst[0]):
+                    more, less = (a, b) if score > 1 else (b, a)
+                    worst = (big, var, more, less)
+    if worst is None:
+        return None
+    big, var, more, less = worst
+    return (
+        f"{label}: animals of {var} = {more} differ from each other about {big:.1f} times "
+        f"as much as animals of {var} = {less} (median over voxels of the ratio of the "
+        "groups' variances of per-animal estimates, against its value for equal "
+        "variances); one between-animal variance for all animals then gives wrong p-values "
+        f'for group comparisons. Consider [model] variance_groups = "{var}"'
     )
 
 
@@ -179,14 +462,18 @@ def _fit_first_level(
     # index only when needed: a boolean index copies the runs × voxels array
     y = data.effect if keep.all() else data.effect[:, keep]
     s2 = data.variance if data.variance is None or keep.all() else data.variance[:, keep]
-    design = fl.design
-    log(f"fitting {label}: {y.shape[1]:,} voxels, {y.shape[0]} runs, {design.n_animals} animals")
-    fit = fit_voxel_chunks(
+    design, random = fl.design, fl.random
+    described = describe_random_effects(design, random)
+    log(
+        f"fitting {label}: {y.shape[1]:,} voxels, {y.shape[0]} runs, {design.n_animals} "
+        f"animals; {described}"
+    )
+    fit = fit_design(
         backend or Backend(kind="local"),
         y,
         s2,
-        design.matrix,
-        design.animal,
+        design,
+        random,
         estimate_run_variance=settings.model.run_variance == "estimate",
         max_iter=settings.model.max_iter,
         memory_gb=settings.compute.memory_gb,
@@ -204,12 +491,30 @@ def _fit_first_level(
             "with data there, or a design without rank on those runs); their maps are 0"
         )
     present = np.isfinite(y)
+    if s2 is not None:
+        present &= np.isfinite(s2)
+    components = _components(fit)
+    var_animal = _pooled_var_animal(fit, random)
     smooth = _smoothness(y, s2, fit, design.matrix, mask, study.grid)
-    animal_data = None
-    if settings.inference.permutations > 0:
-        animal_data = animal_level_data(
-            y, s2, design.matrix, design.animal, fit.var_run, fit.var_animal, design.columns
-        )
+    reduced: dict[tuple, tuple[AnimalLevelData, np.ndarray, np.ndarray]] = {}
+
+    def reduced_for(c: np.ndarray) -> tuple[AnimalLevelData, np.ndarray, np.ndarray]:
+        kind, slope = contrast_kind(design, random, c)
+        # the reduced data depend on the level tested; the reduced contrast on c itself
+        key = (kind, slope, tuple(c))
+        if key not in reduced:
+            reduced[key] = _reduced_data(y, s2, fit, design, random, c)
+        return reduced[key]
+
+    group_note = None
+    animal_columns = np.flatnonzero(~design.within)
+    if animal_columns.size:
+        # the animals' own intercepts (the reduction of any animal-level contrast)
+        on_animal = np.zeros(len(design.columns))
+        on_animal[animal_columns[0]] = 1.0
+        group_note = _group_variance_warning(label, fl, lambda: reduced_for(on_animal)[::2])
+    if group_note:
+        warnings.append(group_note)
     regions = None
     if study.atlas is not None:
         regions = region_data(
@@ -222,16 +527,30 @@ def _fit_first_level(
         )
     results = []
     for cname, c in fl.contrasts:
-        if settings.model.df == "satterthwaite":
-            df = satterthwaite_df(fit, c)
-        else:
-            df = between_animal_df(design.matrix, design.animal, present, c)
+        df = _contrast_df(study, fl, fit, present, c)
         res = test_contrast(fit, c, df)
         default = cname == DEFAULT_CONTRAST_NAME
         name = fl.output_name(cname, default)
         df_full = np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy()
+        kind, slope = contrast_kind(design, random, c)
+        animal_data, c_reduced, groups = None, c, random.animal_group
+        if settings.inference.permutations > 0:
+            # check refuses every contrast that cannot be permuted correctly
+            animal_data, c_reduced, taking_part = reduced_for(c)
+            if groups is not None:
+                groups = groups[taking_part]
         corrected = _correct(
-            study, c, res.t, df_full, animal_data, smooth, mask, name, quiet, backend
+            study,
+            c_reduced,
+            res.t,
+            df_full,
+            animal_data,
+            smooth,
+            mask,
+            name,
+            quiet,
+            backend,
+            groups,
         )
         warnings.extend(corrected.warnings)
         gm = GroupMap(
@@ -247,7 +566,7 @@ def _fit_first_level(
             df=df_full,
             z=res.z,
             p=res.p,
-            var_animal=fit.var_animal,
+            var_animal=var_animal,
             var_run=fit.var_run,
             coverage_runs=fl.coverage_runs,
             coverage_animals=fl.coverage_animals,
@@ -255,6 +574,9 @@ def _fit_first_level(
             n_animals=design.n_animals,
             n_runs=len(fl.runs),
             inference=corrected,
+            components=components,
+            random_effects=described,
+            tested_level=kind,
         )
         if regions is not None:
             gm = replace(gm, tables=region_tables(gm, regions, design, c, settings))
@@ -383,6 +705,9 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "group_contrast": gm.contrast,
         "weights": gm.weights,
         "design_columns": list(fl.design.columns),
+        # where each column varies: "animal", "session" or "run" (docs/model.md)
+        "design_levels": dict(zip(fl.design.columns, fl.design.level, strict=True)),
+        "sessions": fl.design.n_sessions,
         "animals": gm.n_animals,
         "runs": gm.n_runs,
         "runs_per_animal": {str(k): int(v) for k, v in runs_per_animal.items()},
@@ -404,6 +729,9 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "not_converged_voxels": gm.not_converged,
         "var_animal_median": float(np.median(gm.var_animal)),
         "var_run_median": float(np.median(gm.var_run)),
+        "random_effects": gm.random_effects,
+        "tested_level": gm.tested_level,
+        "variance_components": _components_summary(gm),
         "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
         "inference": _inference_summary(gm, study.settings.inference.alpha),
     }
@@ -431,6 +759,21 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
     return entry
 
 
+def _components_summary(gm: GroupMap) -> dict[str, dict]:
+    """Every variance component: its map file and its median over fitted voxels."""
+    files = component_files(gm.components)
+    files.setdefault("animal", ("var_animal", ""))
+    files.setdefault("run", ("var_run", ""))
+    out = {}
+    for name, values in gm.components.items():
+        finite = values[np.isfinite(values)]
+        out[name] = {
+            "map": f"{files[name][0]}.nii.gz",
+            "median": float(np.median(finite)) if finite.size else None,
+        }
+    return out
+
+
 def _unfitted_as_null(key: str, values: np.ndarray) -> np.ndarray:
     """Unfittable voxels hold NaN: written as p = 1 in p-type maps (0 elsewhere)."""
     if key in ("p", "q") or key.startswith("p_"):
@@ -452,6 +795,14 @@ def _write_group_map(folder: Path, gm: GroupMap) -> None:
             grid,
             f"grouplevel {what} [{label}]",
             df=float(dfs[0]) if key == "t" and dfs.size == 1 else None,
+        )
+    for cname, (stem, what) in component_files(gm.components).items():
+        write_map(
+            folder / f"{stem}.nii.gz",
+            gm.components[cname],
+            gm.mask,
+            grid,
+            f"grouplevel {what} [{label}]",
         )
     full = np.ones(grid.shape, dtype=bool)
     for stem, values, what, dtype in (

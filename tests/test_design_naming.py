@@ -23,7 +23,7 @@ from scipy import stats
 
 import grouplevel
 from grouplevel.cli import main
-from grouplevel.design import build_design, column_levels, formula_variables
+from grouplevel.design import build_design, formula_variables, variable_levels
 from grouplevel.inference.permutation import (
     count_design_symmetries,
     is_mean_contrast,
@@ -259,13 +259,13 @@ def test_nonlinear_covariate_has_no_default_slope():
 def test_column_levels_from_the_table():
     frame = _runs(order=[1.0, 2.0] * 6, session=["s1", "s2"] * 6)
     frame["drug"] = ["saline", "ketamine"] * 6
-    assert column_levels(frame, ["genotype", "dose", "order", "drug"]) == {
+    assert variable_levels(frame, ["genotype", "dose", "order", "drug"]) == {
         "genotype": "animal",
         "dose": "animal",
         "order": "session",
         "drug": "session",
     }
-    assert column_levels(_runs(order=[1.0, 2.0] * 6), ["order"]) == {"order": "run"}
+    assert variable_levels(_runs(order=[1.0, 2.0] * 6), ["order"]) == {"order": "run"}
 
 
 # --------------------------------------------------------------------------------------

@@ -126,7 +126,15 @@ def test_config_is_accepted_by_the_settings_reader(
 
     load_settings(study / "study.toml")  # unknown keys or bad values would raise
     config = tomllib.loads((study / "study.toml").read_text())
-    assert set(config) == {"study", "space", "atlas", "model", "inference", "questions"}
+    assert set(config) == {
+        "study",
+        "space",
+        "atlas",
+        "model",
+        "comparison",
+        "inference",
+        "questions",
+    }
     assert "invented" in config["study"]["title"].lower()
     assert config["study"]["min_coverage"] == 0.8
     assert config["model"] == {"formula": "1", "run_variance": "estimate"}

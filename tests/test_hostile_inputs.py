@@ -501,7 +501,10 @@ def test_control_character_in_a_contrast_name_of_the_study_file(tmp_path, capsys
         tmp_path,
         toml_extra='\n[[contrast]]\nname = "mean\\tresponse"\nweights = { Intercept = 1 }\n',
     )
-    refused_alike(toml, capsys, "study.toml: [[contrast]] name: 'mean\\tresponse' holds a tab")
+    # the name rule of result folders (grouplevel.outputs.names) refuses it first
+    refused_alike(
+        toml, capsys, "[contrast 1] name: 'mean\\tresponse' holds a control character (code 9)"
+    )
 
 
 def _with_atlas(tmp_path: Path, label_text: str) -> Path:

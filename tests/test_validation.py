@@ -295,13 +295,28 @@ def test_unknown_cluster_method_suggests(tmp_path, capsys):
     assert code == 2 and "did you mean 'tfce'" in text
 
 
-def test_permutations_refused_for_run_level_covariates(tmp_path, capsys):
+def test_permutations_refused_for_run_level_covariates_without_slope(tmp_path, capsys):
+    # a run-level column tested without its random slope cannot be permuted: the
+    # animals' own effects are what is exchanged
+    toml = basic(
+        tmp_path,
+        columns={"order": ["1", "2", "1", "2", "1", "2"]},
+        model='formula = "1 + order"\nrandom_slopes = "none"',
+        toml_extra='\n[[contrast]]\nname = "order"\nweights = { order = 1 }\n',
+    )
+    code, text = check(toml, capsys)
+    assert code == 2 and "within-animal column(s) (order) that have no random slope" in text
+    assert "[inference] permutations" in text and "permutations = 0" in text
+
+
+def test_run_level_nuisance_with_permutations_passes_check(tmp_path, capsys):
+    # an untested run-level covariate is a fixed nuisance effect; the animal-level mean
+    # is permuted on the animals' own estimates
     toml = basic(
         tmp_path, columns={"order": ["1", "2", "1", "2", "1", "2"]}, model='formula = "1 + order"'
     )
     code, text = check(toml, capsys)
-    assert code == 2 and "run-level design columns (order)" in text
-    assert "not exchangeable" in text and "permutations = 0" in text
+    assert code == 0, text
 
 
 def test_atlas_labels_missing_from_table_flow_through_check(tmp_path, capsys):

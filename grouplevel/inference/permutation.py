@@ -11,7 +11,19 @@ the units of every permutation are whole animals.
 * Nuisance covariates are handled by Freedman–Lane: the data are reduced to the
   residuals of the nuisance-only model, those are flipped or permuted, and the nuisance
   fit is added back (Winkler et al. 2014).
-* Contrasts that involve run-level covariates are refused (see :func:`animal_level_data`).
+* A contrast of a **within-animal effect with a random slope per animal** (drug vs
+  vehicle within every animal) is tested on each animal's own estimate of that effect
+  (:func:`animal_effect_data`): every animal's runs are reduced to its GLS estimate of
+  the effect and its precision at the fitted variance components, and whole animals'
+  own effects are sign-flipped (or permuted between positions of the slope's
+  animal-level design, for an effect that differs between groups) — multi-level
+  exchangeability with animals as the exchangeable blocks (Winkler et al. 2015).
+* Contrasts that weight a within-animal column without its random slope are refused
+  (see :func:`animal_level_data`).
+* With **one between-animal variance per group of animals** the animals are not
+  exchangeable between groups; the errors are still symmetric, so whole animals are
+  sign-flipped (Freedman–Lane residuals for a group difference) and the statistic is
+  the heteroscedasticity-robust G statistic (:func:`g_statistic`; Winkler et al. 2014).
 
 The mixed-model statistic is recomputed for every permutation, cheaply. For a design
 whose columns are constant within animals, the REML likelihood separates into a
@@ -36,6 +48,9 @@ levels. J Bus Econ Stat 1:292-298.
 
 Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014). Permutation inference
 for the general linear model. NeuroImage 92:381-397.
+
+Winkler AM, Webster MA, Vidaurre D, Nichols TE, Smith SM (2015). Multi-level block
+permutation. NeuroImage 123:253-268.
 
 Smith SM, Nichols TE (2009). Threshold-free cluster enhancement. NeuroImage 44:83-98.
 """
@@ -178,6 +193,159 @@ def animal_level_data(
         design=Xa,
         var_animal=var_animal,
     )
+
+
+# Voxels per chunk of the per-animal dense solves in :func:`animal_effect_data` (each
+# chunk holds a few (chunk, runs of one animal, runs of one animal) arrays).
+_EFFECT_CHUNK_VOXELS = 8192
+# A per-animal coefficient counts as estimable when ``(M⁺M)`` reproduces its unit vector
+# to this tolerance (common practice for rank decisions in double precision).
+_ESTIMABLE_TOL = 1e-8
+
+
+def animal_effect_data(
+    y: np.ndarray,
+    variance: np.ndarray | None,
+    own: np.ndarray,
+    target: int | np.ndarray,
+    animal: np.ndarray,
+    design: np.ndarray,
+    var_run: np.ndarray,
+    var_effect: np.ndarray,
+    *,
+    session: np.ndarray | None = None,
+    var_session: np.ndarray | None = None,
+    offset: np.ndarray | None = None,
+) -> AnimalLevelData:
+    """Reduce each animal's runs to its own GLS estimate of one effect and its precision.
+
+    For animal a with runs r, the runs are regressed on the animal's own design
+    ``[1, own[r]]`` (intercept and its within-animal effects) by generalised least
+    squares with the within-animal covariance ``diag(σ̂² + s_k²) + ω̂² S Sᵀ`` (``S`` the
+    runs × sessions indicator; ω̂² = 0 without sessions). Coefficient ``target`` of that
+    fit (0: the animal's intercept; 1 + i: its own i-th within-animal effect) and
+    ``1 / Var`` of it are the animal-level data. Across animals that estimate follows
+    ``design · γ + η_a + ε_a`` with ``η_a ~ N(0, var_effect)`` (the random intercept or
+    slope) and ``ε_a`` of the computed precision, which is the model the permutation
+    refit re-estimates.
+
+    Parameters
+    ----------
+    y, variance
+        (n_runs, V) effects and first-level variances (NaN: no data).
+    own
+        (n_runs, q) the within-animal columns each animal gets its own coefficient for
+        (the random-slope columns); q may be 0.
+    target
+        Which coefficient of ``[1, own]`` is reduced, or (1 + q,) weights of a
+        combination of them (e.g. condition B minus condition C).
+    animal
+        (n_runs,) animal codes 0..m-1.
+    design
+        (m, r) the animal-level design of the target (its rows are one per animal).
+    var_run, var_effect
+        (V,) fitted σ̂² and the target's between-animal variance (start of each refit).
+    session, var_session
+        (n_runs,) session codes and (V,) ω̂², or None.
+    offset
+        (n_runs, V) fixed-effect fit of within-animal columns without a random slope
+        (nuisance), subtracted from ``y`` first; None for none.
+
+    Returns
+    -------
+    AnimalLevelData
+        Animals without information on the target at a voxel (fewer runs than
+        coefficients, or the target column constant over their runs there) get
+        precision 0.
+
+    References
+    ----------
+    Winkler AM, Webster MA, Vidaurre D, Nichols TE, Smith SM (2015). Multi-level block
+    permutation. NeuroImage 123:253-268.
+    """
+    own = np.asarray(own, dtype=float).reshape(len(animal), -1)
+    m = int(animal.max()) + 1
+    n_vox = y.shape[1]
+    mean = np.zeros((n_vox, m))
+    prec = np.zeros((n_vox, m))
+    var_run = np.asarray(var_run, dtype=float)
+    omega = None if session is None else np.asarray(var_session, dtype=float)
+    for a in range(m):  # a loop over animals; every voxel at once inside
+        rows = np.flatnonzero(animal == a)
+        Xa = np.column_stack([np.ones(rows.size), own[rows]])
+        same = None
+        if session is not None:
+            same = (session[rows][:, None] == session[rows][None, :]).astype(float)
+        for lo in range(0, n_vox, _EFFECT_CHUNK_VOXELS):
+            sl = slice(lo, min(n_vox, lo + _EFFECT_CHUNK_VOXELS))
+            b, v = _own_fit(
+                y,
+                variance,
+                offset,
+                rows,
+                sl,
+                Xa,
+                target,
+                var_run[sl],
+                None if omega is None else omega[sl],
+                same,
+            )
+            mean[sl, a] = b
+            prec[sl, a] = v
+    return AnimalLevelData(
+        mean=np.ascontiguousarray(mean),
+        precision=np.ascontiguousarray(prec),
+        design=np.asarray(design, dtype=float).reshape(m, -1),
+        var_animal=np.asarray(var_effect, dtype=float).copy(),
+    )
+
+
+def _own_fit(y, variance, offset, rows, sl, Xa, target, var_run, omega, same):
+    """GLS estimate and precision of one coefficient for one animal, chunk of voxels."""
+    yc = np.asarray(y[rows, sl], dtype=float).T  # (v, n_a)
+    if offset is not None:
+        yc = yc - np.asarray(offset[rows, sl], dtype=float).T
+    present = np.isfinite(yc)
+    s2 = np.zeros_like(yc)
+    if variance is not None:
+        vc = np.asarray(variance[rows, sl], dtype=float).T
+        present &= np.isfinite(vc)
+        s2 = np.where(present, vc, 0.0)
+    d = np.maximum(var_run[:, None] + s2, VARIANCE_FLOOR)
+    n_a = rows.size
+    cov = np.zeros((yc.shape[0], n_a, n_a))
+    if same is not None:
+        cov += omega[:, None, None] * same[None]
+    cov[:, np.arange(n_a), np.arange(n_a)] += d
+    # runs without data: uncoupled, unit variance, zero rows of design and data
+    off = ~present
+    both = off[:, :, None] | off[:, None, :]
+    cov = np.where(both, 0.0, cov)
+    cov[:, np.arange(n_a), np.arange(n_a)] = np.where(
+        off, 1.0, cov[:, np.arange(n_a), np.arange(n_a)]
+    )
+    Xv = np.where(present[:, :, None], Xa[None], 0.0)  # (v, n_a, k)
+    yv = np.where(present, yc, 0.0)
+    L = np.linalg.cholesky(cov)
+    Xw = np.linalg.solve(L, Xv)
+    yw = np.linalg.solve(L, yv[..., None])[..., 0]
+    M = np.einsum("vnk,vnl->vkl", Xw, Xw)
+    Minv = np.linalg.pinv(M, hermitian=True)
+    coef = np.einsum("vkl,vnl,vn->vk", Minv, Xw, yw)
+    k = Xa.shape[1]
+    if np.ndim(target) == 0:
+        unit = np.zeros(k)
+        unit[int(target)] = 1.0
+    else:
+        unit = np.asarray(target, dtype=float)
+    recon = unit @ np.einsum("vkl,vlj->vkj", Minv, M)
+    scale = max(1.0, float(np.abs(unit).max()))
+    estimable = np.all(np.abs(recon - unit) < _ESTIMABLE_TOL * max(1.0, k) * scale, axis=1)
+    var_t = np.einsum("k,vkl,l->v", unit, Minv, unit)
+    ok = estimable & (var_t > 0) & np.isfinite(var_t)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        precision = np.where(ok, 1.0 / var_t, 0.0)
+    return np.where(ok, coef @ unit, 0.0), precision
 
 
 def partition_design(design: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -498,7 +666,10 @@ def _fwe_p(observed: np.ndarray, null_max: np.ndarray) -> np.ndarray:
 
 
 class PermutationBackend(Protocol):
-    """What :func:`permutation_test` needs of a compute backend (:mod:`grouplevel.compute`)."""
+    """What :func:`permutation_test` needs of a compute backend.
+
+    See :mod:`grouplevel.results.compute`.
+    """
 
     @property
     def distributed(self) -> bool:
@@ -589,6 +760,75 @@ class _PermutationWork:
         return max_stat, int(extent), float(mass), max_tfce
 
 
+# Smallest residual variance of a variance group, relative to the voxel's largest one,
+# in the G statistic (keeps the weights finite where a group's residuals are all 0;
+# our own choice, far below any variance that data resolve).
+_G_VARIANCE_FLOOR = 1e-12
+
+
+def g_statistic(Y: np.ndarray, X: np.ndarray, c: np.ndarray, groups: np.ndarray) -> np.ndarray:
+    """The G statistic of a rank-one contrast with one variance per group of rows.
+
+    Ordinary least-squares residuals ``ε̂ = R Y`` (``R = I − X X⁺``) give each group's
+    variance ``σ̂²_g = Σ_{a∈g} ε̂_a² / Σ_{a∈g} R_aa``; then weighted least squares with
+    weights ``1/σ̂²_g(a)`` gives ``G = cᵀβ̂ / √(cᵀ(XᵀWX)⁻¹c)`` — the Aspin–Welch v for two
+    group means.
+
+    Parameters
+    ----------
+    Y : ndarray, shape (V, m)
+    X : ndarray, shape (m, r)
+    c : ndarray, shape (r,)
+    groups : ndarray of int, shape (m,)
+
+    Returns
+    -------
+    ndarray, shape (V,)
+
+    References
+    ----------
+    Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014). Permutation
+    inference for the general linear model. NeuroImage 92:381-397 (Appendix A).
+    """
+    n_groups = int(groups.max()) + 1
+    R = np.eye(X.shape[0]) - X @ np.linalg.pinv(X)
+    E = Y @ R.T
+    onehot = np.zeros((X.shape[0], n_groups))
+    onehot[np.arange(X.shape[0]), groups] = 1.0
+    trace = np.diag(R) @ onehot
+    s2 = (E * E) @ onehot / np.maximum(trace, 1e-300)
+    s2 = np.maximum(s2, _G_VARIANCE_FLOOR * np.maximum(s2.max(axis=1, keepdims=True), 1e-300))
+    w = 1.0 / s2[:, groups]  # (V, m)
+    info = np.einsum("va,ar,as->vrs", w, X, X)
+    rhs = np.einsum("va,ar,va->vr", w, X, Y)
+    beta = np.linalg.solve(info, rhs[..., None])[..., 0]
+    var = np.einsum("r,vrs,s->v", c, np.linalg.inv(info), c)
+    return (beta @ c) / np.sqrt(var)
+
+
+@dataclass(frozen=True, eq=False)
+class _GroupVarianceWork(_PermutationWork):
+    """Permutation work whose statistic is the G statistic of the animal-level data."""
+
+    groups: np.ndarray = None  # type: ignore[assignment]  # (m,) variance group codes
+
+    def statistic(self, k: int) -> np.ndarray:
+        Y = self.fitted + self.signs[k][None, :] * self.residual
+        unit = np.zeros(self.X_perm.shape[1])
+        unit[0] = 1.0
+        g = g_statistic(Y, self.X_perm, unit, self.groups)
+        # to z at equal p on each voxel's df (the tables of the refit kernel)
+        u = np.arcsinh(np.abs(g))
+        z = np.empty_like(g)
+        for row in np.unique(self.df_row):  # a loop over distinct df values
+            sel = self.df_row == row
+            z[sel] = np.interp(u[sel], self._u_grid(), self.tables[row])
+        return np.sign(g) * z
+
+    def _u_grid(self) -> np.ndarray:
+        return np.arange(self.tables.shape[1]) * self.du
+
+
 def maxima_rows(work: _PermutationWork, ks: np.ndarray) -> np.ndarray:
     """(len(ks), 4) null maxima of the permutations ``ks``: one task of a distributed run."""
     out = np.zeros((len(ks), 4))
@@ -615,6 +855,7 @@ def permutation_test(
     progress: Callable[[int, int], None] | None = None,
     threads: int | None = None,
     backend: PermutationBackend | None = None,
+    variance_groups: np.ndarray | None = None,
 ) -> PermutationResult:
     """Run the permutation test of contrast ``c`` and return FWE-corrected maps.
 
@@ -645,11 +886,18 @@ def permutation_test(
     backend
         Where the permutations run. None, or a backend whose ``distributed`` is False,
         runs them here in ``threads`` threads. A distributed backend
-        (:func:`grouplevel.compute.open_backend` with ``backend = "dask"``) sends the
+        (:func:`grouplevel.results.compute.open_backend` with ``backend = "dask"``) sends the
         shared arrays to every worker once and evaluates batches of the permutation plan
         there; the plan is drawn here from ``rng`` first, so the same seed gives the
         same null maxima and p-values on either backend. The observed maps are always
         computed here.
+    variance_groups
+        (m,) group code of every animal when the groups have their own between-animal
+        variance. The test then assumes independent and symmetric errors only (not
+        equal variances): whole animals are sign-flipped (Freedman–Lane residuals for a
+        group difference), and the statistic is the G statistic of Winkler et al.
+        (2014) — a weighted least-squares t with one residual variance per group —
+        converted to z at ``df``. Every animal must have data at every voxel.
 
     References
     ----------
@@ -659,11 +907,19 @@ def permutation_test(
     check_sided(sided)
     x_i, Z = partition_design(data.design, c)
     X_perm = np.column_stack([x_i, Z])
-    scheme = plan_permutations(x_i, Z, n_permutations, rng, sided)
     V, m = data.mean.shape
+    if variance_groups is not None:
+        # unequal variances: only sign flips keep the errors' distribution (symmetric
+        # errors, Winkler et al. 2014, "ISE"); a constant regressor asks for them
+        scheme = plan_permutations(np.ones(m), Z[:, :0], n_permutations, rng, sided)
+    else:
+        scheme = plan_permutations(x_i, Z, n_permutations, rng, sided)
     # Freedman–Lane: nuisance-only GLS fit at the unpermuted τ̂² (per voxel)
     fitted = np.zeros_like(data.mean)
-    if Z.shape[1]:
+    if Z.shape[1] and variance_groups is not None:
+        # the G statistic's own (ordinary least-squares) nuisance fit
+        fitted = data.mean @ (Z @ np.linalg.pinv(Z)).T
+    elif Z.shape[1]:
         w = data.precision / (1.0 + data.var_animal[:, None] * data.precision)
         ZtW = np.einsum("am,va->vma", Z, w)  # (V, q, m)
         A = ZtW @ Z  # (V, q, q)
@@ -674,7 +930,17 @@ def permutation_test(
     to_z = _TtoZ(np.asarray(df, dtype=float))
     thr = cluster_forming_z(cluster_forming_p, sided)
     tables = np.ascontiguousarray(np.array(to_z.tables))
-    work = _PermutationWork(
+    kind = _PermutationWork
+    extra: dict = {}
+    if variance_groups is not None:
+        if np.any(data.precision <= 0):
+            raise ArgumentError(
+                "variance_groups: the G statistic needs data from every animal at every "
+                "voxel (a precision of 0 was given)"
+            )
+        kind = _GroupVarianceWork
+        extra = {"groups": np.asarray(variance_groups, dtype=np.int64)}
+    work = kind(
         fitted=np.ascontiguousarray(fitted),
         residual=np.ascontiguousarray(residual),
         precision=np.ascontiguousarray(data.precision),
@@ -693,6 +959,7 @@ def permutation_test(
         use_tfce=use_tfce,
         tfce_E=tfce_E,
         tfce_H=tfce_H,
+        **extra,
     )
 
     n = scheme.n

@@ -51,6 +51,13 @@ DEFAULT_TFCE = True
 DEFAULT_TFCE_E = 0.5  # Smith & Nichols 2009, NeuroImage 44:83
 DEFAULT_TFCE_H = 2.0  # Smith & Nichols 2009
 DEFAULT_MAX_ITER = 100  # Fisher scoring iterations per voxel; REML converges in ~5-15
+# A within-animal effect that a contrast tests gets a random slope per animal: without it
+# its test is anti-conservative (Barr, Levy, Scheepers & Tily 2013, J Mem Lang 68:255).
+DEFAULT_RANDOM_SLOPES = "auto"
+# Sessions nested in animals get their own variance when the runs table has repeated
+# sessions with several runs (otherwise day-to-day variance is pooled into the run
+# variance and a session-level effect is tested against too many df; common practice).
+DEFAULT_SESSIONS = "auto"
 DEFAULT_ORIGIN_NAME = "origin"
 # Share of the analysis mask that the atlas must label (our own choice: below one half the
 # atlas is almost surely on another grid or in another space, and most clusters would be
@@ -79,6 +86,8 @@ RUN_VARIANCE_CHOICES = ("estimate", "known")
 CONNECTIVITY_CHOICES = (6, 18, 26)
 FDR_CHOICES = ("bh", "by")
 DF_CHOICES = ("between", "satterthwaite")
+RANDOM_SLOPES_WORDS = ("auto", "none")
+SESSIONS_CHOICES = ("auto", "model", "none")
 
 
 @dataclass(frozen=True)
@@ -161,6 +170,10 @@ class ModelSettings:
     center_covariates: bool = DEFAULT_CENTER_COVARIATES
     # reference level per text variable of the formula (default: alphabetically first)
     reference: dict[str, str] = field(default_factory=dict)
+    # "auto", "none" or the formula variables that get a random slope per animal
+    random_slopes: str | tuple[str, ...] = DEFAULT_RANDOM_SLOPES
+    sessions: str = DEFAULT_SESSIONS
+    variance_groups: str | None = None  # animal-level factor: one τ² per level
 
 
 @dataclass(frozen=True)
@@ -253,7 +266,17 @@ _SCHEMA: dict[str, tuple[str, ...]] = {
         "edge_distance_voxels",
         "outlier_z",
     ),
-    "model": ("formula", "run_variance", "df", "max_iter", "center_covariates", "reference"),
+    "model": (
+        "formula",
+        "run_variance",
+        "df",
+        "max_iter",
+        "center_covariates",
+        "reference",
+        "random_slopes",
+        "sessions",
+        "variance_groups",
+    ),
     "contrast": ("name", "weights"),
     "comparison": ("name", "conditions"),
     "inference": (
@@ -453,6 +476,7 @@ def load_settings(path: str | Path) -> Settings:
         max_iter=max_iter,
         center_covariates=r.get("model", m, "center_covariates", bool, DEFAULT_CENTER_COVARIATES),
         reference=dict(reference),
+        **_read_random_effects(r, m),
     )
 
     contrasts: list[ContrastSpec] = []
@@ -677,6 +701,46 @@ def _read_comparisons(r: _Reader, raw: dict[str, Any]) -> tuple[ComparisonSpec, 
             continue
         out.append(ComparisonSpec(name=name, conditions=weights))
     return tuple(out)
+
+
+def _read_random_effects(r: _Reader, m: dict[str, Any]) -> dict[str, Any]:
+    """``random_slopes``, ``sessions`` and ``variance_groups`` of [model]."""
+    slopes = r.get("model", m, "random_slopes", (str, list), DEFAULT_RANDOM_SLOPES)
+    if isinstance(slopes, str) and slopes not in RANDOM_SLOPES_WORDS:
+        r.problem(
+            "[model] random_slopes",
+            f'must be "auto", "none" or a list of formula variables, got {slopes!r}'
+            + _suggest(slopes, RANDOM_SLOPES_WORDS),
+        )
+        slopes = DEFAULT_RANDOM_SLOPES
+    elif isinstance(slopes, list):
+        if not slopes or not all(isinstance(v, str) and v.strip() for v in slopes):
+            r.problem(
+                "[model] random_slopes",
+                f'a list must name formula variables (e.g. ["drug"]), got {slopes!r}',
+            )
+            slopes = DEFAULT_RANDOM_SLOPES
+        else:
+            slopes = tuple(dict.fromkeys(v.strip() for v in slopes))
+    sessions = r.get("model", m, "sessions", str, DEFAULT_SESSIONS)
+    if sessions not in SESSIONS_CHOICES:
+        r.problem(
+            "[model] sessions",
+            f"must be one of {', '.join(SESSIONS_CHOICES)}, got {sessions!r}"
+            + _suggest(sessions, SESSIONS_CHOICES),
+        )
+        sessions = DEFAULT_SESSIONS
+    groups = r.get("model", m, "variance_groups", str, None)
+    if groups is not None and not groups.strip():
+        r.problem(
+            "[model] variance_groups", "is empty; name an animal-level column or leave it out"
+        )
+        groups = None
+    return {
+        "random_slopes": slopes,
+        "sessions": sessions,
+        "variance_groups": groups.strip() if groups else None,
+    }
 
 
 def _read_questions(

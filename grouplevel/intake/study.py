@@ -27,10 +27,12 @@ from grouplevel.intake.bids import derivatives_table
 from grouplevel.intake.comparisons import PAIRED_LINES, TERMS, combine, comparison_rows
 from grouplevel.intake.design import (
     Design,
+    RandomEffects,
     build_design,
     contrast_vector,
     formula_variables,
     missing_variables,
+    model_problems,
 )
 from grouplevel.intake.images import Grid, grid_mismatch, read_header_grid, read_volume
 from grouplevel.intake.settings import (
@@ -71,6 +73,7 @@ class FirstLevel:
     conditions: dict[str, float] | None = None
     # group contrast name -> what it tests, in plain words (default contrasts)
     contrast_meanings: dict[str, str] = field(default_factory=dict)
+    random: RandomEffects = field(default_factory=RandomEffects)  # slopes, sessions, groups
 
     def output_name(self, contrast_name: str, default_contrast: bool) -> str:
         """Folder name of a group contrast's maps (see DESIGN.md, output contract)."""
@@ -715,19 +718,22 @@ def inspect_study(settings: Settings) -> Study:
         except UserError as exc:
             problems.append(f"{label}: {exc}")
             continue
-        if settings.inference.permutations > 0 and not design.animal_level.all():
-            run_level = [
-                c for c, b in zip(design.columns, design.animal_level, strict=True) if not b
-            ]
-            problems.append(
-                f"{label}: [inference] permutations = {settings.inference.permutations} with "
-                f"run-level design columns ({', '.join(run_level)}): permutation inference "
-                "exchanges whole animals, and runs of one animal are not exchangeable with "
-                "each other (their first-level variances differ), so a run-level covariate "
-                "cannot be permuted without breaking the nesting of runs in animals. Set "
-                "permutations = 0 (parametric maps only) or use animal-level covariates"
-            )
         contrasts, meanings = _group_contrasts(settings, design, label, problems)
+        random = RandomEffects()
+        try:
+            random, model_notes, model_warnings = model_problems(
+                design,
+                inc,
+                contrasts,
+                settings.model,
+                settings.inference.permutations,
+                full_coverage=settings.study.min_coverage >= 1.0,
+            )
+        except UserError as exc:
+            problems.append(f"{label}: {exc}")
+        else:
+            problems.extend(f"{label}: {p}" for p in model_notes)
+            warnings.extend(f"{label}: {w}" for w in model_warnings)
         # -- data pass over this contrast's maps --
         cov_runs = np.zeros(grid.shape, dtype=np.int32)
         animal_seen = np.zeros((design.n_animals, *grid.shape), dtype=bool)
@@ -817,6 +823,7 @@ def inspect_study(settings: Settings) -> Study:
                 variance_kind=variance_kind,
                 conditions=comparison_weights.get(name),
                 contrast_meanings=meanings,
+                random=random,
             )
         )
 

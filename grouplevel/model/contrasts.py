@@ -226,6 +226,59 @@ def between_animal_df(X: np.ndarray, animal: np.ndarray, present: np.ndarray, c)
     return df_pattern[inverse]
 
 
+def slope_df(
+    X: np.ndarray,
+    animal: np.ndarray,
+    present: np.ndarray,
+    slope_column: int,
+    slope_design: np.ndarray,
+) -> np.ndarray:
+    """Between-animal degrees of freedom of a within-animal effect with a random slope.
+
+    With a random slope per animal, a within-animal effect is judged against the spread
+    of the animals' own effects, an animal-level quantity: ``animals informative on the
+    slope − rank(the slope's animal-level design on those animals)``. An animal is
+    informative at a voxel when the slope column takes at least two values over its
+    runs with data there. The slope's animal-level design has the intercept (the mean
+    effect) and one column per animal-level moderator that the formula crosses with the
+    slope (e.g. a group for a drug-by-group interaction). Ranks are computed once per
+    distinct presence pattern.
+
+    Parameters
+    ----------
+    X : ndarray, shape (n_runs, p)
+    animal : ndarray of int, shape (n_runs,)
+    present : ndarray of bool, shape (n_runs, V)
+    slope_column : int
+        The column of ``X`` that carries the random slope.
+    slope_design : ndarray, shape (m, r)
+        One row per animal.
+
+    Returns
+    -------
+    ndarray, shape (V,)
+
+    References
+    ----------
+    Pinheiro, J. C., & Bates, D. M. (2000). Mixed-Effects Models in S and S-PLUS.
+    Springer, §2.4.2 (containment rule; section from memory).
+    """
+    X = np.asarray(X, dtype=np.float64)
+    animal = np.asarray(animal, dtype=np.int64)
+    present = np.asarray(present, dtype=bool)
+    if present.ndim == 1:
+        present = present[:, None]
+    G = np.asarray(slope_design, dtype=np.float64).reshape(int(animal.max()) + 1, -1)
+    z = X[:, slope_column]
+    patterns, inverse = presence_patterns(present)
+    df_pattern = np.zeros(len(patterns))
+    for i, pat in enumerate(patterns):  # loop over distinct patterns, not voxels
+        informative = [a for a in np.unique(animal[pat]) if np.ptp(z[pat & (animal == a)]) > 0]
+        rank = np.linalg.matrix_rank(G[informative]) if informative else 0
+        df_pattern[i] = len(informative) - rank
+    return df_pattern[inverse]
+
+
 def satterthwaite_df(fit: MixedFit, c) -> np.ndarray:
     """Satterthwaite degrees of freedom of a contrast at every voxel.
 

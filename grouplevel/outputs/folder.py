@@ -218,6 +218,10 @@ def require_grouplevel_output(folder: str | Path) -> dict:
     result names follow the name rule.
     """
     folder = Path(folder)
+    if not (folder / "summary.json").is_file():
+        from grouplevel.outputs.summary import read_summary
+
+        read_summary(folder)  # the one message for a folder without summary.json
     summary = _summary(folder)
     if summary is None:
         raise UserError(

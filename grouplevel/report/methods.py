@@ -218,6 +218,18 @@ def _model_paragraph(summary: dict, model: dict, results: dict, cites: list[str]
         "iterations, and the fixed effects by generalised least squares; the group-level "
         f'design was the formula "{model.get("formula", "1")}".'
     )
+    extended = {
+        name: r["random_effects"]
+        for name, r in results.items()
+        if r.get("random_effects") not in (None, "a random intercept per animal")
+    }
+    for effects in dict.fromkeys(extended.values()):
+        names = ", ".join(f'"{n}"' for n, e in extended.items() if e == effects)
+        model_sentences.append(
+            f"For {names} the random effects were {effects}; a within-animal effect with "
+            "a random slope was judged against the spread of the animals' own effects, "
+            "with degrees of freedom from the number of animals."
+        )
     if model.get("df") == "satterthwaite":
         df_words = "Satterthwaite degrees of freedom"
     else:

@@ -4,7 +4,9 @@ Two steps of an analysis dominate its run time, and both split into independent 
 
 * the REML fit: every voxel is fitted on its own, so the voxels can be cut into chunks,
   each chunk fitted anywhere, and the results put back in order
-  (:func:`fit_voxel_chunks`);
+  (:func:`fit_voxel_chunks`; :func:`fit_design` picks the model — one random intercept
+  per animal, or the general model with random slopes, sessions and per-group
+  variances);
 * the permutation test: every permutation of the plan is evaluated on its own, so
   batches of permutations can run anywhere once the arrays they share have been sent
   (:func:`grouplevel.inference.permutation.permutation_test` with ``backend=``).
@@ -283,13 +285,107 @@ def fit_voxel_chunks(
     return _concatenate(fits)
 
 
-def _concatenate(fits: list[MixedFit]) -> MixedFit:
-    """Put the fits of consecutive voxel chunks together, in order."""
+def _concatenate(fits: list[Any]) -> Any:
+    """Put the fits of consecutive voxel chunks together, in order.
+
+    Works for either fit type: array fields are joined along the voxels, dict fields
+    (the variance components of the general model) key by key, the rest is shared.
+    """
+    kind = type(fits[0])
     values = {}
-    for f in fields(MixedFit):
+    for f in fields(kind):
         first = getattr(fits[0], f.name)
-        if isinstance(first, np.ndarray):
+        if isinstance(first, np.ndarray) and first.ndim >= 1:
             values[f.name] = np.concatenate([getattr(fit, f.name) for fit in fits], axis=0)
-        else:  # settings shared by every chunk (estimate_run_variance)
+        elif isinstance(first, dict):
+            values[f.name] = {
+                k: np.concatenate([getattr(fit, f.name)[k] for fit in fits], axis=0) for k in first
+            }
+        else:  # settings shared by every chunk (estimate_run_variance, counts)
             values[f.name] = first
-    return MixedFit(**values)
+    return kind(**values)
+
+
+def fit_design(
+    backend: Backend,
+    y: np.ndarray,
+    variance: np.ndarray | None,
+    design: Any,
+    random: Any,
+    *,
+    estimate_run_variance: bool,
+    max_iter: int,
+    memory_gb: float | None,
+    n_chunks: int | None = None,
+) -> Any:
+    """Fit one first-level contrast's model with the random effects its design needs.
+
+    Parameters
+    ----------
+    backend
+        From :func:`open_backend`.
+    y, variance
+        (n_runs, V) effects and first-level variances.
+    design
+        A :class:`grouplevel.intake.design.Design`.
+    random
+        Its :class:`grouplevel.intake.design.RandomEffects`. Without random slopes, sessions or
+        variance groups the run-within-animal model is fitted by
+        :func:`~grouplevel.model.reml.fit_reml` (a :class:`MixedFit`); otherwise the
+        general model by :func:`grouplevel.model.mixed.fit_mixed` (a
+        ``MixedModelFit``), its voxels spread over the backend in the same way.
+    estimate_run_variance, max_iter, memory_gb
+        Passed to the fit.
+    """
+    if not random.extended:
+        return fit_voxel_chunks(
+            backend,
+            y,
+            variance,
+            design.matrix,
+            design.animal,
+            n_chunks=n_chunks,
+            estimate_run_variance=estimate_run_variance,
+            max_iter=max_iter,
+            memory_gb=memory_gb,
+        )
+    from grouplevel.model.mixed import fit_mixed
+
+    slopes = design.matrix[:, list(random.slope_columns)] if random.slope_columns else None
+    kwargs = {
+        "slopes": slopes,
+        "slope_names": tuple(design.columns[j] for j in random.slope_columns),
+        "session": design.session if random.sessions else None,
+        "animal_group": random.animal_group,
+        "group_names": random.group_names,
+        "estimate_run_variance": estimate_run_variance,
+        "max_iter": max_iter,
+        "memory_gb": memory_gb,
+    }
+    if backend.client is None:
+        return fit_mixed(y, variance, design.matrix, design.animal, **kwargs)
+    n_vox = y.shape[1]
+    if n_chunks is None:
+        n_chunks = min(TASKS_PER_WORKER * backend.workers, math.ceil(n_vox / MIN_CHUNK_VOXELS))
+    bounds = _chunk_bounds(n_vox, max(1, min(max(n_chunks, 1), max(n_vox, 1))))
+    if len(bounds) <= 1:
+        return fit_mixed(y, variance, design.matrix, design.animal, **kwargs)
+    client = backend.client
+    futures = [
+        client.submit(
+            fit_mixed,
+            y[:, lo:hi],
+            None if variance is None else variance[:, lo:hi],
+            design.matrix,
+            design.animal,
+            pure=False,
+            **kwargs,
+        )
+        for lo, hi in bounds
+    ]
+    try:
+        fits = client.gather(futures)
+    except BaseException:  # interrupted or failed: stop the tasks still queued
+        client.cancel(futures)
+        raise
+    return _concatenate(fits)

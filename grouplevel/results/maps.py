@@ -6,7 +6,7 @@ and the writers; :class:`Corrected` holds one contrast's corrected inference.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -99,6 +99,12 @@ class GroupMap:
     inference: Corrected
     tables: RegionTables | None = None  # with an atlas: clusters, regions, animals
     answers: Answers | None = None  # the questions (asked of group means; else the reason)
+    # every variance component of the fit by name ("animal", "run", "session",
+    # "slope[<column>]", "cov[<column>]", "animal[<group>]" ...)
+    components: dict[str, np.ndarray] = field(default_factory=dict)
+    random_effects: str = "a random intercept per animal"
+    # what the contrast tests (grouplevel.intake.design.contrast_kind): "animal", ...
+    tested_level: str = "animal"
 
     def volume(self, key: str) -> np.ndarray:
         """A per-voxel quantity as a full 3-D array (0 outside the mask).
