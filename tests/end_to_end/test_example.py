@@ -28,7 +28,7 @@ from scipy import ndimage, stats
 
 from grouplevel import example as ex
 
-REPO = pathlib.Path(__file__).resolve().parents[1]
+REPO = pathlib.Path(__file__).resolve().parents[2]
 STUDY_SIZE_MM = {"x (left-right)": 8.0, "y (posterior-anterior)": 10.0, "z (ventral-dorsal)": 6.0}
 SIZE_TOLERANCE = 0.15  # the task states the brain size within ±15 %
 

@@ -26,7 +26,7 @@ from grouplevel.errors import UserError
 from grouplevel.inference.permutation import animal_level_data, permutation_test
 from grouplevel.model import between_animal_df, fit_reml
 from grouplevel.model.reml import MixedFit
-from tests.test_reml import statsmodels_fit
+from tests.unit.test_reml import statsmodels_fit
 
 GRID = (20, 20, 12)
 N_ANIMALS = 8

@@ -17,7 +17,7 @@ import pytest
 from grouplevel.cli import main
 from grouplevel.example import write_example
 
-DOCS = Path(__file__).resolve().parents[1] / "docs"
+DOCS = Path(__file__).resolve().parents[2] / "docs"
 # in the order a reader meets them: the API writes my_results_api, the others use it
 PYTHON_PAGES = ("python-api.md", "planning.md", "report.md")
 
