@@ -44,11 +44,9 @@ def sim(anatomy: ex.Anatomy) -> ex.Simulation:
 
 
 @pytest.fixture(scope="module")
-def study(tmp_path_factory: pytest.TempPathFactory) -> pathlib.Path:
-    out = tmp_path_factory.mktemp("example")
-    path = ex.write_example(out)
-    assert path == out / "study.toml"
-    return out
+def study(example_folder: pathlib.Path) -> pathlib.Path:
+    """The folder ``write_example`` wrote (the session's, read-only; tests/conftest.py)."""
+    return example_folder
 
 
 @pytest.fixture(scope="module")
