@@ -41,9 +41,9 @@ def _browser_or_skip():
 
 
 @pytest.fixture(scope="module")
-def report(example_run) -> Path:
+def report(example_output) -> Path:
     """The report of the session's finished example run (tests/conftest.py)."""
-    return example_run.out / "report.html"
+    return example_output / "report.html"
 
 
 @pytest.fixture(scope="module")

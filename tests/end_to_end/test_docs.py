@@ -21,6 +21,9 @@ DOCS = Path(__file__).resolve().parents[2] / "docs"
 # in the order a reader meets them: the API writes my_results_api, the others use it
 PYTHON_PAGES = ("python-api.md", "planning.md", "report.md")
 
+# the pages run whole analyses of the example (fit, permutations, report)
+pytestmark = pytest.mark.slow
+
 
 def _blocks(page: str, language: str) -> list[str]:
     text = (DOCS / page).read_text(encoding="utf-8")

@@ -7,7 +7,8 @@ and fitted once per session (fixtures in tests/conftest.py) and shared read-only
 
 - the fit without permutations (``example_maps``): maps, region tables and the answers
   to the study's questions (symmetry, specificity, run quality);
-- the full run with the study's own settings (``example_run``): all 1024 sign flips.
+- the sound contrast run with the study's own inference settings
+  (``example_sound_run``): all 1024 sign flips.
 """
 
 from __future__ import annotations
@@ -338,7 +339,7 @@ def test_example_flags_the_motion_animal_and_the_noisy_runs(
 
 
 # --------------------------------------------------------------------------------------
-# the full run: 1024 exhaustive sign flips (the study file's settings)
+# the exact permutation test: 1024 exhaustive sign flips (the study file's settings)
 # --------------------------------------------------------------------------------------
 
 _P_MAPS = {
@@ -350,16 +351,16 @@ _P_MAPS = {
 
 
 @pytest.mark.slow
-def test_example_sound_contrast_finds_both_auditory_cortices(example_run):
+def test_example_sound_contrast_finds_both_auditory_cortices(example_sound_run):
     """The example plants equal sound effects (amplitude 1.2) in both primary auditory
     areas (truth.json). Measured with the default seed, 1024 exhaustive flips, two-sided,
     cluster-forming p = 0.001: significant voxels (p_FWE < 0.05) inside the left / right
     auditory cortex (A1 + A2 labels): voxel max-stat 18 / 23, cluster extent 51 / 49,
     cluster mass 51 / 49, TFCE 88 / 93; none in the motor cortex (no planted effect).
-    The run (fit_study + write_outputs, as run_study) is the session's ``example_run``;
-    its in-memory maps are kept to cross-check the written files."""
-    folder, out = example_run.study_folder, example_run.out
-    gm = example_run.maps["sound"]
+    The run (fit_study + write_outputs, as run_study) is the session's
+    ``example_sound_run``; its in-memory maps are kept to cross-check the written files."""
+    folder, out = example_sound_run.study_folder, example_sound_run.out
+    gm = example_sound_run.maps["sound"]
     perm = gm.inference.permutation
     assert perm.scheme.exhaustive and perm.scheme.n == 2**10
 

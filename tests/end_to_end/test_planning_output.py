@@ -20,8 +20,10 @@ import pandas as pd
 import pytest
 
 from grouplevel.errors import UserError
-from grouplevel.pipeline import run_study
 from grouplevel.planning import GRID_COLUMNS, design_power, plan_from_output, write_plan
+
+# The analysis includes the exact permutation test of the example (the slowest fixture).
+pytestmark = pytest.mark.slow
 
 # --------------------------------------------------------------------------------------
 # plan_from_output on the invented example study
@@ -29,27 +31,20 @@ from grouplevel.planning import GRID_COLUMNS, design_power, plan_from_output, wr
 
 
 @pytest.fixture(scope="module")
-def example_outputs(tmp_path_factory, example_folder):
-    """The example study analysed once, and copies of its output with edited summaries.
+def example_outputs(tmp_path_factory, example_sound_run):
+    """The example's sound contrast analysed once, and copies of its output with edited
+    summaries.
 
-    To keep the test fast the analysis covers the ``sound`` contrast only and runs
-    without the study's ``[questions]`` tables (answering them takes most of the run
-    time and planning reads none of their results); the copies then
-    differ only in ``summary.json``: ``targeted`` has the example's targets back,
-    ``known`` says σ² was fixed at 0 (``run_variance = "known"``). The copies keep the
-    regions table of the analysis: enough to test how the mean first-level variance is
-    read from the run maps, without a second run.
+    The analysis is the session's ``example_sound_run`` (tests/conftest.py): the
+    ``sound`` contrast only, without the study's ``[questions]`` tables (planning reads
+    none of their results), with the study's permutations (planning reads none of
+    them either). The copies differ only in ``summary.json``: ``targeted`` has the
+    example's targets back, ``known`` says σ² was fixed at 0 (``run_variance =
+    "known"``). The copies keep the regions table of the analysis: enough to test how the
+    mean first-level variance is read from the run maps, without a second run.
     """
     root = tmp_path_factory.mktemp("plan")
-    shutil.copytree(example_folder, root / "study")  # the session's example, copied
-    toml = root / "study" / "study.toml"
-    text = toml.read_text()
-    assert text.index("[questions]") > text.index("[inference]")  # questions come last
-    toml.write_text(text[: text.index("[questions]")])
-    runs = toml.parent / "runs.tsv"
-    table = pd.read_csv(runs, sep="\t", dtype=str, keep_default_na=False)
-    table[table["contrast"] == "sound"].to_csv(runs, sep="\t", index=False)
-    plain = run_study(toml, root / "plain", permutations=0)
+    plain = example_sound_run.out  # shared: read only
 
     def copy(name: str, edit) -> Path:
         folder = root / name
