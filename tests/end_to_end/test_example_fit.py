@@ -170,12 +170,11 @@ def unasked_symmetry(example_study, example_maps):
     return out
 
 
-def test_example_sound_is_bilateral(example_maps, unasked_symmetry):
+def test_example_sound_is_bilateral(example_study, example_maps, unasked_symmetry):
     # Ground truth (grouplevel.example): equal sound amplitudes in both primary auditory
     # areas. Margin ±0.2, a common convention for |LI| (value from memory).
-    table = example_maps["sound"].answers.symmetry.set_index("region")
-    assert table.loc["primary auditory area", "margin"] == pytest.approx(0.2)
-    a1 = table.loc["primary auditory area"]
+    assert example_study.settings.questions_for("sound").equivalence_margin == 0.2
+    a1 = example_maps["sound"].answers.symmetry.set_index("region").loc["primary auditory area"]
     assert a1["verdict"] == BILATERAL_EQUIVALENT
     assert a1["tost_p"] < 0.05 and a1["p"] > 0.05
     assert abs(a1["li_effect"]) < 0.2
