@@ -243,9 +243,11 @@ def test_unreachable_scheduler_is_a_user_error():
             pass
 
 
-def test_pipeline_on_dask_equals_local(tmp_path):
+def test_pipeline_on_dask_equals_local(dask_backend, tmp_path):
     # The whole study run on a local two-worker dask cluster writes the same maps and
-    # permutation null as the local backend (same seed).
+    # permutation null as the local backend (same seed). The run connects to the
+    # module's cluster through [compute] scheduler (its workers have the compiled
+    # kernels loaded already); starting a cluster from `workers` is checked above.
     import json
 
     import nibabel as nib
@@ -265,7 +267,7 @@ def test_pipeline_on_dask_equals_local(tmp_path):
         )
         extra = f'\n[inference]\npermutations = 64\n\n[compute]\nbackend = "{backend}"\n'
         if backend == "dask":
-            extra += "workers = 2\n"
+            extra += f'scheduler = "{dask_backend.client.scheduler.address}"\n'
         toml.write_text(toml.read_text() + extra)
         outs[backend] = grouplevel.run_study(toml, tmp_path / f"out_{backend}")
     for name in ("t", "var_animal", "p_fwe_voxel", "p_fwe_tfce"):
