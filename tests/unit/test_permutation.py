@@ -4,7 +4,7 @@ Sources:
 - nilearn ``permuted_ols`` (nilearn.mass_univariate), sign flipping of an intercept-only
   OLS model, on identical flips;
 - the REML fit of the project's model (``fit_reml`` + ``test_contrast``), itself checked
-  against statsmodels MixedLM in tests/test_reml.py, refitted from scratch per permutation;
+  against statsmodels MixedLM in tests/unit/test_reml.py, refitted from scratch per permutation;
 - Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014), NeuroImage 92:381-397,
   Table 2 (Freedman–Lane: permute the residuals of the nuisance-only model, add back its
   fitted values);
@@ -447,8 +447,3 @@ def test_pipeline_warns_when_smallest_p_exceeds_alpha(tmp_path: Path):
     assert "16 sign flips" in warned[0] and "0.125" in warned[0]
     text = json.dumps(summary)
     assert '"smallest_attainable_p": 0.125' in text
-
-
-# --------------------------------------------------------------------------------------
-# 7. Power on the example study (slow: the whole pipeline on ~30k voxels, 1024 flips)
-# --------------------------------------------------------------------------------------

@@ -562,13 +562,13 @@ def test_region_table_matches_statsmodels_mixedlm(cohort):
             res = MixedLM.from_formula("y ~ 1", frame, groups="animal").fit(reml=True)
         tau2 = float(res.cov_re.iloc[0, 0])
         if not res.converged or tau2 < 1e-3 * res.scale:
-            continue  # statsmodels stops early near τ² = 0 (see tests/test_reml.py)
+            continue  # statsmodels stops early near τ² = 0 (see tests/unit/test_reml.py)
         # statsmodels MixedLM, REML (Seabold & Perktold 2010)
         assert row["effect"] == pytest.approx(res.fe_params.iloc[0], rel=1e-4)
         assert row["var_animal"] == pytest.approx(tau2, rel=1e-4)
         assert row["var_run"] == pytest.approx(res.scale, rel=1e-4)
         # model-based SE √((XᵀV̂⁻¹X)⁻¹) with a dense V̂ from statsmodels' estimates (as in
-        # tests/test_reml.py; statsmodels' own bse_fe comes from its observed information)
+        # tests/unit/test_reml.py; statsmodels' own bse_fe comes from its observed information)
         Z = (animal[:, None] == np.arange(m)[None, :]).astype(float)
         V = tau2 * Z @ Z.T + res.scale * np.eye(n)
         se = float(np.sqrt(1.0 / (X.T @ np.linalg.solve(V, X))[0, 0]))
