@@ -2,7 +2,8 @@
 
 References used below:
 - the local ``fit_reml`` and ``permutation_test``, themselves checked against statsmodels
-  ``MixedLM`` (tests/unit/test_reml.py) and nilearn ``permuted_ols`` (tests/unit/test_permutation.py):
+  ``MixedLM`` (tests/unit/test_reml.py) and nilearn ``permuted_ols``
+  (tests/unit/test_permutation.py):
   the distributed runs must reproduce them exactly (equality, not a tolerance);
 - statsmodels ``MixedLM`` REML (Seabold & Perktold 2010, Proc. 9th Python in Science
   Conference, pp. 92-96) on voxels fitted by the workers;
