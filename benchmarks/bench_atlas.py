@@ -5,8 +5,14 @@ The atlas has 8 top-level structures, each a binary tree 8 levels deep (2,040 ta
 in all). The statistics live on a 0.1 mm mouse-brain grid; the label image is built on
 the same grid, at 50 µm and at 33 µm (about 32 million voxels). Prints seconds per case.
 
-Run: ``.venv/bin/python benchmarks/bench_atlas.py [--large-ids]`` (``--large-ids`` gives
-the regions nine-digit indices, which forces the sorted-search label lookup).
+Also printed: the ratio of each label grid's time to the time on the statistics grid,
+against the ratio of their voxel counts (about linear when the two are close).
+
+Run: ``.venv/bin/python benchmarks/bench_atlas.py [--large-ids] [--tiny]``
+(``--large-ids`` gives the regions nine-digit indices, which forces the sorted-search
+label lookup; ``--tiny`` uses a 20 × 24 × 16 grid and a 4-level hierarchy and runs in
+seconds: a check that the script still runs (tests/end_to_end/test_benchmarks.py), not a
+measurement).
 """
 
 from __future__ import annotations
@@ -26,6 +32,11 @@ VOXEL_MM = 0.1
 ROOTS = 8
 LEVELS = 8  # depths 0..7
 CELL_MM = 0.35  # edge of the cubic cells painted with one leaf each
+BRAIN_RADII_MM = (4.8, 5.8, 3.2)
+#: --tiny: a 2 × 2.4 × 1.6 mm box and 4 levels (240 rows)
+TINY_GRID_SHAPE = (20, 24, 16)
+TINY_LEVELS = 4
+TINY_BRAIN_RADII_MM = (0.9, 1.1, 0.7)
 
 
 def centred_affine(shape: tuple[int, int, int], voxel: float) -> np.ndarray:
@@ -34,7 +45,7 @@ def centred_affine(shape: tuple[int, int, int], voxel: float) -> np.ndarray:
     return affine
 
 
-def hierarchy(large_ids: bool) -> tuple[pd.DataFrame, np.ndarray]:
+def hierarchy(large_ids: bool, levels: int = LEVELS) -> tuple[pd.DataFrame, np.ndarray]:
     """Table rows and the indices of the painted leaves."""
     offset = 100_000_000 if large_ids else 1
     rows = []
@@ -42,7 +53,7 @@ def hierarchy(large_ids: bool) -> tuple[pd.DataFrame, np.ndarray]:
     counter = 0
     for root in range(ROOTS):
         ids: dict[tuple[int, int], int] = {}
-        for depth in range(LEVELS):
+        for depth in range(levels):
             for k in range(2**depth):
                 index = offset + counter
                 counter += 1
@@ -51,7 +62,7 @@ def hierarchy(large_ids: bool) -> tuple[pd.DataFrame, np.ndarray]:
                 rows.append(
                     (index, f"structure {root}.{depth}.{k}", f"S{root}_{depth}_{k}", "", parent)
                 )
-                if depth == LEVELS - 1:
+                if depth == levels - 1:
                     leaves.append(index)
     table = pd.DataFrame(rows, columns=["index", "name", "abbreviation", "hemisphere", "parent"])
     return table, np.asarray(leaves, dtype=np.int64)
@@ -76,21 +87,24 @@ def label_image(shape, affine, leaves: np.ndarray, brain_radii) -> np.ndarray:
     return labels
 
 
-def main() -> None:
+def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--large-ids", action="store_true")
-    args = parser.parse_args()
-    grid = Grid(GRID_SHAPE, centred_affine(GRID_SHAPE, VOXEL_MM))
-    radii = (4.8, 5.8, 3.2)
+    parser.add_argument("--tiny", action="store_true", help="tiny sizes: checks the script runs")
+    args = parser.parse_args(argv)
+    base_shape = TINY_GRID_SHAPE if args.tiny else GRID_SHAPE
+    radii = TINY_BRAIN_RADII_MM if args.tiny else BRAIN_RADII_MM
+    grid = Grid(base_shape, centred_affine(base_shape, VOXEL_MM))
     x, y, z = np.meshgrid(
-        *[grid.affine[d, d] * np.arange(GRID_SHAPE[d]) + grid.affine[d, 3] for d in range(3)],
+        *[grid.affine[d, d] * np.arange(base_shape[d]) + grid.affine[d, 3] for d in range(3)],
         indexing="ij",
     )
     mask = (x / radii[0]) ** 2 + (y / radii[1]) ** 2 + (z / radii[2]) ** 2 <= 1.0
-    table, leaves = hierarchy(args.large_ids)
+    table, leaves = hierarchy(args.large_ids, TINY_LEVELS if args.tiny else LEVELS)
     print(f"table rows {len(table)}, painted leaves {leaves.size}, mask voxels {mask.sum()}")
+    first = None
     for factor in (1, 2, 3):
-        shape = tuple(n * factor for n in GRID_SHAPE)
+        shape = tuple(n * factor for n in base_shape)
         affine = centred_affine(shape, VOXEL_MM / factor)
         labels = label_image(shape, affine, leaves, radii)
         start = time.perf_counter()
@@ -104,6 +118,13 @@ def main() -> None:
             f"midline {atlas.midline_mm:+.3f} mm [{atlas.midline_source}]; "
             f"peak memory so far {peak_mb:.0f} MB)"
         )
+        if first is None:
+            first = (seconds, labels.size)
+        else:
+            print(
+                f"  ratio to the statistics grid: time {seconds / first[0]:.1f}x for "
+                f"{labels.size / first[1]:.0f}x the label voxels"
+            )
         del labels, atlas
 
 

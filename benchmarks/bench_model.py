@@ -9,6 +9,8 @@ reported twice: against our fit of the same data without them (the same model as
 statsmodels), and against the full fit with them.
 
 Run with ``.venv/bin/python benchmarks/bench_model.py`` (optionally ``--voxels N``).
+``--tiny`` (2 000 voxels, 20 voxels for statsmodels) runs to the end in seconds: a check
+that the script still runs (tests/end_to_end/test_benchmarks.py), not a measurement.
 """
 
 from __future__ import annotations
@@ -28,6 +30,7 @@ from grouplevel.model import fit_reml
 N_ANIMALS = 10
 RUNS_PER_ANIMAL = 4
 N_STATSMODELS = 200  # voxels fitted by the statsmodels loop
+TINY_VOXELS, TINY_STATSMODELS = 2_000, 20
 
 
 def make_data(n_vox: int, rng: np.random.Generator):
@@ -63,13 +66,16 @@ def statsmodels_time(y, animal, columns):
     return (time.perf_counter() - t0) / len(columns)
 
 
-def main() -> None:
+def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--voxels", type=int, default=100_000)
+    parser.add_argument("--voxels", type=int, default=None)
     parser.add_argument("--seed", type=int, default=0)
-    args = parser.parse_args()
+    parser.add_argument("--tiny", action="store_true", help="tiny sizes: checks the script runs")
+    args = parser.parse_args(argv)
+    n_vox = args.voxels or (TINY_VOXELS if args.tiny else 100_000)
+    n_sm = TINY_STATSMODELS if args.tiny else N_STATSMODELS
     rng = np.random.default_rng(args.seed)
-    y, variance, X, animal = make_data(args.voxels, rng)
+    y, variance, X, animal = make_data(n_vox, rng)
 
     t0 = time.perf_counter()
     fit_reml(y[:, :8], variance[:, :8], X, animal)  # compile (or load the cached kernel)
@@ -77,10 +83,9 @@ def main() -> None:
 
     fit, wall, cpu, peak = timed_fit(y, variance, X, animal)
     fit_plain, wall_plain, _, peak_plain = timed_fit(y, None, X, animal)
-    columns = rng.choice(args.voxels, size=N_STATSMODELS, replace=False)
+    columns = rng.choice(n_vox, size=n_sm, replace=False)
     per_voxel_sm = statsmodels_time(y, animal, columns)
 
-    n_vox = args.voxels
     print(f"data: {n_vox} voxels x {y.shape[0]} runs x {N_ANIMALS} animals")
     print(f"first call (compile or cache load): {warmup:.2f} s")
     print(f"fit with first-level variances:  {wall:.3f} s, {n_vox / wall:,.0f} voxels/s")
@@ -90,7 +95,7 @@ def main() -> None:
     print(f"fit without first-level variances: {wall_plain:.3f} s")
     print(f"  converged {fit_plain.converged.mean():.4%}")
     print(f"  peak memory {peak_plain / y.nbytes:.2f} x the effect array")
-    print(f"statsmodels MixedLM: {per_voxel_sm * 1e3:.2f} ms per voxel ({N_STATSMODELS} voxels)")
+    print(f"statsmodels MixedLM: {per_voxel_sm * 1e3:.2f} ms per voxel ({n_sm} voxels)")
     print(f"per-voxel speed ratio, same model (no s²): {per_voxel_sm / (wall_plain / n_vox):,.0f}x")
     print(f"per-voxel speed ratio, full fit (with s²): {per_voxel_sm / (wall / n_vox):,.0f}x")
 

@@ -15,7 +15,9 @@ Targets: peak RSS below 4 GiB at 1 000 000 voxels × 200 maps; time about linear
 
 Run with ``.venv/bin/python benchmarks/bench_scale.py`` (optionally ``--voxels 250000
 1000000``, ``--memory-gb 6``, ``--dir /some/scratch``). Needs about 2 GB of scratch
-disk per million voxels.
+disk per million voxels. ``--tiny`` (6 animals × 2 runs, 2 000 and 4 000 voxels) runs
+to the end in seconds: a check that the script still runs
+(tests/end_to_end/test_benchmarks.py), not a measurement.
 """
 
 from __future__ import annotations
@@ -43,6 +45,8 @@ TAU2_RANGE = (0.0, 1.0)
 SIG2_RANGE = (0.0, 1.0)
 S2_RANGE = (0.2, 1.5)
 TRUE_MEAN = 0.3
+#: --tiny sizes
+TINY_ANIMALS, TINY_RUNS, TINY_VOXELS = 6, 2, (2_000, 4_000)
 
 
 def grid_shape(n_voxels: int) -> tuple[int, int, int]:
@@ -53,7 +57,14 @@ def grid_shape(n_voxels: int) -> tuple[int, int, int]:
     return (side, side, math.ceil(n_voxels / side**2))
 
 
-def write_study(folder: Path, n_voxels: int, memory_gb: float, seed: int) -> float:
+def write_study(
+    folder: Path,
+    n_voxels: int,
+    memory_gb: float,
+    seed: int,
+    animals: int = N_ANIMALS,
+    runs: int = RUNS_PER_ANIMAL,
+) -> float:
     """Write maps, mask, runs table and study.toml; return the seconds spent writing."""
     rng = np.random.default_rng(seed)
     shape = grid_shape(n_voxels)
@@ -68,9 +79,9 @@ def write_study(folder: Path, n_voxels: int, memory_gb: float, seed: int) -> flo
     rows = ["animal\tsession\trun\teffect\tvariance"]
     volume = np.zeros(shape, dtype=np.float32)
     start = time.perf_counter()
-    for a in range(N_ANIMALS):
+    for a in range(animals):
         u = rng.standard_normal(n_voxels, dtype=np.float32) * np.sqrt(tau2)
-        for r in range(RUNS_PER_ANIMAL):
+        for r in range(runs):
             s2 = rng.uniform(*S2_RANGE, n_voxels).astype(np.float32)
             noise = rng.standard_normal(n_voxels, dtype=np.float32)
             effect = TRUE_MEAN + u + noise * np.sqrt(sig2 + s2)
@@ -133,27 +144,30 @@ def child(toml: str) -> None:
     )
 
 
-def main() -> None:
+def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--voxels", type=int, nargs="+", default=[250_000, 1_000_000])
+    parser.add_argument("--voxels", type=int, nargs="+", default=None)
     parser.add_argument("--memory-gb", type=float, default=6.0)
     parser.add_argument("--dir", default=None, help="scratch folder (default: system temp)")
     parser.add_argument("--seed", type=int, default=1)
+    parser.add_argument("--tiny", action="store_true", help="tiny sizes: checks the script runs")
     parser.add_argument("--child", default=None, help=argparse.SUPPRESS)
-    args = parser.parse_args()
+    args = parser.parse_args(argv)
     if args.child:
         child(args.child)
         return
-    n_maps = N_ANIMALS * RUNS_PER_ANIMAL
+    animals, runs = (TINY_ANIMALS, TINY_RUNS) if args.tiny else (N_ANIMALS, RUNS_PER_ANIMAL)
+    sizes = args.voxels or (list(TINY_VOXELS) if args.tiny else [250_000, 1_000_000])
+    n_maps = animals * runs
     print(
-        f"{N_ANIMALS} animals × {RUNS_PER_ANIMAL} runs = {n_maps} effect maps + {n_maps} "
+        f"{animals} animals × {runs} runs = {n_maps} effect maps + {n_maps} "
         f"variance maps, uncompressed .nii, [compute] memory_gb = {args.memory_gb}"
     )
     results = []
-    for n_vox in args.voxels:
+    for n_vox in sizes:
         with tempfile.TemporaryDirectory(dir=args.dir, prefix="grouplevel-scale-") as tmp:
             folder = Path(tmp)
-            write_s = write_study(folder, n_vox, args.memory_gb, args.seed)
+            write_s = write_study(folder, n_vox, args.memory_gb, args.seed, animals, runs)
             out = subprocess.run(
                 [sys.executable, __file__, "--child", str(folder / "study.toml")],
                 capture_output=True,

@@ -1,7 +1,26 @@
-"""Shared helpers: build small studies (maps, runs table, TOML) in a temporary folder."""
+"""Shared helpers and fixtures.
+
+Helpers build small studies (maps, runs table, TOML) in a temporary folder.
+
+The invented example study is expensive to write, load and fit, so it is done once per
+test session and shared **read-only** by every test that needs it:
+
+- ``example_folder``: the study written by :func:`grouplevel.example.write_example`;
+- ``example_study``: that study loaded with ``permutations = 0`` (parametric maps, FDR);
+- ``example_maps``: ``fit_study`` of it, the group maps by name (``sound``, ``paw``),
+  with their region tables and the answers to the study's questions;
+- ``example_output``: the finished output folder of ``run_study`` on the example (32
+  random sign flips; maps, tables, methods, report), as ``grouplevel run`` writes it;
+- ``example_sound_run``: the sound contrast alone with the study file's own inference
+  settings (all 1024 sign flips of 10 animals), with its in-memory maps.
+
+A test that edits files works on a copy (``shutil.copytree`` into its ``tmp_path``).
+"""
 
 from __future__ import annotations
 
+import shutil
+from dataclasses import dataclass
 from pathlib import Path
 
 import nibabel as nib
@@ -10,6 +29,17 @@ import pandas as pd
 import pytest
 
 TINY_AFFINE = np.diag([0.2, 0.2, 0.2, 1.0])
+
+#: Session fixtures that fit the example study: a test that uses one is slow (it may be
+#: the first to ask for the fit) and is marked so automatically.
+EXPENSIVE_FIXTURES = ("example_study", "example_maps", "example_output", "example_sound_run")
+
+
+def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
+    """Mark every test that uses an expensive example fixture ``slow``."""
+    for item in items:
+        if any(name in EXPENSIVE_FIXTURES for name in getattr(item, "fixturenames", ())):
+            item.add_marker(pytest.mark.slow)
 
 
 def save(path: Path, data: np.ndarray, affine: np.ndarray = TINY_AFFINE) -> Path:
@@ -80,3 +110,112 @@ def tiny_study(tmp_path: Path) -> Path:
     effects = np.stack([1.0 + u[i // 3] + rng.normal(0, 0.7, (4, 4, 3)) for i in range(18)])
     variances = rng.uniform(0.2, 0.6, size=(18, 4, 4, 3))
     return write_study(tmp_path / "study", effects, animals, variances=variances, shape=(4, 4, 3))
+
+
+# --------------------------------------------------------------------------------------
+# The example study, once per session
+# --------------------------------------------------------------------------------------
+
+#: A user string with markup, put into the atlas of the finished example run (it names a
+#: region) so that its report, tables and methods carry it; the report tests check that
+#: it is escaped (HTML, LaTeX) or kept as text (Markdown).
+HOSTILE_NAME = "<script>alert(1)</script>"
+#: The atlas region renamed to ``HOSTILE_NAME`` (no effect is planted there).
+RENAMED_REGION = "visual cortex"
+#: Random sign flips of the finished example run: few, so that the run is quick (10
+#: animals have 2^10 = 1024 distinct flips, so these are drawn at random).
+EXAMPLE_OUTPUT_PERMUTATIONS = 32
+
+
+@dataclass(frozen=True)
+class SoundRun:
+    """The example's sound contrast run with the study's own inference settings."""
+
+    study_folder: Path  # the inputs: the example, sound runs only, no [questions]
+    out: Path  # the finished output folder
+    study: object  # grouplevel Study
+    maps: dict  # name -> GroupMap, as fitted (with the permutation results)
+
+
+@pytest.fixture(scope="session")
+def example_folder(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The example study as written by ``write_example`` (``study.toml`` inside)."""
+    from grouplevel.example import write_example
+
+    folder = tmp_path_factory.mktemp("example") / "study"
+    toml = write_example(folder)
+    assert toml == folder / "study.toml"
+    return folder
+
+
+@pytest.fixture(scope="session")
+def example_study(example_folder: Path):
+    """The example loaded without permutations (parametric maps and FDR)."""
+    import grouplevel
+
+    return grouplevel.load_study(example_folder / "study.toml", permutations=0)
+
+
+@pytest.fixture(scope="session")
+def example_maps(example_study) -> dict:
+    """``fit_study`` of the example without permutations: group maps by name."""
+    import grouplevel
+
+    maps, _ = grouplevel.fit_study(example_study)
+    return {m.name: m for m in maps}
+
+
+@pytest.fixture(scope="session")
+def example_output(example_folder: Path, tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The finished output folder of ``run_study`` on the example (both contrasts, the
+    questions, EXAMPLE_OUTPUT_PERMUTATIONS random sign flips; maps, tables, methods and
+    report). The inputs are a copy of the example whose atlas calls the visual cortex
+    ``HOSTILE_NAME``."""
+    import pandas as pd
+
+    import grouplevel
+
+    base = tmp_path_factory.mktemp("example_output")
+    folder = base / "study"
+    shutil.copytree(example_folder, folder)
+    labels = folder / "atlas.tsv"
+    table = pd.read_csv(labels, sep="\t", dtype=str, keep_default_na=False)
+    assert (table["name"] == RENAMED_REGION).any()
+    table.loc[table["name"] == RENAMED_REGION, "name"] = HOSTILE_NAME
+    table.to_csv(labels, sep="\t", index=False)
+    return grouplevel.run_study(
+        folder / "study.toml", base / "results", permutations=EXAMPLE_OUTPUT_PERMUTATIONS
+    )
+
+
+@pytest.fixture(scope="session")
+def example_sound_run(example_folder: Path, tmp_path_factory: pytest.TempPathFactory):
+    """The sound contrast of the example with the study file's inference settings (all
+    1024 sign flips of 10 animals): the exact permutation test, the slowest step of the
+    suite. The study is cut to what that needs: the sound runs only, without the
+    ``[questions]`` tables (the permutation maps and the region tables do not depend on
+    them; the sound fit is the same as in the whole study, contrasts being fitted one by
+    one). ``run_study`` is ``load_study`` + ``fit_study`` + ``write_outputs``; the steps are
+    called here so that the in-memory maps can be checked against the written files.
+    """
+    import pandas as pd
+
+    from grouplevel.pipeline import fit_study, load_study, write_outputs
+
+    base = tmp_path_factory.mktemp("example_sound")
+    folder = base / "study"
+    shutil.copytree(example_folder, folder)
+    toml = folder / "study.toml"
+    text = toml.read_text()
+    assert text.index("[questions]") > text.index("[inference]")  # questions come last
+    kept = text[: text.index("[questions]")]
+    # the sound condition alone: its comparison with paw goes too
+    kept = kept[: kept.index("[[comparison]]")] + kept[kept.index("[inference]") :]
+    toml.write_text(kept)
+    runs = folder / "runs.tsv"
+    table = pd.read_csv(runs, sep="\t", dtype=str, keep_default_na=False)
+    table[table["condition"] == "sound"].to_csv(runs, sep="\t", index=False)
+    study = load_study(toml)
+    maps, warnings = fit_study(study)
+    out = write_outputs(study, maps, base / "results", warnings=warnings)
+    return SoundRun(folder, out, study, {m.name: m for m in maps})

@@ -29,7 +29,7 @@ from pathlib import Path
 
 import pytest
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 PACKAGE = ROOT / "grouplevel"
 
 # The numerical core: whole sub-packages and single modules of the mixed ones.

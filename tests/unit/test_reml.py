@@ -21,11 +21,7 @@ from statsmodels.regression.mixed_linear_model import MixedLM
 
 from grouplevel.errors import UserError
 from grouplevel.model import MixedFit, fit_reml
-
-try:  # tests/ on sys.path (pytest's default for a folder without __init__.py)
-    import reference_data as rd
-except ModuleNotFoundError:  # the repository root on sys.path instead
-    from tests import reference_data as rd
+from tests import reference_data as rd
 
 # --------------------------------------------------------------------------------------
 # helpers: simulated data and a dense textbook REML

@@ -19,7 +19,8 @@ Outside references used here:
 - the permutation engine's family-wise error control on a perfectly symmetric
   simulated study (Winkler et al. 2014, NeuroImage 92:381);
 - the invented example cohort (grouplevel.example): equal-amplitude auditory blobs for
-  ``sound``, a right forelimb blob three times the left one for ``paw``.
+  ``sound``, a right forelimb blob three times the left one for ``paw`` (checked on the
+  fitted example in end_to_end/test_example_fit.py).
 """
 
 from __future__ import annotations
@@ -35,14 +36,11 @@ from hypothesis import strategies as st
 from scipy import stats
 from statsmodels.stats.weightstats import ttost_paired
 
-import grouplevel
 from grouplevel.atlas import Atlas
 from grouplevel.errors import UserError
-from grouplevel.example import write_example
 from grouplevel.inference.permutation import animal_level_data, permutation_test
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.regions import region_values
-from grouplevel.study import load_runs
 from grouplevel.symmetry import (
     BILATERAL_EQUIVALENT,
     BILATERAL_UNRESOLVED,
@@ -64,7 +62,6 @@ from grouplevel.symmetry import (
     threshold_free_li,
     tost,
 )
-from grouplevel.tables import restrict_atlas
 
 # --------------------------------------------------------------------------------------
 # Laterality index
@@ -569,59 +566,3 @@ def test_region_pairs_and_tables_on_a_small_atlas():
     curves = li_curves(out)
     assert list(curves.columns) == ["region", "threshold", "li"] and len(curves) == 50
     json.dumps([r.summary() for r in out])
-
-
-@pytest.fixture(scope="module")
-def example(tmp_path_factory):
-    folder = tmp_path_factory.mktemp("symmetry_example")
-    toml = write_example(folder)
-    study = grouplevel.load_study(toml, permutations=0)
-    maps, _ = grouplevel.fit_study(study)
-    out = {}
-    for gm, fl in zip(maps, study.first_levels, strict=True):
-        data = load_runs(study, fl)
-        atlas = restrict_atlas(study.atlas, study.atlas_mask, gm.mask)
-        present = np.isfinite(data.effect)
-        vals, _ = region_values(data.effect, present, atlas.shares)
-        out[gm.name] = analyse_symmetry(
-            ["primary auditory area", "auditory cortex", "forelimb area"],
-            atlas,
-            y=data.effect,
-            present=present,
-            animal=fl.design.animal,
-            z=gm.z,
-            effect=gm.effect,
-            region_values=vals,
-            rng=np.random.default_rng(0),
-            variance=data.variance,
-            var_run=gm.var_run,
-            equivalence_margin=0.2,
-            n_boot=200,
-            stimulus_side="left" if gm.name == "paw" else None,
-        )
-    return {name: {r.region: r for r in res} for name, res in out.items()}
-
-
-def test_example_sound_is_bilateral(example):
-    # Ground truth (grouplevel.example): equal sound amplitudes in both primary auditory
-    # areas. Margin ±0.2, a common convention for |LI| (value from memory).
-    a1 = example["sound"]["primary auditory area"]
-    assert a1.verdict.label == BILATERAL_EQUIVALENT
-    assert a1.test.tost_p < 0.05 and a1.test.p > 0.05
-    assert abs(a1.li_effect) < 0.2
-    # The whole auditory cortex (primary + secondary area) dilutes the blob: both sides
-    # active, no significant difference, but the margin is too narrow for equivalence.
-    aud = example["sound"]["auditory cortex"]
-    assert aud.verdict.label.startswith("bilateral")
-    assert aud.verdict.numbers["left_active"] and aud.verdict.numbers["right_active"]
-
-
-def test_example_paw_is_right_dominant_contralateral(example):
-    # Ground truth: left forepaw, right forelimb area amplitude 1.2 vs left 0.4.
-    fl = example["paw"]["forelimb area"]
-    assert fl.verdict.label == "right-dominant"
-    assert fl.verdict.side == "contralateral"
-    assert fl.li_effect < -0.2 and fl.bootstrap.effect_ci[1] < 0
-    assert fl.test.difference < 0 and fl.test.p < 0.05
-    # the sound regions do not respond to the paw
-    assert example["paw"]["primary auditory area"].verdict.label == NO_ACTIVATION

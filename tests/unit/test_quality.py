@@ -3,25 +3,21 @@ edge-rim scores and flags.
 
 Outside references: scipy.stats.median_abs_deviation(scale="normal") for the robust z
 (Iglewicz & Hoaglin 1993, How to Detect and Handle Outliers, ASQC; 3.5 cut-off, value from
-memory), numpy.corrcoef for the spatial correlations, and the example cohort's recorded
-ground truth (truth.json: the motion animal and the noisy runs).
+memory), numpy.corrcoef for the spatial correlations. The example cohort's recorded ground truth
+(truth.json: the motion animal and the noisy runs) is checked against the fitted example
+in end_to_end/test_example_fit.py.
 """
 
 from __future__ import annotations
-
-import json
 
 import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats
 
-import grouplevel
 from grouplevel.errors import UserError
-from grouplevel.example import write_example
 from grouplevel.quality import DEFAULT_Z_THRESHOLD, QUALITY_COLUMNS, robust_z, run_quality
-from grouplevel.specificity import edge_shell, loo_group_maps
-from grouplevel.study import load_runs
+from grouplevel.specificity import edge_shell
 
 
 def test_robust_z_equals_scipy_mad_based_z():
@@ -106,32 +102,3 @@ def test_run_quality_bad_inputs():
         run_quality(y, variance, animal, runs, loo[:, :-1], shell)
     with pytest.raises(UserError, match="threshold"):
         run_quality(y, variance, animal, runs, loo, shell, threshold=0.0)
-
-
-def test_example_flags_the_motion_animal_and_the_noisy_runs(tmp_path):
-    toml = write_example(tmp_path)
-    truth = json.loads((tmp_path / "truth.json").read_text())
-    study = grouplevel.load_study(toml, permutations=0)
-    fl = next(f for f in study.first_levels if f.name == "sound")
-    data = load_runs(study, fl)
-    d = fl.design
-    loo = loo_group_maps(
-        data.effect, data.variance, d.matrix, d.animal, [1.0], animal_ids=d.animal_ids
-    )
-    shell = edge_shell(fl.mask, 2)
-    table = run_quality(data.effect, data.variance, d.animal, fl.runs, loo.effect, shell).table()
-    key = list(zip(table["animal"], table["run"].astype(int), strict=True))
-    motion = {(r["animal"], r["run"]) for r in truth["motion"]["runs"]}
-    noisy = {(r["animal"], r["run"]) for r in truth["noisy_runs"]["runs"]}
-    flagged = {k for k, f in zip(key, table["flagged"], strict=True) if f}
-    # every run of the motion animal, and besides them exactly the runs the generator made
-    # noisy (first-level variance × 4, flagged for their mean variance)
-    assert flagged == motion | noisy
-    is_motion = np.array([k in motion for k in key])
-    is_noisy = np.array([k in noisy for k in key])
-    assert (table["z_edge"][is_motion] > 3.5).all()
-    assert table["edge_score"][is_motion].min() > 1.3 * table["edge_score"][~is_motion].max()
-    assert (table["z_variance"][is_noisy] > 3.5).all()
-    assert (np.abs(table["z_edge"][~is_motion]) <= 3.5).all()
-    # the LOO maps: removing the motion animal changes the t map most
-    assert loo.animal_ids[int(np.argmin(loo.correlation))] == truth["motion"]["animal"]

@@ -2,7 +2,8 @@
 
 References used below:
 - the local ``fit_reml`` and ``permutation_test``, themselves checked against statsmodels
-  ``MixedLM`` (tests/test_reml.py) and nilearn ``permuted_ols`` (tests/test_permutation.py):
+  ``MixedLM`` (tests/unit/test_reml.py) and nilearn ``permuted_ols``
+  (tests/unit/test_permutation.py):
   the distributed runs must reproduce them exactly (equality, not a tolerance);
 - statsmodels ``MixedLM`` REML (Seabold & Perktold 2010, Proc. 9th Python in Science
   Conference, pp. 92-96) on voxels fitted by the workers;
@@ -26,7 +27,7 @@ from grouplevel.errors import UserError
 from grouplevel.inference.permutation import animal_level_data, permutation_test
 from grouplevel.model import between_animal_df, fit_reml
 from grouplevel.model.reml import MixedFit
-from tests.test_reml import statsmodels_fit
+from tests.unit.test_reml import statsmodels_fit
 
 GRID = (20, 20, 12)
 N_ANIMALS = 8
@@ -89,7 +90,7 @@ def study():
 
 def _assert_fits_equal(a: MixedFit, b: MixedFit) -> None:
     for f in fields(MixedFit):
-        # the local fit_reml itself (checked against statsmodels in tests/test_reml.py)
+        # the local fit_reml itself (checked against statsmodels in tests/unit/test_reml.py)
         np.testing.assert_array_equal(getattr(a, f.name), getattr(b, f.name), err_msg=f.name)
 
 
@@ -125,7 +126,7 @@ def test_chunked_fit_without_variances_matches_statsmodels(dask_backend, study):
         # (with its 2π constant), which our estimate maximises at least as well
         assert spread.loglik[v] >= res.llf - 1e-8
         # statsmodels' optimiser stops within about 1e-4 of the optimum and early near
-        # τ² = 0 (see tests/test_reml.py): compare the interior voxels, to 1e-3
+        # τ² = 0 (see tests/unit/test_reml.py): compare the interior voxels, to 1e-3
         if not res.converged or tau2 < 0.05 * res.scale:
             continue
         checked += 1
@@ -187,7 +188,7 @@ def test_permutations_equal_local(dask_backend, study, contrast, requested, kind
     assert spread.scheme.n == requested
     np.testing.assert_array_equal(spread.scheme.signs, local.scheme.signs)
     np.testing.assert_array_equal(spread.scheme.orders, local.scheme.orders)
-    # the local permutation engine (checked against nilearn in tests/test_permutation.py)
+    # the local permutation engine (checked against nilearn in tests/unit/test_permutation.py)
     for name in (
         "statistic",
         "null_max_stat",
@@ -243,9 +244,11 @@ def test_unreachable_scheduler_is_a_user_error():
             pass
 
 
-def test_pipeline_on_dask_equals_local(tmp_path):
+def test_pipeline_on_dask_equals_local(dask_backend, tmp_path):
     # The whole study run on a local two-worker dask cluster writes the same maps and
-    # permutation null as the local backend (same seed).
+    # permutation null as the local backend (same seed). The run connects to the
+    # module's cluster through [compute] scheduler (its workers have the compiled
+    # kernels loaded already); starting a cluster from `workers` is checked above.
     import json
 
     import nibabel as nib
@@ -265,7 +268,7 @@ def test_pipeline_on_dask_equals_local(tmp_path):
         )
         extra = f'\n[inference]\npermutations = 64\n\n[compute]\nbackend = "{backend}"\n'
         if backend == "dask":
-            extra += "workers = 2\n"
+            extra += f'scheduler = "{dask_backend.client.scheduler.address}"\n'
         toml.write_text(toml.read_text() + extra)
         outs[backend] = grouplevel.run_study(toml, tmp_path / f"out_{backend}")
     for name in ("t", "var_animal", "p_fwe_voxel", "p_fwe_tfce"):

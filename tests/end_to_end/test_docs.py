@@ -11,17 +11,20 @@ import importlib
 import os
 import re
 import shlex
+import shutil
 from pathlib import Path
 
 import pandas as pd
 import pytest
 
 from grouplevel.cli import main
-from grouplevel.example import write_example
 
-DOCS = Path(__file__).resolve().parents[1] / "docs"
+DOCS = Path(__file__).resolve().parents[2] / "docs"
 # in the order a reader meets them: the API writes my_results_api, the others use it
 PYTHON_PAGES = ("python-api.md", "planning.md", "report.md")
+
+# the pages run whole analyses of the example (fit, permutations, report)
+pytestmark = pytest.mark.slow
 
 
 def _blocks(page: str, language: str) -> list[str]:
@@ -42,9 +45,10 @@ def _blocks(page: str, language: str) -> list[str]:
 
 
 @pytest.fixture(scope="module")
-def folder(tmp_path_factory):
+def folder(tmp_path_factory, example_folder):
     here = tmp_path_factory.mktemp("docs")
-    write_example(here / "my_example")
+    # what `grouplevel example my_example` writes: a copy of the session's example
+    shutil.copytree(example_folder, here / "my_example")
     old = os.getcwd()
     os.chdir(here)
     yield here

@@ -18,10 +18,8 @@ import scipy.sparse as sp
 import statsmodels.formula.api as smf
 from scipy import ndimage
 
-import grouplevel
 from grouplevel.atlas import Atlas
 from grouplevel.errors import UserError
-from grouplevel.example import write_example
 from grouplevel.inference import fdr
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.specificity import (
@@ -39,8 +37,6 @@ from grouplevel.specificity import (
     rim_score,
     specificity,
 )
-from grouplevel.study import load_runs
-from grouplevel.tables import restrict_atlas
 
 # --------------------------------------------------------------------------------------
 # helpers
@@ -473,52 +469,3 @@ def test_loo_group_maps_equal_separate_fits():
         assert out.correlation[a] == pytest.approx(np.corrcoef(ref.t, full.t)[0, 1], rel=1e-10)
         assert out.max_abs_dt[a] == pytest.approx(np.max(np.abs(ref.t - full.t)), rel=1e-10)
     assert list(out.table()["animal"]) == list("vwxyz")
-
-
-# --------------------------------------------------------------------------------------
-# the example cohort
-# --------------------------------------------------------------------------------------
-
-
-@pytest.fixture(scope="module")
-def example(tmp_path_factory):
-    folder = tmp_path_factory.mktemp("example")
-    study = grouplevel.load_study(write_example(folder), permutations=0)
-    maps, _ = grouplevel.fit_study(study)
-    return study, {m.name: m for m in maps}
-
-
-def test_example_sound_is_specific_to_auditory_cortex(example):
-    # "surviving" = FDR survivors (q ≤ 0.05, Benjamini & Hochberg 1995); permutations = 0
-    study, maps = example
-    gm = maps["sound"]
-    fl = next(f for f in study.first_levels if f.name == "sound")
-    data = load_runs(study, fl)
-    atlas = restrict_atlas(study.atlas, study.atlas_mask, gm.mask)
-    idx = np.argwhere(gm.mask)
-    height = (idx @ gm.grid.affine[:3, :3].T + gm.grid.affine[:3, 3])[:, 2]
-    surviving = np.nan_to_num(gm.inference.q, nan=1.0) <= 0.05
-    targets = atlas.region_rows("auditory cortex")
-    out = specificity(
-        surviving,
-        gm.z,
-        gm.effect,
-        atlas,
-        targets,
-        edge_shell(gm.mask),
-        inner_layer(gm.mask),
-        height,
-        artefact_rows(atlas),
-        data.effect,
-        fl.design.matrix,
-        fl.design.animal,
-        [1.0],
-    )
-    assert all(t.startswith("auditory cortex") for t in out.targets)
-    assert out.verdict != VERDICT_OFF_TARGET
-    assert out.verdict in (VERDICT_SPECIFIC, VERDICT_PLUS_OFF_TARGET)
-    assert out.target_share > 0.5
-    assert out.difference > 0 and out.ci_low > 0
-    assert not out.rim_rule
-    names = set(out.table()["name"])
-    assert "auditory cortex" in names

@@ -28,7 +28,7 @@ from scipy import ndimage, stats
 
 from grouplevel import example as ex
 
-REPO = pathlib.Path(__file__).resolve().parents[1]
+REPO = pathlib.Path(__file__).resolve().parents[2]
 STUDY_SIZE_MM = {"x (left-right)": 8.0, "y (posterior-anterior)": 10.0, "z (ventral-dorsal)": 6.0}
 SIZE_TOLERANCE = 0.15  # the task states the brain size within ±15 %
 
@@ -44,11 +44,9 @@ def sim(anatomy: ex.Anatomy) -> ex.Simulation:
 
 
 @pytest.fixture(scope="module")
-def study(tmp_path_factory: pytest.TempPathFactory) -> pathlib.Path:
-    out = tmp_path_factory.mktemp("example")
-    path = ex.write_example(out)
-    assert path == out / "study.toml"
-    return out
+def study(example_folder: pathlib.Path) -> pathlib.Path:
+    """The folder ``write_example`` wrote (the session's, read-only; tests/conftest.py)."""
+    return example_folder
 
 
 @pytest.fixture(scope="module")

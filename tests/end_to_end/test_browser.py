@@ -1,6 +1,7 @@
 """The report opens offline in a real browser (headless Chromium driven by selenium).
 
-Checks, on the example study's report opened from disk (file://):
+Checks, on the example study's report (the session's finished run, whose atlas names one
+region with a script tag) opened from disk (file://):
 - no request to http/https is made (Chromium's performance log: no
   Network.requestWillBeSent for such a URL) — the page is self-contained;
 - the browser console holds no error;
@@ -40,16 +41,9 @@ def _browser_or_skip():
 
 
 @pytest.fixture(scope="module")
-def report(tmp_path_factory) -> Path:
-    """The example study run without permutations (FDR maps; fast) and its report."""
-    import grouplevel
-    from grouplevel.example import write_example
-    from grouplevel.report import render_report
-
-    base = tmp_path_factory.mktemp("browser")
-    toml = write_example(base / "study")
-    out = grouplevel.run_study(toml, base / "results", permutations=0)
-    return render_report(out)
+def report(example_output) -> Path:
+    """The report of the session's finished example run (tests/conftest.py)."""
+    return example_output / "report.html"
 
 
 @pytest.fixture(scope="module")

@@ -18,7 +18,7 @@ Outside references used here:
   checked by simulation;
 - the invented example cohort (grouplevel.example), whose ground truth places the sound
   effects in both auditory cortices and inferior colliculi and the paw effect in the
-  right forelimb area.
+  right forelimb area (checked on the fitted example in end_to_end/test_example_fit.py).
 """
 
 from __future__ import annotations
@@ -36,9 +36,7 @@ from statsmodels.regression.linear_model import WLS
 from statsmodels.regression.mixed_linear_model import MixedLM
 from statsmodels.stats.multitest import multipletests
 
-import grouplevel
-from grouplevel import example as ex
-from grouplevel.atlas import build_atlas, read_atlas
+from grouplevel.atlas import build_atlas
 from grouplevel.images import Grid
 from grouplevel.inference.clusters import find_clusters
 from grouplevel.regions import (
@@ -564,13 +562,13 @@ def test_region_table_matches_statsmodels_mixedlm(cohort):
             res = MixedLM.from_formula("y ~ 1", frame, groups="animal").fit(reml=True)
         tau2 = float(res.cov_re.iloc[0, 0])
         if not res.converged or tau2 < 1e-3 * res.scale:
-            continue  # statsmodels stops early near τ² = 0 (see tests/test_reml.py)
+            continue  # statsmodels stops early near τ² = 0 (see tests/unit/test_reml.py)
         # statsmodels MixedLM, REML (Seabold & Perktold 2010)
         assert row["effect"] == pytest.approx(res.fe_params.iloc[0], rel=1e-4)
         assert row["var_animal"] == pytest.approx(tau2, rel=1e-4)
         assert row["var_run"] == pytest.approx(res.scale, rel=1e-4)
         # model-based SE √((XᵀV̂⁻¹X)⁻¹) with a dense V̂ from statsmodels' estimates (as in
-        # tests/test_reml.py; statsmodels' own bse_fe comes from its observed information)
+        # tests/unit/test_reml.py; statsmodels' own bse_fe comes from its observed information)
         Z = (animal[:, None] == np.arange(m)[None, :]).astype(float)
         V = tau2 * Z @ Z.T + res.scale * np.eye(n)
         se = float(np.sqrt(1.0 / (X.T @ np.linalg.solve(V, X))[0, 0]))
@@ -634,75 +632,7 @@ def test_animal_table_matches_weighted_least_squares(cohort):
 
 
 # --------------------------------------------------------------------------------------
-# 6. the example cohort
-# --------------------------------------------------------------------------------------
-
-#: z for two-sided p = 0.001 (standard normal table; common practice)
-Z_THRESHOLD = 3.29
-
-
-def _ancestors(atlas, name: str, hemisphere: str) -> set[str]:
-    regions = atlas.regions.set_index("index")
-    hit = atlas.regions[
-        (atlas.regions["name"] == name) & (atlas.regions["hemisphere"] == hemisphere)
-    ]
-    node = int(hit["index"].iloc[0])
-    names = set()
-    while node != -1:
-        names.add(regions.loc[node, "name"])
-        node = int(regions.loc[node, "parent"])
-    return names
-
-
-def test_example_cohort_clusters_lie_in_the_planted_regions(tmp_path):
-    path = ex.write_example(tmp_path)
-    study = grouplevel.load_study(path, permutations=0)
-    maps, _ = grouplevel.fit_study(study)
-    settings = study.settings
-    found = {}
-    for gm in maps:
-        atlas = read_atlas(settings.atlas.image, settings.atlas.labels, study.grid, gm.mask)
-        assert atlas.coverage == 1.0  # the example atlas labels the whole brain
-        z = gm.volume("z")
-        clusters = find_clusters(z, gm.mask, Z_THRESHOLD, voxel_volume_mm3=study.grid.voxel_volume)
-        table = cluster_table(
-            clusters,
-            z,
-            gm.volume("t"),
-            gm.volume("effect"),
-            gm.mask,
-            atlas,
-            study.grid,
-            settings.space.origin_mm,
-            significant=np.ones(clusters.n_clusters, bool),
-            p_extent=None,
-            p_mass=None,
-            q3d=gm.volume("q"),
-        )
-        found[gm.name] = (table, atlas)
-    table, atlas = found["sound"]
-    peaks = table[(table["peak"] == 1) & (table["sign"] == 1)]
-    auditory = {
-        side
-        for name, side in zip(peaks["peak_region"], peaks["peak_region_hemisphere"], strict=True)
-        if name != UNLABELLED and "auditory cortex" in _ancestors(atlas, name, side)
-    }
-    assert auditory == {"left", "right"}
-    assert "inferior colliculus" in set(peaks["peak_region"])
-    # the two largest clusters are the auditory cortices, one per side (ground truth)
-    top = table[table["peak"] == 1].head(2)
-    assert set(top["peak_region_hemisphere"]) == {"left", "right"}
-    table, _ = found["paw"]
-    strongest = table.loc[table["z"].abs().idxmax()]
-    assert (strongest["peak_region"], strongest["peak_region_hemisphere"]) == (
-        "forelimb area",
-        "right",
-    )
-    assert strongest["peak_ML_mm"] > 0  # right of the midline in stereotaxic terms
-
-
-# --------------------------------------------------------------------------------------
-# 7. regions without data, and misuse by the caller
+# 6. regions without data, and misuse by the caller
 # --------------------------------------------------------------------------------------
 
 

@@ -1,0 +1,1 @@
+"""Calibration of the inference on many simulated null studies (slow)."""

@@ -1,0 +1,1 @@
+"""End-to-end tests: the example study, whole runs, the command line, report and docs."""

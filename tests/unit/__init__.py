@@ -1,0 +1,1 @@
+"""Unit tests: one function or module at a time, on small arrays or tiny studies."""
