@@ -58,13 +58,13 @@ def statsmodels_fit(y, animal, session, condition):
         return model.fit(reml=True)
 
 
-def main() -> None:
+def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--voxels", type=int, default=100_000)
     parser.add_argument("--reference-voxels", type=int, default=20)
     parser.add_argument("--tiny", action="store_true", help="a few hundred voxels")
     parser.add_argument("--seed", type=int, default=0)
-    args = parser.parse_args()
+    args = parser.parse_args(argv)
     n_vox, n_ref = (300, 3) if args.tiny else (args.voxels, args.reference_voxels)
     rng = np.random.default_rng(args.seed)
     y, X, animal, session, condition = make_data(n_vox, rng)

@@ -35,6 +35,10 @@ RATIO_LINES = {
         rf"peak memory, +4 permutations: +{NUMBER} MiB",
         rf"peak memory, +8 permutations: +{NUMBER} MiB",
     ],
+    "bench_mixed": [
+        rf"per-voxel speed ratio \(statsmodels / ours\): {NUMBER}x",
+        rf"same ratio in CPU time \(process_time; robust to a busy machine\): {NUMBER}x",
+    ],
     "bench_model": [
         rf"per-voxel speed ratio, same model \(no s²\): {NUMBER}x",
         rf"per-voxel speed ratio, full fit \(with s²\): {NUMBER}x",
