@@ -14,7 +14,6 @@ from grouplevel.model.mixed import (
     MixedModelFit,
     fit_mixed,
     group_welch_df,
-    mixed_df,
     mixed_satterthwaite_df,
 )
 from grouplevel.model.reml import MixedFit, fit_reml, presence_patterns
@@ -28,7 +27,6 @@ __all__ = [
     "fit_mixed",
     "fit_reml",
     "group_welch_df",
-    "mixed_df",
     "mixed_satterthwaite_df",
     "presence_patterns",
     "satterthwaite_df",

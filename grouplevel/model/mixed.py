@@ -1262,62 +1262,6 @@ def _in_span(columns: np.ndarray, basis: np.ndarray) -> np.ndarray:
     return resid <= SPAN_TOLERANCE * np.maximum(np.linalg.norm(columns, axis=0), 1e-300)
 
 
-def mixed_df(X, animal, present, c, slopes=None) -> np.ndarray:
-    """Degrees of freedom of ``cᵀβ`` from the level at which the tested effect varies.
-
-    A contrast whose weighted columns are all animal-level (constant within animals)
-    or within-animal effects with a random slope (in the span of the animal-level
-    columns and ``slopes``) gets ``animals with data − rank(animal-level design of those
-    animals)``. Any other contrast (a run-level column without a random slope) gets the
-    run-level rule of :func:`grouplevel.model.between_animal_df`.
-
-    Parameters
-    ----------
-    X : ndarray, shape (n_runs, p)
-    animal : ndarray of int, shape (n_runs,)
-    present : ndarray of bool, shape (n_runs, V)
-    c : array_like, shape (p,)
-    slopes : ndarray, shape (n_runs, q), optional
-        The random-slope columns given to :func:`fit_mixed`.
-
-    Returns
-    -------
-    ndarray, shape (V,)
-
-    References
-    ----------
-    Pinheiro, J. C., & Bates, D. M. (2000). Mixed-Effects Models in S and S-PLUS.
-    Springer, §2.4.2 (section from memory).
-    """
-    from grouplevel.model.contrasts import animal_level_columns, between_animal_df
-
-    X = np.asarray(X, dtype=np.float64)
-    if X.ndim == 1:
-        X = X[:, None]
-    animal = np.asarray(animal, dtype=np.int64)
-    present = np.asarray(present, dtype=bool)
-    if present.ndim == 1:
-        present = present[:, None]
-    c = np.asarray(c, dtype=np.float64).ravel()
-    if c.shape != (X.shape[1],) or animal.shape != (X.shape[0],):
-        raise ValueError("mixed_df: X, animal and c do not agree in size.")
-    if present.shape[0] != X.shape[0]:
-        raise ValueError("mixed_df: present needs one row per run.")
-    level = animal_level_columns(X, animal)
-    sl = np.zeros((X.shape[0], 0)) if slopes is None else np.asarray(slopes, float)
-    sl = sl[:, None] if sl.ndim == 1 else sl
-    covered = level | _in_span(X, np.column_stack([X[:, level], sl]))
-    if not np.all(covered[c != 0]):
-        return between_animal_df(X, animal, present, c)
-    patterns, inverse = presence_patterns(present)
-    out = np.zeros(len(patterns))
-    xa = X[:, level]
-    for i, pat in enumerate(patterns):  # loop over distinct presence patterns, not voxels
-        rank_a = np.linalg.matrix_rank(xa[pat]) if xa.shape[1] and pat.any() else 0
-        out[i] = np.unique(animal[pat]).size - rank_a
-    return out[inverse]
-
-
 def group_welch_df(fit: MixedModelFit, c, X, animal, animal_group=None) -> np.ndarray:
     """Welch–Satterthwaite degrees of freedom with one variance share per animal group.
 

@@ -25,10 +25,10 @@ from grouplevel.model import (
     fit_mixed,
     fit_reml,
     group_welch_df,
-    mixed_df,
     mixed_satterthwaite_df,
     test_contrast,
 )
+from grouplevel.model.contrasts import slope_df
 
 ALPHA = 0.05  # the conventional test level (common practice)
 
@@ -489,8 +489,10 @@ def test_within_animal_effect_with_random_slope_is_calibrated(slope_sd, noise):
     y = y + rng.normal(size=(n, n_vox)) * np.sqrt(noise**2 / 2 + s2)
     fit = fit_mixed(y, s2, X, animal, slopes=cond, slope_names=["cond"])
     assert fit.converged.mean() >= 0.995
-    df = mixed_df(X, animal, np.isfinite(y), [0, 1], slopes=cond)
-    assert np.all(df == m - 1)  # animals − rank of the animal-level design (intercept)
+    # the maps' rule (grouplevel.model.contrasts.slope_df): animals informative on the
+    # slope − rank of the slope's animal-level design (the intercept)
+    df = slope_df(X, animal, np.isfinite(y), 1, np.ones((m, 1)))
+    assert np.all(df == m - 1)
     res = test_contrast(fit, [0, 1], df)
     rate, ci = _rate_and_interval(res.p[fit.converged])
     if slope_sd > noise * 2:
@@ -564,7 +566,7 @@ def test_within_animal_effect_with_nested_sessions_is_calibrated():
     y = y + rng.normal(size=(n, n_vox)) * 0.5
     fit = fit_mixed(y, None, X, animal, slopes=drug, slope_names=["drug"], session=session)
     assert fit.converged.mean() >= 0.995
-    df = mixed_df(X, animal, np.isfinite(y), [0, 1], slopes=drug)
+    df = slope_df(X, animal, np.isfinite(y), 1, np.ones((m, 1)))
     res = test_contrast(fit, [0, 1], df)
     rate, ci = _rate_and_interval(res.p[fit.converged])
     # scipy.stats.binomtest: α = 0.05 lies in the 95% interval of the observed rate
