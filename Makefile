@@ -1,30 +1,38 @@
 # The two commands a newcomer needs: `make demo` and `make test`.
-# Each creates (or refreshes, when pyproject.toml changed) the virtual environment .venv.
+# Each creates (or refreshes, when pyproject.toml changed) the virtual environment .venv;
+# the demo installs only what grouplevel itself needs, the tests add their extras.
 
 PYTHON ?= python3
 VENV ?= .venv
 BIN := $(VENV)/bin
-STAMP := $(VENV)/.grouplevel-installed
+BASE := $(VENV)/.grouplevel-installed
+TEST := $(VENV)/.grouplevel-test-installed
 
 .PHONY: demo test lint format clean
 
-$(STAMP): pyproject.toml
+$(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -e ".[test]"
-	touch $(STAMP)
 
-demo: $(STAMP)
+$(BASE): pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e .
+	touch $(BASE)
+
+$(TEST): $(BASE)
+	$(BIN)/python -m pip install --quiet -e ".[test]"
+	touch $(TEST)
+
+demo: $(BASE)
 	$(BIN)/grouplevel demo --out demo_output --force
 
-test: $(STAMP)
+test: $(TEST)
 	$(BIN)/python -m pytest -q
 
-lint: $(STAMP)
+lint: $(TEST)
 	$(BIN)/ruff check .
 	$(BIN)/ruff format --check .
 
-format: $(STAMP)
+format: $(TEST)
 	$(BIN)/ruff format .
 
 clean:
