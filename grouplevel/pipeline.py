@@ -30,7 +30,6 @@ from scipy import stats
 
 from grouplevel import __version__
 from grouplevel.anatomy.tables import region_data, region_tables
-from grouplevel.cli.overview import design_description
 from grouplevel.errors import UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
@@ -40,6 +39,7 @@ from grouplevel.inference.permutation import (
     permutation_test,
 )
 from grouplevel.inference.significance import sided_p
+from grouplevel.intake.description import design_description
 from grouplevel.intake.design import (
     CONTRAST_ANIMAL,
     CONTRAST_SLOPE,

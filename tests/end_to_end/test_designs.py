@@ -22,6 +22,7 @@ from scipy import optimize, stats
 from grouplevel.cli import main
 from grouplevel.design import build_design, column_levels, random_effects
 from grouplevel.errors import UserError
+from grouplevel.intake.description import design_description
 from grouplevel.pipeline import fit_study, load_study, write_outputs
 from tests.conftest import write_study
 
@@ -824,12 +825,17 @@ def test_animal_without_the_condition_takes_no_part(tmp_path):
         model='formula = "1 + drug"',
         extra=extra,
     )
-    _, maps, _ = _fit(toml)
+    study, maps, _ = _fit(toml)
     gm = maps["drug"]
     np.testing.assert_array_equal(gm.df, 4)
     scheme = gm.inference.permutation.scheme
     assert scheme.exhaustive and scheme.n == 2**5
     assert scheme.smallest_p == pytest.approx(2 / 2**5)
+    # what `check` prints (and summary.json's design section) is the scheme run uses
+    (told,) = design_description(study, study.first_levels[0])["contrasts"]
+    assert told["permutation"]["kind"] == "sign flips"
+    assert told["permutation"]["permutations"] == 2**5
+    assert told["permutation"]["smallest_attainable_p"] == pytest.approx(2 / 2**5)
 
 
 def test_difference_of_two_conditions_within_animals(tmp_path):
