@@ -700,22 +700,17 @@ def region_table(
     """
     values, variances = _check_region_arrays(atlas, values, variances)
     shares = sp.csr_matrix(atlas.shares)
-    masks = {}
-    for method, vector in surviving.items():
-        vector = np.asarray(vector, dtype=bool).reshape(-1)
-        if vector.shape != (shares.shape[0],):
-            raise ValueError(
-                f"surviving[{method!r}] has {vector.size} values for {shares.shape[0]} "
-                "in-mask voxels"
-            )
-        masks[method] = vector
-    present = np.isfinite(values)
-    fit = fit_reml(values, variances, X, animal, estimate_run_variance=estimate_run_variance)
-    df = between_animal_df(X, animal, present, c)
-    result = test_contrast(fit, c, df)
-    q = fdr(result.p, alpha=alpha, method=fdr_method).q
-    with np.errstate(invalid="ignore"):
-        critical = stats.t.ppf(0.5 + CONFIDENCE_LEVEL / 2.0, result.df)
+    masks = _surviving_masks(surviving, shares.shape[0])
+    statistics = _region_statistics(
+        values,
+        variances,
+        X,
+        animal,
+        c,
+        estimate_run_variance=estimate_run_variance,
+        alpha=alpha,
+        fdr_method=fdr_method,
+    )
     regions = atlas.regions
     table = pd.DataFrame(
         {
@@ -726,19 +721,7 @@ def region_table(
             "parent": regions["parent"].to_numpy(),
             "depth": regions["depth"].to_numpy(),
             "volume_mm3": regions["mask_volume_mm3"].to_numpy(dtype=float),
-            "effect": result.effect,
-            "se": result.se,
-            "ci_low": result.effect - critical * result.se,
-            "ci_high": result.effect + critical * result.se,
-            "t": result.t,
-            "df": result.df,
-            "p": result.p,
-            "q": q,
-            "fdr_significant": np.nan_to_num(q, nan=np.inf) <= alpha,
-            "var_animal": fit.var_animal,
-            "var_run": fit.var_run,
-            "runs": fit.n_runs,
-            "animals": fit.n_animals,
+            **statistics,
         }
     )
     total = np.asarray(shares.sum(axis=0)).ravel()
@@ -748,6 +731,62 @@ def region_table(
                 total > 0, (shares.T @ vector.astype(float)) / total, np.nan
             )
     return table
+
+
+def _surviving_masks(surviving: Mapping[str, np.ndarray], n_vox: int) -> dict[str, np.ndarray]:
+    """Each method's surviving voxels as a ``(n_vox,)`` bool vector, its length checked."""
+    masks = {}
+    for method, vector in surviving.items():
+        vector = np.asarray(vector, dtype=bool).reshape(-1)
+        if vector.shape != (n_vox,):
+            raise ValueError(
+                f"surviving[{method!r}] has {vector.size} values for {n_vox} in-mask voxels"
+            )
+        masks[method] = vector
+    return masks
+
+
+def _region_statistics(
+    values: np.ndarray,
+    variances: np.ndarray | None,
+    X: np.ndarray,
+    animal: np.ndarray,
+    c: np.ndarray,
+    *,
+    estimate_run_variance: bool,
+    alpha: float,
+    fdr_method: str,
+) -> dict[str, np.ndarray]:
+    """The REML fit and contrast test of every region, FDR across regions.
+
+    Returns
+    -------
+    dict
+        Column name → ``(n_regions,)`` values, from ``effect`` to ``animals`` in the
+        order of :func:`region_table`.
+    """
+    present = np.isfinite(values)
+    fit = fit_reml(values, variances, X, animal, estimate_run_variance=estimate_run_variance)
+    df = between_animal_df(X, animal, present, c)
+    result = test_contrast(fit, c, df)
+    q = fdr(result.p, alpha=alpha, method=fdr_method).q
+    with np.errstate(invalid="ignore"):
+        critical = stats.t.ppf(0.5 + CONFIDENCE_LEVEL / 2.0, result.df)
+    return {
+        "effect": result.effect,
+        "se": result.se,
+        "ci_low": result.effect - critical * result.se,
+        "ci_high": result.effect + critical * result.se,
+        "t": result.t,
+        "df": result.df,
+        "p": result.p,
+        "q": q,
+        "fdr_significant": np.nan_to_num(q, nan=np.inf) <= alpha,
+        "var_animal": fit.var_animal,
+        "var_run": fit.var_run,
+        "runs": fit.n_runs,
+        "animals": fit.n_animals,
+    }
 
 
 def animal_table(

@@ -14,6 +14,7 @@ EXIT_USER_ERROR = 2
 
 
 def _parser() -> argparse.ArgumentParser:
+    """The argument parser of ``grouplevel`` and its sub-commands (one builder each)."""
     p = argparse.ArgumentParser(
         prog="grouplevel",
         description="Mixed-effects group analysis of rodent fMRI contrast maps "
@@ -21,10 +22,24 @@ def _parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--version", action="version", version=f"grouplevel {__version__}")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    _add_check_command(sub)
+    _add_run_command(sub)
+    _add_report_command(sub)
+    _add_plan_command(sub)
+    _add_table_command(sub)
+    _add_example_command(sub)
+    _add_demo_command(sub)
+    return p
 
+
+def _add_check_command(sub: argparse._SubParsersAction) -> None:
+    """The ``check`` command: validate a study and print its overview."""
     c = sub.add_parser("check", help="validate a study and print its overview")
     c.add_argument("study", type=Path, help="the study's TOML file")
 
+
+def _add_run_command(sub: argparse._SubParsersAction) -> None:
+    """The ``run`` command: fit, correct, ask and write an output folder."""
     r = sub.add_parser("run", help="fit the group model and write maps and summary")
     r.add_argument("study", type=Path, help="the study's TOML file")
     # a string, not a Path: Path("") is the working folder, and an empty --out is refused
@@ -39,12 +54,18 @@ def _parser() -> argparse.ArgumentParser:
     )
     r.add_argument("--seed", type=int, default=None, help="override [inference] seed")
 
+
+def _add_report_command(sub: argparse._SubParsersAction) -> None:
+    """The ``report`` command: re-render the report of an output folder."""
     rp = sub.add_parser(
         "report", help="re-render report.html, methods.md and tables/ of an output folder"
     )
     rp.add_argument("folder", type=Path, help="output folder of `grouplevel run`")
     rp.add_argument("--title", default=None, help="a new title for the report")
 
+
+def _add_plan_command(sub: argparse._SubParsersAction) -> None:
+    """The ``plan`` command: power of future designs from an output folder."""
     pl = sub.add_parser(
         "plan", help="power of future designs (animals x runs) from a finished output folder"
     )
@@ -86,6 +107,9 @@ def _parser() -> argparse.ArgumentParser:
         help="power the cheapest design must reach (default 0.8)",
     )
 
+
+def _add_table_command(sub: argparse._SubParsersAction) -> None:
+    """The ``table`` command: a runs table from a BIDS-style derivatives folder."""
     t = sub.add_parser(
         "table",
         help="write a runs table from a BIDS-style derivatives folder of first-level maps",
@@ -107,9 +131,15 @@ def _parser() -> argparse.ArgumentParser:
     )
     t.add_argument("--force", action="store_true", help="replace an existing table")
 
+
+def _add_example_command(sub: argparse._SubParsersAction) -> None:
+    """The ``example`` command: write the invented example study."""
     e = sub.add_parser("example", help="write the invented example study into a folder")
     e.add_argument("folder", type=Path, help="folder to write the example study into")
 
+
+def _add_demo_command(sub: argparse._SubParsersAction) -> None:
+    """The ``demo`` command: write the example study and run it."""
     d = sub.add_parser("demo", help="write the example study and run it")
     d.add_argument(
         "--out",
@@ -121,7 +151,6 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument(
         "--quiet", action="store_true", help="print only errors and where the outputs are"
     )
-    return p
 
 
 def _log(quiet: bool):

@@ -444,6 +444,49 @@ def plan_from_output(
     out = Path(out_dir).expanduser()
     summary = read_summary(out)
     settings = summary.get("settings") or {}
+    options = _plan_options(
+        settings,
+        effect=effect,
+        cost_animal=cost_animal,
+        cost_run=cost_run,
+        alpha=alpha,
+        target_power=target_power,
+    )
+    reader = _FirstLevelVariance(summary)
+    plans: list[PlanResult] = []
+    skipped: list[str] = []
+    for name, entry in summary["results"].items():
+        path, table, rows, why = _rows_to_plan(out, name, entry, settings, regions)
+        if why:
+            skipped.append(f"{name}: {why}")
+            continue
+        for i in rows:
+            plans.append(_plan_row(name, table.iloc[i], entry, path, reader=reader, **options))
+    if not plans:
+        raise UserError(
+            f"{out}: no analysed map can be planned ({'; '.join(skipped) or 'no results'})"
+        )
+    return plans
+
+
+def _plan_options(
+    settings: dict[str, Any],
+    *,
+    effect: float | None,
+    cost_animal: float,
+    cost_run: float,
+    alpha: float | None,
+    target_power: float,
+) -> dict[str, Any]:
+    """The checked numbers of a plan and the analysis settings it reuses.
+
+    Returns
+    -------
+    dict
+        The keyword arguments of :func:`_plan_row` other than ``reader``: ``effect``,
+        ``run_variance``, ``cost_animal``, ``cost_run``, ``alpha`` (default the
+        analysis's), ``sided`` (the analysis's, "two" when unknown) and ``target_power``.
+    """
     inference = settings.get("inference") or {}
     alpha, target_power, cost_animal, cost_run, effect = _checked_plan_numbers(
         inference.get("alpha", DEFAULT_ALPHA) if alpha is None else alpha,
@@ -456,55 +499,56 @@ def plan_from_output(
     if sided not in SIDED_CHOICES:
         sided = "two"
     run_variance = (settings.get("model") or {}).get("run_variance", "estimate")
-    reader = _FirstLevelVariance(summary)
+    return {
+        "effect": effect,
+        "run_variance": run_variance,
+        "cost_animal": cost_animal,
+        "cost_run": cost_run,
+        "alpha": alpha,
+        "sided": sided,
+        "target_power": target_power,
+    }
 
-    plans: list[PlanResult] = []
-    skipped: list[str] = []
-    for name, entry in summary["results"].items():
-        path = out / name / "regions.tsv"
-        if not path.is_file():
-            skipped.append(f"{name}: no regions.tsv (the analysis had no atlas)")
-            continue
-        if not _is_group_mean(entry):
-            skipped.append(
-                f"{name}: not the mean of an intercept-only design (the plan covers "
-                "one-sample designs only)"
-            )
-            continue
-        table = _read_regions(path)
-        first_level = entry.get("first_level_contrast")
-        rows = _chosen_rows(
-            table,
-            regions,
-            _target_names(settings, first_level),
+
+def _rows_to_plan(
+    out: Path,
+    name: str,
+    entry: dict[str, Any],
+    settings: dict[str, Any],
+    regions: Sequence[str] | None,
+) -> tuple[Path, pd.DataFrame | None, np.ndarray, str]:
+    """The region rows of one analysed map to plan for, or why the map is skipped.
+
+    Returns
+    -------
+    path, table, rows
+        The map's regions.tsv, its table (None when skipped) and the chosen rows.
+    why
+        Why the map is skipped ("" when it is planned).
+    """
+    path = out / name / "regions.tsv"
+    none = np.zeros(0, dtype=np.int64)
+    if not path.is_file():
+        return path, None, none, "no regions.tsv (the analysis had no atlas)"
+    if not _is_group_mean(entry):
+        return (
             path,
-            _stimulus_side(settings, first_level),
+            None,
+            none,
+            ("not the mean of an intercept-only design (the plan covers one-sample designs only)"),
         )
-        if rows.size == 0:
-            skipped.append(f"{name}: no region has a test")
-            continue
-        for i in rows:
-            plans.append(
-                _plan_row(
-                    name,
-                    table.iloc[i],
-                    entry,
-                    path,
-                    effect=effect,
-                    run_variance=run_variance,
-                    reader=reader,
-                    cost_animal=cost_animal,
-                    cost_run=cost_run,
-                    alpha=alpha,
-                    sided=sided,
-                    target_power=target_power,
-                )
-            )
-    if not plans:
-        raise UserError(
-            f"{out}: no analysed map can be planned ({'; '.join(skipped) or 'no results'})"
-        )
-    return plans
+    table = _read_regions(path)
+    first_level = entry.get("first_level_contrast")
+    rows = _chosen_rows(
+        table,
+        regions,
+        _target_names(settings, first_level),
+        path,
+        _stimulus_side(settings, first_level),
+    )
+    if rows.size == 0:
+        return path, table, rows, "no region has a test"
+    return path, table, rows, ""
 
 
 def _chosen_rows(

@@ -156,6 +156,50 @@ def run_quality(
 
     Hajnal JV et al. (1994). Magn Reson Med 31:283-291.
     """
+    y, animal, loo_effect, shell = _check_quality_inputs(
+        y, animal, runs, loo_effect, shell, threshold
+    )
+    correlation = _correlation(y, loo_effect[animal])
+    mean_var = _mean_variance(variance, y)
+    edge = _edge_score(y, shell)
+    z_c, z_v, z_e = robust_z(correlation), robust_z(mean_var), robust_z(edge)
+    flagged, why = _flags(correlation, mean_var, edge, (z_c, z_v, z_e), threshold)
+    n = len(y)
+    session = runs["session"] if "session" in runs.columns else pd.Series([""] * n)
+    table = pd.DataFrame(
+        {
+            "animal": runs["animal"].astype(str).to_numpy(),
+            "session": session.astype(str).to_numpy(),
+            "run": runs["run"].astype(str).to_numpy(),
+            "correlation": correlation,
+            "mean_variance": mean_var,
+            "z_correlation": z_c,
+            "z_variance": z_v,
+            "edge_score": edge,
+            "z_edge": z_e,
+            "flagged": flagged,
+            "why": why,
+        },
+        columns=list(QUALITY_COLUMNS),
+    )
+    return RunQuality(runs=table, threshold=float(threshold))
+
+
+def _check_quality_inputs(
+    y: np.ndarray,
+    animal: np.ndarray,
+    runs: pd.DataFrame,
+    loo_effect: np.ndarray,
+    shell: np.ndarray,
+    threshold: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``y``, ``animal``, ``loo_effect`` and ``shell`` as arrays, checked against each other.
+
+    Raises
+    ------
+    ArgumentError
+        On shapes that do not match or a threshold that is not positive.
+    """
     y = np.asarray(y, dtype=float)
     if y.ndim != 2:
         raise ArgumentError(f"run_quality: y must be (runs, voxels), got shape {y.shape}.")
@@ -176,25 +220,58 @@ def run_quality(
         raise ArgumentError(f"run_quality: shell has {shell.size} values for {n_vox} voxels.")
     if not threshold > 0:
         raise ArgumentError(f"run quality threshold must be positive, got {threshold!r}.")
+    return y, animal, loo_effect, shell
 
-    correlation = _correlation(y, loo_effect[animal])
+
+def _mean_variance(variance: np.ndarray | None, y: np.ndarray) -> np.ndarray:
+    """``(n_runs,)`` mean of each run's finite first-level variances (NaN without them)."""
     if variance is None:
-        mean_var = np.full(n, np.nan)
-    else:
-        variance = np.asarray(variance, dtype=float)
-        if variance.shape != y.shape:
-            raise ArgumentError(f"run_quality: variance {variance.shape} and y {y.shape} differ.")
-        with np.errstate(invalid="ignore"):
-            ok = np.isfinite(variance)
-            mean_var = np.where(ok, variance, 0.0).sum(axis=1) / ok.sum(axis=1)
+        return np.full(len(y), np.nan)
+    variance = np.asarray(variance, dtype=float)
+    if variance.shape != y.shape:
+        raise ArgumentError(f"run_quality: variance {variance.shape} and y {y.shape} differ.")
+    with np.errstate(invalid="ignore"):
+        ok = np.isfinite(variance)
+        return np.where(ok, variance, 0.0).sum(axis=1) / ok.sum(axis=1)
+
+
+def _edge_score(y: np.ndarray, shell: np.ndarray) -> np.ndarray:
+    """``(n_runs,)`` mean |effect| in the edge shell over the mean |effect| inside it."""
     a = np.abs(y)
     fin = np.isfinite(a)
     with np.errstate(invalid="ignore", divide="ignore"):
         edge_mean = np.where(fin & shell, a, 0.0).sum(axis=1) / (fin & shell).sum(axis=1)
         inner_mean = np.where(fin & ~shell, a, 0.0).sum(axis=1) / (fin & ~shell).sum(axis=1)
-        edge = edge_mean / inner_mean
-    z_c, z_v, z_e = robust_z(correlation), robust_z(mean_var), robust_z(edge)
+        return edge_mean / inner_mean
 
+
+def _flags(
+    correlation: np.ndarray,
+    mean_var: np.ndarray,
+    edge: np.ndarray,
+    robust: tuple[np.ndarray, np.ndarray, np.ndarray],
+    threshold: float,
+) -> tuple[np.ndarray, list[str]]:
+    """Which runs are flagged, and why.
+
+    Parameters
+    ----------
+    correlation, mean_var, edge
+        ``(n_runs,)`` the three quality numbers.
+    robust
+        Their robust z scores, in the same order.
+    threshold
+        |robust z| above which a run is flagged.
+
+    Returns
+    -------
+    flagged
+        ``(n_runs,)`` bool.
+    why
+        One string per run: the reasons joined by "; ", "" for a run not flagged.
+    """
+    z_c, z_v, z_e = robust
+    n = len(correlation)
     why = []
     flagged = np.zeros(n, dtype=bool)
     for k in range(n):  # loop over runs (tens), not voxels
@@ -213,21 +290,4 @@ def run_quality(
             parts.append(f"{side} edge-rim score ({edge[k]:.2f}, robust z {z_e[k]:.1f})")
         flagged[k] = bool(parts)
         why.append("; ".join(parts))
-    session = runs["session"] if "session" in runs.columns else pd.Series([""] * n)
-    table = pd.DataFrame(
-        {
-            "animal": runs["animal"].astype(str).to_numpy(),
-            "session": session.astype(str).to_numpy(),
-            "run": runs["run"].astype(str).to_numpy(),
-            "correlation": correlation,
-            "mean_variance": mean_var,
-            "z_correlation": z_c,
-            "z_variance": z_v,
-            "edge_score": edge,
-            "z_edge": z_e,
-            "flagged": flagged,
-            "why": why,
-        },
-        columns=list(QUALITY_COLUMNS),
-    )
-    return RunQuality(runs=table, threshold=float(threshold))
+    return flagged, why

@@ -891,6 +891,52 @@ def consistency(
     Borenstein M, Hedges LV, Higgins JPT, Rothstein HR (2009). Introduction to
     Meta-Analysis. Wiley.
     """
+    values, s2, X, animal, animal_ids = _consistency_inputs(
+        values, variances, X, animal, animal_ids
+    )
+    fit, res = _test(
+        values[:, None], None if s2 is None else s2[:, None], X, animal, c, estimate_run_variance
+    )
+    tau2, sig2 = float(fit.var_animal[0]), float(fit.var_run[0])
+    icc = tau2 / (tau2 + sig2) if (tau2 + sig2) > 0 else float("nan")
+    full = float(res.effect[0])
+    table, has = _animal_effects(
+        values,
+        s2,
+        X,
+        animal,
+        c,
+        animal_ids,
+        var_run=sig2,
+        full=full,
+        estimate_run_variance=estimate_run_variance,
+    )
+    return Consistency(
+        animals=table,
+        effect=full,
+        se=float(res.se[0]),
+        t=float(res.t[0]),
+        df=float(res.df[0]),
+        p=float(res.p[0]),
+        var_animal=tau2,
+        var_run=sig2,
+        icc=float(icc),
+        n_positive=int(table["positive"].sum()),
+        n_ci_above_zero=int(table["ci_above_zero"].sum()),
+        n_animals=int(has.sum()),
+        most_influential=_most_influential(table["loo_change"].to_numpy(), animal_ids),
+    )
+
+
+def _consistency_inputs(values, variances, X, animal, animal_ids):
+    """The inputs of :func:`consistency` as arrays, checked against each other.
+
+    Returns
+    -------
+    values, s2, X, animal, animal_ids
+        ``(n_runs,)`` values, ``(n_runs,)`` variances or None, the design ``(n_runs, p)``,
+        the animal codes and the animal names as strings.
+    """
     values = np.asarray(values, dtype=float).reshape(-1)
     n = values.size
     X, animal = _design_inputs(X, animal, n, "consistency")
@@ -903,23 +949,40 @@ def consistency(
         s2 = np.asarray(variances, dtype=float).reshape(-1)
         if s2.shape != (n,):
             raise ArgumentError(f"consistency: {s2.size} variances for {n} runs.")
-    fit, res = _test(
-        values[:, None], None if s2 is None else s2[:, None], X, animal, c, estimate_run_variance
-    )
-    tau2, sig2 = float(fit.var_animal[0]), float(fit.var_run[0])
-    icc = tau2 / (tau2 + sig2) if (tau2 + sig2) > 0 else float("nan")
+    return values, s2, X, animal, animal_ids
 
+
+def _animal_effects(
+    values: np.ndarray,
+    s2: np.ndarray | None,
+    X: np.ndarray,
+    animal: np.ndarray,
+    c: np.ndarray,
+    animal_ids: list[str],
+    *,
+    var_run: float,
+    full: float,
+    estimate_run_variance: bool,
+) -> tuple[pd.DataFrame, np.ndarray]:
+    """Each animal's effect with its 95% CI, and the leave-this-animal-out refit.
+
+    Returns
+    -------
+    table
+        The ``animals`` table of :class:`Consistency`.
+    has
+        ``(m,)`` bool: the animal has runs with data.
+    """
+    m = len(animal_ids)
     present = np.isfinite(values) & (np.isfinite(s2) if s2 is not None else True)
     means = animal_means(
         values[:, None],
         animal,
         n_animals=m,
         variance=None if s2 is None else s2[:, None],
-        var_run=sig2,
+        var_run=var_run,
     )
     eff, se, runs = means.mean[:, 0], means.se[:, 0], means.runs[:, 0]
-
-    full = float(res.effect[0])
     loo_e, loo_t = _leave_each_animal_out(
         values, s2, X, animal, c, present, m, estimate_run_variance
     )
@@ -941,23 +1004,13 @@ def consistency(
             "loo_change": change,
         }
     )
+    return table, has
+
+
+def _most_influential(change: np.ndarray, animal_ids: list[str]) -> str:
+    """The animal with the largest |LOO change| of the effect ("" when none is finite)."""
     abs_change = np.where(np.isfinite(change), np.abs(change), -np.inf)
-    most = animal_ids[int(np.argmax(abs_change))] if np.isfinite(abs_change).any() else ""
-    return Consistency(
-        animals=table,
-        effect=full,
-        se=float(res.se[0]),
-        t=float(res.t[0]),
-        df=float(res.df[0]),
-        p=float(res.p[0]),
-        var_animal=tau2,
-        var_run=sig2,
-        icc=float(icc),
-        n_positive=int(table["positive"].sum()),
-        n_ci_above_zero=int(table["ci_above_zero"].sum()),
-        n_animals=int(has.sum()),
-        most_influential=most,
-    )
+    return animal_ids[int(np.argmax(abs_change))] if np.isfinite(abs_change).any() else ""
 
 
 def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_variance):

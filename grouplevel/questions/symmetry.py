@@ -978,31 +978,13 @@ def analyse_symmetry(
     """
     _check_margin(equivalence_margin)
     shares = sp.csc_matrix(atlas.shares)
-    z = np.asarray(z, dtype=float).ravel()
-    effect = np.asarray(effect, dtype=float).ravel()
-    n_vox = shares.shape[0]
-    if z.shape != (n_vox,) or effect.shape != (n_vox,):
-        raise ValueError(f"z and effect must have the atlas's {n_vox} in-mask voxels")
-    region_values = np.asarray(region_values, dtype=float)
-    if region_values.shape != (len(animal), shares.shape[1]):
-        raise ValueError(
-            f"region_values must be (runs, {shares.shape[1]} regions), got {region_values.shape}"
-        )
+    z, effect, region_values = _check_symmetry_maps(shares, z, effect, region_values, animal)
     animal = np.asarray(animal, dtype=np.int64)
-    yb, present_b, animal_b, variance_b = _bootstrap_runs(
-        y, present, animal, variance, bootstrap_animals
-    )
+    runs = _bootstrap_runs(y, present, animal, variance, bootstrap_animals)
     out = []
     seen: set[tuple[int, int]] = set()
     for name in names:
-        left_row, right_row = region_pair(atlas, name)
-        if (left_row, right_row) in seen:
-            raise ArgumentError(
-                f"region {name!r} names a region pair already listed; give each region once."
-            )
-        seen.add((left_row, right_row))
-        lc, lw = _column(shares, left_row)
-        rc, rw = _column(shares, right_row)
+        left_row, right_row = _new_region_pair(atlas, name, seen)
         test = hemisphere_test(
             region_values[:, left_row],
             region_values[:, right_row],
@@ -1015,33 +997,19 @@ def analyse_symmetry(
             test, alpha=alpha, stimulus_side=stimulus_side, sided=sided, signs=signs
         )
         flip = -1.0 if verdict.sign == "negative" else 1.0
-        zs, es = flip * z, flip * effect
-        li_extent = laterality(
-            extent_amount(zs[lc], lw, threshold), extent_amount(zs[rc], rw, threshold)
-        )
-        li_effect = laterality(effect_amount(es[lc], lw), effect_amount(es[rc], rw))
-        boot = bootstrap_li(
-            flip * yb,
-            present_b,
-            animal_b,
-            lc,
-            rc,
-            left_weights=lw,
-            right_weights=rw,
-            variance=variance_b,
+        li_extent, li_effect, boot, tf = _pair_laterality(
+            flip,
+            z,
+            effect,
+            runs,
+            _column(shares, left_row),
+            _column(shares, right_row),
             var_run=var_run,
             threshold=threshold,
             n_boot=n_boot,
-            rng=rng,
-        )
-        tf = threshold_free_li(
-            zs,
-            lc,
-            rc,
-            left_weights=lw,
-            right_weights=rw,
             n_thresholds=n_thresholds,
             weighting=weighting,
+            rng=rng,
         )
         out.append(
             RegionSymmetry(
@@ -1057,6 +1025,109 @@ def analyse_symmetry(
             )
         )
     return tuple(out)
+
+
+def _check_symmetry_maps(
+    shares: sp.csc_matrix,
+    z: np.ndarray,
+    effect: np.ndarray,
+    region_values: np.ndarray,
+    animal: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The group maps and region means as float arrays, checked against the atlas.
+
+    Returns
+    -------
+    z, effect
+        ``(V,)`` flattened.
+    region_values
+        ``(n_runs, n_regions)``.
+    """
+    z = np.asarray(z, dtype=float).ravel()
+    effect = np.asarray(effect, dtype=float).ravel()
+    n_vox = shares.shape[0]
+    if z.shape != (n_vox,) or effect.shape != (n_vox,):
+        raise ValueError(f"z and effect must have the atlas's {n_vox} in-mask voxels")
+    region_values = np.asarray(region_values, dtype=float)
+    if region_values.shape != (len(animal), shares.shape[1]):
+        raise ValueError(
+            f"region_values must be (runs, {shares.shape[1]} regions), got {region_values.shape}"
+        )
+    return z, effect, region_values
+
+
+def _new_region_pair(atlas: Atlas, name: str, seen: set[tuple[int, int]]) -> tuple[int, int]:
+    """The left and right rows of ``name``; refuses a pair already in ``seen`` (then adds it)."""
+    left_row, right_row = region_pair(atlas, name)
+    if (left_row, right_row) in seen:
+        raise ArgumentError(
+            f"region {name!r} names a region pair already listed; give each region once."
+        )
+    seen.add((left_row, right_row))
+    return left_row, right_row
+
+
+def _pair_laterality(
+    flip: float,
+    z: np.ndarray,
+    effect: np.ndarray,
+    runs: tuple,
+    left: tuple[np.ndarray, np.ndarray],
+    right: tuple[np.ndarray, np.ndarray],
+    *,
+    var_run: np.ndarray | None,
+    threshold: float,
+    n_boot: int,
+    n_thresholds: int,
+    weighting: str,
+    rng: np.random.Generator,
+) -> tuple[float, float, BootstrapLI, ThresholdFreeLI]:
+    """The LIs of one region pair on maps multiplied by ``flip`` (−1 for a negative response).
+
+    Parameters
+    ----------
+    runs
+        ``(y, present, animal, variance)`` of the runs the bootstrap resamples
+        (:func:`_bootstrap_runs`).
+    left, right
+        In-mask voxel columns and atlas shares of each side (:func:`_column`).
+
+    Returns
+    -------
+    li_extent, li_effect, bootstrap, threshold_free
+        The point LIs of the group maps, the bootstrap intervals and the threshold-free LI.
+    """
+    (lc, lw), (rc, rw) = left, right
+    yb, present_b, animal_b, variance_b = runs
+    zs, es = flip * z, flip * effect
+    li_extent = laterality(
+        extent_amount(zs[lc], lw, threshold), extent_amount(zs[rc], rw, threshold)
+    )
+    li_effect = laterality(effect_amount(es[lc], lw), effect_amount(es[rc], rw))
+    boot = bootstrap_li(
+        flip * yb,
+        present_b,
+        animal_b,
+        lc,
+        rc,
+        left_weights=lw,
+        right_weights=rw,
+        variance=variance_b,
+        var_run=var_run,
+        threshold=threshold,
+        n_boot=n_boot,
+        rng=rng,
+    )
+    tf = threshold_free_li(
+        zs,
+        lc,
+        rc,
+        left_weights=lw,
+        right_weights=rw,
+        n_thresholds=n_thresholds,
+        weighting=weighting,
+    )
+    return li_extent, li_effect, boot, tf
 
 
 def _bootstrap_runs(y, present, animal, variance, bootstrap_animals):

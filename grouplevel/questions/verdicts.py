@@ -172,6 +172,25 @@ def symmetry_verdict(
     ----------
     Schuirmann DJ (1987). J Pharmacokinet Biopharm 15:657-680 (equivalence by TOST).
     """
+    _check_verdict_arguments(alpha, stimulus_side)
+    allowed = counted_signs(sided)
+    if signs is not None:
+        allowed = tuple(s for s in allowed if s in signs)
+    active, reasons = _active_sides(test, alpha, allowed)
+    numbers = _verdict_numbers(test, alpha, sided, active, stimulus_side)
+    label, dominant, sign, label_reasons = _label_for_response(test, alpha, active)
+    reasons.extend(label_reasons)
+    side = ""
+    if dominant and stimulus_side is not None:
+        side, side_reason = _stimulus_side_word(dominant, stimulus_side)
+        reasons.append(side_reason)
+    numbers["dominant_side"] = dominant
+    numbers["sign"] = sign
+    return Verdict(label=label, reasons=tuple(reasons), numbers=numbers, side=side, sign=sign)
+
+
+def _check_verdict_arguments(alpha: float, stimulus_side: str | None) -> None:
+    """Refuse a level outside (0, 1) and an unknown stimulated side."""
     if not 0.0 < alpha < 1.0:
         raise ArgumentError(f"alpha = {alpha}: give a level between 0 and 1")
     if stimulus_side is not None and stimulus_side not in SIDES:
@@ -179,11 +198,22 @@ def symmetry_verdict(
             f'stimulus_side = {stimulus_side!r}: use "left", "right" or None when the '
             "stimulus was not lateralised"
         )
-    allowed = counted_signs(sided)
-    if signs is not None:
-        allowed = tuple(s for s in allowed if s in signs)
+
+
+def _active_sides(
+    test: HemisphereTest, alpha: float, allowed: tuple[str, ...]
+) -> tuple[dict[str, str], list[str]]:
+    """Step 1 of the rule: which sides are active, with one reason per side.
+
+    Returns
+    -------
+    active
+        Side ("left", "right") -> sign of its response, "" when the side is not active.
+    reasons
+        One sentence per side: its word, region-mean effect and p.
+    """
     reasons: list[str] = []
-    active: dict[str, str] = {}  # side -> sign of its response, "" when not active
+    active: dict[str, str] = {}
     for side, effect, p in (
         ("left", test.left_effect, test.left_p),
         ("right", test.right_effect, test.right_p),
@@ -198,13 +228,18 @@ def symmetry_verdict(
         else:
             word = "not active"
         reasons.append(f"{side} side {word}: region-mean effect {effect:.3g}, {_fmt_p(p)}")
-    on = [side for side in ("left", "right") if active[side]]
-    response = active[on[0]] if on else ""
-    direction = -1.0 if response == "negative" else 1.0
-    significant = bool(np.isfinite(test.p) and test.p < alpha)
-    larger = "left" if direction * test.difference > 0 else "right"
-    equivalent = bool(np.isfinite(test.tost_p) and test.tost_p < alpha)
-    numbers = {
+    return active, reasons
+
+
+def _verdict_numbers(
+    test: HemisphereTest,
+    alpha: float,
+    sided: str,
+    active: dict[str, str],
+    stimulus_side: str | None,
+) -> dict:
+    """The deciding numbers of a verdict as plain floats / bools / strings."""
+    return {
         "alpha": float(alpha),
         "sided": sided,
         "left_active": bool(active["left"]),
@@ -220,49 +255,45 @@ def symmetry_verdict(
         "tost_p": _float(test.tost_p),
         "stimulus_side": stimulus_side or "",
     }
-    diff_text = (
-        f"left minus right {test.difference:.3g} (95% CI {test.ci_low:.3g} to "
-        f"{test.ci_high:.3g}), {_fmt_p(test.p)}"
-    )
-    tost_text = (
-        f"equivalence within ±{test.margin:.3g} (|LI| ≤ {test.margin_li:g}): TOST "
-        f"{_fmt_p(test.tost_p)}"
-    )
-    dominant = ""
-    sign = response
-    if not on:
-        label = NO_ACTIVATION
-    elif len(on) == 2 and active["left"] != active["right"]:
+
+
+def _label_for_response(
+    test: HemisphereTest, alpha: float, active: dict[str, str]
+) -> tuple[str, str, str, list[str]]:
+    """Steps 2-7 of the rule: the label from the active sides and the difference tests.
+
+    Returns
+    -------
+    label
+        The verdict label, with the negative-response prefix where it applies.
+    dominant
+        The dominant or only active side ("left" / "right"), "" when there is none.
+    sign
+        The sign of the response the label is about, "" for none or opposite signs.
+    reasons
+        The sentences on the difference, the equivalence test and the sign.
+    """
+    on = [side for side in ("left", "right") if active[side]]
+    response = active[on[0]] if on else ""
+    if len(on) == 2 and active["left"] != active["right"]:
         label = OPPOSITE_SIGNS.format(left=active["left"], right=active["right"])
-        sign = ""
-        reasons.append(f"The two sides respond with opposite signs: {diff_text}")
-    elif len(on) == 1:
-        only = on[0]
-        reasons.append(
-            f"Difference {'significant' if significant else 'not significant'}: {diff_text}"
+        return (
+            label,
+            "",
+            "",
+            [f"The two sides respond with opposite signs: {_difference_text(test)}"],
         )
-        if significant and larger == only:
-            label = UNILATERAL.format(side=only)
-            dominant = only
-        elif significant:
-            label = UNCLEAR.format(larger=larger, active=only)
-        else:
-            label = ONE_SIDE_ONLY.format(side=only)
-            dominant = only
+    direction = -1.0 if response == "negative" else 1.0
+    significant = bool(np.isfinite(test.p) and test.p < alpha)
+    larger = "left" if direction * test.difference > 0 else "right"
+    if not on:
+        label, dominant, reasons = NO_ACTIVATION, "", []
+    elif len(on) == 1:
+        label, dominant, reasons = _one_side_label(test, on[0], larger, significant)
     else:
-        if significant:
-            label = DOMINANT.format(side=larger)
-            dominant = larger
-            reasons.append(f"Difference significant: {diff_text}")
-            if equivalent:
-                reasons.append(f"The difference is small: {tost_text}")
-        else:
-            reasons.append(f"Difference not significant: {diff_text}")
-            reasons.append(
-                f"{'Equivalence shown' if equivalent else 'Equivalence not shown'}: {tost_text}"
-            )
-            label = BILATERAL_EQUIVALENT if equivalent else BILATERAL_UNRESOLVED
-    if sign == "negative":
+        equivalent = bool(np.isfinite(test.tost_p) and test.tost_p < alpha)
+        label, dominant, reasons = _both_sides_label(test, larger, significant, equivalent)
+    if response == "negative":
         label = NEGATIVE_PREFIX + label
         reasons.append(
             "The response is negative (both counted sides below 0); 'larger' means larger "
@@ -270,13 +301,61 @@ def symmetry_verdict(
             if len(on) == 2
             else "The response is negative; 'larger' means larger in magnitude"
         )
-    side = ""
-    if dominant and stimulus_side is not None:
-        side = "ipsilateral" if dominant == stimulus_side else "contralateral"
-        reasons.append(f"The {dominant} side is {side} to the stimulated {stimulus_side} side")
-    numbers["dominant_side"] = dominant
-    numbers["sign"] = sign
-    return Verdict(label=label, reasons=tuple(reasons), numbers=numbers, side=side, sign=sign)
+    return label, dominant, response, reasons
+
+
+def _difference_text(test: HemisphereTest) -> str:
+    """The sentence part on the difference L − R: estimate, 95% CI and p."""
+    return (
+        f"left minus right {test.difference:.3g} (95% CI {test.ci_low:.3g} to "
+        f"{test.ci_high:.3g}), {_fmt_p(test.p)}"
+    )
+
+
+def _equivalence_text(test: HemisphereTest) -> str:
+    """The sentence part on the equivalence test: margin and TOST p."""
+    return (
+        f"equivalence within ±{test.margin:.3g} (|LI| ≤ {test.margin_li:g}): TOST "
+        f"{_fmt_p(test.tost_p)}"
+    )
+
+
+def _one_side_label(
+    test: HemisphereTest, only: str, larger: str, significant: bool
+) -> tuple[str, str, list[str]]:
+    """Step 5 of the rule: exactly one side active (label, dominant side, reasons)."""
+    reasons = [
+        f"Difference {'significant' if significant else 'not significant'}: "
+        f"{_difference_text(test)}"
+    ]
+    if significant and larger == only:
+        return UNILATERAL.format(side=only), only, reasons
+    if significant:
+        return UNCLEAR.format(larger=larger, active=only), "", reasons
+    return ONE_SIDE_ONLY.format(side=only), only, reasons
+
+
+def _both_sides_label(
+    test: HemisphereTest, larger: str, significant: bool, equivalent: bool
+) -> tuple[str, str, list[str]]:
+    """Step 6 of the rule: both sides active with one sign (label, dominant side, reasons)."""
+    if significant:
+        reasons = [f"Difference significant: {_difference_text(test)}"]
+        if equivalent:
+            reasons.append(f"The difference is small: {_equivalence_text(test)}")
+        return DOMINANT.format(side=larger), larger, reasons
+    reasons = [
+        f"Difference not significant: {_difference_text(test)}",
+        f"{'Equivalence shown' if equivalent else 'Equivalence not shown'}: "
+        f"{_equivalence_text(test)}",
+    ]
+    return (BILATERAL_EQUIVALENT if equivalent else BILATERAL_UNRESOLVED), "", reasons
+
+
+def _stimulus_side_word(dominant: str, stimulus_side: str) -> tuple[str, str]:
+    """The side word ("contralateral" / "ipsilateral") of the dominant side, and its reason."""
+    side = "ipsilateral" if dominant == stimulus_side else "contralateral"
+    return side, f"The {dominant} side is {side} to the stimulated {stimulus_side} side"
 
 
 # --------------------------------------------------------------------------------------

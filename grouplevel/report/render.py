@@ -644,8 +644,28 @@ def _cautions(name: str, result: dict, summary: dict, method_words: str) -> list
 
 
 def _study_context(summary: dict) -> dict:
+    """What the report's study section shows: runs, model, contrasts and inference."""
     settings = summary.get("settings") or {}
     results = summary.get("results") or {}
+    inf = settings.get("inference") or {}
+    first_levels = _first_level_rows(results)
+    contrasts = _contrast_rows(summary, settings)
+    inference_rows = _inference_rows(inf)
+    per_result = _per_result_rows(summary, results, inf)
+    return {
+        "first_levels": first_levels,
+        "model": _model_rows(settings.get("model") or {}, settings.get("space") or {}),
+        "contrasts": contrasts,
+        "inference": inference_rows,
+        "per_result": per_result,
+        "warnings": [str(w) for w in summary.get("warnings") or []],
+        "atlas": summary.get("atlas"),
+        "grid": summary.get("grid"),
+    }
+
+
+def _first_level_rows(results: dict) -> list[dict]:
+    """One row per first-level contrast: animals, runs, exclusions, variance, voxels."""
     first_levels: dict[str, dict] = {}
     for _name, r in results.items():
         key = r.get("first_level_contrast") or "runs"
@@ -661,14 +681,17 @@ def _study_context(summary: dict) -> dict:
             "voxels": r.get("voxels"),
             "volume_mm3": r.get("volume_mm3"),
         }
-    inf = settings.get("inference") or {}
-    model = settings.get("model") or {}
+    return list(first_levels.values())
+
+
+def _contrast_rows(summary: dict, settings: dict) -> list[dict]:
+    """The group contrasts with their weights in words."""
     # the contrasts actually tested (the design's defaults when the study defines none)
     tested: dict[str, dict] = {}
     for design in (summary.get("design") or {}).values():
         for c in design.get("contrasts") or []:
             tested.setdefault(c.get("name"), c)
-    contrasts = [
+    return [
         {
             "name": c.get("name"),
             "weights": ", ".join(f"{k} × {v:g}" for k, v in (c.get("weights") or {}).items())
@@ -676,6 +699,10 @@ def _study_context(summary: dict) -> dict:
         }
         for c in (tested.values() if tested else settings.get("contrasts") or [])
     ]
+
+
+def _inference_rows(inf: dict) -> list[tuple[str, str]]:
+    """The ``[inference]`` settings as (label, value) rows."""
     inference_rows = [
         (
             "tests",
@@ -701,6 +728,11 @@ def _study_context(summary: dict) -> dict:
             ),
             ("seed", str(inf.get("seed"))),
         ]
+    return inference_rows
+
+
+def _per_result_rows(summary: dict, results: dict, inf: dict) -> list[dict]:
+    """One row per result: its correction method, permutations and FDR threshold."""
     per_result = []
     for name, r in results.items():
         perm = (r.get("inference") or {}).get("permutation")
@@ -718,36 +750,30 @@ def _study_context(summary: dict) -> dict:
                 "fdr_threshold": ((r.get("inference") or {}).get("fdr") or {}).get("threshold_p"),
             }
         )
-    space = settings.get("space") or {}
+    return per_result
+
+
+def _model_rows(model: dict, space: dict) -> list[tuple[str, str]]:
+    """The ``[model]`` settings and the coordinate origin as (label, value) rows."""
     origin = space.get("origin_mm", [0, 0, 0])
-    return {
-        "first_levels": list(first_levels.values()),
-        "model": [
-            ("design formula", model.get("formula", "1")),
-            ("random effects", "intercept per animal; runs nested in animals"),
-            (
-                "between-run variance σ²",
-                "estimated (REML)"
-                if model.get("run_variance") != "known"
-                else "fixed at 0 (first-level variance only)",
-            ),
-            (
-                "degrees of freedom",
-                "Satterthwaite" if model.get("df") == "satterthwaite" else "between-animal",
-            ),
-            (
-                "origin",
-                f"{space.get('origin_name', 'origin')} at "
-                f"({', '.join(f'{v:g}' for v in origin)}) mm",
-            ),
-        ],
-        "contrasts": contrasts,
-        "inference": inference_rows,
-        "per_result": per_result,
-        "warnings": [str(w) for w in summary.get("warnings") or []],
-        "atlas": summary.get("atlas"),
-        "grid": summary.get("grid"),
-    }
+    return [
+        ("design formula", model.get("formula", "1")),
+        ("random effects", "intercept per animal; runs nested in animals"),
+        (
+            "between-run variance σ²",
+            "estimated (REML)"
+            if model.get("run_variance") != "known"
+            else "fixed at 0 (first-level variance only)",
+        ),
+        (
+            "degrees of freedom",
+            "Satterthwaite" if model.get("df") == "satterthwaite" else "between-animal",
+        ),
+        (
+            "origin",
+            f"{space.get('origin_name', 'origin')} at ({', '.join(f'{v:g}' for v in origin)}) mm",
+        ),
+    ]
 
 
 def _frames(out_dir: Path, name: str) -> dict:
