@@ -634,7 +634,14 @@ def inspect_study(settings: Settings) -> Study:
     variables, formula_missing = _formula_variables(settings, table, problems)
     variance_kind = _variance_kind(path, table, included, problems)
     context = _StudyContext(
-        settings, path, grid, user_mask, bad_files, variance_kind, variables, formula_missing
+        settings=settings,
+        path=path,
+        grid=grid,
+        user_mask=user_mask,
+        bad_files=bad_files,
+        variance_kind=variance_kind,
+        variables=variables,
+        formula_missing=formula_missing,
     )
     first_levels, names = _first_levels(context, table, problems, warnings)
     extent = _extent_warning(user_mask, first_levels, grid)
