@@ -21,15 +21,16 @@ import shutil
 import tempfile
 import time
 from collections.abc import Callable
-from dataclasses import replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
 from scipy import stats
 
 from grouplevel import __version__
-from grouplevel.anatomy.tables import region_data, region_tables
+from grouplevel.anatomy.tables import RegionData, region_data, region_tables
 from grouplevel.errors import UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
@@ -429,6 +430,38 @@ def _group_variance_warning(
     )
 
 
+@dataclass(frozen=True)
+class _FittedLevel:
+    """One first-level contrast's fitted model and what all its group contrasts share."""
+
+    fl: FirstLevel
+    label: str  # the first-level contrast in messages
+    y: np.ndarray  # (runs, fitted voxels) effects
+    s2: np.ndarray | None  # (runs, fitted voxels) first-level variances, or None
+    mask: np.ndarray  # the fitted voxels (3-D bool)
+    fit: Any
+    not_converged: int  # fitted voxels where REML stopped at the iteration limit
+    described: str  # the random effects, in words
+    present: np.ndarray  # (runs, fitted voxels): where a run has data
+    components: dict[str, np.ndarray]
+    var_animal: np.ndarray
+    smooth: Smoothness | None
+    # the animal-level data of each level tested (see reduced_for), computed once
+    reduced: dict[tuple, tuple[AnimalLevelData, np.ndarray, np.ndarray]] = field(
+        default_factory=dict
+    )
+
+    def reduced_for(self, c: np.ndarray) -> tuple[AnimalLevelData, np.ndarray, np.ndarray]:
+        """:func:`_reduced_data` for contrast ``c``, shared by contrasts of one level."""
+        design, random = self.fl.design, self.fl.random
+        kind, slope = contrast_kind(design, random, c)
+        # the reduced data depend on the level tested; the reduced contrast on c itself
+        key = (kind, slope, tuple(c))
+        if key not in self.reduced:
+            self.reduced[key] = _reduced_data(self.y, self.s2, self.fit, design, random, c)
+        return self.reduced[key]
+
+
 def _fit_first_level(
     study: Study,
     fl: FirstLevel,
@@ -436,10 +469,32 @@ def _fit_first_level(
     quiet: bool = True,
     backend: Backend | None = None,
 ) -> tuple[list[GroupMap], list[str]]:
-    settings = study.settings
     warnings: list[str] = []
     label = fl.name or "the study"
     start = time.perf_counter()
+    y, s2, mask = _fitted_voxels(study, fl, label, warnings)
+    fitted = _fit(study, fl, label, y, s2, mask, log, backend, warnings)
+    group_note = _variance_group_note(fitted)
+    if group_note:
+        warnings.append(group_note)
+    regions = _region_data(study, fitted)
+    results = []
+    for cname, c in fl.contrasts:
+        gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
+        if regions is not None:
+            gm = replace(gm, tables=region_tables(gm, regions, fl.design, c, study.settings))
+        results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
+    log(f"  done in {time.perf_counter() - start:.1f} s")
+    return results, warnings
+
+
+def _fitted_voxels(
+    study: Study, fl: FirstLevel, label: str, warnings: list[str]
+) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
+    """The runs' effects and variances at the voxels that can be fitted, and their mask.
+
+    Without first-level variances a voxel whose runs all hold the same value is left out.
+    """
     data = load_runs(study, fl)
     mask = fl.mask.copy()
     keep = np.ones(data.effect.shape[1], dtype=bool)
@@ -462,6 +517,22 @@ def _fit_first_level(
     # index only when needed: a boolean index copies the runs × voxels array
     y = data.effect if keep.all() else data.effect[:, keep]
     s2 = data.variance if data.variance is None or keep.all() else data.variance[:, keep]
+    return y, s2, mask
+
+
+def _fit(
+    study: Study,
+    fl: FirstLevel,
+    label: str,
+    y: np.ndarray,
+    s2: np.ndarray | None,
+    mask: np.ndarray,
+    log: Callable[[str], None],
+    backend: Backend | None,
+    warnings: list[str],
+) -> _FittedLevel:
+    """Fit the mixed model at every voxel; warn of voxels not converged or not fitted."""
+    settings = study.settings
     design, random = fl.design, fl.random
     described = describe_random_effects(design, random)
     log(
@@ -493,117 +564,147 @@ def _fit_first_level(
     present = np.isfinite(y)
     if s2 is not None:
         present &= np.isfinite(s2)
-    components = _components(fit)
-    var_animal = _pooled_var_animal(fit, random)
-    smooth = _smoothness(y, s2, fit, design.matrix, mask, study.grid)
-    reduced: dict[tuple, tuple[AnimalLevelData, np.ndarray, np.ndarray]] = {}
+    return _FittedLevel(
+        fl=fl,
+        label=label,
+        y=y,
+        s2=s2,
+        mask=mask,
+        fit=fit,
+        not_converged=not_converged,
+        described=described,
+        present=present,
+        components=_components(fit),
+        var_animal=_pooled_var_animal(fit, random),
+        smooth=_smoothness(y, s2, fit, design.matrix, mask, study.grid),
+    )
 
-    def reduced_for(c: np.ndarray) -> tuple[AnimalLevelData, np.ndarray, np.ndarray]:
-        kind, slope = contrast_kind(design, random, c)
-        # the reduced data depend on the level tested; the reduced contrast on c itself
-        key = (kind, slope, tuple(c))
-        if key not in reduced:
-            reduced[key] = _reduced_data(y, s2, fit, design, random, c)
-        return reduced[key]
 
-    group_note = None
+def _variance_group_note(fitted: _FittedLevel) -> str | None:
+    """:func:`_group_variance_warning` on the animals' own intercepts, when the design
+    has an animal-level column."""
+    design = fitted.fl.design
     animal_columns = np.flatnonzero(~design.within)
-    if animal_columns.size:
-        # the animals' own intercepts (the reduction of any animal-level contrast)
-        on_animal = np.zeros(len(design.columns))
-        on_animal[animal_columns[0]] = 1.0
-        group_note = _group_variance_warning(label, fl, lambda: reduced_for(on_animal)[::2])
-    if group_note:
-        warnings.append(group_note)
-    regions = None
-    if study.atlas is not None:
-        regions = region_data(
-            study.atlas,
-            study.atlas_mask,
-            mask,
-            y,
-            s2,
-            settings.model.run_variance == "estimate",
+    if not animal_columns.size:
+        return None
+    # the animals' own intercepts (the reduction of any animal-level contrast)
+    on_animal = np.zeros(len(design.columns))
+    on_animal[animal_columns[0]] = 1.0
+    return _group_variance_warning(
+        fitted.label, fitted.fl, lambda: fitted.reduced_for(on_animal)[::2]
+    )
+
+
+def _region_data(study: Study, fitted: _FittedLevel) -> RegionData | None:
+    """Every run averaged over every atlas region, or None without an atlas."""
+    if study.atlas is None:
+        return None
+    return region_data(
+        study.atlas,
+        study.atlas_mask,
+        fitted.mask,
+        fitted.y,
+        fitted.s2,
+        study.settings.model.run_variance == "estimate",
+    )
+
+
+def _test_and_correct(
+    study: Study,
+    fitted: _FittedLevel,
+    cname: str,
+    c: np.ndarray,
+    quiet: bool,
+    backend: Backend | None,
+    warnings: list[str],
+) -> GroupMap:
+    """Test group contrast ``c`` at every fitted voxel and correct for the many voxels."""
+    fl, fit = fitted.fl, fitted.fit
+    design, random = fl.design, fl.random
+    df = _contrast_df(study, fl, fit, fitted.present, c)
+    res = test_contrast(fit, c, df)
+    default = cname == DEFAULT_CONTRAST_NAME
+    name = fl.output_name(cname, default)
+    df_full = np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy()
+    kind, slope = contrast_kind(design, random, c)
+    animal_data, c_reduced, groups = None, c, random.animal_group
+    if study.settings.inference.permutations > 0:
+        # check refuses every contrast that cannot be permuted correctly
+        animal_data, c_reduced, taking_part = fitted.reduced_for(c)
+        if groups is not None:
+            groups = groups[taking_part]
+    corrected = _correct(
+        study,
+        c_reduced,
+        res.t,
+        df_full,
+        animal_data,
+        fitted.smooth,
+        fitted.mask,
+        name,
+        quiet,
+        backend,
+        groups,
+    )
+    warnings.extend(corrected.warnings)
+    return GroupMap(
+        name=name,
+        first_level=fl.name,
+        contrast=cname,
+        weights=weights_dict(c, design.columns),
+        grid=study.grid,
+        mask=fitted.mask,
+        effect=res.effect,
+        se=res.se,
+        t=res.t,
+        df=df_full,
+        z=res.z,
+        p=res.p,
+        var_animal=fitted.var_animal,
+        var_run=fit.var_run,
+        coverage_runs=fl.coverage_runs,
+        coverage_animals=fl.coverage_animals,
+        not_converged=fitted.not_converged,
+        n_animals=design.n_animals,
+        n_runs=len(fl.runs),
+        inference=corrected,
+        components=fitted.components,
+        random_effects=fitted.described,
+        tested_level=kind,
+    )
+
+
+def _with_answers(
+    study: Study,
+    fitted: _FittedLevel,
+    gm: GroupMap,
+    c: np.ndarray,
+    regions: RegionData | None,
+    log: Callable[[str], None],
+    backend: Backend | None,
+) -> GroupMap:
+    """The group map with the answers to its questions (or why they were not asked)."""
+    settings, fl = study.settings, fitted.fl
+    plan = question_plan(fl.design, c)
+    if plan.asked:
+        log(f"  questions of {gm.name}: symmetry, specificity, consistency, run quality")
+        answers = answer_questions(
+            gm,
+            fitted.y,
+            fitted.s2,
+            fitted.fit,
+            fl.design,
+            fl.runs,
+            c,
+            regions,
+            settings.questions_for(fl.name),
+            settings,
+            backend=backend,
         )
-    results = []
-    for cname, c in fl.contrasts:
-        df = _contrast_df(study, fl, fit, present, c)
-        res = test_contrast(fit, c, df)
-        default = cname == DEFAULT_CONTRAST_NAME
-        name = fl.output_name(cname, default)
-        df_full = np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape).copy()
-        kind, slope = contrast_kind(design, random, c)
-        animal_data, c_reduced, groups = None, c, random.animal_group
-        if settings.inference.permutations > 0:
-            # check refuses every contrast that cannot be permuted correctly
-            animal_data, c_reduced, taking_part = reduced_for(c)
-            if groups is not None:
-                groups = groups[taking_part]
-        corrected = _correct(
-            study,
-            c_reduced,
-            res.t,
-            df_full,
-            animal_data,
-            smooth,
-            mask,
-            name,
-            quiet,
-            backend,
-            groups,
-        )
-        warnings.extend(corrected.warnings)
-        gm = GroupMap(
-            name=name,
-            first_level=fl.name,
-            contrast=cname,
-            weights=weights_dict(c, design.columns),
-            grid=study.grid,
-            mask=mask,
-            effect=res.effect,
-            se=res.se,
-            t=res.t,
-            df=df_full,
-            z=res.z,
-            p=res.p,
-            var_animal=var_animal,
-            var_run=fit.var_run,
-            coverage_runs=fl.coverage_runs,
-            coverage_animals=fl.coverage_animals,
-            not_converged=not_converged,
-            n_animals=design.n_animals,
-            n_runs=len(fl.runs),
-            inference=corrected,
-            components=components,
-            random_effects=described,
-            tested_level=kind,
-        )
-        if regions is not None:
-            gm = replace(gm, tables=region_tables(gm, regions, design, c, settings))
-        plan = question_plan(design, c)
-        if plan.asked:
-            log(f"  questions of {name}: symmetry, specificity, consistency, run quality")
-            answers = answer_questions(
-                gm,
-                y,
-                s2,
-                fit,
-                design,
-                fl.runs,
-                c,
-                regions,
-                settings.questions_for(fl.name),
-                settings,
-                backend=backend,
-            )
-            gm = replace(gm, answers=answers)
-        else:
-            q = settings.questions_for(fl.name)
-            answers = answers_not_asked(plan, design, c, regions, q, settings, gm, y)
-            gm = replace(gm, answers=answers)
-        results.append(gm)
-    log(f"  done in {time.perf_counter() - start:.1f} s")
-    return results, warnings
+        return replace(gm, answers=answers)
+    q = settings.questions_for(fl.name)
+    answers = answers_not_asked(plan, fl.design, c, regions, q, settings, gm, fitted.y)
+    return replace(gm, answers=answers)
 
 
 def fit_study(

@@ -372,16 +372,54 @@ def load_settings(path: str | Path) -> Settings:
         Listing every problem found in the file (unknown keys, wrong types, bad values).
     """
     path = Path(path).expanduser().resolve()
+    raw = _parse_toml(path)
+    r = _Reader(path)
+    _check_sections(r, raw)
+    study = _read_study(r, _section(r, raw, "study", required=True))
+    space = _read_space(r, _section(r, raw, "space"))
+    atlas = _read_atlas(r, _section(r, raw, "atlas")) if "atlas" in raw else None
+    model = _read_model(r, _section(r, raw, "model"))
+    contrasts = _read_contrasts(r, raw.get("contrast", []))
+    comparisons = _read_comparisons(r, raw)
+    inference = _read_inference(r, _section(r, raw, "inference"))
+    clusters = _read_clusters(r, _section(r, raw, "clusters"), inference)
+    questions, overrides = _read_questions_tables(r, raw.get("questions", {}))
+    compute = _read_compute(r, _section(r, raw, "compute"))
+    if r.problems:
+        raise UserError(f"{path}: {len(r.problems)} problem(s) in the study file", r.problems)
+    return Settings(
+        source=path,
+        study=study,
+        space=space,
+        model=model,
+        contrasts=contrasts,
+        inference=inference,
+        atlas=atlas,
+        clusters=clusters,
+        questions=questions,
+        questions_by_contrast=overrides,
+        compute=compute,
+        # without [[contrast]] blocks the design's default contrasts are tested, each
+        # named after what it tests (grouplevel.design); none is assumed here
+        user_contrasts=bool(contrasts),
+        comparisons=comparisons,
+    )
+
+
+def _parse_toml(path: Path) -> dict[str, Any]:
+    """The study file's TOML as nested dicts; a missing or unreadable file is a UserError."""
     if not path.is_file():
         raise UserError(f"{path}: study file not found")
     try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+        return tomllib.loads(path.read_text(encoding="utf-8"))
     except tomllib.TOMLDecodeError as exc:
         raise UserError(f"{path}: not valid TOML: {exc}") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise UserError(f"{path}: cannot read the study file: {exc}") from None
 
-    r = _Reader(path)
+
+def _check_sections(r: _Reader, raw: dict[str, Any]) -> None:
+    """A problem for every top-level section that the schema does not know."""
     for section in raw:
         if section not in _SCHEMA:
             r.problem(
@@ -390,30 +428,36 @@ def load_settings(path: str | Path) -> Settings:
                 f"allowed sections: {', '.join(_SCHEMA)}",
             )
 
-    def section(name: str, required: bool = False) -> dict[str, Any]:
-        value = raw.get(name, {})
-        if name not in raw and required:
-            r.problem(f"[{name}]", "required section is missing")
-        if not isinstance(value, dict):
-            r.problem(f"[{name}]", "must be a table (a [section] header)")
-            return {}
-        r.check_keys(name, value, _SCHEMA[name])
-        return value
 
-    s = section("study", required=True)
+def _section(r: _Reader, raw: dict[str, Any], name: str, required: bool = False) -> dict[str, Any]:
+    """The table of section ``name`` with its keys checked; {} when absent or not a table."""
+    value = raw.get(name, {})
+    if name not in raw and required:
+        r.problem(f"[{name}]", "required section is missing")
+    if not isinstance(value, dict):
+        r.problem(f"[{name}]", "must be a table (a [section] header)")
+        return {}
+    r.check_keys(name, value, _SCHEMA[name])
+    return value
+
+
+def _read_study(r: _Reader, s: dict[str, Any]) -> StudySettings:
+    """``[study]``: the runs table, title, template, mask and minimum coverage."""
     table = r.path("study", s, "table", required=True)
     min_cov = r.get("study", s, "min_coverage", float, DEFAULT_MIN_COVERAGE)
     if not 0.0 < min_cov <= 1.0:
         r.problem("[study] min_coverage", f"must be in (0, 1], got {min_cov}")
-    study = StudySettings(
-        table=table if table is not None else path.parent,
+    return StudySettings(
+        table=table if table is not None else r.file.parent,
         title=r.get("study", s, "title", str, "Untitled study"),
         template=r.path("study", s, "template"),
         mask=r.path("study", s, "mask"),
         min_coverage=min_cov,
     )
 
-    sp = section("space")
+
+def _read_space(r: _Reader, sp: dict[str, Any]) -> SpaceSettings:
+    """``[space]``: the origin of the coordinates and its name."""
     origin = r.get("space", sp, "origin_mm", list, [0.0, 0.0, 0.0])
     if not (
         len(origin) == 3
@@ -421,26 +465,27 @@ def load_settings(path: str | Path) -> Settings:
     ):
         r.problem("[space] origin_mm", f"must be three numbers [x, y, z] in mm, got {origin!r}")
         origin = [0.0, 0.0, 0.0]
-    space = SpaceSettings(
+    return SpaceSettings(
         origin_mm=tuple(float(v) for v in origin),  # type: ignore[arg-type]
         origin_name=r.get("space", sp, "origin_name", str, DEFAULT_ORIGIN_NAME),
     )
 
-    atlas = None
-    if "atlas" in raw:
-        a = section("atlas")
-        image = r.path("atlas", a, "image", required=True)
-        labels = r.path("atlas", a, "labels", required=True)
-        midline = r.get("atlas", a, "midline_mm", float, None)
-        atlas_cov = r.get("atlas", a, "min_coverage", float, DEFAULT_ATLAS_MIN_COVERAGE)
-        if not 0.0 < atlas_cov <= 1.0:
-            r.problem("[atlas] min_coverage", f"must be in (0, 1], got {atlas_cov}")
-        if image is not None and labels is not None:
-            atlas = AtlasSettings(
-                image=image, labels=labels, midline_mm=midline, min_coverage=atlas_cov
-            )
 
-    m = section("model")
+def _read_atlas(r: _Reader, a: dict[str, Any]) -> AtlasSettings | None:
+    """``[atlas]``: image, labels, midline and coverage; None when a file is not named."""
+    image = r.path("atlas", a, "image", required=True)
+    labels = r.path("atlas", a, "labels", required=True)
+    midline = r.get("atlas", a, "midline_mm", float, None)
+    atlas_cov = r.get("atlas", a, "min_coverage", float, DEFAULT_ATLAS_MIN_COVERAGE)
+    if not 0.0 < atlas_cov <= 1.0:
+        r.problem("[atlas] min_coverage", f"must be in (0, 1], got {atlas_cov}")
+    if image is None or labels is None:
+        return None
+    return AtlasSettings(image=image, labels=labels, midline_mm=midline, min_coverage=atlas_cov)
+
+
+def _read_model(r: _Reader, m: dict[str, Any]) -> ModelSettings:
+    """``[model]``: formula, run variance, df rule, iterations, references, random effects."""
     run_variance = r.get("model", m, "run_variance", str, DEFAULT_RUN_VARIANCE)
     if run_variance not in RUN_VARIANCE_CHOICES:
         r.problem(
@@ -469,7 +514,7 @@ def load_settings(path: str | Path) -> Settings:
                 '{ genotype = "wt" }',
             )
             reference.pop(var)
-    model = ModelSettings(
+    return ModelSettings(
         formula=formula,
         run_variance=run_variance,
         df=df,
@@ -479,13 +524,15 @@ def load_settings(path: str | Path) -> Settings:
         **_read_random_effects(r, m),
     )
 
+
+def _read_contrasts(r: _Reader, blocks: Any) -> tuple[ContrastSpec, ...]:
+    """``[[contrast]]`` blocks: a name (it names a folder) and weights on coefficients."""
     contrasts: list[ContrastSpec] = []
-    raw_contrasts = raw.get("contrast", [])
-    if not isinstance(raw_contrasts, list):
+    if not isinstance(blocks, list):
         r.problem("[contrast]", "write contrasts as [[contrast]] blocks (an array of tables)")
-        raw_contrasts = []
+        blocks = []
     seen: set[str] = set()
-    for i, c in enumerate(raw_contrasts, start=1):
+    for i, c in enumerate(blocks, start=1):
         where = f"contrast {i}"
         if not isinstance(c, dict):
             r.problem(f"[[contrast]] {i}", "must be a table")
@@ -515,10 +562,6 @@ def load_settings(path: str | Path) -> Settings:
         if clean and all(w == 0 for w in clean.values()):
             r.problem(f"[{where}] weights", "all weights are zero")
         contrasts.append(ContrastSpec(name=name, weights=clean))
-    # without [[contrast]] blocks the design's default contrasts are tested, each named
-    # after what it tests (grouplevel.design); none is assumed here
-    user_contrasts = bool(contrasts)
-    comparisons = _read_comparisons(r, raw)
     for spec in contrasts:  # names become table cells: no tab or line break in them
         bad = control_characters(spec.name)
         if bad:
@@ -527,8 +570,11 @@ def load_settings(path: str | Path) -> Settings:
                 f"{spec.name!r} holds {', '.join(bad)}, which would break the rows of the "
                 "tables written; remove it",
             )
+    return tuple(contrasts)
 
-    inf = section("inference")
+
+def _read_inference(r: _Reader, inf: dict[str, Any]) -> InferenceSettings:
+    """``[inference]``: permutations, seed, sides, clusters, alpha, FDR and TFCE."""
     permutations = r.get("inference", inf, "permutations", int, DEFAULT_PERMUTATIONS)
     if permutations < 0:
         r.problem("[inference] permutations", f"must be 0 or more, got {permutations}")
@@ -567,7 +613,7 @@ def load_settings(path: str | Path) -> Settings:
     if seed_problem:
         r.problem("[inference] seed", seed_problem)
         seed = DEFAULT_SEED
-    inference = InferenceSettings(
+    return InferenceSettings(
         permutations=permutations,
         seed=seed,
         sided=sided,
@@ -580,7 +626,10 @@ def load_settings(path: str | Path) -> Settings:
         tfce_h=tfce_h,
     )
 
-    cl = section("clusters")
+
+def _read_clusters(r: _Reader, cl: dict[str, Any], inference: InferenceSettings) -> ClusterSettings:
+    """``[clusters]``: the method that decides significance (checked against
+    ``inference``), the sub-peak distance and the regions listed per cluster."""
     method = r.get("clusters", cl, "method", str, None)
     if method is not None and method not in CLUSTER_METHODS:
         r.problem(
@@ -588,7 +637,7 @@ def load_settings(path: str | Path) -> Settings:
             f"must be one of {', '.join(CLUSTER_METHODS)}, got {method!r}"
             + _suggest(method, CLUSTER_METHODS),
         )
-    elif method is not None and method != "fdr" and permutations == 0:
+    elif method is not None and method != "fdr" and inference.permutations == 0:
         r.problem(
             "[clusters] method",
             f'{method!r} needs permutations; set [inference] permutations > 0 or use "fdr"',
@@ -601,21 +650,29 @@ def load_settings(path: str | Path) -> Settings:
     top = r.get("clusters", cl, "top_regions", int, DEFAULT_TOP_REGIONS)
     if top < 1:
         r.problem("[clusters] top_regions", f"must be at least 1, got {top}")
-    clusters = ClusterSettings(method=method, subpeak_distance_mm=subpeak, top_regions=top)
+    return ClusterSettings(method=method, subpeak_distance_mm=subpeak, top_regions=top)
 
-    q_raw = raw.get("questions", {})
+
+def _read_questions_tables(
+    r: _Reader, q_raw: Any
+) -> tuple[QuestionSettings, dict[str, QuestionSettings]]:
+    """``[questions]`` and its ``[questions.<contrast>]`` overrides (keys they omit come
+    from ``[questions]``)."""
     overrides: dict[str, QuestionSettings] = {}
     questions = QuestionSettings()
     if not isinstance(q_raw, dict):
         r.problem("[questions]", "must be a table (a [questions] header)")
-    else:
-        base_keys = {k: v for k, v in q_raw.items() if not isinstance(v, dict)}
-        questions = _read_questions(r, "questions", base_keys, QuestionSettings())
-        for name, sub in q_raw.items():
-            if isinstance(sub, dict):
-                overrides[name] = _read_questions(r, f"questions.{name}", sub, questions)
+        return questions, overrides
+    base_keys = {k: v for k, v in q_raw.items() if not isinstance(v, dict)}
+    questions = _read_questions(r, "questions", base_keys, QuestionSettings())
+    for name, sub in q_raw.items():
+        if isinstance(sub, dict):
+            overrides[name] = _read_questions(r, f"questions.{name}", sub, questions)
+    return questions, overrides
 
-    co = section("compute")
+
+def _read_compute(r: _Reader, co: dict[str, Any]) -> ComputeSettings:
+    """``[compute]``: memory, backend (dask only when installed), scheduler, workers."""
     memory_gb = r.get("compute", co, "memory_gb", float, None)
     if memory_gb is not None and memory_gb <= 0:
         r.problem("[compute] memory_gb", f"must be positive, got {memory_gb}")
@@ -638,29 +695,11 @@ def load_settings(path: str | Path) -> Settings:
     workers = r.get("compute", co, "workers", int, None)
     if workers is not None and workers < 1:
         r.problem("[compute] workers", f"must be at least 1, got {workers}")
-    compute = ComputeSettings(
+    return ComputeSettings(
         memory_gb=memory_gb if memory_gb is not None else default_memory_gb(),
         backend=backend,
         scheduler=r.get("compute", co, "scheduler", str, None),
         workers=workers,
-    )
-
-    if r.problems:
-        raise UserError(f"{path}: {len(r.problems)} problem(s) in the study file", r.problems)
-    return Settings(
-        source=path,
-        study=study,
-        space=space,
-        model=model,
-        contrasts=tuple(contrasts),
-        inference=inference,
-        atlas=atlas,
-        clusters=clusters,
-        questions=questions,
-        questions_by_contrast=overrides,
-        compute=compute,
-        user_contrasts=user_contrasts,
-        comparisons=comparisons,
     )
 
 

@@ -581,6 +581,32 @@ def _single_run_warning(
     )
 
 
+@dataclass(frozen=True)
+class _StudyContext:
+    """What the study-wide phases of :func:`inspect_study` found, for the phases run
+    once per first-level condition or comparison."""
+
+    settings: Settings
+    path: Path  # the runs table
+    grid: Grid
+    user_mask: np.ndarray | None
+    bad_files: set[str]  # map files whose header could not be read or is off the grid
+    variance_kind: str  # "variance", "se" or "none"
+    variables: list[str]  # the formula's variables
+    formula_missing: bool  # the formula names a column the runs table lacks
+
+
+@dataclass(frozen=True)
+class _Coverage:
+    """Per-voxel counts of one first-level contrast's usable runs and animals, and the
+    range of its effects over runs (NaN unless the study has no variance maps)."""
+
+    runs: np.ndarray
+    animals: np.ndarray
+    low: np.ndarray
+    high: np.ndarray
+
+
 def inspect_study(settings: Settings) -> Study:
     """Validate a study completely and return it, or raise with every problem found.
 
@@ -597,6 +623,50 @@ def inspect_study(settings: Settings) -> Study:
     problems: list[str] = []
     warnings: list[str] = []
     path = settings.study.table
+    table = _runs_table(path, problems, warnings)
+    if problems:
+        raise UserError(f"{path}: {len(problems)} problem(s) in the runs table", problems)
+    included = table[~table["exclude"]]
+    grid, bad_files = _grids(settings, table, included, problems)
+    if grid is None or problems:
+        raise UserError(f"{path}: {len(problems)} problem(s) in the study's files", problems)
+    user_mask = _user_mask(settings, problems)
+    variables, formula_missing = _formula_variables(settings, table, problems)
+    variance_kind = _variance_kind(path, table, included, problems)
+    context = _StudyContext(
+        settings=settings,
+        path=path,
+        grid=grid,
+        user_mask=user_mask,
+        bad_files=bad_files,
+        variance_kind=variance_kind,
+        variables=variables,
+        formula_missing=formula_missing,
+    )
+    first_levels, names = _first_levels(context, table, problems, warnings)
+    extent = _extent_warning(user_mask, first_levels, grid)
+    if extent:
+        warnings.append(extent)
+    atlas = _study_atlas(settings, grid, user_mask, first_levels, problems, warnings)
+    problems.extend(_check_output_names(first_levels))
+    problems.extend(_check_questions(settings, names, atlas))
+    if problems:
+        raise UserError(f"{path}: {len(problems)} problem(s) in the study", problems)
+    return Study(
+        settings=settings,
+        table=table,
+        grid=grid,
+        first_levels=tuple(first_levels),
+        user_mask=user_mask,
+        warnings=tuple(warnings),
+        atlas=atlas,
+    )
+
+
+# -- table --
+def _runs_table(path: Path, problems: list[str], warnings: list[str]) -> pd.DataFrame:
+    """The runs table with its condition column, its rows checked; a warning for the
+    files of a derivatives folder that were left out."""
     table = _condition_column(path, read_table(path), problems, warnings)
     skipped = table.attrs.get("skipped", [])
     if skipped:
@@ -605,11 +675,16 @@ def inspect_study(settings: Settings) -> Study:
             + "; ".join(skipped[:5])
             + (f"; ... (see grouplevel table {path})" if len(skipped) > 5 else "")
         )
-    table = _check_rows(path, table, problems)
-    if problems:
-        raise UserError(f"{path}: {len(problems)} problem(s) in the runs table", problems)
+    return _check_rows(path, table, problems)
 
-    # -- grids (headers only) --
+
+# -- grids (headers only) --
+def _grids(
+    settings: Settings, table: pd.DataFrame, included: pd.DataFrame, problems: list[str]
+) -> tuple[Grid | None, set[str]]:
+    """The study grid (None when no header could be read) and the map files whose
+    header is unreadable or off that grid; the atlas files only need to exist."""
+    path = settings.study.table
     files: dict[str, str] = {}  # path -> where it is named
     for key, p in (
         ("[study] template", settings.study.template),
@@ -622,7 +697,6 @@ def inspect_study(settings: Settings) -> Study:
         for key, p in (("image", settings.atlas.image), ("labels", settings.atlas.labels)):
             if not p.is_file():
                 problems.append(f"{p}: atlas {key} not found ([atlas] {key})")
-    included = table[~table["exclude"]]
     for _, row in included.iterrows():
         for col in ("effect", "variance", "se"):
             if col in table.columns and row[col]:
@@ -642,28 +716,42 @@ def inspect_study(settings: Settings) -> Study:
             if why:
                 problems.append(f"{files[p]}: {p}: {why} ({source})")
                 bad_files.add(p)
-    if grid is None or problems:
-        raise UserError(f"{path}: {len(problems)} problem(s) in the study's files", problems)
+    return grid, bad_files
 
-    user_mask = None
-    if settings.study.mask is not None:
-        user_mask = read_volume(settings.study.mask)
-        if not np.all(np.isfinite(user_mask)):
-            problems.append(f"[study] mask {settings.study.mask}: contains NaN or infinite values")
-        user_mask = np.nan_to_num(user_mask) > 0
-        if not user_mask.any():
-            problems.append(f"[study] mask {settings.study.mask}: the mask is empty")
 
-    # -- design per first-level contrast --
-    variables: list[str] = []
+# -- mask --
+def _user_mask(settings: Settings, problems: list[str]) -> np.ndarray | None:
+    """The ``[study] mask`` as booleans (values above 0), or None when none is given."""
+    if settings.study.mask is None:
+        return None
+    user_mask = read_volume(settings.study.mask)
+    if not np.all(np.isfinite(user_mask)):
+        problems.append(f"[study] mask {settings.study.mask}: contains NaN or infinite values")
+    user_mask = np.nan_to_num(user_mask) > 0
+    if not user_mask.any():
+        problems.append(f"[study] mask {settings.study.mask}: the mask is empty")
+    return user_mask
+
+
+# -- design per first-level contrast --
+def _formula_variables(
+    settings: Settings, table: pd.DataFrame, problems: list[str]
+) -> tuple[list[str], bool]:
+    """The formula's variables, and whether it names a column the runs table lacks."""
     missing = missing_variables(
         settings.model.formula, [c for c in table.columns if c not in ("line", "exclude")]
     )
     if missing:
         problems.extend(missing)
-    else:
-        variables = formula_variables(settings.model.formula)
+        return [], True
+    return formula_variables(settings.model.formula), False
 
+
+def _variance_kind(
+    path: Path, table: pd.DataFrame, included: pd.DataFrame, problems: list[str]
+) -> str:
+    """Which first-level maps the included runs give ("variance", "se" or "none");
+    every included run must then give one."""
     variance_kind = "none"
     if "variance" in table.columns and (included["variance"] != "").any():
         variance_kind = "variance"
@@ -676,202 +764,325 @@ def inspect_study(settings: Settings) -> Study:
                 f"{_where(path, row)}: '{variance_kind}' is empty while other runs have one; "
                 "give every included run a first-level variance map, or none"
             )
+    return variance_kind
 
-    first_levels: list[FirstLevel] = []
-    derived = comparison_rows(table, settings.comparisons, path, variance_kind, problems, warnings)
+
+def _first_levels(
+    context: _StudyContext, table: pd.DataFrame, problems: list[str], warnings: list[str]
+) -> tuple[list[FirstLevel], list[str]]:
+    """One :class:`FirstLevel` per condition and comparison that passes every check, and
+    the names of all of them (conditions first, then comparisons)."""
+    settings = context.settings
+    derived = comparison_rows(
+        table, settings.comparisons, context.path, context.variance_kind, problems, warnings
+    )
     work = pd.concat([table, derived], ignore_index=True) if len(derived) else table
     comparison_weights = {spec.name: dict(spec.conditions) for spec in settings.comparisons}
     names = list(dict.fromkeys(work["condition"]))
+    first_levels: list[FirstLevel] = []
     for name in names:
-        label = f"condition '{name}'" if name else "the study"
-        if name in comparison_weights:
-            label = f"comparison '{name}'"
         rows = work[work["condition"] == name]
-        inc = rows[~rows["exclude"]]
-        excl = rows[rows["exclude"]]
-        for animal in dict.fromkeys(rows["animal"]):
-            if animal and not (inc["animal"] == animal).any():
-                n = int((excl["animal"] == animal).sum())
-                problems.append(
-                    f"{path.name}: animal {animal} has no included runs for {label} "
-                    f"(all {n} excluded); remove its rows or include a run"
-                )
-        n_animals = inc["animal"].nunique()
-        if n_animals < MIN_ANIMALS:
-            problems.append(
-                f"{path.name}: {label} has {n_animals} animal(s) with included runs; a group "
-                f"analysis needs at least {MIN_ANIMALS}"
-            )
-            continue
-        covariate_problems: list[str] = []
-        inc = _covariates(path, inc, variables, covariate_problems)
-        problems.extend(covariate_problems)
-        if missing or covariate_problems:
-            continue
-        try:
-            design = build_design(
-                inc,
-                settings.model.formula,
-                center_covariates=settings.model.center_covariates,
-                reference=settings.model.reference,
-            )
-        except UserError as exc:
-            problems.append(f"{label}: {exc}")
-            continue
-        contrasts, meanings = _group_contrasts(settings, design, label, problems)
-        random = RandomEffects()
-        try:
-            random, model_notes, model_warnings = model_problems(
-                design,
-                inc,
-                contrasts,
-                settings.model,
-                settings.inference.permutations,
-                full_coverage=settings.study.min_coverage >= 1.0,
-            )
-        except UserError as exc:
-            problems.append(f"{label}: {exc}")
-        else:
-            problems.extend(f"{label}: {p}" for p in model_notes)
-            warnings.extend(f"{label}: {w}" for w in model_warnings)
-        # -- data pass over this contrast's maps --
-        cov_runs = np.zeros(grid.shape, dtype=np.int32)
-        animal_seen = np.zeros((design.n_animals, *grid.shape), dtype=bool)
-        low = np.full(grid.shape, np.nan)
-        high = np.full(grid.shape, np.nan)
-        readable = True
-        for i, (_, row) in enumerate(inc.iterrows()):
-            if any(f in bad_files for f in _row_files(row, variance_kind)):
-                readable = False
-                continue
-            try:
-                comparison = isinstance(row.get(TERMS), tuple)
-                effect = _read_effect(row)
-                raw_variance = None
-                if comparison:  # the weighted sum of the conditions' variances
-                    raw_variance = _read_variance(row, variance_kind)
-                elif variance_kind != "none":
-                    raw_variance = read_volume(Path(row[variance_kind]))
-            except UserError as exc:
-                problems.append(f"{_where(path, row)}: {exc}")
-                readable = False
-                continue
-            variance = raw_variance
-            if raw_variance is not None and variance_kind == "se" and not comparison:
-                variance = raw_variance**2
-            ok = _valid(effect, variance, user_mask is not None)
-            if not comparison:  # a comparison's maps are checked with their conditions
-                checked = _check_run_maps(
-                    _where(path, row),
-                    row,
-                    variance_kind,
-                    effect,
-                    raw_variance,
-                    ok,
-                    user_mask,
-                    settings.study.min_coverage,
-                )
-                problems.extend(checked.problems)
-                warnings.extend(checked.warnings)
-            cov_runs += ok
-            animal_seen[design.animal[i]] |= ok
-            if variance_kind == "none":  # per-voxel range over runs (no variance: case 6)
-                low = np.fmin(low, np.where(ok, effect, np.nan))
-                high = np.fmax(high, np.where(ok, effect, np.nan))
-        if not readable:
-            continue
-        cov_animals = animal_seen.sum(axis=0).astype(np.int32)
-        n_runs = len(inc)
-        need_runs = math.ceil(settings.study.min_coverage * n_runs - 1e-9)
-        mask = (cov_runs >= need_runs) & (cov_animals >= MIN_ANIMALS)
-        if user_mask is not None:
-            mask &= user_mask
-        if not mask.any():
-            problems.append(
-                f"{label}: no voxel has data in at least {need_runs} of {n_runs} runs "
-                f"([study] min_coverage = {settings.study.min_coverage}) and 2 animals"
-            )
-            continue
-        if variance_kind == "none" and np.all(low[mask] == high[mask]):
-            problems.append(
-                f"{label}: at every analysed voxel all {n_runs} runs hold the same value and "
-                "the runs table gives no first-level variance maps, so there is no variance "
-                "to estimate and nothing can be fitted; check that each run names its own "
-                "effect map, or add a 'variance' or 'se' column"
-            )
-            continue
-        single = _single_run_warning(label, inc, settings, variance_kind)
-        if single:
-            warnings.append(single)
-        if user_mask is not None and settings.study.min_coverage < 1.0:
-            dropped = int((user_mask & ~mask).sum())
-            if dropped:
-                warnings.append(
-                    f"{label}: {dropped} mask voxel(s) left out for too little coverage "
-                    f"(fewer than {need_runs} of {n_runs} runs or 2 animals with data)"
-                )
-        first_levels.append(
-            FirstLevel(
-                name=name or None,
-                runs=inc.reset_index(drop=True),
-                excluded=excl.reset_index(drop=True),
-                design=design,
-                contrasts=tuple(contrasts),
-                mask=mask,
-                coverage_runs=cov_runs,
-                coverage_animals=cov_animals,
-                variance_kind=variance_kind,
-                conditions=comparison_weights.get(name),
-                contrast_meanings=meanings,
-                random=random,
-            )
-        )
+        fl = _first_level(context, name, rows, comparison_weights.get(name), problems, warnings)
+        if fl is not None:
+            first_levels.append(fl)
+    return first_levels, names
 
+
+def _first_level(
+    context: _StudyContext,
+    name: str,
+    rows: pd.DataFrame,
+    conditions: dict[str, float] | None,
+    problems: list[str],
+    warnings: list[str],
+) -> FirstLevel | None:
+    """One condition (or comparison, with its ``conditions``) from its rows of the table
+    to its analysis mask; None when a problem (recorded) stops it."""
+    label = f"condition '{name}'" if name else "the study"
+    if conditions is not None:
+        label = f"comparison '{name}'"
+    inc = rows[~rows["exclude"]]
+    excl = rows[rows["exclude"]]
+    if not _enough_animals(context.path, rows, inc, excl, label, problems):
+        return None
+    inc = _condition_covariates(context, inc, problems)
+    if inc is None:
+        return None
+    design = _condition_design(context.settings, inc, label, problems)
+    if design is None:
+        return None
+    contrasts, meanings = _group_contrasts(context.settings, design, label, problems)
+    random = _random_effects(context.settings, design, inc, contrasts, label, problems, warnings)
+    coverage = _data_pass(context, inc, design, problems, warnings)
+    if coverage is None:
+        return None
+    mask = _coverage_mask(context, label, inc, coverage, problems, warnings)
+    if mask is None:
+        return None
+    return FirstLevel(
+        name=name or None,
+        runs=inc.reset_index(drop=True),
+        excluded=excl.reset_index(drop=True),
+        design=design,
+        contrasts=tuple(contrasts),
+        mask=mask,
+        coverage_runs=coverage.runs,
+        coverage_animals=coverage.animals,
+        variance_kind=context.variance_kind,
+        conditions=conditions,
+        contrast_meanings=meanings,
+        random=random,
+    )
+
+
+def _enough_animals(
+    path: Path,
+    rows: pd.DataFrame,
+    inc: pd.DataFrame,
+    excl: pd.DataFrame,
+    label: str,
+    problems: list[str],
+) -> bool:
+    """Whether the included runs hold at least ``MIN_ANIMALS`` animals; a problem for
+    each animal whose runs are all excluded."""
+    for animal in dict.fromkeys(rows["animal"]):
+        if animal and not (inc["animal"] == animal).any():
+            n = int((excl["animal"] == animal).sum())
+            problems.append(
+                f"{path.name}: animal {animal} has no included runs for {label} "
+                f"(all {n} excluded); remove its rows or include a run"
+            )
+    n_animals = inc["animal"].nunique()
+    if n_animals < MIN_ANIMALS:
+        problems.append(
+            f"{path.name}: {label} has {n_animals} animal(s) with included runs; a group "
+            f"analysis needs at least {MIN_ANIMALS}"
+        )
+        return False
+    return True
+
+
+def _condition_covariates(
+    context: _StudyContext, inc: pd.DataFrame, problems: list[str]
+) -> pd.DataFrame | None:
+    """The included runs with the formula's covariates converted; None when a covariate
+    or a formula variable is wrong."""
+    covariate_problems: list[str] = []
+    inc = _covariates(context.path, inc, context.variables, covariate_problems)
+    problems.extend(covariate_problems)
+    if context.formula_missing or covariate_problems:
+        return None
+    return inc
+
+
+def _condition_design(
+    settings: Settings, inc: pd.DataFrame, label: str, problems: list[str]
+) -> Design | None:
+    """The group design of the included runs, or None (problem recorded)."""
+    try:
+        return build_design(
+            inc,
+            settings.model.formula,
+            center_covariates=settings.model.center_covariates,
+            reference=settings.model.reference,
+        )
+    except UserError as exc:
+        problems.append(f"{label}: {exc}")
+        return None
+
+
+def _random_effects(
+    settings: Settings,
+    design: Design,
+    inc: pd.DataFrame,
+    contrasts: list[tuple[str, np.ndarray]],
+    label: str,
+    problems: list[str],
+    warnings: list[str],
+) -> RandomEffects:
+    """The random effects the design gets ([model]); what cannot be fitted or
+    permuted correctly is a problem."""
+    random = RandomEffects()
+    try:
+        random, model_notes, model_warnings = model_problems(
+            design,
+            inc,
+            contrasts,
+            settings.model,
+            settings.inference.permutations,
+            full_coverage=settings.study.min_coverage >= 1.0,
+        )
+    except UserError as exc:
+        problems.append(f"{label}: {exc}")
+    else:
+        problems.extend(f"{label}: {p}" for p in model_notes)
+        warnings.extend(f"{label}: {w}" for w in model_warnings)
+    return random
+
+
+# -- data pass over one first-level contrast's maps --
+def _data_pass(
+    context: _StudyContext,
+    inc: pd.DataFrame,
+    design: Design,
+    problems: list[str],
+    warnings: list[str],
+) -> _Coverage | None:
+    """Read and check every included run's maps once and count the usable runs and
+    animals per voxel; None when a map could not be read."""
+    path, kind, user_mask = context.path, context.variance_kind, context.user_mask
+    shape = context.grid.shape
+    cov_runs = np.zeros(shape, dtype=np.int32)
+    animal_seen = np.zeros((design.n_animals, *shape), dtype=bool)
+    low = np.full(shape, np.nan)
+    high = np.full(shape, np.nan)
+    readable = True
+    for i, (_, row) in enumerate(inc.iterrows()):
+        if any(f in context.bad_files for f in _row_files(row, kind)):
+            readable = False
+            continue
+        try:
+            effect, raw_variance, comparison = _read_run(row, kind)
+        except UserError as exc:
+            problems.append(f"{_where(path, row)}: {exc}")
+            readable = False
+            continue
+        variance = raw_variance
+        if raw_variance is not None and kind == "se" and not comparison:
+            variance = raw_variance**2
+        ok = _valid(effect, variance, user_mask is not None)
+        if not comparison:  # a comparison's maps are checked with their conditions
+            checked = _check_run_maps(
+                _where(path, row),
+                row,
+                kind,
+                effect,
+                raw_variance,
+                ok,
+                user_mask,
+                context.settings.study.min_coverage,
+            )
+            problems.extend(checked.problems)
+            warnings.extend(checked.warnings)
+        cov_runs += ok
+        animal_seen[design.animal[i]] |= ok
+        if kind == "none":  # per-voxel range over runs (no variance: case 6)
+            low = np.fmin(low, np.where(ok, effect, np.nan))
+            high = np.fmax(high, np.where(ok, effect, np.nan))
+    if not readable:
+        return None
+    cov_animals = animal_seen.sum(axis=0).astype(np.int32)
+    return _Coverage(runs=cov_runs, animals=cov_animals, low=low, high=high)
+
+
+def _read_run(row: pd.Series, kind: str) -> tuple[np.ndarray, np.ndarray | None, bool]:
+    """A row's effect map, its variance (or se) map as written, and whether the row is a
+    comparison (whose variance is already the weighted sum of its conditions')."""
+    comparison = isinstance(row.get(TERMS), tuple)
+    effect = _read_effect(row)
+    raw_variance = None
+    if comparison:  # the weighted sum of the conditions' variances
+        raw_variance = _read_variance(row, kind)
+    elif kind != "none":
+        raw_variance = read_volume(Path(row[kind]))
+    return effect, raw_variance, comparison
+
+
+# -- coverage mask --
+def _coverage_mask(
+    context: _StudyContext,
+    label: str,
+    inc: pd.DataFrame,
+    coverage: _Coverage,
+    problems: list[str],
+    warnings: list[str],
+) -> np.ndarray | None:
+    """The analysis mask: voxels with enough runs ([study] min_coverage) and animals
+    (inside the user's mask); None when it is empty or holds nothing to fit."""
+    settings, user_mask = context.settings, context.user_mask
+    n_runs = len(inc)
+    need_runs = math.ceil(settings.study.min_coverage * n_runs - 1e-9)
+    mask = (coverage.runs >= need_runs) & (coverage.animals >= MIN_ANIMALS)
+    if user_mask is not None:
+        mask &= user_mask
+    if not mask.any():
+        problems.append(
+            f"{label}: no voxel has data in at least {need_runs} of {n_runs} runs "
+            f"([study] min_coverage = {settings.study.min_coverage}) and 2 animals"
+        )
+        return None
+    if context.variance_kind == "none" and np.all(coverage.low[mask] == coverage.high[mask]):
+        problems.append(
+            f"{label}: at every analysed voxel all {n_runs} runs hold the same value and "
+            "the runs table gives no first-level variance maps, so there is no variance "
+            "to estimate and nothing can be fitted; check that each run names its own "
+            "effect map, or add a 'variance' or 'se' column"
+        )
+        return None
+    single = _single_run_warning(label, inc, settings, context.variance_kind)
+    if single:
+        warnings.append(single)
+    if user_mask is not None and settings.study.min_coverage < 1.0:
+        dropped = int((user_mask & ~mask).sum())
+        if dropped:
+            warnings.append(
+                f"{label}: {dropped} mask voxel(s) left out for too little coverage "
+                f"(fewer than {need_runs} of {n_runs} runs or 2 animals with data)"
+            )
+    return mask
+
+
+# -- extent and atlas --
+def _extent_warning(
+    user_mask: np.ndarray | None, first_levels: list[FirstLevel], grid: Grid
+) -> str | None:
+    """A warning when the brain spans far more than a rodent brain (×10 header scaling)."""
     extent = _mask_extent_mm(
         user_mask if user_mask is not None else (first_levels[0].mask if first_levels else None),
         grid,
     )
     if extent is not None and extent.max() > MAX_PLAUSIBLE_BRAIN_EXTENT_MM:
-        warnings.append(
+        return (
             f"the brain spans {extent.round(1).tolist()} mm along the grid axes (voxel size "
             f"{grid.voxel_size.round(3).tolist()} mm), far more than a rodent brain: the "
             "header may carry the ×10 scaling some labs use for rodent images. Volumes and "
             "coordinates in the outputs will be in the header's units."
         )
-    atlas = None
-    if settings.atlas is not None and first_levels and not problems:
-        atlas_mask = (
-            user_mask
-            if user_mask is not None
-            else np.logical_or.reduce([fl.mask for fl in first_levels])
-        )
-        try:
-            atlas = read_atlas(
-                settings.atlas.image,
-                settings.atlas.labels,
-                grid,
-                atlas_mask,
-                midline_mm=settings.atlas.midline_mm,
-                min_coverage=settings.atlas.min_coverage,
-            )
-        except UserError as exc:
-            problems.append(str(exc))
-            problems.extend(exc.problems)
-        else:
-            warnings.extend(atlas.warnings)
-    problems.extend(_check_output_names(first_levels))
-    problems.extend(_check_questions(settings, names, atlas))
-    if problems:
-        raise UserError(f"{path}: {len(problems)} problem(s) in the study", problems)
-    return Study(
-        settings=settings,
-        table=table,
-        grid=grid,
-        first_levels=tuple(first_levels),
-        user_mask=user_mask,
-        warnings=tuple(warnings),
-        atlas=atlas,
+    return None
+
+
+def _study_atlas(
+    settings: Settings,
+    grid: Grid,
+    user_mask: np.ndarray | None,
+    first_levels: list[FirstLevel],
+    problems: list[str],
+    warnings: list[str],
+) -> Atlas | None:
+    """The atlas on the study grid over the atlas mask; read only when the study has
+    an [atlas], a first-level contrast, and no problem so far."""
+    if settings.atlas is None or not first_levels or problems:
+        return None
+    atlas_mask = (
+        user_mask
+        if user_mask is not None
+        else np.logical_or.reduce([fl.mask for fl in first_levels])
     )
+    try:
+        atlas = read_atlas(
+            settings.atlas.image,
+            settings.atlas.labels,
+            grid,
+            atlas_mask,
+            midline_mm=settings.atlas.midline_mm,
+            min_coverage=settings.atlas.min_coverage,
+        )
+    except UserError as exc:
+        problems.append(str(exc))
+        problems.extend(exc.problems)
+        return None
+    warnings.extend(atlas.warnings)
+    return atlas
 
 
 def _study_grid(
