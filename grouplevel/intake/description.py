@@ -19,6 +19,7 @@ from grouplevel.intake.design import (
     RandomEffects,
     animal_design,
     contrast_kind,
+    describe_random_effects,
     slope_design,
     weights_dict,
 )
@@ -126,6 +127,7 @@ def design_description(study: Study, fl: FirstLevel) -> dict:
         )
     return {
         "formula": study.settings.model.formula,
+        "random_effects": describe_random_effects(design, fl.random),
         "center_covariates": study.settings.model.center_covariates,
         "coefficients": [
             {"name": col, "varies_between": level}

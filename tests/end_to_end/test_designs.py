@@ -495,6 +495,17 @@ def test_no_slope_on_a_tested_within_effect_is_cautioned(tmp_path, capsys):
     assert "without a random slope per animal" in text and "anti-conservative" in text
 
 
+def test_check_names_the_random_effects_it_will_fit(tmp_path, capsys):
+    # `check` says which random effects `run` fits: with the default random_slopes =
+    # "auto", the tested within-animal drug effect gets its slope per animal
+    toml = _small(tmp_path, 'formula = "1 + drug"', NO_PERMUTATIONS + CONTRAST_DRUG)
+    code, text = _check(toml, capsys)
+    assert code == 0, text
+    (line,) = [x for x in text.splitlines() if x.startswith("  random ")]
+    assert "a random intercept per animal" in line and "drug" in line and "slope" in line
+    assert "random intercept per animal, run variance" not in text  # no blanket claim
+
+
 # --- per-group between-animal variances ----------------------------------------------
 
 
