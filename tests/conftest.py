@@ -48,6 +48,40 @@ def save(path: Path, data: np.ndarray, affine: np.ndarray = TINY_AFFINE) -> Path
     return path
 
 
+def compile_latex(body: str, folder: Path, extra_preamble: str = "", timeout: float = 120):
+    """Compile LaTeX table(s) in a minimal document with pdflatex (``t.tex`` in ``folder``).
+
+    Without booktabs (e.g. only texlive-latex-base installed) its three rules become
+    plain lines. Returns the finished process (``returncode`` 0 when it compiled).
+    """
+    import subprocess
+
+    pdflatex = shutil.which("pdflatex")
+    kpsewhich = shutil.which("kpsewhich")
+    has_booktabs = (
+        kpsewhich is not None
+        and subprocess.run([kpsewhich, "booktabs.sty"], capture_output=True).returncode == 0
+    )
+    rules = (
+        "\\usepackage{booktabs}\n"
+        if has_booktabs
+        else "\\newcommand{\\toprule}{\\hline}\\newcommand{\\midrule}{\\hline}"
+        "\\newcommand{\\bottomrule}{\\hline}\n"
+    )
+    doc = (
+        f"\\documentclass{{article}}\n\\usepackage[utf8]{{inputenc}}\n{rules}{extra_preamble}"
+        f"\\begin{{document}}\n\\tiny\n{body}\n\\end{{document}}\n"
+    )
+    (folder / "t.tex").write_text(doc, encoding="utf-8")
+    return subprocess.run(
+        [pdflatex, "-interaction=nonstopmode", "-halt-on-error", "t.tex"],
+        cwd=folder,
+        capture_output=True,
+        text=True,
+        timeout=timeout,
+    )
+
+
 def write_study(
     folder: Path,
     effects: np.ndarray,

@@ -23,7 +23,6 @@ import hashlib
 import json
 import os
 import shutil
-import subprocess
 from dataclasses import replace
 from pathlib import Path
 
@@ -44,7 +43,7 @@ from grouplevel.report.tables import (
     latex_escape,
     write_view,
 )
-from tests.conftest import save, write_study
+from tests.conftest import compile_latex, save, write_study
 
 ANIMALS = ["a", "a", "b", "b", "c", "c"]
 FAST = "\n[inference]\npermutations = 0\n"
@@ -463,33 +462,6 @@ def test_latex_escape_leaves_no_special_character_bare():
     assert latex_escape("volume (mm³)") == r"volume (mm$^{3}$)"
 
 
-def _compile(tex_body: str, folder: Path) -> subprocess.CompletedProcess:
-    pdflatex = shutil.which("pdflatex")
-    kpsewhich = shutil.which("kpsewhich")
-    has_booktabs = (
-        kpsewhich is not None
-        and subprocess.run([kpsewhich, "booktabs.sty"], capture_output=True).returncode == 0
-    )
-    rules = (
-        "\\usepackage{booktabs}\n"
-        if has_booktabs
-        else "\\newcommand{\\toprule}{\\hline}\\newcommand{\\midrule}{\\hline}"
-        "\\newcommand{\\bottomrule}{\\hline}\n"
-    )
-    doc = (
-        "\\documentclass{article}\n\\usepackage[utf8]{inputenc}\n"
-        f"{rules}\\begin{{document}}\n\\tiny\n{tex_body}\n\\end{{document}}\n"
-    )
-    (folder / "t.tex").write_text(doc, encoding="utf-8")
-    return subprocess.run(
-        [pdflatex, "-interaction=nonstopmode", "-halt-on-error", "t.tex"],
-        cwd=folder,
-        capture_output=True,
-        text=True,
-        timeout=120,
-    )
-
-
 def test_every_latex_table_compiles(tmp_path, capsys):
     if shutil.which("pdflatex") is None:
         pytest.skip("pdflatex not found: the LaTeX tables were not compiled (install texlive)")
@@ -504,7 +476,7 @@ def test_every_latex_table_compiles(tmp_path, capsys):
     for path in tables:
         work = tmp_path / f"tex_{path.stem}"
         work.mkdir()
-        run = _compile(path.read_text(encoding="utf-8"), work)
+        run = compile_latex(path.read_text(encoding="utf-8"), work)
         assert run.returncode == 0, f"{path.name}: {run.stdout[-1500:]}"
         assert (work / "t.pdf").stat().st_size > 1000
 

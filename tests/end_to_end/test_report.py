@@ -16,7 +16,6 @@ import json
 import re
 import shutil
 import struct
-import subprocess
 from pathlib import Path
 
 import matplotlib.image as mpimg
@@ -31,7 +30,7 @@ from grouplevel.report import render_report, write_manuscript_tables, write_meth
 from grouplevel.report.tables import format_value, latex_escape, read_tsv
 from tests.conftest import EXAMPLE_OUTPUT_PERMUTATIONS as PERMUTATIONS
 from tests.conftest import HOSTILE_NAME as EVIL
-from tests.conftest import write_study
+from tests.conftest import compile_latex, write_study
 
 
 @pytest.fixture(scope="module")
@@ -304,30 +303,8 @@ def test_latex_compiles(tables, output, tmp_path):
         (output / "tables" / f"sound_{k}.tex").read_text(encoding="utf-8")
         for k in ("clusters", "regions")
     )
-    kpsewhich = shutil.which("kpsewhich")
-    has_booktabs = (
-        kpsewhich is not None
-        and subprocess.run([kpsewhich, "booktabs.sty"], capture_output=True).returncode == 0
-    )
-    # without booktabs (e.g. only texlive-latex-base installed) its three rules are lines
-    rules = (
-        "\\usepackage{booktabs}\n"
-        if has_booktabs
-        else "\\newcommand{\\toprule}{\\hline}\\newcommand{\\midrule}{\\hline}"
-        "\\newcommand{\\bottomrule}{\\hline}\n"
-    )
-    doc = (
-        f"\\documentclass{{article}}\n\\usepackage[utf8]{{inputenc}}\n{rules}"
-        "\\usepackage[landscape,margin=5mm]{geometry}\n\\begin{document}\n\\tiny\n"
-        f"{body}\n\\end{{document}}\n"
-    )
-    (tmp_path / "t.tex").write_text(doc, encoding="utf-8")
-    run = subprocess.run(
-        [pdflatex, "-interaction=nonstopmode", "-halt-on-error", "t.tex"],
-        cwd=tmp_path,
-        capture_output=True,
-        text=True,
-        timeout=60,
+    run = compile_latex(
+        body, tmp_path, "\\usepackage[landscape,margin=5mm]{geometry}\n", timeout=60
     )
     assert run.returncode == 0, run.stdout[-2000:]
     assert (tmp_path / "t.pdf").stat().st_size > 1000
