@@ -62,6 +62,7 @@ from grouplevel.model import (
     test_contrast,
 )
 from grouplevel.model.contrasts import slope_df
+from grouplevel.model.marginal import RandomTerms, marginal_run_variance
 from grouplevel.outputs.folder import (
     TOOL_NAME,
     check_output_folder,
@@ -73,11 +74,13 @@ from grouplevel.progress import Progress
 from grouplevel.questions.ask import (
     answer_questions,
     answers_not_asked,
+    comparison_note,
     question_plan,
     skipped_warning,
 )
+from grouplevel.questions.means import DIFFERENCE
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
-from grouplevel.results.compute import Backend, fit_design, open_backend
+from grouplevel.results.compute import Backend, fit_design, open_backend, random_terms
 from grouplevel.results.correction import permutation_arguments
 from grouplevel.results.maps import MAP_DESCRIPTIONS, Corrected, GroupMap
 
@@ -130,8 +133,15 @@ SMOOTHNESS_MAX_RUNS = 32
 _SMOOTHNESS_CHUNK = 65536
 
 
-def _smoothness(y, variance, fit, X, mask: np.ndarray, grid: Grid) -> Smoothness | None:
-    """Residual smoothness from standardised residuals (Kiebel et al. 1999)."""
+def _smoothness(
+    y, variance, fit, X, animal, terms: RandomTerms, mask: np.ndarray, grid: Grid
+) -> Smoothness | None:
+    """Residual smoothness from standardised residuals (Kiebel et al. 1999).
+
+    Each run's residual is divided by its marginal standard deviation under the model
+    that was fitted (random slopes, session and group variances included:
+    :func:`grouplevel.model.marginal.marginal_run_variance`).
+    """
     n_runs, n_vox = y.shape
     dof_all = n_runs - np.linalg.matrix_rank(X)
     if dof_all <= 1:
@@ -142,9 +152,9 @@ def _smoothness(y, variance, fit, X, mask: np.ndarray, grid: Grid) -> Smoothness
     for lo in range(0, n_vox, _SMOOTHNESS_CHUNK):
         sl = slice(lo, min(n_vox, lo + _SMOOTHNESS_CHUNK))
         resid = np.asarray(y[runs, sl], dtype=float) - X[runs] @ fit.beta[sl].T
-        total = fit.var_animal[None, sl] + fit.var_run[None, sl]
-        if variance is not None:
-            total = total + variance[runs, sl]
+        components = {k: np.asarray(v)[sl] for k, v in _components(fit).items()}
+        s2 = None if variance is None else variance[:, sl]
+        total = marginal_run_variance(components, X, animal, terms, s2)[runs]
         with np.errstate(invalid="ignore", divide="ignore"):
             ratio = resid / np.sqrt(total)
         standard[:, sl] = np.where(np.isfinite(ratio), ratio, 0.0)
@@ -576,7 +586,9 @@ def _fit(
         present=present,
         components=_components(fit),
         var_animal=_pooled_var_animal(fit, random),
-        smooth=_smoothness(y, s2, fit, design.matrix, mask, study.grid),
+        smooth=_smoothness(
+            y, s2, fit, design.matrix, design.animal, random_terms(design, random), mask, study.grid
+        ),
     )
 
 
@@ -686,6 +698,7 @@ def _with_answers(
     """The group map with the answers to its questions (or why they were not asked)."""
     settings, fl = study.settings, fitted.fl
     plan = question_plan(fl.design, c)
+    terms = random_terms(fl.design, fl.random)
     if plan.asked:
         log(f"  questions of {gm.name}: symmetry, specificity, consistency, run quality")
         answers = answer_questions(
@@ -700,10 +713,28 @@ def _with_answers(
             settings.questions_for(fl.name),
             settings,
             backend=backend,
+            terms=terms,
         )
+        if fl.conditions:
+            answers = replace(answers, notes=(*answers.notes, comparison_note(fl.conditions)))
         return replace(gm, answers=answers)
     q = settings.questions_for(fl.name)
-    answers = answers_not_asked(plan, fl.design, c, regions, q, settings, gm, fitted.y)
+    log(f"  questions of {gm.name} (a difference): its own versions of the questions")
+    answers = answers_not_asked(
+        plan,
+        fl.design,
+        c,
+        regions,
+        q,
+        settings,
+        gm,
+        fitted.y,
+        s2=fitted.s2,
+        fit=fitted.fit,
+        runs=fl.runs,
+        terms=terms,
+        df_fn=lambda fit, present, cc: _contrast_df(study, fl, fit, present, cc),
+    )
     return replace(gm, answers=answers)
 
 
@@ -730,7 +761,15 @@ def fit_study(
             m, w = _fit_first_level(study, fl, log, quiet, backend)
             maps.extend(m)
             warnings.extend(w)
-    warnings.extend(skipped_warning([m.name for m in maps if m.answers and not m.answers.asked]))
+    warnings.extend(
+        skipped_warning(
+            [
+                m.name
+                for m in maps
+                if m.answers and not m.answers.asked and m.answers.contrast_kind != DIFFERENCE
+            ]
+        )
+    )
     return maps, warnings
 
 

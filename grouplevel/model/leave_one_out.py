@@ -13,6 +13,9 @@ with Cov(β̂₍₋ₐ₎) = (A − A_a)⁻¹. Each A_a and b_a has the closed f
 intercept block (Sherman–Morrison: V_a⁻¹ = W_a − γ_a w_a w_aᵀ, γ_a = τ²/(1 + τ² Σ w)),
 so all animals and all voxels are downdated together from per-animal sums — one pass
 over the data, a p × p solve per animal and voxel, instead of one REML refit per animal.
+For the general model (random slopes, sessions, variance groups)
+:func:`leave_one_animal_out_model` forms each A_a and b_a from the animal's own
+covariance block instead (:mod:`grouplevel.model.marginal`).
 
 The variance components stay at their full-data estimates. A refit without the animal
 would re-estimate them too; the difference is the price of the shortcut, and it is small
@@ -36,9 +39,14 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from grouplevel.model.marginal import RandomTerms, animal_gls_pieces
+
 # voxels downdated together; the largest temporaries are (chunk, runs) and
 # (chunk, animals, p, p) float64 arrays (common practice: a few tens of MiB)
 DEFAULT_CHUNK = 4096
+# voxels per chunk of the model-based downdate, whose per-animal covariance blocks are
+# (chunk, animals, runs, runs) float64 arrays (common practice: a few tens of MiB)
+DEFAULT_MODEL_CHUNK = 1024
 # run variances below this fraction of the voxel's total variance are raised to it, so
 # that a run with σ̂² = 0 and no first-level variance keeps a finite weight
 RELATIVE_VARIANCE_FLOOR = 1e-10
@@ -141,6 +149,67 @@ def leave_one_animal_out(
     )
 
 
+def leave_one_animal_out_model(
+    y: np.ndarray,
+    variance: np.ndarray | None,
+    X: np.ndarray,
+    animal: np.ndarray,
+    c: np.ndarray,
+    components: dict[str, np.ndarray],
+    terms: RandomTerms | None = None,
+    *,
+    chunk: int = DEFAULT_MODEL_CHUNK,
+) -> LeaveOneOut:
+    """:func:`leave_one_animal_out` for any fitted model, at its fixed components.
+
+    The same case deletion as :func:`leave_one_animal_out`, for the model of
+    :func:`grouplevel.model.mixed.fit_mixed` (random slopes, sessions, variance
+    groups): each animal's ``X_aᵀV_a⁻¹X_a`` and ``X_aᵀV_a⁻¹y_a`` come from its own
+    covariance block ``V_a`` (:func:`grouplevel.model.marginal.animal_gls_pieces`) and
+    are subtracted from the sums. ``components`` are the fit's components by name
+    (``MixedModelFit.components``; ``{"animal": τ̂², "run": σ̂²}`` for a random-intercept
+    fit) and ``terms`` the random terms it was fitted with.
+
+    References
+    ----------
+    Christensen, R., Pearson, L. M., & Johnson, W. (1992). Technometrics 34:38–45.
+    Haslett, J., & Dillane, D. (2004). J R Stat Soc B 66:131–143.
+    """
+    y = np.asarray(y)
+    X = np.asarray(X, dtype=float)
+    animal = np.asarray(animal, dtype=np.intp)
+    c = np.asarray(c, dtype=float).ravel()
+    n, n_vox = y.shape
+    if X.shape[0] != n or animal.shape != (n,) or c.shape != (X.shape[1],):
+        raise ValueError(
+            f"leave_one_animal_out_model: y has {n} runs, X {X.shape}, animal "
+            f"{animal.shape}, c {c.shape}; they must agree"
+        )
+    if chunk < 1:
+        raise ValueError(f"leave_one_animal_out_model: chunk must be at least 1, got {chunk}")
+    m = int(animal.max()) + 1
+    effect = np.full((m + 1, n_vox), np.nan)
+    se = np.full((m + 1, n_vox), np.nan)
+    for lo in range(0, n_vox, chunk):
+        sl = slice(lo, min(n_vox, lo + chunk))
+        part = {k: np.asarray(v)[sl] for k, v in components.items()}
+        s2 = None if variance is None else np.asarray(variance[:, sl], dtype=float)
+        A_a, b_a = animal_gls_pieces(np.asarray(y[:, sl], dtype=float), s2, X, animal, part, terms)
+        e, s = _solve_downdates(A_a, b_a, c)
+        effect[:, sl] = e.T
+        se[:, sl] = s.T
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = effect / se
+    return LeaveOneOut(
+        effect=effect[1:],
+        se=se[1:],
+        t=t[1:],
+        effect_full=effect[0],
+        se_full=se[0],
+        t_full=t[0],
+    )
+
+
 def _downdate_chunk(y, s2, G, GX, GXX, X, c, tau2, sig2):
     """(c, 1 + m) contrast estimates and standard errors: all animals, then without each."""
     n_c = y.shape[0]
@@ -167,6 +236,16 @@ def _downdate_chunk(y, s2, G, GX, GXX, X, c, tau2, sig2):
     gam = t2 / (1.0 + t2 * S)  # (c, m)
     A_a = Sxx - gam[:, :, None, None] * Sx[:, :, :, None] * Sx[:, :, None, :]
     b_a = Sxy - gam[:, :, None] * Sx * Sy[:, :, None]
+    effect, se = _solve_downdates(A_a, b_a, c)
+    bad = ~np.isfinite(tau2)[:, None]
+    return np.where(bad, np.nan, effect), np.where(bad, np.nan, se)
+
+
+def _solve_downdates(A_a: np.ndarray, b_a: np.ndarray, c: np.ndarray):
+    """(c, 1 + m) estimates and SEs of cᵀβ from each animal's ``X_aᵀV_a⁻¹X_a`` (c, m, p, p)
+    and ``X_aᵀV_a⁻¹y_a`` (c, m, p): with every animal, then without each one."""
+    A_a = np.nan_to_num(A_a, nan=np.inf)
+    b_a = np.nan_to_num(b_a)
     A = A_a.sum(axis=1, keepdims=True)
     b = b_a.sum(axis=1, keepdims=True)
     # (c, 1 + m, p, p): every animal, then without each one
@@ -183,8 +262,7 @@ def _downdate_chunk(y, s2, G, GX, GXX, X, c, tau2, sig2):
     var = np.einsum("p,cmp->cm", c, sol[..., 1])
     with np.errstate(invalid="ignore"):
         se = np.sqrt(np.where(var > 0, var, np.nan))
-    bad = ~ok | ~np.isfinite(tau2)[:, None]
-    return np.where(bad, np.nan, effect), np.where(bad, np.nan, se)
+    return np.where(ok, effect, np.nan), np.where(ok, se, np.nan)
 
 
 def _well_conditioned(M: np.ndarray) -> np.ndarray:

@@ -7,11 +7,21 @@ Glue between the fitted maps (:mod:`grouplevel.pipeline`) and the analyses in
 Which group contrasts are asked: every contrast that is the mean response of a set of
 animals (:func:`grouplevel.questions.means.contrast_kind`: the mean of all animals, of one group,
 an intercept with centred covariates), whatever the design. A difference (genotype,
-drug − vehicle, a slope) gets its own symmetry question, whether its lateralisation
-differs (:func:`grouplevel.symmetry.lateralisation_differences`), and the specificity
-question of its surviving voxels; its consistency and run quality are not asked yet, and
-its summary says why in one sentence (:func:`question_plan`); :func:`skipped_warning`
-makes the one warning ``run`` prints.
+drug − vehicle, a slope) gets its own versions (:func:`answers_not_asked`): whether its
+lateralisation differs (:func:`grouplevel.symmetry.lateralisation_differences`), the
+specificity of its surviving voxels, its consistency across animals (each animal's own
+difference for a within-animal difference, the overlap of the groups for a group
+difference) and the quality of the runs of each of its sides
+(:mod:`grouplevel.questions.ask_differences`); what cannot be asked of a difference (a
+slope over a covariate has no two groups) carries its reason. A contrast that is
+neither a mean nor a difference gets the reason in one sentence
+(:func:`question_plan`); :func:`skipped_warning` makes the one warning ``run`` prints.
+
+The leave-one-animal-out maps behind run quality use the model the contrast was fitted
+with (random slopes, sessions, variance groups: ``terms``). The region-level tests of
+symmetry, the asymmetry map and the specificity tests still fit the random-intercept
+model to their region values; for an extended design the summary says so in its notes
+(:data:`EXTENDED_NOTE`).
 
 One response for all answers: whether the map has a response, and of which sign, is
 decided once, from the voxels that survive the chosen correction (which honours
@@ -41,6 +51,18 @@ from grouplevel.inference.permutation import (
 from grouplevel.intake.design import Design
 from grouplevel.intake.settings import QuestionSettings, Settings
 from grouplevel.model import MixedFit, between_animal_df, fit_reml, test_contrast
+from grouplevel.model.marginal import RandomTerms
+from grouplevel.questions.ask_differences import (
+    BETWEEN,
+    WITHIN,
+    DfFunction,
+    difference_consistency,
+    difference_run_quality,
+    difference_sides,
+    fit_components,
+    target_values,
+)
+from grouplevel.questions.differences import DifferenceConsistency, GroupOverlap
 from grouplevel.questions.means import DIFFERENCE, MEAN, ContrastKind, contrast_kind, design_rows
 from grouplevel.questions.quality import RunQuality, run_quality
 from grouplevel.questions.sides import asked_rows, split_side
@@ -133,9 +155,8 @@ def question_plan(design, c: np.ndarray) -> QuestionPlan:
     m = design.n_animals
     if kind.kind == DIFFERENCE:
         reason = (
-            "asked of group means only; this contrast is a difference (or slope) between "
-            "responses, and the consistency across animals and run quality of a difference "
-            "are not yet assessed"
+            "this contrast is a difference (or slope) between responses: it is asked the "
+            "difference's own versions of the questions"
         )
         return QuestionPlan(False, kind, reason, np.zeros(m, dtype=bool))
     if not kind.is_mean:
@@ -155,11 +176,33 @@ def skipped_warning(skipped: list[str]) -> list[str]:
     if not skipped:
         return []
     return [
-        "consistency and run quality are asked of group means only; not asked of "
-        f"{', '.join(skipped)} (differences, or contrasts that are not a mean response; a "
-        "difference is asked whether its lateralisation differs and whether it is specific "
-        "to the targets); each result's summary gives the reason"
+        "the questions are asked of group means and of differences only; not asked of "
+        f"{', '.join(skipped)} (neither a mean response nor a difference between "
+        "responses); each result's summary gives the reason"
     ]
+
+
+def comparison_note(conditions: dict[str, float]) -> str:
+    """The note of a within-animal comparison's answers: what "response" means there."""
+    terms = " ".join(
+        f"{'−' if w < 0 else '+'} {abs(w):g}·{name}" for name, w in conditions.items()
+    ).lstrip("+ ")
+    return (
+        f"This result is a within-animal comparison ({terms}) of the runs that carry every "
+        "condition: each run's value is that run's difference, so 'response' in these "
+        "answers means the difference; consistency counts each animal's own difference "
+        "and run quality scores each run pair's difference."
+    )
+
+
+#: Note of the answers of an extended design: which internal tests use which model.
+EXTENDED_NOTE = (
+    "The model has random slopes, session levels or variance groups: the leave-one-out "
+    "maps, run quality and (for a difference) the consistency use that model; the "
+    "region-level symmetry tests, the asymmetry map and the specificity tests fit a "
+    "random intercept per animal to their region or mirrored values, so their p-values "
+    "do not account for those extra variance levels."
+)
 
 
 @dataclass(frozen=True)
@@ -200,21 +243,27 @@ class Answers:
         lateralisation_summary: dict | None = None,
         spec: Specificity | None = None,
         response: dict | None = None,
+        consistency: DifferenceConsistency | GroupOverlap | None = None,
+        consistency_summary: dict | None = None,
+        quality: RunQuality | None = None,
+        notes: tuple[str, ...] = (),
     ) -> Answers:
-        """The answers of a difference: its lateralisation and specificity where asked."""
+        """The answers of a difference: lateralisation, specificity, consistency and run
+        quality where asked."""
         return cls(
             lateralisation,
             None,
             lateralisation_summary,
             None,
             spec,
+            consistency,
             None,
-            None,
-            None,
-            (),
+            quality,
+            notes,
             not_assessed=not_assessed,
             contrast_kind=plan.kind.kind,
             response=response,
+            consistency_summary=consistency_summary,
             artefact_flag=spec.flag if spec is not None else "",
         )
 
@@ -231,6 +280,10 @@ class Answers:
                 out["lateralisation_difference"] = self.symmetry
             if self.specificity is not None:
                 out["specificity"] = self.specificity.table()
+            if self.consistency is not None:
+                out["consistency"] = self.consistency.table()
+            if self.run_quality is not None:
+                out["run_quality"] = self.run_quality.table()
             return out
         out = {"run_quality": self.run_quality.table(), "leave_one_out": self.loo.table()}
         if self.symmetry is not None:
@@ -504,20 +557,36 @@ def answer_questions(
     plan: QuestionPlan | None = None,
     *,
     backend: Backend | None = None,
+    terms: RandomTerms | None = None,
 ) -> Answers:
     """Answer the configured questions of one group mean (see the module docstring).
 
     ``plan`` is :func:`question_plan` of ``c`` (computed when omitted); a contrast that
     is not a group mean gets :meth:`Answers.not_asked`. ``backend`` is where the
     permutations of the asymmetry maps run (``None``: local threads), the same as for
-    the group maps.
+    the group maps. ``terms`` are the random terms of the fitted model (default: a
+    random intercept per animal); the leave-one-out maps use them.
     """
     plan = plan or question_plan(design, c)
+    terms = terms or RandomTerms()
     if not plan.asked:
-        return answers_not_asked(plan, design, c, regions, questions, settings, gm, y)
+        return answers_not_asked(
+            plan,
+            design,
+            c,
+            regions,
+            questions,
+            settings,
+            gm,
+            y,
+            s2=s2,
+            fit=fit,
+            runs=runs,
+            terms=terms,
+        )
     estimate = settings.model.run_variance == "estimate"
     alpha = settings.inference.alpha
-    notes: list[str] = []
+    notes: list[str] = [EXTENDED_NOTE] if terms.extended else []
     shell = edge_shell(gm.mask, questions.edge_distance_voxels)
     loo = loo_group_maps(
         y,
@@ -529,6 +598,8 @@ def answer_questions(
         estimate_run_variance=estimate or s2 is None,
         var_animal=fit.var_animal,
         var_run=fit.var_run,
+        components=fit_components(fit) if terms.extended else None,
+        terms=terms,
     )
     quality = _run_quality(y, s2, design, runs, loo, shell, questions, plan.animals)
     method = settings.clusters.resolved_method(settings.inference)
@@ -587,31 +658,83 @@ def answer_questions(
     )
 
 
-def answers_not_asked(plan, design, c, regions, questions, settings, gm=None, y=None) -> Answers:
+def answers_not_asked(
+    plan,
+    design,
+    c,
+    regions,
+    questions,
+    settings,
+    gm=None,
+    y=None,
+    *,
+    s2: np.ndarray | None = None,
+    fit=None,
+    runs: pd.DataFrame | None = None,
+    terms: RandomTerms | None = None,
+    df_fn: DfFunction | None = None,
+) -> Answers:
     """A contrast that is not a group mean.
 
     A difference is asked whether its lateralisation differs (with ``[questions]
-    symmetry``) and whether it is specific to the targets (with ``[questions] targets``;
-    needs the group map ``gm`` and the runs' data ``y``); its consistency and run quality
-    are not asked, with the reason. Any other contrast gets only the reasons.
+    symmetry``), whether it is specific to the targets and whether it is consistent
+    across animals (with ``[questions] targets``), and the quality of the runs of each
+    of its sides (:mod:`grouplevel.questions.ask_differences`). These need the group map
+    ``gm``, the runs' data ``y`` (and first-level variances ``s2``), the ``fit``, the
+    runs table ``runs``, the model's random ``terms`` and, for the target's test, the
+    map's degrees-of-freedom rule ``df_fn(fit, present, c)`` (default: between-animal
+    df). Whatever cannot be asked carries its reason. Any other contrast gets only the
+    reasons.
     """
     if plan.kind.kind != DIFFERENCE:
         return Answers.not_asked(plan)
-    not_assessed = {q: plan.reason for q in ("consistency", "run_quality")}
+    terms = terms or RandomTerms()
+    not_assessed: dict[str, str] = {}
+    notes = (EXTENDED_NOTE,) if terms.extended else ()
+    sides = difference_sides(design, runs, c) if runs is not None else None
+    quality = None
+    shell = None if gm is None else edge_shell(gm.mask, questions.edge_distance_voxels)
+    if sides is None or fit is None or y is None or gm is None:
+        not_assessed["run_quality"] = "the runs' data were not given to the questions"
+    else:
+        quality = difference_run_quality(
+            y,
+            s2,
+            fit,
+            design,
+            runs,
+            sides,
+            shell,
+            questions.outlier_z,
+            terms,
+            settings.model.run_variance == "estimate" or s2 is None,
+        )
+        if quality is None:
+            not_assessed["run_quality"] = (
+                "neither side of the difference has two runs to compare with each other"
+            )
     if regions is None:
         reason = "the study has no [atlas], so no region can be asked about"
-        not_assessed.update(symmetry=reason, specificity=reason)
-        return Answers.for_difference(plan, not_assessed)
-    spec = response = None
+        not_assessed.update(symmetry=reason, specificity=reason, consistency=reason)
+        return Answers.for_difference(plan, not_assessed, quality=quality, notes=notes)
+    spec = response = cons = cons_summary = None
     if questions.targets and gm is not None and y is not None:
         method = settings.clusters.resolved_method(settings.inference)
         alpha = settings.inference.alpha
         surviving = surviving_voxels(gm, alpha)[method]
         response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
-        shell = edge_shell(gm.mask, questions.edge_distance_voxels)
         spec = _target_specificity(gm, y, design, c, regions.atlas, surviving, shell, questions)
+        if sides is None:
+            not_assessed["consistency"] = "the runs table was not given to the questions"
+        elif sides.reason:
+            not_assessed["consistency"] = sides.reason
+        else:
+            values = target_values(y, design, regions.atlas, questions)
+            cons = difference_consistency(values, design, c, sides, terms, df_fn)
+            cons_summary = _difference_consistency_verdict(cons, response, _flag_suffix(spec))
     else:
-        not_assessed["specificity"] = "no [questions] targets were named"
+        reason = "no [questions] targets were named"
+        not_assessed.update(specificity=reason, consistency=reason)
     table = summary = None
     if questions.symmetry:
         table, summary = lateralisation_differences(
@@ -632,7 +755,123 @@ def answers_not_asked(plan, design, c, regions, questions, settings, gm=None, y=
             table["verdict"] = [entry["verdict"] for entry in summary.values()]
     else:
         not_assessed["symmetry"] = "no [questions] symmetry regions were named"
-    return Answers.for_difference(plan, not_assessed, table, summary, spec, response)
+    return Answers.for_difference(
+        plan,
+        not_assessed,
+        table,
+        summary,
+        spec,
+        response,
+        consistency=cons,
+        consistency_summary=cons_summary,
+        quality=quality,
+        notes=notes,
+    )
+
+
+#: What the consistency of a within-animal difference does not show (summary and report).
+WITHIN_CAUTION = (
+    "Each animal's difference is estimated from its own runs only (GLS over its runs and "
+    "sessions, the fitted run and session variances taken as known), so its interval is "
+    "wide with few runs; animals agreeing in sign does not show that the difference has "
+    "the same size in every animal (see I²), and the target value averages the whole "
+    "target region, not the surviving voxels."
+)
+#: What the overlap of two groups does not show.
+BETWEEN_CAUTION = (
+    "The overlap compares the animals' mean target values between the two groups; it "
+    "does not show that every animal of one group differs from every animal of the "
+    "other, nor why they differ, and with few animals per group its interval is wide. "
+    "The target value averages the whole target region, not the surviving voxels."
+)
+
+
+def _difference_consistency_verdict(cons, response: dict, flag_suffix: str) -> dict:
+    """The consistency verdict of a difference: animals' own differences (within
+    animals) or the overlap of the two groups (between groups)."""
+    if isinstance(cons, GroupOverlap):
+        return _overlap_verdict(cons, response, flag_suffix)
+    in_difference = np.isfinite(cons.animals["effect"].to_numpy(dtype=float))
+    out = _consistency_verdict(cons, response, flag_suffix, in_difference)
+    het = cons.heterogeneity
+    if np.isfinite(het.q):
+        out["reasons"].append(
+            f"heterogeneity of the animals' own differences: Cochran's Q = {het.q:.3g} on "
+            f"{het.df} df (p = {het.p:.2g}), I² = {100 * het.i_squared:.0f}%"
+        )
+    if cons.not_estimable:
+        out["reasons"].append(
+            f"{len(cons.not_estimable)} animal(s) cannot estimate the difference from their "
+            f"own runs (e.g. runs of one side only) and are not counted: "
+            f"{', '.join(cons.not_estimable)}"
+        )
+    out["level"] = WITHIN
+    out["caution"] = WITHIN_CAUTION
+    return out
+
+
+def _overlap_verdict(go: GroupOverlap, response: dict, flag_suffix: str) -> dict:
+    """Sign-aware verdict on how much the two groups' animals overlap."""
+    summary = go.summary()
+    signs = response["signs"]
+    if not signs:
+        sign = ""
+    elif len(signs) == 1:
+        sign = signs[0]
+    else:
+        sign = "negative" if go.effect < 0 else "positive"
+    plus, minus = go.names
+    o = go.overlap
+    # A read in the direction of the map's difference
+    a_dir = o.a if sign != "negative" else 1.0 - o.a
+    low = o.ci[0] if sign != "negative" else 1.0 - o.ci[1]
+    s = -1.0 if sign == "negative" else 1.0
+    if not sign:
+        verdict = "no difference to be consistent about"
+    elif not np.isfinite(go.effect) or s * go.effect <= 0:
+        verdict = f"the groups do not differ in the target with the map's {sign} sign"
+    elif o.separated:
+        verdict = "the groups separate: no animal of one group falls among the other's"
+    elif np.isfinite(low) and low > 0.5:
+        verdict = f"the groups differ with some overlap (A = {a_dir:.2f})"
+    else:
+        verdict = f"the groups overlap (A = {a_dir:.2f})"
+    if sign and flag_suffix:
+        verdict += flag_suffix
+    above = "above" if sign != "negative" else "below"
+    reasons = [_response_sentence(response)]
+    ci = (
+        f"95% CI {o.ci[0]:.2f} to {o.ci[1]:.2f}"
+        if np.isfinite(o.ci[0])
+        else "no interval: the groups separate completely"
+    )
+    reasons.append(
+        f"probability that an animal of {plus} has a larger target value than one of "
+        f"{minus}: A = {o.a:.2f} ({ci}; Mann–Whitney p = {o.p:.2g}, {o.n_plus} vs "
+        f"{o.n_minus} animals)"
+    )
+    for side in summary["groups"].values():
+        if side["animals"]:
+            reasons.append(
+                f"{side['group']}: {side['animals']} animals, median target value "
+                f"{side['median']:.3g} (range {side['min']:.3g} to {side['max']:.3g}), "
+                f"{side['animals_positive']} positive"
+            )
+    if sign:
+        reasons.append(f"the map's difference is {sign}: {plus} {above} {minus} is expected")
+    reasons.append(
+        f"target group difference {go.effect:.3g} (p = {go.p:.2g})"
+        if np.isfinite(go.effect)
+        else "no target group difference"
+    )
+    return {
+        "verdict": verdict,
+        "sign": sign,
+        "reasons": reasons,
+        "level": BETWEEN,
+        "caution": BETWEEN_CAUTION,
+        **summary,
+    }
 
 
 def _run_quality(y, s2, design, runs, loo, shell, questions, in_mean) -> RunQuality:

@@ -52,7 +52,8 @@ from scipy import ndimage, stats
 from grouplevel.errors import ArgumentError
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.model.animals import animal_means
-from grouplevel.model.leave_one_out import leave_one_animal_out
+from grouplevel.model.leave_one_out import leave_one_animal_out, leave_one_animal_out_model
+from grouplevel.model.marginal import RandomTerms
 from grouplevel.questions.verdicts import (  # noqa: F401  (the rules' names, re-exported here)
     ARTEFACT_ENRICHMENT_MIN,
     ARTEFACT_FLAG_TEXT,
@@ -1114,6 +1115,8 @@ def loo_group_maps(
     estimate_run_variance: bool = True,
     var_animal: np.ndarray | None = None,
     var_run: np.ndarray | None = None,
+    components: dict[str, np.ndarray] | None = None,
+    terms: RandomTerms | None = None,
 ) -> LooMaps:
     """The voxelwise group map leaving out each animal in turn.
 
@@ -1121,7 +1124,11 @@ def loo_group_maps(
     exact downdates of the GLS solution at those components
     (:func:`grouplevel.model.leave_one_out.leave_one_animal_out`: one pass over the
     data, whatever the number of animals). Without them, every animal's map is a full
-    REML refit (variance components re-estimated; one whole-map fit per animal).
+    REML refit (variance components re-estimated; one whole-map fit per animal). With
+    ``components`` (the fit's components by name) and ``terms`` (its random slopes,
+    sessions, variance groups) the downdate uses the covariance of that model
+    (:func:`grouplevel.model.leave_one_out.leave_one_animal_out_model`); ``var_animal``
+    and ``var_run`` are then not needed.
 
     Parameters
     ----------
@@ -1165,8 +1172,11 @@ def loo_group_maps(
         return res.effect, res.t
 
     n_vox = y.shape[1]
-    if var_animal is not None and var_run is not None:
-        down = leave_one_animal_out(y, s2, X, animal, c, var_animal, var_run)
+    if components is not None or (var_animal is not None and var_run is not None):
+        if components is not None:
+            down = leave_one_animal_out_model(y, s2, X, animal, c, components, terms)
+        else:
+            down = leave_one_animal_out(y, s2, X, animal, c, var_animal, var_run)
         effect_full, t_full, effect, t_loo = down.effect_full, down.t_full, down.effect, down.t
         for a in range(m):  # a group map needs two animals
             rows = animal != a
