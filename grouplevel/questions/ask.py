@@ -793,6 +793,12 @@ def _difference_consistency_verdict(cons, response: dict, flag_suffix: str) -> d
         return _overlap_verdict(cons, response, flag_suffix)
     in_difference = np.isfinite(cons.animals["effect"].to_numpy(dtype=float))
     out = _consistency_verdict(cons, response, flag_suffix, in_difference)
+    # the same rules as a mean's, in the words of a difference
+    out["verdict"] = (
+        out["verdict"]
+        .replace("no response to be", "no difference to be")
+        .replace("(negative response)", "(negative difference)")
+    )
     het = cons.heterogeneity
     if np.isfinite(het.q):
         out["reasons"].append(
