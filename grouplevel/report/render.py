@@ -632,6 +632,11 @@ def _cautions(name: str, result: dict, summary: dict, method_words: str) -> list
             "Each verdict (bilateral, specific, consistent) is a summary by the stated rules "
             "and the numbers beside it, not a separate test: read the reasons with it."
         )
+    # what the questions' own answers say they do not show, and which model they used
+    consistency = answered.get("consistency")
+    if isinstance(consistency, dict) and consistency.get("caution"):
+        out.append(str(consistency["caution"]))
+    out.extend(str(note) for note in answered.get("notes") or [])
     if not _surviving_count(result, method):
         out.append(
             f"No voxel survives {method_words}; absence of a significant effect is not "

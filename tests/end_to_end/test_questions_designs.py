@@ -367,6 +367,8 @@ def test_two_group_design_asks_each_group_mean(two_group):
     assert not [w for w in summary["warnings"] if "questions are asked of" in w]
     html = (two_group / "report.html").read_text()
     assert "the groups separate" in html
+    # what the overlap does not show is among the result's cautions
+    assert "The overlap compares the animals" in html
     assert "Lateralisation differs?" in html
 
 

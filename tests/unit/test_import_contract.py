@@ -41,6 +41,7 @@ CORE_MODULES = (
     "grouplevel.anatomy.regions",
     "grouplevel.questions.symmetry",
     "grouplevel.questions.specificity",
+    "grouplevel.questions.differences",
     "grouplevel.questions.quality",
     "grouplevel.questions.verdicts",
     "grouplevel.planning.power",
