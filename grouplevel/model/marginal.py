@@ -39,7 +39,9 @@ from grouplevel.model.mixed import (
     _cholesky_inverse,
     _layout,
     _Structure,
+    fit_mixed,
 )
+from grouplevel.model.reml import fit_reml
 
 
 @dataclass(frozen=True)
@@ -177,3 +179,40 @@ def animal_gls_pieces(
     A[bad] = np.nan
     b[bad] = np.nan
     return A, b
+
+
+def fit_terms(
+    y: np.ndarray,
+    variance: np.ndarray | None,
+    X: np.ndarray,
+    animal: np.ndarray,
+    terms: RandomTerms | None = None,
+    *,
+    estimate_run_variance: bool = True,
+    max_iter: int = 100,
+):
+    """Fit ``y`` with the model of ``terms``: :func:`grouplevel.model.reml.fit_reml` for
+    the random intercept, :func:`grouplevel.model.mixed.fit_mixed` beyond it.
+
+    The refits of the questions (region values, mirrored maps, an animal left out) call
+    this, so that they use the model the contrast was fitted with. Both fits have
+    ``beta`` and ``cov_beta`` for :func:`grouplevel.model.contrasts.test_contrast`.
+    """
+    terms = terms or RandomTerms()
+    if not terms.extended:
+        return fit_reml(
+            y, variance, X, animal, estimate_run_variance=estimate_run_variance, max_iter=max_iter
+        )
+    return fit_mixed(
+        y,
+        variance,
+        X,
+        animal,
+        slopes=terms.slopes,
+        slope_names=terms.slope_names,
+        session=terms.session,
+        animal_group=terms.animal_group,
+        group_names=terms.group_names,
+        estimate_run_variance=estimate_run_variance,
+        max_iter=max_iter,
+    )

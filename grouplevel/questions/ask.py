@@ -50,8 +50,8 @@ from grouplevel.inference.permutation import (
 )
 from grouplevel.intake.design import Design
 from grouplevel.intake.settings import QuestionSettings, Settings
-from grouplevel.model import MixedFit, between_animal_df, fit_reml, test_contrast
-from grouplevel.model.marginal import RandomTerms
+from grouplevel.model import MixedFit, between_animal_df, test_contrast
+from grouplevel.model.marginal import RandomTerms, fit_terms
 from grouplevel.questions.ask_differences import (
     BETWEEN,
     WITHIN,
@@ -198,10 +198,12 @@ def comparison_note(conditions: dict[str, float]) -> str:
 #: Note of the answers of an extended design: which internal tests use which model.
 EXTENDED_NOTE = (
     "The model has random slopes, session levels or variance groups: the leave-one-out "
-    "maps, run quality and (for a difference) the consistency use that model; the "
-    "region-level symmetry tests, the asymmetry map and the specificity tests fit a "
-    "random intercept per animal to their region or mirrored values, so their p-values "
-    "do not account for those extra variance levels."
+    "maps, run quality, consistency, the region-level symmetry and specificity tests and "
+    "the asymmetry map's t are fitted with that model. Still simpler: the region-level "
+    "tests use between-animal degrees of freedom (not the map's rule for slopes or "
+    "variance groups), the asymmetry map's permutations reduce each animal's data with "
+    "the random-intercept weights, and the region table (regions.tsv) fits a random "
+    "intercept per animal."
 )
 
 
@@ -500,17 +502,24 @@ def _asymmetry(
     settings: Settings,
     midline_mm: float,
     backend: Backend | None,
+    terms: RandomTerms | None = None,
 ) -> AsymmetryMap:
-    """Each run minus its mirror image, through the same model and inference."""
+    """Each run minus its mirror image, through the same model and inference.
+
+    The t map comes from the model the contrast was fitted with (``terms``); the
+    permutations reduce each animal's data with that fit's intercept and run variances
+    (the random-intercept reduction).
+    """
     mirror = mirror_index(gm.mask, gm.grid.affine, midline_mm)
     data = asymmetry_data(y, s2, mirror)
     half_mask = mirror.half_mask(data.half)
     estimate = settings.model.run_variance == "estimate"
-    fit = fit_reml(
+    fit = fit_terms(
         data.y,
         data.variance,
         design.matrix,
         design.animal,
+        terms,
         estimate_run_variance=estimate or data.variance is None,
         max_iter=settings.model.max_iter,
     )
@@ -625,7 +634,7 @@ def answer_questions(
     spec = cons = cons_summary = None
     if questions.targets:
         spec, cons = _specificity_and_consistency(
-            gm, y, design, c, atlas, surviving, shell, questions
+            gm, y, design, c, atlas, surviving, shell, questions, terms
         )
     else:
         reason = "no [questions] targets were named"
@@ -636,9 +645,9 @@ def answer_questions(
     sym = curves = sym_summary = asym = None
     if questions.symmetry:
         sym, curves, sym_summary = _symmetry(
-            gm, y, s2, fit, design, c, regions, questions, settings, plan, response, suffix
+            gm, y, s2, fit, design, c, regions, questions, settings, plan, response, suffix, terms
         )
-        asym = _asymmetry(gm, y, s2, design, c, settings, atlas.midline_mm, backend)
+        asym = _asymmetry(gm, y, s2, design, c, settings, atlas.midline_mm, backend, terms)
     else:
         not_assessed["symmetry"] = "no [questions] symmetry regions were named"
     return Answers(
@@ -723,7 +732,9 @@ def answers_not_asked(
         alpha = settings.inference.alpha
         surviving = surviving_voxels(gm, alpha)[method]
         response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
-        spec = _target_specificity(gm, y, design, c, regions.atlas, surviving, shell, questions)
+        spec = _target_specificity(
+            gm, y, design, c, regions.atlas, surviving, shell, questions, terms
+        )
         if sides is None:
             not_assessed["consistency"] = "the runs table was not given to the questions"
         elif sides.reason:
@@ -746,6 +757,7 @@ def answers_not_asked(
             c=c,
             alpha=settings.inference.alpha,
             stimulus_side=questions.stimulus_side,
+            terms=terms,
         )
         suffix = _flag_suffix(spec)
         if suffix:
@@ -903,7 +915,9 @@ def _run_quality(y, s2, design, runs, loo, shell, questions, in_mean) -> RunQual
     )
 
 
-def _target_specificity(gm, y, design, c, atlas, surviving, shell, questions) -> Specificity:
+def _target_specificity(
+    gm, y, design, c, atlas, surviving, shell, questions, terms=None
+) -> Specificity:
     """Specificity of the surviving voxels for the (possibly one-sided) targets."""
     rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
     height = (np.argwhere(gm.mask) @ gm.grid.affine[:3, :3].T + gm.grid.affine[:3, 3])[:, 2]
@@ -921,12 +935,13 @@ def _target_specificity(gm, y, design, c, atlas, surviving, shell, questions) ->
         design.matrix,
         design.animal,
         c,
+        terms=terms,
     )
 
 
-def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, questions):
+def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, questions, terms):
     """Specificity of the surviving voxels and consistency of the target effect."""
-    spec = _target_specificity(gm, y, design, c, atlas, surviving, shell, questions)
+    spec = _target_specificity(gm, y, design, c, atlas, surviving, shell, questions, terms)
     rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
     leaves = leaf_rows(atlas, rows)
     weights = sp.csr_matrix(np.asarray(atlas.shares[:, leaves].sum(axis=1)))
@@ -939,11 +954,14 @@ def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, ques
         design.animal_ids,
         c,
         estimate_run_variance=True,
+        terms=terms,
     )
     return spec, cons
 
 
-def _symmetry(gm, y, s2, fit, design, c, regions, questions, settings, plan, response, suffix):
+def _symmetry(
+    gm, y, s2, fit, design, c, regions, questions, settings, plan, response, suffix, terms=None
+):
     """Symmetry of each named region pair, counted with the map's response signs."""
     alpha = settings.inference.alpha
     results = analyse_symmetry(
@@ -967,6 +985,7 @@ def _symmetry(gm, y, s2, fit, design, c, regions, questions, settings, plan, res
         X=design.matrix,
         c=c,
         bootstrap_animals=plan.animals,
+        terms=terms,
     )
     table = symmetry_table(results)
     summary = {}

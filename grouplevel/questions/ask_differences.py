@@ -34,11 +34,10 @@ import pandas as pd
 import scipy.sparse as sp
 
 from grouplevel.anatomy.regions import region_values
-from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
 from grouplevel.model.leave_one_out import leave_one_animal_out_model
-from grouplevel.model.marginal import RandomTerms
-from grouplevel.model.mixed import fit_mixed
+from grouplevel.model.marginal import RandomTerms, fit_terms
 from grouplevel.questions.differences import (
     DifferenceConsistency,
     GroupOverlap,
@@ -158,20 +157,7 @@ def difference_sides(design, runs: pd.DataFrame, c: np.ndarray) -> DifferenceSid
 
 def _fit_values(values, X, animal, terms: RandomTerms):
     """The contrast's model fitted to one target value per run (σ² estimated)."""
-    if terms.extended:
-        return fit_mixed(
-            values[:, None],
-            None,
-            X,
-            animal,
-            slopes=terms.slopes,
-            slope_names=terms.slope_names,
-            session=terms.session,
-            animal_group=terms.animal_group,
-            group_names=terms.group_names,
-            estimate_run_variance=True,
-        )
-    return fit_reml(values[:, None], None, X, animal, estimate_run_variance=True)
+    return fit_terms(values[:, None], None, X, animal, terms, estimate_run_variance=True)
 
 
 def fit_components(fit) -> dict[str, np.ndarray]:

@@ -50,10 +50,10 @@ import scipy.sparse as sp
 from scipy import ndimage, stats
 
 from grouplevel.errors import ArgumentError
-from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
 from grouplevel.model.leave_one_out import leave_one_animal_out, leave_one_animal_out_model
-from grouplevel.model.marginal import RandomTerms
+from grouplevel.model.marginal import RandomTerms, fit_terms
 from grouplevel.questions.verdicts import (  # noqa: F401  (the rules' names, re-exported here)
     ARTEFACT_ENRICHMENT_MIN,
     ARTEFACT_FLAG_TEXT,
@@ -472,6 +472,7 @@ def specificity(
     c: np.ndarray,
     *,
     rim_z_threshold: float = RIM_Z_THRESHOLD,
+    terms: RandomTerms | None = None,
 ) -> Specificity:
     """Specificity of one group map for a set of target regions.
 
@@ -534,7 +535,7 @@ def specificity(
     shares = _activation_shares(surviving, shell, inner, w_target, _weights(atlas, artefact_leaves))
     active = surviving | (np.nan_to_num(np.abs(z)) > rim_z_threshold)
     rim = rim_score(active, np.sign(np.nan_to_num(z)), shell, height)
-    fit, res = _target_minus_rest(y, w_target, X, animal, c)
+    fit, res = _target_minus_rest(y, w_target, X, animal, c, terms)
     surv_f = surviving.astype(float)
     off = _off_target_table(atlas, target_leaves, effect, z, surv_f, artefact_leaves)
     tgt = _target_table(
@@ -677,11 +678,11 @@ def _activation_shares(
         )
 
 
-def _target_minus_rest(y, w_target, X, animal, c):
+def _target_minus_rest(y, w_target, X, animal, c, terms=None):
     """Per run: mean in the targets − mean in the rest; REML run-within-animal model."""
     values = _weighted_run_means(y, w_target) - _weighted_run_means(y, 1.0 - w_target)
     present = np.isfinite(values)[:, None]
-    fit = fit_reml(values[:, None], None, X, animal, estimate_run_variance=True)
+    fit = fit_terms(values[:, None], None, X, animal, terms, estimate_run_variance=True)
     df = between_animal_df(X, animal, present, c)
     return fit, test_contrast(fit, c, df)
 
@@ -836,8 +837,10 @@ def _design_inputs(X, animal, n_runs: int, where: str):
     return X, animal
 
 
-def _test(values, variances, X, animal, c, estimate_run_variance):
-    fit = fit_reml(values, variances, X, animal, estimate_run_variance=estimate_run_variance)
+def _test(values, variances, X, animal, c, estimate_run_variance, terms=None):
+    fit = fit_terms(
+        values, variances, X, animal, terms, estimate_run_variance=estimate_run_variance
+    )
     present = np.isfinite(values)
     if variances is not None:
         present &= np.isfinite(variances)
@@ -854,6 +857,7 @@ def consistency(
     c: np.ndarray,
     *,
     estimate_run_variance: bool = True,
+    terms: RandomTerms | None = None,
 ) -> Consistency:
     """Consistency of the target effect across animals.
 
@@ -871,6 +875,9 @@ def consistency(
         ``(p,)`` contrast.
     estimate_run_variance
         Estimate σ² (else fixed at 0).
+    terms
+        The random terms of the model the contrast was fitted with (default a random
+        intercept per animal); the group test and the leave-one-out refits use them.
 
     Returns
     -------
@@ -896,7 +903,13 @@ def consistency(
         values, variances, X, animal, animal_ids
     )
     fit, res = _test(
-        values[:, None], None if s2 is None else s2[:, None], X, animal, c, estimate_run_variance
+        values[:, None],
+        None if s2 is None else s2[:, None],
+        X,
+        animal,
+        c,
+        estimate_run_variance,
+        terms,
     )
     tau2, sig2 = float(fit.var_animal[0]), float(fit.var_run[0])
     icc = tau2 / (tau2 + sig2) if (tau2 + sig2) > 0 else float("nan")
@@ -911,6 +924,7 @@ def consistency(
         var_run=sig2,
         full=full,
         estimate_run_variance=estimate_run_variance,
+        terms=terms,
     )
     return Consistency(
         animals=table,
@@ -964,6 +978,7 @@ def _animal_effects(
     var_run: float,
     full: float,
     estimate_run_variance: bool,
+    terms: RandomTerms | None = None,
 ) -> tuple[pd.DataFrame, np.ndarray]:
     """Each animal's effect with its 95% CI, and the leave-this-animal-out refit.
 
@@ -985,7 +1000,7 @@ def _animal_effects(
     )
     eff, se, runs = means.mean[:, 0], means.se[:, 0], means.runs[:, 0]
     loo_e, loo_t = _leave_each_animal_out(
-        values, s2, X, animal, c, present, m, estimate_run_variance
+        values, s2, X, animal, c, present, m, estimate_run_variance, terms
     )
     change = loo_e - full
     has = runs > 0
@@ -1014,7 +1029,7 @@ def _most_influential(change: np.ndarray, animal_ids: list[str]) -> str:
     return animal_ids[int(np.argmax(abs_change))] if np.isfinite(abs_change).any() else ""
 
 
-def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_variance):
+def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_variance, terms=None):
     """Effect and t of the same REML model refitted without each animal in turn (NaN for
     an animal without runs or when fewer than two runs would remain)."""
     loo_e = np.full(m, np.nan)
@@ -1023,7 +1038,8 @@ def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_va
         keep = (animal != a) & present
         if not present[animal == a].any() or keep.sum() < 2:
             continue
-        codes = np.unique(animal[keep], return_inverse=True)[1]
+        kept, codes = np.unique(animal[keep], return_inverse=True)
+        sub = None if terms is None else terms.subset(keep, np.isin(np.arange(m), kept))
         _, r = _test(
             values[keep][:, None],
             None if s2 is None else s2[keep][:, None],
@@ -1031,6 +1047,7 @@ def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_va
             codes,
             c,
             estimate_run_variance,
+            sub,
         )
         loo_e[a], loo_t[a] = float(r.effect[0]), float(r.t[0])
     return loo_e, loo_t
@@ -1166,7 +1183,9 @@ def loo_group_maps(
         codes = np.unique(animal[rows], return_inverse=True)[1]
         yy = y[rows]
         ss = None if s2 is None else s2[rows]
-        fit = fit_reml(yy, ss, X[rows], codes, estimate_run_variance=estimate_run_variance)
+        kept = np.isin(np.arange(m), np.unique(animal[rows]))
+        sub = None if terms is None else terms.subset(rows, kept)
+        fit = fit_terms(yy, ss, X[rows], codes, sub, estimate_run_variance=estimate_run_variance)
         present = np.isfinite(yy) if ss is None else np.isfinite(yy) & np.isfinite(ss)
         res = test_contrast(fit, c, df_fn(X[rows], codes, present, c))
         return res.effect, res.t

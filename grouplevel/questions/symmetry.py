@@ -59,8 +59,9 @@ from scipy import stats
 from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM
 from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference.significance import DEFAULT_ALPHA
-from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
+from grouplevel.model.marginal import RandomTerms, fit_terms
 from grouplevel.questions.verdicts import (  # noqa: F401  (the rule's names, re-exported here)
     BILATERAL_EQUIVALENT,
     BILATERAL_UNRESOLVED,
@@ -750,6 +751,7 @@ def hemisphere_test(
     confidence: float = CONFIDENCE_LEVEL,
     X: np.ndarray | None = None,
     c: np.ndarray | None = None,
+    terms: RandomTerms | None = None,
 ) -> HemisphereTest:
     """Test the hemispheric difference of a region pair, and its equivalence to zero.
 
@@ -782,6 +784,11 @@ def hemisphere_test(
         ``(n_runs, p)`` group design and ``(p,)`` contrast giving the group mean tested
         (a group mean of a larger design, see :mod:`grouplevel.questions.means`); default the
         intercept-only design and its intercept.
+    terms
+        The random terms of the model the contrast was fitted with (random slopes,
+        sessions, variance groups; default a random intercept per animal): the region
+        means are fitted with the same model
+        (:func:`grouplevel.model.marginal.fit_terms`).
 
     Returns
     -------
@@ -807,7 +814,7 @@ def hemisphere_test(
     c = np.ones(1) if c is None else np.asarray(c, dtype=float).ravel()
     if X.ndim != 2 or X.shape[0] != len(left) or X.shape[1] != c.size:
         raise ValueError(f"X must be ({len(left)} runs, {c.size}) for a contrast of {c.size}")
-    fit = fit_reml(y, None, X, animal, estimate_run_variance=True)
+    fit = fit_terms(y, None, X, animal, terms, estimate_run_variance=True)
     df = between_animal_df(X, animal, np.isfinite(y), c)
     res = test_contrast(fit, c, df)
     d, se, dfd = float(res.effect[2]), float(res.se[2]), float(res.df[2])
@@ -934,6 +941,7 @@ def analyse_symmetry(
     X: np.ndarray | None = None,
     c: np.ndarray | None = None,
     bootstrap_animals: np.ndarray | None = None,
+    terms: RandomTerms | None = None,
 ) -> tuple[RegionSymmetry, ...]:
     """Laterality, hemispheric test and verdict for each named region pair.
 
@@ -992,6 +1000,7 @@ def analyse_symmetry(
             equivalence_margin=equivalence_margin,
             X=X,
             c=c,
+            terms=terms,
         )
         verdict = symmetry_verdict(
             test, alpha=alpha, stimulus_side=stimulus_side, sided=sided, signs=signs
@@ -1326,6 +1335,7 @@ def lateralisation_differences(
     c: np.ndarray,
     alpha: float = DEFAULT_ALPHA,
     stimulus_side: str | None = None,
+    terms: RandomTerms | None = None,
 ) -> tuple[pd.DataFrame, dict]:
     """The lateralisation of a difference contrast for each named region pair.
 
@@ -1337,6 +1347,8 @@ def lateralisation_differences(
         Group design and the difference contrast.
     alpha, stimulus_side
         See :func:`lateralisation_difference_verdict`.
+    terms
+        The random terms of the fitted model (see :func:`hemisphere_test`).
 
     Returns
     -------
@@ -1349,7 +1361,7 @@ def lateralisation_differences(
     for name in names:
         left_row, right_row = region_pair(atlas, name)
         test = hemisphere_test(
-            region_values[:, left_row], region_values[:, right_row], animal, X=X, c=c
+            region_values[:, left_row], region_values[:, right_row], animal, X=X, c=c, terms=terms
         )
         verdict = lateralisation_difference_verdict(test, alpha=alpha, stimulus_side=stimulus_side)
         rows.append(

@@ -169,3 +169,39 @@ def test_a_component_the_terms_need_but_the_fit_lacks_is_named():
     terms = RandomTerms(slopes=cond[:, None], slope_names=("cond",))
     with pytest.raises(ValueError, match="no variance component .cov\\[cond\\]"):
         marginal_run_variance({"animal": np.ones(1), "run": np.ones(1)}, X, animal, terms)
+
+
+def test_question_refits_of_an_extended_design_use_its_model():
+    # Reference: statsmodels MixedLM (REML) with a random intercept and condition slope
+    # per animal, on the same region values: the hemispheric test's L − R estimate and
+    # SE, the mean consistency's group effect and its refit without the first animal.
+    from grouplevel.questions.specificity import consistency
+    from grouplevel.questions.symmetry import hemisphere_test
+
+    y, X, animal, cond = _slope_data(m=8, runs=4, n_vox=2)
+    # the left side carries its own animal intercepts and slopes, so that L − R has
+    # variance at both animal levels (away from the boundary, where two optimisers agree)
+    extra = RNG.normal(0, 0.8, (8, 2))
+    left = y[:, 0] + 1.0 + extra[animal, 0] + extra[animal, 1] * cond
+    right = y[:, 1]
+    terms = RandomTerms(slopes=cond[:, None], slope_names=("cond",))
+    c = np.array([1.0, 0.0])  # the mean over both conditions (cond is centred)
+    test = hemisphere_test(left, right, animal, X=X, c=c, terms=terms)
+    ref = _statsmodels_slope_fit(left - right, cond, animal)
+    assert test.difference == pytest.approx(ref.fe_params["Intercept"], rel=1e-3)
+    assert test.se == pytest.approx(ref.bse_fe["Intercept"], rel=2e-3)
+
+    ids = [f"m{a}" for a in range(8)]
+    cons = consistency(left, None, X, animal, ids, c, terms=terms)
+    ref = _statsmodels_slope_fit(left, cond, animal)
+    assert cons.effect == pytest.approx(ref.fe_params["Intercept"], rel=1e-3)
+    assert cons.se == pytest.approx(ref.bse_fe["Intercept"], rel=2e-3)
+    keep = animal != 0
+    ref0 = _statsmodels_slope_fit(left[keep], cond[keep], animal[keep])
+    loo0 = cons.animals.set_index("animal").loc["m0", "loo_effect"]
+    assert loo0 == pytest.approx(ref0.fe_params["Intercept"], rel=1e-3)
+    # its run variance is the slope model's (statsmodels' scale), which the random-
+    # intercept model would put elsewhere: the slope variance is not 0 here
+    assert cons.var_run == pytest.approx(ref.scale, rel=1e-3)
+    plain = consistency(left, None, X, animal, ids, c)
+    assert abs(plain.var_run / ref.scale - 1) > 0.01
