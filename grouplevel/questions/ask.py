@@ -184,9 +184,12 @@ def skipped_warning(skipped: list[str]) -> list[str]:
 
 def comparison_note(conditions: dict[str, float]) -> str:
     """The note of a within-animal comparison's answers: what "response" means there."""
-    terms = " ".join(
-        f"{'−' if w < 0 else '+'} {abs(w):g}·{name}" for name, w in conditions.items()
-    ).lstrip("+ ")
+    parts = []
+    for name, w in conditions.items():
+        size = name if abs(w) == 1 else f"{abs(w):g}·{name}"
+        sign = "−" if w < 0 else "+"
+        parts.append(f"{sign} {size}" if parts else ("−" if w < 0 else "") + size)
+    terms = " ".join(parts)
     return (
         f"This result is a within-animal comparison ({terms}) of the runs that carry every "
         "condition: each run's value is that run's difference, so 'response' in these "
