@@ -714,6 +714,7 @@ def _with_answers(
             settings,
             backend=backend,
             terms=terms,
+            model_df=lambda fit, present, cc: _contrast_df(study, fl, fit, present, cc),
         )
         if fl.conditions:
             answers = replace(answers, notes=(*answers.notes, comparison_note(fl.conditions)))
@@ -733,7 +734,7 @@ def _with_answers(
         fit=fitted.fit,
         runs=fl.runs,
         terms=terms,
-        df_fn=lambda fit, present, cc: _contrast_df(study, fl, fit, present, cc),
+        model_df=lambda fit, present, cc: _contrast_df(study, fl, fit, present, cc),
     )
     return replace(gm, answers=answers)
 

@@ -27,7 +27,9 @@ Biometrics 38:963–974 (the marginal covariance ``Z T Zᵀ + R``).
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -42,6 +44,11 @@ from grouplevel.model.mixed import (
     fit_mixed,
 )
 from grouplevel.model.reml import fit_reml
+
+#: ``model_df(fit, present, c) -> df``: a group map's degrees-of-freedom rule, applied to
+#: a refit of the same model (region values, mirrored maps); ``present`` is the
+#: ``(runs, columns)`` mask of the refitted data.
+ModelDf = Callable[[Any, np.ndarray, np.ndarray], np.ndarray]
 
 
 @dataclass(frozen=True)

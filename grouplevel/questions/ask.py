@@ -51,11 +51,10 @@ from grouplevel.inference.permutation import (
 from grouplevel.intake.design import Design
 from grouplevel.intake.settings import QuestionSettings, Settings
 from grouplevel.model import MixedFit, between_animal_df, test_contrast
-from grouplevel.model.marginal import RandomTerms, fit_terms
+from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
 from grouplevel.questions.ask_differences import (
     BETWEEN,
     WITHIN,
-    DfFunction,
     difference_consistency,
     difference_run_quality,
     difference_sides,
@@ -201,12 +200,12 @@ def comparison_note(conditions: dict[str, float]) -> str:
 #: Note of the answers of an extended design: which internal tests use which model.
 EXTENDED_NOTE = (
     "The model has random slopes, session levels or variance groups: the leave-one-out "
-    "maps, run quality, consistency, the region-level symmetry and specificity tests and "
-    "the asymmetry map's t are fitted with that model. Still simpler: the region-level "
-    "tests use between-animal degrees of freedom (not the map's rule for slopes or "
-    "variance groups), the asymmetry map's permutations reduce each animal's data with "
-    "the random-intercept weights, and the region table (regions.tsv) fits a random "
-    "intercept per animal."
+    "maps, run quality, consistency and the region-level symmetry and specificity tests "
+    "are fitted with that model and use the map's degrees-of-freedom rule, and the "
+    "asymmetry map's t is fitted with it. Still simpler: the asymmetry map's df are "
+    "between-animal and its permutations reduce each animal's data with random-intercept "
+    "weights; the leave-one-out refits of the target effect use between-animal df; the "
+    "region table (regions.tsv) fits a random intercept per animal."
 )
 
 
@@ -570,6 +569,7 @@ def answer_questions(
     *,
     backend: Backend | None = None,
     terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> Answers:
     """Answer the configured questions of one group mean (see the module docstring).
 
@@ -577,7 +577,9 @@ def answer_questions(
     is not a group mean gets :meth:`Answers.not_asked`. ``backend`` is where the
     permutations of the asymmetry maps run (``None``: local threads), the same as for
     the group maps. ``terms`` are the random terms of the fitted model (default: a
-    random intercept per animal); the leave-one-out maps use them.
+    random intercept per animal); the leave-one-out maps and the region-level refits use
+    them. ``model_df(fit, present, c)`` is the group map's df rule, used by the
+    region-level tests (default: between-animal df).
     """
     plan = plan or question_plan(design, c)
     terms = terms or RandomTerms()
@@ -595,6 +597,7 @@ def answer_questions(
             fit=fit,
             runs=runs,
             terms=terms,
+            model_df=model_df,
         )
     estimate = settings.model.run_variance == "estimate"
     alpha = settings.inference.alpha
@@ -637,7 +640,7 @@ def answer_questions(
     spec = cons = cons_summary = None
     if questions.targets:
         spec, cons = _specificity_and_consistency(
-            gm, y, design, c, atlas, surviving, shell, questions, terms
+            gm, y, design, c, atlas, surviving, shell, questions, terms, model_df
         )
     else:
         reason = "no [questions] targets were named"
@@ -648,7 +651,20 @@ def answer_questions(
     sym = curves = sym_summary = asym = None
     if questions.symmetry:
         sym, curves, sym_summary = _symmetry(
-            gm, y, s2, fit, design, c, regions, questions, settings, plan, response, suffix, terms
+            gm,
+            y,
+            s2,
+            fit,
+            design,
+            c,
+            regions,
+            questions,
+            settings,
+            plan,
+            response,
+            suffix,
+            terms,
+            model_df,
         )
         asym = _asymmetry(gm, y, s2, design, c, settings, atlas.midline_mm, backend, terms)
     else:
@@ -684,7 +700,7 @@ def answers_not_asked(
     fit=None,
     runs: pd.DataFrame | None = None,
     terms: RandomTerms | None = None,
-    df_fn: DfFunction | None = None,
+    model_df: ModelDf | None = None,
 ) -> Answers:
     """A contrast that is not a group mean.
 
@@ -694,7 +710,7 @@ def answers_not_asked(
     of its sides (:mod:`grouplevel.questions.ask_differences`). These need the group map
     ``gm``, the runs' data ``y`` (and first-level variances ``s2``), the ``fit``, the
     runs table ``runs``, the model's random ``terms`` and, for the target's test, the
-    map's degrees-of-freedom rule ``df_fn(fit, present, c)`` (default: between-animal
+    map's degrees-of-freedom rule ``model_df(fit, present, c)`` (default: between-animal
     df). Whatever cannot be asked carries its reason. Any other contrast gets only the
     reasons.
     """
@@ -736,7 +752,7 @@ def answers_not_asked(
         surviving = surviving_voxels(gm, alpha)[method]
         response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
         spec = _target_specificity(
-            gm, y, design, c, regions.atlas, surviving, shell, questions, terms
+            gm, y, design, c, regions.atlas, surviving, shell, questions, terms, model_df
         )
         if sides is None:
             not_assessed["consistency"] = "the runs table was not given to the questions"
@@ -744,7 +760,7 @@ def answers_not_asked(
             not_assessed["consistency"] = sides.reason
         else:
             values = target_values(y, design, regions.atlas, questions)
-            cons = difference_consistency(values, design, c, sides, terms, df_fn)
+            cons = difference_consistency(values, design, c, sides, terms, model_df)
             cons_summary = _difference_consistency_verdict(cons, response, _flag_suffix(spec))
     else:
         reason = "no [questions] targets were named"
@@ -761,6 +777,7 @@ def answers_not_asked(
             alpha=settings.inference.alpha,
             stimulus_side=questions.stimulus_side,
             terms=terms,
+            model_df=model_df,
         )
         suffix = _flag_suffix(spec)
         if suffix:
@@ -919,7 +936,7 @@ def _run_quality(y, s2, design, runs, loo, shell, questions, in_mean) -> RunQual
 
 
 def _target_specificity(
-    gm, y, design, c, atlas, surviving, shell, questions, terms=None
+    gm, y, design, c, atlas, surviving, shell, questions, terms=None, model_df=None
 ) -> Specificity:
     """Specificity of the surviving voxels for the (possibly one-sided) targets."""
     rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
@@ -939,12 +956,17 @@ def _target_specificity(
         design.animal,
         c,
         terms=terms,
+        model_df=model_df,
     )
 
 
-def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, questions, terms):
+def _specificity_and_consistency(
+    gm, y, design, c, atlas, surviving, shell, questions, terms, model_df=None
+):
     """Specificity of the surviving voxels and consistency of the target effect."""
-    spec = _target_specificity(gm, y, design, c, atlas, surviving, shell, questions, terms)
+    spec = _target_specificity(
+        gm, y, design, c, atlas, surviving, shell, questions, terms, model_df
+    )
     rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
     leaves = leaf_rows(atlas, rows)
     weights = sp.csr_matrix(np.asarray(atlas.shares[:, leaves].sum(axis=1)))
@@ -958,12 +980,26 @@ def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, ques
         c,
         estimate_run_variance=True,
         terms=terms,
+        model_df=model_df,
     )
     return spec, cons
 
 
 def _symmetry(
-    gm, y, s2, fit, design, c, regions, questions, settings, plan, response, suffix, terms=None
+    gm,
+    y,
+    s2,
+    fit,
+    design,
+    c,
+    regions,
+    questions,
+    settings,
+    plan,
+    response,
+    suffix,
+    terms=None,
+    model_df=None,
 ):
     """Symmetry of each named region pair, counted with the map's response signs."""
     alpha = settings.inference.alpha
@@ -989,6 +1025,7 @@ def _symmetry(
         c=c,
         bootstrap_animals=plan.animals,
         terms=terms,
+        model_df=model_df,
     )
     table = symmetry_table(results)
     summary = {}

@@ -26,7 +26,6 @@ slopes, sessions, variance groups: :class:`grouplevel.model.marginal.RandomTerms
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -37,7 +36,7 @@ from grouplevel.anatomy.regions import region_values
 from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
 from grouplevel.model.leave_one_out import leave_one_animal_out_model
-from grouplevel.model.marginal import RandomTerms, fit_terms
+from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
 from grouplevel.questions.differences import (
     DifferenceConsistency,
     GroupOverlap,
@@ -176,15 +175,12 @@ def target_values(y, design, atlas, questions) -> np.ndarray:
     return values[:, 0]
 
 
-DfFunction = Callable[[object, np.ndarray, np.ndarray], np.ndarray]
-
-
-def _group_test(values, design, c, terms, df_fn: DfFunction | None):
+def _group_test(values, design, c, terms, model_df: ModelDf | None):
     """The fit of the target values and ``(effect, se, t, df, p)`` of ``c``."""
     fit = _fit_values(values, design.matrix, design.animal, terms)
     present = np.isfinite(values)[:, None]
-    if df_fn is not None:
-        df = df_fn(fit, present, c)
+    if model_df is not None:
+        df = model_df(fit, present, c)
     else:
         df = between_animal_df(design.matrix, design.animal, present, c)
     res = test_contrast(fit, c, df)
@@ -200,10 +196,10 @@ def difference_consistency(
     c: np.ndarray,
     sides: DifferenceSides,
     terms: RandomTerms,
-    df_fn: DfFunction | None = None,
+    model_df: ModelDf | None = None,
 ) -> DifferenceConsistency | GroupOverlap:
     """Consistency of a difference's target value across animals (see module docstring)."""
-    fit, group = _group_test(values, design, c, terms, df_fn)
+    fit, group = _group_test(values, design, c, terms, model_df)
     comps = fit_components(fit)
     if sides.level == WITHIN:
         loo = leave_one_animal_out_model(

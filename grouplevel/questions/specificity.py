@@ -53,7 +53,7 @@ from grouplevel.errors import ArgumentError
 from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
 from grouplevel.model.leave_one_out import leave_one_animal_out, leave_one_animal_out_model
-from grouplevel.model.marginal import RandomTerms, fit_terms
+from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
 from grouplevel.questions.verdicts import (  # noqa: F401  (the rules' names, re-exported here)
     ARTEFACT_ENRICHMENT_MIN,
     ARTEFACT_FLAG_TEXT,
@@ -473,6 +473,7 @@ def specificity(
     *,
     rim_z_threshold: float = RIM_Z_THRESHOLD,
     terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> Specificity:
     """Specificity of one group map for a set of target regions.
 
@@ -535,7 +536,7 @@ def specificity(
     shares = _activation_shares(surviving, shell, inner, w_target, _weights(atlas, artefact_leaves))
     active = surviving | (np.nan_to_num(np.abs(z)) > rim_z_threshold)
     rim = rim_score(active, np.sign(np.nan_to_num(z)), shell, height)
-    fit, res = _target_minus_rest(y, w_target, X, animal, c, terms)
+    fit, res = _target_minus_rest(y, w_target, X, animal, c, terms, model_df)
     surv_f = surviving.astype(float)
     off = _off_target_table(atlas, target_leaves, effect, z, surv_f, artefact_leaves)
     tgt = _target_table(
@@ -678,12 +679,15 @@ def _activation_shares(
         )
 
 
-def _target_minus_rest(y, w_target, X, animal, c, terms=None):
+def _target_minus_rest(y, w_target, X, animal, c, terms=None, model_df=None):
     """Per run: mean in the targets − mean in the rest; REML run-within-animal model."""
     values = _weighted_run_means(y, w_target) - _weighted_run_means(y, 1.0 - w_target)
     present = np.isfinite(values)[:, None]
     fit = fit_terms(values[:, None], None, X, animal, terms, estimate_run_variance=True)
-    df = between_animal_df(X, animal, present, c)
+    if model_df is None:
+        df = between_animal_df(X, animal, present, c)
+    else:
+        df = model_df(fit, present, c)
     return fit, test_contrast(fit, c, df)
 
 
@@ -837,14 +841,18 @@ def _design_inputs(X, animal, n_runs: int, where: str):
     return X, animal
 
 
-def _test(values, variances, X, animal, c, estimate_run_variance, terms=None):
+def _test(values, variances, X, animal, c, estimate_run_variance, terms=None, model_df=None):
     fit = fit_terms(
         values, variances, X, animal, terms, estimate_run_variance=estimate_run_variance
     )
     present = np.isfinite(values)
     if variances is not None:
         present &= np.isfinite(variances)
-    res = test_contrast(fit, c, between_animal_df(X, animal, present, c))
+    if model_df is None:
+        df = between_animal_df(X, animal, present, c)
+    else:
+        df = model_df(fit, present, c)
+    res = test_contrast(fit, c, df)
     return fit, res
 
 
@@ -858,6 +866,7 @@ def consistency(
     *,
     estimate_run_variance: bool = True,
     terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> Consistency:
     """Consistency of the target effect across animals.
 
@@ -878,6 +887,9 @@ def consistency(
     terms
         The random terms of the model the contrast was fitted with (default a random
         intercept per animal); the group test and the leave-one-out refits use them.
+    model_df
+        ``model_df(fit, present, c) -> df``: the group map's df rule for the full-data
+        test (default between-animal df; the leave-one-out refits always use it).
 
     Returns
     -------
@@ -910,6 +922,7 @@ def consistency(
         c,
         estimate_run_variance,
         terms,
+        model_df,
     )
     tau2, sig2 = float(fit.var_animal[0]), float(fit.var_run[0])
     icc = tau2 / (tau2 + sig2) if (tau2 + sig2) > 0 else float("nan")

@@ -61,7 +61,7 @@ from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
-from grouplevel.model.marginal import RandomTerms, fit_terms
+from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
 from grouplevel.questions.verdicts import (  # noqa: F401  (the rule's names, re-exported here)
     BILATERAL_EQUIVALENT,
     BILATERAL_UNRESOLVED,
@@ -752,6 +752,7 @@ def hemisphere_test(
     X: np.ndarray | None = None,
     c: np.ndarray | None = None,
     terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> HemisphereTest:
     """Test the hemispheric difference of a region pair, and its equivalence to zero.
 
@@ -789,6 +790,10 @@ def hemisphere_test(
         sessions, variance groups; default a random intercept per animal): the region
         means are fitted with the same model
         (:func:`grouplevel.model.marginal.fit_terms`).
+    model_df
+        ``model_df(fit, present, c) -> df``: the degrees-of-freedom rule of the group map
+        the contrast comes from (default: between-animal df,
+        :func:`grouplevel.model.between_animal_df`).
 
     Returns
     -------
@@ -815,7 +820,10 @@ def hemisphere_test(
     if X.ndim != 2 or X.shape[0] != len(left) or X.shape[1] != c.size:
         raise ValueError(f"X must be ({len(left)} runs, {c.size}) for a contrast of {c.size}")
     fit = fit_terms(y, None, X, animal, terms, estimate_run_variance=True)
-    df = between_animal_df(X, animal, np.isfinite(y), c)
+    if model_df is None:
+        df = between_animal_df(X, animal, np.isfinite(y), c)
+    else:
+        df = model_df(fit, np.isfinite(y), c)
     res = test_contrast(fit, c, df)
     d, se, dfd = float(res.effect[2]), float(res.se[2]), float(res.df[2])
     crit = float(stats.t.ppf(0.5 + confidence / 2.0, dfd)) if dfd > 0 else float("nan")
@@ -942,6 +950,7 @@ def analyse_symmetry(
     c: np.ndarray | None = None,
     bootstrap_animals: np.ndarray | None = None,
     terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> tuple[RegionSymmetry, ...]:
     """Laterality, hemispheric test and verdict for each named region pair.
 
@@ -1001,6 +1010,7 @@ def analyse_symmetry(
             X=X,
             c=c,
             terms=terms,
+            model_df=model_df,
         )
         verdict = symmetry_verdict(
             test, alpha=alpha, stimulus_side=stimulus_side, sided=sided, signs=signs
@@ -1336,6 +1346,7 @@ def lateralisation_differences(
     alpha: float = DEFAULT_ALPHA,
     stimulus_side: str | None = None,
     terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> tuple[pd.DataFrame, dict]:
     """The lateralisation of a difference contrast for each named region pair.
 
@@ -1347,8 +1358,9 @@ def lateralisation_differences(
         Group design and the difference contrast.
     alpha, stimulus_side
         See :func:`lateralisation_difference_verdict`.
-    terms
-        The random terms of the fitted model (see :func:`hemisphere_test`).
+    terms, model_df
+        The random terms of the fitted model and its df rule (see
+        :func:`hemisphere_test`).
 
     Returns
     -------
@@ -1361,7 +1373,13 @@ def lateralisation_differences(
     for name in names:
         left_row, right_row = region_pair(atlas, name)
         test = hemisphere_test(
-            region_values[:, left_row], region_values[:, right_row], animal, X=X, c=c, terms=terms
+            region_values[:, left_row],
+            region_values[:, right_row],
+            animal,
+            X=X,
+            c=c,
+            terms=terms,
+            model_df=model_df,
         )
         verdict = lateralisation_difference_verdict(test, alpha=alpha, stimulus_side=stimulus_side)
         rows.append(
