@@ -627,6 +627,7 @@ weights = { "drug[T.yes]" = 1.0 }
 
 [questions]
 targets = ["forelimb area"]
+symmetry = ["forelimb area"]
 """
 
 
@@ -667,7 +668,11 @@ def test_within_animal_difference_counts_each_animals_own_difference(drug):
     gm = maps["drug_minus_vehicle"]
     q = gm.answers.summary(0.05)
     assert q["contrast_kind"] == "difference"
-    assert list(q["not_assessed"]) == ["symmetry"]  # no symmetry regions named
+    assert q["not_assessed"] == {}
+    # the lateralisation difference is tested like the map: slope df = animals − 1
+    # (common practice for a within-animal effect with a random slope; the run-level
+    # df would be 24 runs − 6 animals − 1 = 17)
+    assert q["symmetry"]["forelimb area"]["test"]["df"] == pytest.approx(5.0)
     cons = q["consistency"]
     assert cons["level"] == "within-animal" and cons["caution"]
     assert cons["verdict"] == "all animals agree"
