@@ -492,7 +492,16 @@ def _fit_first_level(
     for cname, c in fl.contrasts:
         gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
         if regions is not None:
-            gm = replace(gm, tables=region_tables(gm, regions, fl.design, c, study.settings))
+            tables = region_tables(
+                gm,
+                regions,
+                fl.design,
+                c,
+                study.settings,
+                terms=random_terms(fl.design, fl.random),
+                model_df=lambda fit, present, cc: _contrast_df(study, fl, fit, present, cc),
+            )
+            gm = replace(gm, tables=tables)
         results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings

@@ -46,8 +46,9 @@ from scipy import ndimage, stats
 from grouplevel.anatomy.coordinates import STEREOTAXIC_COLUMNS, to_stereotaxic, voxel_to_mm
 from grouplevel.inference import fdr
 from grouplevel.inference.clusters import Clusters
-from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
+from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
 
 if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
     from grouplevel.anatomy.atlas import Atlas
@@ -651,13 +652,17 @@ def region_table(
     alpha: float,
     fdr_method: str,
     surviving: Mapping[str, np.ndarray],
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> pd.DataFrame:
     """The group effect in every atlas region, from the same REML model as the voxels.
 
     Each region's run values (:func:`region_values`) and their first-level variances
-    (:func:`region_variances`) are fitted with :func:`grouplevel.model.fit_reml`, one
-    region per "voxel", and the contrast is tested with
-    :func:`grouplevel.model.test_contrast` on the between-animal degrees of freedom.
+    (:func:`region_variances`) are fitted with the voxels' model (random ``terms``:
+    :func:`grouplevel.model.marginal.fit_terms`; default a random intercept per animal),
+    one region per "voxel", and the contrast is tested with
+    :func:`grouplevel.model.test_contrast` on the voxels' degrees-of-freedom rule
+    ``model_df(fit, present, c)`` (default: between-animal df).
 
     Parameters
     ----------
@@ -682,6 +687,8 @@ def region_table(
         Method name → ``(V,)`` bool in-mask vector of voxels that survive it; each gives
         a column ``surviving_<name>``: the share-weighted fraction of the region's
         in-mask volume that survives.
+    terms, model_df
+        The random terms and df rule of the voxels' model (see above).
 
     Returns
     -------
@@ -710,6 +717,8 @@ def region_table(
         estimate_run_variance=estimate_run_variance,
         alpha=alpha,
         fdr_method=fdr_method,
+        terms=terms,
+        model_df=model_df,
     )
     regions = atlas.regions
     table = pd.DataFrame(
@@ -756,6 +765,8 @@ def _region_statistics(
     estimate_run_variance: bool,
     alpha: float,
     fdr_method: str,
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> dict[str, np.ndarray]:
     """The REML fit and contrast test of every region, FDR across regions.
 
@@ -766,8 +777,13 @@ def _region_statistics(
         order of :func:`region_table`.
     """
     present = np.isfinite(values)
-    fit = fit_reml(values, variances, X, animal, estimate_run_variance=estimate_run_variance)
-    df = between_animal_df(X, animal, present, c)
+    fit = fit_terms(
+        values, variances, X, animal, terms, estimate_run_variance=estimate_run_variance
+    )
+    if model_df is None:
+        df = between_animal_df(X, animal, present, c)
+    else:
+        df = model_df(fit, present, c)
     result = test_contrast(fit, c, df)
     q = fdr(result.p, alpha=alpha, method=fdr_method).q
     with np.errstate(invalid="ignore"):

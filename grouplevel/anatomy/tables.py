@@ -31,6 +31,7 @@ from grouplevel.anatomy.regions import (
 from grouplevel.inference import Clusters, find_clusters
 from grouplevel.intake.design import Design
 from grouplevel.intake.settings import Settings
+from grouplevel.model.marginal import ModelDf, RandomTerms
 from grouplevel.results.maps import GroupMap
 
 
@@ -144,9 +145,20 @@ def _significant_clusters(
 
 
 def region_tables(
-    gm: GroupMap, data: RegionData, design: Design, c: np.ndarray, settings: Settings
+    gm: GroupMap,
+    data: RegionData,
+    design: Design,
+    c: np.ndarray,
+    settings: Settings,
+    *,
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> RegionTables:
-    """clusters.tsv, regions.tsv and animals.tsv of one group map, as DataFrames."""
+    """clusters.tsv, regions.tsv and animals.tsv of one group map, as DataFrames.
+
+    ``terms`` and ``model_df`` are the random terms and the df rule of the voxels' model;
+    the region tests use them (default: a random intercept, between-animal df).
+    """
     inf_settings = settings.inference
     method = settings.clusters.resolved_method(inf_settings)
     surviving = surviving_voxels(gm, inf_settings.alpha)
@@ -184,6 +196,8 @@ def region_tables(
         alpha=inf_settings.alpha,
         fdr_method=inf_settings.fdr,
         surviving=surviving,
+        terms=terms,
+        model_df=model_df,
     )
     animals_df = animal_table(
         data.atlas,

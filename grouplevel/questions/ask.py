@@ -202,10 +202,11 @@ EXTENDED_NOTE = (
     "The model has random slopes, session levels or variance groups: the leave-one-out "
     "maps, run quality, consistency and the region-level symmetry and specificity tests "
     "are fitted with that model and use the map's degrees-of-freedom rule, and the "
-    "asymmetry map's t is fitted with it. Still simpler: the asymmetry map's df are "
-    "between-animal and its permutations reduce each animal's data with random-intercept "
-    "weights; the leave-one-out refits of the target effect use between-animal df; the "
-    "region table (regions.tsv) fits a random intercept per animal."
+    "asymmetry map's t is fitted with it, as are the region table's tests. Still "
+    "simpler: the asymmetry map's df are between-animal and its permutations reduce each "
+    "animal's data with random-intercept weights; the leave-one-out refits of the target "
+    "effect use between-animal df; the per-animal means (animals.tsv, the symmetry "
+    "bootstrap) weight runs by the run variance alone."
 )
 
 

@@ -689,6 +689,13 @@ def test_within_animal_difference_counts_each_animals_own_difference(drug):
         warnings.simplefilter("ignore")
         ref = smf.mixedlm("v ~ d", frame, groups=frame["a"], re_formula="~d").fit(reml=True)
     assert cons["effect"] == pytest.approx(float(ref.fe_params["d"]), rel=2e-3)
+    assert cons["se"] == pytest.approx(float(ref.bse_fe["d"]), rel=5e-3)
+    # the region table fits the same slope model, with the slope's df (animals − 1)
+    regions = gm.tables.regions
+    row = regions[(regions["name"] == "forelimb area") & (regions["hemisphere"] == "both")]
+    assert float(row["effect"].iloc[0]) == pytest.approx(float(ref.fe_params["d"]), rel=2e-3)
+    assert float(row["se"].iloc[0]) == pytest.approx(float(ref.bse_fe["d"]), rel=5e-3)
+    assert float(row["df"].iloc[0]) == pytest.approx(5.0)
     np.testing.assert_allclose(table["se"], np.sqrt(ref.scale), rtol=5e-3)  # √(σ²/2 + σ²/2)
     meta = combine_effects(table["effect"].to_numpy(), table["se"].to_numpy() ** 2)
     assert cons["heterogeneity"]["cochran_q"] == pytest.approx(float(meta.q), rel=1e-9)
