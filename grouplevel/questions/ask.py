@@ -159,7 +159,7 @@ def question_plan(design, c: np.ndarray) -> QuestionPlan:
         )
         return QuestionPlan(False, kind, reason, np.zeros(m, dtype=bool))
     if not kind.is_mean:
-        reason = f"asked of group means only; {kind.why}"
+        reason = f"asked of group means and differences only; {kind.why}"
         return QuestionPlan(False, kind, reason, np.zeros(m, dtype=bool))
     weighted = kind.rows_in_mean()
     animals = np.zeros(m, dtype=bool)

@@ -600,7 +600,7 @@ _WORDS = ("bilateral", "specific", "consistent", "run quality")
 
 def test_report_never_says_not_assessed_without_a_reason():
     # a result not asked: every question with the summary's reason
-    reason = "asked of group means only; this contrast is a difference"
+    reason = "asked of group means and differences only; the weights sum to 2"
     questions = {"asked": False, "not_assessed": dict.fromkeys(QUESTIONS, reason)}
     unasked = _unasked({}, questions, {})
     assert unasked == [f"{word} — {reason}" for word in _WORDS]
