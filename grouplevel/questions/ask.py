@@ -203,8 +203,8 @@ EXTENDED_NOTE = (
     "maps, run quality, consistency and the region-level symmetry and specificity tests "
     "are fitted with that model and use the map's degrees-of-freedom rule, and the "
     "asymmetry map's t is fitted with it, as are the region table's tests. Still "
-    "simpler: the asymmetry map's df are between-animal and its permutations reduce each "
-    "animal's data with random-intercept weights; the leave-one-out refits of the target "
+    "simpler: the asymmetry map's permutations reduce each animal's data with "
+    "random-intercept weights; the leave-one-out refits of the target "
     "effect use between-animal df; the per-animal means (animals.tsv, the symmetry "
     "bootstrap) weight runs by the run variance alone."
 )
@@ -506,12 +506,14 @@ def _asymmetry(
     midline_mm: float,
     backend: Backend | None,
     terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> AsymmetryMap:
     """Each run minus its mirror image, through the same model and inference.
 
-    The t map comes from the model the contrast was fitted with (``terms``); the
-    permutations reduce each animal's data with that fit's intercept and run variances
-    (the random-intercept reduction).
+    The t map comes from the model the contrast was fitted with (``terms``) and its df
+    from the map's rule (``model_df``; default between-animal df); the permutations
+    reduce each animal's data with that fit's intercept and run variances (the
+    random-intercept reduction).
     """
     mirror = mirror_index(gm.mask, gm.grid.affine, midline_mm)
     data = asymmetry_data(y, s2, mirror)
@@ -526,7 +528,10 @@ def _asymmetry(
         estimate_run_variance=estimate or data.variance is None,
         max_iter=settings.model.max_iter,
     )
-    df = between_animal_df(design.matrix, design.animal, np.isfinite(data.y), c)
+    if model_df is None:
+        df = between_animal_df(design.matrix, design.animal, np.isfinite(data.y), c)
+    else:
+        df = model_df(fit, np.isfinite(data.y), c)
     res = test_contrast(fit, c, df)
     inf = settings.inference
     p = np.where(np.isnan(res.p), 1.0, res.p)
@@ -617,7 +622,9 @@ def answer_questions(
         components=fit_components(fit) if terms.extended else None,
         terms=terms,
     )
-    quality = _run_quality(y, s2, design, runs, loo, shell, questions, plan.animals)
+    weighted = plan.kind.rows_in_mean()
+    in_runs = weighted if weighted.size == len(design.animal) and weighted.any() else None
+    quality = _run_quality(y, s2, design, runs, loo, shell, questions, plan.animals, in_runs)
     method = settings.clusters.resolved_method(settings.inference)
     surviving = surviving_voxels(gm, alpha)[method]
     response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
@@ -667,7 +674,9 @@ def answer_questions(
             terms,
             model_df,
         )
-        asym = _asymmetry(gm, y, s2, design, c, settings, atlas.midline_mm, backend, terms)
+        asym = _asymmetry(
+            gm, y, s2, design, c, settings, atlas.midline_mm, backend, terms, model_df
+        )
     else:
         not_assessed["symmetry"] = "no [questions] symmetry regions were named"
     return Answers(
@@ -913,24 +922,28 @@ def _overlap_verdict(go: GroupOverlap, response: dict, flag_suffix: str) -> dict
     }
 
 
-def _run_quality(y, s2, design, runs, loo, shell, questions, in_mean) -> RunQuality:
+def _run_quality(y, s2, design, runs, loo, shell, questions, in_mean, in_runs=None):
     """Run quality among the runs of the animals whose mean is asked about.
 
     The robust z compares runs with each other; runs of another group (with another
-    response) would make the runs of either group look unusual.
+    response) would make the runs of either group look unusual. For the mean of one
+    level of a within-animal variable (the drug runs), ``in_runs`` keeps only that
+    level's runs: the other runs show another response.
     """
     keep = np.asarray(in_mean, dtype=bool)[design.animal]
+    if in_runs is not None:
+        keep &= np.asarray(in_runs, dtype=bool)
     if keep.all():
         return run_quality(
             y, s2, design.animal, runs, loo.effect, shell, threshold=questions.outlier_z
         )
-    codes = np.unique(design.animal[keep], return_inverse=True)[1]
+    animals, codes = np.unique(design.animal[keep], return_inverse=True)
     return run_quality(
         y[keep],
         None if s2 is None else s2[keep],
         codes,
         runs[keep].reset_index(drop=True),
-        loo.effect[np.asarray(in_mean, dtype=bool)],
+        loo.effect[animals],
         shell,
         threshold=questions.outlier_z,
     )

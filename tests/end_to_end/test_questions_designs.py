@@ -625,6 +625,10 @@ formula = "1 + drug"
 name = "drug_minus_vehicle"
 weights = { "drug[T.yes]" = 1.0 }
 
+[[contrast]]
+name = "drug_mean"
+weights = { "Intercept" = 1.0, "drug[T.yes]" = 1.0 }
+
 [questions]
 targets = ["forelimb area"]
 symmetry = ["forelimb area"]
@@ -739,3 +743,31 @@ def test_extended_model_smoothness_standardises_by_the_slope_models_variance(dru
     intercept_only = comps["animal"] + comps["run"]
     drug_runs = z != 0
     assert np.nanmedian(np.abs(total[drug_runs] / intercept_only - 1)) > 0.05
+
+
+def test_a_mean_of_a_slope_model_is_asked_with_that_model(drug):
+    # Reference: statsmodels MixedLM (REML, random intercept and drug slope per animal)
+    # on the runs' forelimb-area values; the mean of the drug runs is the sum of its
+    # two coefficients.
+    toml, maps = drug
+    gm = maps["drug_mean"]
+    q = gm.answers.summary(0.05)
+    assert q["asked"] and q["not_assessed"] == {}
+    assert any("random slopes" in n for n in q["notes"])
+    runs = load_study(toml).first_levels[0].runs
+    area = _atlas_image() == 1
+    values = np.array([float(np.asarray(nib.load(p).dataobj)[area].mean()) for p in runs["effect"]])
+    frame = pd.DataFrame({"v": values, "d": (runs["drug"] == "yes").astype(float)})
+    frame["a"] = runs["animal"].to_numpy()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = smf.mixedlm("v ~ d", frame, groups=frame["a"], re_formula="~d").fit(reml=True)
+    cvec = np.array([1.0, 1.0])
+    cov = ref.cov_params().iloc[:2, :2].to_numpy()
+    assert q["consistency"]["effect"] == pytest.approx(float(ref.fe_params.sum()), rel=2e-3)
+    assert q["consistency"]["se"] == pytest.approx(float(np.sqrt(cvec @ cov @ cvec)), rel=5e-3)
+    # the asymmetry map is fitted with the same model; the run-quality reference maps
+    # are downdates of it; only the drug runs (those in the mean) are scored
+    assert np.isfinite(gm.answers.asymmetry.t).any()
+    quality = gm.answers.run_quality.table()
+    assert len(quality) == 12 and set(quality["run"]) == {"3", "4"}
