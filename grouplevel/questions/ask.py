@@ -770,8 +770,12 @@ def answers_not_asked(
             not_assessed["consistency"] = sides.reason
         else:
             values = target_values(y, design, regions.atlas, questions)
-            cons = difference_consistency(values, design, c, sides, terms, model_df)
-            cons_summary = _difference_consistency_verdict(cons, response, _flag_suffix(spec))
+            cons, why = difference_consistency(values, design, c, sides, terms, model_df)
+            if cons is None:
+                not_assessed["consistency"] = why
+            else:
+                suffix = _flag_suffix(spec)
+                cons_summary = _difference_consistency_verdict(cons, response, suffix)
     else:
         reason = "no [questions] targets were named"
         not_assessed.update(specificity=reason, consistency=reason)

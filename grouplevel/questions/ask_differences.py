@@ -43,7 +43,7 @@ from grouplevel.questions.differences import (
     group_overlap,
     within_animal_consistency,
 )
-from grouplevel.questions.means import contrast_kind
+from grouplevel.questions.means import DIFFERENCE, contrast_kind
 from grouplevel.questions.quality import RunQuality, run_quality
 from grouplevel.questions.sides import asked_rows
 from grouplevel.questions.specificity import leaf_rows, loo_group_maps
@@ -115,14 +115,22 @@ def difference_sides(design, runs: pd.DataFrame, c: np.ndarray) -> DifferenceSid
     if tested.any() and not within[tested].any():
         first = np.array([np.flatnonzero(design.animal == a)[0] for a in range(m)])
         kind = contrast_kind(design.matrix[first][:, ~within], c[~within])
+        if kind.kind != DIFFERENCE:
+            reason = f"the contrast's animal-level part is not a difference: {kind.why}"
+            return DifferenceSides(
+                "", np.zeros(len(design.animal), dtype=int), none, ("", ""), False, reason
+            )
         animal_side = _signs(kind.weights)
         run_side = animal_side[design.animal]
-        w = kind.weights
+        # two groups: the tested columns take one value on each side (a group indicator;
+        # a covariate slope takes many), whatever other columns adjust for
+        tested_value = design.matrix[first] @ c
+        scale = max(float(np.abs(tested_value).max()), 1.0)
         two = bool(
             (animal_side > 0).any()
             and (animal_side < 0).any()
-            and np.ptp(w[animal_side > 0]) <= _TOL * np.abs(w).max()
-            and np.ptp(w[animal_side < 0]) <= _TOL * np.abs(w).max()
+            and np.ptp(tested_value[animal_side > 0]) <= _TOL * scale
+            and np.ptp(tested_value[animal_side < 0]) <= _TOL * scale
         )
         reason = (
             ""
@@ -190,6 +198,16 @@ def _group_test(values, design, c, terms, model_df: ModelDf | None):
     return fit, group
 
 
+#: Why the consistency of a difference has no answer when the data cannot give one.
+NO_OWN_DIFFERENCE = (
+    "no animal's runs can estimate the difference on their own (it is a group difference "
+    "of a within-animal effect, such as a drug-by-group interaction, or each animal has "
+    "runs of one side only, or no target data), so there are no animals' own differences "
+    "to count"
+)
+NO_GROUP_DATA = "one group of the difference has no animal with target data"
+
+
 def difference_consistency(
     values: np.ndarray,
     design,
@@ -197,15 +215,16 @@ def difference_consistency(
     sides: DifferenceSides,
     terms: RandomTerms,
     model_df: ModelDf | None = None,
-) -> DifferenceConsistency | GroupOverlap:
-    """Consistency of a difference's target value across animals (see module docstring)."""
+) -> tuple[DifferenceConsistency | GroupOverlap | None, str]:
+    """Consistency of a difference's target value across animals (see module docstring),
+    or None and the reason when the data cannot give it."""
     fit, group = _group_test(values, design, c, terms, model_df)
     comps = fit_components(fit)
     if sides.level == WITHIN:
         loo = leave_one_animal_out_model(
             values[:, None], None, design.matrix, design.animal, c, comps, terms
         )
-        return within_animal_consistency(
+        cons = within_animal_consistency(
             values,
             None,
             design.matrix,
@@ -219,10 +238,16 @@ def difference_consistency(
             var_session=float(comps["session"][0]) if "session" in comps else 0.0,
             session=terms.session,
         )
+        if not np.isfinite(cons.animals["effect"].to_numpy(dtype=float)).any():
+            return None, NO_OWN_DIFFERENCE
+        return cons, ""
     means = animal_means(
         values[:, None], design.animal, n_animals=design.n_animals, var_run=comps["run"]
     )
-    return group_overlap(
+    has = (means.runs[:, 0] > 0) & np.isfinite(means.mean[:, 0])
+    if not (has & (sides.animal_side > 0)).any() or not (has & (sides.animal_side < 0)).any():
+        return None, NO_GROUP_DATA
+    overlap = group_overlap(
         means.mean[:, 0],
         means.se[:, 0],
         means.runs[:, 0],
@@ -231,6 +256,7 @@ def difference_consistency(
         sides.names,
         group=group,
     )
+    return overlap, ""
 
 
 # ----------------------------------------------------------------------------------------

@@ -14,6 +14,7 @@ References:
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 import statsmodels.api as sm
 from scipy import stats
@@ -157,3 +158,47 @@ def test_group_overlap_describes_each_side_and_refuses_an_empty_one():
             ("ko", "wt"),
             group=(0, 0, 0, 0, 0),
         )
+
+
+def _runs() -> pd.DataFrame:
+    return pd.DataFrame(
+        {
+            "animal": list("aaaabbbbccccdddd"),
+            "run": ["1", "2", "3", "4"] * 4,
+            "group": list("kkkkkkkkwwwwwwww"),
+            "drug": ["no", "no", "yes", "yes"] * 4,
+            "age": [3.0] * 4 + [5.0] * 4 + [4.0] * 4 + [7.0] * 4,
+        }
+    )
+
+
+def _contrast(design, prefix):
+    (name,) = [n for n in design.columns if n.startswith(prefix)]
+    c = np.zeros(len(design.columns))
+    c[design.columns.index(name)] = 1.0
+    return c
+
+
+def test_the_sides_of_a_difference_follow_where_it_lies():
+    # Common practice: a group difference compares animals, a drug difference compares
+    # each animal's runs, a covariate slope has no two groups, an interaction mixes levels.
+    from grouplevel.intake.design import build_design
+    from grouplevel.questions.ask_differences import BETWEEN, WITHIN, difference_sides
+
+    runs = _runs()
+    design = build_design(runs, "1 + group + drug + age")
+    between = difference_sides(design, runs, _contrast(design, "group["))
+    assert between.level == BETWEEN and between.two_groups and between.reason == ""
+    assert between.animal_side.tolist() in ([-1, -1, 1, 1], [1, 1, -1, -1])
+    assert set(between.names) == {"group k", "group w"}
+    within = difference_sides(design, runs, _contrast(design, "drug["))
+    assert within.level == WITHIN and within.reason == ""
+    assert set(within.names) == {"drug yes", "drug no"}
+    assert (within.run_side[runs["drug"] == "yes"] > 0).all()
+    assert (within.run_side[runs["drug"] == "no"] < 0).all()
+    slope = difference_sides(design, runs, _contrast(design, "age"))
+    assert slope.level == BETWEEN and not slope.two_groups and "covariate" in slope.reason
+    interaction = build_design(runs, "1 + group * drug")
+    (name,) = [n for n in interaction.columns if ":" in n]
+    mixed = difference_sides(interaction, runs, _contrast(interaction, name))
+    assert mixed.level == WITHIN  # the interaction column varies within animals
