@@ -734,6 +734,11 @@ def answers_not_asked(
     shell = None if gm is None else edge_shell(gm.mask, questions.edge_distance_voxels)
     if sides is None or fit is None or y is None or gm is None:
         not_assessed["run_quality"] = "the runs' data were not given to the questions"
+    elif not sides.level or (sides.level == BETWEEN and not sides.two_groups):
+        not_assessed["run_quality"] = (
+            "the difference has no two sides of runs (two groups or two conditions) whose "
+            "runs could be scored among themselves: " + sides.reason
+        )
     else:
         quality = difference_run_quality(
             y,
