@@ -36,6 +36,7 @@ from typing import Any
 
 import pandas as pd
 
+from grouplevel.anatomy.sidenames import HEMISPHERE_SPELLINGS, split_hemisphere
 from grouplevel.errors import UserError
 from grouplevel.intake.textcheck import read_text_table
 
@@ -69,34 +70,6 @@ AMBIGUOUS_LABEL_COLUMN = "label"
 #: The key under which a JSON region lists its sub-regions.
 CHILDREN_KEYS = ("children", "subregions", "sub_regions")
 
-#: Hemisphere words a table may use, and the word the atlas builder reads.
-HEMISPHERE_SPELLINGS = {
-    "l": "left",
-    "lh": "left",
-    "left": "left",
-    "left hemisphere": "left",
-    "r": "right",
-    "rh": "right",
-    "right": "right",
-    "right hemisphere": "right",
-    "b": "both",
-    "both": "both",
-    "bilateral": "both",
-}
-
-# Hemisphere written in a name (common practice in published label tables). Each pattern
-# has a group "base" (the name without the side) and a group "side".
-_SIDE = r"(?P<side>left|right|lh|rh|l|r)"
-_NAME_SIDE_PATTERNS = (
-    re.compile(r"^(?P<side>left|right)[\s_\-]+(?P<base>\S.*)$", re.IGNORECASE),
-    re.compile(r"^(?P<side>lh|rh)[\s_.\-]+(?P<base>\S.*)$", re.IGNORECASE),
-    re.compile(
-        rf"^(?P<base>.*\S)\s*\(\s*{_SIDE}(?:\s+hemisphere)?\s*\)$",
-        re.IGNORECASE,
-    ),
-    re.compile(rf"^(?P<base>.*[^\s_])_{_SIDE}$", re.IGNORECASE),
-    re.compile(r"^(?P<base>.*[^\s,])[\s,]+(?P<side>left|right)(?:\s+hemisphere)?$", re.IGNORECASE),
-)
 _MAX_FOUND = 12  # column names listed in a message
 
 
@@ -239,24 +212,6 @@ def _colour(value: str) -> str:
 # --------------------------------------------------------------------------------------
 # Hemisphere in the name
 # --------------------------------------------------------------------------------------
-
-
-def split_hemisphere(name: str) -> tuple[str, str]:
-    """``"Left auditory cortex"`` → ``("auditory cortex", "left")``; no side → ``(name, "")``.
-
-    Spellings read: a leading ``Left``/``Right`` or ``lh``/``rh`` (with a space, ``_``,
-    ``-`` or ``.``), a trailing ``(L)``/``(R)``/``(left)``/``(lh)``..., ``_L``/``_R``/
-    ``_left``..., or a trailing word ``left``/``right``; case does not matter. A name
-    that would be empty without the side is kept as it is.
-    """
-    text = str(name).strip()
-    for pattern in _NAME_SIDE_PATTERNS:
-        match = pattern.match(text)
-        if match:
-            base = match["base"].strip()
-            if base:
-                return base, HEMISPHERE_SPELLINGS[match["side"].casefold()]
-    return text, ""
 
 
 def _hemispheres_from_names(table: pd.DataFrame, path: Path, notes: list[str]) -> pd.DataFrame:
