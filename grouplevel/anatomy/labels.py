@@ -104,7 +104,7 @@ def read_label_table(path: Path) -> LabelTable:
     if not path.is_file():
         raise UserError(f"{path}: atlas label table not found ([atlas] labels)")
     notes: list[str] = []
-    if path.suffix.lower() == ".json":
+    if path.suffix.lower() == ".json" or _looks_like_json(path):
         raw = _read_json_regions(path, notes)
     else:
         raw = read_text_table(path, "atlas label table", "index, name, ...")
@@ -273,6 +273,13 @@ def _unique_index_by_name(table: pd.DataFrame, names: list[str]) -> dict[str, st
 # --------------------------------------------------------------------------------------
 # JSON
 # --------------------------------------------------------------------------------------
+
+
+def _looks_like_json(path: Path) -> bool:
+    """A file whose first visible character opens a JSON object or list."""
+    with path.open("rb") as handle:
+        start = handle.read(4096).decode("utf-8", errors="ignore").lstrip("\ufeff \t\r\n")
+    return start[:1] in ("{", "[")
 
 
 def _read_json_regions(path: Path, notes: list[str]) -> pd.DataFrame:

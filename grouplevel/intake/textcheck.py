@@ -120,11 +120,13 @@ def _check_delimiter(path: Path, what: str, text: str, sep: str) -> None:
         fix = "name the file .csv, or save it with tabs between the columns"
     elif found == "\t" and sep == ",":
         fix = "name the file .tsv, or save it with commas between the columns"
-    else:
+    elif sep == ",":
         fix = (
-            f"save it with {expected} between the columns (in a spreadsheet: save as "
-            "tab-separated text, .tsv)"
+            "save it with commas between the columns (a spreadsheet set to a decimal comma "
+            "writes semicolons: export tab-separated text instead and name it .tsv)"
         )
+    else:
+        fix = "save it with tabs between the columns (in a spreadsheet: tab-separated text)"
     raise UserError(
         f"{path}: the {what} reads as a single column, but its header line holds "
         f"{counts[found]} {_SEPARATOR_NAMES[found]}: grouplevel reads {expected} between "
