@@ -338,8 +338,8 @@ def cluster_table(
         the origin (:func:`grouplevel.coordinates.to_stereotaxic`). ``peak_region`` is
         the leaf with the largest share of the peak voxel (:attr:`Atlas.label_volume`),
         :data:`UNLABELLED` when none. ``regions`` lists the leaves with the largest
-        shares of the cluster: "name (hemisphere) 45% of cluster, 12% of region", where
-        the second number is the share of the region's in-mask volume inside the
+        shares of the cluster: "name [abbreviation] (hemisphere) 45% of cluster, 12% of
+        region" (the abbreviation where the atlas gives one), where the second number is the share of the region's in-mask volume inside the
         cluster.
     """
     shape = tuple(grid.shape)
