@@ -1133,7 +1133,8 @@ def _group_contrasts(
                     (spec.name, contrast_vector(spec.weights, design.columns, spec.name))
                 )
             except UserError as exc:
-                problems.append(str(exc))
+                # the summary line, then its detail lines, each once
+                problems.append(exc.args[0] if exc.args else str(exc))
                 problems.extend(exc.problems)
         return contrasts, {}
     if not design.default_contrasts:

@@ -90,7 +90,9 @@ def read_text_table(path: Path, what: str, columns_hint: str) -> pd.DataFrame:
             f"{path}: the {what} is empty; write a header line ({columns_hint}) and one "
             "line per row"
         )
-    _check_delimiter(path, what, text, sep)
+    wrong = separator_problem(path, what, text, sep)
+    if wrong:
+        raise UserError(wrong)
     try:
         raw = pd.read_csv(io.StringIO(text), sep=sep, dtype=str, keep_default_na=False, header=None)
     except Exception as exc:  # pandas raises several types for malformed text
@@ -104,21 +106,36 @@ def read_text_table(path: Path, what: str, columns_hint: str) -> pd.DataFrame:
     return table
 
 
-def _check_delimiter(path: Path, what: str, text: str, sep: str) -> None:
-    """Refuse a table whose header line would read as one column although it holds
-    another separator (a semicolon, as spreadsheets write in locales with a decimal
-    comma)."""
-    header_line = next(s for s in _physical_lines(text) if s.strip())
+def separator_problem(
+    path: Path, what: str, text: str, sep: str, *, renamable: bool = True
+) -> str | None:
+    """The message for a table whose header line would read as one column although it
+    holds another separator (a semicolon, as spreadsheets write in locales with a
+    decimal comma); None when the header holds ``sep`` or no other separator.
+
+    Parameters
+    ----------
+    path, what
+        The file and how messages name it (``"runs table"``).
+    text
+        The file's text.
+    sep
+        The separator the file is read with.
+    renamable
+        Whether renaming the file (``.csv`` ↔ ``.tsv``) is a fix to suggest; not for files
+        whose name a standard fixes (a BIDS ``participants.tsv``).
+    """
+    header_line = next((s for s in _physical_lines(text) if s.strip()), "")
     if sep in header_line:
-        return
+        return None
     counts = {d: header_line.count(d) for d in _OTHER_SEPARATORS if d != sep}
     found = max(counts, key=lambda d: counts[d])
     if not counts[found]:
-        return
+        return None
     expected = "commas (,)" if sep == "," else "tabs"
-    if found == "," and sep == "\t":
+    if found == "," and sep == "\t" and renamable:
         fix = "name the file .csv, or save it with tabs between the columns"
-    elif found == "\t" and sep == ",":
+    elif found == "\t" and sep == "," and renamable:
         fix = "name the file .tsv, or save it with commas between the columns"
     elif sep == ",":
         fix = (
@@ -127,7 +144,7 @@ def _check_delimiter(path: Path, what: str, text: str, sep: str) -> None:
         )
     else:
         fix = "save it with tabs between the columns (in a spreadsheet: tab-separated text)"
-    raise UserError(
+    return (
         f"{path}: the {what} reads as a single column, but its header line holds "
         f"{counts[found]} {_SEPARATOR_NAMES[found]}: grouplevel reads {expected} between "
         f"the columns of a {path.suffix or 'table'} file; {fix}"
