@@ -794,6 +794,8 @@ def _atlas_summary(study: Study) -> dict | None:
         "midline_source": atlas.midline_source,
         "mirror_dice": round(float(atlas.mirror_dice), 4),
         "orientation": atlas.orientation,
+        # how the label table was read when not as written (columns, sides in names)
+        "table_reading": list(atlas.notes),
     }
 
 

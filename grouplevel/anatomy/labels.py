@@ -238,7 +238,7 @@ def _hemispheres_from_names(table: pd.DataFrame, path: Path, notes: list[str]) -
             )
     if problems:
         raise UserError(f"{path}: the atlas label table has {len(problems)} problem(s)", problems)
-    index_of_name = _unique_index_by_name(table, names)
+    index_of_name = _unique_index_by_name(table, names, changed)
     parents = [str(p).strip() for p in table["parent"]]
     table["parent"] = [index_of_name.get(p.casefold(), p) for p in parents]
     abbreviations = list(table["abbreviation"])
@@ -258,15 +258,19 @@ def _hemispheres_from_names(table: pd.DataFrame, path: Path, notes: list[str]) -
     return table
 
 
-def _unique_index_by_name(table: pd.DataFrame, names: list[str]) -> dict[str, str]:
-    """Full name (case-folded) → index, for names given to one row only."""
+def _unique_index_by_name(
+    table: pd.DataFrame, names: list[str], changed: list[int]
+) -> dict[str, str]:
+    """Full name as written (case-folded) → index, for the split names that one row only
+    carries."""
     count: dict[str, int] = {}
     for n in names:
         count[n.casefold()] = count.get(n.casefold(), 0) + 1
+    index = table["index"].tolist()
     return {
-        n.casefold(): str(i).strip()
-        for n, i in zip(names, table["index"], strict=True)
-        if n and count[n.casefold()] == 1
+        names[r].casefold(): str(index[r]).strip()
+        for r in changed
+        if count[names[r].casefold()] == 1
     }
 
 
