@@ -32,15 +32,14 @@ HEMISPHERE_SPELLINGS = {
 # Hemisphere written in a name (common practice in published label tables). Each pattern
 # has a group "base" (the name without the side) and a group "side".
 _SIDE = r"(?P<side>left|right|lh|rh|l|r)"
+# Only spaces separate a side word (a tab or line break in a name is an error that the
+# table checks report, so it must not be eaten here).
 _NAME_SIDE_PATTERNS = (
-    re.compile(r"^(?P<side>left|right)[\s_\-]+(?P<base>\S.*)$", re.IGNORECASE),
-    re.compile(r"^(?P<side>lh|rh)[\s_.\-]+(?P<base>\S.*)$", re.IGNORECASE),
-    re.compile(
-        rf"^(?P<base>.*\S)\s*\(\s*{_SIDE}(?:\s+hemisphere)?\s*\)$",
-        re.IGNORECASE,
-    ),
-    re.compile(rf"^(?P<base>.*[^\s_])_{_SIDE}$", re.IGNORECASE),
-    re.compile(r"^(?P<base>.*[^\s,])[\s,]+(?P<side>left|right)(?:\s+hemisphere)?$", re.IGNORECASE),
+    re.compile(r"^(?P<side>left|right)[ _\-]+(?P<base>\S.*)$", re.IGNORECASE),
+    re.compile(r"^(?P<side>lh|rh)[ _.\-]+(?P<base>\S.*)$", re.IGNORECASE),
+    re.compile(rf"^(?P<base>.*\S) *\( *{_SIDE}(?: +hemisphere)? *\)$", re.IGNORECASE),
+    re.compile(rf"^(?P<base>.*[^ _])_{_SIDE}$", re.IGNORECASE),
+    re.compile(r"^(?P<base>.*[^ ,])[ ,]+(?P<side>left|right)(?: +hemisphere)?$", re.IGNORECASE),
 )
 
 

@@ -297,6 +297,8 @@ def test_side_in_name_that_contradicts_the_column_is_refused(tmp_path: Path):
         ("nucleus of the lateral lemniscus", "nucleus of the lateral lemniscus", ""),
         ("leftover tissue", "leftover tissue", ""),
         ("field CA3 (pyramidal layer)", "field CA3 (pyramidal layer)", ""),
+        # a tab is an error the table checks report, never a separator of a side word
+        ("left\tpart", "left\tpart", ""),
     ],
 )
 def test_hemisphere_spellings_in_names(written: str, base: str, side: str):
