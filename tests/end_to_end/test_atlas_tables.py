@@ -11,6 +11,7 @@ from pathlib import Path
 
 import nibabel as nib
 import numpy as np
+import pandas as pd
 import pytest
 
 from grouplevel.cli import main
@@ -97,3 +98,24 @@ def test_semicolon_separated_atlas_table(tmp_path: Path, capsys, table_name: str
     assert code == 2
     assert err.startswith(f"error: {tmp_path / 's' / table_name}: the atlas label table reads ")
     assert "2 semicolon(s) (;)" in err and len(err.splitlines()) == 1
+
+
+def test_manuscript_tables_show_abbreviations_where_the_atlas_has_them():
+    from grouplevel.report.tables import table_view
+
+    frame = pd.DataFrame(
+        {
+            "cluster": [1, 1],
+            "peak": [1, 2],
+            "peak_region": ["primary auditory area", "secondary auditory area"],
+            "peak_region_abbreviation": ["A1", "A2"],
+            "peak_region_hemisphere": ["right", "right"],
+        }
+    )
+    view = table_view("clusters", frame, "sound/clusters.tsv")
+    headers = [c.header for c in view.columns]
+    assert headers[headers.index("peak region") + 1] == "abbr."
+    assert [row[headers.index("abbr.")] for row in view.rows] == ["A1", "A2"]
+    # an atlas without abbreviations: no empty column
+    empty = table_view("clusters", frame.assign(peak_region_abbreviation=""), "x")
+    assert "abbr." not in [c.header for c in empty.columns]
