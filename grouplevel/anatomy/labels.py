@@ -27,6 +27,7 @@ for instance) is refused with a message naming the file and the columns.
 
 from __future__ import annotations
 
+import functools
 import json
 import re
 from bisect import bisect_right
@@ -118,7 +119,10 @@ def read_label_table(path: Path) -> LabelTable:
 # --------------------------------------------------------------------------------------
 
 
+@functools.lru_cache(maxsize=1024)
 def _key(column: Any) -> str:
+    """A column name or JSON key as matched against the aliases (few distinct values,
+    asked for once per region of a JSON tree, hence the cache)."""
     return re.sub(r"[\s\-]+", "_", str(column).strip().lower())
 
 
@@ -242,13 +246,15 @@ def _hemispheres_from_names(table: pd.DataFrame, path: Path, notes: list[str]) -
     parents = [str(p).strip() for p in table["parent"]]
     table["parent"] = [index_of_name.get(p.casefold(), p) for p in parents]
     abbreviations = list(table["abbreviation"])
+    new_names = list(table["name"])
     for r in changed:
         base, side = split[r]
-        table.loc[r, "name"] = base
+        new_names[r] = base
         hemisphere[r] = side
         short, short_side = split_hemisphere(str(abbreviations[r]))
         if short_side == side:
             abbreviations[r] = short
+    table["name"] = new_names
     table["hemisphere"] = hemisphere
     table["abbreviation"] = abbreviations
     example = f"{names[changed[0]]!r} → {split[changed[0]][0]!r}, {split[changed[0]][1]}"
