@@ -339,8 +339,8 @@ def cluster_table(
         the leaf with the largest share of the peak voxel (:attr:`Atlas.label_volume`),
         :data:`UNLABELLED` when none. ``regions`` lists the leaves with the largest
         shares of the cluster: "name [abbreviation] (hemisphere) 45% of cluster, 12% of
-        region" (the abbreviation where the atlas gives one), where the second number is the share of the region's in-mask volume inside the
-        cluster.
+        region" (the abbreviation where the atlas gives one), where the second number is
+        the share of the region's in-mask volume inside the cluster.
     """
     shape = tuple(grid.shape)
     labels, mask, z3d, t3d, effect3d = _check_cluster_maps(
