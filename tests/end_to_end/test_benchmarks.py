@@ -43,6 +43,10 @@ RATIO_LINES = {
         rf"per-voxel speed ratio, same model \(no s²\): {NUMBER}x",
         rf"per-voxel speed ratio, full fit \(with s²\): {NUMBER}x",
     ],
+    "bench_run": [
+        rf"end-to-end speed ratio \(statsmodels loop / whole run\): {NUMBER}x",
+        rf"whole run / fit alone: {NUMBER}x",
+    ],
     "bench_scale": [
         rf"log-log slope of fit time against voxels × maps: (-?{NUMBER[1:-1]})",
         rf"log-log slope of load time against voxels × maps: (-?{NUMBER[1:-1]})",
