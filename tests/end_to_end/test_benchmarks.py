@@ -35,6 +35,10 @@ RATIO_LINES = {
         rf"peak memory, +4 permutations: +{NUMBER} MiB",
         rf"peak memory, +8 permutations: +{NUMBER} MiB",
     ],
+    "bench_leave_one_out": [
+        rf"time ratio refits / one step: {NUMBER}x",
+        rf"time ratio one step / one full fit: {NUMBER}x",
+    ],
     "bench_mixed": [
         rf"per-voxel speed ratio \(statsmodels / ours\): {NUMBER}x",
         rf"same ratio in CPU time \(process_time; robust to a busy machine\): {NUMBER}x",
