@@ -57,6 +57,7 @@ RATIO_LINES = {
     "bench_scale": [
         rf"log-log slope of fit time against voxels × maps: (-?{NUMBER[1:-1]})",
         rf"log-log slope of load time against voxels × maps: (-?{NUMBER[1:-1]})",
+        rf"whole-run peak RSS: {NUMBER} GiB",
     ],
     "bench_tfce": [
         rf"ratio nilearn / exact \(fastest\): +{NUMBER}",
