@@ -75,7 +75,8 @@ class LeaveOneOut:
         full REML fit's GLS estimate).
     var_animal, var_run : ndarray, shape (m, V), or None
         The variance components each left-out estimate used: the one-step update from
-        the full-data estimates (None when the components were held fixed).
+        the full-data estimates (None when the components were held fixed or not asked
+        for: ``return_variances``).
     """
 
     effect: np.ndarray
@@ -99,6 +100,7 @@ def leave_one_animal_out(
     *,
     update_variances: bool = True,
     estimate_run_variance: bool = True,
+    return_variances: bool = False,
     chunk: int = DEFAULT_CHUNK,
 ) -> LeaveOneOut:
     """Downdate the GLS contrast estimate for every animal left out.
@@ -123,6 +125,9 @@ def leave_one_animal_out(
         downdates at fixed components).
     estimate_run_variance : bool
         Whether σ² was estimated (else it is held fixed and only τ² is updated).
+    return_variances : bool
+        Keep each left-out fit's variance components (two more (m, V) arrays) in the
+        result; off by default to save memory.
     chunk : int
         Voxels processed together.
 
@@ -150,7 +155,7 @@ def leave_one_animal_out(
     GXX = (G[:, :, None, None] * X[:, None, :, None] * X[:, None, None, :]).reshape(n, -1)
     effect = np.full((m + 1, n_vox), np.nan)
     se = np.full((m + 1, n_vox), np.nan)
-    steps = np.full((2, m, n_vox), np.nan) if update_variances else None
+    steps = np.full((2, m, n_vox), np.nan) if update_variances and return_variances else None
     for lo in range(0, n_vox, chunk):
         sl = slice(lo, min(n_vox, lo + chunk))
         yc = np.asarray(y[:, sl], dtype=float).T  # (c, n)

@@ -151,6 +151,7 @@ def test_one_step_equals_the_textbook_fisher_step(estimate_run_variance):
         fit.var_animal,
         fit.var_run,
         estimate_run_variance=estimate_run_variance,
+        return_variances=True,
     )
     for v in range(12):
         for a in range(6):
