@@ -31,7 +31,7 @@ from scipy import stats
 
 from grouplevel import __version__
 from grouplevel.anatomy.tables import RegionData, region_data, region_tables
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
     AnimalLevelData,
@@ -68,6 +68,7 @@ from grouplevel.outputs.folder import (
     child_path,
     study_inputs,
 )
+from grouplevel.outputs.animal_maps import animal_maps_summary, write_animal_maps
 from grouplevel.outputs.summary import write_summary
 from grouplevel.progress import Progress
 from grouplevel.questions.ask import (
@@ -79,7 +80,7 @@ from grouplevel.questions.ask import (
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.results.compute import Backend, fit_design, open_backend
 from grouplevel.results.correction import permutation_arguments
-from grouplevel.results.maps import MAP_DESCRIPTIONS, Corrected, GroupMap
+from grouplevel.results.maps import MAP_DESCRIPTIONS, AnimalEffects, Corrected, GroupMap
 
 # Variance components written on top of var_animal and var_run (general model only):
 # component-name pattern -> (file stem, header description). ``{0}`` is the slope or
@@ -481,11 +482,63 @@ def _fit_first_level(
     results = []
     for cname, c in fl.contrasts:
         gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
+        gm = replace(gm, animal_effects=_animal_effects(fitted, c))
         if regions is not None:
             gm = replace(gm, tables=region_tables(gm, regions, fl.design, c, study.settings))
         results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings
+
+
+def _run_label(session: Any, run: Any) -> str:
+    """A run as the runs table names it: ``"session 1, run 2"`` (``"run 2"`` without one)."""
+    session = "" if session is None or pd.isna(session) else str(session).strip()
+    return f"session {session}, run {run}" if session else f"run {run}"
+
+
+def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None:
+    """Each animal's own estimate of what ``c`` tests at every voxel (the data the
+    permutation test rearranges), or None for a contrast without one (a within-animal
+    column without a random slope, or a mix of levels)."""
+    design, random = fitted.fl.design, fitted.fl.random
+    kind, slope = contrast_kind(design, random, c)
+    if kind not in (CONTRAST_ANIMAL, CONTRAST_SLOPE, CONTRAST_SLOPES):
+        return None
+    try:
+        data, _, taking_part = fitted.reduced_for(c)
+    except ArgumentError:  # e.g. run-level columns: no per-animal reduction exists
+        return None
+    n_voxels = fitted.y.shape[1]
+    effect = np.full((design.n_animals, n_voxels), np.nan)
+    se = np.full_like(effect, np.nan)
+    precision = data.precision.T
+    with np.errstate(divide="ignore"):
+        effect[taking_part] = np.where(precision > 0, data.mean.T, np.nan)
+        se[taking_part] = np.where(precision > 0, 1.0 / np.sqrt(precision), np.nan)
+    indicator = np.zeros((design.n_animals, len(design.animal)))
+    indicator[design.animal, np.arange(len(design.animal))] = 1.0
+    runs = fitted.fl.runs
+    labels = tuple(
+        tuple(
+            _run_label(row.get("session"), row.get("run"))
+            for _, row in runs[runs["animal"].astype(str) == str(animal)].iterrows()
+        )
+        for animal in design.animal_ids
+    )
+    if kind == CONTRAST_ANIMAL:
+        what = "each animal's precision-weighted mean of its runs (σ² of the fit held fixed)"
+    elif kind == CONTRAST_SLOPE:
+        what = f"each animal's own {design.columns[random.slope_columns[slope]]} slope (GLS)"
+    else:
+        what = "each animal's own combination of its slopes (GLS)"
+    return AnimalEffects(
+        animals=tuple(str(a) for a in design.animal_ids),
+        effect=effect,
+        se=se,
+        runs=(indicator @ fitted.present).astype(np.int64),
+        run_labels=labels,
+        what=what,
+    )
 
 
 def _fitted_voxels(
@@ -836,6 +889,8 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
         "inference": _inference_summary(gm, study.settings.inference.alpha),
     }
+    if gm.animal_effects is not None:
+        entry["animal_maps"] = animal_maps_summary(gm.animal_effects)
     if gm.answers is not None:
         entry["questions"] = gm.answers.summary(study.settings.inference.alpha)
     if gm.tables is not None:
@@ -920,6 +975,8 @@ def _write_group_map(folder: Path, gm: GroupMap) -> None:
             dtype=dtype,
         )
     _write_inference(folder, gm, label)
+    if gm.animal_effects is not None:
+        write_animal_maps(folder, gm.animal_effects, gm.mask, grid, label)
     if gm.answers is not None:
         _write_answers(folder, gm, label)
     if gm.tables is not None:
