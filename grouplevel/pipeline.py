@@ -62,13 +62,13 @@ from grouplevel.model import (
     test_contrast,
 )
 from grouplevel.model.contrasts import slope_df
+from grouplevel.outputs.animal_maps import animal_maps_summary, write_animal_maps
 from grouplevel.outputs.folder import (
     TOOL_NAME,
     check_output_folder,
     child_path,
     study_inputs,
 )
-from grouplevel.outputs.animal_maps import animal_maps_summary, write_animal_maps
 from grouplevel.outputs.summary import write_summary
 from grouplevel.progress import Progress
 from grouplevel.questions.ask import (

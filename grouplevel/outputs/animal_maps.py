@@ -64,7 +64,9 @@ def animal_maps_summary(effects: AnimalEffects) -> dict:
     """The ``summary.json`` entry of the per-animal maps (``results.<name>.animal_maps``)."""
     return {
         "animals": list(effects.animals),
-        "run_labels": {a: list(r) for a, r in zip(effects.animals, effects.run_labels, strict=True)},
+        "run_labels": {
+            a: list(r) for a, r in zip(effects.animals, effects.run_labels, strict=True)
+        },
         "what": effects.what,
         "files": dict(ANIMAL_MAP_FILES),
     }
@@ -103,7 +105,9 @@ def read_animal_maps(folder: Path, entry: dict | None) -> AnimalMapFiles | None:
         return None
     return AnimalMapFiles(
         animals=animals,
-        run_labels={str(k): [str(v) for v in vs] for k, vs in (entry.get("run_labels") or {}).items()},
+        run_labels={
+            str(k): [str(v) for v in vs] for k, vs in (entry.get("run_labels") or {}).items()
+        },
         what=str(entry.get("what") or ""),
         **images,
     )

@@ -163,7 +163,9 @@ def _template_grey(summary: dict, reference) -> tuple[np.ndarray, str]:
     return grey, "the analysis mask (the template was not found or is on another grid)"
 
 
-def _atlas_labels(summary: dict, reference, mask: np.ndarray) -> tuple[np.ndarray | None, list, str]:
+def _atlas_labels(
+    summary: dict, reference, mask: np.ndarray
+) -> tuple[np.ndarray | None, list, str]:
     """Leaf label positions on the canonical grid, the (name, hemisphere) of each
     position (0: unlabelled), and a note when the atlas cannot be shown."""
     from grouplevel.anatomy.atlas import read_atlas  # the label step's own reader
@@ -206,7 +208,9 @@ def _atlas_labels(summary: dict, reference, mask: np.ndarray) -> tuple[np.ndarra
 def _changed_inputs(summary: dict, paths: list[str]) -> list[str]:
     """Which of ``paths`` no longer match the SHA-256 recorded in summary.json."""
     recorded = {
-        str(e.get("path")): e.get("sha256") for e in summary.get("inputs") or [] if isinstance(e, dict)
+        str(e.get("path")): e.get("sha256")
+        for e in summary.get("inputs") or []
+        if isinstance(e, dict)
     }
     changed = []
     for p in paths:
@@ -399,9 +403,10 @@ def _fit_budget(built, grey, labels, affine) -> tuple[dict | None, list[str]]:
             size = len(json.dumps(payload))
             if size <= BROWSER_BUDGET_BYTES:
                 if step > 1:
+                    every = _ORDINAL.get(step, f"{step}th")
                     notes.append(
                         f"The grid is too large to embed in full: the browser shows every "
-                        f"{_ORDINAL.get(step, f'{step}th')} voxel along each axis (the maps in the folder hold all)."
+                        f"{every} voxel along each axis (the maps in the folder hold all)."
                     )
                 if not with_animals:
                     notes.append(
