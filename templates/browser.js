@@ -61,6 +61,17 @@
     return p < 1e-3 ? p.toExponential(2) : p.toFixed(4);
   }
 
+  /* Two-sided p of a normal deviate, erfc(|z|/sqrt 2), by the Chebyshev fit of erfc
+     with fractional error below 1.2e-7 everywhere (Press, Teukolsky, Vetterling &
+     Flannery 1992, Numerical Recipes in C, 2nd ed., section 6.2, erfcc). The z map has
+     the same two-sided p as the t map (grouplevel writes z so), so p needs no array. */
+  function twoSidedP(z) {
+    var x = Math.abs(z) / Math.SQRT2, t = 1 / (1 + 0.5 * x);
+    return t * Math.exp(-x * x - 1.26551223 + t * (1.00002368 + t * (0.37409196 +
+      t * (0.09678418 + t * (-0.18628806 + t * (0.27886807 + t * (-1.13520398 +
+      t * (1.48851587 + t * (-0.82215223 + t * 0.17087277)))))))));
+  }
+
   function signed(v) { return (v >= 0 ? "+" : "-") + Math.abs(v).toFixed(2); }
 
   var shape = data.shape, nx = shape[0], ny = shape[1], nz = shape[2];
@@ -95,7 +106,7 @@
       var res = { spec: r, animals: null };
       results[n] = res;
       jobs.push(inflate(r.mask).then(function (b) { res.mask = new Uint8Array(b); }));
-      ["z", "effect", "p"].forEach(function (key) {
+      ["z", "effect"].forEach(function (key) {
         jobs.push(inflate(r[key]).then(function (b) { res[key] = new Float32Array(b); }));
       });
       jobs.push(inflate(r.survive).then(function (b) { res.survive = new Uint8Array(b); }));
@@ -282,7 +293,7 @@
     }
     ui.z.textContent = fmt(res.z[n]) + (res.survive[n] ? " (survives " + res.spec.threshold + ")" : "");
     ui.effect.textContent = fmt(res.effect[n]);
-    ui.p.textContent = fmtP(res.p[n]) + " (uncorrected)";
+    ui.p.textContent = fmtP(twoSidedP(res.z[n])) + " (two-sided, uncorrected)";
   }
 
   function animalRows(res, n) {
@@ -307,14 +318,11 @@
     while (body.firstChild) { body.removeChild(body.firstChild); }
     var ctx = ui.forest.getContext("2d");
     ctx.clearRect(0, 0, ui.forest.width, ui.forest.height);
-    if (!res.animals) {
-      ui.animalsNote.textContent = "This result has no per-animal estimates in its folder.";
-      ui.forest.hidden = true;
-      return;
-    }
-    if (n < 0) {
-      ui.animalsNote.textContent = "The selected voxel is outside the analysis mask.";
-      ui.forest.hidden = true;
+    var none = !res.animals ? "This result has no per-animal estimates in its folder." :
+      n < 0 ? "The selected voxel is outside the analysis mask." : "";
+    ui.forest.hidden = ui.animalsTable.hidden = Boolean(none);
+    if (none) {
+      ui.animalsNote.textContent = none;
       return;
     }
     var s = stereotaxic(c);
@@ -338,7 +346,6 @@
         });
       body.appendChild(tr);
     });
-    ui.forest.hidden = false;
     drawForest(rows, res.effect[n]);
   }
 

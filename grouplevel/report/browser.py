@@ -11,7 +11,8 @@ Everything it needs is embedded in the page as one JSON block of compressed arra
 ``DecompressionStream``):
 
 - the template as 8-bit grey levels and the atlas's leaf labels on the whole grid;
-- per result, over its in-mask voxels: z, effect and p (float32), the voxels that
+- per result, over its in-mask voxels: z and effect (float32; the browser computes the
+  two-sided p from z, which grouplevel writes with the same p as t), the voxels that
   survive the report's correction (one byte each), and each animal's estimate and its
   standard error quantised to 16 bits per animal (largest magnitude → 32000) with the
   number of its runs with data (one byte);
@@ -236,7 +237,7 @@ class _Layer:
         mask_img = nib.load(str(folder / "mask.nii.gz"))
         self.mask = np.asarray(_canonical(mask_img)[0]) > 0
         self.maps = {}
-        for key in ("z", "effect", "p"):
+        for key in ("z", "effect"):
             img = _load(folder / f"{key}.nii.gz")
             self.maps[key] = (
                 np.nan_to_num(np.asarray(_canonical(img)[0], dtype=float))
@@ -271,7 +272,6 @@ class _Layer:
             "voxels": int(mask.sum()),
             "z": _pack(z, "<f4"),
             "effect": _pack(self.maps["effect"][sl][mask], "<f4"),
-            "p": _pack(self.maps["p"][sl][mask], "<f4"),
             "survive": _pack(self.survive[sl][mask] & np.isfinite(z), "u1"),
             "zmax": float(np.max(np.abs(z))) if z.size else 1.0,
             "animals": None,
