@@ -496,6 +496,18 @@ def _run_label(session: Any, run: Any) -> str:
     return f"session {session}, run {run}" if session else f"run {run}"
 
 
+def _run_labels(runs: pd.DataFrame, animal_ids) -> tuple[tuple[str, ...], ...]:
+    """The labels of each animal's included runs, in the order of ``animal_ids``."""
+    by_animal = runs["animal"].astype(str)
+    return tuple(
+        tuple(
+            _run_label(row.get("session"), row.get("run"))
+            for _, row in runs[by_animal == str(animal)].iterrows()
+        )
+        for animal in animal_ids
+    )
+
+
 def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None:
     """Each animal's own estimate of what ``c`` tests at every voxel (the data the
     permutation test rearranges), or None for a contrast without one (a within-animal
@@ -517,26 +529,21 @@ def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None
         se[taking_part] = np.where(precision > 0, 1.0 / np.sqrt(precision), np.nan)
     indicator = np.zeros((design.n_animals, len(design.animal)))
     indicator[design.animal, np.arange(len(design.animal))] = 1.0
-    runs = fitted.fl.runs
-    labels = tuple(
-        tuple(
-            _run_label(row.get("session"), row.get("run"))
-            for _, row in runs[runs["animal"].astype(str) == str(animal)].iterrows()
-        )
-        for animal in design.animal_ids
-    )
-    if kind == CONTRAST_ANIMAL:
+    if kind == CONTRAST_ANIMAL and not random.extended and design.animal_level.all():
         what = "each animal's precision-weighted mean of its runs (σ² of the fit held fixed)"
+    elif kind == CONTRAST_ANIMAL:
+        what = "each animal's own intercept, estimated by GLS from its runs"
     elif kind == CONTRAST_SLOPE:
         what = f"each animal's own {design.columns[random.slope_columns[slope]]} slope (GLS)"
     else:
         what = "each animal's own combination of its slopes (GLS)"
+    # float32 and int16, as written: m × voxels of each is held until the write step
     return AnimalEffects(
         animals=tuple(str(a) for a in design.animal_ids),
-        effect=effect,
-        se=se,
-        runs=(indicator @ fitted.present).astype(np.int64),
-        run_labels=labels,
+        effect=effect.astype(np.float32),
+        se=se.astype(np.float32),
+        runs=(indicator @ fitted.present).astype(np.int16),
+        run_labels=_run_labels(fitted.fl.runs, design.animal_ids),
         what=what,
     )
 

@@ -83,11 +83,11 @@ class AnimalEffects:
     animals
         The m animal identifiers (rows of the arrays).
     effect
-        ``(m, n_voxels)`` each animal's estimate (NaN where it has no data).
+        ``(m, n_voxels)`` float32: each animal's estimate (NaN where it has no data).
     se
-        ``(m, n_voxels)`` its standard error (NaN where unknown or without data).
+        ``(m, n_voxels)`` float32: its standard error (NaN where unknown or without data).
     runs
-        ``(m, n_voxels)`` number of the animal's runs with data at the voxel.
+        ``(m, n_voxels)`` int16: number of the animal's runs with data at the voxel.
     run_labels
         For each animal, the labels of its included runs (``"session 1, run 2"``).
     what
