@@ -153,7 +153,7 @@ def test_sections_and_heading_order(rendered):
     assert titles[0] == "In short"
     h3 = [t for level, t in page.headings if level == 3]
     assert "sound" in h3 and "paw" in h3
-    assert page.scripts == 0
+    assert page.scripts == 2  # the slice browser: its data block and its code
 
 
 def test_answer_paragraph_states_the_numbers(rendered, output):
