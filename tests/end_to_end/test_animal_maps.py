@@ -93,9 +93,11 @@ def test_group_mean_estimates_are_inverse_variance_means_and_round_trip(tmp_path
         [f"a{a}" for a in animal],
         variances=s2.reshape(10, *SHAPE),
         shape=SHAPE,
+        toml_extra="min_coverage = 0.5\n",  # keep the voxel where one run has no data
     )
     study = load_study(toml, permutations=0)
     (gm,) = fit_study(study)[0]
+    assert gm.mask.all()  # voxel v of the arrays is voxel v of the maps
     effects = gm.animal_effects
     assert "precision-weighted mean" in effects.what
     for v in range(4):
