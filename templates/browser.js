@@ -18,7 +18,7 @@
   };
   var AXIS_WORD = ["ML", "AP", "DV"];
   var OUTLINE = "rgba(245, 240, 215, 0.85)";
-  var CURSOR = "#ffd60a";
+  var CURSOR = "#ffffff";  /* white over a black rim: visible on grey and on both hues */
   var ACCENT = "#3a6ea5";
   var MAX_WIDTH = 720;
   var MAX_HEIGHT = 520;
@@ -237,8 +237,11 @@
     var P = PLANES[state.plane], c = state.cursor;
     if (c[P.fixed] !== state.slice[P.fixed]) { return; }
     var x = (c[P.h] + 0.5) * px, y = (nv - 1 - c[P.v] + 0.5) * py;
-    ctx.strokeStyle = CURSOR;
+    ctx.lineWidth = 3;
+    ctx.strokeStyle = "#000000";
+    ctx.strokeRect(x - px / 2 - 2, y - py / 2 - 2, px + 4, py + 4);
     ctx.lineWidth = 1.5;
+    ctx.strokeStyle = CURSOR;
     ctx.strokeRect(x - px / 2 - 2, y - py / 2 - 2, px + 4, py + 4);
   }
 
@@ -359,7 +362,7 @@
   }
 
   function drawForest(rows, group) {
-    var canvas = ui.forest, rowH = 18, left = 70, right = 12, top = 8, bottom = 28;
+    var canvas = ui.forest, rowH = 18, left = 70, right = 12, top = 8, bottom = 34;
     canvas.height = top + bottom + rowH * rows.length;
     var ctx = canvas.getContext("2d"), w = canvas.width;
     ctx.clearRect(0, 0, w, canvas.height);
@@ -380,8 +383,10 @@
     ctx.textAlign = "center"; ctx.textBaseline = "top";
     niceTicks(lo, hi).forEach(function (t) {
       ctx.beginPath(); ctx.moveTo(X(t), bottomY); ctx.lineTo(X(t), bottomY + 4); ctx.stroke();
-      ctx.fillText(fmt(t).replace(/\.?0+$/, ""), X(t), bottomY + 6);
+      ctx.fillText(String(Number(t.toPrecision(6))), X(t), bottomY + 6);
     });
+    ctx.textAlign = "right";
+    ctx.fillText("estimate (map units)", w - right, bottomY + 18);
     ctx.setLineDash([3, 3]);
     ctx.beginPath(); ctx.moveTo(X(0), top); ctx.lineTo(X(0), bottomY); ctx.stroke();
     ctx.setLineDash([]);

@@ -232,7 +232,8 @@ def _colour_table() -> list[list[int]]:
 class _Layer:
     """One result's arrays in canonical order on the full grid."""
 
-    def __init__(self, folder: Path, name: str, heading: str, stem: str, words: str, entry):
+    def __init__(self, folder: Path, spec: dict, entry: dict, alpha: float):
+        name, heading, stem, words = spec["name"], spec["heading"], spec["stem"], spec["words"]
         self.name, self.heading = name, heading
         mask_img = nib.load(str(folder / "mask.nii.gz"))
         self.mask = np.asarray(_canonical(mask_img)[0]) > 0
@@ -249,16 +250,12 @@ class _Layer:
             stem, survivors = "q", _load(folder / "q.nii.gz")
             words = f"{words} (its maps are missing; FDR q shown)"
         self.survive = (
-            np.asarray(_canonical(survivors)[0], dtype=float) <= self.alpha(entry)
+            np.asarray(_canonical(survivors)[0], dtype=float) <= alpha
             if survivors is not None
             else np.zeros(self.mask.shape, dtype=bool)
         )
         self.words = words
         self.animals = read_animal_maps(folder, entry.get("animal_maps"))
-
-    @staticmethod
-    def alpha(entry) -> float:
-        return float((entry.get("_alpha")) or 0.05)
 
     def pack(self, step: int, with_animals: bool) -> dict:
         sl = (slice(None, None, step),) * 3
@@ -336,10 +333,8 @@ def browser_context(out_dir: Path, summary: dict, layers: list[dict]) -> dict | 
         folder = out_dir / spec["name"]
         if not (folder / "mask.nii.gz").is_file() or not (folder / "z.nii.gz").is_file():
             continue
-        entry = dict((summary.get("results") or {}).get(spec["name"]) or {}, _alpha=alpha)
-        built.append(
-            _Layer(folder, spec["name"], spec["heading"], spec["stem"], spec["words"], entry)
-        )
+        entry = (summary.get("results") or {}).get(spec["name"]) or {}
+        built.append(_Layer(folder, spec, entry, alpha))
     if not built:
         return None
     reference = nib.load(str(out_dir / built[0].name / "mask.nii.gz"))
