@@ -321,7 +321,9 @@
     while (body.firstChild) { body.removeChild(body.firstChild); }
     var ctx = ui.forest.getContext("2d");
     ctx.clearRect(0, 0, ui.forest.width, ui.forest.height);
-    var none = !res.animals ? "This result has no per-animal estimates in its folder." :
+    var none = res.spec.animals_left_out ? "The per-animal estimates of this result are " +
+      "too large for the page; they are in its folder's animal_*.nii.gz maps." :
+      !res.animals ? "This result has no per-animal estimates in its folder." :
       n < 0 ? "The selected voxel is outside the analysis mask." : "";
     ui.forest.hidden = ui.animalsTable.hidden = Boolean(none);
     if (none) {

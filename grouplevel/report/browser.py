@@ -241,7 +241,7 @@ class _Layer:
         for key in ("z", "effect"):
             img = _load(folder / f"{key}.nii.gz")
             self.maps[key] = (
-                np.nan_to_num(np.asarray(_canonical(img)[0], dtype=float))
+                np.nan_to_num(np.asarray(_canonical(img)[0], dtype=np.float32))
                 if img is not None
                 else np.zeros(self.mask.shape)
             )
@@ -273,8 +273,15 @@ class _Layer:
             "zmax": float(np.max(np.abs(z))) if z.size else 1.0,
             "animals": None,
         }
-        if with_animals and self.animals is not None:
-            out["animals"] = self._pack_animals(sl, mask)
+        out["animals_left_out"] = False
+        if self.animals is not None:
+            # int16 effect and SE and a one-byte count per animal and voxel, before
+            # compression: skip reading the 4-D maps when that alone exceeds the budget
+            raw = 5 * len(self.animals.animals) * out["voxels"]
+            if with_animals and raw <= BROWSER_BUDGET_BYTES:
+                out["animals"] = self._pack_animals(sl, mask)
+            else:
+                out["animals_left_out"] = True
         return out
 
     def _pack_animals(self, sl, mask) -> dict:
@@ -403,7 +410,7 @@ def _fit_budget(built, grey, labels, affine) -> tuple[dict | None, list[str]]:
                         f"The grid is too large to embed in full: the browser shows every "
                         f"{every} voxel along each axis (the maps in the folder hold all)."
                     )
-                if not with_animals:
+                if any(r.get("animals_left_out") for r in payload["results"]):
                     notes.append(
                         "The per-animal estimates are left out: they would not fit in the "
                         "page (they are in each result folder's animal_*.nii.gz maps)."

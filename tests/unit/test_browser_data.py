@@ -86,7 +86,11 @@ class _FakeLayer:
 
     def pack(self, step: int, with_animals: bool) -> dict:
         n = self.voxels // step**3
-        return {"z": "x" * n, "animals": "y" * (self.animal_bytes // step**3 * with_animals)}
+        return {
+            "z": "x" * n,
+            "animals": "y" * (self.animal_bytes // step**3 * with_animals),
+            "animals_left_out": not with_animals,
+        }
 
 
 def test_budget_thins_the_grid_then_drops_animals_then_refuses(monkeypatch):
