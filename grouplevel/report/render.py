@@ -9,7 +9,9 @@ or with a new title.
 The page is organised around the questions a reader asks of each contrast (is there a
 response, where, is it bilateral, specific, consistent?), then the study, maps,
 tables, figures, cautions and methods. Figures are base64 PNGs and the CSS is inline;
-the page loads nothing from the network (a Content-Security-Policy forbids it).
+the slice browser (:mod:`grouplevel.report.browser`) adds its own inline data and
+script; the page loads nothing from the network (a Content-Security-Policy built from
+the hashes of the page's own inline blocks forbids it).
 Autoescaping is on: every string from the user's files (titles, animal IDs, region
 names) is escaped.
 """
