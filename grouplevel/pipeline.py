@@ -62,7 +62,11 @@ from grouplevel.model import (
     test_contrast,
 )
 from grouplevel.model.contrasts import slope_df
-from grouplevel.outputs.animal_maps import animal_maps_summary, write_animal_maps
+from grouplevel.outputs.animal_maps import (
+    RUN_VALUES_MAX,
+    animal_maps_summary,
+    write_animal_maps,
+)
 from grouplevel.outputs.folder import (
     TOOL_NAME,
     check_output_folder,
@@ -545,7 +549,18 @@ def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None
         runs=(indicator @ fitted.present).astype(np.int16),
         run_labels=_run_labels(fitted.fl.runs, design.animal_ids),
         what=what,
+        run_values=_run_values(fitted, design.animal_ids),
     )
+
+
+def _run_values(fitted: _FittedLevel, animal_ids) -> np.ndarray | None:
+    """The runs' values behind the per-animal estimates, grouped by animal (the order
+    of :func:`_run_labels`), or None above :data:`RUN_VALUES_MAX` values."""
+    if fitted.y.size > RUN_VALUES_MAX:
+        return None
+    by_animal = fitted.fl.runs["animal"].astype(str).to_numpy()
+    order = np.concatenate([np.flatnonzero(by_animal == str(a)) for a in animal_ids])
+    return np.where(fitted.present, fitted.y, np.nan)[order].astype(np.float32)
 
 
 def _fitted_voxels(

@@ -116,6 +116,11 @@
         jobs.push(inflate(r.animals.effect).then(function (b) { an.effect = new Int16Array(b); }));
         jobs.push(inflate(r.animals.se).then(function (b) { an.se = new Int16Array(b); }));
         jobs.push(inflate(r.animals.runs).then(function (b) { an.runs = new Uint8Array(b); }));
+        an.firstRun = [];
+        r.animals.run_labels.reduce(function (n, labels) { an.firstRun.push(n); return n + labels.length; }, 0);
+        if (r.animals.run_values) {
+          jobs.push(inflate(r.animals.run_values).then(function (b) { an.values = new Int16Array(b); }));
+        }
       }
     });
     return Promise.all(jobs).then(function () {
@@ -303,12 +308,20 @@
     var an = res.animals, V = res.spec.voxels, rows = [];
     an.spec.ids.forEach(function (id, a) {
       var qe = an.effect[a * V + n], qs = an.se[a * V + n];
+      var labels = an.spec.run_labels[a] || [], values = null;
+      if (an.values) {
+        values = labels.map(function (_, k) {
+          var r = an.firstRun[a] + k, q = an.values[r * V + n];
+          return q === MISSING ? NaN : q * an.spec.run_scale[r];
+        });
+      }
       rows.push({
         id: id,
         effect: qe === MISSING ? NaN : qe * an.spec.effect_scale[a],
         se: qs === MISSING ? NaN : qs * an.spec.se_scale[a],
         runs: an.runs[a * V + n],
-        labels: an.spec.run_labels[a] || []
+        labels: labels,
+        values: values
       });
     });
     return rows;
@@ -333,7 +346,10 @@
     var s = stereotaxic(c);
     ui.animalsNote.textContent = "At AP " + signed(s[0]) + ", ML " + signed(s[1]) + ", DV " +
       signed(s[2]) + " mm (" + regionText(g) + "): " + res.animals.spec.what +
-      ", ± 1.96 SE; the vertical line is the group effect there (" + fmt(res.effect[n]) + ").";
+      ", ± 1.96 SE; the vertical line is the group effect there (" + fmt(res.effect[n]) + ")." +
+      (res.animals.values ? " Rings: each run's own value." :
+        " Each run's own value is not kept for a study this size (the folder keeps it only " +
+        "for small studies): the table lists each animal's runs and how many have data here.");
     var rows = animalRows(res, n);
     rows.forEach(function (row) {
       var tr = document.createElement("tr");
@@ -342,7 +358,10 @@
       th.textContent = row.id;
       tr.appendChild(th);
       var total = row.labels.length;
-      [fmt(row.effect), fmt(row.se), row.runs + " of " + total, row.labels.join("; ")]
+      var runs = row.labels.map(function (label, k) {
+        return row.values ? label + ": " + (Number.isFinite(row.values[k]) ? fmt(row.values[k]) : "no data") : label;
+      });
+      [fmt(row.effect), fmt(row.se), row.runs + " of " + total, runs.join("; ")]
         .forEach(function (text, col) {
           var td = document.createElement("td");
           td.textContent = text;
@@ -374,6 +393,9 @@
         var half = Number.isFinite(r.se) ? 1.96 * r.se : 0;
         lo = Math.min(lo, r.effect - half); hi = Math.max(hi, r.effect + half);
       }
+      (r.values || []).forEach(function (v) {
+        if (Number.isFinite(v)) { lo = Math.min(lo, v); hi = Math.max(hi, v); }
+      });
     });
     if (hi === lo) { hi = lo + 1; }
     var pad = 0.05 * (hi - lo);
@@ -410,6 +432,12 @@
         ctx.moveTo(X(r.effect - 1.96 * r.se), y); ctx.lineTo(X(r.effect + 1.96 * r.se), y);
         ctx.stroke();
       }
+      ctx.strokeStyle = "#7a8591";
+      ctx.lineWidth = 1;
+      (r.values || []).forEach(function (v) {
+        if (Number.isFinite(v)) { ctx.beginPath(); ctx.arc(X(v), y, 2.5, 0, 2 * Math.PI); ctx.stroke(); }
+      });
+      ctx.lineWidth = 1.5;
       ctx.fillStyle = "#1f2328";
       ctx.beginPath(); ctx.arc(X(r.effect), y, 3.5, 0, 2 * Math.PI); ctx.fill();
     });

@@ -18,8 +18,9 @@ Everything it needs is embedded in the page as one JSON block of compressed arra
   number of its runs with data (one byte);
 - the diverging colour table of the static figures (``figures.STAT_CMAP``).
 
-Runs' own values are not in the output folder (they are the study's inputs), so the
-browser lists each animal's runs and how many have data at the voxel, not their values.
+Each run's own value is shown when the result folder keeps it (``run_effect.nii.gz``,
+small studies only) and it fits :data:`RUN_VALUES_EMBED`; otherwise the browser lists
+each animal's runs and how many have data at the voxel, and says so.
 
 When the packed data exceed :data:`BROWSER_BUDGET_BYTES`, the grid is shown at every
 2nd (3rd, 4th) voxel along each axis, then without the per-animal estimates, and the
@@ -55,6 +56,9 @@ BROWSER_BUDGET_BYTES = 24_000_000
 #: Thinning steps tried, in order (every k-th voxel along each axis).
 THINNING_STEPS = (1, 2, 3, 4)
 _ORDINAL = {2: "2nd", 3: "3rd"}
+#: Largest runs × voxels whose run values are embedded (the folder keeps them up to
+#: grouplevel.outputs.animal_maps.RUN_VALUES_MAX; the same bound, our own choice).
+RUN_VALUES_EMBED = 250_000
 #: Largest magnitude of a per-animal quantity after quantisation to int16; -32768
 #: marks "no value" (no data, or an unknown SE).
 QUANT_MAX = 32000
@@ -294,7 +298,7 @@ class _Layer:
         se = np.where(has & (se > 0), se, np.nan)
         q_effect, effect_scale = _quantise(effect)
         q_se, se_scale = _quantise(se)
-        return {
+        out = {
             "ids": list(a.animals),
             "what": a.what,
             "run_labels": [a.run_labels.get(x, []) for x in a.animals],
@@ -303,7 +307,14 @@ class _Layer:
             "se": _pack(q_se, "<i2"),
             "se_scale": se_scale,
             "runs": _pack(np.clip(runs, 0, 255), "u1"),
+            "run_values": None,
         }
+        if a.run_values is not None and a.run_values.shape[3] * mask.sum() <= RUN_VALUES_EMBED:
+            values = np.asarray(_canonical(a.run_values)[0], dtype=np.float32)[sl][mask].T
+            q_values, value_scale = _quantise(values)
+            out["run_values"] = _pack(q_values, "<i2")
+            out["run_scale"] = value_scale
+        return out
 
 
 def _thin_affine(affine: np.ndarray, step: int) -> np.ndarray:

@@ -92,6 +92,11 @@ class AnimalEffects:
         For each animal, the labels of its included runs (``"session 1, run 2"``).
     what
         What the estimate is, in words (for the report).
+    run_values
+        ``(n_runs, n_voxels)`` float32: the value of every run behind the estimates
+        (NaN: no data), rows grouped by animal in the order of ``animals`` and
+        ``run_labels``; None when the study is too large to keep a copy
+        (:data:`grouplevel.outputs.animal_maps.RUN_VALUES_MAX`).
     """
 
     animals: tuple[str, ...]
@@ -100,6 +105,7 @@ class AnimalEffects:
     runs: np.ndarray
     run_labels: tuple[tuple[str, ...], ...]
     what: str
+    run_values: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
