@@ -10,7 +10,8 @@ Outside references:
   Borenstein, Hedges, Higgins & Rothstein 2009, Introduction to Meta-Analysis), against
   statsmodels WLS with the scale fixed at 1;
 - a within-animal column without a random slope has no per-animal estimate (common
-  practice: its test does not rest on animals' own estimates), so no maps are written.
+  practice: its test does not rest on animals' own estimates), so no maps are written;
+- the runs' values kept for a small study are the input maps' values (numpy).
 """
 
 from __future__ import annotations
@@ -111,6 +112,9 @@ def test_group_mean_estimates_are_inverse_variance_means_and_round_trip(tmp_path
             assert effects.se[a, v] == pytest.approx(fit.bse[0], rel=1e-5)
             assert effects.runs[a, v] == rows.sum()
     assert effects.runs[1, 2] == 2  # the run without data is not counted
+    # the runs behind the estimates (a small study keeps them), grouped by animal
+    order = np.argsort(animal, kind="stable")
+    np.testing.assert_allclose(effects.run_values, y[order], rtol=1e-6)  # NaN where no data
 
     # the 4-D maps hold the same values in the order summary.json records
     folder = tmp_path / "maps"
@@ -126,6 +130,8 @@ def test_group_mean_estimates_are_inverse_variance_means_and_round_trip(tmp_path
         on_grid = np.asarray(getattr(back, key).dataobj)[gm.mask]  # (voxels, animals)
         want = np.nan_to_num(getattr(effects, key)).T
         np.testing.assert_allclose(on_grid, want, rtol=1e-6)
+    runs_back = np.asarray(back.run_values.dataobj)[gm.mask].T  # (runs, voxels)
+    np.testing.assert_allclose(runs_back, y[order], rtol=1e-6)
     assert read_animal_maps(folder, None) is None
     (folder / ANIMAL_MAP_FILES["se"]).unlink()
     assert read_animal_maps(folder, entry) is None  # an incomplete set is not shown

@@ -308,3 +308,41 @@ def test_slice_browser_names_the_planted_cluster_and_its_animals(driver, report,
             requests.append(message["params"]["request"]["url"])
     assert [u for u in requests if not u.startswith(("file:", "data:", "blob:"))] == []
     assert [e for e in driver.get_log("browser") if e["level"] == "SEVERE"] == []
+
+
+def test_slice_browser_shows_each_runs_value_of_a_small_study(driver, tiny_study, tmp_path):
+    # A small study keeps its runs' values (run_effect.nii.gz); the table at the
+    # selected voxel (the strongest, where the browser opens) lists them. Reference: the
+    # study's own input maps at that voxel, read with nibabel.
+    import nibabel as nib
+    import numpy as np
+    import pandas as pd
+
+    import grouplevel
+
+    out = grouplevel.run_study(tiny_study, tmp_path / "out", permutations=0)
+    driver.get((out / "report.html").as_uri())
+    _wait_ready(driver)
+
+    def canonical(path: Path) -> np.ndarray:
+        return np.asarray(nib.as_closest_canonical(nib.load(str(path))).dataobj)
+
+    mask = canonical(out / "mean" / "mask.nii.gz") > 0
+    z = canonical(out / "mean" / "z.nii.gz")
+    peak = np.argwhere(mask)[np.argmax(np.abs(z[mask]))]
+    runs = pd.read_csv(tiny_study.parent / "runs.tsv", sep="\t")
+    rows = driver.execute_script(
+        "return Array.from(document.querySelectorAll('#sb-animals-table tbody tr'))"
+        ".map(r => Array.from(r.cells).map(c => c.textContent));"
+    )
+    assert [r[0] for r in rows] == sorted(runs["animal"].unique())
+    for animal, _effect, _se, _count, shown in rows:
+        mine = runs[runs["animal"] == animal]
+        values = [canonical(tiny_study.parent / p)[tuple(peak)] for p in mine["effect"]]
+        parts = shown.split("; ")
+        assert [p.split(":")[0] for p in parts] == [f"run {r}" for r in mine["run"]]
+        got = [float(p.split(": ")[1]) for p in parts]
+        # 4 significant digits shown; int16 storage errs by ≤ 1/64000 of the run's max
+        assert got == pytest.approx(values, rel=1e-3, abs=1e-3)
+    assert "Rings: each run's own value." in _text(driver, "sb-animals-note")
+    assert [e for e in driver.get_log("browser") if e["level"] == "SEVERE"] == []
