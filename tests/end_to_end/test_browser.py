@@ -307,6 +307,10 @@ def test_slice_browser_names_the_planted_cluster_and_its_animals(driver, report,
         if message.get("method") == "Network.requestWillBeSent":
             requests.append(message["params"]["request"]["url"])
     assert [u for u in requests if not u.startswith(("file:", "data:", "blob:"))] == []
+    resources = driver.execute_script(
+        "return performance.getEntriesByType('resource').map(e => e.name);"
+    )
+    assert [u for u in resources if not u.startswith(("file:", "data:", "blob:"))] == []
     assert [e for e in driver.get_log("browser") if e["level"] == "SEVERE"] == []
 
 
