@@ -31,7 +31,7 @@ from scipy import stats
 
 from grouplevel import __version__
 from grouplevel.anatomy.tables import RegionData, region_data, region_tables
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
     AnimalLevelData,
@@ -62,6 +62,11 @@ from grouplevel.model import (
     test_contrast,
 )
 from grouplevel.model.contrasts import slope_df
+from grouplevel.outputs.animal_maps import (
+    RUN_VALUES_MAX,
+    animal_maps_summary,
+    write_animal_maps,
+)
 from grouplevel.outputs.folder import (
     TOOL_NAME,
     check_output_folder,
@@ -78,7 +83,7 @@ from grouplevel.questions.ask import (
 )
 from grouplevel.results.compute import Backend, fit_design, open_backend
 from grouplevel.results.correction import permutation_arguments
-from grouplevel.results.maps import MAP_DESCRIPTIONS, Corrected, GroupMap
+from grouplevel.results.maps import MAP_DESCRIPTIONS, AnimalEffects, Corrected, GroupMap
 from grouplevel.timing import StepClock
 
 # Variance components written on top of var_animal and var_run (general model only):
@@ -487,6 +492,7 @@ def _fit_first_level(
     for cname, c in fl.contrasts:
         with clock.step("test and correct"):
             gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
+            gm = replace(gm, animal_effects=_animal_effects(fitted, c))
         with clock.step("regions"):
             if regions is not None:
                 tables = region_tables(gm, regions, fl.design, c, study.settings)
@@ -495,6 +501,75 @@ def _fit_first_level(
             results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings
+
+
+def _run_label(session: Any, run: Any) -> str:
+    """A run as the runs table names it: ``"session 1, run 2"`` (``"run 2"`` without one)."""
+    session = "" if session is None or pd.isna(session) else str(session).strip()
+    return f"session {session}, run {run}" if session else f"run {run}"
+
+
+def _run_labels(runs: pd.DataFrame, animal_ids) -> tuple[tuple[str, ...], ...]:
+    """The labels of each animal's included runs, in the order of ``animal_ids``."""
+    by_animal = runs["animal"].astype(str)
+    return tuple(
+        tuple(
+            _run_label(row.get("session"), row.get("run"))
+            for _, row in runs[by_animal == str(animal)].iterrows()
+        )
+        for animal in animal_ids
+    )
+
+
+def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None:
+    """Each animal's own estimate of what ``c`` tests at every voxel (the data the
+    permutation test rearranges), or None for a contrast without one (a within-animal
+    column without a random slope, or a mix of levels)."""
+    design, random = fitted.fl.design, fitted.fl.random
+    kind, slope = contrast_kind(design, random, c)
+    if kind not in (CONTRAST_ANIMAL, CONTRAST_SLOPE, CONTRAST_SLOPES):
+        return None
+    try:
+        data, _, taking_part = fitted.reduced_for(c)
+    except ArgumentError:  # e.g. run-level columns: no per-animal reduction exists
+        return None
+    n_voxels = fitted.y.shape[1]
+    effect = np.full((design.n_animals, n_voxels), np.nan)
+    se = np.full_like(effect, np.nan)
+    precision = data.precision.T
+    with np.errstate(divide="ignore"):
+        effect[taking_part] = np.where(precision > 0, data.mean.T, np.nan)
+        se[taking_part] = np.where(precision > 0, 1.0 / np.sqrt(precision), np.nan)
+    indicator = np.zeros((design.n_animals, len(design.animal)))
+    indicator[design.animal, np.arange(len(design.animal))] = 1.0
+    if kind == CONTRAST_ANIMAL and not random.extended and design.animal_level.all():
+        what = "each animal's precision-weighted mean of its runs (σ² of the fit held fixed)"
+    elif kind == CONTRAST_ANIMAL:
+        what = "each animal's own intercept, estimated by GLS from its runs"
+    elif kind == CONTRAST_SLOPE:
+        what = f"each animal's own {design.columns[random.slope_columns[slope]]} slope (GLS)"
+    else:
+        what = "each animal's own combination of its slopes (GLS)"
+    # float32 and int16, as written: m × voxels of each is held until the write step
+    return AnimalEffects(
+        animals=tuple(str(a) for a in design.animal_ids),
+        effect=effect.astype(np.float32),
+        se=se.astype(np.float32),
+        runs=(indicator @ fitted.present).astype(np.int16),
+        run_labels=_run_labels(fitted.fl.runs, design.animal_ids),
+        what=what,
+        run_values=_run_values(fitted, design.animal_ids),
+    )
+
+
+def _run_values(fitted: _FittedLevel, animal_ids) -> np.ndarray | None:
+    """The runs' values behind the per-animal estimates, grouped by animal (the order
+    of :func:`_run_labels`), or None above :data:`RUN_VALUES_MAX` values."""
+    if fitted.y.size > RUN_VALUES_MAX:
+        return None
+    by_animal = fitted.fl.runs["animal"].astype(str).to_numpy()
+    order = np.concatenate([np.flatnonzero(by_animal == str(a)) for a in animal_ids])
+    return np.where(fitted.present, fitted.y, np.nan)[order].astype(np.float32)
 
 
 def _fitted_voxels(
@@ -854,6 +929,8 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
         "inference": _inference_summary(gm, study.settings.inference.alpha),
     }
+    if gm.animal_effects is not None:
+        entry["animal_maps"] = animal_maps_summary(gm.animal_effects)
     if gm.answers is not None:
         entry["questions"] = gm.answers.summary(study.settings.inference.alpha)
     if gm.tables is not None:
@@ -938,6 +1015,8 @@ def _write_group_map(folder: Path, gm: GroupMap) -> None:
             dtype=dtype,
         )
     _write_inference(folder, gm, label)
+    if gm.animal_effects is not None:
+        write_animal_maps(folder, gm.animal_effects, gm.mask, grid, label)
     if gm.answers is not None:
         _write_answers(folder, gm, label)
     if gm.tables is not None:
