@@ -31,7 +31,7 @@ from scipy import stats
 
 from grouplevel import __version__
 from grouplevel.anatomy.tables import RegionData, region_data, region_tables
-from grouplevel.errors import UserError
+from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
     AnimalLevelData,
@@ -63,6 +63,11 @@ from grouplevel.model import (
 )
 from grouplevel.model.contrasts import slope_df
 from grouplevel.model.marginal import RandomTerms, marginal_run_variance
+from grouplevel.outputs.animal_maps import (
+    RUN_VALUES_MAX,
+    animal_maps_summary,
+    write_animal_maps,
+)
 from grouplevel.outputs.folder import (
     TOOL_NAME,
     check_output_folder,
@@ -79,10 +84,10 @@ from grouplevel.questions.ask import (
     skipped_warning,
 )
 from grouplevel.questions.means import DIFFERENCE
-from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.results.compute import Backend, fit_design, open_backend, random_terms
 from grouplevel.results.correction import permutation_arguments
-from grouplevel.results.maps import MAP_DESCRIPTIONS, Corrected, GroupMap
+from grouplevel.results.maps import MAP_DESCRIPTIONS, AnimalEffects, Corrected, GroupMap
+from grouplevel.timing import StepClock
 
 # Variance components written on top of var_animal and var_run (general model only):
 # component-name pattern -> (file stem, header description). ``{0}`` is the slope or
@@ -478,33 +483,111 @@ def _fit_first_level(
     log: Callable[[str], None],
     quiet: bool = True,
     backend: Backend | None = None,
+    clock: StepClock | None = None,
 ) -> tuple[list[GroupMap], list[str]]:
     warnings: list[str] = []
     label = fl.name or "the study"
+    clock = clock or StepClock()
     start = time.perf_counter()
-    y, s2, mask = _fitted_voxels(study, fl, label, warnings)
-    fitted = _fit(study, fl, label, y, s2, mask, log, backend, warnings)
-    group_note = _variance_group_note(fitted)
+    with clock.step("read maps"):
+        y, s2, mask = _fitted_voxels(study, fl, label, warnings)
+    with clock.step("fit"):
+        fitted = _fit(study, fl, label, y, s2, mask, log, backend, warnings)
+        group_note = _variance_group_note(fitted)
     if group_note:
         warnings.append(group_note)
-    regions = _region_data(study, fitted)
+    with clock.step("regions"):
+        regions = _region_data(study, fitted)
     results = []
     for cname, c in fl.contrasts:
-        gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
-        if regions is not None:
-            tables = region_tables(
-                gm,
-                regions,
-                fl.design,
-                c,
-                study.settings,
-                terms=random_terms(fl.design, fl.random),
-                model_df=lambda fit, present, cc: _contrast_df(study, fl, fit, present, cc),
-            )
-            gm = replace(gm, tables=tables)
-        results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
+        with clock.step("test and correct"):
+            gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
+            gm = replace(gm, animal_effects=_animal_effects(fitted, c))
+        with clock.step("regions"):
+            if regions is not None:
+                tables = region_tables(
+                    gm,
+                    regions,
+                    fl.design,
+                    c,
+                    study.settings,
+                    terms=random_terms(fl.design, fl.random),
+                    model_df=lambda fit, present, cc: _contrast_df(study, fl, fit, present, cc),
+                )
+                gm = replace(gm, tables=tables)
+        with clock.step("questions"):
+            results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings
+
+
+def _run_label(session: Any, run: Any) -> str:
+    """A run as the runs table names it: ``"session 1, run 2"`` (``"run 2"`` without one)."""
+    session = "" if session is None or pd.isna(session) else str(session).strip()
+    return f"session {session}, run {run}" if session else f"run {run}"
+
+
+def _run_labels(runs: pd.DataFrame, animal_ids) -> tuple[tuple[str, ...], ...]:
+    """The labels of each animal's included runs, in the order of ``animal_ids``."""
+    by_animal = runs["animal"].astype(str)
+    return tuple(
+        tuple(
+            _run_label(row.get("session"), row.get("run"))
+            for _, row in runs[by_animal == str(animal)].iterrows()
+        )
+        for animal in animal_ids
+    )
+
+
+def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None:
+    """Each animal's own estimate of what ``c`` tests at every voxel (the data the
+    permutation test rearranges), or None for a contrast without one (a within-animal
+    column without a random slope, or a mix of levels)."""
+    design, random = fitted.fl.design, fitted.fl.random
+    kind, slope = contrast_kind(design, random, c)
+    if kind not in (CONTRAST_ANIMAL, CONTRAST_SLOPE, CONTRAST_SLOPES):
+        return None
+    try:
+        data, _, taking_part = fitted.reduced_for(c)
+    except ArgumentError:  # e.g. run-level columns: no per-animal reduction exists
+        return None
+    n_voxels = fitted.y.shape[1]
+    effect = np.full((design.n_animals, n_voxels), np.nan)
+    se = np.full_like(effect, np.nan)
+    precision = data.precision.T
+    with np.errstate(divide="ignore"):
+        effect[taking_part] = np.where(precision > 0, data.mean.T, np.nan)
+        se[taking_part] = np.where(precision > 0, 1.0 / np.sqrt(precision), np.nan)
+    indicator = np.zeros((design.n_animals, len(design.animal)))
+    indicator[design.animal, np.arange(len(design.animal))] = 1.0
+    if kind == CONTRAST_ANIMAL and not random.extended and design.animal_level.all():
+        what = "each animal's precision-weighted mean of its runs (σ² of the fit held fixed)"
+    elif kind == CONTRAST_ANIMAL:
+        what = "each animal's own intercept, estimated by GLS from its runs"
+    elif kind == CONTRAST_SLOPE:
+        what = f"each animal's own {design.columns[random.slope_columns[slope]]} slope (GLS)"
+    else:
+        what = "each animal's own combination of its slopes (GLS)"
+    # float32 and int16, as written: m × voxels of each is held until the write step
+    return AnimalEffects(
+        animals=tuple(str(a) for a in design.animal_ids),
+        effect=effect.astype(np.float32),
+        se=se.astype(np.float32),
+        runs=(indicator @ fitted.present).astype(np.int16),
+        run_labels=_run_labels(fitted.fl.runs, design.animal_ids),
+        what=what,
+        run_values=_run_values(fitted, design.animal_ids),
+    )
+
+
+def _run_values(fitted: _FittedLevel, animal_ids) -> np.ndarray | None:
+    """The runs' values behind the per-animal estimates, grouped by animal (the order
+    of :func:`_run_labels`), or None above :data:`RUN_VALUES_MAX` values."""
+    if fitted.y.size > RUN_VALUES_MAX:
+        return None
+    by_animal = fitted.fl.runs["animal"].astype(str).to_numpy()
+    order = np.concatenate([np.flatnonzero(by_animal == str(a)) for a in animal_ids])
+    return np.where(fitted.present, fitted.y, np.nan)[order].astype(np.float32)
 
 
 def _fitted_voxels(
@@ -749,9 +832,16 @@ def _with_answers(
 
 
 def fit_study(
-    study: Study, log: Callable[[str], None] | None = None, *, quiet: bool = True
+    study: Study,
+    log: Callable[[str], None] | None = None,
+    *,
+    quiet: bool = True,
+    clock: StepClock | None = None,
 ) -> tuple[list[GroupMap], list[str]]:
     """Fit the mixed model for every first-level contrast and test every group contrast.
+
+    ``clock``, when given, receives the wall time of each step (read maps, fit, test
+    and correct, regions, questions).
 
     Returns
     -------
@@ -768,7 +858,7 @@ def fit_study(
         if backend.distributed:
             log(f"computing on dask: {backend.workers} worker(s)")
         for fl in study.first_levels:
-            m, w = _fit_first_level(study, fl, log, quiet, backend)
+            m, w = _fit_first_level(study, fl, log, quiet, backend, clock)
             maps.extend(m)
             warnings.extend(w)
     warnings.extend(
@@ -843,6 +933,8 @@ def _atlas_summary(study: Study) -> dict | None:
         "midline_source": atlas.midline_source,
         "mirror_dice": round(float(atlas.mirror_dice), 4),
         "orientation": atlas.orientation,
+        # how the label table was read when not as written (columns, sides in names)
+        "table_reading": list(atlas.notes),
     }
 
 
@@ -885,6 +977,8 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
         "inference": _inference_summary(gm, study.settings.inference.alpha),
     }
+    if gm.animal_effects is not None:
+        entry["animal_maps"] = animal_maps_summary(gm.animal_effects)
     if gm.answers is not None:
         entry["questions"] = gm.answers.summary(study.settings.inference.alpha)
     if gm.tables is not None:
@@ -969,6 +1063,8 @@ def _write_group_map(folder: Path, gm: GroupMap) -> None:
             dtype=dtype,
         )
     _write_inference(folder, gm, label)
+    if gm.animal_effects is not None:
+        write_animal_maps(folder, gm.animal_effects, gm.mask, grid, label)
     if gm.answers is not None:
         _write_answers(folder, gm, label)
     if gm.tables is not None:
@@ -1140,8 +1236,11 @@ def write_outputs(
     *,
     warnings: list[str] | None = None,
     force: bool = False,
+    clock: StepClock | None = None,
 ) -> Path:
     """Write every map, the masks and summary.json into ``out_dir`` atomically.
+
+    ``clock``, when given, receives the wall time of writing the maps and of the report.
 
     Everything is written to a hidden sibling folder first and moved into place at the
     end, so an interrupted run never leaves a folder that looks complete.
@@ -1160,10 +1259,12 @@ def write_outputs(
     # the usual permissions; an existing folder of that name is never touched)
     tmp = out.parent / f".{out.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
     tmp.mkdir()
+    clock = clock or StepClock()
     try:
         grid = study.grid
-        for gm in maps:
-            _write_group_map(child_path(tmp, gm.name), gm)
+        with clock.step("write maps"):
+            for gm in maps:
+                _write_group_map(child_path(tmp, gm.name), gm)
         summary = {
             "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
@@ -1184,11 +1285,15 @@ def write_outputs(
             "warnings": list(study.warnings) + list(warnings or []),
         }
         write_summary(tmp, summary)
-        # the human-readable outputs are made from the folder just written, exactly as
-        # `grouplevel report DIR` makes them later
-        write_methods(tmp)
-        write_manuscript_tables(tmp)
-        render_report(tmp)
+        with clock.step("report"):
+            # imported here: the report stack (matplotlib, jinja2) loads only when drawn
+            from grouplevel.report import render_report, write_manuscript_tables, write_methods
+
+            # the human-readable outputs are made from the folder just written, exactly
+            # as `grouplevel report DIR` makes them later
+            write_methods(tmp)
+            write_manuscript_tables(tmp)
+            render_report(tmp)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
@@ -1212,24 +1317,30 @@ def run_study(
     log: Callable[[str], None] | None = None,
     permutations: int | None = None,
     seed: int | None = None,
+    clock: StepClock | None = None,
 ) -> Path:
     """Validate, fit and write a study in one call (what ``grouplevel run`` does).
 
     ``permutations`` and ``seed`` override the study file's ``[inference]`` values. A
-    progress bar is shown for the permutations when ``log`` is given.
+    progress bar is shown for the permutations when ``log`` is given, and the wall time
+    per step at the end (``clock``, when given, keeps those times for the caller).
     """
     quiet = log is None
     log = log or (lambda _msg: None)
+    clock = clock or StepClock()
     # the cheap checks first (before the maps are read), then with every input known
     check_output_folder(out_dir, force, inputs=[("study file", Path(path))], ownership=False)
-    study = load_study(path, permutations=permutations, seed=seed)
+    with clock.step("check inputs"):
+        study = load_study(path, permutations=permutations, seed=seed)
     out = check_output_folder(out_dir, force, inputs=study_inputs(study))
     for w in study.warnings:
         log(f"warning: {w}")
-    maps, warnings = fit_study(study, log, quiet=quiet)
+    maps, warnings = fit_study(study, log, quiet=quiet, clock=clock)
     for w in warnings:
         log(f"warning: {w}")
-    return write_outputs(study, maps, out, warnings=warnings, force=force)
+    written = write_outputs(study, maps, out, warnings=warnings, force=force, clock=clock)
+    log(clock.line())
+    return written
 
 
 __all__ = [

@@ -1204,11 +1204,15 @@ def loo_group_maps(
         return res.effect, res.t
 
     n_vox = y.shape[1]
-    if components is not None or (var_animal is not None and var_run is not None):
-        if components is not None:
-            down = leave_one_animal_out_model(y, s2, X, animal, c, components, terms)
-        else:
-            down = leave_one_animal_out(y, s2, X, animal, c, var_animal, var_run)
+    if components is not None:
+        down = leave_one_animal_out_model(y, s2, X, animal, c, components, terms)
+    elif var_animal is not None and var_run is not None:
+        down = leave_one_animal_out(
+            y, s2, X, animal, c, var_animal, var_run, estimate_run_variance=estimate_run_variance
+        )
+    else:
+        down = None
+    if down is not None:
         effect_full, t_full, effect, t_loo = down.effect_full, down.t_full, down.effect, down.t
         for a in range(m):  # a group map needs two animals
             rows = animal != a

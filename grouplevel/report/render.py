@@ -9,7 +9,9 @@ or with a new title.
 The page is organised around the questions a reader asks of each contrast (is there a
 response, where, is it bilateral, specific, consistent?), then the study, maps,
 tables, figures, cautions and methods. Figures are base64 PNGs and the CSS is inline;
-the page loads nothing from the network (a Content-Security-Policy forbids it).
+the slice browser (:mod:`grouplevel.report.browser`) adds its own inline data and
+script; the page loads nothing from the network (a Content-Security-Policy built from
+the hashes of the page's own inline blocks forbids it).
 Autoescaping is on: every string from the user's files (titles, animal IDs, region
 names) is escaped.
 """
@@ -29,6 +31,11 @@ import numpy as np
 from grouplevel.outputs.folder import require_grouplevel_output
 from grouplevel.outputs.summary import present_files, read_summary, result_names
 from grouplevel.report import figures
+from grouplevel.report.browser import (
+    apply_content_security_policy,
+    browser_context,
+    policy_placeholder,
+)
 from grouplevel.report.methods import methods_text
 from grouplevel.report.tables import (
     STAT,
@@ -860,6 +867,7 @@ def build_context(out_dir: Path, *, title: str | None = None) -> dict:
             }
         )
     methods = methods_text(summary, files)
+    browser = browser_context(out_dir, summary, _browser_layers(summary, results))
     css = resources.files("grouplevel.templates").joinpath("report.css").read_text("utf-8")
     tool = summary.get("tool") or {}
     return {
@@ -872,7 +880,26 @@ def build_context(out_dir: Path, *, title: str | None = None) -> dict:
         "results": results,
         "methods": methods,
         "inputs": summary.get("inputs") or [],
+        "browser": browser,
+        "content_security_policy": policy_placeholder(),
     }
+
+
+def _browser_layers(summary: dict, results: list[dict]) -> list[dict]:
+    """What the slice browser shows of each result: its surviving-voxel map, in words."""
+    alpha = ((summary.get("settings") or {}).get("inference") or {}).get("alpha", 0.05)
+    layers = []
+    for r in results:
+        method = _method(summary, summary["results"][r["name"]])
+        layers.append(
+            {
+                "name": r["name"],
+                "heading": r["answer"]["heading"],
+                "stem": _METHOD_MAP.get(method, "q"),
+                "words": _METHOD_LABEL.get(method, method).format(a=alpha),
+            }
+        )
+    return layers
 
 
 def render_report(out_dir: Path, *, title: str | None = None) -> Path:
@@ -904,6 +931,7 @@ def render_report(out_dir: Path, *, title: str | None = None) -> Path:
         .get_template("report.html.j2")
         .render(**context, render_seconds=f"{time.perf_counter() - start:.1f}")
     )
+    html = apply_content_security_policy(html)  # hashes of the finished page's own code
     path = out_dir / "report.html"
     path.write_text(html, encoding="utf-8")
     return path

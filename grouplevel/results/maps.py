@@ -70,6 +70,45 @@ class Corrected:
 
 
 @dataclass(frozen=True)
+class AnimalEffects:
+    """Each animal's own estimate of what a group contrast tests, at every in-mask voxel.
+
+    For a contrast of animal-level columns (a mean, a group difference, a covariate) an
+    animal's estimate is the precision-weighted mean of its runs (σ̂² of the fit held
+    fixed, :mod:`grouplevel.model.animals`); for a contrast of a random slope it is the
+    animal's own GLS slope. These are the values the permutation test rearranges.
+
+    Attributes
+    ----------
+    animals
+        The m animal identifiers (rows of the arrays).
+    effect
+        ``(m, n_voxels)`` float32: each animal's estimate (NaN where it has no data).
+    se
+        ``(m, n_voxels)`` float32: its standard error (NaN where unknown or without data).
+    runs
+        ``(m, n_voxels)`` int16: number of the animal's runs with data at the voxel.
+    run_labels
+        For each animal, the labels of its included runs (``"session 1, run 2"``).
+    what
+        What the estimate is, in words (for the report).
+    run_values
+        ``(n_runs, n_voxels)`` float32: the value of every run behind the estimates
+        (NaN: no data), rows grouped by animal in the order of ``animals`` and
+        ``run_labels``; None when the study is too large to keep a copy
+        (:data:`grouplevel.outputs.animal_maps.RUN_VALUES_MAX`).
+    """
+
+    animals: tuple[str, ...]
+    effect: np.ndarray
+    se: np.ndarray
+    runs: np.ndarray
+    run_labels: tuple[tuple[str, ...], ...]
+    what: str
+    run_values: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
 class GroupMap:
     """One group contrast of one first-level contrast: in-mask values and context.
 
@@ -105,6 +144,8 @@ class GroupMap:
     random_effects: str = "a random intercept per animal"
     # what the contrast tests (grouplevel.intake.design.contrast_kind): "animal", ...
     tested_level: str = "animal"
+    # each animal's own estimate at every voxel (None where the design has none)
+    animal_effects: AnimalEffects | None = None
 
     def volume(self, key: str) -> np.ndarray:
         """A per-voxel quantity as a full 3-D array (0 outside the mask).

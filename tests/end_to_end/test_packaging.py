@@ -30,7 +30,7 @@ def test_wheel_contains_templates_and_entry_point(wheel):
     on_disk = {
         f"grouplevel/templates/{p.name}"
         for p in (ROOT / "templates").iterdir()
-        if p.suffix in (".j2", ".css", ".py")
+        if p.suffix in (".j2", ".css", ".js", ".py")
     }
     assert on_disk and on_disk <= shipped
     entry = next(n for n in names if n.endswith("entry_points.txt"))
