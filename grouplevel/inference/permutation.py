@@ -1055,14 +1055,15 @@ def permutation_test(
     x_i, Z = partition_design(data.design, c)
     X_perm = np.column_stack([x_i, Z])
     V, m = data.mean.shape
+    plan_f = {"f_test": True} if f_test else {}  # the t plan is called as it always was
     if variance_groups is not None:
         # unequal variances: only sign flips keep the errors' distribution (symmetric
         # errors, Winkler et al. 2014, "ISE"); a constant regressor asks for them
         scheme = plan_permutations(
-            np.ones(m), Z[:, :0], n_permutations, rng, "two" if f_test else sided, f_test
+            np.ones(m), Z[:, :0], n_permutations, rng, "two" if f_test else sided, **plan_f
         )
     else:
-        scheme = plan_permutations(x_i, Z, n_permutations, rng, sided, f_test)
+        scheme = plan_permutations(x_i, Z, n_permutations, rng, sided, **plan_f)
     # Freedman–Lane: nuisance-only GLS fit at the unpermuted τ̂² (per voxel)
     fitted = np.zeros_like(data.mean)
     if Z.shape[1] and variance_groups is not None:
