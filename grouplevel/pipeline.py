@@ -1322,9 +1322,7 @@ def write_outputs(
                 fl.name or "runs": design_description(study, fl) for fl in study.first_levels
             },
             "results": {
-                gm.name: _result_summary(study, gm)
-                for gm in maps
-                if not isinstance(gm, FTestMap)
+                gm.name: _result_summary(study, gm) for gm in maps if not isinstance(gm, FTestMap)
             },
             "ftests": {
                 fm.name: _ftest_summary(study, fm) for fm in maps if isinstance(fm, FTestMap)

@@ -838,9 +838,7 @@ def g_statistic(Y: np.ndarray, X: np.ndarray, c: np.ndarray, groups: np.ndarray)
     return (beta @ c) / np.sqrt(var)
 
 
-def g_statistic_rank(
-    Y: np.ndarray, X: np.ndarray, C: np.ndarray, groups: np.ndarray
-) -> np.ndarray:
+def g_statistic_rank(Y: np.ndarray, X: np.ndarray, C: np.ndarray, groups: np.ndarray) -> np.ndarray:
     """The G statistic of an F-test (s = rank(C) rows) with one variance per group of rows.
 
     With ordinary least-squares residuals and each group's variance estimated as in

@@ -1210,9 +1210,7 @@ def model_problems(
         if note:
             warnings.append(note)
         if permutations > 0:
-            refusal = ftest_permutation_refusal(
-                design, random, f, permutations, full_coverage
-            )
+            refusal = ftest_permutation_refusal(design, random, f, permutations, full_coverage)
             if refusal:
                 problems.append(refusal)
     return random, problems, warnings

@@ -213,7 +213,17 @@ def map_intent(
     """
     for prefix, intent, name in _INTENTS:
         exact = prefix in (
-            "t", "f", "z", "p", "q", "se", "df", "effect", "tfce", "mask", "clusters"
+            "t",
+            "f",
+            "z",
+            "p",
+            "q",
+            "se",
+            "df",
+            "effect",
+            "tfce",
+            "mask",
+            "clusters",
         )
         if stem == prefix if exact else stem.startswith(prefix):
             if intent == "t test":

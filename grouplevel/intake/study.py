@@ -14,8 +14,8 @@ positive. A run without a usable value at a voxel carries no weight there.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 

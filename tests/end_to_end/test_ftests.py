@@ -63,7 +63,7 @@ def test_run_writes_the_f_test_maps(tmp_path):
     # design's default contrasts)
     toml, effects, dose = _study(
         tmp_path / "s",
-        "\n[inference]\npermutations = 40\n\n[[contrast]]\nname = \"high-minus-none\"\n"
+        '\n[inference]\npermutations = 40\n\n[[contrast]]\nname = "high-minus-none"\n'
         'weights = { "dose[T.high]" = 1 }\n',
     )
     out = tmp_path / "out"

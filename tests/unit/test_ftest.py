@@ -30,9 +30,9 @@ from grouplevel.inference.permutation import (
     animal_level_data,
     g_statistic,
     g_statistic_rank,
+    partition_design,
     permutation_test,
     plan_permutations,
-    partition_design,
 )
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.model.ftest import as_contrast_matrix, f_to_z, test_f
@@ -171,13 +171,16 @@ def test_exhaustive_permutation_matches_brute_force_f_oneway():
     assert len(labels) == math.factorial(6) // 8
     f_all = np.array(
         [
-            [stats.f_oneway(*(y[np.array(lab) == g, v] for g in range(3))).statistic
-             for v in range(4)]
+            [
+                stats.f_oneway(*(y[np.array(lab) == g, v] for g in range(3))).statistic
+                for v in range(4)
+            ]
             for lab in sorted(labels)
         ]
     )
-    f_obs = np.array([stats.f_oneway(*(y[group == g, v] for g in range(3))).statistic
-                      for v in range(4)])
+    f_obs = np.array(
+        [stats.f_oneway(*(y[group == g, v] for g in range(3))).statistic for v in range(4)]
+    )
     max_null = f_all.max(axis=1)
     expected = np.array([(max_null >= f * (1 - 1e-9)).mean() for f in f_obs])
     np.testing.assert_allclose(res.p_fwe_voxel, expected, atol=1e-12)
