@@ -108,6 +108,13 @@ def _scheme(
 def ftest_df_rule(design: Design, random: RandomEffects, weights: np.ndarray) -> str:
     """The denominator degrees of freedom of an F-test in words, with their value where
     every run has data (docs/model.md, "F-tests")."""
+    text = _ftest_df_words(design, random, weights)
+    if random.animal_group is not None:
+        text += "; with variance groups at most the smallest Welch–Satterthwaite df of its rows"
+    return text
+
+
+def _ftest_df_words(design: Design, random: RandomEffects, weights: np.ndarray) -> str:
     kind, slope = contrast_kind(design, random, np.abs(weights).sum(axis=0))
     if kind == CONTRAST_ANIMAL:
         columns = [j for j in range(len(design.columns)) if not design.within[j]]

@@ -201,3 +201,28 @@ def test_f_mean_rows_use_sign_flips_and_count_symmetries():
     assert scheme.kind == "sign flips" and scheme.n == 64
     assert scheme.n_equivalent == 8
     assert scheme.smallest_p == pytest.approx(8 / 64)
+
+
+def test_default_ftests_one_per_factor_with_more_than_two_levels():
+    # treatment coding (formulaic, common practice): the rows are the differences from
+    # the reference, one coefficient each
+    import pandas as pd
+
+    from grouplevel.intake.design import build_design
+
+    runs = pd.DataFrame(
+        {
+            "animal": [f"a{i}" for i in range(12)],
+            "dose": ["none", "low", "high"] * 4,
+            "sex": ["f", "m"] * 6,
+        }
+    )
+    d = build_design(runs, "1 + dose + sex", reference={"dose": "none"})
+    (ft,) = d.default_ftests  # sex has two levels: its t contrast is the test
+    assert ft.name == "dose-any-difference"
+    assert ft.rows == ("dose-high-minus-none", "dose-low-minus-none")
+    expected = np.zeros((2, len(d.columns)))
+    expected[0, d.columns.index("dose[T.high]")] = 1.0
+    expected[1, d.columns.index("dose[T.low]")] = 1.0
+    np.testing.assert_allclose(ft.weights, expected, atol=1e-12)
+    assert build_design(runs, "1 + sex").default_ftests == ()
