@@ -98,9 +98,10 @@ def contrast_rank(L: np.ndarray) -> int:
 def f_to_z(f: np.ndarray, df_num: float, df: np.ndarray | float) -> np.ndarray:
     """Standard normal value with the same upper-tail p as ``f`` on (df_num, df).
 
-    Computed from the log survival function, ``z = −Φ⁻¹(exp(log S_F(f)))``
-    (scipy.special.ndtri_exp), so it stays finite for very large F. Infinite ``df``
-    uses the chi-square limit ``q·F ~ χ²_q``.
+    ``z = −Φ⁻¹(S_F(f))`` from the survival function (scipy.special.fdtrc, fast enough to
+    run once per permutation); where that underflows to 0 (p below about 1e-308), from
+    its logarithm (scipy.special.ndtri_exp), so z stays finite for very large F.
+    Infinite ``df`` uses the chi-square limit ``q·F ~ χ²_q``.
 
     Returns
     -------
@@ -112,8 +113,13 @@ def f_to_z(f: np.ndarray, df_num: float, df: np.ndarray | float) -> np.ndarray:
     out = np.full(f.shape, np.nan)
     finite = np.isfinite(df) & (df > 0) & ~np.isnan(f)
     if np.any(finite):
-        logsf = stats.f.logsf(np.maximum(f[finite], 0.0), df_num, df[finite])
-        out[finite] = -special.ndtri_exp(logsf)
+        fv, dv = np.maximum(f[finite], 0.0), df[finite]
+        p = special.fdtrc(df_num, dv, fv)
+        z = -special.ndtri(p)
+        tiny = p <= 0.0
+        if np.any(tiny):
+            z[tiny] = -special.ndtri_exp(stats.f.logsf(fv[tiny], df_num, dv[tiny]))
+        out[finite] = z
     inf_df = np.isposinf(df) & ~np.isnan(f)
     if np.any(inf_df):
         logsf = stats.chi2.logsf(np.maximum(f[inf_df], 0.0) * df_num, df_num)
