@@ -51,6 +51,7 @@ from grouplevel.intake.design import (
     animal_design,
     contrast_kind,
     describe_random_effects,
+    ftest_permutation_refusal,
     slope_design,
     weights_dict,
 )
@@ -179,6 +180,7 @@ def _correct(
     backend: Backend | None = None,
     variance_groups: np.ndarray | None = None,
     f_p: np.ndarray | None = None,
+    permute: bool = True,
 ) -> Corrected:
     """FDR and permutation inference of one contrast (``t``), or of an F-test when its
     upper-tail ``f_p`` is given (``c`` then holds its rows; the side is the upper tail)."""
@@ -189,7 +191,7 @@ def _correct(
     q = fdr(p_sided, alpha=inf.alpha, method=inf.fdr)
     warnings: list[str] = []
     perm = None
-    if inf.permutations > 0:
+    if inf.permutations > 0 and permute:
         rng = np.random.default_rng(inf.seed)
         bar = Progress(f"permutations {label}", "permutations", quiet=quiet)
         perm = permutation_test(
@@ -735,8 +737,16 @@ def _test_ftest(
     name = fl.output_name(ft.name, False)
     kind, _ = contrast_kind(design, random, np.abs(ft.weights).sum(axis=0))
     animal_data, rows, groups = None, ft.weights, random.animal_group
-    if study.settings.inference.permutations > 0:
-        # check refuses every F-test that cannot be permuted correctly
+    inf = study.settings.inference
+    # check refuses every declared F-test that cannot be permuted correctly, and warns
+    # that such a default F-test stays parametric
+    permute = inf.permutations > 0 and (
+        ftest_permutation_refusal(
+            design, random, ft, inf.permutations, study.settings.study.min_coverage >= 1.0
+        )
+        is None
+    )
+    if permute:
         animal_data, _, taking_part = fitted.reduced_for(np.abs(ft.weights).sum(axis=0))
         rows = _ftest_rows_reduced(design, random, ft.weights)
         if groups is not None:
@@ -754,6 +764,7 @@ def _test_ftest(
         backend,
         groups,
         f_p=np.where(np.isnan(res.p), 1.0, res.p),
+        permute=permute,
     )
     warnings.extend(corrected.warnings)
     return FTestMap(

@@ -85,7 +85,7 @@ def _scheme(
     if reduced is None:
         why = "the contrast mixes animal-level and within-animal columns"
         if f_test:
-            why = "its rows mix levels or several random slopes (permutations refused)"
+            why = "its rows are several within-animal random slopes, or mix levels"
         return {"kind": "none", "why": why}
     x_i, Z = partition_design(*reduced)
     rng = np.random.default_rng(inference.seed)

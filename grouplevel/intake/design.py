@@ -102,6 +102,7 @@ class GroupFTest:
     rows: tuple[str, ...]
     weights: np.ndarray
     meaning: str
+    declared: bool = False  # an [[ftest]] block (else a default of the design)
 
 
 # Suffix of the default F-test of a factor with more than two levels: all its
@@ -1211,8 +1212,15 @@ def model_problems(
             warnings.append(note)
         if permutations > 0:
             refusal = ftest_permutation_refusal(design, random, f, permutations, full_coverage)
-            if refusal:
+            if refusal and f.declared:
                 problems.append(refusal)
+            elif refusal:
+                # a default F-test never makes a study invalid: it stays parametric
+                warnings.append(
+                    f"{refusal.split(': [inference]')[0]} (a default F-test) is tested "
+                    "parametrically only (FDR; no permutation inference): "
+                    + refusal.split(": ", 2)[-1]
+                )
     return random, problems, warnings
 
 

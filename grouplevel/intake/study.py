@@ -1206,6 +1206,7 @@ def group_ftests(
                 rows=spec.contrasts,
                 weights=weights,
                 meaning="any of " + ", ".join(spec.contrasts) + " differs from zero",
+                declared=True,
             )
         )
     return out

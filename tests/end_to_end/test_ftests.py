@@ -188,3 +188,33 @@ def test_within_animal_f_test_matches_statsmodels_random_slopes(tmp_path):
         L = np.zeros((2, len(ref.params)))
         L[0, 1] = L[1, 2] = 1.0
         assert fm.f[v] == pytest.approx(float(np.squeeze(ref.f_test(L).fvalue)), rel=1e-3)
+
+
+def test_a_default_f_test_on_several_slopes_stays_parametric(tmp_path, capsys):
+    # three stimuli within every animal: the default F-test's rows are two random
+    # slopes, which the permutation engine does not exchange jointly. The default
+    # F-test must not make the study invalid (a warning, parametric only); the same
+    # rows declared as [[ftest]] are refused, naming the block.
+    rng = np.random.default_rng(2)
+    animals = [f"m{i}" for i in range(6) for _ in range(3)]
+    stim = ["a", "b", "c"] * 6
+    extra = (
+        '\n[inference]\npermutations = 100\n\n[[contrast]]\nname = "b-vs-c"\n'
+        'weights = { "stim[T.b]" = 1, "stim[T.c]" = -1 }\n'
+    )
+    toml = write_study(
+        tmp_path / "s",
+        rng.normal(size=18),
+        animals,
+        columns={"stim": stim},
+        model='formula = "1 + stim"',
+        toml_extra=extra,
+    )
+    assert main(["check", str(toml)]) == 0
+    out = capsys.readouterr().out
+    assert "'stim-any-difference' (a default F-test) is tested parametrically only" in out
+    with toml.open("a") as f:
+        f.write('\n[[ftest]]\nname = "stim-all"\ncontrasts = ["b-minus-a", "c-minus-a"]\n')
+    assert main(["check", str(toml)]) == 2
+    err = capsys.readouterr().err
+    assert "F-test 'stim-all': [inference] permutations = 100: its rows are differences" in err
