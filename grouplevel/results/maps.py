@@ -185,6 +185,11 @@ class FTestMap:
     answers: None = None
     tables: None = None
 
+    @property
+    def contrast(self) -> str:
+        """The name of the test in its first-level contrast (as :attr:`GroupMap.contrast`)."""
+        return self.ftest
+
     def volume(self, key: str) -> np.ndarray:
         """A per-voxel quantity as a full 3-D array (0 outside the mask)."""
         values = getattr(self, key) if hasattr(self, key) else getattr(self.inference, key)
