@@ -226,3 +226,41 @@ def test_default_ftests_one_per_factor_with_more_than_two_levels():
     expected[1, d.columns.index("dose[T.low]")] = 1.0
     np.testing.assert_allclose(ft.weights, expected, atol=1e-12)
     assert build_design(runs, "1 + sex").default_ftests == ()
+
+
+def test_f_does_not_depend_on_the_reference_level():
+    # "any difference between the levels" is one hypothesis whatever level is the
+    # reference (common practice: the F of a factor is invariant to its coding)
+    rng = np.random.default_rng(8)
+    group, animal, Xa, X, y = _three_groups(4, 5, rng, runs=2, shift=(0.0, 0.5, 1.0))
+    other = np.column_stack([np.ones(12), group == 0, group == 2]).astype(float)[animal]
+    a = test_f(fit_reml(y, None, X, animal), L_DOSE, 9.0)
+    b = test_f(fit_reml(y, None, other, animal), L_DOSE, 9.0)
+    np.testing.assert_allclose(a.f, b.f, rtol=1e-6)
+
+
+def test_permutation_f_with_variance_groups_uses_the_rank_two_g_statistic():
+    # the observed statistic of the permutation engine is the G statistic of the
+    # animal-level data (as z at equal upper-tail p), and only sign flips are used
+    rng = np.random.default_rng(9)
+    group = np.repeat(np.arange(3), 4)
+    Xa = np.column_stack([np.ones(12), group == 1, group == 2]).astype(float)
+    y = rng.normal(size=(12, 6)) * np.array([1.0, 1.0, 3.0])[group][:, None]
+    data = _dose_animals(y, Xa)
+    df = np.full(6, 9.0)
+    res = permutation_test(
+        data,
+        L_DOSE,
+        df,
+        np.ones((3, 2, 1), dtype=bool),
+        n_permutations=20,
+        rng=np.random.default_rng(0),
+        sided="positive",
+        use_tfce=False,
+        threads=1,
+        variance_groups=group,
+        f_test=True,
+    )
+    assert res.scheme.kind == "sign flips"
+    expected = f_to_z(g_statistic_rank(data.mean, Xa, L_DOSE, group), 2, df)
+    np.testing.assert_allclose(res.statistic, expected, rtol=1e-8)
