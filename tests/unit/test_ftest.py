@@ -264,3 +264,33 @@ def test_permutation_f_with_variance_groups_uses_the_rank_two_g_statistic():
     assert res.scheme.kind == "sign flips"
     expected = f_to_z(g_statistic_rank(data.mean, Xa, L_DOSE, group), 2, df)
     np.testing.assert_allclose(res.statistic, expected, rtol=1e-8)
+
+
+def test_refit_from_a_zero_start_reaches_the_reml_optimum():
+    # regression: with tiny sampling variances (one run per animal, τ² and σ² folded)
+    # and the refit started at τ² = 0 (an unpermuted estimate on the boundary), Newton
+    # steps crept up at the scale of the sampling variances and stopped far from the
+    # optimum. The REML τ² is then the OLS residual variance, and t the OLS t of the
+    # first coefficient (statsmodels OLS, rtol 1e-6).
+    from grouplevel.inference import _refit_kernel as kernel
+
+    rng = np.random.default_rng(12)
+    group = np.repeat(np.arange(3), 2)
+    X = np.column_stack([group == 2, np.ones(6), group == 1]).astype(float)
+    y = rng.normal(size=(3, 6))
+    prec = np.full((3, 6), 1e10)
+    out = np.empty(3)
+    kernel.refit_t_permuted(
+        np.zeros((3, 6)),
+        y,
+        prec,
+        np.ones(6),
+        np.arange(6),
+        X,
+        np.zeros(3),
+        out,
+        kernel.REFIT_MAX_ITER,
+        kernel.REFIT_TOL,
+    )
+    for v in range(3):
+        np.testing.assert_allclose(out[v], sm.OLS(y[v], X).fit().tvalues[0], rtol=1e-6)
