@@ -184,7 +184,7 @@ def design_description(study: Study, fl: FirstLevel) -> dict:
                     for row, w in zip(ft.rows, ft.weights, strict=True)
                 ],
                 "meaning": ft.meaning,
-                "default": ft.name in {d.name for d in design.default_ftests},
+                "default": not ft.declared,
                 "df_numerator": len(ft.rows),
                 "df_denominator": ftest_df_rule(design, fl.random, ft.weights),
                 "permutation": scheme,

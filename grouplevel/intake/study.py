@@ -1182,6 +1182,13 @@ def group_ftests(
     out = [f for f in out if f.name.casefold() not in declared]
     for i, spec in enumerate(settings.ftests, start=1):
         where = f"[ftest {i}] contrasts"
+        if spec.name.casefold() in taken:
+            problems.append(
+                f"{label}: [ftest {i}] name: {spec.name!r} is the name of a group contrast "
+                "tested (names that differ only in case count as one: each names a "
+                "folder); choose another"
+            )
+            continue
         unknown = [n for n in spec.contrasts if n not in known]
         if unknown:
             problems.append(

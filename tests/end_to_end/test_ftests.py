@@ -115,6 +115,10 @@ def test_run_writes_the_f_test_maps(tmp_path):
         ),
         ('name = "dose-any"\ncontrasts = "high-minus-none"', "[ftest 1] contrasts"),
         ('name = "a/b"\ncontrasts = ["high-minus-none"]', "[ftest 1] name"),
+        (
+            'name = "Mean-None"\ncontrasts = ["high-minus-none", "low-minus-none"]',
+            "[ftest 1] name: 'Mean-None' is the name of a group contrast tested",
+        ),
         ('name = "x"\nrows = ["high-minus-none"]', "rows"),
     ],
 )
