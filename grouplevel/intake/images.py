@@ -193,26 +193,47 @@ _INTENTS: tuple[tuple[str, str, str], ...] = (
     ("df", "estimate", "df of t"),
     ("tfce", "estimate", "TFCE"),
     ("t", "t test", "t"),
+    ("f", "f test", "F"),
     ("z", "z score", "z"),
     ("p", "p value", "p uncorrected"),
     ("q", "estimate", "q FDR"),
 )
 
 
-def map_intent(stem: str, df: float | None = None) -> tuple[str, tuple[float, ...], str]:
+def map_intent(
+    stem: str, df: float | tuple[float, float] | None = None
+) -> tuple[str, tuple[float, ...], str]:
     """The NIfTI intent (code name, parameters, name) of an output map.
 
     A t map carries its degrees of freedom as the intent's parameter when they are the
-    same at every voxel; otherwise it is stored as an estimate (see ``df.nii.gz``).
+    same at every voxel; otherwise it is stored as an estimate (see ``df.nii.gz``). An F
+    map (``f``) carries its numerator and denominator degrees of freedom, ``df`` given
+    as a pair, on the same condition.
     FDR q values are adjusted p-values, not p-values of one test, so they are estimates.
     """
     for prefix, intent, name in _INTENTS:
-        exact = prefix in ("t", "z", "p", "q", "se", "df", "effect", "tfce", "mask", "clusters")
+        exact = prefix in (
+            "t",
+            "f",
+            "z",
+            "p",
+            "q",
+            "se",
+            "df",
+            "effect",
+            "tfce",
+            "mask",
+            "clusters",
+        )
         if stem == prefix if exact else stem.startswith(prefix):
             if intent == "t test":
                 if df is None or not np.isfinite(df):
                     return "estimate", (), "t (df varies)"
-                return intent, (float(df),), name
+                return intent, (float(df),), name  # type: ignore[arg-type]
+            if intent == "f test":
+                if df is None or not np.all(np.isfinite(df)):
+                    return "estimate", (), "F (df varies)"
+                return intent, tuple(float(d) for d in df), name  # type: ignore[union-attr]
             return intent, (), name
     return "estimate", (), stem[:16]
 
@@ -225,7 +246,7 @@ def write_map(
     description: str,
     dtype: type = np.float32,
     *,
-    df: float | None = None,
+    df: float | tuple[float, float] | None = None,
 ) -> None:
     """Write masked values as a 3-D NIfTI map on the study grid.
 

@@ -183,6 +183,15 @@ class ContrastSpec:
 
 
 @dataclass(frozen=True)
+class FTestSpec:
+    """An F-test of several group contrasts at once (``[[ftest]]``): its name and the
+    names of the contrasts (default or ``[[contrast]]``) that are its rows."""
+
+    name: str
+    contrasts: tuple[str, ...]
+
+
+@dataclass(frozen=True)
 class ComparisonSpec:
     """A within-animal comparison of first-level conditions (``[[comparison]]``).
 
@@ -228,6 +237,9 @@ class Settings:
     user_contrasts: bool = field(default=False)
     # within-animal comparisons of first-level conditions ([[comparison]])
     comparisons: tuple[ComparisonSpec, ...] = ()
+    # F-tests declared in the study file ([[ftest]]); the design adds one per factor
+    # with more than two levels (grouplevel.intake.design)
+    ftests: tuple[FTestSpec, ...] = ()
 
     def questions_for(self, first_level: str | None) -> QuestionSettings:
         """The questions of one first-level contrast (its override, else [questions])."""
@@ -278,6 +290,7 @@ _SCHEMA: dict[str, tuple[str, ...]] = {
         "variance_groups",
     ),
     "contrast": ("name", "weights"),
+    "ftest": ("name", "contrasts"),
     "comparison": ("name", "conditions"),
     "inference": (
         "permutations",
@@ -381,6 +394,7 @@ def load_settings(path: str | Path) -> Settings:
     model = _read_model(r, _section(r, raw, "model"))
     contrasts = _read_contrasts(r, raw.get("contrast", []))
     comparisons = _read_comparisons(r, raw)
+    ftests = _read_ftests(r, raw.get("ftest", []), contrasts)
     inference = _read_inference(r, _section(r, raw, "inference"))
     clusters = _read_clusters(r, _section(r, raw, "clusters"), inference)
     questions, overrides = _read_questions_tables(r, raw.get("questions", {}))
@@ -403,6 +417,7 @@ def load_settings(path: str | Path) -> Settings:
         # named after what it tests (grouplevel.design); none is assumed here
         user_contrasts=bool(contrasts),
         comparisons=comparisons,
+        ftests=ftests,
     )
 
 
@@ -571,6 +586,61 @@ def _read_contrasts(r: _Reader, blocks: Any) -> tuple[ContrastSpec, ...]:
                 "tables written; remove it",
             )
     return tuple(contrasts)
+
+
+def _read_ftests(
+    r: _Reader, blocks: Any, contrasts: tuple[ContrastSpec, ...]
+) -> tuple[FTestSpec, ...]:
+    """``[[ftest]]`` blocks: a name (it names a folder) and the contrasts tested jointly.
+
+    Whether the named contrasts exist and are linearly independent is checked against
+    each design (:mod:`grouplevel.intake.study`), where the default contrasts are known.
+    """
+    if not isinstance(blocks, list):
+        r.problem("[ftest]", "write F-tests as [[ftest]] blocks (an array of tables)")
+        return ()
+    out: list[FTestSpec] = []
+    taken = {c.name.casefold() for c in contrasts}
+    seen: set[str] = set()
+    for i, block in enumerate(blocks, start=1):
+        where = f"ftest {i}"
+        if not isinstance(block, dict):
+            r.problem(f"[[ftest]] {i}", "must be a table")
+            continue
+        r.check_keys(where, block, _SCHEMA["ftest"])
+        name = r.get(where, block, "name", str, required=True)
+        rows = r.get(where, block, "contrasts", list, required=True)
+        if name is None or rows is None:
+            continue
+        why = name_problem(name) or (
+            f"holds {', '.join(control_characters(name))}" if control_characters(name) else None
+        )
+        if why:
+            r.problem(f"[{where}] name", f"{name!r} {why}; it names a folder: {NAME_RULE}")
+            continue
+        if name.casefold() in seen or name.casefold() in taken:
+            r.problem(
+                f"[{where}] name",
+                f"{name!r} is already the name of another [[ftest]] or [[contrast]] (names "
+                "that differ only in case count as one); choose another",
+            )
+        seen.add(name.casefold())
+        if not rows or not all(isinstance(x, str) for x in rows):
+            r.problem(
+                f"[{where}] contrasts",
+                'must be a list of contrast names, e.g. ["high-minus-none", "low-minus-none"]',
+            )
+            continue
+        twice = sorted({x for x in rows if rows.count(x) > 1})
+        if twice:
+            r.problem(
+                f"[{where}] contrasts",
+                f"names {', '.join(repr(x) for x in twice)} more than once; each contrast is "
+                "one row of the F-test",
+            )
+            continue
+        out.append(FTestSpec(name=name, contrasts=tuple(rows)))
+    return tuple(out)
 
 
 def _read_inference(r: _Reader, inf: dict[str, Any]) -> InferenceSettings:

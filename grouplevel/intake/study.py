@@ -15,6 +15,7 @@ positive. A run without a usable value at a voxel carries no weight there.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -27,6 +28,7 @@ from grouplevel.intake.bids import derivatives_table
 from grouplevel.intake.comparisons import PAIRED_LINES, TERMS, combine, comparison_rows
 from grouplevel.intake.design import (
     Design,
+    GroupFTest,
     RandomEffects,
     build_design,
     contrast_vector,
@@ -42,6 +44,7 @@ from grouplevel.intake.settings import (
     with_overrides,
 )
 from grouplevel.intake.textcheck import control_characters, read_text_table
+from grouplevel.model.ftest import contrast_rank
 from grouplevel.outputs.names import NAME_RULE, case_collisions, name_problem, reserved
 
 TRUE_WORDS = {"true", "yes", "1", "y", "t", "x"}
@@ -74,6 +77,8 @@ class FirstLevel:
     # group contrast name -> what it tests, in plain words (default contrasts)
     contrast_meanings: dict[str, str] = field(default_factory=dict)
     random: RandomEffects = field(default_factory=RandomEffects)  # slopes, sessions, groups
+    # F-tests of several group contrasts at once (default per factor, and [[ftest]])
+    ftests: tuple[GroupFTest, ...] = ()
 
     def output_name(self, contrast_name: str, default_contrast: bool) -> str:
         """Folder name of a group contrast's maps (see DESIGN.md, output contract)."""
@@ -298,6 +303,9 @@ def _check_output_names(first_levels: list[FirstLevel]) -> list[str]:
         for cname, _ in fl.contrasts:
             out = fl.output_name(cname, cname == DEFAULT_CONTRAST_NAME)
             where[out] = f"condition {fl.name!r}, group contrast {cname!r}"
+        for ft in fl.ftests:
+            out = fl.output_name(ft.name, False)
+            where[out] = f"condition {fl.name!r}, F-test {ft.name!r}"
     problems = [
         f"result folder {name!r} ({what}) would clash with grouplevel's own {name!r} in the "
         "output folder; rename the contrast"
@@ -815,7 +823,10 @@ def _first_level(
     if design is None:
         return None
     contrasts, meanings = _group_contrasts(context.settings, design, label, problems)
-    random = _random_effects(context.settings, design, inc, contrasts, label, problems, warnings)
+    ftests = group_ftests(context.settings, design, contrasts, label, problems)
+    random = _random_effects(
+        context.settings, design, inc, contrasts, label, problems, warnings, ftests
+    )
     coverage = _data_pass(context, inc, design, problems, warnings)
     if coverage is None:
         return None
@@ -835,6 +846,7 @@ def _first_level(
         conditions=conditions,
         contrast_meanings=meanings,
         random=random,
+        ftests=tuple(ftests),
     )
 
 
@@ -902,6 +914,7 @@ def _random_effects(
     label: str,
     problems: list[str],
     warnings: list[str],
+    ftests: Sequence[GroupFTest] = (),
 ) -> RandomEffects:
     """The random effects the design gets ([model]); what cannot be fitted or
     permuted correctly is a problem."""
@@ -914,6 +927,7 @@ def _random_effects(
             settings.model,
             settings.inference.permutations,
             full_coverage=settings.study.min_coverage >= 1.0,
+            ftests=ftests,
         )
     except UserError as exc:
         problems.append(f"{label}: {exc}")
@@ -1149,6 +1163,65 @@ def _group_contrasts(
     for gc in design.default_contrasts:
         contrasts.append((gc.name, gc.weights))
     return contrasts, {gc.name: gc.meaning for gc in design.default_contrasts}
+
+
+def group_ftests(
+    settings: Settings,
+    design: Design,
+    contrasts: list[tuple[str, np.ndarray]],
+    label: str,
+    problems: list[str],
+) -> list[GroupFTest]:
+    """The design's default F-tests and the study's ``[[ftest]]`` blocks.
+
+    The rows of an ``[[ftest]]`` are named contrasts: the study's ``[[contrast]]`` blocks
+    or the design's default contrasts (also when ``[[contrast]]`` blocks replace them as
+    the contrasts tested). Unknown names and linearly dependent rows are problems naming
+    the block.
+    """
+    known = {gc.name: gc.weights for gc in design.default_contrasts}
+    known.update(dict(contrasts))
+    taken = {name.casefold() for name, _ in contrasts}
+    out = [f for f in design.default_ftests if f.name.casefold() not in taken]
+    declared = {spec.name.casefold() for spec in settings.ftests}
+    out = [f for f in out if f.name.casefold() not in declared]
+    for i, spec in enumerate(settings.ftests, start=1):
+        where = f"[ftest {i}] contrasts"
+        if spec.name.casefold() in taken:
+            problems.append(
+                f"{label}: [ftest {i}] name: {spec.name!r} is the name of a group contrast "
+                "tested (names that differ only in case count as one: each names a "
+                "folder); choose another"
+            )
+            continue
+        unknown = [n for n in spec.contrasts if n not in known]
+        if unknown:
+            problems.append(
+                f"{label}: {where}: {', '.join(repr(n) for n in unknown)} "
+                f"{'is not a contrast' if len(unknown) == 1 else 'are not contrasts'} of "
+                f"this design; contrasts: {', '.join(known) or 'none'}"
+            )
+            continue
+        weights = np.vstack([known[n] for n in spec.contrasts])
+        rank = contrast_rank(weights)
+        if rank < len(spec.contrasts):
+            problems.append(
+                f"{label}: {where}: the {len(spec.contrasts)} contrasts are linearly "
+                f"dependent (rank {rank}): one is a combination of the others, so the "
+                f"F-test '{spec.name}' has only {rank} independent row(s); list only "
+                "independent contrasts"
+            )
+            continue
+        out.append(
+            GroupFTest(
+                name=spec.name,
+                rows=spec.contrasts,
+                weights=weights,
+                meaning="any of " + ", ".join(spec.contrasts) + " differs from zero",
+                declared=True,
+            )
+        )
+    return out
 
 
 def _check_questions(settings: Settings, contrast_names: list[str], atlas: Atlas | None):

@@ -241,6 +241,15 @@ def _model_paragraph(summary: dict, model: dict, results: dict, cites: list[str]
         "Each group contrast was tested with t = cᵀβ̂ / SE, the model-based standard "
         f"error at the REML estimates, with {df_words}."
     )
+    ftests = summary.get("ftests") or {}
+    if ftests:
+        names = ", ".join(f'"{n}"' for n in ftests)
+        model_sentences.append(
+            f"The F-test(s) {names} tested their rows L jointly with the Wald statistic "
+            "F = (Lβ̂)ᵀ(L Cov(β̂) Lᵀ)⁻¹(Lβ̂)/q on q and the denominator degrees of freedom "
+            "of the level the rows test, upper tail; FDR and permutation inference used "
+            "the normal value with the same upper-tail p."
+        )
     return " ".join(model_sentences)
 
 

@@ -665,10 +665,43 @@ def _study_context(summary: dict) -> dict:
         "contrasts": contrasts,
         "inference": inference_rows,
         "per_result": per_result,
+        "ftests": _ftest_rows(summary),
         "warnings": [str(w) for w in summary.get("warnings") or []],
         "atlas": summary.get("atlas"),
         "grid": summary.get("grid"),
     }
+
+
+def _ftest_rows(summary: dict) -> list[dict]:
+    """One row per F-test: what it tests, its df, what survives, and what it cannot say."""
+    rows = []
+    for name, f in (summary.get("ftests") or {}).items():
+        inf = f.get("inference") or {}
+        perm = inf.get("permutation") or {}
+        survives = [f"FDR: {(inf.get('fdr') or {}).get('surviving_voxels', 0)} voxel(s)"]
+        if perm:
+            s = perm.get("surviving") or {}
+            survives.append(f"FWE voxel: {s.get('voxel', 0)}")
+            if s.get("tfce") is not None:
+                survives.append(f"FWE TFCE: {s['tfce']}")
+            survives.append(f"smallest attainable p {perm['smallest_attainable_p']:.3g}")
+        dfs = f.get("df_denominator_range") or [float("nan")] * 2
+        df = f"{dfs[0]:g}" if dfs[0] == dfs[1] else f"{dfs[0]:g}–{dfs[1]:g}"
+        peak = f.get("peak")
+        rows.append(
+            {
+                "name": name,
+                "text": f"{f.get('meaning', '')}; rows "
+                + ", ".join(r["contrast"] for r in f.get("rows") or [])
+                + f"; F({f.get('df_numerator')}, {df})"
+                + (f", peak F = {peak['f']:.3g}" if peak else "")
+                + "; "
+                + ", ".join(survives),
+                "cautions": list(f.get("cautions") or [])
+                + [(f.get("questions") or {}).get("why", "")],
+            }
+        )
+    return rows
 
 
 def _first_level_rows(results: dict) -> list[dict]:
