@@ -292,7 +292,8 @@ def read_atlas(
     labels
         Label table (TSV, or CSV), see the module docstring.
     grid
-        The study grid.
+        The study grid. When its headers were declared scaled or their axes exchanged
+        (:attr:`Grid.header_to_true`), the atlas header is read the same way.
     mask
         Boolean analysis mask on ``grid``.
     midline_mm
@@ -329,7 +330,8 @@ def read_atlas(
     table = read_label_table(Path(labels))
     return build_atlas(
         data,
-        np.asarray(img.affine, dtype=float),
+        # the atlas header read like the maps' ([space] header_units_per_mm, header_axes)
+        grid.header_to_true @ np.asarray(img.affine, dtype=float),
         table,
         grid,
         mask,
