@@ -10,6 +10,7 @@ header's axes point).
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import nibabel as nib
@@ -195,3 +196,24 @@ def test_output_maps_keep_the_headers_affine(tmp_path):
     # Reference: nibabel reads back the header's own affine (the map lies on the template)
     np.testing.assert_allclose(nib.load(tmp_path / "t.nii.gz").affine, header, atol=1e-6)
     np.testing.assert_allclose(grid.header_to_true @ header, grid.affine, atol=1e-12)
+
+
+def test_written_folder_of_a_declared_tenfold_study(three_studies, tmp_path):
+    affine, study = three_studies["tenfold"]
+    out = grouplevel.write_outputs(study, [_fit(study)], tmp_path / "out")
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    # summary.json: the true affine, the headers' own, and the matrix between them
+    np.testing.assert_allclose(summary["grid"]["affine"], _true_affine(), atol=1e-12)
+    np.testing.assert_allclose(summary["grid"]["header_affine"], affine, atol=1e-12)
+    np.testing.assert_allclose(summary["grid"]["header_to_true"], np.diag([0.1] * 3 + [1]))
+    # output maps keep the headers' affine (nibabel reads it back), so they lie on the
+    # template in a viewer that reads those headers
+    (folder,) = [p for p in out.iterdir() if (p / "z.nii.gz").is_file()]
+    np.testing.assert_allclose(nib.load(folder / "z.nii.gz").affine, affine, atol=1e-4)
+    # the tables are in true mm³ (0.125 mm³ voxels)
+    clusters = pd.read_csv(folder / "clusters.tsv", sep="\t")
+    first = clusters.iloc[0]
+    assert first["volume_mm3"] == pytest.approx(first["voxels"] * VOXEL**3)
+    methods = (out / "methods.md").read_text(encoding="utf-8")
+    assert "their lengths were divided by 10" in methods
+    assert "report.html" in {p.name for p in out.iterdir()}
