@@ -244,7 +244,7 @@ def _model_paragraph(summary: dict, model: dict, results: dict, cites: list[str]
     return " ".join(model_sentences)
 
 
-def _header_sentence(space: dict) -> str | None:
+def header_sentence(space: dict) -> str | None:
     """How the image headers were read, when they were declared scaled or reordered."""
     units = float(space.get("header_units_per_mm", 1.0))
     axes = list(space.get("header_axes") or ["right", "anterior", "dorsal"])
@@ -269,7 +269,7 @@ def _header_sentence(space: dict) -> str | None:
 def _data_paragraph(results: dict, study: dict, space: dict | None = None) -> str:
     """Animals, runs, voxels and df of each analysed map."""
     data_sentences = []
-    header = _header_sentence(space or {})
+    header = header_sentence(space or {})
     if header:
         data_sentences.append(header)
     for name, r in results.items():

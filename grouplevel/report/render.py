@@ -29,7 +29,7 @@ import numpy as np
 from grouplevel.outputs.folder import require_grouplevel_output
 from grouplevel.outputs.summary import present_files, read_summary, result_names
 from grouplevel.report import figures
-from grouplevel.report.methods import methods_text
+from grouplevel.report.methods import header_sentence, methods_text
 from grouplevel.report.tables import (
     STAT,
     P,
@@ -792,7 +792,7 @@ def _model_rows(model: dict, space: dict) -> list[tuple[str, str]]:
             "origin",
             f"{space.get('origin_name', 'origin')} at ({', '.join(f'{v:g}' for v in origin)}) mm",
         ),
-    ]
+    ] + ([("image headers", header)] if (header := header_sentence(space)) else [])
 
 
 def _frames(out_dir: Path, name: str) -> dict:
