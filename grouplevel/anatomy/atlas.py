@@ -1525,6 +1525,7 @@ def _atlas_warnings(
         )
     wrong = []
     lateral = 0
+    wrong_sides: set[str] = set()
     for number, region in enumerate(tree.leaves):
         own = hemisphere[region] if region < tree.n_table else tree.hemisphere[region]
         total = leaf_total[number]
@@ -1533,8 +1534,9 @@ def _atlas_warnings(
             other = counts.side_count[number, 1 if own == "left" else 0] / total
             if other > WRONG_SIDE_WARNING:
                 wrong.append(f"{tree.index[region]} ({tree.name[region]}, {own})")
+                wrong_sides.add(own)
     if wrong and len(wrong) == lateral:
-        warnings.append(_swapped_sides_message(midline, image_name, table_name))
+        warnings.append(_swapped_sides_message(midline, wrong_sides, image_name, table_name))
     elif wrong:
         warnings.append(
             f"{image_name}: {len(wrong)} region(s) labelled left or right lie mostly on the "
@@ -1544,16 +1546,24 @@ def _atlas_warnings(
     return warnings
 
 
-def _swapped_sides_message(midline: float, image_name: str, table_name: str) -> str:
-    """One sentence for a table whose left and right are the header's right and left."""
+def _swapped_sides_message(
+    midline: float, sides: set[str], image_name: str, table_name: str
+) -> str:
+    """One sentence for a table whose left and right are the header's right and left
+    (``sides``: the sides the table names, every region of which is on the other)."""
+    other = {"left": "right", "right": "left"}
+    where = ", and ".join(
+        f"every region the table calls {side} lies on the header's {other[side]}"
+        for side in ("left", "right")
+        if side in sides
+    )
     return (
         f"{table_name}: the table's left and right are swapped against the header of "
-        f"{image_name}: every region the table calls left lies on the header's right of "
-        f"the midline x = {midline:.3f} mm, and every region it calls right on the "
-        "header's left; if the header is right (x grows towards the animal's right), swap "
-        "'left' and 'right' in the table's hemisphere column, otherwise correct the "
-        "headers of the atlas, template and maps; until then region sides taken from the "
-        "table contradict the positions that mirror maps and asymmetry tests use"
+        f"{image_name}: {where} of the midline x = {midline:.3f} mm; if the header is "
+        "right (x grows towards the animal's right), swap 'left' and 'right' in the "
+        "table's hemisphere column, otherwise correct the headers of the atlas, template "
+        "and maps; until then region sides taken from the table contradict the positions "
+        "that mirror maps and asymmetry tests use"
     )
 
 

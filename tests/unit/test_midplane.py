@@ -138,7 +138,10 @@ def test_swapped_table_is_diagnosed_and_the_midline_is_the_brains():
     swapped = [w for w in atlas.warnings if "swapped" in w]
     assert len(swapped) == 1
     assert swapped[0].startswith("labels.tsv: the table's left and right are swapped")
-    assert "every region the table calls left lies on the header's right" in swapped[0]
+    assert (
+        "every region the table calls left lies on the header's right, and every region the "
+        "table calls right lies on the header's left of the midline x = 0.300 mm"
+    ) in swapped[0]
     assert "swap 'left' and 'right' in the table's hemisphere column" in swapped[0]
     # no half list of "wrong side" regions, no low-Dice warning
     assert not any("lie mostly on the other side" in w for w in atlas.warnings)
