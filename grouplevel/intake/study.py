@@ -1056,9 +1056,9 @@ def _header_warnings(settings: Settings, brain: np.ndarray | None, grid: Grid) -
             f"{grid.voxel_size.round(3).tolist()} mm), far more than a rodent brain: the "
             "headers probably carry the ×10 scaling some labs use so that software made "
             "for human brains accepts rodent images. Every volume, distance and "
-            "coordinate of the outputs would be in the header's units (mm³ a thousand "
-            f"times too large); declare it with [space] header_units_per_mm = {units:g} "
-            f"in {settings.source.name}"
+            "coordinate of the outputs would be in the header's units (mm³ "
+            f"{scale**3:g} times too large); declare it with [space] "
+            f"header_units_per_mm = {units:g} in {settings.source.name}"
         )
     longest = int(np.argmax(extent))
     if longest != 1 and extent[longest] > extent[1] * AXIS_ORDER_MARGIN:
@@ -1075,7 +1075,8 @@ def _header_warnings(settings: Settings, brain: np.ndarray | None, grid: Grid) -
             f"({extent[longest]:.1f} mm, header axis {header_axis}) and only "
             f"{extent[1]:.1f} mm anterior–posterior, yet a rodent brain is longest "
             "anterior–posterior: the headers' axes may be exchanged, and AP, ML and DV in "
-            f"the outputs would then be swapped; {fix}"
+            "the outputs would then be swapped (a mask that covers only part of the brain "
+            f"along AP does this too, and then nothing needs declaring); {fix}"
         )
     return warnings
 
