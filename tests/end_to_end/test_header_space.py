@@ -218,3 +218,21 @@ def test_written_folder_of_a_declared_tenfold_study(three_studies, tmp_path):
     assert "their lengths were divided by 10" in methods
     report = (out / "report.html").read_text(encoding="utf-8")
     assert "their lengths were divided by 10" in report
+
+
+def test_check_says_when_the_tables_sides_are_swapped(tmp_path, capsys):
+    from grouplevel.cli import main
+
+    toml = _study(tmp_path / "swapped", _true_affine(), "")
+    table = tmp_path / "swapped" / "atlas.tsv"
+    table.write_text(
+        table.read_text().replace("left", "LEFT").replace("right", "left").replace("LEFT", "right")
+    )
+    assert main(["check", str(toml)]) == 0
+    text = capsys.readouterr()
+    text = text.out + text.err
+    # the brain's own midline (x = 0 by construction), with a high mirror overlap
+    assert "x = 0.00 mm (mirror plane of the analysis mask)" in text
+    assert "(Dice) 1.000" in text
+    assert "the table's left and right are swapped against the header" in text
+    assert text.count("warning:") == 1
