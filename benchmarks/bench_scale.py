@@ -13,6 +13,12 @@ maps (1 = linear).
 
 Targets: peak RSS below 4 GiB at 1 000 000 voxels × 200 maps; time about linear.
 
+With ``--whole N`` each size is also run as a whole ``grouplevel run`` in a fresh child:
+an atlas of four areas per hemisphere is added, with the questions (symmetry and
+specificity of one area, consistency, run quality) and N sign flips with TFCE and
+clusters, the maps, tables and report written; the child prints its time per step and
+its peak resident memory (target: below 4 GiB at 1 000 000 voxels × 200 maps).
+
 Run with ``.venv/bin/python benchmarks/bench_scale.py`` (optionally ``--voxels 250000
 1000000``, ``--memory-gb 6``, ``--dir /some/scratch``). Needs about 2 GB of scratch
 disk per million voxels. ``--tiny`` (6 animals × 2 runs, 2 000 and 4 000 voxels) runs
@@ -99,6 +105,48 @@ def write_study(
     return seconds
 
 
+def add_atlas_and_questions(folder: Path, n_voxels: int, permutations: int) -> None:
+    """Turn the study into a whole run: an atlas of 4 areas per hemisphere, the
+    questions on two of them, and ``permutations`` sign flips with TFCE."""
+    shape = grid_shape(n_voxels)
+    # mmap=False: the files are rewritten below, and a mapped file must not shrink
+    mask = np.asarray(nib.load(folder / "mask.nii", mmap=False).dataobj).astype(bool)
+    x = np.arange(shape[0])[:, None, None]
+    y = np.arange(shape[1])[None, :, None]
+    area = np.minimum(4 * y // shape[1], 3) + 1  # four bands front to back
+    labels = np.where(x < shape[0] // 2, area, area + 4) * mask  # left 1–4, right 5–8
+    affine = np.diag([VOXEL_MM, VOXEL_MM, VOXEL_MM, 1.0])
+    affine[0, 3] = -VOXEL_MM * (shape[0] - 1) / 2  # x = 0 mm halfway across
+    for path in [folder / "mask.nii", *folder.glob("a*_*.nii")]:  # the new affine
+        data = np.asarray(nib.load(path, mmap=False).dataobj)
+        nib.save(nib.Nifti1Image(data, affine), path)
+    nib.save(nib.Nifti1Image(labels.astype(np.int16), affine), folder / "atlas.nii")
+    rows = ["index\tname\tabbreviation\themisphere"]
+    for side, offset in (("left", 0), ("right", 4)):
+        rows += [f"{offset + k}\tarea {k}\tA{k}\t{side}" for k in range(1, 5)]
+    (folder / "atlas.tsv").write_text("\n".join(rows) + "\n")
+    text = (folder / "study.toml").read_text()
+    text = text.replace("permutations = 0", f"permutations = {permutations}\nseed = 1")
+    text += (
+        '\n[atlas]\nimage = "atlas.nii"\nlabels = "atlas.tsv"\n\n'
+        '[questions]\nsymmetry = ["area 2"]\ntargets = ["area 2"]\n'
+    )
+    (folder / "study.toml").write_text(text)
+
+
+def whole_child(toml: str, out: str) -> None:
+    """A whole `grouplevel run` (questions, permutations, report); one JSON line."""
+    from grouplevel.pipeline import run_study
+    from grouplevel.timing import StepClock
+
+    clock = StepClock()
+    t0 = time.perf_counter()
+    run_study(toml, out, force=True, clock=clock)
+    seconds = time.perf_counter() - t0
+    peak_kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    print(json.dumps({"run_s": seconds, "steps": clock.seconds, "peak_rss_gib": peak_kib / 2**20}))
+
+
 def child(toml: str) -> None:
     """Load, fit and test one study; print one JSON line with times and peak RSS."""
     from grouplevel.model import between_animal_df, fit_reml, test_contrast
@@ -151,11 +199,24 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--dir", default=None, help="scratch folder (default: system temp)")
     parser.add_argument("--seed", type=int, default=1)
     parser.add_argument("--tiny", action="store_true", help="tiny sizes: checks the script runs")
+    parser.add_argument(
+        "--whole",
+        type=int,
+        default=None,
+        metavar="PERMUTATIONS",
+        help="also time a whole `run` (atlas, questions, this many sign flips with TFCE)",
+    )
     parser.add_argument("--child", default=None, help=argparse.SUPPRESS)
+    parser.add_argument("--whole-child", nargs=2, default=None, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.child:
         child(args.child)
         return
+    if args.whole_child:
+        whole_child(*args.whole_child)
+        return
+    if args.tiny and args.whole is None:
+        args.whole = 4
     animals, runs = (TINY_ANIMALS, TINY_RUNS) if args.tiny else (N_ANIMALS, RUNS_PER_ANIMAL)
     sizes = args.voxels or (list(TINY_VOXELS) if args.tiny else [250_000, 1_000_000])
     n_maps = animals * runs
@@ -188,6 +249,29 @@ def main(argv: list[str] | None = None) -> None:
                 f"{100 * res['converged_share']:.2f} %",
                 flush=True,
             )
+            if args.whole:
+                add_atlas_and_questions(folder, n_vox, args.whole)
+                whole = subprocess.run(
+                    [
+                        sys.executable,
+                        __file__,
+                        "--whole-child",
+                        str(folder / "study.toml"),
+                        str(folder / "out"),
+                    ],
+                    capture_output=True,
+                    text=True,
+                )
+                if whole.returncode:
+                    sys.exit(f"the whole run failed:\n{whole.stderr}")
+                w = json.loads(whole.stdout.strip().splitlines()[-1])
+                steps = ", ".join(f"{k} {v:.1f} s" for k, v in w["steps"].items())
+                print(
+                    f"{n_vox:>10,} voxels × {n_maps} maps, whole run with questions and "
+                    f"{args.whole} permutations: {w['run_s']:.1f} s ({steps}); "
+                    f"whole-run peak RSS: {w['peak_rss_gib']:.2f} GiB",
+                    flush=True,
+                )
     if len(results) >= 2:
         size = np.log([r["voxels"] * r["runs"] for r in results])
         for key in ("fit_s", "load_s"):

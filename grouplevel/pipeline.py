@@ -76,10 +76,10 @@ from grouplevel.questions.ask import (
     question_plan,
     skipped_warning,
 )
-from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.results.compute import Backend, fit_design, open_backend
 from grouplevel.results.correction import permutation_arguments
 from grouplevel.results.maps import MAP_DESCRIPTIONS, Corrected, GroupMap
+from grouplevel.timing import StepClock
 
 # Variance components written on top of var_animal and var_run (general model only):
 # component-name pattern -> (file stem, header description). ``{0}`` is the slope or
@@ -468,22 +468,31 @@ def _fit_first_level(
     log: Callable[[str], None],
     quiet: bool = True,
     backend: Backend | None = None,
+    clock: StepClock | None = None,
 ) -> tuple[list[GroupMap], list[str]]:
     warnings: list[str] = []
     label = fl.name or "the study"
+    clock = clock or StepClock()
     start = time.perf_counter()
-    y, s2, mask = _fitted_voxels(study, fl, label, warnings)
-    fitted = _fit(study, fl, label, y, s2, mask, log, backend, warnings)
-    group_note = _variance_group_note(fitted)
+    with clock.step("read maps"):
+        y, s2, mask = _fitted_voxels(study, fl, label, warnings)
+    with clock.step("fit"):
+        fitted = _fit(study, fl, label, y, s2, mask, log, backend, warnings)
+        group_note = _variance_group_note(fitted)
     if group_note:
         warnings.append(group_note)
-    regions = _region_data(study, fitted)
+    with clock.step("regions"):
+        regions = _region_data(study, fitted)
     results = []
     for cname, c in fl.contrasts:
-        gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
-        if regions is not None:
-            gm = replace(gm, tables=region_tables(gm, regions, fl.design, c, study.settings))
-        results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
+        with clock.step("test and correct"):
+            gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
+        with clock.step("regions"):
+            if regions is not None:
+                tables = region_tables(gm, regions, fl.design, c, study.settings)
+                gm = replace(gm, tables=tables)
+        with clock.step("questions"):
+            results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings
 
@@ -708,9 +717,16 @@ def _with_answers(
 
 
 def fit_study(
-    study: Study, log: Callable[[str], None] | None = None, *, quiet: bool = True
+    study: Study,
+    log: Callable[[str], None] | None = None,
+    *,
+    quiet: bool = True,
+    clock: StepClock | None = None,
 ) -> tuple[list[GroupMap], list[str]]:
     """Fit the mixed model for every first-level contrast and test every group contrast.
+
+    ``clock``, when given, receives the wall time of each step (read maps, fit, test
+    and correct, regions, questions).
 
     Returns
     -------
@@ -727,7 +743,7 @@ def fit_study(
         if backend.distributed:
             log(f"computing on dask: {backend.workers} worker(s)")
         for fl in study.first_levels:
-            m, w = _fit_first_level(study, fl, log, quiet, backend)
+            m, w = _fit_first_level(study, fl, log, quiet, backend, clock)
             maps.extend(m)
             warnings.extend(w)
     warnings.extend(skipped_warning([m.name for m in maps if m.answers and not m.answers.asked]))
@@ -794,6 +810,8 @@ def _atlas_summary(study: Study) -> dict | None:
         "midline_source": atlas.midline_source,
         "mirror_dice": round(float(atlas.mirror_dice), 4),
         "orientation": atlas.orientation,
+        # how the label table was read when not as written (columns, sides in names)
+        "table_reading": list(atlas.notes),
     }
 
 
@@ -1091,8 +1109,11 @@ def write_outputs(
     *,
     warnings: list[str] | None = None,
     force: bool = False,
+    clock: StepClock | None = None,
 ) -> Path:
     """Write every map, the masks and summary.json into ``out_dir`` atomically.
+
+    ``clock``, when given, receives the wall time of writing the maps and of the report.
 
     Everything is written to a hidden sibling folder first and moved into place at the
     end, so an interrupted run never leaves a folder that looks complete.
@@ -1111,10 +1132,12 @@ def write_outputs(
     # the usual permissions; an existing folder of that name is never touched)
     tmp = out.parent / f".{out.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
     tmp.mkdir()
+    clock = clock or StepClock()
     try:
         grid = study.grid
-        for gm in maps:
-            _write_group_map(child_path(tmp, gm.name), gm)
+        with clock.step("write maps"):
+            for gm in maps:
+                _write_group_map(child_path(tmp, gm.name), gm)
         summary = {
             "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
@@ -1139,11 +1162,15 @@ def write_outputs(
             "warnings": list(study.warnings) + list(warnings or []),
         }
         write_summary(tmp, summary)
-        # the human-readable outputs are made from the folder just written, exactly as
-        # `grouplevel report DIR` makes them later
-        write_methods(tmp)
-        write_manuscript_tables(tmp)
-        render_report(tmp)
+        with clock.step("report"):
+            # imported here: the report stack (matplotlib, jinja2) loads only when drawn
+            from grouplevel.report import render_report, write_manuscript_tables, write_methods
+
+            # the human-readable outputs are made from the folder just written, exactly
+            # as `grouplevel report DIR` makes them later
+            write_methods(tmp)
+            write_manuscript_tables(tmp)
+            render_report(tmp)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
@@ -1167,24 +1194,30 @@ def run_study(
     log: Callable[[str], None] | None = None,
     permutations: int | None = None,
     seed: int | None = None,
+    clock: StepClock | None = None,
 ) -> Path:
     """Validate, fit and write a study in one call (what ``grouplevel run`` does).
 
     ``permutations`` and ``seed`` override the study file's ``[inference]`` values. A
-    progress bar is shown for the permutations when ``log`` is given.
+    progress bar is shown for the permutations when ``log`` is given, and the wall time
+    per step at the end (``clock``, when given, keeps those times for the caller).
     """
     quiet = log is None
     log = log or (lambda _msg: None)
+    clock = clock or StepClock()
     # the cheap checks first (before the maps are read), then with every input known
     check_output_folder(out_dir, force, inputs=[("study file", Path(path))], ownership=False)
-    study = load_study(path, permutations=permutations, seed=seed)
+    with clock.step("check inputs"):
+        study = load_study(path, permutations=permutations, seed=seed)
     out = check_output_folder(out_dir, force, inputs=study_inputs(study))
     for w in study.warnings:
         log(f"warning: {w}")
-    maps, warnings = fit_study(study, log, quiet=quiet)
+    maps, warnings = fit_study(study, log, quiet=quiet, clock=clock)
     for w in warnings:
         log(f"warning: {w}")
-    return write_outputs(study, maps, out, warnings=warnings, force=force)
+    written = write_outputs(study, maps, out, warnings=warnings, force=force, clock=clock)
+    log(clock.line())
+    return written
 
 
 __all__ = [

@@ -5,7 +5,8 @@ BIDS ``dseg.tsv``: columns ``index`` and ``name`` (required), and optionally
 ``abbreviation``, ``hemisphere`` (left / right / both or empty), ``parent`` (the index or
 the name of the enclosing structure, empty for a top-level one) and ``color``. Usually
 only the leaves of the hierarchy are painted in the image; their parents are the sums of
-their children.
+their children. Tables in other usual forms (other column names, the hemisphere in the
+name, a JSON tree) are brought into this shape by :mod:`grouplevel.anatomy.labels`.
 
 :func:`build_atlas` brings such an atlas onto the study grid and returns an
 :class:`Atlas`. Its central piece is a sparse matrix ``shares`` with one row per in-mask
@@ -66,7 +67,7 @@ its children's.
 from __future__ import annotations
 
 import difflib
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -76,11 +77,12 @@ import pandas as pd
 import scipy.sparse as sp
 
 from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM, describe_orientation
+from grouplevel.anatomy.labels import read_label_table
 from grouplevel.anatomy.midplane import best_mirror_plane
 from grouplevel.errors import UserError
 from grouplevel.intake.images import AFFINE_TOLERANCE_MM, Grid, affine_problem
 from grouplevel.intake.settings import DEFAULT_ATLAS_MIN_COVERAGE
-from grouplevel.intake.textcheck import control_characters, read_text_table
+from grouplevel.intake.textcheck import control_characters
 
 # Smallest share of the analysis mask that the atlas labels must cover (defined with the
 # other defaults in grouplevel.config).
@@ -185,6 +187,9 @@ class Atlas:
         Share of the analysis mask covered by atlas labels (0 to 1).
     warnings
         Problems worth telling the user that did not stop the build.
+    notes
+        What reading the label table involved beyond reading it as written (see
+        :func:`grouplevel.anatomy.labels.read_label_table`), for ``check`` to print.
     """
 
     regions: pd.DataFrame
@@ -197,6 +202,7 @@ class Atlas:
     orientation: str
     coverage: float
     warnings: tuple[str, ...]
+    notes: tuple[str, ...] = ()
 
     def region_rows(self, name: str) -> list[int]:
         """Rows of ``regions`` (columns of ``shares``) whose name or abbreviation matches.
@@ -255,25 +261,6 @@ class Atlas:
 # --------------------------------------------------------------------------------------
 
 
-def read_label_table(path: Path) -> pd.DataFrame:
-    """Read an atlas label table (TSV, or CSV when the file name ends in ``.csv``).
-
-    Every cell is read as text (so an abbreviation such as ``NA`` is not taken for a
-    missing value); :func:`build_atlas` checks and converts them.
-
-    Raises
-    ------
-    UserError
-        When the file is missing or cannot be parsed.
-    """
-    path = Path(path)
-    if not path.is_file():
-        raise UserError(f"{path}: atlas label table not found")
-    table = read_text_table(path, "atlas label table", "index, name, ...")
-    table.columns = [str(c).strip().lower() for c in table.columns]
-    return table
-
-
 def read_atlas(
     image: Path,
     labels: Path,
@@ -290,7 +277,8 @@ def read_atlas(
     image
         NIfTI label image (integers, 0 = background).
     labels
-        Label table (TSV, or CSV), see the module docstring.
+        Label table in any form :func:`grouplevel.anatomy.labels.read_label_table`
+        reads (BIDS-style TSV, CSV/TSV with usual column names, JSON list or tree).
     grid
         The study grid. When its headers were declared scaled or their axes exchanged
         (:attr:`Grid.header_to_true`), the atlas header is read the same way.
@@ -328,11 +316,11 @@ def read_atlas(
     if why:
         raise UserError(f"{image}: {why} ([atlas] image)")
     table = read_label_table(Path(labels))
-    return build_atlas(
+    atlas = build_atlas(
         data,
         # the atlas header read like the maps' ([space] header_units_per_mm, header_axes)
         grid.header_to_true @ np.asarray(img.affine, dtype=float),
-        table,
+        table.table,
         grid,
         mask,
         midline_mm=midline_mm,
@@ -340,6 +328,7 @@ def read_atlas(
         image_name=str(image),
         table_name=str(labels),
     )
+    return replace(atlas, notes=table.notes)
 
 
 # --------------------------------------------------------------------------------------

@@ -258,7 +258,8 @@ def _regions_text(
     hemispheres: np.ndarray,
     top: int,
 ) -> str:
-    """ "name (hemisphere) 45% of cluster, 12% of region; ..." for the largest overlaps."""
+    """ "name [abbreviation] (hemisphere) 45% of cluster, 12% of region; ..." for the
+    largest overlaps."""
     order = np.argsort(-overlap, kind="stable")[:top]
     parts = []
     for r in order:
@@ -337,9 +338,9 @@ def cluster_table(
         the origin (:func:`grouplevel.coordinates.to_stereotaxic`). ``peak_region`` is
         the leaf with the largest share of the peak voxel (:attr:`Atlas.label_volume`),
         :data:`UNLABELLED` when none. ``regions`` lists the leaves with the largest
-        shares of the cluster: "name (hemisphere) 45% of cluster, 12% of region", where
-        the second number is the share of the region's in-mask volume inside the
-        cluster.
+        shares of the cluster: "name [abbreviation] (hemisphere) 45% of cluster, 12% of
+        region" (the abbreviation where the atlas gives one), where the second number is
+        the share of the region's in-mask volume inside the cluster.
     """
     shape = tuple(grid.shape)
     labels, mask, z3d, t3d, effect3d = _check_cluster_maps(
@@ -461,7 +462,7 @@ class _LeafOverlap:
         return cls(
             (indicator @ leaf_shares).toarray(),
             np.asarray(leaf_shares.sum(axis=0)).ravel(),
-            regions["name"].to_numpy()[leaf],
+            _names_with_abbreviations(regions)[leaf],
             regions["hemisphere"].to_numpy()[leaf],
         )
 
@@ -470,6 +471,20 @@ class _LeafOverlap:
         return _regions_text(
             self.overlap[k], cluster_voxels, self.leaf_voxels, self.names, self.hemispheres, top
         )
+
+
+def _names_with_abbreviations(regions) -> np.ndarray:
+    """Each region's name with its abbreviation beside it ("primary auditory area [A1]")
+    where the atlas gives one that differs from the name."""
+    names = regions["name"].astype(str).to_numpy()
+    short = regions["abbreviation"].astype(str).str.strip().to_numpy()
+    return np.array(
+        [
+            f"{n} [{a}]" if a and a.casefold() != n.casefold() else n
+            for n, a in zip(names, short, strict=True)
+        ],
+        dtype=object,
+    )
 
 
 def _position_columns(prefix: str, mm: np.ndarray, origin: np.ndarray | None) -> dict:

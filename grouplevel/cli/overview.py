@@ -73,6 +73,7 @@ def study_overview(study: Study) -> str:
             "midline_mm": a.midline_mm,
             "midline_source": a.midline_source,
             "mirror_dice": a.mirror_dice,
+            "notes": list(a.notes),
         }
     return (
         _environment()

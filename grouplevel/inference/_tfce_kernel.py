@@ -79,34 +79,34 @@ def tfce_sweep(
     n = order.size
     nx, ny, nz = shape[0], shape[1], shape[2]
     plane = ny * nz
-    position = np.full(nx * ny * nz, -1, dtype=np.int64)
+    # Positions live on the grid padded by one voxel on every side, so a neighbour is
+    # one fixed flat offset away and never outside: no bounds checks in the inner loop.
+    prow = nz + 2
+    pplane = (ny + 2) * prow
+    position = np.full((nx + 2) * pplane, -1, dtype=np.int64)
+    n_offsets = offsets.shape[0]
+    flat_offsets = np.empty(n_offsets, dtype=np.int64)
+    for k in range(n_offsets):
+        flat_offsets[k] = offsets[k, 0] * pplane + offsets[k, 1] * prow + offsets[k, 2]
     parent = np.empty(n, dtype=np.int64)
     size = np.empty(n, dtype=np.int64)
     active = np.empty(n, dtype=np.int64)
     link = np.full(n, -1, dtype=np.int64)
     own = np.zeros(n, dtype=np.float64)
     level = np.empty(n, dtype=np.float64)
-    n_offsets = offsets.shape[0]
 
     for i in range(n):
         v = order[i]
         f_h = height_integrals[i]
-        position[v] = i
+        pv = (v // plane + 1) * pplane + ((v // nz) % ny + 1) * prow + v % nz + 1
+        position[pv] = i
         parent[i] = i
         size[i] = 1
         active[i] = i
         level[i] = f_h
-        x = v // plane
-        y = (v // nz) % ny
-        z = v % nz
         a = i  # root of the new voxel's component, kept current through its merges
         for k in range(n_offsets):
-            xx = x + offsets[k, 0]
-            yy = y + offsets[k, 1]
-            zz = z + offsets[k, 2]
-            if xx < 0 or xx >= nx or yy < 0 or yy >= ny or zz < 0 or zz >= nz:
-                continue
-            j = position[xx * plane + yy * nz + zz]
+            j = position[pv + flat_offsets[k]]
             if j < 0:
                 continue
             b = _find(parent, j)

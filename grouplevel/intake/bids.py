@@ -33,6 +33,7 @@ from pathlib import Path
 import pandas as pd
 
 from grouplevel.errors import UserError
+from grouplevel.intake.textcheck import separator_problem
 
 NIFTI_SUFFIXES = (".nii.gz", ".nii")
 # BIDS: an entity is <key>-<label>, labels are alphanumeric (BIDS specification,
@@ -238,6 +239,16 @@ def _pair_maps(
 
 def _read_tsv(path: Path, problems: list[str]) -> pd.DataFrame | None:
     try:
+        wrong = separator_problem(
+            path,
+            "table",
+            path.read_text(encoding="utf-8-sig", errors="replace"),
+            "\t",
+            renamable=False,
+        )
+        if wrong:
+            problems.append(wrong)
+            return None
         return pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False)
     except Exception as exc:
         problems.append(f"{path}: cannot be read as a tab-separated table: {exc}")

@@ -135,8 +135,6 @@ def read_table(path: Path) -> pd.DataFrame:
     if not path.is_file():
         raise UserError(f"{path}: runs table not found ([study] table)")
     table = read_text_table(path, "runs table", "animal, effect, ...")
-    if len(table.columns) == 2 and path.suffix.lower() != ".csv" and "," in table.columns[1]:
-        raise UserError(f"{path}: looks comma-separated; name it .csv or use tabs")
     _check_control_characters(path, table)
     table = table.apply(lambda col: col.str.strip() if col.name != "line" else col)
     blank = (table.drop(columns="line") == "").all(axis=1)
@@ -652,9 +650,14 @@ def inspect_study(settings: Settings) -> Study:
     first_levels, names = _first_levels(context, table, problems, warnings)
     brain = user_mask if user_mask is not None else (first_levels[0].mask if first_levels else None)
     warnings.extend(_header_warnings(settings, brain, grid))
+    n_before_atlas = len(problems)
     atlas = _study_atlas(settings, grid, user_mask, first_levels, problems, warnings)
+    atlas_problems = problems[n_before_atlas:]
     problems.extend(_check_output_names(first_levels))
     problems.extend(_check_questions(settings, names, atlas))
+    if atlas_problems and len(atlas_problems) == len(problems):
+        # only the atlas is wrong: its own summary line, which names the atlas file, heads
+        raise UserError(atlas_problems[0], atlas_problems[1:])
     if problems:
         raise UserError(f"{path}: {len(problems)} problem(s) in the study", problems)
     return Study(
@@ -1118,7 +1121,8 @@ def _study_atlas(
             min_coverage=settings.atlas.min_coverage,
         )
     except UserError as exc:
-        problems.append(str(exc))
+        # the summary line names the atlas file; its detail lines follow it once each
+        problems.append(exc.args[0] if exc.args else str(exc))
         problems.extend(exc.problems)
         return None
     warnings.extend(atlas.warnings)
@@ -1169,7 +1173,8 @@ def _group_contrasts(
                     (spec.name, contrast_vector(spec.weights, design.columns, spec.name))
                 )
             except UserError as exc:
-                problems.append(str(exc))
+                # the summary line, then its detail lines, each once
+                problems.append(exc.args[0] if exc.args else str(exc))
                 problems.extend(exc.problems)
         return contrasts, {}
     if not design.default_contrasts:

@@ -33,6 +33,15 @@ _CHARACTER_NAMES = {
     "\u2029": "a paragraph separator",
 }
 
+#: Column separators recognised when a table reads as a single column, with their names.
+_SEPARATOR_NAMES = {
+    ";": "semicolon(s) (;)",
+    ",": "comma(s) (,)",
+    "\t": "tab(s)",
+    "|": "vertical bar(s) (|)",
+}
+_OTHER_SEPARATORS = tuple(_SEPARATOR_NAMES)
+
 
 def control_characters(text: str) -> list[str]:
     """Describe each distinct control or line-separating character in ``text``.
@@ -64,8 +73,10 @@ def read_text_table(path: Path, what: str, columns_hint: str) -> pd.DataFrame:
     Raises
     ------
     UserError
-        When the file is not UTF-8, empty, cannot be parsed, repeats a column name, or
-        has rows merged by an unbalanced quote.
+        When the file is not UTF-8, empty, cannot be parsed, separated by another
+        character (a header line without the expected separator but with a semicolon,
+        comma, tab or vertical bar; the message names it), repeats a column name, or has
+        rows merged by an unbalanced quote.
     """
     sep = "," if path.suffix.lower() == ".csv" else "\t"
     try:
@@ -79,6 +90,9 @@ def read_text_table(path: Path, what: str, columns_hint: str) -> pd.DataFrame:
             f"{path}: the {what} is empty; write a header line ({columns_hint}) and one "
             "line per row"
         )
+    wrong = separator_problem(path, what, text, sep)
+    if wrong:
+        raise UserError(wrong)
     try:
         raw = pd.read_csv(io.StringIO(text), sep=sep, dtype=str, keep_default_na=False, header=None)
     except Exception as exc:  # pandas raises several types for malformed text
@@ -90,6 +104,51 @@ def read_text_table(path: Path, what: str, columns_hint: str) -> pd.DataFrame:
     table.columns = header
     table.insert(0, "line", lines)
     return table
+
+
+def separator_problem(
+    path: Path, what: str, text: str, sep: str, *, renamable: bool = True
+) -> str | None:
+    """The message for a table whose header line would read as one column although it
+    holds another separator (a semicolon, as spreadsheets write in locales with a
+    decimal comma); None when the header holds ``sep`` or no other separator.
+
+    Parameters
+    ----------
+    path, what
+        The file and how messages name it (``"runs table"``).
+    text
+        The file's text.
+    sep
+        The separator the file is read with.
+    renamable
+        Whether renaming the file (``.csv`` ↔ ``.tsv``) is a fix to suggest; not for files
+        whose name a standard fixes (a BIDS ``participants.tsv``).
+    """
+    header_line = next((s for s in _physical_lines(text) if s.strip()), "")
+    if sep in header_line:
+        return None
+    counts = {d: header_line.count(d) for d in _OTHER_SEPARATORS if d != sep}
+    found = max(counts, key=lambda d: counts[d])
+    if not counts[found]:
+        return None
+    expected = "commas (,)" if sep == "," else "tabs"
+    if found == "," and sep == "\t" and renamable:
+        fix = "name the file .csv, or save it with tabs between the columns"
+    elif found == "\t" and sep == "," and renamable:
+        fix = "name the file .tsv, or save it with commas between the columns"
+    elif sep == ",":
+        fix = (
+            "save it with commas between the columns (a spreadsheet set to a decimal comma "
+            "writes semicolons: export tab-separated text instead and name it .tsv)"
+        )
+    else:
+        fix = "save it with tabs between the columns (in a spreadsheet: tab-separated text)"
+    return (
+        f"{path}: the {what} reads as a single column, but its header line holds "
+        f"{counts[found]} {_SEPARATOR_NAMES[found]}: grouplevel reads {expected} between "
+        f"the columns of a {path.suffix or 'table'} file; {fix}"
+    )
 
 
 def _check_header(path: Path, header: list[str]) -> None:

@@ -21,6 +21,7 @@ import re
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+from grouplevel.anatomy.sidenames import split_hemisphere
 from grouplevel.atlas import Atlas
 from grouplevel.errors import UserError
 from grouplevel.specificity import leaf_rows
@@ -34,13 +35,17 @@ _OPPOSITE = {"left": "right", "right": "left"}
 def split_side(text: str) -> tuple[str, str]:
     """``"forelimb area (Right)"`` → ``("forelimb area", "right")``; no suffix → ``(text, "")``.
 
-    A parenthesised word that is not a side word is part of the name.
+    The spellings of a hemisphere that atlas tables use in names are read too
+    (``"Left forelimb area"``, ``"S1FL_R"``, ``"forelimb area (L)"``, see
+    :func:`grouplevel.anatomy.sidenames.split_hemisphere`), so a region can be named as the
+    atlas table wrote it. A parenthesised word that is not a side word is part of the
+    name.
     """
     text = str(text).strip()
     match = _SUFFIX.match(text)
     if match and match["side"].casefold() in SIDE_WORDS:
         return match["base"].strip(), match["side"].casefold()
-    return text, ""
+    return split_hemisphere(text)
 
 
 def resolve_side(word: str, stimulus_side: str | None, where: str, name: str) -> str:

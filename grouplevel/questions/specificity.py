@@ -1166,7 +1166,9 @@ def loo_group_maps(
 
     n_vox = y.shape[1]
     if var_animal is not None and var_run is not None:
-        down = leave_one_animal_out(y, s2, X, animal, c, var_animal, var_run)
+        down = leave_one_animal_out(
+            y, s2, X, animal, c, var_animal, var_run, estimate_run_variance=estimate_run_variance
+        )
         effect_full, t_full, effect, t_loo = down.effect_full, down.t_full, down.effect, down.t
         for a in range(m):  # a group map needs two animals
             rows = animal != a

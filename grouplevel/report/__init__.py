@@ -7,8 +7,22 @@
 
 from __future__ import annotations
 
-from grouplevel.report.methods import write_methods
-from grouplevel.report.render import render_report
-from grouplevel.report.tables import write_manuscript_tables
+import importlib
+from typing import Any
 
-__all__ = ["render_report", "write_manuscript_tables", "write_methods"]
+_EXPORTS = {
+    "render_report": "render",
+    "write_manuscript_tables": "tables",
+    "write_methods": "methods",
+}
+
+__all__ = sorted(_EXPORTS)
+
+
+def __getattr__(name: str) -> Any:
+    # imported on first use: the report stack (matplotlib, jinja2) loads only when a
+    # report is drawn, not when a study is checked or fitted
+    if name in _EXPORTS:
+        module = importlib.import_module(f"{__name__}.{_EXPORTS[name]}")
+        return getattr(module, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -106,6 +106,7 @@ _CLUSTER_COLUMNS = (
     _c("p_fwe_voxel_min", "p FWE (voxel, min)", P),
     _c("q_min", "q FDR (min)", P),
     _c("peak_region", "peak region", TEXT),
+    _c("peak_region_abbreviation", "abbr.", TEXT),
     _c("peak_region_hemisphere", "hemisphere", TEXT),
     _c("regions", "regions (% of cluster, % of region)", TEXT),
 )
@@ -180,6 +181,10 @@ _RUN_QUALITY_COLUMNS = (
     _c("flagged", "flagged", BOOL),
     _c("why", "why", TEXT),
 )
+
+#: Columns left out of a printed table when no row fills them (an atlas without
+#: abbreviations).
+_SHOWN_WHEN_FILLED = frozenset({"abbreviation", "peak_region_abbreviation"})
 
 #: table key -> (file name in a result folder, caption, column choices)
 TABLE_SPECS: dict[str, tuple[str, str, tuple[Column, ...]]] = {
@@ -270,7 +275,12 @@ def _no_negative_zero(text: str) -> str:
 def table_view(key: str, frame: pd.DataFrame, source: str) -> TableView:
     """The printed form of one result table (chosen columns, rounded values)."""
     _file, caption, choices = TABLE_SPECS[key]
-    columns = [c for c in choices if c.source in frame.columns]
+    columns = [
+        c
+        for c in choices
+        if c.source in frame.columns
+        and not (c.source in _SHOWN_WHEN_FILLED and _all_empty(frame[c.source]))
+    ]
     chosen = {c.source for c in columns}
     if not choices:  # no fixed choice: keep every column, kinds guessed from the values
         columns = [_guess_column(name, frame[name]) for name in frame.columns]
@@ -282,6 +292,10 @@ def table_view(key: str, frame: pd.DataFrame, source: str) -> TableView:
         for _, row in frame.iterrows()
     )
     return TableView(key=key, caption=caption, columns=tuple(columns), rows=rows, source=source)
+
+
+def _all_empty(values: pd.Series) -> bool:
+    return bool(values.isna().all() or (values.astype(str).str.strip() == "").all())
 
 
 def _cell(value: object) -> object:

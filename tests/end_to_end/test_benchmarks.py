@@ -29,11 +29,18 @@ RATIO_LINES = {
         rf"ratio to the statistics grid: time {NUMBER}x for 27x the label voxels",
     ],
     "bench_inference": [
-        rf"speed-up vs nilearn n_jobs=1: +{NUMBER}×",
-        rf"speed-up vs nilearn n_jobs=2: +{NUMBER}×",
-        rf"projected 5000 permutations: +{NUMBER} s",
+        rf"speed-up vs nilearn n_jobs=1, ellipsoid: +{NUMBER}×",
+        rf"speed-up vs nilearn n_jobs=2, ellipsoid: +{NUMBER}×",
+        rf"speed-up vs nilearn n_jobs=1, box: +{NUMBER}×",
+        rf"speed-up vs nilearn n_jobs=2, box: +{NUMBER}×",
+        rf"projected 5000 permutations, ellipsoid: +{NUMBER} s",
+        rf"projected 5000 permutations, box: +{NUMBER} s",
         rf"peak memory, +4 permutations: +{NUMBER} MiB",
         rf"peak memory, +8 permutations: +{NUMBER} MiB",
+    ],
+    "bench_leave_one_out": [
+        rf"time ratio refits / one step: {NUMBER}x",
+        rf"time ratio one step / one full fit: {NUMBER}x",
     ],
     "bench_mixed": [
         rf"per-voxel speed ratio \(statsmodels / ours\): {NUMBER}x",
@@ -43,9 +50,14 @@ RATIO_LINES = {
         rf"per-voxel speed ratio, same model \(no s²\): {NUMBER}x",
         rf"per-voxel speed ratio, full fit \(with s²\): {NUMBER}x",
     ],
+    "bench_run": [
+        rf"end-to-end speed ratio \(statsmodels loop / whole run\): {NUMBER}x",
+        rf"whole run / fit alone: {NUMBER}x",
+    ],
     "bench_scale": [
         rf"log-log slope of fit time against voxels × maps: (-?{NUMBER[1:-1]})",
         rf"log-log slope of load time against voxels × maps: (-?{NUMBER[1:-1]})",
+        rf"whole-run peak RSS: {NUMBER} GiB",
     ],
     "bench_tfce": [
         rf"ratio nilearn / exact \(fastest\): +{NUMBER}",

@@ -219,6 +219,16 @@ def test_participants_problems(tmp_path):
     with pytest.raises(UserError) as err:
         derivatives_table(deriv)
     assert "no row for animal(s) sub-m0" in " ".join(err.value.problems)
+    # saved by a spreadsheet with semicolons: the separator is named (common practice:
+    # spreadsheets in locales with a decimal comma separate "CSV" columns by ";")
+    (deriv / "participants.tsv").write_text("participant_id;sex\nsub-m0;f\n")
+    with pytest.raises(UserError) as err:
+        derivatives_table(deriv)
+    assert err.value.problems == [
+        f"{deriv / 'participants.tsv'}: the table reads as a single column, but its header "
+        "line holds 1 semicolon(s) (;): grouplevel reads tabs between the columns of a .tsv "
+        "file; save it with tabs between the columns (in a spreadsheet: tab-separated text)"
+    ]
 
 
 def test_unrelated_files_are_skipped_and_listed(tmp_path, capsys):

@@ -73,3 +73,32 @@ def test_progress_in_a_log_is_a_few_plain_lines():
     silent = Progress("x", "permutations", quiet=True, stream=quiet)
     silent.update(10, 10)
     assert quiet.getvalue() == ""
+
+
+class _Terminal(io.StringIO):
+    def isatty(self) -> bool:
+        return True
+
+
+def test_progress_bar_time_left_ignores_the_compiling_first_batch():
+    # The first batch includes compiling the kernels (here: 100 s on a fake clock), the
+    # next ones take 1 s each. The time left must come from the later batches only:
+    # 62 batches of 16 left at 1 s each = 62 s (tqdm prints it as 01:02), not the
+    # ~50 minutes a rate measured from the start would promise.
+    clock = [0.0]
+    stream = _Terminal()
+    bar = Progress("permutations sound", "permutations", quiet=False, stream=stream)
+    bar._bar._time = lambda: clock[0]
+    bar._bar.start_t = bar._bar.last_print_t = 0.0
+    bar._bar.mininterval = 0
+    assert "first batch (includes compiling)" in stream.getvalue()
+    clock[0] = 100.0
+    bar.update(16, 1024)
+    clock[0] = 101.0
+    bar.update(16, 1024)
+    remaining = bar._bar.format_dict
+    rate = (remaining["n"] - remaining["initial"]) / remaining["elapsed"]
+    assert rate == pytest.approx(16.0)
+    assert (1024 - remaining["n"]) / rate == pytest.approx(62.0)
+    assert "01:02" in stream.getvalue().rsplit("\r", 1)[-1]
+    bar.close()

@@ -15,6 +15,7 @@ References used below:
 from __future__ import annotations
 
 import math
+import shutil
 import socket
 from dataclasses import fields
 
@@ -244,39 +245,57 @@ def test_unreachable_scheduler_is_a_user_error():
             pass
 
 
-def test_pipeline_on_dask_equals_local(dask_backend, tmp_path):
-    # The whole study run on a local two-worker dask cluster writes the same maps and
-    # permutation null as the local backend (same seed). The run connects to the
-    # module's cluster through [compute] scheduler (its workers have the compiled
-    # kernels loaded already); starting a cluster from `workers` is checked above.
+def _without_run_details(value, drop=("created", "inputs", "compute", "versions")):
+    """summary.json without what differs between two runs of one study by design: the
+    time, the inputs' folder, the [compute] settings and the tool versions block."""
+    if isinstance(value, dict):
+        return {k: _without_run_details(v, drop) for k, v in value.items() if k not in drop}
+    if isinstance(value, list):
+        return [_without_run_details(v, drop) for v in value]
+    return value
+
+
+def test_whole_example_on_dask_equals_local(dask_backend, example_output, tmp_path):
+    # The whole example study (three conditions, the questions with their asymmetry
+    # permutations, 32 sign flips per contrast, atlas tables) run on a local two-worker
+    # dask cluster writes the same outputs as the local run of the session fixture:
+    # every map array, every table and summary.json (but for the time, the inputs'
+    # folder and the [compute] settings). The run connects to the module's cluster
+    # through [compute] scheduler (its workers have the compiled kernels loaded).
     import json
 
     import nibabel as nib
 
     import grouplevel
-    from tests.conftest import write_study
+    from tests.conftest import EXAMPLE_OUTPUT_PERMUTATIONS
 
-    rng = np.random.default_rng(3)
-    animals = [f"a{i}" for i in range(7) for _ in range(3)]
-    u = rng.normal(0, 1, 7)
-    effects = np.stack([0.5 + u[k // 3] + rng.normal(0, 0.7, (6, 6, 4)) for k in range(21)])
-    variances = rng.uniform(0.2, 0.5, size=(21, 6, 6, 4))
-    outs = {}
-    for backend in ("local", "dask"):
-        toml = write_study(
-            tmp_path / backend, effects, animals, variances=variances, shape=(6, 6, 4)
-        )
-        extra = f'\n[inference]\npermutations = 64\n\n[compute]\nbackend = "{backend}"\n'
-        if backend == "dask":
-            extra += f'scheduler = "{dask_backend.client.scheduler.address}"\n'
-        toml.write_text(toml.read_text() + extra)
-        outs[backend] = grouplevel.run_study(toml, tmp_path / f"out_{backend}")
-    for name in ("t", "var_animal", "p_fwe_voxel", "p_fwe_tfce"):
-        a = np.asarray(nib.load(str(outs["local"] / "mean" / f"{name}.nii.gz")).dataobj)
-        b = np.asarray(nib.load(str(outs["dask"] / "mean" / f"{name}.nii.gz")).dataobj)
-        np.testing.assert_array_equal(a, b)
-    null_a = (outs["local"] / "mean" / "null_max.tsv").read_text()
-    null_b = (outs["dask"] / "mean" / "null_max.tsv").read_text()
-    assert null_a == null_b
-    summary = json.loads((outs["dask"] / "summary.json").read_text())
-    assert summary["settings"]["compute"]["backend"] == "dask"
+    folder = tmp_path / "study"
+    shutil.copytree(example_output.parent / "study", folder)
+    toml = folder / "study.toml"
+    text = toml.read_text()
+    assert "[compute]" not in text
+    address = dask_backend.client.scheduler.address
+    toml.write_text(text + f'\n[compute]\nbackend = "dask"\nscheduler = "{address}"\n')
+    out = grouplevel.run_study(toml, tmp_path / "results", permutations=EXAMPLE_OUTPUT_PERMUTATIONS)
+    local_files = sorted(p.relative_to(example_output) for p in example_output.rglob("*"))
+    dask_files = sorted(p.relative_to(out) for p in out.rglob("*"))
+    assert local_files == dask_files
+    compared = 0
+    for rel in local_files:
+        a, b = example_output / rel, out / rel
+        if a.is_dir() or rel.suffix in (".html", ".md", ".tex", ".png", ".svg", ".pdf"):
+            continue  # the report and methods repeat the summary (and name the backend)
+        if rel.name == "summary.json":
+            # the inputs sit in two folders: compare with each folder's path replaced
+            sa = json.loads(a.read_text().replace(str(example_output.parent / "study"), "S"))
+            sb = json.loads(b.read_text().replace(str(folder), "S"))
+            assert sb["settings"]["compute"]["backend"] == "dask"
+            assert _without_run_details(sa) == _without_run_details(sb)
+        elif rel.name.endswith((".nii.gz", ".nii")):
+            np.testing.assert_array_equal(
+                np.asarray(nib.load(a).dataobj), np.asarray(nib.load(b).dataobj), err_msg=str(rel)
+            )
+        else:
+            assert a.read_bytes() == b.read_bytes(), rel
+        compared += 1
+    assert compared > 50

@@ -87,12 +87,17 @@ def test_first_session_commands_run_as_written(folder, capsys):
 
 
 def test_first_level_page_runs_as_written(folder, capsys):
-    # docs/first-level-to-grouplevel.md: the Python block builds a derivatives folder
-    # from the example's maps, `grouplevel table` turns it into a runs table, and the
-    # study file naming that table passes `check` with the same runs as the original
+    # docs/first-level-to-grouplevel.md: the Python blocks build a derivatives folder
+    # from the example's maps and rewrite the example's atlas table in the style of a
+    # published structure table (named in the study file), `grouplevel table` turns the
+    # folder into a runs table, and the study file naming that table passes `check` with
+    # the same runs as the original, reading the atlas table as the page says
     page = "first-level-to-grouplevel.md"
-    (block,) = _blocks(page, "python")
-    exec(compile(block, f"docs/{page}", "exec"), {})  # noqa: S102
+    blocks = _blocks(page, "python")
+    assert len(blocks) == 2
+    namespace: dict = {}
+    for block in blocks:
+        exec(compile(block, f"docs/{page}", "exec"), namespace)  # noqa: S102
     commands = [
         shlex.split(line.split("#")[0])
         for b in _blocks(page, "")
@@ -108,12 +113,16 @@ def test_first_level_page_runs_as_written(folder, capsys):
     assert sorted(map(tuple, made[key].to_numpy())) == sorted(map(tuple, original[key].to_numpy()))
     toml = folder / "my_example" / "study.toml"
     text = toml.read_text()
+    assert 'labels = "atlas_structures.csv"' in text
     toml.write_text(text.replace('table = "runs.tsv"', 'table = "runs_from_folder.tsv"'))
     try:
         assert main(commands[1][1:]) == 0
     finally:
-        toml.write_text(text)
-    assert "study is valid" in capsys.readouterr().out
+        toml.write_text(text.replace('labels = "atlas_structures.csv"', 'labels = "atlas.tsv"'))
+    out = capsys.readouterr().out
+    assert "study is valid" in out
+    assert "'acronym' as the abbreviation" in out
+    assert "hemisphere read from the region name in 46 row(s)" in out
 
 
 # --------------------------------------------------------------------------------------

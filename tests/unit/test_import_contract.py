@@ -40,6 +40,7 @@ CORE_MODULES = (
     "grouplevel.anatomy.coordinates",
     "grouplevel.anatomy.midplane",
     "grouplevel.anatomy.regions",
+    "grouplevel.anatomy.sidenames",
     "grouplevel.questions.symmetry",
     "grouplevel.questions.specificity",
     "grouplevel.questions.quality",
@@ -51,6 +52,7 @@ FORBIDDEN_INTERNAL = (
     "grouplevel.intake",  # settings (TOML), runs table, images (NIfTI files), design
     "grouplevel.results",  # group result types and compute backends (shell side)
     "grouplevel.anatomy.atlas",  # reads atlas files
+    "grouplevel.anatomy.labels",  # reads atlas label tables
     "grouplevel.anatomy.tables",
     "grouplevel.questions.ask",
     "grouplevel.outputs",

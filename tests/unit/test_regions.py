@@ -199,7 +199,13 @@ def test_cluster_regions_and_minima(field):
     )
     assert set(table["cluster"]) == set(np.flatnonzero(significant) + 1)
     assert table[["peak_AP_mm", "centre_DV_mm"]].isna().all().all()  # no origin given
-    names = {3: "front (left)", 4: "back (left)", 5: "front (right)", 6: "back (right)"}
+    # the abbreviation stands beside the name
+    names = {
+        3: "front [F] (left)",
+        4: "back [B] (left)",
+        5: "front [F] (right)",
+        6: "back [B] (right)",
+    }
     region_size = {k: int(((labels == k) & mask).sum()) for k in names}
     for _, row in table[table["peak"] == 1].iterrows():
         inside = clusters.labels == row["cluster"]
