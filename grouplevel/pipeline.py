@@ -1431,6 +1431,10 @@ def write_outputs(
                 "voxel_size_mm": [float(v) for v in grid.voxel_size],
                 "orientation": grid.orientation,
                 "affine": grid.affine.tolist(),
+                # the headers' own affine (output maps carry it) and the matrix from
+                # header to true mm ([space] header_units_per_mm, header_axes)
+                "header_affine": grid.written_affine.tolist(),
+                "header_to_true": grid.header_to_true.tolist(),
             },
             "atlas": _atlas_summary(study),
             "design": {

@@ -13,6 +13,13 @@ from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
+from grouplevel.anatomy.coordinates import (
+    HEADER_AXIS_WORDS,
+    TRUE_HEADER_AXES,
+    header_to_true,
+)
 from grouplevel.errors import UserError
 
 # The level and the sides of a test live with the statistics that use them (the core
@@ -59,6 +66,10 @@ DEFAULT_RANDOM_SLOPES = "auto"
 # variance and a session-level effect is tested against too many df; common practice).
 DEFAULT_SESSIONS = "auto"
 DEFAULT_ORIGIN_NAME = "origin"
+# The image headers are in true millimetres and NIfTI's RAS+ axes unless [space] says
+# otherwise (NIfTI-1 standard: world x right, y anterior, z superior/dorsal).
+DEFAULT_HEADER_UNITS_PER_MM = 1.0
+DEFAULT_HEADER_AXES = TRUE_HEADER_AXES
 # Share of the analysis mask that the atlas must label (our own choice: below one half the
 # atlas is almost surely on another grid or in another space, and most clusters would be
 # "unlabelled").
@@ -101,8 +112,31 @@ class StudySettings:
 
 @dataclass(frozen=True)
 class SpaceSettings:
+    """``[space]``: the coordinate origin, and what the image headers' units and axes
+    really are.
+
+    ``origin_mm`` (and ``[atlas] midline_mm``) are true millimetres on true axes: the
+    header's coordinates divided by ``header_units_per_mm`` and put in the order that
+    ``header_axes`` declares.
+    """
+
     origin_mm: tuple[float, float, float] = (0.0, 0.0, 0.0)
     origin_name: str = DEFAULT_ORIGIN_NAME
+    header_units_per_mm: float = DEFAULT_HEADER_UNITS_PER_MM
+    header_axes: tuple[str, str, str] = DEFAULT_HEADER_AXES
+
+    @property
+    def header_to_true(self) -> np.ndarray:
+        """4 × 4 matrix from the headers' world coordinates to true RAS+ mm."""
+        return header_to_true(self.header_units_per_mm, self.header_axes)
+
+    @property
+    def header_declared(self) -> bool:
+        """Whether the headers were declared scaled or their axes exchanged."""
+        return (
+            self.header_units_per_mm != DEFAULT_HEADER_UNITS_PER_MM
+            or tuple(self.header_axes) != DEFAULT_HEADER_AXES
+        )
 
 
 @dataclass(frozen=True)
@@ -266,7 +300,7 @@ class Settings:
 # section -> allowed keys. Types are checked by the readers below.
 _SCHEMA: dict[str, tuple[str, ...]] = {
     "study": ("title", "table", "template", "mask", "min_coverage"),
-    "space": ("origin_mm", "origin_name"),
+    "space": ("origin_mm", "origin_name", "header_units_per_mm", "header_axes"),
     "atlas": ("image", "labels", "midline_mm", "min_coverage"),
     "clusters": ("method", "subpeak_distance_mm", "top_regions"),
     "compute": ("memory_gb", "backend", "scheduler", "workers"),
@@ -483,7 +517,39 @@ def _read_space(r: _Reader, sp: dict[str, Any]) -> SpaceSettings:
     return SpaceSettings(
         origin_mm=tuple(float(v) for v in origin),  # type: ignore[arg-type]
         origin_name=r.get("space", sp, "origin_name", str, DEFAULT_ORIGIN_NAME),
+        header_units_per_mm=_read_header_units(r, sp),
+        header_axes=_read_header_axes(r, sp),
     )
+
+
+def _read_header_units(r: _Reader, sp: dict[str, Any]) -> float:
+    """``[space] header_units_per_mm``: a positive number (10 for a ×10 header)."""
+    units = r.get("space", sp, "header_units_per_mm", float, DEFAULT_HEADER_UNITS_PER_MM)
+    if not (np.isfinite(units) and units > 0):
+        r.problem(
+            "[space] header_units_per_mm",
+            f"must be a positive number (10 when the headers store 0.1 mm voxels as 1 mm; "
+            f"1 when they are in true mm), got {units}",
+        )
+        return DEFAULT_HEADER_UNITS_PER_MM
+    return float(units)
+
+
+def _read_header_axes(r: _Reader, sp: dict[str, Any]) -> tuple[str, str, str]:
+    """``[space] header_axes``: towards which side of the animal header x, y, z grow."""
+    axes = r.get("space", sp, "header_axes", list, list(DEFAULT_HEADER_AXES))
+    words = [str(a).strip().lower() for a in axes] if isinstance(axes, list) else []
+    sides = [HEADER_AXIS_WORDS[w][0] for w in words if w in HEADER_AXIS_WORDS]
+    if len(words) != 3 or len(sides) != 3 or sorted(sides) != [0, 1, 2]:
+        r.problem(
+            "[space] header_axes",
+            "must say towards which side of the animal the headers' x, y and z grow, "
+            f"one word each from {', '.join(HEADER_AXIS_WORDS)}, naming left/right, "
+            'anterior/posterior and dorsal/ventral once each (e.g. ["right", '
+            f'"dorsal", "anterior"]); got {axes!r}',
+        )
+        return DEFAULT_HEADER_AXES
+    return (words[0], words[1], words[2])
 
 
 def _read_atlas(r: _Reader, a: dict[str, Any]) -> AtlasSettings | None:

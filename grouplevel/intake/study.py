@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from grouplevel.anatomy.atlas import Atlas, read_atlas
+from grouplevel.anatomy.coordinates import AXIS_NAMES, mask_extent_mm
 from grouplevel.errors import UserError
 from grouplevel.intake.bids import derivatives_table
 from grouplevel.intake.comparisons import PAIRED_LINES, TERMS, combine, comparison_rows
@@ -53,6 +54,11 @@ FALSE_WORDS = {"false", "no", "0", "n", "f", ""}
 # mask extent above this along any axis suggests the ×10 header scaling that some labs
 # apply to rodent images so that human-brain software accepts them.
 MAX_PLAUSIBLE_BRAIN_EXTENT_MM = 40.0
+# A rodent brain is longest anterior–posterior (mouse about 10 × 6 × 6 mm, rat about
+# 20 × 15 × 10 mm; common practice). Another axis longer by more than this factor makes
+# the axis-order warning; the margin spares masks cut short at the olfactory bulb or
+# cerebellum (our own choice).
+AXIS_ORDER_MARGIN = 1.1
 MIN_ANIMALS = 2
 # the runs table's first-level condition column was called "contrast" before it was
 # told apart from the group-level [[contrast]] blocks; read for one release
@@ -650,9 +656,8 @@ def inspect_study(settings: Settings) -> Study:
         formula_missing=formula_missing,
     )
     first_levels, names = _first_levels(context, table, problems, warnings)
-    extent = _extent_warning(user_mask, first_levels, grid)
-    if extent:
-        warnings.append(extent)
+    brain = user_mask if user_mask is not None else (first_levels[0].mask if first_levels else None)
+    warnings.extend(_header_warnings(settings, brain, grid))
     n_before_atlas = len(problems)
     atlas = _study_atlas(settings, grid, user_mask, first_levels, problems, warnings)
     atlas_problems = problems[n_before_atlas:]
@@ -727,6 +732,8 @@ def _grids(
             if why:
                 problems.append(f"{files[p]}: {p}: {why} ({source})")
                 bad_files.add(p)
+        # files are compared as their headers say; the analysis works in true mm
+        grid = grid.with_true_units(settings.space.header_to_true)
     return grid, bad_files
 
 
@@ -1050,22 +1057,55 @@ def _coverage_mask(
 
 
 # -- extent and atlas --
-def _extent_warning(
-    user_mask: np.ndarray | None, first_levels: list[FirstLevel], grid: Grid
-) -> str | None:
-    """A warning when the brain spans far more than a rodent brain (×10 header scaling)."""
-    extent = _mask_extent_mm(
-        user_mask if user_mask is not None else (first_levels[0].mask if first_levels else None),
-        grid,
-    )
-    if extent is not None and extent.max() > MAX_PLAUSIBLE_BRAIN_EXTENT_MM:
-        return (
-            f"the brain spans {extent.round(1).tolist()} mm along the grid axes (voxel size "
+def _header_warnings(settings: Settings, brain: np.ndarray | None, grid: Grid) -> list[str]:
+    """Warnings when the brain's size or shape says the headers are scaled (×10) or their
+    axes exchanged, measured in true mm (after what ``[space]`` declares)."""
+    if brain is None or not brain.any():
+        return []
+    extent = mask_extent_mm(brain, grid.affine)
+    warnings = []
+    declared = settings.space.header_declared
+    if extent.max() > MAX_PLAUSIBLE_BRAIN_EXTENT_MM:
+        scale = 10.0 ** np.ceil(np.log10(extent.max() / MAX_PLAUSIBLE_BRAIN_EXTENT_MM))
+        units = settings.space.header_units_per_mm * scale
+        warnings.append(
+            f"the brain spans {_mm_list(extent)} mm along x, y, z (voxel size "
             f"{grid.voxel_size.round(3).tolist()} mm), far more than a rodent brain: the "
-            "header may carry the ×10 scaling some labs use for rodent images. Volumes and "
-            "coordinates in the outputs will be in the header's units."
+            "headers probably carry the ×10 scaling some labs use so that software made "
+            "for human brains accepts rodent images. Every volume, distance and "
+            "coordinate of the outputs would be in the header's units (mm³ "
+            f"{scale**3:g} times too large); declare it with [space] "
+            f"header_units_per_mm = {units:g} in {settings.source.name}"
         )
-    return None
+    longest = int(np.argmax(extent))
+    if longest != 1 and extent[longest] > extent[1] * AXIS_ORDER_MARGIN:
+        header_axis = _header_axis_of(grid, longest)
+        fix = (
+            "correct [space] header_axes"
+            if declared
+            else "if they are, declare where each header axis points with [space] "
+            'header_axes (e.g. ["right", "dorsal", "anterior"] when the header\'s y is '
+            "dorsal and its z anterior)"
+        )
+        warnings.append(
+            f"the brain is longest along the {AXIS_NAMES[longest]} axis "
+            f"({extent[longest]:.1f} mm, header axis {header_axis}) and only "
+            f"{extent[1]:.1f} mm anterior–posterior, yet a rodent brain is longest "
+            "anterior–posterior: the headers' axes may be exchanged, and AP, ML and DV in "
+            "the outputs would then be swapped (a mask that covers only part of the brain "
+            f"along AP does this too, and then nothing needs declaring); {fix}"
+        )
+    return warnings
+
+
+def _mm_list(values: np.ndarray) -> str:
+    return "[" + ", ".join(f"{v:.1f}" for v in values) + "]"
+
+
+def _header_axis_of(grid: Grid, true_axis: int) -> str:
+    """The header's world axis (x, y or z) that holds a true axis."""
+    column = int(np.argmax(np.abs(grid.header_to_true[true_axis, :3])))
+    return "xyz"[column]
 
 
 def _study_atlas(
@@ -1287,13 +1327,6 @@ def _check_question_regions(where: str, q, atlas: Atlas) -> list[str]:
             )
         pairs.setdefault(pair, name)
     return problems
-
-
-def _mask_extent_mm(mask: np.ndarray | None, grid: Grid) -> np.ndarray | None:
-    if mask is None or not mask.any():
-        return None
-    idx = np.argwhere(mask)
-    return (idx.max(axis=0) - idx.min(axis=0) + 1) * grid.voxel_size
 
 
 @dataclass(frozen=True)
