@@ -46,10 +46,12 @@ from grouplevel.intake.design import (
     CONTRAST_SLOPE,
     CONTRAST_SLOPES,
     Design,
+    GroupFTest,
     RandomEffects,
     animal_design,
     contrast_kind,
     describe_random_effects,
+    ftest_permutation_refusal,
     slope_design,
     weights_dict,
 )
@@ -62,6 +64,7 @@ from grouplevel.model import (
     test_contrast,
 )
 from grouplevel.model.contrasts import slope_df
+from grouplevel.model.ftest import test_f
 from grouplevel.model.marginal import RandomTerms, marginal_run_variance
 from grouplevel.outputs.animal_maps import (
     RUN_VALUES_MAX,
@@ -86,7 +89,14 @@ from grouplevel.questions.ask import (
 from grouplevel.questions.means import DIFFERENCE
 from grouplevel.results.compute import Backend, fit_design, open_backend, random_terms
 from grouplevel.results.correction import permutation_arguments
-from grouplevel.results.maps import MAP_DESCRIPTIONS, AnimalEffects, Corrected, GroupMap
+from grouplevel.results.maps import (
+    FTEST_MAP_DESCRIPTIONS,
+    MAP_DESCRIPTIONS,
+    AnimalEffects,
+    Corrected,
+    FTestMap,
+    GroupMap,
+)
 from grouplevel.timing import StepClock
 
 # Variance components written on top of var_animal and var_run (general model only):
@@ -185,13 +195,19 @@ def _correct(
     quiet: bool,
     backend: Backend | None = None,
     variance_groups: np.ndarray | None = None,
+    f_p: np.ndarray | None = None,
+    permute: bool = True,
 ) -> Corrected:
+    """FDR and permutation inference of one contrast (``t``), or of an F-test when its
+    upper-tail ``f_p`` is given (``c`` then holds its rows; the side is the upper tail)."""
     inf: InferenceSettings = study.settings.inference
-    p_sided = sided_p(t, df, inf.sided)
+    f_test = f_p is not None
+    sided = "positive" if f_test else inf.sided
+    p_sided = f_p if f_test else sided_p(t, df, inf.sided)
     q = fdr(p_sided, alpha=inf.alpha, method=inf.fdr)
     warnings: list[str] = []
     perm = None
-    if inf.permutations > 0:
+    if inf.permutations > 0 and permute:
         rng = np.random.default_rng(inf.seed)
         bar = Progress(f"permutations {label}", "permutations", quiet=quiet)
         perm = permutation_test(
@@ -202,7 +218,10 @@ def _correct(
             rng=rng,
             progress=bar.update,
             variance_groups=variance_groups,
-            **permutation_arguments(inf, voxel_volume_mm3=study.grid.voxel_volume, backend=backend),
+            f_test=f_test,
+            **permutation_arguments(
+                inf, voxel_volume_mm3=study.grid.voxel_volume, backend=backend, sided=sided
+            ),
         )
         bar.close()
         if perm.scheme.smallest_p > inf.alpha:
@@ -213,7 +232,7 @@ def _correct(
                 "are needed"
             )
     return Corrected(
-        sided=inf.sided,
+        sided=sided,
         p_sided=p_sided,
         fdr=q,
         smoothness=smooth,
@@ -517,6 +536,9 @@ def _fit_first_level(
                 gm = replace(gm, tables=tables)
         with clock.step("questions"):
             results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
+    for ft in fl.ftests:
+        with clock.step("test and correct"):
+            results.append(_test_ftest(study, fitted, ft, quiet, backend, warnings))
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings
 
@@ -778,6 +800,108 @@ def _test_and_correct(
     )
 
 
+def _ftest_df(study: Study, fitted: _FittedLevel, weights: np.ndarray) -> np.ndarray:
+    """Denominator df of an F-test: the t contrasts' rule for the level its rows test
+    (all its columns at once), and with Satterthwaite or variance groups the smallest
+    df of its rows (docs/model.md, "F-tests")."""
+    fl = fitted.fl
+    union = np.abs(weights).sum(axis=0)
+    df = _contrast_df(study, fl, fitted.fit, fitted.present, union)
+    if study.settings.model.df == "satterthwaite" or fl.random.animal_group is not None:
+        for row in weights:
+            df = np.fmin(df, _contrast_df(study, fl, fitted.fit, fitted.present, row))
+    return df
+
+
+def _ftest_rows_reduced(design: Design, random: RandomEffects, weights: np.ndarray) -> np.ndarray:
+    """The F-test's rows on the animal-level design that its permutations exchange (the
+    column-wise form of what :func:`_reduced_data` does to one contrast)."""
+    if not random.extended and design.animal_level.all():
+        return weights
+    kind, slope = contrast_kind(design, random, np.abs(weights).sum(axis=0))
+    if kind == CONTRAST_SLOPE:
+        _, columns = slope_design(design, random, slope)
+        return weights[:, columns]
+    columns = [j for j in range(len(design.columns)) if not design.within[j]]
+    return weights[:, columns]
+
+
+def _test_ftest(
+    study: Study,
+    fitted: _FittedLevel,
+    ft: GroupFTest,
+    quiet: bool,
+    backend: Backend | None,
+    warnings: list[str],
+) -> FTestMap:
+    """Test the rows of an F-test jointly at every fitted voxel and correct for the many
+    voxels, as :func:`_test_and_correct` does for one contrast."""
+    fl, fit = fitted.fl, fitted.fit
+    design, random = fl.design, fl.random
+    df = _ftest_df(study, fitted, ft.weights)
+    res = test_f(fit, ft.weights, df)
+    name = fl.output_name(ft.name, False)
+    kind, _ = contrast_kind(design, random, np.abs(ft.weights).sum(axis=0))
+    animal_data, rows, groups = None, ft.weights, random.animal_group
+    inf = study.settings.inference
+    # check refuses every declared F-test that cannot be permuted correctly, and warns
+    # that such a default F-test stays parametric
+    permute = inf.permutations > 0 and (
+        ftest_permutation_refusal(
+            design, random, ft, inf.permutations, study.settings.study.min_coverage >= 1.0
+        )
+        is None
+    )
+    if permute:
+        animal_data, _, taking_part = fitted.reduced_for(np.abs(ft.weights).sum(axis=0))
+        rows = _ftest_rows_reduced(design, random, ft.weights)
+        if groups is not None:
+            groups = groups[taking_part]
+    corrected = _correct(
+        study,
+        rows,
+        res.f,
+        np.where(np.isfinite(res.df), res.df, 0.0),
+        animal_data,
+        fitted.smooth,
+        fitted.mask,
+        name,
+        quiet,
+        backend,
+        groups,
+        f_p=np.where(np.isnan(res.p), 1.0, res.p),
+        permute=permute,
+    )
+    warnings.extend(corrected.warnings)
+    return FTestMap(
+        name=name,
+        first_level=fl.name,
+        ftest=ft.name,
+        rows=ft.rows,
+        weights={
+            row: weights_dict(w, design.columns) for row, w in zip(ft.rows, ft.weights, strict=True)
+        },
+        meaning=ft.meaning,
+        grid=study.grid,
+        mask=fitted.mask,
+        f=res.f,
+        df_num=res.df_num,
+        df=res.df,
+        z=res.z,
+        p=res.p,
+        var_animal=fitted.var_animal,
+        var_run=fit.var_run,
+        coverage_runs=fl.coverage_runs,
+        coverage_animals=fl.coverage_animals,
+        not_converged=fitted.not_converged,
+        n_animals=design.n_animals,
+        n_runs=len(fl.runs),
+        inference=corrected,
+        random_effects=fitted.described,
+        tested_level=kind,
+    )
+
+
 def _with_answers(
     study: Study,
     fitted: _FittedLevel,
@@ -837,8 +961,9 @@ def fit_study(
     *,
     quiet: bool = True,
     clock: StepClock | None = None,
-) -> tuple[list[GroupMap], list[str]]:
-    """Fit the mixed model for every first-level contrast and test every group contrast.
+) -> tuple[list[GroupMap | FTestMap], list[str]]:
+    """Fit the mixed model for every first-level contrast and test every group contrast
+    and F-test.
 
     ``clock``, when given, receives the wall time of each step (read maps, fit, test
     and correct, regions, questions).
@@ -846,8 +971,9 @@ def fit_study(
     Returns
     -------
     maps, warnings
-        One :class:`GroupMap` per (first-level contrast, group contrast), and the
-        warnings raised while fitting (the study's own warnings are in
+        One :class:`GroupMap` per (first-level contrast, group contrast), followed by one
+        :class:`~grouplevel.results.maps.FTestMap` per (first-level contrast, F-test),
+        and the warnings raised while fitting (the study's own warnings are in
         ``study.warnings``).
     """
     log = log or (lambda _msg: None)
@@ -1078,6 +1204,80 @@ def _write_group_map(folder: Path, gm: GroupMap) -> None:
             )
 
 
+def _write_ftest_map(folder: Path, fm: FTestMap) -> None:
+    """Every map of one F-test into its own folder (as :func:`_write_group_map`)."""
+    folder.mkdir()
+    grid = fm.grid
+    label = f"{fm.first_level or ''} {fm.ftest}".strip()
+    dfs = np.unique(fm.df[np.isfinite(fm.df)])
+    for key, what in FTEST_MAP_DESCRIPTIONS.items():
+        write_map(
+            folder / f"{key}.nii.gz",
+            _unfitted_as_null(key, getattr(fm, key)),
+            fm.mask,
+            grid,
+            f"grouplevel {what} [{label}]",
+            df=(float(fm.df_num), float(dfs[0])) if key == "f" and dfs.size == 1 else None,
+        )
+    full = np.ones(grid.shape, dtype=bool)
+    write_map(
+        folder / "mask.nii.gz",
+        fm.mask.astype(np.uint8),
+        full,
+        grid,
+        f"grouplevel analysis mask [{label}]",
+        dtype=np.uint8,
+    )
+    _write_inference(folder, fm, label)  # type: ignore[arg-type]
+
+
+def _ftest_summary(study: Study, fm: FTestMap) -> dict:
+    """The summary.json entry of one F-test."""
+    finite = np.isfinite(fm.f)
+    peak = int(np.nanargmax(np.where(finite, fm.f, -np.inf))) if finite.any() else None
+    entry: dict = {
+        "first_level_contrast": fm.first_level,
+        "ftest": fm.ftest,
+        "meaning": fm.meaning,
+        "rows": [{"contrast": r, "weights": fm.weights[r]} for r in fm.rows],
+        "animals": fm.n_animals,
+        "runs": fm.n_runs,
+        "voxels": int(fm.mask.sum()),
+        "df_numerator": fm.df_num,
+        "df_denominator_range": [float(np.nanmin(fm.df)), float(np.nanmax(fm.df))]
+        if np.isfinite(fm.df).any()
+        else None,
+        "random_effects": fm.random_effects,
+        "tested_level": fm.tested_level,
+        "voxels_p_below_0.001_uncorrected": int((fm.p < 0.001).sum()),
+        "inference": _inference_summary(fm, study.settings.inference.alpha),  # type: ignore[arg-type]
+        "questions": {
+            "asked": False,
+            "why": (
+                "the reviewer's questions (bilateral, specific, consistent across animals) "
+                "are asked of a mean or a difference, which has a sign and a size per "
+                "animal; an F-test says only that some of its rows differ from zero, not "
+                "which or in which direction. Ask them of its rows, the group contrasts "
+                + ", ".join(fm.rows)
+            ),
+        },
+        "cautions": [
+            "a significant F shows that at least one of its rows differs from zero at that "
+            "voxel; it does not show which level differs, in which direction, or that the "
+            "levels are ordered (as a dose-response would be)"
+        ],
+    }
+    if peak is not None:
+        ijk = np.argwhere(fm.mask)[peak]
+        xyz = study.grid.affine[:3, :3] @ ijk + study.grid.affine[:3, 3]
+        entry["peak"] = {
+            "f": float(fm.f[peak]),
+            "voxel": [int(v) for v in ijk],
+            "mm": [round(float(v), 4) for v in xyz],
+        }
+    return entry
+
+
 def _write_answers(folder: Path, gm: GroupMap, label: str) -> None:
     """Tables of the questions and the left-minus-mirror asymmetry maps."""
     answers = gm.answers
@@ -1231,7 +1431,7 @@ def _inference_summary(gm: GroupMap, alpha: float) -> dict:
 
 def write_outputs(
     study: Study,
-    maps: list[GroupMap],
+    maps: list[GroupMap | FTestMap],
     out_dir: str | Path,
     *,
     warnings: list[str] | None = None,
@@ -1264,7 +1464,10 @@ def write_outputs(
         grid = study.grid
         with clock.step("write maps"):
             for gm in maps:
-                _write_group_map(child_path(tmp, gm.name), gm)
+                if isinstance(gm, FTestMap):
+                    _write_ftest_map(child_path(tmp, gm.name), gm)
+                else:
+                    _write_group_map(child_path(tmp, gm.name), gm)
         summary = {
             "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
@@ -1276,12 +1479,21 @@ def write_outputs(
                 "voxel_size_mm": [float(v) for v in grid.voxel_size],
                 "orientation": grid.orientation,
                 "affine": grid.affine.tolist(),
+                # the headers' own affine (output maps carry it) and the matrix from
+                # header to true mm ([space] header_units_per_mm, header_axes)
+                "header_affine": grid.written_affine.tolist(),
+                "header_to_true": grid.header_to_true.tolist(),
             },
             "atlas": _atlas_summary(study),
             "design": {
                 fl.name or "runs": design_description(study, fl) for fl in study.first_levels
             },
-            "results": {gm.name: _result_summary(study, gm) for gm in maps},
+            "results": {
+                gm.name: _result_summary(study, gm) for gm in maps if not isinstance(gm, FTestMap)
+            },
+            "ftests": {
+                fm.name: _ftest_summary(study, fm) for fm in maps if isinstance(fm, FTestMap)
+            },
             "warnings": list(study.warnings) + list(warnings or []),
         }
         write_summary(tmp, summary)

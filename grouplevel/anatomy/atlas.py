@@ -17,6 +17,8 @@ voxel that the region covers. How the shares are found depends on the atlas grid
 * atlas finer than the statistics (for example 25 µm labels and 0.2 mm maps): every
   atlas voxel centre is mapped to the statistical voxel that contains it and counted,
   so a structure smaller than one statistical voxel still gets its fraction;
+* the same voxels stored in another order (an atlas array flipped or its axes
+  exchanged, with the affine saying so): exact, like the same grid;
 * atlas coarser (or of equal voxel size on another grid): nearest neighbour, the label
   of the atlas voxel that contains each statistical voxel centre.
 
@@ -29,7 +31,14 @@ Hemispheres
 Left and right come from world x of the image affine (RAS+: x grows towards the animal's
 right), never from array order. The mid-sagittal plane ``x = midline_mm`` is, in order of
 preference, given by the user, fitted as the plane that best separates the voxels of
-left- and right-labelled regions (:func:`find_midline`), or the centre of the study grid.
+left- and right-labelled regions (:func:`find_midline`) when the labels agree with the
+header, or else the brain's own mirror plane: the plane about which the analysis mask
+overlaps its mirror image best (:func:`grouplevel.anatomy.midplane.best_mirror_plane`).
+The labels disagree with the header when more than :data:`LABEL_PLANE_DISAGREEMENT` of
+the left- and right-labelled voxels lie on the wrong side of their best separating plane
+(a table whose left and right are swapped against the header puts every one of them on
+the wrong side of the brain's middle). When every region the table calls left lies on
+the header's right and every right one on its left, one warning says so plainly.
 
 A leaf without a hemisphere of its own (``both`` or empty, and none inherited from an
 ancestor) is handled by this rule:
@@ -69,6 +78,7 @@ import scipy.sparse as sp
 
 from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM, describe_orientation
 from grouplevel.anatomy.labels import read_label_table
+from grouplevel.anatomy.midplane import best_mirror_plane
 from grouplevel.errors import UserError
 from grouplevel.intake.images import AFFINE_TOLERANCE_MM, Grid, affine_problem
 from grouplevel.intake.settings import DEFAULT_ATLAS_MIN_COVERAGE
@@ -86,6 +96,13 @@ MIRROR_DICE_WARNING = 0.8
 #: side of the midline triggers a warning about the image affine. Our own choice.
 WRONG_SIDE_WARNING = 0.5
 
+#: Above this share of left- and right-labelled voxels on the wrong side of their best
+#: separating plane, the labels are taken to disagree with the header and the midline is
+#: the mask's mirror plane instead. Our own choice: an atlas drawn on the template puts
+#: well under 1% of its lateral voxels across the midline; a swapped table puts about
+#: half of them on the wrong side of any plane.
+LABEL_PLANE_DISAGREEMENT = 0.1
+
 #: Voxels per slab when scanning a large atlas (about 16 MB per float64 work array).
 SLAB_VOXELS = 2_000_000
 
@@ -97,10 +114,15 @@ LOOKUP_TABLE_LIMIT = 1 << 22
 RESAMPLING_SAME = "same grid"
 RESAMPLING_FRACTIONAL = "fractional (atlas finer than the statistics)"
 RESAMPLING_NEAREST = "nearest neighbour (atlas coarser than the statistics)"
+RESAMPLING_NEAREST_SAME_SIZE = (
+    "nearest neighbour (atlas voxels of the statistics' size on a shifted or turned grid)"
+)
+RESAMPLING_REORDERED = "same voxels stored in another order, copied exactly"
 
 #: Midline sources (``Atlas.midline_source``).
 MIDLINE_GIVEN = "given"
 MIDLINE_FITTED = "fitted to left/right labels"
+MIDLINE_MIRROR = "mirror plane of the analysis mask"
 MIDLINE_GRID_CENTRE = "grid centre"
 
 HEMISPHERES = ("left", "right", "both")
@@ -151,7 +173,8 @@ class Atlas:
         Study-grid int array: the index of the leaf with the largest share (the first
         leaf in ``regions`` order on ties), 0 outside the mask and where no label falls.
     resampling
-        How the atlas reached the study grid (one of the ``RESAMPLING_*`` constants).
+        How the atlas reached the study grid (one of the ``RESAMPLING_*`` constants;
+        :data:`RESAMPLING_REORDERED` is followed by the reordering in brackets).
     midline_mm
         World x of the mid-sagittal plane.
     midline_source
@@ -257,7 +280,8 @@ def read_atlas(
         Label table in any form :func:`grouplevel.anatomy.labels.read_label_table`
         reads (BIDS-style TSV, CSV/TSV with usual column names, JSON list or tree).
     grid
-        The study grid.
+        The study grid. When its headers were declared scaled or their axes exchanged
+        (:attr:`Grid.header_to_true`), the atlas header is read the same way.
     mask
         Boolean analysis mask on ``grid``.
     midline_mm
@@ -294,7 +318,8 @@ def read_atlas(
     table = read_label_table(Path(labels))
     atlas = build_atlas(
         data,
-        np.asarray(img.affine, dtype=float),
+        # the atlas header read like the maps' ([space] header_units_per_mm, header_axes)
+        grid.header_to_true @ np.asarray(img.affine, dtype=float),
         table.table,
         grid,
         mask,
@@ -691,6 +716,16 @@ class _XHistogram:
         x = self.sum_x[used] / (self.left + self.right)[used]
         return _best_separating_plane(x, self.left[used], self.right[used])
 
+    def wrong_side_share(self, plane: float) -> float:
+        """Share of left and right points on the wrong side of ``x = plane`` (points
+        within the midline tolerance of the plane count on neither side)."""
+        used = (self.left + self.right) > 0
+        x = self.sum_x[used] / (self.left + self.right)[used]
+        wrong = self.left[used][x > plane + MIDLINE_TOLERANCE_MM].sum()
+        wrong += self.right[used][x < plane - MIDLINE_TOLERANCE_MM].sum()
+        total = float((self.left + self.right).sum())
+        return float(wrong) / total if total else 0.0
+
 
 def find_midline(
     label_data: np.ndarray,
@@ -919,7 +954,7 @@ def build_atlas(
         image_name,
         table_name,
     )
-    midline, midline_source, note = _place_midline(midline_mm, histogram, grid, table_name)
+    midline, midline_source, note = _place_midline(midline_mm, histogram, grid, mask, table_name)
     tree = _leaf_rows(rows, hemisphere, own_count)
     resampling, finer = _resampling(shape, label_affine, grid)
     counts = _count_leaves(label_data, label_affine, axis, lookup, tree, grid, mask, midline, finer)
@@ -1021,20 +1056,41 @@ def _scan_labels(
 
 
 def _place_midline(
-    midline_mm: float | None, histogram: _XHistogram | None, grid: Grid, table_name: str
+    midline_mm: float | None,
+    histogram: _XHistogram | None,
+    grid: Grid,
+    mask: np.ndarray,
+    table_name: str,
 ) -> tuple[float, str, str | None]:
-    """The midline's world x, where it came from, and a warning when it is a guess."""
+    """The midline's world x, where it came from, and a note when it is a guess.
+
+    A given midline is used as it is. Otherwise the plane that separates the left- from
+    the right-labelled voxels, unless the labels disagree with the header (more than
+    :data:`LABEL_PLANE_DISAGREEMENT` of them on the wrong side of that plane); then, and
+    when no regions are labelled left and right, the brain's own mirror plane.
+    """
     if midline_mm is not None:
         return float(midline_mm), MIDLINE_GIVEN, None
     fitted = histogram.plane() if histogram is not None else None
-    if fitted is not None:
+    if fitted is not None and histogram.wrong_side_share(fitted) <= LABEL_PLANE_DISAGREEMENT:
         return fitted, MIDLINE_FITTED, None
+    mirror = best_mirror_plane(mask, grid.affine)
+    if mirror is not None and fitted is not None:
+        # the labels disagree with the header: _atlas_warnings says how
+        return mirror.x_mm, MIDLINE_MIRROR, None
+    if mirror is not None:
+        note = (
+            f"{table_name}: no regions are labelled left and right on both sides, so the "
+            f"midline is the plane about which the analysis mask mirrors itself best "
+            f"(x = {mirror.x_mm:.3f} mm); give [atlas] midline_mm if that is wrong"
+        )
+        return mirror.x_mm, MIDLINE_MIRROR, note
     centre = grid.affine[:3, :3] @ ((np.asarray(grid.shape) - 1) / 2.0) + grid.affine[:3, 3]
     midline = float(centre[0])
     note = (
-        f"{table_name}: no regions are labelled left and right on both sides, so the "
-        f"midline is taken as the centre of the study grid (x = {midline:.3f} mm); "
-        "give the midline's x in mm if that is wrong"
+        f"{table_name}: no regions are labelled left and right on both sides and the mask "
+        f"is empty, so the midline is taken as the centre of the study grid (x = "
+        f"{midline:.3f} mm); give [atlas] midline_mm if that is wrong"
     )
     return midline, MIDLINE_GRID_CENTRE, note
 
@@ -1097,15 +1153,52 @@ def _leaf_rows(rows: _Table, hemisphere: list[str], own_count: np.ndarray) -> _R
     return tree
 
 
+def _reordering(shape: tuple[int, ...], label_affine: np.ndarray, grid: Grid) -> str | None:
+    """How the atlas array is stored relative to the study grid when both hold the same
+    voxels (its index map to the grid is a signed permutation with whole-voxel shifts
+    and the two cover the same box); None otherwise."""
+    to_atlas = np.linalg.inv(label_affine) @ grid.affine
+    linear, shift = to_atlas[:3, :3], to_atlas[:3, 3]
+    rounded = np.rint(linear)
+    # tolerance in voxels: the affine tolerance over the voxel size
+    tolerance = AFFINE_TOLERANCE_MM / float(grid.voxel_size.min())
+    if np.abs(linear - rounded).max() > tolerance or np.abs(shift - np.rint(shift)).max() > (
+        tolerance * (1 + np.abs(grid.shape).max())
+    ):
+        return None
+    if not (np.abs(rounded).sum(axis=0) == 1).all() or not (np.abs(rounded).sum(axis=1) == 1).all():
+        return None
+    source = np.argmax(np.abs(rounded), axis=0)  # atlas axis of each grid axis
+    if tuple(shape[a] for a in source) != tuple(grid.shape):
+        return None
+    corners = np.array([[0, 0, 0], np.asarray(grid.shape) - 1], dtype=float)
+    ends = corners @ rounded.T + np.rint(shift)
+    if ends.min() < -0.5 or (ends.max(axis=0) > np.asarray(shape) - 0.5).any():
+        return None
+    words = []
+    for g, a in enumerate(source):
+        sign = rounded[a, g]
+        if a != g:
+            words.append(f"atlas axis {'ijk'[a]} holds study axis {'ijk'[g]}")
+        if sign < 0:
+            words.append(f"reversed along study axis {'ijk'[g]}")
+    return ", ".join(words) if words else None
+
+
 def _resampling(shape: tuple[int, ...], label_affine: np.ndarray, grid: Grid) -> tuple[str, bool]:
     """How the atlas reaches the study grid, and whether it is finer than the grid."""
-    same = _same_grid(shape, label_affine, grid)
-    finer = (not same) and abs(np.linalg.det(label_affine[:3, :3])) < grid.voxel_volume * (
-        1.0 - 1e-6
-    )
-    return (
-        RESAMPLING_SAME if same else RESAMPLING_FRACTIONAL if finer else RESAMPLING_NEAREST
-    ), finer
+    if _same_grid(shape, label_affine, grid):
+        return RESAMPLING_SAME, False
+    reordered = _reordering(shape, label_affine, grid)
+    if reordered:
+        # nearest-neighbour look-up lands exactly on the matching voxel: a copy
+        return f"{RESAMPLING_REORDERED} ({reordered})", False
+    ratio = abs(np.linalg.det(label_affine[:3, :3])) / grid.voxel_volume
+    if ratio < 1.0 - 1e-6:
+        return RESAMPLING_FRACTIONAL, True
+    if ratio <= 1.0 + 1e-6:
+        return RESAMPLING_NEAREST_SAME_SIZE, False
+    return RESAMPLING_NEAREST, False
 
 
 @dataclass
@@ -1420,20 +1513,47 @@ def _atlas_warnings(
             f"(nor any of their sub-regions): {shown}{more}"
         )
     wrong = []
+    lateral = 0
+    wrong_sides: set[str] = set()
     for number, region in enumerate(tree.leaves):
         own = hemisphere[region] if region < tree.n_table else tree.hemisphere[region]
         total = leaf_total[number]
         if own in ("left", "right") and total > 0:
+            lateral += 1
             other = counts.side_count[number, 1 if own == "left" else 0] / total
             if other > WRONG_SIDE_WARNING:
                 wrong.append(f"{tree.index[region]} ({tree.name[region]}, {own})")
-    if wrong:
+                wrong_sides.add(own)
+    if wrong and len(wrong) == lateral:
+        warnings.append(_swapped_sides_message(midline, wrong_sides, image_name, table_name))
+    elif wrong:
         warnings.append(
             f"{image_name}: {len(wrong)} region(s) labelled left or right lie mostly on the "
             f"other side of the midline x = {midline:.3f} mm: {', '.join(wrong[:_MAX_LISTED])}"
             "; check the atlas affine (x must grow towards the animal's right) and the table"
         )
     return warnings
+
+
+def _swapped_sides_message(
+    midline: float, sides: set[str], image_name: str, table_name: str
+) -> str:
+    """One sentence for a table whose left and right are the header's right and left
+    (``sides``: the sides the table names, every region of which is on the other)."""
+    other = {"left": "right", "right": "left"}
+    where = ", and ".join(
+        f"every region the table calls {side} lies on the header's {other[side]}"
+        for side in ("left", "right")
+        if side in sides
+    )
+    return (
+        f"{table_name}: the table's left and right are swapped against the header of "
+        f"{image_name}: {where} of the midline x = {midline:.3f} mm; if the header is "
+        "right (x grows towards the animal's right), swap 'left' and 'right' in the "
+        "table's hemisphere column, otherwise correct the headers of the atlas, template "
+        "and maps; until then region sides taken from the table contradict the positions "
+        "that mirror maps and asymmetry tests use"
+    )
 
 
 def _row_argmax(matrix: sp.csr_matrix) -> np.ndarray:

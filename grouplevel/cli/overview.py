@@ -86,6 +86,7 @@ def study_overview(study: Study) -> str:
             grid=grid,
             voxel_size=[f"{v:.4g}" for v in grid.voxel_size],
             orientation=describe_orientation(grid.affine),
+            header_words=_header_words(s.space),
             mask_voxels=None if mask is None else int(mask.sum()),
             mask_volume=None if mask is None else float(np.sum(mask) * grid.voxel_volume),
             origin_name=s.space.origin_name,
@@ -97,4 +98,17 @@ def study_overview(study: Study) -> str:
             first_levels=first_levels,
             warnings=list(study.warnings),
         )
+    )
+
+
+def _header_words(space) -> str | None:
+    """How the image headers are read, when ``[space]`` declares them scaled or their
+    axes exchanged; None for true headers."""
+    if not space.header_declared:
+        return None
+    axes = ", ".join(f"{a} {w}" for a, w in zip("xyz", space.header_axes, strict=True))
+    return (
+        f"read as {space.header_units_per_mm:g} header units per true mm, header axes "
+        f"growing towards: {axes} ([space]); every mm, mm3 and coordinate below and in "
+        "the outputs is true; output maps keep the headers' own affine"
     )

@@ -23,6 +23,11 @@ from numba import njit
 # variance (our own choice, far below the precision that a t statistic needs).
 REFIT_MAX_ITER = 50
 REFIT_TOL = 1e-8
+# The first iterations are Fisher-scoring steps, Newton steps after (common practice for
+# REML: scoring is robust far from the optimum, Newton fast near it). From a start far
+# below the optimum with tiny sampling variances (e.g. τ̂² = 0 of the unpermuted data,
+# one run per animal) Newton creeps up at the scale of those variances.
+REFIT_FISHER_STEPS = 2
 
 
 @njit(cache=True, nogil=True)
@@ -187,12 +192,18 @@ def _refit_voxel(y, prec, X, tau2, max_iter, tol, C, Cinv, G2, G3, beta, rhs, A,
         score = 0.5 * (quad - trace_p)
         info = 0.5 * trace_pp
         observed = q_p_q - 0.5 * trace_pp
-        if observed > info * 1e-3:
+        expected = info
+        if observed > info * 1e-3 and _it >= REFIT_FISHER_STEPS:
             info = observed  # Newton where the likelihood is locally concave
         if info <= 0.0:
             break
         step = score / info
         new = tau2 + step
+        if new < 0.0 and expected > 0.0:
+            # a Newton step past the boundary: take the Fisher-scoring step instead
+            # (clamping at 0 would leave τ² to creep back at the scale of the sampling
+            # variances, which takes far more iterations than allowed when those are tiny)
+            new = tau2 + score / expected
         if new < 0.0:
             new = 0.0
         change = abs(new - tau2)
@@ -274,11 +285,14 @@ def _refit_mean_voxel(y, prec, X, tau2, max_iter, tol):
         score = 0.5 * (quad - trace_p)
         info = 0.5 * trace_pp
         observed = cube - w2r * w2r / sw - 0.5 * trace_pp
-        if observed > info * 1e-3:
+        expected = info
+        if observed > info * 1e-3 and _it >= REFIT_FISHER_STEPS:
             info = observed
         if info <= 0.0:
             break
         new = tau2 + score / info
+        if new < 0.0 and expected > 0.0:
+            new = tau2 + score / expected  # Fisher scoring past the boundary (as above)
         if new < 0.0:
             new = 0.0
         change = abs(new - tau2)
@@ -364,3 +378,59 @@ def refit_z_permuted(
     refit_t_permuted(fitted, residual, prec, sign, order, X, tau2_start, out_z, max_iter, tol)
     for v in range(V):
         out_z[v] = _z_from_table(out_z[v], tables, df_row[v], du)
+
+
+@njit(cache=True, nogil=True)
+def refit_f_permuted(
+    fitted, residual, prec, sign, order, X, n_interest, tau2_start, out_f, max_iter, tol
+):
+    """Wald F of the first ``n_interest`` coefficients after one permutation, every voxel.
+
+    The permuted data are built as in :func:`refit_t_permuted`; τ² is refitted by REML
+    (:func:`_refit_voxel`), and at the converged τ² the GLS β and ``Φ = (XᵀWX)⁻¹`` give
+    ``F = β_Iᵀ (Φ_II)⁻¹ β_I / q`` for the block I of the first q columns. NaN where the
+    voxel cannot be fitted.
+    """
+    V, m = residual.shape
+    p = X.shape[1]
+    q = n_interest
+    y = np.empty(m)
+    pr = np.empty(m)
+    C = np.empty((p, p))
+    Cinv = np.empty((p, p))
+    G2 = np.empty((p, p))
+    G3 = np.empty((p, p))
+    beta = np.empty(p)
+    rhs = np.empty(p)
+    A = np.empty((p, 2 * p))
+    wk = np.empty(m)
+    block = np.empty((q, q))
+    block_inv = np.empty((q, q))
+    Aq = np.empty((q, 2 * q))
+    for v in range(V):
+        for a in range(m):
+            y[a] = fitted[v, a] + sign[a] * residual[v, order[a]]
+            pr[a] = prec[v, order[a]]
+        t, _tau2 = _refit_voxel(
+            y, pr, X, tau2_start[v], max_iter, tol, C, Cinv, G2, G3, beta, rhs, A, wk
+        )
+        if not np.isfinite(t):
+            out_f[v] = np.nan
+            continue
+        # _refit_voxel leaves the final GLS in its workspaces: Cinv = (XᵀWX)⁻¹ and
+        # rhs = XᵀWy at the converged τ²
+        for i in range(p):
+            beta[i] = 0.0
+            for j in range(p):
+                beta[i] += Cinv[i, j] * rhs[j]
+        for i in range(q):
+            for j in range(q):
+                block[i, j] = Cinv[i, j]
+        if not _solve_spd(block, block_inv, q, Aq):
+            out_f[v] = np.nan
+            continue
+        f = 0.0
+        for i in range(q):
+            for j in range(q):
+                f += beta[i] * block_inv[i, j] * beta[j]
+        out_f[v] = f / q

@@ -74,6 +74,7 @@ from grouplevel.inference.significance import check_sided
 from grouplevel.inference.tfce import tfce as tfce_map
 from grouplevel.machine import available_cores
 from grouplevel.model.animals import VARIANCE_FLOOR, animal_means
+from grouplevel.model.ftest import f_to_z
 
 # t -> z conversion table: points on u = asinh(t) up to t = 1e8 (our own choice; the
 # interpolation error is below 1e-4 in z, far below what a threshold needs).
@@ -358,12 +359,20 @@ def partition_design(design: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.
     nuisance alone — the reduced model of Freedman–Lane (Winkler et al. 2014, §
     "Permutation strategies"; reparametrisation of the kind in their Appendix A).
     For ``c`` on the intercept, ``x_interest`` is the constant column.
+
+    ``c`` may also be a (q, p) matrix of linearly independent rows (an F-test): then
+    ``x_interest`` is (m, q), its coefficients are ``Cβ``, and the nuisance is the
+    (m, p − q) part of the design that ``Cβ = 0`` leaves.
     """
-    c = np.asarray(c, dtype=float).reshape(-1)
-    _, _, vt = np.linalg.svd(c[None, :])
-    A = np.vstack([c[None, :], vt[1:]])  # rows: cᵀ, then an orthonormal basis ⟂ c
+    rows = np.asarray(c, dtype=float)
+    L = np.atleast_2d(rows)
+    q = L.shape[0]
+    _, _, vt = np.linalg.svd(L)
+    A = np.vstack([L, vt[q:]])  # rows: the contrast rows, then an orthonormal basis ⟂ them
     new = design @ np.linalg.inv(A)
-    return new[:, 0], new[:, 1:]
+    if rows.ndim == 1:
+        return new[:, 0], new[:, 1:]
+    return new[:, :q], new[:, q:]
 
 
 @dataclass(frozen=True)
@@ -404,7 +413,9 @@ class PermutationScheme:
         return int(self.signs.shape[0])
 
 
-def count_design_symmetries(design: np.ndarray, rearranged: np.ndarray, sided: str = "two") -> int:
+def count_design_symmetries(
+    design: np.ndarray, rearranged: np.ndarray, sided: str = "two", n_interest: int | None = None
+) -> int:
     """How many rearranged designs give the same statistic as the design itself.
 
     A rearrangement moves (or flips) the animals' data; testing the rearranged data on
@@ -430,6 +441,12 @@ def count_design_symmetries(design: np.ndarray, rearranged: np.ndarray, sided: s
         (n, m, p) the design as rearranged by each enumerated rearrangement.
     sided
         ``"two"`` counts M with ±e₀ᵀ (|t| unchanged); one-sided tests only +e₀ᵀ.
+    n_interest
+        For an F-test, the number q of leading columns of interest. F tests the
+        hypothesis that the data lie in the nuisance span, which stays the same whenever
+        ``M[:q, q:] = 0`` (the rearranged nuisance columns keep no part of the columns of
+        interest); any invertible mixing of the columns of interest leaves F unchanged,
+        so there is no sign condition (F is two-sided by nature).
 
     Returns
     -------
@@ -451,6 +468,11 @@ def count_design_symmetries(design: np.ndarray, rearranged: np.ndarray, sided: s
         A = np.asarray(rearranged[lo : lo + _SYMMETRY_BLOCK], dtype=float)
         M = pinv @ A  # (n, p, p) least-squares solutions of D·M = A
         exact = np.abs(A - D @ M).max(axis=(1, 2)) <= tol
+        if n_interest is not None:
+            q = n_interest
+            upper = np.abs(M[:, :q, q:]).max(axis=(1, 2), initial=0.0) <= tol
+            count += int(np.sum(exact & upper))
+            continue
         first = M[:, 0, :]
         rest_zero = np.abs(first[:, 1:]).max(axis=1, initial=0.0) <= tol
         plus = np.abs(first[:, 0] - 1.0) <= tol
@@ -469,14 +491,16 @@ def is_mean_contrast(x_interest: np.ndarray, nuisance: np.ndarray) -> bool:
     difference between groups, a slope) is tested by permuting animals. When the
     constant is not in the design's span, a regressor of interest that is the same for
     every animal is taken as a mean (Winkler et al. 2014, sign flips for one-sample
-    tests).
+    tests). ``x_interest`` may be (m, q), the columns of interest of an F-test: it is a
+    mean test when a common shift moves any of them.
     """
     D = np.column_stack([x_interest, nuisance]).astype(float)
+    q = np.asarray(x_interest).reshape(D.shape[0], -1).shape[1]
     ones = np.ones(D.shape[0])
     w, *_ = np.linalg.lstsq(D, ones, rcond=None)
     tol = _SYMMETRY_TOL * max(1.0, float(np.abs(D).max()))
     if np.abs(D @ w - ones).max() <= tol:
-        return bool(abs(w[0]) > tol)
+        return bool(np.abs(w[:q]).max() > tol)
     return bool(np.allclose(x_interest, x_interest[0]))
 
 
@@ -506,6 +530,7 @@ def plan_permutations(
     n_requested: int,
     rng: np.random.Generator,
     sided: str = "two",
+    f_test: bool = False,
 ) -> PermutationScheme:
     """Choose sign flips or animal permutations and enumerate or draw them.
 
@@ -514,9 +539,12 @@ def plan_permutations(
     first. The identity is always counted. The smallest attainable p of an exhaustive
     scheme counts the rearrangements that give the observed statistic back
     (:func:`count_design_symmetries`): 2/2ᵐ for two-sided sign flips, 2/C(m, m/2)
-    for a balanced two-group comparison, two-sided.
+    for a balanced two-group comparison, two-sided. With ``f_test`` the (m, q)
+    ``x_interest`` holds the columns of an F-test, whose design symmetries are counted
+    as F's (e.g. 3!/C(6; 2,2,2) for a balanced three-group comparison).
     """
     m = x_interest.shape[0]
+    n_interest = np.asarray(x_interest).reshape(m, -1).shape[1] if f_test else None
     if n_requested < 1:
         raise ArgumentError(f"n_permutations must be at least 1, got {n_requested}")
     if is_mean_contrast(x_interest, nuisance):
@@ -534,7 +562,7 @@ def plan_permutations(
         same = 1
         if exhaustive:
             D = np.column_stack([x_interest, nuisance])
-            same = count_design_symmetries(D, _SignFlipped(D, signs), sided)
+            same = count_design_symmetries(D, _SignFlipped(D, signs), sided, n_interest)
         return PermutationScheme(
             "sign flips", signs.astype(np.int8), orders, exhaustive, n_distinct, same / n, same
         )
@@ -556,7 +584,7 @@ def plan_permutations(
     same = 1
     if exhaustive:
         D = np.column_stack([x_interest, nuisance])
-        same = count_design_symmetries(D, _Reordered(D, orders), sided)
+        same = count_design_symmetries(D, _Reordered(D, orders), sided, n_interest)
     n = orders.shape[0]
     return PermutationScheme(
         "animal permutations", signs, orders, exhaustive, n_distinct, same / n, same
@@ -732,6 +760,10 @@ class _PermutationWork:
         )
         return z
 
+    def oriented(self, z: np.ndarray) -> np.ndarray:
+        """The statistic as it is ranked for the maximum (larger: more extreme)."""
+        return _oriented(z, self.sided)
+
     def volume(self, values: np.ndarray) -> np.ndarray:
         out = np.zeros(self.mask.shape)
         out[self.mask] = values
@@ -752,7 +784,7 @@ class _PermutationWork:
         """Maximum statistic, cluster extent, cluster mass and TFCE of permutation k."""
         z = self.statistic(k)
         vol = self.volume(z)
-        max_stat = float(_oriented(z, self.sided).max())
+        max_stat = float(self.oriented(z).max())
         extent, mass = max_cluster_extent_and_mass(
             vol, self.mask, self.threshold, connectivity=self.connectivity, sided=self.sided
         )
@@ -806,6 +838,108 @@ def g_statistic(Y: np.ndarray, X: np.ndarray, c: np.ndarray, groups: np.ndarray)
     return (beta @ c) / np.sqrt(var)
 
 
+def g_statistic_rank(Y: np.ndarray, X: np.ndarray, C: np.ndarray, groups: np.ndarray) -> np.ndarray:
+    """The G statistic of an F-test (s = rank(C) rows) with one variance per group of rows.
+
+    With ordinary least-squares residuals and each group's variance estimated as in
+    :func:`g_statistic`, ``W = diag(1/σ̂²_g(a))`` and the weighted estimate ψ̂,
+
+        G = ψ̂ᵀ Cᵀ (C (XᵀWX)⁻¹ Cᵀ)⁻¹ C ψ̂ / (Λ s),
+        Λ = 1 + 2(s − 1)/(s(s + 2)) Σ_g (1 / Σ_{a∈g} R_aa) (1 − Σ_{a∈g} W_aa / tr W)²,
+
+    Welch's (1951) generalisation of the F statistic to unequal variances as Winkler et
+    al. (2014) write it (the formula from memory). With s = 1, Λ = 1 and G is the
+    square of :func:`g_statistic`; with one group, Λ = 1 and G is the ordinary F.
+
+    Parameters
+    ----------
+    Y : ndarray, shape (V, m)
+    X : ndarray, shape (m, r)
+    C : ndarray, shape (s, r)
+    groups : ndarray of int, shape (m,)
+
+    Returns
+    -------
+    ndarray, shape (V,)
+
+    References
+    ----------
+    Welch BL (1951). On the comparison of several mean values: an alternative approach.
+    Biometrika 38:330-336.
+
+    Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014). Permutation
+    inference for the general linear model. NeuroImage 92:381-397 (the G statistic).
+    """
+    C = np.atleast_2d(np.asarray(C, dtype=float))
+    s = C.shape[0]
+    n_groups = int(groups.max()) + 1
+    R = np.eye(X.shape[0]) - X @ np.linalg.pinv(X)
+    E = Y @ R.T
+    onehot = np.zeros((X.shape[0], n_groups))
+    onehot[np.arange(X.shape[0]), groups] = 1.0
+    trace = np.diag(R) @ onehot  # (n_groups,) Σ_{a∈g} R_aa
+    s2 = (E * E) @ onehot / np.maximum(trace, 1e-300)
+    s2 = np.maximum(s2, _G_VARIANCE_FLOOR * np.maximum(s2.max(axis=1, keepdims=True), 1e-300))
+    w = 1.0 / s2[:, groups]  # (V, m)
+    info = np.einsum("va,ar,as->vrs", w, X, X)
+    rhs = np.einsum("va,ar,va->vr", w, X, Y)
+    beta = np.linalg.solve(info, rhs[..., None])[..., 0]
+    effect = beta @ C.T  # (V, s)
+    cov = np.einsum("ir,vrt,jt->vij", C, np.linalg.inv(info), C)
+    quad = np.einsum("vi,vi->v", effect, np.linalg.solve(cov, effect[..., None])[..., 0])
+    share = (w @ onehot) / w.sum(axis=1, keepdims=True)  # Σ_{a∈g} W_aa / tr W
+    lam = 1.0 + 2.0 * (s - 1) / (s * (s + 2)) * ((1.0 - share) ** 2 / trace).sum(axis=1)
+    return quad / (lam * s)
+
+
+@dataclass(frozen=True, eq=False)
+class _FTestWork(_PermutationWork):
+    """Permutation work whose statistic is the refitted Wald F of the first q columns,
+    as z at equal (upper-tail) p on (q, df)."""
+
+    n_interest: int = 1
+    df: np.ndarray = None  # type: ignore[assignment]  # (V,) denominator df
+
+    def f_values(self, k: int) -> np.ndarray:
+        f = np.empty(self.fitted.shape[0])
+        _refit_kernel.refit_f_permuted(
+            self.fitted,
+            self.residual,
+            self.precision,
+            self.signs[k],
+            self.orders[k],
+            self.X_perm,
+            self.n_interest,
+            self.tau2_start,
+            f,
+            _refit_kernel.REFIT_MAX_ITER,
+            _refit_kernel.REFIT_TOL,
+        )
+        return f
+
+    def statistic(self, k: int) -> np.ndarray:
+        z = f_to_z(self.f_values(k), self.n_interest, self.df)
+        # an unfittable voxel (NaN) or F = 0 (z = −∞) ranks as the median F
+        return np.where(np.isfinite(z), z, 0.0)
+
+    def oriented(self, z: np.ndarray) -> np.ndarray:
+        # z rises with F over its whole range: no clamping at 0, so that F below its
+        # median keeps its rank in the maximum (clusters and TFCE use z > 0 only)
+        return z
+
+
+@dataclass(frozen=True, eq=False)
+class _GroupVarianceFWork(_FTestWork):
+    """F-test permutation work with the rank-s G statistic (one variance per group)."""
+
+    groups: np.ndarray = None  # type: ignore[assignment]  # (m,) variance group codes
+
+    def f_values(self, k: int) -> np.ndarray:
+        Y = self.fitted + self.signs[k][None, :] * self.residual
+        C = np.eye(self.X_perm.shape[1])[: self.n_interest]
+        return g_statistic_rank(Y, self.X_perm, C, self.groups)
+
+
 @dataclass(frozen=True, eq=False)
 class _GroupVarianceWork(_PermutationWork):
     """Permutation work whose statistic is the G statistic of the animal-level data."""
@@ -856,6 +990,7 @@ def permutation_test(
     threads: int | None = None,
     backend: PermutationBackend | None = None,
     variance_groups: np.ndarray | None = None,
+    f_test: bool = False,
 ) -> PermutationResult:
     """Run the permutation test of contrast ``c`` and return FWE-corrected maps.
 
@@ -898,6 +1033,14 @@ def permutation_test(
         group difference), and the statistic is the G statistic of Winkler et al.
         (2014) — a weighted least-squares t with one residual variance per group —
         converted to z at ``df``. Every animal must have data at every voxel.
+    f_test
+        ``c`` is a (q, p) matrix of linearly independent rows tested jointly: the
+        statistic is the refitted Wald F (the rank-q G statistic with variance groups),
+        converted to z at equal upper-tail p on (q, ``df``); ``sided`` must be
+        ``"positive"`` (F grows with a difference in any direction). The rearrangements
+        are those of a t contrast of the same columns (sign flips for means, animal
+        permutations for differences, Freedman–Lane for nuisance), and design
+        symmetries are counted for F (:func:`count_design_symmetries`).
 
     References
     ----------
@@ -905,15 +1048,20 @@ def permutation_test(
     Smith SM, Nichols TE (2009). NeuroImage 44:83-98.
     """
     check_sided(sided)
+    if f_test and sided != "positive":
+        raise ArgumentError('an F-test is tested on its upper tail: use sided = "positive"')
     x_i, Z = partition_design(data.design, c)
     X_perm = np.column_stack([x_i, Z])
     V, m = data.mean.shape
+    plan_f = {"f_test": True} if f_test else {}  # the t plan is called as it always was
     if variance_groups is not None:
         # unequal variances: only sign flips keep the errors' distribution (symmetric
         # errors, Winkler et al. 2014, "ISE"); a constant regressor asks for them
-        scheme = plan_permutations(np.ones(m), Z[:, :0], n_permutations, rng, sided)
+        scheme = plan_permutations(
+            np.ones(m), Z[:, :0], n_permutations, rng, "two" if f_test else sided, **plan_f
+        )
     else:
-        scheme = plan_permutations(x_i, Z, n_permutations, rng, sided)
+        scheme = plan_permutations(x_i, Z, n_permutations, rng, sided, **plan_f)
     # Freedman–Lane: nuisance-only GLS fit at the unpermuted τ̂² (per voxel)
     fitted = np.zeros_like(data.mean)
     if Z.shape[1] and variance_groups is not None:
@@ -940,6 +1088,10 @@ def permutation_test(
             )
         kind = _GroupVarianceWork
         extra = {"groups": np.asarray(variance_groups, dtype=np.int64)}
+    if f_test:
+        extra["n_interest"] = int(np.atleast_2d(c).shape[0])
+        extra["df"] = np.asarray(df, dtype=float)
+        kind = _GroupVarianceFWork if variance_groups is not None else _FTestWork
     work = kind(
         fitted=np.ascontiguousarray(fitted),
         residual=np.ascontiguousarray(residual),
@@ -989,7 +1141,7 @@ def permutation_test(
     # observed maps (identity permutation)
     z_obs = work.statistic(0)
     vol = work.volume(z_obs)
-    oriented = _oriented(z_obs, sided)
+    oriented = work.oriented(z_obs)
     p_voxel = _fwe_p(oriented, null[:, 0])
     clusters = find_clusters(
         vol, mask, thr, connectivity=connectivity, voxel_volume_mm3=voxel_volume_mm3, sided=sided

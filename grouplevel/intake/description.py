@@ -15,6 +15,7 @@ from grouplevel.intake.design import (
     CONTRAST_ANIMAL,
     CONTRAST_SLOPE,
     CONTRAST_SLOPES,
+    FTEST_SUFFIX,
     Design,
     RandomEffects,
     animal_design,
@@ -46,13 +47,14 @@ def _reduced_design(
     The same reduction ``run`` makes (one value per animal for the level ``c`` tests:
     the animal's intercept, its own slope, or its own combination of slopes), without
     the data; animals with no information on a tested slope take no part. None when
-    ``c`` mixes levels (``check`` refuses permutations for it).
+    ``c`` mixes levels (``check`` refuses permutations for it). ``c`` may be the (q, p)
+    rows of an F-test (reduced column-wise; None for rows on several slopes).
     """
-    kind, slope = contrast_kind(design, random, c)
+    kind, slope = contrast_kind(design, random, np.abs(np.atleast_2d(c)).sum(axis=0))
     if kind == CONTRAST_ANIMAL:
         columns = [j for j in range(len(design.columns)) if not design.within[j]]
-        return animal_design(design)[:, columns], c[columns]
-    if kind not in (CONTRAST_SLOPE, CONTRAST_SLOPES):
+        return animal_design(design)[:, columns], c[..., columns]
+    if kind not in (CONTRAST_SLOPE, CONTRAST_SLOPES) or (kind == CONTRAST_SLOPES and c.ndim > 1):
         return None
     slope_cols = (
         [random.slope_columns[slope]]
@@ -65,24 +67,33 @@ def _reduced_design(
         varies |= (frame.groupby("a")["x"].nunique() > 1).to_numpy()
     if kind == CONTRAST_SLOPE:
         G, columns = slope_design(design, random, slope)
-        return G[varies], c[columns]
+        return G[varies], c[..., columns]
     return np.ones((int(varies.sum()), 1)), np.ones(1)
 
 
 def _scheme(
     design: Design, random: RandomEffects, c: np.ndarray, inference: InferenceSettings
 ) -> dict:
-    """The permutation scheme a contrast will get, without the data (what run will do)."""
+    """The permutation scheme a contrast (or the (q, p) rows of an F-test) will get,
+    without the data (what run will do)."""
     from grouplevel.inference.permutation import partition_design, plan_permutations
 
     if inference.permutations == 0:
         return {"kind": "none", "why": "[inference] permutations = 0: parametric maps only"}
+    f_test = c.ndim > 1
     reduced = _reduced_design(design, random, c)
     if reduced is None:
-        return {"kind": "none", "why": "the contrast mixes animal-level and within-animal columns"}
+        why = "the contrast mixes animal-level and within-animal columns"
+        if f_test:
+            why = "its rows are several within-animal random slopes, or mix levels"
+        return {"kind": "none", "why": why}
     x_i, Z = partition_design(*reduced)
     rng = np.random.default_rng(inference.seed)
-    scheme = plan_permutations(x_i, Z, inference.permutations, rng, inference.sided)
+    if f_test and random.variance_groups is not None:
+        # the G statistic: sign flips of whole animals only (as run does)
+        x_i, Z = np.ones(x_i.shape[0]), Z[:, :0]
+    sided = "positive" if f_test else inference.sided
+    scheme = plan_permutations(x_i, Z, inference.permutations, rng, sided, f_test)
     return {
         "kind": scheme.kind,
         "exhaustive": scheme.exhaustive,
@@ -92,6 +103,37 @@ def _scheme(
         "smallest_attainable_p": scheme.smallest_p,
         "above_alpha": bool(scheme.smallest_p > inference.alpha),
     }
+
+
+def ftest_df_rule(design: Design, random: RandomEffects, weights: np.ndarray) -> str:
+    """The denominator degrees of freedom of an F-test in words, with their value where
+    every run has data (docs/model.md, "F-tests")."""
+    text = _ftest_df_words(design, random, weights)
+    if random.animal_group is not None:
+        text += "; with variance groups at most the smallest Welch–Satterthwaite df of its rows"
+    return text
+
+
+def _ftest_df_words(design: Design, random: RandomEffects, weights: np.ndarray) -> str:
+    kind, slope = contrast_kind(design, random, np.abs(weights).sum(axis=0))
+    if kind == CONTRAST_ANIMAL:
+        columns = [j for j in range(len(design.columns)) if not design.within[j]]
+        rank = np.linalg.matrix_rank(animal_design(design)[:, columns]) if columns else 0
+        return (
+            f"animals − rank of the animal-level design = {design.n_animals} − {rank} = "
+            f"{design.n_animals - rank} (where every animal has data)"
+        )
+    if kind == CONTRAST_SLOPE:
+        G, _ = slope_design(design, random, slope)
+        rank = np.linalg.matrix_rank(G)
+        return (
+            f"animals whose runs vary {design.columns[random.slope_columns[slope]]} − rank "
+            f"of the slope's animal-level design ({rank}) (the slope df, as for its t "
+            "contrasts)"
+        )
+    if kind == CONTRAST_SLOPES:
+        return "the smallest slope df of the slopes in its rows (as for t contrasts)"
+    return "the smaller of the animal-level and slope df (as for t contrasts)"
 
 
 def design_description(study: Study, fl: FirstLevel) -> dict:
@@ -125,6 +167,29 @@ def design_description(study: Study, fl: FirstLevel) -> dict:
                 "permutation": scheme,
             }
         )
+    ftests = []
+    for ft in fl.ftests:
+        scheme = _scheme(design, fl.random, ft.weights, inference)
+        if scheme.get("above_alpha"):
+            warnings.append(
+                f"{label}, F-test {ft.name}: the smallest p that {scheme['permutations']} "
+                f"{scheme['kind']} can give is {scheme['smallest_attainable_p']:.3g}, above "
+                f"alpha = {inference.alpha}: permutation inference cannot reach significance"
+            )
+        ftests.append(
+            {
+                "name": ft.name,
+                "rows": [
+                    {"contrast": row, "weights": weights_dict(w, design.columns)}
+                    for row, w in zip(ft.rows, ft.weights, strict=True)
+                ],
+                "meaning": ft.meaning,
+                "default": not ft.declared,
+                "df_numerator": len(ft.rows),
+                "df_denominator": ftest_df_rule(design, fl.random, ft.weights),
+                "permutation": scheme,
+            }
+        )
     return {
         "formula": study.settings.model.formula,
         "random_effects": describe_random_effects(design, fl.random),
@@ -149,10 +214,12 @@ def design_description(study: Study, fl: FirstLevel) -> dict:
             for cv in design.covariates
         ],
         "contrasts": contrasts,
+        "ftests": ftests,
         "left_out": list(design.left_out) if not study.settings.user_contrasts else [],
         "notes": [
             f"{f.variable} has {len(f.levels)} levels: each is tested against the reference "
-            f"({f.reference}) on its own; an F-test across all levels is not done"
+            f"({f.reference}) on its own, and all at once by the F-test "
+            f"{f.variable}-{FTEST_SUFFIX}"
             for f in design.factors
             if len(f.levels) > 2
         ],

@@ -91,6 +91,26 @@ class GroupContrast:
 
 
 @dataclass(frozen=True)
+class GroupFTest:
+    """An F-test of several group contrasts at once.
+
+    ``rows`` names the contrasts tested jointly and ``weights`` is their (q, p) matrix;
+    ``meaning`` says in plain words what a significant F shows.
+    """
+
+    name: str
+    rows: tuple[str, ...]
+    weights: np.ndarray
+    meaning: str
+    declared: bool = False  # an [[ftest]] block (else a default of the design)
+
+
+# Suffix of the default F-test of a factor with more than two levels: all its
+# differences from the reference level at once (docs/model.md, "F-tests").
+FTEST_SUFFIX = "any-difference"
+
+
+@dataclass(frozen=True)
 class Design:
     """The design of one first-level contrast's runs.
 
@@ -111,6 +131,9 @@ class Design:
         variables (how they are centred).
     default_contrasts
         Contrasts named after what they test (used when the study defines none).
+    default_ftests
+        For every factor with more than two levels, the F-test of all its differences
+        from the reference level at once, named ``<variable>-any-difference``.
     left_out
         Default contrasts that could not be named honestly, with the reason.
     variable_levels
@@ -141,6 +164,8 @@ class Design:
     default_contrasts: tuple[GroupContrast, ...] = ()
     left_out: tuple[str, ...] = ()
     variable_levels: dict[str, str] = field(default_factory=dict)
+    # one F-test per factor with more than two levels (see :func:`default_ftests`)
+    default_ftests: tuple[GroupFTest, ...] = ()
 
     @property
     def n_animals(self) -> int:
@@ -397,6 +422,10 @@ class _NamedContrasts(dict):
     """name -> (weights, meaning); a name that is taken gets a number (levels whose
     folder-safe spellings coincide, e.g. ``a b`` and ``a_b``)."""
 
+    def __init__(self) -> None:
+        super().__init__()
+        self.differences: dict[str, list[str]] = {}  # factor -> its difference contrasts
+
     def __setitem__(self, name: str, value: tuple[np.ndarray, str]) -> None:
         unique, k = name, 2
         while unique in self:
@@ -443,11 +472,14 @@ def _contrasts_at(spec, columns, factors, raw_levels, data, values, slopes, wher
             rows[f.levels[j]] = L[pick].mean(axis=0)
         for level, row in rows.items():
             out[f"mean-{prefix}{_safe(level)}"] = (row, f"mean of {f.variable} = {level}{where}")
+        differences = []
         for level in f.levels[1:]:
             out[f"{prefix}{_safe(level)}-minus-{_safe(f.reference)}"] = (
                 rows[level] - rows[f.reference],
                 f"{f.variable} {level} minus {f.reference}{where}",
             )
+            differences.append(next(reversed(out)))  # the name given (made unique)
+        out.differences[f.variable] = differences
     if factors:
         groups = " and ".join(f.variable for f in factors)
         out["mean-over-groups"] = (
@@ -493,7 +525,7 @@ def _default_contrasts(spec, columns, data, animal, f: Formula, numeric, centres
     try:
         factors, raw_levels = _factor_list(spec, data, animal)
     except _NoGrid as exc:
-        return [], covariates, [], [f"no default contrasts: {exc}; define [[contrast]]s"]
+        return [], covariates, [], [f"no default contrasts: {exc}; define [[contrast]]s"], []
     centred = [v for v in numeric if v not in uncentred]
     where = f" at the average {', '.join(centred)}" if centred else ""
     try:
@@ -505,7 +537,7 @@ def _default_contrasts(spec, columns, data, animal, f: Formula, numeric, centres
             for u in uncentred
         ]
     except _NoGrid as exc:
-        return factors, covariates, [], [f"no default contrasts: {exc}; define [[contrast]]s"]
+        return factors, covariates, [], [f"no default contrasts: {exc}; define [[contrast]]s"], []
     contrasts, left_out = [], []
     scale = max(1.0, float(np.abs(np.asarray([w for w, _ in found.values()])).max()))
     for name, (w, meaning) in found.items():
@@ -531,7 +563,47 @@ def _default_contrasts(spec, columns, data, animal, f: Formula, numeric, centres
                 f"{var}: enters the formula through a non-linear expression, so it has no "
                 "single slope; define a [[contrast]] on its column if you want one"
             )
-    return factors, covariates, contrasts, left_out
+    ftests = default_ftests(factors, found.differences, contrasts, where)
+    return factors, covariates, contrasts, left_out, ftests
+
+
+def default_ftests(
+    factors: Sequence[Factor],
+    differences: dict[str, list[str]],
+    contrasts: Sequence[GroupContrast],
+    where: str = "",
+) -> list[GroupFTest]:
+    """One F-test per factor with more than two levels: all its differences from the
+    reference level at once ("is there any difference between the levels?").
+
+    A factor whose differences were not all kept as default contrasts (one depends on
+    an uncentred covariate, or is not estimable) gets none.
+    """
+    by_name = {c.name: c for c in contrasts}
+    out = []
+    for f in factors:
+        names = differences.get(f.variable, [])
+        if len(f.levels) <= 2 or len(names) != len(f.levels) - 1:
+            continue
+        if not all(n in by_name for n in names):
+            continue
+        weights = np.vstack([by_name[n].weights for n in names])
+        if np.linalg.matrix_rank(weights) < len(names):
+            continue
+        out.append(
+            GroupFTest(
+                name=f"{_safe(f.variable)}-{FTEST_SUFFIX}",
+                rows=tuple(names),
+                weights=weights,
+                meaning=(
+                    f"any difference between the {len(f.levels)} levels of {f.variable} "
+                    f"({', '.join(f.levels)})"
+                    + (" averaged over the other factors' levels" if len(factors) > 1 else "")
+                    + where
+                ),
+            )
+        )
+    return out
 
 
 def build_design(
@@ -588,7 +660,7 @@ def build_design(
         raise UserError(f'[model] formula {formula!r} gives no columns; use "1" for the mean')
     animal_level = _check_rank(X, columns, animal, len(animal_ids), formula)
     session, session_ids = session_codes(data, animal, animal_ids)
-    factors, covariates, contrasts, left_out = _default_contrasts(
+    factors, covariates, contrasts, left_out, ftests = _default_contrasts(
         mm.model_spec, columns, data, animal, f, numeric, centres
     )
     return Design(
@@ -601,6 +673,7 @@ def build_design(
         covariates=tuple(covariates),
         default_contrasts=tuple(contrasts),
         left_out=tuple(left_out),
+        default_ftests=tuple(ftests),
         variable_levels=variable_levels(runs.reset_index(drop=True), variables),
         session=session,
         session_ids=session_ids,
@@ -1075,6 +1148,7 @@ def model_problems(
     model,
     permutations: int,
     full_coverage: bool = True,
+    ftests: Sequence[GroupFTest] = (),
 ) -> tuple[RandomEffects, list[str], list[str]]:
     """The random effects of a design from the ``[model]`` settings, with what ``check``
     must refuse and what it must caution about.
@@ -1092,6 +1166,9 @@ def model_problems(
     full_coverage
         True when every run must have data at every voxel (``[study] min_coverage``
         = 1).
+    ftests
+        The F-tests of the design; their rows count as tested contrasts (random slopes
+        "auto"), and an F-test that cannot be permuted correctly is refused.
 
     Returns
     -------
@@ -1105,7 +1182,7 @@ def model_problems(
     random = random_effects(
         design,
         runs,
-        [c for _, c in contrasts],
+        [c for _, c in contrasts] + [row for f in ftests for row in f.weights],
         random_slopes=model.random_slopes,
         sessions=model.sessions,
         variance_groups=model.variance_groups,
@@ -1128,7 +1205,61 @@ def model_problems(
             refusal = permutation_refusal(design, random, name, c, permutations, full_coverage)
             if refusal:
                 problems.append(refusal)
+    for f in ftests:
+        union = np.abs(f.weights).sum(axis=0)
+        note = unslope_warning(design, random, f"F-test {f.name}", union)
+        if note:
+            warnings.append(note)
+        if permutations > 0:
+            refusal = ftest_permutation_refusal(design, random, f, permutations, full_coverage)
+            if refusal and f.declared:
+                problems.append(refusal)
+            elif refusal:
+                # a default F-test never makes a study invalid: it stays parametric
+                warnings.append(
+                    f"{refusal.split(': [inference]')[0]} (a default F-test) is tested "
+                    "parametrically only (FDR; no permutation inference): "
+                    + refusal.split(": ", 2)[-1]
+                )
     return random, problems, warnings
+
+
+def ftest_kind(design: Design, random: RandomEffects, weights: np.ndarray):
+    """The level an F-test tests (as :func:`contrast_kind` of all its columns at once)."""
+    return contrast_kind(design, random, np.abs(np.atleast_2d(weights)).sum(axis=0))
+
+
+def ftest_permutation_refusal(
+    design: Design,
+    random: RandomEffects,
+    ftest: GroupFTest,
+    permutations: int,
+    full_coverage: bool = True,
+) -> str | None:
+    """Why ``[inference] permutations`` cannot test this F-test correctly, or None.
+
+    Permuted: F-tests of animal-level columns (whole-animal permutations or sign flips,
+    Freedman–Lane), and of one random slope with its animal-level moderators (each
+    animal's own slope). Refused: F-tests whose rows are several random slopes (each
+    animal's own effects would form a vector, exchanged as a whole with its own
+    covariance, which the engine does not model), and those that mix levels.
+    """
+    union = np.abs(ftest.weights).sum(axis=0)
+    refusal = permutation_refusal(
+        design, random, f"F-test {ftest.name}", union, permutations, full_coverage
+    )
+    if refusal:
+        return refusal.replace("contrast 'F-test ", "F-test '").replace("the contrast", "it")
+    kind, _ = ftest_kind(design, random, ftest.weights)
+    if kind == CONTRAST_SLOPES:
+        return (
+            f"F-test '{ftest.name}': [inference] permutations = {permutations}: its rows are "
+            "differences of several within-animal random slopes; a permutation F-test of "
+            "those would exchange each animal's vector of own effects, which is not "
+            "implemented. Test it parametrically (permutations = 0), or test the rows as "
+            "separate contrasts with permutations"
+        )
+    return None
 
 
 def _describe(design: Design, random: RandomEffects) -> str:

@@ -25,10 +25,38 @@ SINGULAR_AFFINE_RATIO = 1e-6
 
 @dataclass(frozen=True)
 class Grid:
-    """The voxel grid that every map of a study shares."""
+    """The voxel grid that every map of a study shares.
+
+    ``affine`` maps voxel indices to true RAS+ millimetres: every length, volume and
+    coordinate of the analysis comes from it. ``header_affine`` is the affine the image
+    headers store, when ``[space]`` declares them scaled or their axes exchanged (None
+    when the headers are true); output maps are written with it, so that they lie on
+    the template in any viewer that reads those headers.
+    """
 
     shape: tuple[int, int, int]
     affine: np.ndarray
+    header_affine: np.ndarray | None = None
+
+    def with_true_units(self, header_to_true: np.ndarray) -> Grid:
+        """This header grid in true millimetres (``header_to_true @ affine``)."""
+        matrix = np.asarray(header_to_true, dtype=float)
+        if np.array_equal(matrix, np.eye(4)):
+            return self
+        return Grid(shape=self.shape, affine=matrix @ self.affine, header_affine=self.affine)
+
+    @property
+    def header_to_true(self) -> np.ndarray:
+        """The 4 × 4 matrix from the headers' world coordinates to true mm (identity when
+        the headers are true)."""
+        if self.header_affine is None:
+            return np.eye(4)
+        return self.affine @ np.linalg.inv(self.header_affine)
+
+    @property
+    def written_affine(self) -> np.ndarray:
+        """The affine that output maps carry: the headers' own."""
+        return self.affine if self.header_affine is None else self.header_affine
 
     @property
     def voxel_size(self) -> np.ndarray:
@@ -193,26 +221,47 @@ _INTENTS: tuple[tuple[str, str, str], ...] = (
     ("df", "estimate", "df of t"),
     ("tfce", "estimate", "TFCE"),
     ("t", "t test", "t"),
+    ("f", "f test", "F"),
     ("z", "z score", "z"),
     ("p", "p value", "p uncorrected"),
     ("q", "estimate", "q FDR"),
 )
 
 
-def map_intent(stem: str, df: float | None = None) -> tuple[str, tuple[float, ...], str]:
+def map_intent(
+    stem: str, df: float | tuple[float, float] | None = None
+) -> tuple[str, tuple[float, ...], str]:
     """The NIfTI intent (code name, parameters, name) of an output map.
 
     A t map carries its degrees of freedom as the intent's parameter when they are the
-    same at every voxel; otherwise it is stored as an estimate (see ``df.nii.gz``).
+    same at every voxel; otherwise it is stored as an estimate (see ``df.nii.gz``). An F
+    map (``f``) carries its numerator and denominator degrees of freedom, ``df`` given
+    as a pair, on the same condition.
     FDR q values are adjusted p-values, not p-values of one test, so they are estimates.
     """
     for prefix, intent, name in _INTENTS:
-        exact = prefix in ("t", "z", "p", "q", "se", "df", "effect", "tfce", "mask", "clusters")
+        exact = prefix in (
+            "t",
+            "f",
+            "z",
+            "p",
+            "q",
+            "se",
+            "df",
+            "effect",
+            "tfce",
+            "mask",
+            "clusters",
+        )
         if stem == prefix if exact else stem.startswith(prefix):
             if intent == "t test":
                 if df is None or not np.isfinite(df):
                     return "estimate", (), "t (df varies)"
-                return intent, (float(df),), name
+                return intent, (float(df),), name  # type: ignore[arg-type]
+            if intent == "f test":
+                if df is None or not np.all(np.isfinite(df)):
+                    return "estimate", (), "F (df varies)"
+                return intent, tuple(float(d) for d in df), name  # type: ignore[union-attr]
             return intent, (), name
     return "estimate", (), stem[:16]
 
@@ -225,7 +274,7 @@ def write_map(
     description: str,
     dtype: type = np.float32,
     *,
-    df: float | None = None,
+    df: float | tuple[float, float] | None = None,
 ) -> None:
     """Write masked values as a 3-D NIfTI map on the study grid.
 
@@ -240,7 +289,8 @@ def write_map(
     mask
         Boolean 3-D analysis mask.
     grid
-        The study grid (its affine goes into the header).
+        The study grid (its headers' affine, :attr:`Grid.written_affine`, goes into the
+        header).
     description
         What the map holds; stored in the header's description field (80 bytes max).
     df
@@ -255,11 +305,12 @@ def write_map(
         out[mask] = np.nan_to_num(values, nan=0.0, posinf=0.0, neginf=0.0)
     else:
         out[mask] = np.nan_to_num(values[mask], nan=0.0, posinf=0.0, neginf=0.0)
-    img = nib.Nifti1Image(out, grid.affine)
+    affine = grid.written_affine  # the headers' own, so the map lies on the template
+    img = nib.Nifti1Image(out, affine)
     img.header["descrip"] = description.encode("ascii", "replace")[:79]
     intent, params, name = map_intent(path.name.split(".")[0], df)
     img.header.set_intent(intent, params, name=name)
     img.header.set_xyzt_units("mm")
-    img.set_qform(grid.affine, code=1)
-    img.set_sform(grid.affine, code=1)
+    img.set_qform(affine, code=1)
+    img.set_sform(affine, code=1)
     nib.save(img, str(path))

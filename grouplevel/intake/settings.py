@@ -13,6 +13,13 @@ from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
+from grouplevel.anatomy.coordinates import (
+    HEADER_AXIS_WORDS,
+    TRUE_HEADER_AXES,
+    header_to_true,
+)
 from grouplevel.errors import UserError
 
 # The level and the sides of a test live with the statistics that use them (the core
@@ -59,6 +66,10 @@ DEFAULT_RANDOM_SLOPES = "auto"
 # variance and a session-level effect is tested against too many df; common practice).
 DEFAULT_SESSIONS = "auto"
 DEFAULT_ORIGIN_NAME = "origin"
+# The image headers are in true millimetres and NIfTI's RAS+ axes unless [space] says
+# otherwise (NIfTI-1 standard: world x right, y anterior, z superior/dorsal).
+DEFAULT_HEADER_UNITS_PER_MM = 1.0
+DEFAULT_HEADER_AXES = TRUE_HEADER_AXES
 # Share of the analysis mask that the atlas must label (our own choice: below one half the
 # atlas is almost surely on another grid or in another space, and most clusters would be
 # "unlabelled").
@@ -101,8 +112,31 @@ class StudySettings:
 
 @dataclass(frozen=True)
 class SpaceSettings:
+    """``[space]``: the coordinate origin, and what the image headers' units and axes
+    really are.
+
+    ``origin_mm`` (and ``[atlas] midline_mm``) are true millimetres on true axes: the
+    header's coordinates divided by ``header_units_per_mm`` and put in the order that
+    ``header_axes`` declares.
+    """
+
     origin_mm: tuple[float, float, float] = (0.0, 0.0, 0.0)
     origin_name: str = DEFAULT_ORIGIN_NAME
+    header_units_per_mm: float = DEFAULT_HEADER_UNITS_PER_MM
+    header_axes: tuple[str, str, str] = DEFAULT_HEADER_AXES
+
+    @property
+    def header_to_true(self) -> np.ndarray:
+        """4 × 4 matrix from the headers' world coordinates to true RAS+ mm."""
+        return header_to_true(self.header_units_per_mm, self.header_axes)
+
+    @property
+    def header_declared(self) -> bool:
+        """Whether the headers were declared scaled or their axes exchanged."""
+        return (
+            self.header_units_per_mm != DEFAULT_HEADER_UNITS_PER_MM
+            or tuple(self.header_axes) != DEFAULT_HEADER_AXES
+        )
 
 
 @dataclass(frozen=True)
@@ -183,6 +217,15 @@ class ContrastSpec:
 
 
 @dataclass(frozen=True)
+class FTestSpec:
+    """An F-test of several group contrasts at once (``[[ftest]]``): its name and the
+    names of the contrasts (default or ``[[contrast]]``) that are its rows."""
+
+    name: str
+    contrasts: tuple[str, ...]
+
+
+@dataclass(frozen=True)
 class ComparisonSpec:
     """A within-animal comparison of first-level conditions (``[[comparison]]``).
 
@@ -228,6 +271,9 @@ class Settings:
     user_contrasts: bool = field(default=False)
     # within-animal comparisons of first-level conditions ([[comparison]])
     comparisons: tuple[ComparisonSpec, ...] = ()
+    # F-tests declared in the study file ([[ftest]]); the design adds one per factor
+    # with more than two levels (grouplevel.intake.design)
+    ftests: tuple[FTestSpec, ...] = ()
 
     def questions_for(self, first_level: str | None) -> QuestionSettings:
         """The questions of one first-level contrast (its override, else [questions])."""
@@ -254,7 +300,7 @@ class Settings:
 # section -> allowed keys. Types are checked by the readers below.
 _SCHEMA: dict[str, tuple[str, ...]] = {
     "study": ("title", "table", "template", "mask", "min_coverage"),
-    "space": ("origin_mm", "origin_name"),
+    "space": ("origin_mm", "origin_name", "header_units_per_mm", "header_axes"),
     "atlas": ("image", "labels", "midline_mm", "min_coverage"),
     "clusters": ("method", "subpeak_distance_mm", "top_regions"),
     "compute": ("memory_gb", "backend", "scheduler", "workers"),
@@ -278,6 +324,7 @@ _SCHEMA: dict[str, tuple[str, ...]] = {
         "variance_groups",
     ),
     "contrast": ("name", "weights"),
+    "ftest": ("name", "contrasts"),
     "comparison": ("name", "conditions"),
     "inference": (
         "permutations",
@@ -381,6 +428,7 @@ def load_settings(path: str | Path) -> Settings:
     model = _read_model(r, _section(r, raw, "model"))
     contrasts = _read_contrasts(r, raw.get("contrast", []))
     comparisons = _read_comparisons(r, raw)
+    ftests = _read_ftests(r, raw.get("ftest", []), contrasts)
     inference = _read_inference(r, _section(r, raw, "inference"))
     clusters = _read_clusters(r, _section(r, raw, "clusters"), inference)
     questions, overrides = _read_questions_tables(r, raw.get("questions", {}))
@@ -403,6 +451,7 @@ def load_settings(path: str | Path) -> Settings:
         # named after what it tests (grouplevel.design); none is assumed here
         user_contrasts=bool(contrasts),
         comparisons=comparisons,
+        ftests=ftests,
     )
 
 
@@ -468,7 +517,39 @@ def _read_space(r: _Reader, sp: dict[str, Any]) -> SpaceSettings:
     return SpaceSettings(
         origin_mm=tuple(float(v) for v in origin),  # type: ignore[arg-type]
         origin_name=r.get("space", sp, "origin_name", str, DEFAULT_ORIGIN_NAME),
+        header_units_per_mm=_read_header_units(r, sp),
+        header_axes=_read_header_axes(r, sp),
     )
+
+
+def _read_header_units(r: _Reader, sp: dict[str, Any]) -> float:
+    """``[space] header_units_per_mm``: a positive number (10 for a ×10 header)."""
+    units = r.get("space", sp, "header_units_per_mm", float, DEFAULT_HEADER_UNITS_PER_MM)
+    if not (np.isfinite(units) and units > 0):
+        r.problem(
+            "[space] header_units_per_mm",
+            f"must be a positive number (10 when the headers store 0.1 mm voxels as 1 mm; "
+            f"1 when they are in true mm), got {units}",
+        )
+        return DEFAULT_HEADER_UNITS_PER_MM
+    return float(units)
+
+
+def _read_header_axes(r: _Reader, sp: dict[str, Any]) -> tuple[str, str, str]:
+    """``[space] header_axes``: towards which side of the animal header x, y, z grow."""
+    axes = r.get("space", sp, "header_axes", list, list(DEFAULT_HEADER_AXES))
+    words = [str(a).strip().lower() for a in axes] if isinstance(axes, list) else []
+    sides = [HEADER_AXIS_WORDS[w][0] for w in words if w in HEADER_AXIS_WORDS]
+    if len(words) != 3 or len(sides) != 3 or sorted(sides) != [0, 1, 2]:
+        r.problem(
+            "[space] header_axes",
+            "must say towards which side of the animal the headers' x, y and z grow, "
+            f"one word each from {', '.join(HEADER_AXIS_WORDS)}, naming left/right, "
+            'anterior/posterior and dorsal/ventral once each (e.g. ["right", '
+            f'"dorsal", "anterior"]); got {axes!r}',
+        )
+        return DEFAULT_HEADER_AXES
+    return (words[0], words[1], words[2])
 
 
 def _read_atlas(r: _Reader, a: dict[str, Any]) -> AtlasSettings | None:
@@ -571,6 +652,61 @@ def _read_contrasts(r: _Reader, blocks: Any) -> tuple[ContrastSpec, ...]:
                 "tables written; remove it",
             )
     return tuple(contrasts)
+
+
+def _read_ftests(
+    r: _Reader, blocks: Any, contrasts: tuple[ContrastSpec, ...]
+) -> tuple[FTestSpec, ...]:
+    """``[[ftest]]`` blocks: a name (it names a folder) and the contrasts tested jointly.
+
+    Whether the named contrasts exist and are linearly independent is checked against
+    each design (:mod:`grouplevel.intake.study`), where the default contrasts are known.
+    """
+    if not isinstance(blocks, list):
+        r.problem("[ftest]", "write F-tests as [[ftest]] blocks (an array of tables)")
+        return ()
+    out: list[FTestSpec] = []
+    taken = {c.name.casefold() for c in contrasts}
+    seen: set[str] = set()
+    for i, block in enumerate(blocks, start=1):
+        where = f"ftest {i}"
+        if not isinstance(block, dict):
+            r.problem(f"[[ftest]] {i}", "must be a table")
+            continue
+        r.check_keys(where, block, _SCHEMA["ftest"])
+        name = r.get(where, block, "name", str, required=True)
+        rows = r.get(where, block, "contrasts", list, required=True)
+        if name is None or rows is None:
+            continue
+        why = name_problem(name) or (
+            f"holds {', '.join(control_characters(name))}" if control_characters(name) else None
+        )
+        if why:
+            r.problem(f"[{where}] name", f"{name!r} {why}; it names a folder: {NAME_RULE}")
+            continue
+        if name.casefold() in seen or name.casefold() in taken:
+            r.problem(
+                f"[{where}] name",
+                f"{name!r} is already the name of another [[ftest]] or [[contrast]] (names "
+                "that differ only in case count as one); choose another",
+            )
+        seen.add(name.casefold())
+        if not rows or not all(isinstance(x, str) for x in rows):
+            r.problem(
+                f"[{where}] contrasts",
+                'must be a list of contrast names, e.g. ["high-minus-none", "low-minus-none"]',
+            )
+            continue
+        twice = sorted({x for x in rows if rows.count(x) > 1})
+        if twice:
+            r.problem(
+                f"[{where}] contrasts",
+                f"names {', '.join(repr(x) for x in twice)} more than once; each contrast is "
+                "one row of the F-test",
+            )
+            continue
+        out.append(FTestSpec(name=name, contrasts=tuple(rows)))
+    return tuple(out)
 
 
 def _read_inference(r: _Reader, inf: dict[str, Any]) -> InferenceSettings:

@@ -15,6 +15,7 @@ positive. A run without a usable value at a voxel carries no weight there.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -22,11 +23,13 @@ import numpy as np
 import pandas as pd
 
 from grouplevel.anatomy.atlas import Atlas, read_atlas
+from grouplevel.anatomy.coordinates import AXIS_NAMES, mask_extent_mm
 from grouplevel.errors import UserError
 from grouplevel.intake.bids import derivatives_table
 from grouplevel.intake.comparisons import PAIRED_LINES, TERMS, combine, comparison_rows
 from grouplevel.intake.design import (
     Design,
+    GroupFTest,
     RandomEffects,
     build_design,
     contrast_vector,
@@ -42,6 +45,7 @@ from grouplevel.intake.settings import (
     with_overrides,
 )
 from grouplevel.intake.textcheck import control_characters, read_text_table
+from grouplevel.model.ftest import contrast_rank
 from grouplevel.outputs.names import NAME_RULE, case_collisions, name_problem, reserved
 
 TRUE_WORDS = {"true", "yes", "1", "y", "t", "x"}
@@ -50,6 +54,11 @@ FALSE_WORDS = {"false", "no", "0", "n", "f", ""}
 # mask extent above this along any axis suggests the ×10 header scaling that some labs
 # apply to rodent images so that human-brain software accepts them.
 MAX_PLAUSIBLE_BRAIN_EXTENT_MM = 40.0
+# A rodent brain is longest anterior–posterior (mouse about 10 × 6 × 6 mm, rat about
+# 20 × 15 × 10 mm; common practice). Another axis longer by more than this factor makes
+# the axis-order warning; the margin spares masks cut short at the olfactory bulb or
+# cerebellum (our own choice).
+AXIS_ORDER_MARGIN = 1.1
 MIN_ANIMALS = 2
 # the runs table's first-level condition column was called "contrast" before it was
 # told apart from the group-level [[contrast]] blocks; read for one release
@@ -74,6 +83,8 @@ class FirstLevel:
     # group contrast name -> what it tests, in plain words (default contrasts)
     contrast_meanings: dict[str, str] = field(default_factory=dict)
     random: RandomEffects = field(default_factory=RandomEffects)  # slopes, sessions, groups
+    # F-tests of several group contrasts at once (default per factor, and [[ftest]])
+    ftests: tuple[GroupFTest, ...] = ()
 
     def output_name(self, contrast_name: str, default_contrast: bool) -> str:
         """Folder name of a group contrast's maps (see DESIGN.md, output contract)."""
@@ -298,6 +309,9 @@ def _check_output_names(first_levels: list[FirstLevel]) -> list[str]:
         for cname, _ in fl.contrasts:
             out = fl.output_name(cname, cname == DEFAULT_CONTRAST_NAME)
             where[out] = f"condition {fl.name!r}, group contrast {cname!r}"
+        for ft in fl.ftests:
+            out = fl.output_name(ft.name, False)
+            where[out] = f"condition {fl.name!r}, F-test {ft.name!r}"
     problems = [
         f"result folder {name!r} ({what}) would clash with grouplevel's own {name!r} in the "
         "output folder; rename the contrast"
@@ -642,9 +656,8 @@ def inspect_study(settings: Settings) -> Study:
         formula_missing=formula_missing,
     )
     first_levels, names = _first_levels(context, table, problems, warnings)
-    extent = _extent_warning(user_mask, first_levels, grid)
-    if extent:
-        warnings.append(extent)
+    brain = user_mask if user_mask is not None else (first_levels[0].mask if first_levels else None)
+    warnings.extend(_header_warnings(settings, brain, grid))
     n_before_atlas = len(problems)
     atlas = _study_atlas(settings, grid, user_mask, first_levels, problems, warnings)
     atlas_problems = problems[n_before_atlas:]
@@ -719,6 +732,8 @@ def _grids(
             if why:
                 problems.append(f"{files[p]}: {p}: {why} ({source})")
                 bad_files.add(p)
+        # files are compared as their headers say; the analysis works in true mm
+        grid = grid.with_true_units(settings.space.header_to_true)
     return grid, bad_files
 
 
@@ -815,7 +830,10 @@ def _first_level(
     if design is None:
         return None
     contrasts, meanings = _group_contrasts(context.settings, design, label, problems)
-    random = _random_effects(context.settings, design, inc, contrasts, label, problems, warnings)
+    ftests = group_ftests(context.settings, design, contrasts, label, problems)
+    random = _random_effects(
+        context.settings, design, inc, contrasts, label, problems, warnings, ftests
+    )
     coverage = _data_pass(context, inc, design, problems, warnings)
     if coverage is None:
         return None
@@ -835,6 +853,7 @@ def _first_level(
         conditions=conditions,
         contrast_meanings=meanings,
         random=random,
+        ftests=tuple(ftests),
     )
 
 
@@ -902,6 +921,7 @@ def _random_effects(
     label: str,
     problems: list[str],
     warnings: list[str],
+    ftests: Sequence[GroupFTest] = (),
 ) -> RandomEffects:
     """The random effects the design gets ([model]); what cannot be fitted or
     permuted correctly is a problem."""
@@ -914,6 +934,7 @@ def _random_effects(
             settings.model,
             settings.inference.permutations,
             full_coverage=settings.study.min_coverage >= 1.0,
+            ftests=ftests,
         )
     except UserError as exc:
         problems.append(f"{label}: {exc}")
@@ -1036,22 +1057,55 @@ def _coverage_mask(
 
 
 # -- extent and atlas --
-def _extent_warning(
-    user_mask: np.ndarray | None, first_levels: list[FirstLevel], grid: Grid
-) -> str | None:
-    """A warning when the brain spans far more than a rodent brain (×10 header scaling)."""
-    extent = _mask_extent_mm(
-        user_mask if user_mask is not None else (first_levels[0].mask if first_levels else None),
-        grid,
-    )
-    if extent is not None and extent.max() > MAX_PLAUSIBLE_BRAIN_EXTENT_MM:
-        return (
-            f"the brain spans {extent.round(1).tolist()} mm along the grid axes (voxel size "
+def _header_warnings(settings: Settings, brain: np.ndarray | None, grid: Grid) -> list[str]:
+    """Warnings when the brain's size or shape says the headers are scaled (×10) or their
+    axes exchanged, measured in true mm (after what ``[space]`` declares)."""
+    if brain is None or not brain.any():
+        return []
+    extent = mask_extent_mm(brain, grid.affine)
+    warnings = []
+    declared = settings.space.header_declared
+    if extent.max() > MAX_PLAUSIBLE_BRAIN_EXTENT_MM:
+        scale = 10.0 ** np.ceil(np.log10(extent.max() / MAX_PLAUSIBLE_BRAIN_EXTENT_MM))
+        units = settings.space.header_units_per_mm * scale
+        warnings.append(
+            f"the brain spans {_mm_list(extent)} mm along x, y, z (voxel size "
             f"{grid.voxel_size.round(3).tolist()} mm), far more than a rodent brain: the "
-            "header may carry the ×10 scaling some labs use for rodent images. Volumes and "
-            "coordinates in the outputs will be in the header's units."
+            "headers probably carry the ×10 scaling some labs use so that software made "
+            "for human brains accepts rodent images. Every volume, distance and "
+            "coordinate of the outputs would be in the header's units (mm³ "
+            f"{scale**3:g} times too large); declare it with [space] "
+            f"header_units_per_mm = {units:g} in {settings.source.name}"
         )
-    return None
+    longest = int(np.argmax(extent))
+    if longest != 1 and extent[longest] > extent[1] * AXIS_ORDER_MARGIN:
+        header_axis = _header_axis_of(grid, longest)
+        fix = (
+            "correct [space] header_axes"
+            if declared
+            else "if they are, declare where each header axis points with [space] "
+            'header_axes (e.g. ["right", "dorsal", "anterior"] when the header\'s y is '
+            "dorsal and its z anterior)"
+        )
+        warnings.append(
+            f"the brain is longest along the {AXIS_NAMES[longest]} axis "
+            f"({extent[longest]:.1f} mm, header axis {header_axis}) and only "
+            f"{extent[1]:.1f} mm anterior–posterior, yet a rodent brain is longest "
+            "anterior–posterior: the headers' axes may be exchanged, and AP, ML and DV in "
+            "the outputs would then be swapped (a mask that covers only part of the brain "
+            f"along AP does this too, and then nothing needs declaring); {fix}"
+        )
+    return warnings
+
+
+def _mm_list(values: np.ndarray) -> str:
+    return "[" + ", ".join(f"{v:.1f}" for v in values) + "]"
+
+
+def _header_axis_of(grid: Grid, true_axis: int) -> str:
+    """The header's world axis (x, y or z) that holds a true axis."""
+    column = int(np.argmax(np.abs(grid.header_to_true[true_axis, :3])))
+    return "xyz"[column]
 
 
 def _study_atlas(
@@ -1151,6 +1205,65 @@ def _group_contrasts(
     return contrasts, {gc.name: gc.meaning for gc in design.default_contrasts}
 
 
+def group_ftests(
+    settings: Settings,
+    design: Design,
+    contrasts: list[tuple[str, np.ndarray]],
+    label: str,
+    problems: list[str],
+) -> list[GroupFTest]:
+    """The design's default F-tests and the study's ``[[ftest]]`` blocks.
+
+    The rows of an ``[[ftest]]`` are named contrasts: the study's ``[[contrast]]`` blocks
+    or the design's default contrasts (also when ``[[contrast]]`` blocks replace them as
+    the contrasts tested). Unknown names and linearly dependent rows are problems naming
+    the block.
+    """
+    known = {gc.name: gc.weights for gc in design.default_contrasts}
+    known.update(dict(contrasts))
+    taken = {name.casefold() for name, _ in contrasts}
+    out = [f for f in design.default_ftests if f.name.casefold() not in taken]
+    declared = {spec.name.casefold() for spec in settings.ftests}
+    out = [f for f in out if f.name.casefold() not in declared]
+    for i, spec in enumerate(settings.ftests, start=1):
+        where = f"[ftest {i}] contrasts"
+        if spec.name.casefold() in taken:
+            problems.append(
+                f"{label}: [ftest {i}] name: {spec.name!r} is the name of a group contrast "
+                "tested (names that differ only in case count as one: each names a "
+                "folder); choose another"
+            )
+            continue
+        unknown = [n for n in spec.contrasts if n not in known]
+        if unknown:
+            problems.append(
+                f"{label}: {where}: {', '.join(repr(n) for n in unknown)} "
+                f"{'is not a contrast' if len(unknown) == 1 else 'are not contrasts'} of "
+                f"this design; contrasts: {', '.join(known) or 'none'}"
+            )
+            continue
+        weights = np.vstack([known[n] for n in spec.contrasts])
+        rank = contrast_rank(weights)
+        if rank < len(spec.contrasts):
+            problems.append(
+                f"{label}: {where}: the {len(spec.contrasts)} contrasts are linearly "
+                f"dependent (rank {rank}): one is a combination of the others, so the "
+                f"F-test '{spec.name}' has only {rank} independent row(s); list only "
+                "independent contrasts"
+            )
+            continue
+        out.append(
+            GroupFTest(
+                name=spec.name,
+                rows=spec.contrasts,
+                weights=weights,
+                meaning="any of " + ", ".join(spec.contrasts) + " differs from zero",
+                declared=True,
+            )
+        )
+    return out
+
+
 def _check_questions(settings: Settings, contrast_names: list[str], atlas: Atlas | None):
     """Problems with [questions]: unknown contrasts, regions, or no atlas to ask.
 
@@ -1214,13 +1327,6 @@ def _check_question_regions(where: str, q, atlas: Atlas) -> list[str]:
             )
         pairs.setdefault(pair, name)
     return problems
-
-
-def _mask_extent_mm(mask: np.ndarray | None, grid: Grid) -> np.ndarray | None:
-    if mask is None or not mask.any():
-        return None
-    idx = np.argwhere(mask)
-    return (idx.max(axis=0) - idx.min(axis=0) + 1) * grid.voxel_size
 
 
 @dataclass(frozen=True)

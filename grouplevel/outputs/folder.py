@@ -134,7 +134,12 @@ def foreign_reason(folder: Path) -> str | None:
     summary = _summary(folder)
     if summary is None:
         return "it holds no summary.json written by grouplevel"
-    ours = set(RESERVED_OUTPUT_NAMES) | set(summary["results"]) | OS_METADATA
+    ours = (
+        set(RESERVED_OUTPUT_NAMES)
+        | set(summary["results"])
+        | set(summary.get("ftests") or {})
+        | OS_METADATA
+    )
     foreign = sorted(n for n in entries if n not in ours)
     if foreign:
         more = ", ..." if len(foreign) > _SHOW else ""
@@ -228,7 +233,7 @@ def require_grouplevel_output(folder: str | Path) -> dict:
             f"{folder / 'summary.json'}: missing, unreadable or not written by grouplevel; "
             "give the output folder of a finished 'grouplevel run'"
         )
-    for name in summary["results"]:
+    for name in [*summary["results"], *(summary.get("ftests") or {})]:
         why = name_problem(name)
         if why:
             raise UserError(

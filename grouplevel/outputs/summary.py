@@ -33,6 +33,7 @@ class Summary(TypedDict, total=False):
     grid: dict[str, Any]
     atlas: dict[str, Any] | None
     results: dict[str, dict[str, Any]]  # result folder name -> its entry
+    ftests: dict[str, dict[str, Any]]  # F-test result folder name -> its entry
     warnings: list[str]
     plan: dict[str, Any]  # written by `grouplevel plan`
 

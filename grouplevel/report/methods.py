@@ -164,7 +164,7 @@ def methods_text(summary: dict, present_files: dict[str, set[str]] | None = None
     cites: list[str] = []  # citation keys in order of first use (the reference list)
     paragraphs = [
         _model_paragraph(summary, settings.get("model") or {}, results, cites),
-        _data_paragraph(results, settings.get("study") or {}),
+        _data_paragraph(results, settings.get("study") or {}, settings.get("space") or {}),
         _inference_paragraph(inference, results, cites),
         _atlas_paragraph(summary.get("atlas"), inference, results),
         _symmetry_paragraph(present_files, cites),
@@ -241,12 +241,46 @@ def _model_paragraph(summary: dict, model: dict, results: dict, cites: list[str]
         "Each group contrast was tested with t = cᵀβ̂ / SE, the model-based standard "
         f"error at the REML estimates, with {df_words}."
     )
+    ftests = summary.get("ftests") or {}
+    if ftests:
+        names = ", ".join(f'"{n}"' for n in ftests)
+        model_sentences.append(
+            f"The F-test(s) {names} tested their rows L jointly with the Wald statistic "
+            "F = (Lβ̂)ᵀ(L Cov(β̂) Lᵀ)⁻¹(Lβ̂)/q on q and the denominator degrees of freedom "
+            "of the level the rows test, upper tail; FDR and permutation inference used "
+            "the normal value with the same upper-tail p."
+        )
     return " ".join(model_sentences)
 
 
-def _data_paragraph(results: dict, study: dict) -> str:
+def header_sentence(space: dict) -> str | None:
+    """How the image headers were read, when they were declared scaled or reordered."""
+    units = float(space.get("header_units_per_mm", 1.0))
+    axes = list(space.get("header_axes") or ["right", "anterior", "dorsal"])
+    parts = []
+    if units != 1.0:
+        parts.append(f"their lengths were divided by {_number(units)}")
+    if axes != ["right", "anterior", "dorsal"]:
+        parts.append(
+            "their world x, y and z were read as pointing "
+            + ", ".join(axes[:2])
+            + f" and {axes[2]}"
+        )
+    if not parts:
+        return None
+    return (
+        "The image headers were declared non-standard: "
+        + " and ".join(parts)
+        + "; all distances, volumes and coordinates are in true millimetres."
+    )
+
+
+def _data_paragraph(results: dict, study: dict, space: dict | None = None) -> str:
     """Animals, runs, voxels and df of each analysed map."""
     data_sentences = []
+    header = header_sentence(space or {})
+    if header:
+        data_sentences.append(header)
     for name, r in results.items():
         per_animal = list((r.get("runs_per_animal") or {}).values())
         excluded = r.get("excluded_runs") or []

@@ -36,7 +36,7 @@ from grouplevel.report.browser import (
     browser_context,
     policy_placeholder,
 )
-from grouplevel.report.methods import methods_text
+from grouplevel.report.methods import header_sentence, methods_text
 from grouplevel.report.tables import (
     STAT,
     P,
@@ -108,8 +108,23 @@ def _method(summary: dict, result: dict) -> str:
     return "tfce" if inf.get("tfce", True) else "cluster_mass"
 
 
-def _load(path: Path) -> nib.spatialimages.SpatialImage | None:
-    return nib.load(str(path)) if path.is_file() else None
+def _load(
+    path: Path, header_to_true: np.ndarray | None = None
+) -> nib.spatialimages.SpatialImage | None:
+    """A map of the folder, placed in true mm when the headers were declared scaled or
+    their axes exchanged (``header_to_true``, from summary.json's grid)."""
+    if not path.is_file():
+        return None
+    img = nib.load(str(path))
+    if header_to_true is None or np.array_equal(header_to_true, np.eye(4)):
+        return img
+    return nib.Nifti1Image(np.asanyarray(img.dataobj), header_to_true @ img.affine)
+
+
+def _header_to_true(summary: dict) -> np.ndarray:
+    """The headers → true mm matrix of a finished folder (identity for true headers)."""
+    matrix = (summary.get("grid") or {}).get("header_to_true")
+    return np.eye(4) if matrix is None else np.asarray(matrix, dtype=float)
 
 
 def _surviving_count(result: dict, method: str) -> int | None:
@@ -290,18 +305,20 @@ def _unasked(result: dict, questions: dict, frames) -> list[str]:
     return out
 
 
-def _overlay(folder: Path, method: str, alpha: float) -> tuple[np.ndarray | None, str, str]:
+def _overlay(
+    folder: Path, method: str, alpha: float, fix: np.ndarray
+) -> tuple[np.ndarray | None, str, str]:
     """z inside the voxels surviving ``method`` (FDR q when that map is missing)."""
-    z_img = _load(folder / "z.nii.gz")
+    z_img = _load(folder / "z.nii.gz", fix)
     if z_img is None:
         return None, method, ""
     z = figures.canonical(z_img).data
     stem = _METHOD_MAP.get(method, "q")
-    p_img = _load(folder / f"{stem}.nii.gz")
+    p_img = _load(folder / f"{stem}.nii.gz", fix)
     used = method
     if p_img is None:
-        p_img, used = _load(folder / "q.nii.gz"), "fdr"
-    mask_img = _load(folder / "mask.nii.gz")
+        p_img, used = _load(folder / "q.nii.gz", fix), "fdr"
+    mask_img = _load(folder / "mask.nii.gz", fix)
     inside = figures.canonical(mask_img).data > 0 if mask_img is not None else z != 0
     if p_img is None:
         return np.zeros_like(z), used, ""
@@ -312,9 +329,10 @@ def _overlay(folder: Path, method: str, alpha: float) -> tuple[np.ndarray | None
 
 def _background(summary: dict, folder: Path) -> tuple[figures.Volume | None, str]:
     template = ((summary.get("settings") or {}).get("study") or {}).get("template")
+    fix = _header_to_true(summary)
     if template and Path(template).is_file():
-        return figures.canonical(nib.load(template)), "the study template"
-    mask = _load(folder / "mask.nii.gz")
+        return figures.canonical(_load(Path(template), fix)), "the study template"
+    mask = _load(folder / "mask.nii.gz", fix)
     if mask is None:
         return None, ""
     return figures.canonical(mask), "the analysis mask (the template file was not found)"
@@ -330,14 +348,15 @@ def _result_figures(out_dir: Path, name: str, result: dict, summary: dict, frame
     folder = out_dir / name
     figs: list[dict] = []
     method = _method(summary, result)
-    overlay, used, used_words = _overlay(folder, method, alpha)
+    fix = _header_to_true(summary)
+    overlay, used, used_words = _overlay(folder, method, alpha, fix)
     background, background_words = _background(summary, folder)
-    mask_img = _load(folder / "mask.nii.gz")
+    mask_img = _load(folder / "mask.nii.gz", fix)
     if background is not None and mask_img is not None:
         place = (background, figures.canonical(mask_img).data > 0, origin, origin_name)
         if overlay is not None:
             figs += _map_figures(name, place, overlay, method, used, used_words, background_words)
-        figs += _asymmetry_figures(folder, name, place)
+        figs += _asymmetry_figures(folder, name, place, fix)
     figs += _symmetry_figures(name, frames)
     forest = _forest(name, result, frames)
     if forest is not None:
@@ -402,11 +421,11 @@ def _map_figures(name, place, overlay, method, used, used_words, background_word
     return figs
 
 
-def _asymmetry_figures(folder: Path, name: str, place) -> list[dict]:
+def _asymmetry_figures(folder: Path, name: str, place, fix: np.ndarray) -> list[dict]:
     """The unthresholded left-minus-right t map, when the folder holds it."""
     background, mask, origin, origin_name = place
     figs: list[dict] = []
-    asym = _load(folder / "asymmetry_t.nii.gz")
+    asym = _load(folder / "asymmetry_t.nii.gz", fix)
     if asym is not None:
         values = figures.canonical(asym).data
         if values.shape == mask.shape == background.data.shape:
@@ -670,10 +689,43 @@ def _study_context(summary: dict) -> dict:
         "contrasts": contrasts,
         "inference": inference_rows,
         "per_result": per_result,
+        "ftests": _ftest_rows(summary),
         "warnings": [str(w) for w in summary.get("warnings") or []],
         "atlas": summary.get("atlas"),
         "grid": summary.get("grid"),
     }
+
+
+def _ftest_rows(summary: dict) -> list[dict]:
+    """One row per F-test: what it tests, its df, what survives, and what it cannot say."""
+    rows = []
+    for name, f in (summary.get("ftests") or {}).items():
+        inf = f.get("inference") or {}
+        perm = inf.get("permutation") or {}
+        survives = [f"FDR: {(inf.get('fdr') or {}).get('surviving_voxels', 0)} voxel(s)"]
+        if perm:
+            s = perm.get("surviving") or {}
+            survives.append(f"FWE voxel: {s.get('voxel', 0)}")
+            if s.get("tfce") is not None:
+                survives.append(f"FWE TFCE: {s['tfce']}")
+            survives.append(f"smallest attainable p {perm['smallest_attainable_p']:.3g}")
+        dfs = f.get("df_denominator_range") or [float("nan")] * 2
+        df = f"{dfs[0]:g}" if dfs[0] == dfs[1] else f"{dfs[0]:g}–{dfs[1]:g}"
+        peak = f.get("peak")
+        rows.append(
+            {
+                "name": name,
+                "text": f"{f.get('meaning', '')}; rows "
+                + ", ".join(r["contrast"] for r in f.get("rows") or [])
+                + f"; F({f.get('df_numerator')}, {df})"
+                + (f", peak F = {peak['f']:.3g}" if peak else "")
+                + "; "
+                + ", ".join(survives),
+                "cautions": list(f.get("cautions") or [])
+                + [(f.get("questions") or {}).get("why", "")],
+            }
+        )
+    return rows
 
 
 def _first_level_rows(results: dict) -> list[dict]:
@@ -785,7 +837,7 @@ def _model_rows(model: dict, space: dict) -> list[tuple[str, str]]:
             "origin",
             f"{space.get('origin_name', 'origin')} at ({', '.join(f'{v:g}' for v in origin)}) mm",
         ),
-    ]
+    ] + ([("image headers", header)] if (header := header_sentence(space)) else [])
 
 
 def _frames(out_dir: Path, name: str) -> dict:

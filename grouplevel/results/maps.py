@@ -176,3 +176,64 @@ class GroupMap:
             frame[key] = getattr(self, key)
         frame["runs_with_data"] = self.coverage_runs[self.mask]
         return frame
+
+
+# maps written for every F-test: file stem -> header description
+FTEST_MAP_DESCRIPTIONS = {
+    "f": "F statistic of the contrast rows tested jointly",
+    "z": "z (normal deviate with the same upper-tail p as F)",
+    "p": "upper-tail p of F (uncorrected)",
+    "df": "denominator degrees of freedom of F",
+    "var_animal": "between-animal variance tau^2 (REML)",
+    "var_run": "between-run variance sigma^2 (REML)",
+}
+
+
+@dataclass(frozen=True)
+class FTestMap:
+    """One F-test of one first-level contrast: in-mask values and context.
+
+    The rows (``rows``, ``weights``) are group contrasts tested jointly; ``f`` is the
+    Wald F on (``df_num``, ``df``) and ``z`` the normal value with the same upper-tail
+    p, on which FDR, clusters and TFCE work (``inference.sided`` is ``"positive"``).
+    Per-voxel arrays are in-mask, in the order of ``numpy.argwhere(mask)``.
+    """
+
+    name: str
+    first_level: str | None
+    ftest: str
+    rows: tuple[str, ...]
+    weights: dict[str, dict[str, float]]  # row name -> coefficient -> weight
+    meaning: str
+    grid: Grid
+    mask: np.ndarray
+    f: np.ndarray
+    df_num: int
+    df: np.ndarray
+    z: np.ndarray
+    p: np.ndarray
+    var_animal: np.ndarray
+    var_run: np.ndarray
+    coverage_runs: np.ndarray
+    coverage_animals: np.ndarray
+    not_converged: int
+    n_animals: int
+    n_runs: int
+    inference: Corrected
+    random_effects: str = "a random intercept per animal"
+    tested_level: str = "animal"
+    # the questions are asked of means and differences, never of an F-test
+    answers: None = None
+    tables: None = None
+
+    @property
+    def contrast(self) -> str:
+        """The name of the test in its first-level contrast (as :attr:`GroupMap.contrast`)."""
+        return self.ftest
+
+    def volume(self, key: str) -> np.ndarray:
+        """A per-voxel quantity as a full 3-D array (0 outside the mask)."""
+        values = getattr(self, key) if hasattr(self, key) else getattr(self.inference, key)
+        out = np.zeros(self.grid.shape)
+        out[self.mask] = values
+        return out

@@ -28,6 +28,10 @@ RATIO_LINES = {
         rf"ratio to the statistics grid: time {NUMBER}x for 8x the label voxels",
         rf"ratio to the statistics grid: time {NUMBER}x for 27x the label voxels",
     ],
+    "bench_ftest": [
+        rf"per-voxel speed ratio \(statsmodels f_test / ours\): {NUMBER}x",
+        rf"time ratio permutation F / t: {NUMBER}x",
+    ],
     "bench_inference": [
         rf"speed-up vs nilearn n_jobs=1, ellipsoid: +{NUMBER}×",
         rf"speed-up vs nilearn n_jobs=2, ellipsoid: +{NUMBER}×",

@@ -15,9 +15,10 @@ from grouplevel.atlas import (
     DEFAULT_ATLAS_MIN_COVERAGE,
     MIDLINE_FITTED,
     MIDLINE_GIVEN,
-    MIDLINE_GRID_CENTRE,
+    MIDLINE_MIRROR,
     RESAMPLING_FRACTIONAL,
     RESAMPLING_NEAREST,
+    RESAMPLING_REORDERED,
     RESAMPLING_SAME,
     build_atlas,
     find_midline,
@@ -112,7 +113,8 @@ def test_flipped_array_and_affine_keep_world_sides(mni_mask):
     flip[0, 3] = mask.shape[0] - 1
     flipped = build_atlas(labels[::-1].copy(), affine @ flip, table, grid, mask)
     assert direct.resampling == RESAMPLING_SAME
-    assert flipped.resampling == RESAMPLING_NEAREST
+    # the same voxels stored the other way round: an exact copy, said as such
+    assert flipped.resampling == f"{RESAMPLING_REORDERED} (reversed along study axis i)"
     for atlas in (direct, flipped):
         assert atlas.midline_source == MIDLINE_FITTED
         # The fitted plane lies in the unlabelled x = 0 column (2 mm voxels).
@@ -380,16 +382,17 @@ def test_fitted_midline_recovers_known_shift(offset):
     assert atlas.mirror_dice > 0.95
 
 
-def test_find_midline_without_both_sides_is_none_and_grid_centre_used():
+def test_find_midline_without_both_sides_is_none_and_mask_mirror_plane_used():
     shape = (6, 4, 3)
     grid = Grid(shape, _affine(0.2, [1.0, 0.0, 0.0]))
     labels = np.ones(shape, dtype=np.int16)
     assert find_midline(labels, grid.affine, labels == 1, labels == 2) is None
     table = _table([(1, "all", "A", "", "")])
     atlas = build_atlas(labels, grid.affine, table, grid, np.ones(shape, bool))
-    assert atlas.midline_source == MIDLINE_GRID_CENTRE
+    # A full box mirrors onto itself about its centre only (x = 1.0 + 0.2 * 2.5 mm).
+    assert atlas.midline_source == MIDLINE_MIRROR
     assert atlas.midline_mm == pytest.approx(1.0 + 0.2 * 2.5)
-    assert any("centre of the study grid" in w for w in atlas.warnings)
+    assert any("mirrors itself best" in w for w in atlas.warnings)
 
 
 def test_left_region_on_the_right_warns_about_the_affine():
@@ -399,7 +402,16 @@ def test_left_region_on_the_right_warns_about_the_affine():
     labels = np.where(x < 0, 2, 1).astype(np.int16)  # table says 1 = left: it is right
     table = _table([(1, "l", "l", "left", ""), (2, "r", "r", "right", "")])
     atlas = build_atlas(labels, grid.affine, table, grid, np.ones(shape, bool), midline_mm=0.0)
-    assert any("check the atlas affine" in w for w in atlas.warnings)
+    # every lateral region on the other side: one plain sentence, not a list
+    assert any("left and right are swapped against the header" in w for w in atlas.warnings)
+    assert not any("check the atlas affine" in w for w in atlas.warnings)
+    # one of two left regions on the wrong side: the list that names it
+    labels3 = np.where(x < -0.4, 3, labels).astype(np.int16)
+    table3 = _table(
+        [(1, "l", "l", "left", ""), (2, "r", "r", "left", ""), (3, "far", "f", "left", "")]
+    )
+    atlas = build_atlas(labels3, grid.affine, table3, grid, np.ones(shape, bool), midline_mm=0.0)
+    assert any("check the atlas affine" in w and "1 (l, left)" in w for w in atlas.warnings)
 
 
 def test_region_rows_and_unknown_name_suggestion():

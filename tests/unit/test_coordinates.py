@@ -97,3 +97,52 @@ def test_describe_orientation_follows_nibabel_axcodes(permutation, signs, expect
     # Reference: nibabel.aff2axcodes gives the axis codes (NiBabel orientations module).
     assert text.split(":")[0] == "".join(nib.aff2axcodes(affine))
     assert text == expected
+
+
+def test_header_to_true_against_nibabel_affine_tools():
+    from nibabel.affines import voxel_sizes
+    from nibabel.orientations import aff2axcodes
+
+    from grouplevel.anatomy.coordinates import header_to_true
+
+    true = np.diag([0.1, 0.1, 0.1, 1.0])
+    true[:3, 3] = [-2.0, -5.0, -3.0]
+    # a ×10 header: nibabel.affines.voxel_sizes reads 1 mm voxels; declared, 0.1 mm
+    tenfold = np.diag([10.0, 10.0, 10.0, 1.0]) @ true
+    fixed = header_to_true(10, ("right", "anterior", "dorsal")) @ tenfold
+    np.testing.assert_allclose(voxel_sizes(tenfold), [1.0, 1.0, 1.0])
+    np.testing.assert_allclose(voxel_sizes(fixed), [0.1, 0.1, 0.1])
+    np.testing.assert_allclose(fixed, true, atol=1e-12)
+    # a header whose y is dorsal and z anterior: nibabel.orientations.aff2axcodes says
+    # R, S, A; declared, the true affine is R, A, S again and maps voxels as before
+    exchange = header_to_true(1, ("right", "dorsal", "anterior"))
+    header = np.linalg.inv(exchange) @ true
+    assert aff2axcodes(header) == ("R", "S", "A")
+    assert aff2axcodes(exchange @ header) == ("R", "A", "S")
+    ijk = np.array([[3.0, 7.0, 2.0], [0.0, 0.0, 0.0]])
+    np.testing.assert_allclose(apply_affine(exchange @ header, ijk), apply_affine(true, ijk))
+    # a header whose x grows to the left (and y posterior): signs are turned back
+    flipped = header_to_true(1, ("left", "posterior", "dorsal"))
+    np.testing.assert_allclose(np.diag(flipped), [-1.0, -1.0, 1.0, 1.0])
+
+
+def test_header_to_true_refuses_bad_declarations():
+    from grouplevel.anatomy.coordinates import header_to_true
+    from grouplevel.errors import ArgumentError
+
+    with pytest.raises(ArgumentError, match="positive"):
+        header_to_true(0, ("right", "anterior", "dorsal"))
+    with pytest.raises(ArgumentError, match="once"):
+        header_to_true(1, ("right", "left", "dorsal"))
+    with pytest.raises(ArgumentError, match="three of"):
+        header_to_true(1, ("right", "up", "dorsal"))
+
+
+def test_mask_extent_matches_voxel_boxes():
+    from grouplevel.anatomy.coordinates import mask_extent_mm
+
+    mask = np.zeros((5, 6, 7), bool)
+    mask[1:3, 2:6, 3] = True
+    # 2 × 4 × 1 voxels of 0.1 × 0.2 × 0.3 mm (common practice: extent of voxel boxes)
+    np.testing.assert_allclose(mask_extent_mm(mask, np.diag([0.1, 0.2, 0.3, 1])), [0.2, 0.8, 0.3])
+    assert mask_extent_mm(np.zeros((2, 2, 2), bool), np.eye(4)) is None

@@ -38,6 +38,7 @@ CORE_MODULES = (
     "grouplevel.errors",
     "grouplevel.machine",
     "grouplevel.anatomy.coordinates",
+    "grouplevel.anatomy.midplane",
     "grouplevel.anatomy.regions",
     "grouplevel.anatomy.sidenames",
     "grouplevel.questions.symmetry",

@@ -343,3 +343,22 @@ def test_atlas_overview_in_check(tmp_path, capsys):
     code, text = check(toml, capsys)
     assert code == 0, text
     assert "atlas        2 regions" in text and "midline" in text and "Dice" in text
+
+
+@pytest.mark.parametrize(
+    ("space", "expected"),
+    [
+        ("header_units_per_mm = 0", "[space] header_units_per_mm: must be a positive number"),
+        ("header_units_per_mm = -10", "[space] header_units_per_mm: must be a positive number"),
+        ('header_units_per_mm = "10"', "[space] header_units_per_mm: expected float"),
+        ('header_axes = ["right", "right", "dorsal"]', "[space] header_axes: must say"),
+        ('header_axes = ["right", "up", "anterior"]', "[space] header_axes: must say"),
+        ('header_axes = ["right", "dorsal"]', "[space] header_axes: must say"),
+    ],
+)
+def test_bad_header_declarations_are_refused(tmp_path, capsys, space, expected):
+    toml = basic(tmp_path, toml_extra=f"\n[space]\n{space}\n")
+    code, text = check(toml, capsys)
+    assert code == 2
+    assert expected in text
+    assert "Traceback" not in text
