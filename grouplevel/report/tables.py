@@ -297,9 +297,7 @@ def _chosen_columns(
         known = [c for c in spec.columns if c.source in frame.columns and c.source != P_CORRECTED]
         seen = {c.source for c in known}
         extra = [
-            _guess_column(n, frame[n])
-            for n in frame.columns
-            if n not in seen and n != P_CORRECTED
+            _guess_column(n, frame[n]) for n in frame.columns if n not in seen and n != P_CORRECTED
         ]
         return known + extra
     out = []
