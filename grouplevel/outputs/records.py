@@ -90,5 +90,6 @@ def locate_input(path: str | Path | None, summary: dict[str, Any], out_dir: str 
     written_at = summary.get("output_folder")
     if not written_at:
         return None
-    moved = Path(out_dir) / os.path.relpath(path, written_at)
-    return moved.resolve() if moved.is_file() else None
+    here = Path(out_dir).expanduser().resolve()
+    moved = Path(os.path.normpath(here / os.path.relpath(path, written_at)))
+    return moved if moved.is_file() else None
