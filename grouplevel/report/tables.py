@@ -557,6 +557,22 @@ def table_note(view: TableView, full_file: str) -> str:
     return " ".join(parts)
 
 
+#: A word longer than this in a wrapping column may break between any two characters
+#: (a name without spaces would otherwise run over the column and the page).
+LATEX_LONG_WORD = 16
+
+
+def _latex_wrapping_cell(text: str) -> str:
+    """A cell of a wrapping column: long words may break anywhere (``\\allowbreak``)."""
+    words = []
+    for word in text.split(" "):
+        if len(word) > LATEX_LONG_WORD:
+            words.append("\\allowbreak{}".join(latex_escape(ch) for ch in word))
+        else:
+            words.append(_latex_cell(word))
+    return " ".join(words)
+
+
 def to_latex(view: TableView, note: str = "") -> str:
     """A one-page table float with booktabs rules (``\\toprule``, ``\\midrule``, ...).
 
@@ -575,8 +591,14 @@ def to_latex(view: TableView, note: str = "") -> str:
         " & ".join(_latex_header(h) for h in view.headers) + r" \\",
         "\\midrule",
     ]
+    align = _latex_align(view)
+    wrapping = [a.startswith("p") for a in re.findall(r"p\{[^}]*\}|[lrc]", align)]
     for row in view.rows:
-        lines.append(" & ".join(_latex_cell(v) for v in row) + r" \\")
+        cells = (
+            _latex_wrapping_cell(v) if wrap else _latex_cell(v)
+            for v, wrap in zip(row, wrapping, strict=True)
+        )
+        lines.append(" & ".join(cells) + r" \\")
     lines += ["\\bottomrule", "\\end{tabular}"]
     if note:
         lines.append(f"\\par\\smallskip{{\\scriptsize {latex_escape(note)}}}")

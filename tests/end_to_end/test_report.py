@@ -250,7 +250,8 @@ def test_manuscript_table_files(tables, output_copy, output):
 
 
 def _markdown_frame(path: Path) -> pd.DataFrame:
-    lines = path.read_text(encoding="utf-8").splitlines()
+    text = path.read_text(encoding="utf-8")
+    lines = text.split("\n\n")[0].splitlines()  # the table; a note may follow it
     assert set(lines[1].replace("|", "").replace(" ", "")) <= set(":-")
     body = "\n".join([lines[0], *lines[2:]])
     frame = pd.read_csv(
@@ -403,8 +404,9 @@ def test_report_finds_or_names_a_missing_template(output_copy, tmp_path, capsys,
     (problem,) = missing_inputs(folder)
     assert "/nowhere/study-area/study/template.nii.gz was not found" in problem
     # `grouplevel report` says so (the rendering itself is checked elsewhere)
-    for name in ("render_report", "write_methods", "write_manuscript_tables"):
+    for name in ("render_report", "write_methods"):
         monkeypatch.setattr(report_package, name, lambda *a, **k: folder / "x")
+    monkeypatch.setattr(report_package, "write_manuscript_tables", lambda *a, **k: [])
     assert main(["report", str(folder)]) == 0
     assert "warning: the template" in capsys.readouterr().err
     (folder.parent / "study").mkdir()
@@ -544,7 +546,9 @@ def test_question_sections_render_when_files_exist(with_questions):
     ):
         assert words in alts
     answer = text[text.index('id="answer"') : text.index('id="study"')]
-    assert "Bilateral?" in answer and "auditory cortex: bilateral (LI within ±0.2)" in answer
+    assert "Bilateral?" in answer and "auditory cortex: bilateral; inferior" in answer
+    # the reasons of each verdict, folded under it
+    assert "<li>auditory cortex: LI within ±0.2.</li>" in answer
     assert "Specific?" in answer and "Consistent?" in answer
     assert "&lt;b&gt;edge&lt;/b&gt;" in text  # a reason from a file is text, not markup
     tables = write_manuscript_tables(with_questions)
@@ -629,3 +633,32 @@ def test_planning_section_after_plan(tmp_path):
     # counts in words: no "4 animals x 1 runs", no "1.0 runs each"
     assert result["plan"]["rows"][0]["now"] == "4 animals, 1 run each: power 0.95"
     assert result["plan"]["rows"][0]["best"].startswith("1 animal × 1 run: power")
+
+
+def test_plan_command_prints_counts_in_words(tmp_path, capsys, monkeypatch):
+    # `grouplevel plan` prints the cheapest design as "4 animals x 1 run", never "1 runs"
+    # (the planning itself is checked in test_planning_output.py; stubbed here)
+    from types import SimpleNamespace
+
+    import grouplevel.planning.plan as plan_module
+    import grouplevel.report as report_package
+    from grouplevel.cli import main
+
+    folder = tmp_path / "out"
+    folder.mkdir()
+    (folder / "summary.json").write_text(
+        json.dumps({"tool": {"name": "grouplevel"}, "results": {}})
+    )
+    plan = SimpleNamespace(
+        name="sound",
+        region="auditory cortex",
+        hemisphere="left",
+        cheapest={"animals": 4.0, "runs": 1.0, "power": 0.81, "cost": 44.0},
+        caution="optimistic",
+    )
+    monkeypatch.setattr(plan_module, "plan_from_output", lambda *a, **k: [plan])
+    monkeypatch.setattr(plan_module, "write_plan", lambda *a, **k: [])
+    monkeypatch.setattr(report_package, "render_report", lambda *a, **k: folder / "report.html")
+    assert main(["plan", str(folder)]) == 0
+    out = capsys.readouterr().out
+    assert "4 animals x 1 run (power 0.81, cost 44)" in out, out
