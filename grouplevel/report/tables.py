@@ -514,35 +514,74 @@ def _latex_cell(text: str) -> str:
 
 
 #: A text column whose longest entry is longer than this wraps in a fixed-width column.
-LATEX_WRAP_CHARS = 22
-LATEX_WRAP_WIDTH = "3.2cm"
+LATEX_WRAP_CHARS = 18
+LATEX_WRAP_CM = 2.8  # widest a wrapping column gets
+
+
+#: A header longer than this is set on two lines (at its unit, else at a middle space).
+LATEX_HEADER_CHARS = 8
 
 
 def _latex_header(text: str) -> str:
-    """A header on two lines when it has a unit or a qualifier in parentheses."""
+    """A header on two lines when it is long: its unit or qualifier in parentheses on
+    the second line, else split at the space nearest its middle."""
     head, sep, tail = text.partition(" (")
-    if not sep:
+    if sep:
+        tail = "(" + tail
+    elif len(text) > LATEX_HEADER_CHARS and " " in text:
+        spaces = [i for i, ch in enumerate(text) if ch == " "]
+        cut = min(spaces, key=lambda i: abs(i - len(text) / 2))
+        head, tail = text[:cut], text[cut + 1 :]
+    else:
         return latex_escape(text)
     return (
         "\\begin{tabular}[b]{@{}c@{}}"
         + latex_escape(head)
-        + "\\\\("
+        + "\\\\"
         + latex_escape(tail)
         + "\\end{tabular}"
     )
 
 
+#: Text width of the standard article class at 10 pt (345 pt, about 12.1 cm; the same
+#: on A4 and letter paper), with a little room to spare.
+LATEX_TEXT_WIDTH_CM = 11.8
+#: Rough width of one character in the table's type (\\footnotesize, 8 pt: digits are
+#: half an em, 4 pt ≈ 0.14 cm) and the gap around a column (2 × 3 pt ≈ 0.21 cm).
+LATEX_CHAR_CM = 0.15
+LATEX_GAP_CM = 0.21
+LATEX_MIN_WRAP_CM = 1.8
+
+
+def _header_chars(header: str) -> int:
+    """Characters of the widest line of a header as :func:`_latex_header` sets it."""
+    head, sep, tail = header.partition(" (")
+    if sep:
+        return max(len(head), len(tail) + 1)
+    if len(header) > LATEX_HEADER_CHARS and " " in header:
+        spaces = [i for i, ch in enumerate(header) if ch == " "]
+        cut = min(spaces, key=lambda i: abs(i - len(header) / 2))
+        return max(cut, len(header) - cut - 1)
+    return len(header)
+
+
 def _latex_align(view: TableView) -> str:
-    out = []
+    """Column types: numbers right-aligned; long text in wrapping columns whose width
+    shares out what the other columns leave of the text width."""
+    kinds, fixed_cm = [], 0.0
     for i, (column, numeric) in enumerate(zip(view.columns, view.numeric(), strict=True)):
         longest = max((len(row[i]) for row in view.rows), default=0)
-        if numeric:
-            out.append("r")
-        elif column.kind == TEXT and longest > LATEX_WRAP_CHARS:
-            out.append(f"p{{{LATEX_WRAP_WIDTH}}}")
-        else:
-            out.append("l")
-    return "".join(out)
+        wraps = not numeric and column.kind == TEXT and longest > LATEX_WRAP_CHARS
+        kinds.append("p" if wraps else "r" if numeric else "l")
+        if not wraps:
+            chars = max(longest, _header_chars(column.header))
+            fixed_cm += chars * LATEX_CHAR_CM + LATEX_GAP_CM
+    n_wrap = kinds.count("p")
+    if n_wrap:
+        share = (LATEX_TEXT_WIDTH_CM - fixed_cm) / n_wrap - LATEX_GAP_CM
+        width = min(LATEX_WRAP_CM, max(LATEX_MIN_WRAP_CM, share))
+        return "".join(f"p{{{width:.2f}cm}}" if k == "p" else k for k in kinds)
+    return "".join(kinds)
 
 
 def table_note(view: TableView, full_file: str) -> str:
