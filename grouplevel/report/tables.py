@@ -230,9 +230,10 @@ def column_decimals(values: list[float], kind: str) -> int:
     return int(min(MAX_DECIMALS, max(STAT_DECIMALS, wanted)))
 
 
-def _manuscript_column(values: list[object], kind: str) -> list[str]:
-    """A column of the manuscript form: same decimals in every row, "< 0.001" for small p."""
-    if kind in (TEXT, BOOL):
+def _manuscript_column(values: list[object], kind: str, p_bound: bool = True) -> list[str]:
+    """A column of the manuscript form: same decimals in every row, "< 0.001" for small p
+    (``p_bound``; otherwise p-values as in the full form)."""
+    if kind in (TEXT, BOOL) or (kind == P and not p_bound):
         return [format_value(v, kind) for v in values]
     numbers = [_number(v) for v in values]
     decimals = column_decimals([x for x in numbers if x is not None], kind)
@@ -320,6 +321,7 @@ def table_view(
     context: TableContext | None = None,
     manuscript: bool = False,
     max_rows: int | None = None,
+    p_bound: bool = True,
 ) -> TableView:
     """The printed form of one result table.
 
@@ -338,6 +340,9 @@ def table_view(
         one-page form); otherwise each value by the rules of :func:`format_value`.
     max_rows
         Print at most this many rows (``total_rows`` keeps the count of the file).
+    p_bound
+        In the manuscript form, print p below 0.001 as "< 0.001" (else as in the full
+        form, e.g. 6.86e-06: the report keeps the exact order of magnitude).
     """
     context = context or TableContext()
     frame = _resolved(key, frame, context)
@@ -347,7 +352,7 @@ def table_view(
     for c in chosen:
         values = [_cell(v) for v in shown[c.source]]
         if manuscript:
-            cells.append(_manuscript_column(values, c.kind))
+            cells.append(_manuscript_column(values, c.kind, p_bound))
         else:
             cells.append([format_value(v, c.kind) for v in values])
     rows = tuple(zip(*cells, strict=True)) if cells else tuple(() for _ in range(len(shown)))
@@ -399,14 +404,21 @@ def result_table_views(
 ) -> dict[str, TableView]:
     """Every table present in one result folder, as views (missing files are skipped).
 
-    ``brief``: only the columns the report shows first (:data:`REPORT_COLUMNS`).
+    ``brief``: only the columns the report shows first (:data:`REPORT_COLUMNS`), each
+    number column with one number of decimals (p-values as in the full form).
     """
     context = table_context(summary or {}, name)
     views = {}
     for key, frame in result_frames(out_dir, name).items():
         columns = REPORT_COLUMNS.get(key) if brief else None
         views[key] = table_view(
-            key, frame, f"{name}/{TABLES[key].file}", columns=columns, context=context
+            key,
+            frame,
+            f"{name}/{TABLES[key].file}",
+            columns=columns,
+            context=context,
+            manuscript=brief,
+            p_bound=False,
         )
     return views
 
