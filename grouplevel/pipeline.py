@@ -1472,6 +1472,9 @@ def write_outputs(
             "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
             "title": study.settings.study.title,
+            # where the folder was written: inputs are found again relative to it when
+            # the study and its outputs move together (outputs.records.locate_input)
+            "output_folder": str(out),
             "inputs": _inputs(study),
             "settings": study.settings.to_dict(),
             "grid": {

@@ -61,7 +61,11 @@ def _add_report_command(sub: argparse._SubParsersAction) -> None:
         "report", help="re-render report.html, methods.md and tables/ of an output folder"
     )
     rp.add_argument("folder", type=Path, help="output folder of `grouplevel run`")
-    rp.add_argument("--title", default=None, help="a new title for the report")
+    rp.add_argument(
+        "--title",
+        default=None,
+        help="a new title for the report (kept for later renderings, in report.json)",
+    )
 
 
 def _add_plan_command(sub: argparse._SubParsersAction) -> None:
@@ -190,8 +194,11 @@ def _run(args: argparse.Namespace) -> int:
 def _report(args: argparse.Namespace) -> int:
     from grouplevel.outputs.folder import require_grouplevel_output
     from grouplevel.report import render_report, write_manuscript_tables, write_methods
+    from grouplevel.report.render import missing_inputs
 
     require_grouplevel_output(args.folder)
+    for problem in missing_inputs(args.folder):
+        print(f"warning: {problem}", file=sys.stderr)
     write_methods(args.folder)
     tables = write_manuscript_tables(args.folder)
     report = render_report(args.folder, title=args.title)
@@ -204,6 +211,7 @@ def _report(args: argparse.Namespace) -> int:
 def _plan(args: argparse.Namespace) -> int:
     from grouplevel.outputs.folder import require_grouplevel_output
     from grouplevel.planning.plan import plan_from_output, write_plan
+    from grouplevel.report.words import count
 
     require_grouplevel_output(args.folder)
     plans = plan_from_output(
@@ -223,7 +231,7 @@ def _plan(args: argparse.Namespace) -> int:
             best = plan.cheapest
             print(
                 f"{where}: cheapest design with power >= {args.target_power}: "
-                f"{int(best['animals'])} animals x {int(best['runs'])} runs "
+                f"{count(int(best['animals']), 'animal')} x {count(int(best['runs']), 'run')} "
                 f"(power {best['power']:.2f}, cost {best['cost']:g})"
             )
     if plans:

@@ -27,6 +27,7 @@ from grouplevel.errors import UserError
 from grouplevel.inference.significance import DEFAULT_ALPHA, DEFAULT_SIDED
 from grouplevel.inference.significance import SIDES as SIDED_CHOICES
 from grouplevel.intake.textcheck import control_characters
+from grouplevel.outputs.columns import MANUSCRIPT_TABLES, P_CORRECTED, TABLES
 from grouplevel.outputs.names import NAME_RULE, name_problem
 
 # --- defaults (one place) -----------------------------------------------------------
@@ -92,6 +93,48 @@ DEFAULT_BACKEND = "local"
 # Share of the machine's memory that a run may use when [compute] memory_gb is not set
 # (our own choice: leaves room for the operating system and other programs).
 DEFAULT_MEMORY_SHARE = 0.25
+
+# The columns of the one-page manuscript tables (tables/<result>_<table>.tex and .md),
+# by their TSV names (grouplevel.outputs.columns): what a reader needs first — where
+# (region, side, coordinates), how large, how strong, how sure (our own choice, after
+# the usual layout of activation tables in the trade; common practice).
+DEFAULT_MANUSCRIPT_COLUMNS: dict[str, tuple[str, ...]] = {
+    "clusters": (
+        "peak_region",
+        "peak_region_hemisphere",
+        "voxels",
+        "volume_mm3",
+        "peak_AP_mm",
+        "peak_ML_mm",
+        "peak_DV_mm",
+        "z",
+        P_CORRECTED,
+    ),
+    "regions": ("name", "hemisphere", "effect", "ci_low", "ci_high", "t", "df", "p", "q"),
+    "symmetry": (
+        "region",
+        "li_effect",
+        "difference",
+        "ci_low",
+        "ci_high",
+        "p",
+        "tost_p",
+        "verdict",
+    ),
+    "specificity": (
+        "kind",
+        "name",
+        "hemisphere",
+        "mean_effect",
+        "surviving_voxels",
+        "activation_share",
+    ),
+    "consistency": ("animal", "runs", "effect", "ci_low", "ci_high", "positive", "loo_change"),
+    "animals": ("animal", "name", "hemisphere", "effect", "se", "runs"),
+}
+# Rows of a one-page manuscript table: about what fits an A4 page in small type with a
+# caption (our own measure); the full table is always written beside it.
+DEFAULT_MANUSCRIPT_MAX_ROWS = 40
 
 RUN_VARIANCE_CHOICES = ("estimate", "known")
 CONNECTIVITY_CHOICES = (6, 18, 26)
@@ -196,6 +239,16 @@ class ClusterSettings:
 
 
 @dataclass(frozen=True)
+class TableSettings:
+    """``[tables]``: the columns and the row limit of the one-page manuscript tables."""
+
+    columns: dict[str, tuple[str, ...]] = field(
+        default_factory=lambda: dict(DEFAULT_MANUSCRIPT_COLUMNS)
+    )
+    max_rows: int = DEFAULT_MANUSCRIPT_MAX_ROWS
+
+
+@dataclass(frozen=True)
 class ModelSettings:
     formula: str = DEFAULT_FORMULA
     run_variance: str = DEFAULT_RUN_VARIANCE
@@ -274,6 +327,7 @@ class Settings:
     # F-tests declared in the study file ([[ftest]]); the design adds one per factor
     # with more than two levels (grouplevel.intake.design)
     ftests: tuple[FTestSpec, ...] = ()
+    tables: TableSettings = field(default_factory=TableSettings)
 
     def questions_for(self, first_level: str | None) -> QuestionSettings:
         """The questions of one first-level contrast (its override, else [questions])."""
@@ -293,7 +347,10 @@ class Settings:
                 return [clean(v) for v in value]
             return value
 
-        return clean(asdict(self))
+        plain = clean(asdict(self))
+        # the method that decides significance, as resolved (null would hide the default)
+        plain["clusters"]["method"] = self.clusters.resolved_method(self.inference)
+        return plain
 
 
 # --- schema -------------------------------------------------------------------------
@@ -326,6 +383,7 @@ _SCHEMA: dict[str, tuple[str, ...]] = {
     "contrast": ("name", "weights"),
     "ftest": ("name", "contrasts"),
     "comparison": ("name", "conditions"),
+    "tables": (*MANUSCRIPT_TABLES, "max_rows"),
     "inference": (
         "permutations",
         "seed",
@@ -433,6 +491,7 @@ def load_settings(path: str | Path) -> Settings:
     clusters = _read_clusters(r, _section(r, raw, "clusters"), inference)
     questions, overrides = _read_questions_tables(r, raw.get("questions", {}))
     compute = _read_compute(r, _section(r, raw, "compute"))
+    tables = _read_tables(r, _section(r, raw, "tables"))
     if r.problems:
         raise UserError(f"{path}: {len(r.problems)} problem(s) in the study file", r.problems)
     return Settings(
@@ -452,6 +511,7 @@ def load_settings(path: str | Path) -> Settings:
         user_contrasts=bool(contrasts),
         comparisons=comparisons,
         ftests=ftests,
+        tables=tables,
     )
 
 
@@ -787,6 +847,35 @@ def _read_clusters(r: _Reader, cl: dict[str, Any], inference: InferenceSettings)
     if top < 1:
         r.problem("[clusters] top_regions", f"must be at least 1, got {top}")
     return ClusterSettings(method=method, subpeak_distance_mm=subpeak, top_regions=top)
+
+
+def _read_tables(r: _Reader, t: dict[str, Any]) -> TableSettings:
+    """``[tables]``: manuscript columns per table (TSV column names) and the row limit."""
+    columns = dict(DEFAULT_MANUSCRIPT_COLUMNS)
+    for key in MANUSCRIPT_TABLES:
+        value = r.get("tables", t, key, list, None)
+        if value is None:
+            continue
+        known = TABLES[key].names
+        if not value:
+            r.problem(f"[tables] {key}", f"name at least one column of {TABLES[key].file}")
+            continue
+        bad = [v for v in value if not isinstance(v, str) or v not in known]
+        for name in bad:
+            hint = _suggest(name, known) if isinstance(name, str) else ""
+            r.problem(
+                f"[tables] {key}",
+                f"unknown column {name!r}{hint}; the columns of {TABLES[key].file} are "
+                + ", ".join(known),
+            )
+        if len(set(value)) != len(value):
+            r.problem(f"[tables] {key}", "names a column twice; name each column once")
+        if not bad:
+            columns[key] = tuple(value)
+    max_rows = r.get("tables", t, "max_rows", int, DEFAULT_MANUSCRIPT_MAX_ROWS)
+    if max_rows < 1:
+        r.problem("[tables] max_rows", f"must be at least 1, got {max_rows}")
+    return TableSettings(columns=columns, max_rows=max_rows)
 
 
 def _read_questions_tables(

@@ -42,7 +42,8 @@ _WINDOWS_DEVICES = frozenset(
 #: Entries grouplevel writes at the top of an output folder; a result folder may not
 #: take one of these names (compared without case).
 RESERVED_OUTPUT_NAMES = frozenset(
-    {"summary.json", "report.html", "methods.md", "tables", "figures"}
+    # plan.json and report.json: what `grouplevel plan` and `grouplevel report` add
+    {"summary.json", "report.html", "methods.md", "tables", "figures", "plan.json", "report.json"}
 )
 #: How the rule reads in an error message.
 NAME_RULE = (

@@ -7,8 +7,8 @@ each result folder's ``regions.tsv``), computes the plans with
 - :func:`plan_from_output`: the plans of the target regions (reads, writes nothing),
   giving :class:`PlanResult` objects;
 - :func:`plans_figure_png`: heat maps of power with the target-power contour;
-- :func:`write_plan`: ``power.tsv``, ``power.png`` and the ``plan`` entry of
-  ``summary.json``.
+- :func:`write_plan`: ``power.tsv``, ``power.png`` and ``plan.json`` (summary.json,
+  the record of the analysis, is left as the run wrote it).
 """
 
 from __future__ import annotations
@@ -28,7 +28,8 @@ from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.inference.significance import SIDES as SIDED_CHOICES
 from grouplevel.outputs.files import atomic_write
 from grouplevel.outputs.folder import child_path, require_grouplevel_output
-from grouplevel.outputs.summary import read_summary, write_summary
+from grouplevel.outputs.records import read_plans, write_plans
+from grouplevel.outputs.summary import read_summary
 from grouplevel.planning.power import (
     _REGION_COLUMNS,
     CAUTION_GIVEN,
@@ -95,7 +96,7 @@ class PlanResult:
     figure_title: str = field(default="")
 
     def summary(self) -> dict[str, Any]:
-        """Plain-JSON description (for ``summary.json``)."""
+        """Plain-JSON description (for ``plan.json``)."""
         best = None
         if self.cheapest is not None:
             best = {
@@ -670,18 +671,19 @@ def _plan_row(
 
 
 def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]:
-    """Write each map's plan into its result folder and record it in summary.json.
+    """Write each map's plan into its result folder and record it in plan.json.
 
     Writes ``out_dir/<name>/power.tsv`` (the grids of all planned regions of that map,
     with ``result, region, hemisphere, region_index`` in front and a ``cost`` column),
     ``out_dir/<name>/power.png`` (one heat-map panel per region) and sets
-    ``summary.json["plan"][<name>] = {"regions": [PlanResult.summary(), ...]}``, keeping
-    the plans of other maps. Each file is written to a temporary file and renamed.
+    ``plan.json["plans"][<name>] = {"regions": [PlanResult.summary(), ...]}``, keeping
+    the plans of other maps. ``summary.json``, the record of the analysis, is not
+    changed. Each file is written to a temporary file and renamed.
 
     Returns
     -------
     list of Path
-        The files written, summary.json last.
+        The files written, plan.json last.
     """
     out = Path(out_dir).expanduser()
     require_grouplevel_output(out)  # write only into an output folder grouplevel wrote
@@ -692,7 +694,7 @@ def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]
     if not groups:
         raise ValueError("no plans to write")
     written: list[Path] = []
-    plan = summary.get("plan") if isinstance(summary.get("plan"), dict) else {}
+    plan = dict(read_plans(out, summary))
     for name, group in groups.items():
         folder = child_path(out, name)
         if not folder.is_dir():
@@ -704,8 +706,7 @@ def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]
         atomic_write(png, plans_figure_png(group))
         written += [tsv, png]
         plan[name] = {"regions": [r.summary() for r in group]}
-    summary["plan"] = plan
-    written.append(write_summary(out, summary))
+    written.append(write_plans(out, plan))
     return written
 
 

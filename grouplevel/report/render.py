@@ -29,6 +29,12 @@ import nibabel as nib
 import numpy as np
 
 from grouplevel.outputs.folder import require_grouplevel_output
+from grouplevel.outputs.records import (
+    locate_input,
+    read_plans,
+    read_report_options,
+    write_report_options,
+)
 from grouplevel.outputs.summary import present_files, read_summary, result_names
 from grouplevel.report import figures
 from grouplevel.report.browser import (
@@ -45,6 +51,7 @@ from grouplevel.report.tables import (
     read_tsv,
     result_table_views,
 )
+from grouplevel.report.words import count, mean_count, place
 
 #: Maps whose surviving voxels define the overlay, per ``[clusters] method``.
 _METHOD_MAP = {
@@ -160,7 +167,7 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
     origin_name = space.get("origin_name", "origin")
     method = _method(summary, result)
     method_words = _METHOD_LABEL[method].format(a=alpha) if method in _METHOD_LABEL else method
-    items: list[tuple[str, str, str]] = []  # (question, verdict in bold, the numbers)
+    items: list[tuple] = []  # (question, verdict in bold, the numbers[, more reasons])
     n_voxels = _surviving_count(result, method)
     peak = result.get("peak") or {}
     peak_text = ""
@@ -176,6 +183,8 @@ def _answer(name: str, result: dict, summary: dict, views: dict[str, TableView],
     items += _bilateral_items(questions, views, frames)
     items += _question_items(questions, frames)
     unasked = _unasked(result, questions, frames)
+    # every item as (question, verdict, text, further reasons shown folded)
+    items = [(*item, []) if len(item) == 3 else item for item in items]
     label = result.get("first_level_contrast") or name
     group = result.get("group_contrast", "mean")
     return {
@@ -198,7 +207,7 @@ def _present_item(result: dict, n_voxels, method_words: str, peak_text: str) -> 
             count += f", in {n_clusters} significant cluster{'s' if n_clusters != 1 else ''}"
         return ("Present?", "Yes", "; ".join(t for t in (count, peak_text) if t) + ".")
     detail = "; ".join(t for t in (f"no voxel survives {method_words}", peak_text) if t)
-    return ("Present?", "Not shown", detail + ".")
+    return ("Present?", "No", detail + ".")
 
 
 def _where_items(clusters, n_voxels, peak: dict, peak_text: str) -> list[tuple]:
@@ -208,18 +217,10 @@ def _where_items(clusters, n_voxels, peak: dict, peak_text: str) -> list[tuple]:
         mains = clusters[clusters["peak"].astype(str) == "1"].head(MAX_WHERE)
         places = []
         for _, row in mains.iterrows():
-            region = row.get("peak_region")
-            hemi = row.get("peak_region_hemisphere")
-            where = (
-                f"{region} ({hemi})"
-                if isinstance(region, str) and isinstance(hemi, str)
-                else str(region)
-                if isinstance(region, str)
-                else "unlabelled"
-            )
+            where = place(row.get("peak_region"), row.get("peak_region_hemisphere"))
             n_vox = int(float(row["voxels"]))
             places.append(
-                f"{where}, {n_vox} voxel{'s' if n_vox != 1 else ''}, "
+                f"{where}, {count(n_vox, 'voxel')}, "
                 f"peak z = {float(row['z']):.2f} at AP {float(row['peak_AP_mm']):+.2f} mm"
             )
         more = len(clusters[clusters["peak"].astype(str) == "1"]) - len(mains)
@@ -235,18 +236,17 @@ def _bilateral_items(questions: dict, views: dict[str, TableView], frames) -> li
     items: list[tuple[str, str, str]] = []
     symmetry = questions.get("symmetry")
     if isinstance(symmetry, dict) and symmetry:
-        parts = []
+        parts, more = [], []
         for region, v in symmetry.items():
             if isinstance(v, dict):
                 reasons = _reasons(v.get("reasons"))
                 side = f", {v['side']}" if v.get("side") else ""
-                parts.append(
-                    f"{region}: {v.get('verdict', 'no verdict')}{side}"
-                    + (f" ({reasons})" if reasons else "")
-                )
+                parts.append(f"{region}: {v.get('verdict', 'no verdict')}{side}")
+                if reasons:
+                    more.append(f"{region}: {reasons}.")
         difference = questions.get("contrast_kind") == "difference"
         question = "Lateralisation differs?" if difference else "Bilateral?"
-        items.append((question, "", "; ".join(parts) + "."))
+        items.append((question, "", "; ".join(parts) + ".", more))
     elif "symmetry" in views:
         sym = frames["symmetry"]
         if "verdict" in sym:
@@ -257,12 +257,12 @@ def _bilateral_items(questions: dict, views: dict[str, TableView], frames) -> li
 
 def _question_items(questions: dict, frames) -> list[tuple]:
     """Specific?, Consistent? and Runs? — the verdicts of the other questions."""
-    items: list[tuple[str, str, str]] = []
+    items: list[tuple] = []
     for key, label in (("specificity", "Specific?"), ("consistency", "Consistent?")):
         q = questions.get(key)
         if isinstance(q, dict) and q.get("verdict") is not None:
-            reasons = _reasons(q.get("reasons"))
-            items.append((label, str(q["verdict"]), f"{reasons}." if reasons else ""))
+            gist, more = _gist(key, q)
+            items.append((label, str(q["verdict"]), gist, more))
     if "consistency" in frames and not (
         isinstance(questions.get("consistency"), dict) and questions["consistency"].get("verdict")
     ):
@@ -274,9 +274,44 @@ def _question_items(questions: dict, frames) -> list[tuple]:
             )
     quality = questions.get("run_quality")
     if isinstance(quality, dict) and quality.get("verdict") is not None:
-        reasons = _reasons(quality.get("reasons"))
-        items.append(("Runs?", str(quality["verdict"]), f"{reasons}." if reasons else ""))
+        listed = _reason_list(quality.get("reasons"))
+        names = ", ".join(r.split(":")[0] for r in listed)
+        items.append(("Runs?", str(quality["verdict"]), f"{names}." if listed else "", listed))
     return items
+
+
+def _reason_list(value) -> list[str]:
+    if value is None:
+        return []
+    if isinstance(value, list | tuple):
+        return [str(v).strip().rstrip(".") + "." for v in value if str(v).strip()]
+    return [str(value).strip().rstrip(".") + "."]
+
+
+def _gist(key: str, answer: dict) -> tuple[str, list[str]]:
+    """One sentence that carries a verdict, and the rest of its reasons (shown folded).
+
+    Specificity: the first reason (where the surviving activation lies), with the
+    artefact flag when there is one. Consistency: how many animals agree and how many
+    have a CI clear of zero, from the numbers of summary.json.
+    """
+    reasons = _reason_list(answer.get("reasons"))
+    if key == "consistency" and answer.get("animals_counted"):
+        agreeing = answer.get("animals_agreeing", answer.get("animals_positive"))
+        clear = answer.get("animals_ci_clear_of_zero")
+        sign = answer.get("sign") or "response's"
+        total = answer["animals_counted"]
+        gist = f"{agreeing} of {total} animals have a target effect of the {sign} sign"
+        if clear is not None:
+            gist += f"; {clear} of them a 95% CI clear of 0"
+        return gist + ".", reasons
+    if not reasons:
+        return "", []
+    gist = reasons[0]
+    flag = str(answer.get("flag") or "").strip()
+    if flag and flag not in gist:
+        gist += " " + flag.rstrip(".") + "."
+    return gist, reasons[1:]
 
 
 #: The questions the short answer lists, as summary.json keys and the report's words.
@@ -328,14 +363,35 @@ def _overlay(
 
 
 def _background(summary: dict, folder: Path) -> tuple[figures.Volume | None, str]:
-    template = ((summary.get("settings") or {}).get("study") or {}).get("template")
+    template = locate_input(_template_setting(summary), summary, folder.parent)
     fix = _header_to_true(summary)
-    if template and Path(template).is_file():
-        return figures.canonical(_load(Path(template), fix)), "the study template"
+    if template is not None:
+        return figures.canonical(_load(template, fix)), "the study template"
     mask = _load(folder / "mask.nii.gz", fix)
     if mask is None:
         return None, ""
     return figures.canonical(mask), "the analysis mask (the template file was not found)"
+
+
+def _template_setting(summary: dict) -> str | None:
+    return ((summary.get("settings") or {}).get("study") or {}).get("template")
+
+
+def missing_inputs(out_dir: Path) -> list[str]:
+    """What the report of ``out_dir`` cannot find of the study's inputs, in words.
+
+    The template is drawn under the maps; when it is neither where the run read it nor
+    where it would be had the study and its outputs moved together, the figures fall
+    back to the analysis mask, and ``grouplevel report`` says so.
+    """
+    summary = read_summary(out_dir)
+    template = _template_setting(summary)
+    if template and locate_input(template, summary, out_dir) is None:
+        return [
+            f"the template {template} was not found (did the study folder move without "
+            "its output folder?); the maps are drawn on the analysis mask"
+        ]
+    return []
 
 
 def _result_figures(out_dir: Path, name: str, result: dict, summary: dict, frames) -> list[dict]:
@@ -629,13 +685,8 @@ def _cautions(name: str, result: dict, summary: dict, method_words: str) -> list
             "chance of any false voxel; all p-values are parametric "
             f"(t with {df_words})."
         )
-    uncorrected = result.get("voxels_p_below_0.001_uncorrected")
-    if uncorrected is not None:
-        out.append(
-            f"{uncorrected:,} voxels have uncorrected p < 0.001; a map thresholded without "
-            "correction is exploratory and is not shown here as a finding."
-        )
     method = _method(summary, result)
+    out += _uncorrected_cautions(result, method, method_words)
     if method in ("cluster_extent", "cluster_mass"):
         out.append(
             "A significant cluster says the effect is non-zero somewhere in it, not at each "
@@ -671,6 +722,39 @@ def _cautions(name: str, result: dict, summary: dict, method_words: str) -> list
     for w in summary.get("warnings") or []:
         if str(w).startswith(f"{name}:"):
             out.append(str(w))
+    return out
+
+
+def _uncorrected_cautions(result: dict, method: str, method_words: str) -> list[str]:
+    """The count of voxels with uncorrected p < 0.001, and why it may be below the count
+    that survives a corrected threshold (TFCE and FDR do not need p < 0.001 at a voxel)."""
+    uncorrected = result.get("voxels_p_below_0.001_uncorrected")
+    if uncorrected is None:
+        return []
+    out = [
+        f"{count(uncorrected, 'voxel')} {'has' if uncorrected == 1 else 'have'} uncorrected "
+        "p < 0.001; a map thresholded without correction is exploratory and is not shown "
+        "here as a finding."
+    ]
+    surviving = _surviving_count(result, method) or 0
+    if surviving > uncorrected:
+        why = {
+            "tfce": "TFCE scores each voxel by the support of the clusters it belongs to at "
+            "every height, so a broad, moderate effect survives without any voxel reaching "
+            "p < 0.001 on its own",
+            "fdr": "FDR adapts its threshold to the p-values of the whole map, and that "
+            "threshold lies above 0.001 here",
+            "cluster_extent": "cluster inference tests the size of clusters formed at the "
+            "cluster-forming threshold, not single voxels",
+            "cluster_mass": "cluster inference tests the mass of clusters formed at the "
+            "cluster-forming threshold, not single voxels",
+        }.get(method)
+        if why:
+            out.append(
+                f"More voxels survive {method_words} ({surviving:,}) than have uncorrected "
+                f"p < 0.001 ({uncorrected:,}): this is not a contradiction. {why[0].upper()}"
+                f"{why[1:]}."
+            )
     return out
 
 
@@ -737,6 +821,8 @@ def _first_level_rows(results: dict) -> list[dict]:
             continue
         first_levels[key] = {
             "name": key,
+            # "runs" stands for the runs of a study without named first-level contrasts
+            "named": bool(r.get("first_level_contrast")),
             "animals": r.get("animals"),
             "runs": r.get("runs"),
             "runs_per_animal": list((r.get("runs_per_animal") or {}).items()),
@@ -860,7 +946,7 @@ def _frames(out_dir: Path, name: str) -> dict:
 
 def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:
     """The planning section of one result (after `grouplevel plan`), or None."""
-    plan = ((summary.get("plan") or {}).get(name) or {}).get("regions")
+    plan = (read_plans(out_dir, summary).get(name) or {}).get("regions")
     if not plan:
         return None
     rows = []
@@ -872,12 +958,13 @@ def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:
         power = inputs.get("power_of_this_study", float("nan"))
         rows.append(
             {
-                "region": f"{p.get('region')} ({p.get('hemisphere')})",
+                "region": place(p.get("region"), p.get("hemisphere")),
                 "effect": f"{effect:.3g} ({inputs.get('effect_source', '')})",
-                "now": f"{inputs.get('animals')} animals, {runs:.1f} runs each: power {power:.2f}",
+                "now": f"{count(inputs.get('animals') or 0, 'animal')}, "
+                f"{mean_count(runs, 'run')}: power {power:.2f}",
                 "best": "none in the grid reaches the target"
                 if not best
-                else f"{best['animals']} animals × {best['runs']} runs: power "
+                else f"{count(best['animals'], 'animal')} × {count(best['runs'], 'run')}: power "
                 f"{best['power']:.2f}, cost {best['cost']:g}",
             }
         )
@@ -906,14 +993,18 @@ def build_context(out_dir: Path, *, title: str | None = None) -> dict:
     for name in names:
         result = summary["results"][name]
         frames = _frames(out_dir, name)
-        views = result_table_views(out_dir, name)
+        views = result_table_views(out_dir, name, summary)
+        brief = result_table_views(out_dir, name, summary, brief=True)
         answer = _answer(name, result, summary, views, frames)
         results.append(
             {
                 "name": name,
                 "answer": answer,
                 "figures": _result_figures(out_dir, name, result, summary, frames),
-                "tables": [views[k] for k in REPORT_TABLES if k in views],
+                # each table: the columns a reader needs first, and all of them (folded)
+                "tables": [
+                    {"brief": brief[k], "full": views[k]} for k in REPORT_TABLES if k in views
+                ],
                 "cautions": _cautions(name, result, summary, answer["method"]),
                 "plan": _plan(out_dir, name, summary),
             }
@@ -962,7 +1053,9 @@ def render_report(out_dir: Path, *, title: str | None = None) -> Path:
     out_dir
         The output folder of a finished run (summary.json, result folders).
     title
-        Heading of the report; default: the study's title from summary.json.
+        Heading of the report. It is kept in ``out_dir/report.json``, so later
+        renderings (``grouplevel report`` without ``--title``, ``grouplevel plan``) keep
+        it; default: the title kept so, else the study's title from summary.json.
 
     Returns
     -------
@@ -977,6 +1070,10 @@ def render_report(out_dir: Path, *, title: str | None = None) -> Path:
     out_dir = Path(out_dir)
     require_grouplevel_output(out_dir)  # never write report.html into a foreign folder
     start = time.perf_counter()
+    if title:
+        write_report_options(out_dir, title=title)
+    else:
+        title = read_report_options(out_dir).get("title")
     context = build_context(out_dir, title=title)
     html = (
         _environment()

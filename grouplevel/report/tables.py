@@ -2,18 +2,24 @@
 
 Each table of a finished output folder (``clusters.tsv``, ``regions.tsv``,
 ``symmetry.tsv``, ``specificity.tsv``, ``consistency.tsv``, ``animals.tsv``) becomes a
-:class:`TableView`: chosen columns, headers that carry their units, and every value
-rounded by what it is:
+:class:`TableView`: chosen columns (the catalogue of :mod:`grouplevel.outputs.columns`),
+headers that carry their units, and values rounded by what they are. Two forms:
 
-* statistics (effect, z, t, laterality indices ...): 2 decimals;
-* p- and q-values: 3 decimals, or scientific notation with 3 significant digits below
-  0.001 (so a small p never prints as 0.000);
-* coordinates: 0.01 mm; volumes: 0.001 mm³ (one 0.2 mm voxel is 0.008 mm³);
-* variance components (τ², σ²): 3 significant digits (they are often far below 0.01).
+* **full** (``tables/<result>_<table>.tsv`` and ``.csv``, and the report's "all columns"):
+  every column; statistics 2 decimals; p- and q-values 3 decimals, or 3 significant
+  digits in scientific notation below 0.001 (a small p never prints as 0.000);
+  coordinates 0.01 mm; volumes 0.001 mm³ (one 0.2 mm voxel is 0.008 mm³); variance
+  components 3 significant digits; df as an integer when whole; yes/no for booleans.
+* **one page** (``.tex`` and ``.md``): the columns of the study file's ``[tables]``
+  (defaults in :mod:`grouplevel.intake.settings`), at most ``[tables] max_rows`` rows
+  with a note naming the full file; each number column with one number of decimals
+  (:func:`column_decimals`) and p below 0.001 as "< 0.001".
 
-A view is written in four forms for a manuscript: TSV, CSV, LaTeX (booktabs rules,
-LaTeX special characters escaped) and Markdown (a pipe table). The same views feed the
-HTML report, so the report and the files always agree.
+In words rather than numbers: a cluster-level FWE p of a peak below the
+cluster-forming threshold reads "no cluster at p < 0.001" (no cluster forms there), and
+a row that is no atlas region (index -1, e.g. all targets together) has no index.
+LaTeX special characters are escaped and the LaTeX compiles with pdflatex without any
+package beyond booktabs' three rules.
 """
 
 from __future__ import annotations
@@ -21,11 +27,28 @@ from __future__ import annotations
 import math
 import re
 import unicodedata
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
 import pandas as pd
 
+from grouplevel.outputs.columns import (
+    BOOL,
+    COORD,
+    DF,
+    INT,
+    MANUSCRIPT_TABLES,
+    P_CORRECTED,
+    PERCENT,
+    STAT,
+    TABLES,
+    TEXT,
+    VARIANCE,
+    VOLUME,
+    Column,
+    P,
+)
 from grouplevel.outputs.folder import child_path, require_grouplevel_output
 from grouplevel.outputs.summary import read_summary, result_names
 
@@ -36,29 +59,60 @@ P_SCIENTIFIC_BELOW = 0.001
 COORD_DECIMALS = 2  # 0.01 mm
 VOLUME_DECIMALS = 3  # 0.001 mm³
 VARIANCE_DIGITS = 3  # significant digits
+# Manuscript form: every number of a column gets the same decimals, enough to give its
+# largest value this many significant digits (at least STAT_DECIMALS, at most
+# MAX_DECIMALS); p-values below P_SCIENTIFIC_BELOW print as "< 0.001" (APA Publication
+# Manual, 7th ed. 2020, §6.36; value from memory).
+MANUSCRIPT_DIGITS = 3
+MAX_DECIMALS = 6
 MISSING = "n/a"
+#: atlas indices below 1 mark rows that are no atlas region (e.g. all targets together)
+NO_INDEX = ("index", "parent")
 
-# kinds of column: how a value is printed
-TEXT, INT, STAT, P, COORD, VOLUME, VARIANCE, PERCENT, BOOL = (
-    "text",
-    "int",
-    "stat",
-    "p",
-    "coord",
-    "volume",
-    "variance",
-    "percent",
-    "bool",
-)
+#: columns the report shows first, per table (the full table is one click away)
+REPORT_COLUMNS: dict[str, tuple[str, ...]] = {
+    "clusters": (
+        "peak_region",
+        "peak_region_hemisphere",
+        "voxels",
+        "peak_AP_mm",
+        "peak_ML_mm",
+        "peak_DV_mm",
+        "z",
+        P_CORRECTED,
+    ),
+    "regions": ("name", "hemisphere", "effect", "ci_low", "ci_high", "p", "q"),
+    "symmetry": ("region", "verdict", "side", "li_effect", "p", "tost_p", "reasons"),
+    "specificity": (
+        "kind",
+        "name",
+        "hemisphere",
+        "mean_effect",
+        "surviving_voxels",
+        "activation_share",
+    ),
+    "consistency": ("animal", "runs", "effect", "ci_low", "ci_high", "positive", "loo_change"),
+    "run_quality": ("animal", "session", "run", "flagged", "why", "correlation", "edge_score"),
+}
+
+#: ``[clusters] method`` -> the clusters.tsv column holding its p, and that p's header
+METHOD_P = {
+    "tfce": ("p_fwe_tfce_min", "p FWE (TFCE)"),
+    "voxel": ("p_fwe_voxel_min", "p FWE (voxel)"),
+    "cluster_extent": ("p_fwe_cluster_extent", "p FWE (cluster extent)"),
+    "cluster_mass": ("p_fwe_cluster_mass", "p FWE (cluster mass)"),
+    "fdr": ("q_min", "q FDR"),
+}
+_CLUSTER_P = ("p_fwe_cluster_extent", "p_fwe_cluster_mass")
 
 
 @dataclass(frozen=True)
-class Column:
-    """One column of a manuscript table: source column, printed header, kind."""
+class TableContext:
+    """What a clusters table needs from summary.json to print its p-values in words."""
 
-    source: str
-    header: str
-    kind: str
+    method: str | None = None  # [clusters] method as resolved for this result
+    cluster_forming_p: float | None = None
+    cluster_forming_z: float | None = None
 
 
 @dataclass(frozen=True)
@@ -70,6 +124,8 @@ class TableView:
     columns: tuple[Column, ...]
     rows: tuple[tuple[str, ...], ...]
     source: str  # the TSV it came from, relative to the output folder
+    total_rows: int = -1  # rows of the source table (when only the first are shown)
+    total_columns: int = -1  # columns of the source table
 
     @property
     def headers(self) -> list[str]:
@@ -83,139 +139,19 @@ class TableView:
         return pd.DataFrame(list(self.rows), columns=self.headers, dtype=object)
 
 
-def _c(source: str, header: str, kind: str) -> Column:
-    return Column(source, header, kind)
-
-
-# Column choices per table; a column missing from a file is left out of the view.
-_CLUSTER_COLUMNS = (
-    _c("cluster", "cluster", INT),
-    _c("peak", "peak", INT),
-    _c("sign", "sign", INT),
-    _c("voxels", "voxels", INT),
-    _c("volume_mm3", "volume (mm³)", VOLUME),
-    _c("peak_AP_mm", "AP (mm)", COORD),
-    _c("peak_ML_mm", "ML (mm)", COORD),
-    _c("peak_DV_mm", "DV (mm)", COORD),
-    _c("z", "z", STAT),
-    _c("t", "t", STAT),
-    _c("effect", "effect (map units)", STAT),
-    _c("p_fwe_cluster_extent", "p FWE (extent)", P),
-    _c("p_fwe_cluster_mass", "p FWE (mass)", P),
-    _c("p_fwe_tfce_min", "p FWE (TFCE, min)", P),
-    _c("p_fwe_voxel_min", "p FWE (voxel, min)", P),
-    _c("q_min", "q FDR (min)", P),
-    _c("peak_region", "peak region", TEXT),
-    _c("peak_region_abbreviation", "abbr.", TEXT),
-    _c("peak_region_hemisphere", "hemisphere", TEXT),
-    _c("regions", "regions (% of cluster, % of region)", TEXT),
-)
-_REGION_COLUMNS = (
-    _c("name", "region", TEXT),
-    _c("abbreviation", "abbr.", TEXT),
-    _c("hemisphere", "hemisphere", TEXT),
-    _c("volume_mm3", "volume (mm³)", VOLUME),
-    _c("effect", "effect (map units)", STAT),
-    _c("se", "SE (map units)", STAT),
-    _c("ci_low", "95% CI low", STAT),
-    _c("ci_high", "95% CI high", STAT),
-    _c("t", "t", STAT),
-    _c("df", "df", STAT),
-    _c("p", "p", P),
-    _c("q", "q FDR", P),
-    _c("var_animal", "τ² (map units²)", VARIANCE),
-    _c("var_run", "σ² (map units²)", VARIANCE),
-    _c("animals", "animals", INT),
-    _c("runs", "runs", INT),
-)
-_SYMMETRY_COLUMNS = (
-    _c("region", "region", TEXT),
-    _c("li_extent", "LI extent", STAT),
-    _c("li_extent_low", "LI extent low", STAT),
-    _c("li_extent_high", "LI extent high", STAT),
-    _c("li_effect", "LI effect", STAT),
-    _c("li_effect_low", "LI effect low", STAT),
-    _c("li_effect_high", "LI effect high", STAT),
-    _c("li_threshold_free", "LI threshold-free", STAT),
-    _c("left_effect", "left effect (map units)", STAT),
-    _c("right_effect", "right effect (map units)", STAT),
-    _c("difference", "L−R (map units)", STAT),
-    _c("se", "SE (map units)", STAT),
-    _c("ci_low", "95% CI low", STAT),
-    _c("ci_high", "95% CI high", STAT),
-    _c("df", "df", STAT),
-    _c("p", "p", P),
-    _c("margin", "margin (map units)", STAT),
-    _c("tost_p", "p TOST", P),
-    _c("verdict", "verdict", TEXT),
-    _c("side", "side", TEXT),
-    _c("reasons", "reasons", TEXT),
-)
-_CONSISTENCY_COLUMNS = (
-    _c("animal", "animal", TEXT),
-    _c("effect", "effect (map units)", STAT),
-    _c("se", "SE (map units)", STAT),
-    _c("ci_low", "95% CI low", STAT),
-    _c("ci_high", "95% CI high", STAT),
-    _c("positive", "positive", BOOL),
-    _c("loo_effect", "group effect without animal", STAT),
-    _c("loo_change", "change without animal", STAT),
-)
-_ANIMAL_COLUMNS = (
-    _c("animal", "animal", TEXT),
-    _c("name", "region", TEXT),
-    _c("hemisphere", "hemisphere", TEXT),
-    _c("effect", "effect (map units)", STAT),
-    _c("se", "SE (map units)", STAT),
-    _c("runs", "runs", INT),
-)
-_RUN_QUALITY_COLUMNS = (
-    _c("animal", "animal", TEXT),
-    _c("session", "session", TEXT),
-    _c("run", "run", TEXT),
-    _c("correlation", "correlation with group", STAT),
-    _c("mean_variance", "mean variance (map units²)", VARIANCE),
-    _c("z_correlation", "z (correlation)", STAT),
-    _c("z_variance", "z (variance)", STAT),
-    _c("edge_score", "edge score", STAT),
-    _c("flagged", "flagged", BOOL),
-    _c("why", "why", TEXT),
-)
-
-#: Columns left out of a printed table when no row fills them (an atlas without
-#: abbreviations).
-_SHOWN_WHEN_FILLED = frozenset({"abbreviation", "peak_region_abbreviation"})
-
-#: table key -> (file name in a result folder, caption, column choices)
-TABLE_SPECS: dict[str, tuple[str, str, tuple[Column, ...]]] = {
-    "clusters": (
-        "clusters.tsv",
-        "Significant clusters: peaks and sub-peaks, origin-relative coordinates",
-        _CLUSTER_COLUMNS,
-    ),
-    "regions": (
-        "regions.tsv",
-        "Region effects (REML on run-wise region averages)",
-        _REGION_COLUMNS,
-    ),
-    "symmetry": ("symmetry.tsv", "Hemispheric symmetry and laterality", _SYMMETRY_COLUMNS),
-    "specificity": ("specificity.tsv", "Specificity of the response", ()),
-    "consistency": ("consistency.tsv", "Per-animal effect and leave-one-out", _CONSISTENCY_COLUMNS),
-    "animals": ("animals.tsv", "Per-animal region effects", _ANIMAL_COLUMNS),
-    "run_quality": ("run_quality.tsv", "Run quality", _RUN_QUALITY_COLUMNS),
-}
-
-#: tables written to DIR/tables/ for a manuscript
-MANUSCRIPT_TABLES = ("clusters", "regions", "symmetry", "specificity", "consistency", "animals")
-
-
 def read_tsv(path: Path) -> pd.DataFrame:
     """A result TSV with ``n/a`` as the only missing marker (IDs like "NA" stay text)."""
     return pd.read_csv(path, sep="\t", keep_default_na=False, na_values=[MISSING], dtype=object)
 
 
+_BOOL_WORDS = {"true", "false"}
+
+
 def _guess_column(name: str, values: pd.Series) -> Column:
-    """Kind of a column not in the fixed choices (e.g. of specificity.tsv)."""
+    """Kind of a column the catalogue does not know (a newer writer's extra column)."""
+    present = values.dropna().astype(str)
+    if len(present) and set(present.str.lower()) <= _BOOL_WORDS:
+        return Column(name, name.replace("_", " "), BOOL)
     numbers = pd.to_numeric(values, errors="coerce")
     if values.notna().sum() and numbers.notna().sum() < values.notna().sum():
         return Column(name, name.replace("_", " "), TEXT)
@@ -237,7 +173,7 @@ def _guess_column(name: str, values: pd.Series) -> Column:
 
 
 def format_value(value: object, kind: str) -> str:
-    """One value as printed in every manuscript table (see the module notes)."""
+    """One value as printed in the full tables and the report (see the module notes)."""
     if value is None or (isinstance(value, float) and math.isnan(value)):
         return MISSING
     if kind == TEXT:
@@ -253,6 +189,8 @@ def format_value(value: object, kind: str) -> str:
         return MISSING
     if kind == INT:
         return str(int(round(x)))
+    if kind == DF:
+        return str(int(x)) if x.is_integer() else f"{x:.1f}"
     if kind == P:
         if 0 < x < P_SCIENTIFIC_BELOW:
             return f"{x:.2e}"
@@ -272,26 +210,55 @@ def _no_negative_zero(text: str) -> str:
     return text[1:] if text.startswith("-") and float(text) == 0 else text
 
 
-def table_view(key: str, frame: pd.DataFrame, source: str) -> TableView:
-    """The printed form of one result table (chosen columns, rounded values)."""
-    _file, caption, choices = TABLE_SPECS[key]
-    columns = [
-        c
-        for c in choices
-        if c.source in frame.columns
-        and not (c.source in _SHOWN_WHEN_FILLED and _all_empty(frame[c.source]))
-    ]
-    chosen = {c.source for c in columns}
-    if not choices:  # no fixed choice: keep every column, kinds guessed from the values
-        columns = [_guess_column(name, frame[name]) for name in frame.columns]
-    elif key in ("symmetry", "consistency", "run_quality"):
-        # tables still growing: show extra columns too, after the known ones
-        columns += [_guess_column(n, frame[n]) for n in frame.columns if n not in chosen]
-    rows = tuple(
-        tuple(format_value(_cell(row[c.source]), c.kind) for c in columns)
-        for _, row in frame.iterrows()
-    )
-    return TableView(key=key, caption=caption, columns=tuple(columns), rows=rows, source=source)
+def column_decimals(values: list[float], kind: str) -> int:
+    """Decimals of a number column in the manuscript form (one for the whole column)."""
+    finite = [abs(v) for v in values if math.isfinite(v)]
+    if kind in (INT,):
+        return 0
+    if kind == DF:
+        return 0 if all(float(v).is_integer() for v in finite) else 1
+    if kind == COORD:
+        return COORD_DECIMALS
+    if kind == VOLUME:
+        return VOLUME_DECIMALS
+    if kind == P:
+        return P_DECIMALS
+    largest = max((v for v in finite if v > 0), default=0.0)
+    if largest == 0:
+        return STAT_DECIMALS
+    wanted = MANUSCRIPT_DIGITS - 1 - math.floor(math.log10(largest))
+    return int(min(MAX_DECIMALS, max(STAT_DECIMALS, wanted)))
+
+
+def _manuscript_column(values: list[object], kind: str, p_bound: bool = True) -> list[str]:
+    """A column of the manuscript form: same decimals in every row, "< 0.001" for small p
+    (``p_bound``; otherwise p-values as in the full form)."""
+    if kind in (TEXT, BOOL) or (kind == P and not p_bound):
+        return [format_value(v, kind) for v in values]
+    numbers = [_number(v) for v in values]
+    decimals = column_decimals([x for x in numbers if x is not None], kind)
+    out = []
+    for v, x in zip(values, numbers, strict=True):
+        if x is None:
+            out.append(format_value(v, TEXT) if v is not None else MISSING)
+        elif kind == P and 0 <= x < P_SCIENTIFIC_BELOW:
+            out.append(f"< {P_SCIENTIFIC_BELOW:g}")
+        else:
+            out.append(_no_negative_zero(f"{x:.{decimals}f}"))
+    return out
+
+
+def _number(value: object) -> float | None:
+    try:
+        x = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return None
+    return None if math.isnan(x) else x
+
+
+#: Columns left out of a printed table when no row fills them (an atlas without
+#: abbreviations).
+_SHOWN_WHEN_FILLED = frozenset({"abbreviation", "peak_region_abbreviation"})
 
 
 def _all_empty(values: pd.Series) -> bool:
@@ -302,13 +269,173 @@ def _cell(value: object) -> object:
     return None if value is None or (isinstance(value, float) and math.isnan(value)) else value
 
 
-def result_table_views(out_dir: Path, name: str) -> dict[str, TableView]:
-    """Every table present in one result folder, as views (missing files are skipped)."""
-    views = {}
-    for key, (file, _caption, _cols) in TABLE_SPECS.items():
-        path = out_dir / name / file
+def _resolved(key: str, frame: pd.DataFrame, context: TableContext) -> pd.DataFrame:
+    """The table with derived columns added and cluster p-values put in words.
+
+    - ``p_corrected`` (clusters): the p of the method that decided significance;
+    - a cluster-level FWE p of a peak below the cluster-forming threshold belongs to no
+      cluster (the statistic forms none there, and the file holds 1): it reads "no
+      cluster at p < 0.001";
+    - an atlas index below 1 (a row that is no atlas region) is left empty.
+    """
+    frame = frame.copy()
+    for name in NO_INDEX:
+        if name in frame:
+            idx = pd.to_numeric(frame[name], errors="coerce")
+            frame[name] = frame[name].where(~(idx < 1), "")
+    if key != "clusters":
+        return frame
+    z_cf, p_cf = context.cluster_forming_z, context.cluster_forming_p
+    if z_cf is not None and p_cf is not None and "z" in frame:
+        below = pd.to_numeric(frame["z"], errors="coerce").abs() < z_cf
+        for name in _CLUSTER_P:
+            if name in frame:
+                frame[name] = (
+                    frame[name].astype(object).where(~below, f"no cluster at p < {p_cf:g}")
+                )
+    if context.method in METHOD_P and METHOD_P[context.method][0] in frame:
+        frame[P_CORRECTED] = frame[METHOD_P[context.method][0]]
+    return frame
+
+
+def _chosen_columns(
+    key: str, frame: pd.DataFrame, names: Sequence[str] | None, context: TableContext
+) -> list[Column]:
+    """The columns to print: ``names`` (those present), or every column of the file.
+
+    A column the atlas may leave empty (its abbreviations) is left out when no row
+    fills it.
+    """
+    spec = TABLES[key]
+    frame = frame[
+        [n for n in frame.columns if not (n in _SHOWN_WHEN_FILLED and _all_empty(frame[n]))]
+    ]
+    if names is None:
+        known = [c for c in spec.columns if c.source in frame.columns and c.source != P_CORRECTED]
+        seen = {c.source for c in known}
+        extra = [
+            _guess_column(n, frame[n]) for n in frame.columns if n not in seen and n != P_CORRECTED
+        ]
+        return known + extra
+    out = []
+    for name in names:
+        if name not in frame.columns:
+            continue
+        column = spec.column(name) or _guess_column(name, frame[name])
+        if name == P_CORRECTED and context.method in METHOD_P:
+            column = Column(name, METHOD_P[context.method][1], P)
+        out.append(column)
+    return out
+
+
+def table_view(
+    key: str,
+    frame: pd.DataFrame,
+    source: str,
+    *,
+    columns: Sequence[str] | None = None,
+    context: TableContext | None = None,
+    manuscript: bool = False,
+    max_rows: int | None = None,
+    p_bound: bool = True,
+) -> TableView:
+    """The printed form of one result table.
+
+    Parameters
+    ----------
+    key, frame, source
+        The table's key in :data:`grouplevel.outputs.columns.TABLES`, its content (as
+        read by :func:`read_tsv`) and its path relative to the output folder.
+    columns
+        TSV column names to print, in order (missing ones are left out); None: every
+        column of the file, the catalogue's first.
+    context
+        The result's method and cluster-forming threshold (clusters table).
+    manuscript
+        Same decimals throughout each number column and "< 0.001" for small p (the
+        one-page form); otherwise each value by the rules of :func:`format_value`.
+    max_rows
+        Print at most this many rows (``total_rows`` keeps the count of the file).
+    p_bound
+        In the manuscript form, print p below 0.001 as "< 0.001" (else as in the full
+        form, e.g. 6.86e-06: the report keeps the exact order of magnitude).
+    """
+    context = context or TableContext()
+    frame = _resolved(key, frame, context)
+    chosen = _chosen_columns(key, frame, columns, context)
+    shown = frame if max_rows is None else frame.head(max_rows)
+    cells = []
+    for c in chosen:
+        values = [_cell(v) for v in shown[c.source]]
+        if manuscript:
+            cells.append(_manuscript_column(values, c.kind, p_bound))
+        else:
+            cells.append([format_value(v, c.kind) for v in values])
+    rows = tuple(zip(*cells, strict=True)) if cells else tuple(() for _ in range(len(shown)))
+    return TableView(
+        key=key,
+        caption=TABLES[key].caption,
+        columns=tuple(chosen),
+        rows=rows,
+        source=source,
+        total_rows=len(frame),
+        total_columns=len([c for c in frame.columns if c != P_CORRECTED]),
+    )
+
+
+def table_context(summary: dict, name: str) -> TableContext:
+    """The :class:`TableContext` of one result of a summary.json."""
+    result = (summary.get("results") or {}).get(name) or {}
+    settings = summary.get("settings") or {}
+    inf = settings.get("inference") or {}
+    method = (result.get("clusters") or {}).get("method") or (settings.get("clusters") or {}).get(
+        "method"
+    )
+    if method is None:
+        method = (
+            ("tfce" if inf.get("tfce", True) else "cluster_mass")
+            if inf.get("permutations")
+            else "fdr"
+        )
+    perm = (result.get("inference") or {}).get("permutation") or {}
+    return TableContext(
+        method=method,
+        cluster_forming_p=inf.get("cluster_forming_p"),
+        cluster_forming_z=perm.get("cluster_forming_z"),
+    )
+
+
+def result_frames(out_dir: Path, name: str) -> dict[str, pd.DataFrame]:
+    """Every result table present in one result folder (missing files are skipped)."""
+    frames = {}
+    for key, spec in TABLES.items():
+        path = out_dir / name / spec.file
         if path.is_file():
-            views[key] = table_view(key, read_tsv(path), f"{name}/{file}")
+            frames[key] = read_tsv(path)
+    return frames
+
+
+def result_table_views(
+    out_dir: Path, name: str, summary: dict | None = None, *, brief: bool = False
+) -> dict[str, TableView]:
+    """Every table present in one result folder, as views (missing files are skipped).
+
+    ``brief``: only the columns the report shows first (:data:`REPORT_COLUMNS`), each
+    number column with one number of decimals (p-values as in the full form).
+    """
+    context = table_context(summary or {}, name)
+    views = {}
+    for key, frame in result_frames(out_dir, name).items():
+        columns = REPORT_COLUMNS.get(key) if brief else None
+        views[key] = table_view(
+            key,
+            frame,
+            f"{name}/{TABLES[key].file}",
+            columns=columns,
+            context=context,
+            manuscript=brief,
+            p_bound=False,
+        )
     return views
 
 
@@ -414,22 +541,135 @@ def _latex_cell(text: str) -> str:
     return latex_escape(text)
 
 
-def to_latex(view: TableView) -> str:
-    """A booktabs table (``\\toprule``, ``\\midrule``, ``\\bottomrule``)."""
-    align = "".join("r" if n else "l" for n in view.numeric())
+#: A text column whose longest entry is longer than this wraps in a fixed-width column.
+LATEX_WRAP_CHARS = 18
+LATEX_WRAP_CM = 2.8  # widest a wrapping column gets
+
+
+#: A header longer than this is set on two lines (at its unit, else at a middle space).
+LATEX_HEADER_CHARS = 8
+
+
+def _latex_header(text: str) -> str:
+    """A header on two lines when it is long: its unit or qualifier in parentheses on
+    the second line, else split at the space nearest its middle."""
+    head, sep, tail = text.partition(" (")
+    if sep:
+        tail = "(" + tail
+    elif len(text) > LATEX_HEADER_CHARS and " " in text:
+        spaces = [i for i, ch in enumerate(text) if ch == " "]
+        cut = min(spaces, key=lambda i: abs(i - len(text) / 2))
+        head, tail = text[:cut], text[cut + 1 :]
+    else:
+        return latex_escape(text)
+    return (
+        "\\begin{tabular}[b]{@{}c@{}}"
+        + latex_escape(head)
+        + "\\\\"
+        + latex_escape(tail)
+        + "\\end{tabular}"
+    )
+
+
+#: Text width of the standard article class at 10 pt (345 pt, about 12.1 cm; the same
+#: on A4 and letter paper), with a little room to spare.
+LATEX_TEXT_WIDTH_CM = 11.8
+#: Rough width of one character in the table's type (\\footnotesize, 8 pt: digits are
+#: half an em, 4 pt ≈ 0.14 cm) and the gap around a column (2 × 3 pt ≈ 0.21 cm).
+LATEX_CHAR_CM = 0.15
+LATEX_GAP_CM = 0.21
+LATEX_MIN_WRAP_CM = 1.8
+
+
+def _header_chars(header: str) -> int:
+    """Characters of the widest line of a header as :func:`_latex_header` sets it."""
+    head, sep, tail = header.partition(" (")
+    if sep:
+        return max(len(head), len(tail) + 1)
+    if len(header) > LATEX_HEADER_CHARS and " " in header:
+        spaces = [i for i, ch in enumerate(header) if ch == " "]
+        cut = min(spaces, key=lambda i: abs(i - len(header) / 2))
+        return max(cut, len(header) - cut - 1)
+    return len(header)
+
+
+def _latex_align(view: TableView) -> str:
+    """Column types: numbers right-aligned; long text in wrapping columns whose width
+    shares out what the other columns leave of the text width."""
+    kinds, fixed_cm = [], 0.0
+    for i, (column, numeric) in enumerate(zip(view.columns, view.numeric(), strict=True)):
+        longest = max((len(row[i]) for row in view.rows), default=0)
+        wraps = not numeric and column.kind == TEXT and longest > LATEX_WRAP_CHARS
+        kinds.append("p" if wraps else "r" if numeric else "l")
+        if not wraps:
+            chars = max(longest, _header_chars(column.header))
+            fixed_cm += chars * LATEX_CHAR_CM + LATEX_GAP_CM
+    n_wrap = kinds.count("p")
+    if n_wrap:
+        share = (LATEX_TEXT_WIDTH_CM - fixed_cm) / n_wrap - LATEX_GAP_CM
+        width = min(LATEX_WRAP_CM, max(LATEX_MIN_WRAP_CM, share))
+        return "".join(f"p{{{width:.2f}cm}}" if k == "p" else k for k in kinds)
+    return "".join(kinds)
+
+
+def table_note(view: TableView, full_file: str) -> str:
+    """The note under a one-page table: rows left out and where the full table is."""
+    parts = []
+    if 0 <= len(view.rows) < view.total_rows:
+        parts.append(f"The first {len(view.rows)} of {view.total_rows} rows.")
+    if 0 <= len(view.columns) < view.total_columns or parts:
+        parts.append(f"All rows and columns: {full_file}.")
+    if any(c.kind == P for c in view.columns):
+        parts.append("p-values below 0.001 are given as < 0.001.")
+    return " ".join(parts)
+
+
+#: A word longer than this in a wrapping column may break between any two characters
+#: (a name without spaces would otherwise run over the column and the page).
+LATEX_LONG_WORD = 16
+
+
+def _latex_wrapping_cell(text: str) -> str:
+    """A cell of a wrapping column: long words may break anywhere (``\\allowbreak``)."""
+    words = []
+    for word in text.split(" "):
+        if len(word) > LATEX_LONG_WORD:
+            words.append("\\allowbreak{}".join(latex_escape(ch) for ch in word))
+        else:
+            words.append(_latex_cell(word))
+    return " ".join(words)
+
+
+def to_latex(view: TableView, note: str = "") -> str:
+    """A one-page table float with booktabs rules (``\\toprule``, ``\\midrule``, ...).
+
+    Small type, narrow column gaps, headers with units on a second line, long text in
+    wrapping columns; ``note`` goes under the table.
+    """
     lines = [
         "% needs \\usepackage{booktabs}",
-        "\\begin{table}",
+        "\\begin{table}[htbp]",
         "\\centering",
+        "\\footnotesize",
+        "\\setlength{\\tabcolsep}{3pt}",
         f"\\caption{{{latex_escape(view.caption)}}}",
-        f"\\begin{{tabular}}{{{align}}}",
+        f"\\begin{{tabular}}{{{_latex_align(view)}}}",
         "\\toprule",
-        " & ".join(latex_escape(h) for h in view.headers) + r" \\",
+        " & ".join(_latex_header(h) for h in view.headers) + r" \\",
         "\\midrule",
     ]
+    align = _latex_align(view)
+    wrapping = [a.startswith("p") for a in re.findall(r"p\{[^}]*\}|[lrc]", align)]
     for row in view.rows:
-        lines.append(" & ".join(_latex_cell(v) for v in row) + r" \\")
-    lines += ["\\bottomrule", "\\end{tabular}", "\\end{table}", ""]
+        cells = (
+            _latex_wrapping_cell(v) if wrap else _latex_cell(v)
+            for v, wrap in zip(row, wrapping, strict=True)
+        )
+        lines.append(" & ".join(cells) + r" \\")
+    lines += ["\\bottomrule", "\\end{tabular}"]
+    if note:
+        lines.append(f"\\par\\smallskip{{\\scriptsize {latex_escape(note)}}}")
+    lines += ["\\end{table}", ""]
     return "\n".join(lines)
 
 
@@ -467,24 +707,39 @@ def _csv_frame(frame: pd.DataFrame) -> pd.DataFrame:
     return safe
 
 
-def write_view(view: TableView, stem: Path) -> list[Path]:
-    """``stem``.tsv / .csv / .tex / .md; returns the four paths.
+def write_full(view: TableView, stem: Path) -> list[Path]:
+    """``stem``.tsv and .csv: every column and row (the full form).
 
-    The TSV keeps every value exactly; in the CSV, text that a spreadsheet would run as
-    a formula is prefixed with a single quote (see :func:`formula_safe`).
+    In the CSV, text that a spreadsheet would run as a formula is prefixed with a single
+    quote (see :func:`formula_safe`).
     """
     frame = view.frame()
-    paths = []
-    for suffix, writer in (
-        (".tsv", lambda p: frame.to_csv(p, sep="\t", index=False)),
-        (".csv", lambda p: _csv_frame(frame).to_csv(p, index=False)),
-        (".tex", lambda p: p.write_text(to_latex(view), encoding="utf-8")),
-        (".md", lambda p: p.write_text(to_markdown(view), encoding="utf-8")),
-    ):
-        path = stem.with_name(stem.name + suffix)
-        writer(path)
-        paths.append(path)
-    return paths
+    tsv, csv = stem.with_name(stem.name + ".tsv"), stem.with_name(stem.name + ".csv")
+    frame.to_csv(tsv, sep="\t", index=False)
+    _csv_frame(frame).to_csv(csv, index=False)
+    return [tsv, csv]
+
+
+def write_one_page(view: TableView, stem: Path, note: str) -> list[Path]:
+    """``stem``.tex and .md: the chosen columns and rows (the one-page form)."""
+    tex, md = stem.with_name(stem.name + ".tex"), stem.with_name(stem.name + ".md")
+    tex.write_text(to_latex(view, note), encoding="utf-8")
+    text = to_markdown(view) + (f"\n{note}\n" if note else "")
+    md.write_text(text, encoding="utf-8")
+    return [tex, md]
+
+
+def manuscript_settings(summary: dict) -> tuple[dict[str, tuple[str, ...]], int]:
+    """The ``[tables]`` columns and row limit saved in summary.json (defaults if absent)."""
+    from grouplevel.intake.settings import DEFAULT_MANUSCRIPT_COLUMNS, DEFAULT_MANUSCRIPT_MAX_ROWS
+
+    saved = ((summary.get("settings") or {}).get("tables")) or {}
+    columns = dict(DEFAULT_MANUSCRIPT_COLUMNS)
+    for key, names in (saved.get("columns") or {}).items():
+        if key in columns and isinstance(names, list) and names:
+            columns[key] = tuple(str(n) for n in names)
+    max_rows = saved.get("max_rows")
+    return columns, int(max_rows) if isinstance(max_rows, int) else DEFAULT_MANUSCRIPT_MAX_ROWS
 
 
 def write_manuscript_tables(out_dir: Path) -> list[Path]:
@@ -492,7 +747,9 @@ def write_manuscript_tables(out_dir: Path) -> list[Path]:
 
     One file set per result folder and table, e.g. ``tables/sound_clusters.tex``: the
     clusters, regions, symmetry, specificity and per-animal tables (``consistency.tsv``
-    and ``animals.tsv``) that exist, each as TSV, CSV, LaTeX (booktabs) and Markdown.
+    and ``animals.tsv``) that exist, each as a full TSV and CSV (every column and row,
+    rounded) and as a one-page LaTeX and Markdown table (the ``[tables]`` columns, at
+    most ``[tables] max_rows`` rows, a note naming the full file).
 
     Parameters
     ----------
@@ -507,13 +764,28 @@ def write_manuscript_tables(out_dir: Path) -> list[Path]:
     out_dir = Path(out_dir)
     require_grouplevel_output(out_dir)  # result names checked: tables stay in tables/
     summary = read_summary(out_dir)
+    chosen, max_rows = manuscript_settings(summary)
     written: list[Path] = []
     target = out_dir / "tables"
     for name in result_names(summary):
-        views = result_table_views(out_dir, name)
+        frames = result_frames(out_dir, name)
+        context = table_context(summary, name)
         for key in MANUSCRIPT_TABLES:
-            if key not in views:
+            if key not in frames:
                 continue
             target.mkdir(exist_ok=True)
-            written += write_view(views[key], child_path(target, f"{name}_{key}"))
+            stem = child_path(target, f"{name}_{key}")
+            source = f"{name}/{TABLES[key].file}"
+            full = table_view(key, frames[key], source, context=context)
+            written += write_full(full, stem)
+            page = table_view(
+                key,
+                frames[key],
+                source,
+                columns=chosen[key],
+                context=context,
+                manuscript=True,
+                max_rows=max_rows,
+            )
+            written += write_one_page(page, stem, table_note(page, f"{stem.name}.tsv"))
     return written

@@ -6,7 +6,10 @@ region with a script tag) opened from disk (file://):
   Network.requestWillBeSent for such a URL) — the page is self-contained;
 - the browser console holds no error;
 - every <img> decoded (naturalWidth > 0);
-- the screenshot is not blank (more than a handful of distinct grey levels).
+- the screenshot is not blank (more than a handful of distinct grey levels);
+- printed on A4 (print media emulation, the page's width set to A4 minus the print
+  margins of report.css), no table is wider than the page, and Chrome's own
+  ``Page.printToPDF`` writes a PDF of A4 pages (595 × 842 pt, ISO 216).
 
 Skipped, with the reason, only when selenium, chromium or chromedriver is missing
 (install: apt-get install chromium chromium-driver; pip install selenium).
@@ -350,3 +353,53 @@ def test_slice_browser_shows_each_runs_value_of_a_small_study(driver, tiny_study
         assert got == pytest.approx(values, rel=1e-3, abs=1e-3)
     assert "Rings: each run's own value." in _text(driver, "sb-animals-note")
     assert [e for e in driver.get_log("browser") if e["level"] == "SEVERE"] == []
+
+
+# A4 (ISO 216: 210 × 297 mm) minus the @page margins of templates/report.css (14 mm left
+# and right), in CSS pixels (96 per inch, CSS Values and Units Level 3: 1in = 96px).
+A4_TEXT_WIDTH_PX = round((210 - 2 * 14) / 25.4 * 96)
+
+
+def test_report_prints_on_a4_with_no_table_wider_than_the_page(driver, report):
+    import base64
+    import re
+
+    if driver.current_url != report.as_uri():
+        driver.get(report.as_uri())
+    driver.execute_cdp_cmd("Emulation.setEmulatedMedia", {"media": "print"})
+    driver.execute_cdp_cmd(
+        "Emulation.setDeviceMetricsOverride",
+        {"width": A4_TEXT_WIDTH_PX, "height": 1100, "deviceScaleFactor": 1, "mobile": False},
+    )
+    try:
+        page, tables = driver.execute_script(
+            """
+            const out = [];
+            for (const t of document.querySelectorAll('table')) {
+              if (t.getClientRects().length === 0) continue;  // not printed
+              const r = t.getBoundingClientRect();
+              out.push([t.getAttribute('data-source') || t.caption?.textContent || '?',
+                        r.right, t.scrollWidth]);
+            }
+            return [document.documentElement.clientWidth, out];
+            """
+        )
+    finally:
+        driver.execute_cdp_cmd("Emulation.clearDeviceMetricsOverride", {})
+        driver.execute_cdp_cmd("Emulation.setEmulatedMedia", {"media": ""})
+    assert page <= A4_TEXT_WIDTH_PX
+    sources = [name for name, _, _ in tables]
+    assert "sound/clusters.tsv" in sources and "sound/symmetry.tsv" in sources
+    assert len(tables) >= 12
+    for name, right, scroll in tables:
+        assert right <= page + 0.5, f"{name} is {right:.0f} px wide on a {page} px page"
+        assert scroll <= page + 0.5, f"{name} scrolls to {scroll} px on a {page} px page"
+    # the page size of the print style sheet (the first page is enough to read it)
+    pdf = driver.execute_cdp_cmd("Page.printToPDF", {"preferCSSPageSize": True, "pageRanges": "1"})
+    data = base64.b64decode(pdf["data"])
+    assert data[:5] == b"%PDF-"
+    # every page of the PDF is A4: MediaBox 595 × 842 pt (ISO 216 in PostScript points)
+    boxes = re.findall(rb"/MediaBox\s*\[\s*0 0 ([\d.]+) ([\d.]+)\s*\]", data)
+    assert boxes, "no page size in the PDF"
+    for width, height in boxes:
+        assert abs(float(width) - 595.28) < 1.5 and abs(float(height) - 841.89) < 1.5

@@ -42,7 +42,7 @@ from grouplevel.report.tables import (
     TableView,
     formula_safe,
     latex_escape,
-    write_view,
+    write_full,
 )
 from tests.conftest import compile_latex, save, write_study
 
@@ -431,7 +431,7 @@ def test_csv_text_cells_are_neutralised_and_tsv_keeps_exact_values(tmp_path):
         rows=(('=HYPERLINK("http://x")', "-1.50"), ("@cmd", "2.00"), ("+x", "-0.10")),
         source="x",
     )
-    paths = write_view(view, tmp_path / "t")
+    paths = write_full(view, tmp_path / "t")
     csv = pd.read_csv(paths[1], dtype=str, keep_default_na=False)
     tsv = pd.read_csv(paths[0], sep="\t", dtype=str, keep_default_na=False)
     assert list(csv["region"]) == ['\'=HYPERLINK("http://x")', "'@cmd", "'+x"]
@@ -468,6 +468,11 @@ def test_every_latex_table_compiles(tmp_path, capsys):
         pytest.skip("pdflatex not found: the LaTeX tables were not compiled (install texlive)")
     names = (f"left {LATEX_SPECIALS} <b>", 'right ≥ α – Ą é | "q"')
     toml = atlas_study(tmp_path / "s", names)
+    # the one-page regions table with the variance components (their symbols in LaTeX)
+    toml.write_text(
+        toml.read_text()
+        + '\n[tables]\nregions = ["name", "volume_mm3", "var_animal", "var_run", "p"]\n'
+    )
     out = tmp_path / "out"
     assert cli(["run", toml, "--out", out, "--quiet"], capsys)[0] == 0
     tables = sorted((out / "tables").glob("*.tex"))

@@ -191,9 +191,12 @@ def test_plan_known_run_variance_reads_first_level_variance(example_outputs):
 def test_write_plan(example_outputs, tmp_path):
     out = example_outputs[0]
     plans = plan_from_output(out, regions=["auditory cortex"], effect=0.1, cost_animal=5.0)
+    record = (out / "summary.json").read_bytes()
     written = write_plan(out, plans)
     names = {p.name for p in plans}
-    assert {w.name for w in written} == {"power.tsv", "power.png", "summary.json"}
+    assert {w.name for w in written} == {"power.tsv", "power.png", "plan.json"}
+    # summary.json is the record of the analysis: planning adds plan.json beside it
+    assert (out / "summary.json").read_bytes() == record
     assert len(written) == 2 * len(names) + 1
     for name in names:
         tsv = pd.read_csv(out / name / "power.tsv", sep="\t")
@@ -203,11 +206,10 @@ def test_write_plan(example_outputs, tmp_path):
             tsv["power"], np.concatenate([p.grid["power"] for p in ours]), rtol=1e-5
         )
         assert (out / name / "power.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
-    summary = json.loads((out / "summary.json").read_text())
-    assert set(summary["plan"]) == names
-    first = summary["plan"][plans[0].name]["regions"][0]
+    kept = json.loads((out / "plan.json").read_text())["plans"]
+    assert set(kept) == names
+    first = kept[plans[0].name]["regions"][0]
     assert first["inputs"]["cost_animal"] == 5.0 and first["inputs"]["effect"] == 0.1
-    assert "results" in summary  # the rest of the summary is kept
     assert not list(out.glob(".*.partial"))  # no temporary files left behind
 
 

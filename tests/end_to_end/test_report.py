@@ -23,6 +23,7 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
 
 import grouplevel
 from grouplevel.errors import UserError
@@ -254,7 +255,8 @@ def test_manuscript_table_files(tables, output_copy, output):
 
 
 def _markdown_frame(path: Path) -> pd.DataFrame:
-    lines = path.read_text(encoding="utf-8").splitlines()
+    text = path.read_text(encoding="utf-8")
+    lines = text.split("\n\n")[0].splitlines()  # the table; a note may follow it
     assert set(lines[1].replace("|", "").replace(" ", "")) <= set(":-")
     body = "\n".join([lines[0], *lines[2:]])
     frame = pd.read_csv(
@@ -267,18 +269,40 @@ def test_markdown_parses_back_to_the_rounded_values(tables, output):
     md = _markdown_frame(output / "tables" / "sound_clusters.md")
     tsv = read_tsv(output / "sound" / "clusters.tsv")
     assert len(md) == len(tsv)
+    # the one-page columns (defaults of [tables]), p of the deciding method (TFCE)
+    assert list(md.columns) == [
+        "peak region",
+        "side",
+        "voxels",
+        "volume (mm³)",
+        "AP (mm)",
+        "ML (mm)",
+        "DV (mm)",
+        "z",
+        "p FWE (TFCE)",
+    ]
     # rounding rules: statistics 2 decimals, coordinates 0.01 mm (common practice)
     for header, source, decimals in (
         ("z", "z", 2),
-        ("t", "t", 2),
         ("AP (mm)", "peak_AP_mm", 2),
         ("ML (mm)", "peak_ML_mm", 2),
     ):
         got = md[header].astype(float).to_numpy()
         want = np.round(tsv[source].astype(float).to_numpy(), decimals)
         np.testing.assert_allclose(got, want, atol=0.5 * 10**-decimals + 1e-12)
-    p = md["p FWE (extent)"].astype(float).to_numpy()
-    np.testing.assert_allclose(p, tsv["p_fwe_cluster_extent"].astype(float), rtol=5e-3, atol=5e-4)
+    p = md["p FWE (TFCE)"].astype(float).to_numpy()
+    np.testing.assert_allclose(p, tsv["p_fwe_tfce_min"].astype(float), rtol=5e-3, atol=5e-4)
+    full = pd.read_csv(output / "tables" / "sound_clusters.tsv", sep="\t", dtype=str)
+    assert len(full.columns) == len(tsv.columns)  # the full table keeps every column
+    # a peak below the cluster-forming z (scipy: |z| of two-sided p = 0.001) is in no
+    # cluster: its cluster p reads in words; the others keep their number
+    below = tsv["z"].astype(float).abs() < stats.norm.isf(0.001 / 2)
+    assert (full["p FWE (extent)"][below] == "no cluster at p < 0.001").all()
+    np.testing.assert_allclose(
+        full["p FWE (extent)"][~below].astype(float),
+        tsv["p_fwe_cluster_extent"][~below].astype(float),
+        atol=5e-4,
+    )
     regions = _markdown_frame(output / "tables" / "sound_regions.md")
     assert EVIL in set(regions["region"])  # text kept as written (Markdown is not HTML)
 
@@ -296,7 +320,9 @@ def test_latex_uses_booktabs_and_escapes(tables, output):
     tex = (output / "tables" / "sound_regions.tex").read_text(encoding="utf-8")
     for rule in ("\\toprule", "\\midrule", "\\bottomrule"):
         assert tex.count(rule) == 1
-    assert r"\textless{}script\textgreater{}alert(1)\textless{}/script\textgreater{}" in tex
+    # (a long word in a wrapping column may break between characters: \allowbreak{})
+    unbroken = tex.replace(r"\allowbreak{}", "")
+    assert r"\textless{}script\textgreater{}alert(1)\textless{}/script\textgreater{}" in unbroken
     assert "<script>" not in tex
 
 
@@ -313,6 +339,86 @@ def test_latex_compiles(tables, output, tmp_path):
     )
     assert run.returncode == 0, run.stdout[-2000:]
     assert (tmp_path / "t.pdf").stat().st_size > 1000
+
+
+def test_one_page_latex_tables_fit_an_a4_page(tables, output, tmp_path):
+    # Each one-page table compiles with pdflatex on its own page of the standard article
+    # class (text width 345 pt at 10 pt type, the same on A4 and letter paper; LaTeX's
+    # own layout: no "Overfull \\hbox" in the log means no line is wider than the text
+    # width; the page count from pdflatex's last line).
+    if shutil.which("pdflatex") is None:
+        pytest.skip("pdflatex not found: the LaTeX tables were not compiled (install texlive)")
+    files = sorted((output / "tables").glob("sound_*.tex"))
+    assert len(files) == 6  # clusters, regions, symmetry, specificity, consistency, animals
+    body = "\n\\clearpage\n".join(f.read_text(encoding="utf-8") for f in files)
+    for f in files:  # only the chosen columns: at most 9 (the defaults of [tables])
+        lines = f.read_text(encoding="utf-8").splitlines()
+        header = lines[lines.index("\\toprule") + 1]
+        assert header.count(" & ") + 1 <= 9, f.name
+    run = compile_latex(body, tmp_path, timeout=60)
+    assert run.returncode == 0, run.stdout[-2000:]
+    log = (tmp_path / "t.log").read_text(encoding="latin-1")
+    assert "Overfull \\hbox" not in log, log[log.find("Overfull") - 200 :][:800]
+    pages = re.search(r"Output written on t\.pdf \((\d+) pages?", run.stdout)
+    assert pages is not None and int(pages.group(1)) == len(files)
+    regions = (output / "tables" / "sound_regions.tex").read_text(encoding="utf-8")
+    assert "9.00" not in regions and " & 9 & " in regions  # df as an integer
+    assert "True" not in regions and "False" not in regions
+
+
+def test_short_answers_fold_the_numbers(rendered):
+    _path, text = rendered
+    card = text[text.index('id="answer-1"') : text.index("</article>", text.index('id="answer-1"'))]
+    specific = card[card.index("<dt>Specific?</dt>") :]
+    specific = specific[: specific.index("</dd>")]
+    shown = re.sub(r"<[^>]+>", "", specific[: specific.index("<details")]).strip()
+    assert shown.startswith("Specific?") and len(shown) < 260, shown  # one sentence
+    assert specific.count("<li>") >= 2  # the other reasons, folded
+    assert "Not shown" not in text and "unlabelled ()" not in text
+
+
+def test_present_and_caution_wording():
+    from grouplevel.report.render import _present_item, _uncorrected_cautions
+
+    words = "TFCE, FWE p ≤ 0.05"
+    assert _present_item({}, 0, words, "")[1] == "No"  # not "Not shown"
+    result = {
+        "voxels_p_below_0.001_uncorrected": 0,
+        "inference": {"permutation": {"surviving": {"tfce": 123}}},
+    }
+    first, second = _uncorrected_cautions(result, "tfce", words)
+    assert first.startswith("0 voxels have uncorrected p < 0.001")
+    assert "(123) than have uncorrected p < 0.001 (0)" in second
+    assert "not a contradiction" in second and "TFCE" in second
+    result["voxels_p_below_0.001_uncorrected"] = 1
+    result["inference"]["permutation"]["surviving"]["tfce"] = 1
+    (only,) = _uncorrected_cautions(result, "tfce", words)  # no contradiction to explain
+    assert only.startswith("1 voxel has uncorrected")
+
+
+def test_report_finds_or_names_a_missing_template(output_copy, tmp_path, capsys, monkeypatch):
+    import grouplevel.report as report_package
+    from grouplevel.cli import main
+    from grouplevel.report.render import missing_inputs
+
+    folder = tmp_path / "moved" / "results"
+    shutil.copytree(output_copy, folder, ignore=shutil.ignore_patterns("*.nii.gz", "tables"))
+    summary = json.loads((folder / "summary.json").read_text())
+    # as if the study folder and its outputs had moved together from elsewhere
+    summary["output_folder"] = "/nowhere/study-area/results"
+    summary["settings"]["study"]["template"] = "/nowhere/study-area/study/template.nii.gz"
+    (folder / "summary.json").write_text(json.dumps(summary))
+    (problem,) = missing_inputs(folder)
+    assert "/nowhere/study-area/study/template.nii.gz was not found" in problem
+    # `grouplevel report` says so (the rendering itself is checked elsewhere)
+    for name in ("render_report", "write_methods"):
+        monkeypatch.setattr(report_package, name, lambda *a, **k: folder / "x")
+    monkeypatch.setattr(report_package, "write_manuscript_tables", lambda *a, **k: [])
+    assert main(["report", str(folder)]) == 0
+    assert "warning: the template" in capsys.readouterr().err
+    (folder.parent / "study").mkdir()
+    (folder.parent / "study" / "template.nii.gz").write_bytes(b"found")
+    assert missing_inputs(folder) == []  # found relative to the moved output folder
 
 
 # --- formatting rules ----------------------------------------------------------------
@@ -447,7 +553,9 @@ def test_question_sections_render_when_files_exist(with_questions):
     ):
         assert words in alts
     answer = text[text.index('id="answer"') : text.index('id="study"')]
-    assert "Bilateral?" in answer and "auditory cortex: bilateral (LI within ±0.2)" in answer
+    assert "Bilateral?" in answer and "auditory cortex: bilateral; inferior" in answer
+    # the reasons of each verdict, folded under it
+    assert "<li>auditory cortex: LI within ±0.2.</li>" in answer
     assert "Specific?" in answer and "Consistent?" in answer
     assert "&lt;b&gt;edge&lt;/b&gt;" in text  # a reason from a file is text, not markup
     tables = write_manuscript_tables(with_questions)
@@ -465,6 +573,13 @@ def test_without_atlas_or_permutations(tmp_path):
     out = grouplevel.run_study(toml, tmp_path / "out", permutations=0)
     text = render_report(out, title="A & B <i>").read_text(encoding="utf-8")
     assert "<h1>A &amp; B &lt;i&gt;</h1>" in text
+    # the title is kept (report.json) for later renderings without one
+    text = render_report(out).read_text(encoding="utf-8")
+    assert "<h1>A &amp; B &lt;i&gt;</h1>" in text
+    assert json.loads((out / "report.json").read_text())["title"] == "A & B <i>"
+    # a study without named first-level contrasts: its runs are "runs", not "runs of runs"
+    assert "No run was excluded." in text and "of runs" not in text
+    assert "Runs per animal —" in text
     assert "No permutation test was run" in text
     assert "No atlas was given" in text
     assert write_manuscript_tables(out) == []
@@ -510,6 +625,65 @@ def test_planning_section_after_plan(tmp_path):
         },
     }
     (out / "summary.json").write_text(json.dumps(summary))
-    (result,) = build_context(out)["results"]
+    (result,) = build_context(out)["results"]  # an older folder: the plan in summary.json
     assert result["plan"]["rows"][0]["best"] == "6 animals × 2 runs: power 0.83, cost 72"
+    assert result["plan"]["rows"][0]["now"] == "10 animals, 3.3 runs each on average: power 0.95"
     assert "optimistic" in result["plan"]["caution"]
+    # plan.json (what `grouplevel plan` writes now) wins over the old entry
+    plans = summary.pop("plan")
+    region = plans["sound"]["regions"][0]
+    region["inputs"].update(animals=4, runs_per_animal=1.0)
+    region["cheapest"].update(animals=1, runs=1)
+    (out / "summary.json").write_text(json.dumps(summary))
+    (out / "plan.json").write_text(json.dumps({"plans": plans}))
+    (result,) = build_context(out)["results"]
+    # counts in words: no "4 animals x 1 runs", no "1.0 runs each"
+    assert result["plan"]["rows"][0]["now"] == "4 animals, 1 run each: power 0.95"
+    assert result["plan"]["rows"][0]["best"].startswith("1 animal × 1 run: power")
+
+
+def test_plan_command_prints_counts_in_words(tmp_path, capsys, monkeypatch):
+    # `grouplevel plan` prints the cheapest design as "4 animals x 1 run", never "1 runs"
+    # (the planning itself is checked in test_planning_output.py; stubbed here)
+    from types import SimpleNamespace
+
+    import grouplevel.planning.plan as plan_module
+    import grouplevel.report as report_package
+    from grouplevel.cli import main
+
+    folder = tmp_path / "out"
+    folder.mkdir()
+    (folder / "summary.json").write_text(
+        json.dumps({"tool": {"name": "grouplevel"}, "results": {}})
+    )
+    plan = SimpleNamespace(
+        name="sound",
+        region="auditory cortex",
+        hemisphere="left",
+        cheapest={"animals": 4.0, "runs": 1.0, "power": 0.81, "cost": 44.0},
+        caution="optimistic",
+    )
+    monkeypatch.setattr(plan_module, "plan_from_output", lambda *a, **k: [plan])
+    monkeypatch.setattr(plan_module, "write_plan", lambda *a, **k: [])
+    monkeypatch.setattr(report_package, "render_report", lambda *a, **k: folder / "report.html")
+    assert main(["plan", str(folder)]) == 0
+    out = capsys.readouterr().out
+    assert "4 animals x 1 run (power 0.81, cost 44)" in out, out
+
+
+def test_report_tables_give_each_number_column_one_number_of_decimals(rendered, output):
+    _path, text = rendered
+    page = _parse(text)
+    regions = next(t for t in page.tables if t["source"] == "sound/regions.tsv")
+    tsv = read_tsv(output / "sound/regions.tsv")
+    col = regions["headers"].index("effect (map units)")
+    shown = [row[col] for row in regions["rows"]]
+    decimals = {len(v.split(".")[1]) for v in shown}
+    assert len(decimals) == 1  # one number of decimals in the column
+    (d,) = decimals
+    largest = tsv["effect"].astype(float).abs().max()
+    # enough for 3 significant digits of the largest value (at least 2 decimals)
+    assert d >= 2 and float(f"{largest:.{d}f}") == pytest.approx(largest, rel=5e-3)
+    np.testing.assert_allclose(
+        [float(v) for v in shown], tsv["effect"].astype(float), atol=0.5 * 10**-d + 1e-12
+    )

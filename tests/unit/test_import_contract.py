@@ -78,7 +78,7 @@ ALLOWED_EXTERNAL = ("nibabel.orientations", "nibabel.affines")
 FORBIDDEN_CALLS = ("print", "open", "input")
 # a study-file section in a message, e.g. "[inference] permutations ..."
 SECTION = re.compile(
-    r"\[(study|space|model|inference|clusters|atlas|questions|compute|report)[\].]"
+    r"\[(study|space|model|inference|clusters|atlas|questions|compute|report|tables)[\].]"
 )
 
 
