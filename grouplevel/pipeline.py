@@ -61,7 +61,7 @@ from grouplevel.model import (
     satterthwaite_df,
     test_contrast,
 )
-from grouplevel.model.contrasts import slope_df
+from grouplevel.model.contrasts import session_df, slope_df
 from grouplevel.outputs.folder import (
     TOOL_NAME,
     check_output_folder,
@@ -322,6 +322,31 @@ def _reduced_data(
     return data, c_reduced, informative
 
 
+def _unsloped_df(
+    design: Design, random: RandomEffects, present: np.ndarray, c: np.ndarray
+) -> np.ndarray:
+    """Containment df of a contrast whose within-animal columns have no random slope.
+
+    With a session level fitted, columns constant within sessions (drug one day,
+    vehicle another) are judged against the sessions within animals
+    (:func:`~grouplevel.model.contrasts.session_df`), together with the animal-level
+    part of the contrast when it has one; otherwise the run-level rule of
+    :func:`~grouplevel.model.contrasts.between_animal_df` applies.
+    """
+    weighted = np.flatnonzero(np.asarray(c) != 0)
+    free = [
+        j for j in weighted if design.within[j] and (not random.terms or random.terms[j] is None)
+    ]
+    if not (random.sessions and free and all(design.level[j] == "session" for j in free)):
+        return between_animal_df(design.matrix, design.animal, present, c)
+    on_sessions = np.where(np.isin(np.arange(c.size), free), c, 0.0)
+    df = session_df(design.matrix, design.animal, design.session, present, on_sessions)
+    animal_part = np.where(design.within, 0.0, c)
+    if animal_part.any():
+        df = np.minimum(df, between_animal_df(design.matrix, design.animal, present, animal_part))
+    return df
+
+
 def _contrast_df(
     study: Study, fl: FirstLevel, fit, present: np.ndarray, c: np.ndarray
 ) -> np.ndarray:
@@ -349,7 +374,7 @@ def _contrast_df(
             axis=0,
         )
     else:
-        df = between_animal_df(design.matrix, design.animal, present, c)
+        df = _unsloped_df(design, random, present, c)
         if kind != CONTRAST_ANIMAL and random.slope_columns:
             # mixed levels: the smaller df of the animal-level part and of each slope
             for i in range(len(random.slope_columns)):

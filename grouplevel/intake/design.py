@@ -1025,12 +1025,21 @@ def unslope_warning(design: Design, random: RandomEffects, name: str, c: np.ndar
     if kind != CONTRAST_WITHIN:
         return None
     cols = [design.columns[j] for j in np.flatnonzero(np.asarray(c) != 0) if design.within[j]]
+    on_sessions = random.sessions and all(
+        design.level[j] == "session" for j in np.flatnonzero(np.asarray(c) != 0) if design.within[j]
+    )
+    against = (
+        "the scatter of sessions within animals with sessions − animals df"
+        if on_sessions
+        else "the run-to-run scatter with runs − animals df"
+    )
     return (
         f"contrast '{name}' tests the within-animal column(s) {', '.join(cols)} without a "
-        "random slope per animal ([model] random_slopes): its t is judged against the "
-        "run-to-run scatter with runs − animals df, which is anti-conservative (too many "
-        "false positives) whenever the effect differs between animals; use random_slopes "
-        '= "auto" unless you know that it does not'
+        f"random slope per animal ([model] random_slopes): its t is judged against {against}, "
+        "which is anti-conservative (too many false positives) whenever the effect differs "
+        "between animals"
+        + (" beyond what one session per animal and condition absorbs" if on_sessions else "")
+        + '; use random_slopes = "auto" unless you know that it does not'
     )
 
 
