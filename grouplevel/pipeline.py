@@ -507,7 +507,12 @@ def _fit_first_level(
     for cname, c in fl.contrasts:
         gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
         if regions is not None:
-            gm = replace(gm, tables=region_tables(gm, regions, fl.design, c, study.settings))
+            gm = replace(
+                gm,
+                tables=region_tables(
+                    gm, regions, fl.design, c, study.settings, sessions=fl.random.sessions
+                ),
+            )
         results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings

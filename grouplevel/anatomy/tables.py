@@ -144,9 +144,19 @@ def _significant_clusters(
 
 
 def region_tables(
-    gm: GroupMap, data: RegionData, design: Design, c: np.ndarray, settings: Settings
+    gm: GroupMap,
+    data: RegionData,
+    design: Design,
+    c: np.ndarray,
+    settings: Settings,
+    *,
+    sessions: bool = False,
 ) -> RegionTables:
-    """clusters.tsv, regions.tsv and animals.tsv of one group map, as DataFrames."""
+    """clusters.tsv, regions.tsv and animals.tsv of one group map, as DataFrames.
+
+    ``sessions``: the model fits sessions as their own variance level (the regions are
+    then fitted with it too, and regions.tsv gets ``var_session``).
+    """
     inf_settings = settings.inference
     method = settings.clusters.resolved_method(inf_settings)
     surviving = surviving_voxels(gm, inf_settings.alpha)
@@ -184,6 +194,7 @@ def region_tables(
         alpha=inf_settings.alpha,
         fdr_method=inf_settings.fdr,
         surviving=surviving,
+        session=design.session if sessions else None,
     )
     animals_df = animal_table(
         data.atlas,

@@ -33,9 +33,11 @@ from grouplevel.planning.power import (
     _REGION_COLUMNS,
     CAUTION_GIVEN,
     CAUTION_OBSERVED,
+    CAUTION_SESSIONS,
     CAUTION_VARIANCES,
     DEFAULT_COST_ANIMAL,
     DEFAULT_COST_RUN,
+    DEFAULT_COST_SESSION,
     DEFAULT_TARGET_POWER,
     FIRST_LEVEL_VARIANCE_COLUMN,
     POWER_COLORMAP,
@@ -43,6 +45,7 @@ from grouplevel.planning.power import (
     design_cost,
     design_power,
     power_grid,
+    session_grid,
 )
 from grouplevel.questions.sides import resolve_side, split_side
 
@@ -97,16 +100,27 @@ class PlanResult:
     def summary(self) -> dict[str, Any]:
         """Plain-JSON description (for ``summary.json``)."""
         best = None
+        sessions = "sessions" in self.grid.columns
         if self.cheapest is not None:
             best = {
                 "animals": int(self.cheapest["animals"]),
+                **({"sessions": int(self.cheapest["sessions"])} if sessions else {}),
                 "runs": int(self.cheapest["runs"]),
                 "power": float(self.cheapest["power"]),
                 "se": float(self.cheapest["se"]),
                 "cost": float(self.cheapest["cost"]),
             }
+            if sessions:
+                best["power_one_more_session"] = float(self.cheapest["power_one_more_session"])
+                best["power_same_runs_in_sessions"] = float(
+                    self.cheapest["power_same_runs_in_sessions"]
+                )
         grid = self.grid
         best_in_grid = grid.loc[grid["power"].idxmax()]
+        extra: dict[str, Any] = {}
+        if sessions:
+            extra["sessions_range"] = [int(grid["sessions"].min()), int(grid["sessions"].max())]
+            extra["runs_are"] = "runs per session"
         return {
             "result": self.name,
             "region": self.region,
@@ -118,9 +132,11 @@ class PlanResult:
             "cheapest": best,
             "highest_power_in_grid": {
                 "animals": int(best_in_grid["animals"]),
+                **({"sessions": int(best_in_grid["sessions"])} if sessions else {}),
                 "runs": int(best_in_grid["runs"]),
                 "power": float(best_in_grid["power"]),
             },
+            **extra,
             "caution": self.caution,
         }
 
@@ -142,6 +158,30 @@ class PlanResult:
         return plans_figure_png([self])
 
 
+def design_text(row: pd.Series) -> str:
+    """ "8 animals × 4 runs" or "8 animals × 2 sessions × 3 runs"."""
+    if "sessions" in row.index:
+        return (
+            f"{int(row['animals'])} animals x {int(row['sessions'])} sessions x "
+            f"{int(row['runs'])} runs"
+        )
+    return f"{int(row['animals'])} animals x {int(row['runs'])} runs"
+
+
+def _figure_slice(res: PlanResult) -> tuple[pd.DataFrame, str, str]:
+    """The part of a plan's grid a heat map shows, its row column and axis label.
+
+    A grid over animals × runs is shown whole. A grid over animals × sessions × runs per
+    session is shown over animals × sessions at the runs per session of the cheapest
+    design (else the largest number of runs in the grid).
+    """
+    g = res.grid
+    if "sessions" not in g.columns:
+        return g, "runs", "runs per animal"
+    runs = int(res.cheapest["runs"]) if res.cheapest is not None else int(g["runs"].max())
+    return g[g["runs"] == runs], "sessions", f"sessions per animal ({runs} runs each)"
+
+
 def plans_figure_png(results: Sequence[PlanResult]) -> bytes:
     """One heat-map panel per plan: power over animals × runs, target contour, cheapest.
 
@@ -160,11 +200,11 @@ def plans_figure_png(results: Sequence[PlanResult]) -> bytes:
     axes = fig.subplots(rows, cols, squeeze=False)
     image = None
     for ax, res in zip(axes.ravel(), results, strict=False):
-        g = res.grid
+        g, rows, ylabel = _figure_slice(res)
         a = np.sort(g["animals"].unique())
-        r = np.sort(g["runs"].unique())
+        r = np.sort(g[rows].unique())
         power = (
-            g.pivot(index="runs", columns="animals", values="power")
+            g.pivot(index=rows, columns="animals", values="power")
             .reindex(index=r, columns=a)
             .to_numpy(dtype=float)
         )
@@ -178,17 +218,14 @@ def plans_figure_png(results: Sequence[PlanResult]) -> bytes:
         if res.cheapest is not None:
             ax.plot(
                 [res.cheapest["animals"]],
-                [res.cheapest["runs"]],
+                [res.cheapest[rows]],
                 marker="o",
                 markersize=11,
                 markerfacecolor="none",
                 markeredgecolor="white",
                 markeredgewidth=2,
                 linestyle="none",
-                label=(
-                    f"cheapest: {int(res.cheapest['animals'])} animals × "
-                    f"{int(res.cheapest['runs'])} runs"
-                ),
+                label=f"cheapest: {design_text(res.cheapest)}",
             )
             ax.legend(
                 loc="upper right", fontsize=8, facecolor="0.2", labelcolor="white", framealpha=0.8
@@ -196,7 +233,7 @@ def plans_figure_png(results: Sequence[PlanResult]) -> bytes:
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
         ax.yaxis.set_major_locator(MaxNLocator(integer=True))
         ax.set_xlabel("animals")
-        ax.set_ylabel("runs per animal")
+        ax.set_ylabel(ylabel)
         ax.set_title(res.figure_title or f"{res.name}: {res.region} ({res.hemisphere})", fontsize=9)
     for ax in axes.ravel()[n:]:
         ax.set_visible(False)
@@ -400,8 +437,14 @@ def plan_from_output(
     cost_run: float = DEFAULT_COST_RUN,
     alpha: float | None = None,
     target_power: float = DEFAULT_TARGET_POWER,
+    cost_session: float = DEFAULT_COST_SESSION,
 ) -> list[PlanResult]:
     """Power over animals × runs for the target regions of a finished analysis.
+
+    When the analysis fitted sessions as their own variance level (regions.tsv has a
+    ``var_session`` column), the grid runs over animals × sessions per animal × runs per
+    session (:func:`~grouplevel.planning.power.session_grid`), with the session variance
+    ω² of each region.
 
     For each analysed map of ``out_dir/summary.json`` whose folder has ``regions.tsv``
     and whose group contrast is the group mean (intercept-only design), the regions are
@@ -425,6 +468,8 @@ def plan_from_output(
         Significance level; default the analysis's ``[inference] alpha``.
     target_power
         Power to reach.
+    cost_session
+        Cost of one imaging session beyond its runs (>= 0; used with sessions).
 
     Returns
     -------
@@ -452,6 +497,7 @@ def plan_from_output(
         alpha=alpha,
         target_power=target_power,
     )
+    options["cost_session"] = _check_number("cost per session", cost_session, 0.0)
     reader = _FirstLevelVariance(summary)
     plans: list[PlanResult] = []
     skipped: list[str] = []
@@ -598,6 +644,7 @@ def _plan_row(
     alpha: float,
     sided: str,
     target_power: float,
+    cost_session: float = DEFAULT_COST_SESSION,
 ) -> PlanResult:
     where = f"{path}: region {row['name']!r} ({row['hemisphere']})"
     var_animal = float(row["var_animal"])
@@ -609,11 +656,25 @@ def _plan_row(
     if var_animal + var_run + first_level <= 0:
         raise UserError(f"{where} has all variances 0; its power is undefined, choose another")
     used = observed if effect is None else effect
-    grid = power_grid(used, var_animal, var_run, first_level, alpha=alpha, sided=sided)
-    grid["cost"] = design_cost(grid["animals"], grid["runs"], cost_animal, cost_run)
-    cheapest = cheapest_design(grid, cost_animal, cost_run, target_power)
+    var_session = _session_variance(row, where)
     n_animals = entry.get("animals", row.get("animals"))
     n_runs = entry.get("runs", row.get("runs"))
+    if var_session is None:
+        grid = power_grid(used, var_animal, var_run, first_level, alpha=alpha, sided=sided)
+        grid["cost"] = design_cost(grid["animals"], grid["runs"], cost_animal, cost_run)
+    else:
+        grid = session_grid(
+            used, var_animal, var_session, var_run, first_level, alpha=alpha, sided=sided
+        )
+        grid["cost"] = design_cost(
+            grid["animals"],
+            grid["runs"],
+            cost_animal,
+            cost_run,
+            sessions=grid["sessions"],
+            cost_session=cost_session,
+        )
+    cheapest = cheapest_design(grid, cost_animal, cost_run, target_power, cost_session=cost_session)
     inputs: dict[str, Any] = {
         "effect": used,
         "effect_source": "observed" if effect is None else "given",
@@ -629,28 +690,18 @@ def _plan_row(
         "cost_animal": cost_animal,
         "cost_run": cost_run,
     }
+    if var_session is not None:
+        inputs |= {"var_session": var_session, "cost_session": cost_session}
     if n_animals is not None and n_runs is not None and int(n_animals) >= 2:
-        per_animal = float(n_runs) / float(n_animals)
-        now = design_power(
-            used,
-            var_animal,
-            var_run,
-            first_level,
-            float(n_animals),
-            per_animal,
-            alpha=alpha,
-            sided=sided,
+        inputs |= _this_study(
+            used, var_animal, var_session, var_run, first_level, entry, alpha=alpha, sided=sided
         )
-        inputs |= {
-            "animals": int(n_animals),
-            "runs": int(n_runs),
-            "runs_per_animal": per_animal,
-            "power_of_this_study": float(now["power"]),
-        }
     caution = (CAUTION_OBSERVED if effect is None else CAUTION_GIVEN) + CAUTION_VARIANCES.format(
         animals=n_animals if n_animals is not None else "the",
         runs=n_runs if n_runs is not None else "the",
     )
+    if var_session is not None:
+        caution += CAUTION_SESSIONS.format(sessions=entry.get("sessions", "the"))
     return PlanResult(
         name=name,
         region=str(row["name"]),
@@ -662,6 +713,55 @@ def _plan_row(
         caution=caution,
         figure_title=f"{name}: {row['name']} ({row['hemisphere']}), effect {used:.3g}",
     )
+
+
+def _session_variance(row: pd.Series, where: str) -> float | None:
+    """ω² of a region row, or None when the analysis fitted no session level."""
+    if "var_session" not in row.index or pd.isna(row["var_session"]):
+        return None
+    value = float(row["var_session"])
+    if not math.isfinite(value) or value < 0:
+        raise UserError(f"{where} has a session variance of {value}; choose another region")
+    return value
+
+
+def _this_study(
+    effect: float,
+    var_animal: float,
+    var_session: float | None,
+    var_run: float,
+    first_level: float,
+    entry: dict[str, Any],
+    *,
+    alpha: float,
+    sided: str,
+) -> dict[str, Any]:
+    """The analysed study's own design and its power under the plan's variances (mean
+    numbers of sessions per animal and runs per session when unbalanced)."""
+    n_animals, n_runs = int(entry["animals"]), int(entry["runs"])
+    out: dict[str, Any] = {"animals": n_animals, "runs": n_runs}
+    sessions = 1.0
+    per = float(n_runs) / n_animals
+    out["runs_per_animal"] = per
+    if var_session is not None and entry.get("sessions"):
+        sessions = float(entry["sessions"]) / n_animals
+        per = float(n_runs) / float(entry["sessions"])
+        out |= {"sessions_per_animal": sessions, "runs_per_session": per}
+    now = design_power(
+        effect,
+        var_animal,
+        var_run,
+        first_level,
+        float(n_animals),
+        per,
+        alpha=alpha,
+        sided=sided,
+        sessions=sessions,
+        var_session=var_session or 0.0,
+    )
+    out["power_of_this_study"] = float(now["power"])
+    out["se_of_this_study"] = float(now["se"])
+    return out
 
 
 # --------------------------------------------------------------------------------------
@@ -709,4 +809,4 @@ def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]
     return written
 
 
-__all__ = ["PlanResult", "plan_from_output", "plans_figure_png", "write_plan"]
+__all__ = ["PlanResult", "design_text", "plan_from_output", "plans_figure_png", "write_plan"]

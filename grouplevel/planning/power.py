@@ -161,6 +161,11 @@ CAUTION_VARIANCES = (
     "as 0 in particular makes more runs look more useful than they are."
 )
 
+CAUTION_SESSIONS = (
+    " The session variance ω² (day-to-day variation within an animal) comes from "
+    "{sessions} sessions in all; a plan that adds sessions relies on it, and an ω² "
+    "estimated as 0 makes extra sessions look no better than extra runs."
+)
 
 # --------------------------------------------------------------------------------------
 # Pure core

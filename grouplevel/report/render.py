@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import base64
 import datetime as _dt
+import re
 import time
 from importlib import resources
 from pathlib import Path
@@ -473,10 +474,41 @@ def _variance_figures(folder: Path, name: str, result: dict, mask_img) -> list[d
                 f"{int(m.sum()):,} analysed voxels; medians τ² = "
                 f"{result.get('var_animal_median', float('nan')):.3g}, σ² = "
                 f"{result.get('var_run_median', float('nan')):.3g}. Many animals are worth "
-                "more than many runs where τ² dominates.",
+                "more than many runs where τ² dominates."
+                + _more_levels_text(result.get("variance_components") or {}),
             )
         )
     return figs
+
+
+def _more_levels_text(components: dict) -> str:
+    """Plain words on the variance levels fitted beyond τ² and σ² (session level, random
+    slopes, per-group animal variances), with their medians over voxels; "" when none."""
+    parts = []
+    for name, info in components.items():
+        median = (info or {}).get("median")
+        value = "n/a" if median is None else f"{median:.3g}"
+        slope = re.fullmatch(r"slope\[(.+?)\](?:\[(.+)\])?", name)
+        group = re.fullmatch(r"animal\[(.+)\]", name)
+        if name == "session":
+            parts.append(
+                f"ω² (between sessions of one animal: how much the response changes from "
+                f"one imaging day to the next beyond run-to-run noise) median {value}; "
+                "where it is large, more sessions per animal help more than more runs in "
+                "the same session"
+            )
+        elif slope:
+            where = f" in group {slope.group(2)}" if slope.group(2) else ""
+            parts.append(
+                f"variance of the {slope.group(1)} slope{where} (how much the animals' own "
+                f"{slope.group(1)} effects differ from one animal to the next; a "
+                f"within-animal effect is judged against it) median {value}"
+            )
+        elif group:
+            parts.append(f"τ² of group {group.group(1)} median {value}")
+    if not parts:
+        return ""
+    return " Also fitted: " + "; ".join(parts) + "."
 
 
 def _run_quality_figures(name: str, frames) -> list[dict]:
@@ -794,6 +826,22 @@ def _frames(out_dir: Path, name: str) -> dict:
     return out
 
 
+def _best_text(best: dict) -> str:
+    """The cheapest design of a plan in words; with sessions, what one more session buys
+    against adding the same runs to the existing sessions."""
+    if "sessions" not in best:
+        return (
+            f"{best['animals']} animals × {best['runs']} runs: power {best['power']:.2f}, "
+            f"cost {best['cost']:g}"
+        )
+    return (
+        f"{best['animals']} animals × {best['sessions']} sessions × {best['runs']} runs: "
+        f"power {best['power']:.2f}, cost {best['cost']:g}; one more session: "
+        f"{best['power_one_more_session']:.2f}, the same runs in the existing sessions: "
+        f"{best['power_same_runs_in_sessions']:.2f}"
+    )
+
+
 def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:
     """The planning section of one result (after `grouplevel plan`), or None."""
     plan = ((summary.get("plan") or {}).get(name) or {}).get("regions")
@@ -806,15 +854,18 @@ def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:
         effect = inputs.get("effect", float("nan"))
         runs = inputs.get("runs_per_animal", 0.0)
         power = inputs.get("power_of_this_study", float("nan"))
+        now = f"{inputs.get('animals')} animals, {runs:.1f} runs each: power {power:.2f}"
+        if "sessions_per_animal" in inputs:
+            now = (
+                f"{inputs.get('animals')} animals, {inputs['sessions_per_animal']:.1f} "
+                f"sessions of {inputs['runs_per_session']:.1f} runs: power {power:.2f}"
+            )
         rows.append(
             {
                 "region": f"{p.get('region')} ({p.get('hemisphere')})",
                 "effect": f"{effect:.3g} ({inputs.get('effect_source', '')})",
-                "now": f"{inputs.get('animals')} animals, {runs:.1f} runs each: power {power:.2f}",
-                "best": "none in the grid reaches the target"
-                if not best
-                else f"{best['animals']} animals × {best['runs']} runs: power "
-                f"{best['power']:.2f}, cost {best['cost']:g}",
+                "now": now,
+                "best": "none in the grid reaches the target" if not best else _best_text(best),
             }
         )
     figure = None
