@@ -1178,8 +1178,10 @@ def model_problems(
         if auto:
             warnings.append(
                 '[model] sessions = "none": animals have repeated sessions, whose day-to-day '
-                "variance is pooled into the run variance; a session-level effect is then "
-                "tested with too many degrees of freedom"
+                "variance is pooled into the run variance; a session-level effect (one "
+                "value per session, e.g. drug on one day and vehicle on another) is then "
+                "tested with too many degrees of freedom (too many false positives). Set "
+                'sessions = "auto" to fit sessions as their own level'
             )
     for name, c in contrasts:
         note = unslope_warning(design, random, name, c)
