@@ -30,6 +30,7 @@ import pandas as pd
 from scipy import stats
 
 from grouplevel import __version__
+from grouplevel.anatomy.regions import RegionModel
 from grouplevel.anatomy.tables import RegionData, region_data, region_tables
 from grouplevel.errors import UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
@@ -510,7 +511,7 @@ def _fit_first_level(
             gm = replace(
                 gm,
                 tables=region_tables(
-                    gm, regions, fl.design, c, study.settings, sessions=fl.random.sessions
+                    gm, regions, fl.design, c, study.settings, model=_region_model(study, fl, c)
                 ),
             )
         results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
@@ -623,6 +624,40 @@ def _variance_group_note(fitted: _FittedLevel) -> str | None:
     return _group_variance_warning(
         fitted.label, fitted.fl, lambda: fitted.reduced_for(on_animal)[::2]
     )
+
+
+def _region_model(study: Study, fl: FirstLevel, c: np.ndarray) -> RegionModel | None:
+    """The voxel model's random effects and df rule for the region averages, or None
+    for the run-within-animal model (regions.tsv then uses its own default)."""
+    design, random, settings = fl.design, fl.random, study.settings
+    if not random.extended:
+        return None
+
+    def fit(values: np.ndarray, variances: np.ndarray | None):
+        return fit_design(
+            Backend(kind="local"),
+            values,
+            variances,
+            design,
+            random,
+            estimate_run_variance=settings.model.run_variance == "estimate",
+            max_iter=settings.model.max_iter,
+            memory_gb=settings.compute.memory_gb,
+        )
+
+    def df(fitted, present: np.ndarray) -> np.ndarray:
+        return _contrast_df(study, fl, fitted, present, c)
+
+    names = ["session"] if random.sessions else []
+    names += [f"slope[{design.columns[j]}]" for j in random.slope_columns]
+    if random.animal_group is not None:
+        names = [f"animal[{g}]" for g in random.group_names] + [
+            f"{n}[{g}]" if n.startswith("slope[") else n
+            for n in names
+            for g in (random.group_names if n.startswith("slope[") else [None])
+        ]
+    files = component_files(dict.fromkeys(names))
+    return RegionModel(fit=fit, df=df, columns={n: files[n][0] for n in names})
 
 
 def _region_data(study: Study, fitted: _FittedLevel) -> RegionData | None:

@@ -35,7 +35,8 @@ powerful approach to multiple testing. J R Stat Soc B 57:289-300.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -46,9 +47,8 @@ from scipy import ndimage, stats
 from grouplevel.anatomy.coordinates import STEREOTAXIC_COLUMNS, to_stereotaxic, voxel_to_mm
 from grouplevel.inference import fdr
 from grouplevel.inference.clusters import Clusters
-from grouplevel.model import between_animal_df, fit_mixed, fit_reml, test_contrast
+from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.model.animals import animal_means
-from grouplevel.model.contrasts import animal_level_columns, session_df
 
 if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
     from grouplevel.anatomy.atlas import Atlas
@@ -640,6 +640,29 @@ def _check_region_arrays(atlas: Atlas, values: np.ndarray, variances: np.ndarray
     return values, variances
 
 
+@dataclass(frozen=True)
+class RegionModel:
+    """How region averages are fitted and tested when the voxel model goes beyond one
+    random intercept per animal (so that regions.tsv follows the same model).
+
+    Attributes
+    ----------
+    fit
+        ``(values, variances) -> fit``: the voxel model's fit applied to the
+        ``(n_runs, n_regions)`` region averages (a fit with ``beta``, ``cov_beta``,
+        ``var_animal``, ``var_run``, ``n_runs``, ``n_animals`` and ``components``).
+    df
+        ``(fit, present) -> (n_regions,)`` degrees of freedom of the tested contrast.
+    columns
+        Variance component name → regions.tsv column (e.g. ``"session"`` →
+        ``"var_session"``), in the order the columns are written.
+    """
+
+    fit: Callable
+    df: Callable
+    columns: Mapping[str, str]
+
+
 def region_table(
     atlas: Atlas,
     values: np.ndarray,
@@ -652,7 +675,7 @@ def region_table(
     alpha: float,
     fdr_method: str,
     surviving: Mapping[str, np.ndarray],
-    session: np.ndarray | None = None,
+    model: RegionModel | None = None,
 ) -> pd.DataFrame:
     """The group effect in every atlas region, from the same REML model as the voxels.
 
@@ -684,13 +707,12 @@ def region_table(
         Method name → ``(V,)`` bool in-mask vector of voxels that survive it; each gives
         a column ``surviving_<name>``: the share-weighted fraction of the region's
         in-mask volume that survives.
-    session
-        ``(n_runs,)`` session codes when the voxel model fits sessions as their own
-        variance level: the regions are then fitted with
-        :func:`grouplevel.model.fit_mixed` with that level, a ``var_session`` column is
-        added after ``var_animal``, and a contrast on columns constant within sessions
-        gets the sessions-within-animals df
-        (:func:`grouplevel.model.contrasts.session_df`).
+    model
+        How the regions are fitted and tested when the voxel model has more than a
+        random intercept per animal (sessions, random slopes, variance groups): the same
+        random effects and df rule as the voxels (:class:`RegionModel`). Its variance
+        components get columns between ``var_animal`` and ``var_run``. None: the
+        run-within-animal model and the between-animal df.
 
     Returns
     -------
@@ -719,7 +741,7 @@ def region_table(
         estimate_run_variance=estimate_run_variance,
         alpha=alpha,
         fdr_method=fdr_method,
-        session=session,
+        model=model,
     )
     regions = atlas.regions
     table = pd.DataFrame(
@@ -766,7 +788,7 @@ def _region_statistics(
     estimate_run_variance: bool,
     alpha: float,
     fdr_method: str,
-    session: np.ndarray | None = None,
+    model: RegionModel | None = None,
 ) -> dict[str, np.ndarray]:
     """The REML fit and contrast test of every region, FDR across regions.
 
@@ -777,18 +799,15 @@ def _region_statistics(
         order of :func:`region_table`.
     """
     present = np.isfinite(values)
-    if session is None:
+    extra: dict[str, np.ndarray] = {}
+    if model is None:
         fit = fit_reml(values, variances, X, animal, estimate_run_variance=estimate_run_variance)
+        df = between_animal_df(X, animal, present, c)
     else:
-        fit = fit_mixed(
-            values,
-            variances,
-            X,
-            animal,
-            session=session,
-            estimate_run_variance=estimate_run_variance,
-        )
-    df = _region_df(X, animal, session, present, c)
+        fit = model.fit(values, variances)
+        df = model.df(fit, present)
+        components = getattr(fit, "components", {}) or {}
+        extra = {col: components[name] for name, col in model.columns.items() if name in components}
     result = test_contrast(fit, c, df)
     q = fdr(result.p, alpha=alpha, method=fdr_method).q
     with np.errstate(invalid="ignore"):
@@ -804,31 +823,11 @@ def _region_statistics(
         "q": q,
         "fdr_significant": np.nan_to_num(q, nan=np.inf) <= alpha,
         "var_animal": fit.var_animal,
-        **({} if session is None else {"var_session": fit.components["session"]}),
+        **extra,
         "var_run": fit.var_run,
         "runs": fit.n_runs,
         "animals": fit.n_animals,
     }
-
-
-def _region_df(
-    X: np.ndarray, animal: np.ndarray, session: np.ndarray | None, present: np.ndarray, c
-) -> np.ndarray:
-    """The containment df of a region contrast: sessions-within-animals for a contrast
-    on columns constant within sessions when sessions are fitted, else the
-    between-animal rule."""
-    c = np.asarray(c, dtype=float)
-    weighted = c != 0
-    if session is not None:
-        level_s = animal_level_columns(X, session)
-        level_a = animal_level_columns(X, animal)
-        if level_s[weighted].all() and not level_a[weighted].all():
-            df = session_df(X, animal, session, present, np.where(level_a, 0.0, c))
-            animal_part = np.where(level_a, c, 0.0)
-            if animal_part.any():
-                df = np.minimum(df, between_animal_df(X, animal, present, animal_part))
-            return df
-    return between_animal_df(X, animal, present, c)
 
 
 def animal_table(

@@ -22,6 +22,7 @@ import pandas as pd
 
 from grouplevel.anatomy.atlas import Atlas
 from grouplevel.anatomy.regions import (
+    RegionModel,
     animal_table,
     cluster_table,
     region_table,
@@ -150,12 +151,12 @@ def region_tables(
     c: np.ndarray,
     settings: Settings,
     *,
-    sessions: bool = False,
+    model: RegionModel | None = None,
 ) -> RegionTables:
     """clusters.tsv, regions.tsv and animals.tsv of one group map, as DataFrames.
 
-    ``sessions``: the model fits sessions as their own variance level (the regions are
-    then fitted with it too, and regions.tsv gets ``var_session``).
+    ``model``: how the regions are fitted and tested when the voxel model goes beyond
+    one random intercept per animal (:class:`~grouplevel.anatomy.regions.RegionModel`).
     """
     inf_settings = settings.inference
     method = settings.clusters.resolved_method(inf_settings)
@@ -194,7 +195,7 @@ def region_tables(
         alpha=inf_settings.alpha,
         fdr_method=inf_settings.fdr,
         surviving=surviving,
-        session=design.session if sessions else None,
+        model=model,
     )
     animals_df = animal_table(
         data.atlas,

@@ -38,6 +38,7 @@ from grouplevel.planning.power import (
     DEFAULT_COST_ANIMAL,
     DEFAULT_COST_RUN,
     DEFAULT_COST_SESSION,
+    DEFAULT_SESSIONS,
     DEFAULT_TARGET_POWER,
     FIRST_LEVEL_VARIANCE_COLUMN,
     POWER_COLORMAP,
@@ -309,6 +310,28 @@ def _is_group_mean(entry: dict[str, Any]) -> bool:
     return list(columns) == ["Intercept"] and (weights in (None, {"Intercept": 1.0}))
 
 
+def _slope_effect(entry: dict[str, Any]) -> tuple[str, str, str] | None:
+    """The tested within-animal effect of a result whose contrast is the mean of one
+    random slope, or None.
+
+    Returns
+    -------
+    column, variance_column, varies
+        The design column (a 0/1 indicator of a text variable, e.g. ``drug[T.on]``, so
+        that its coefficient is the difference between two conditions), the regions.tsv
+        column of its slope variance and where it varies (``"session"`` or ``"run"``).
+    """
+    weights = entry.get("weights") or {}
+    if entry.get("tested_level") != "slope" or len(weights) != 1:
+        return None
+    ((column, weight),) = weights.items()
+    level = (entry.get("design_levels") or {}).get(column)
+    component = (entry.get("variance_components") or {}).get(f"slope[{column}]")
+    if weight != 1.0 or level not in ("session", "run") or "[T." not in column or not component:
+        return None
+    return column, str(component["map"]).removesuffix(".nii.gz"), level
+
+
 class _FirstLevelVariance:
     """s̄² per region row when σ² was fixed at 0: read once per first-level contrast."""
 
@@ -576,12 +599,15 @@ def _rows_to_plan(
     none = np.zeros(0, dtype=np.int64)
     if not path.is_file():
         return path, None, none, "no regions.tsv (the analysis had no atlas)"
-    if not _is_group_mean(entry):
+    if not _is_group_mean(entry) and _slope_effect(entry) is None:
         return (
             path,
             None,
             none,
-            ("not the mean of an intercept-only design (the plan covers one-sample designs only)"),
+            (
+                "neither the mean of an intercept-only design nor the mean of one "
+                "within-animal indicator with its random slope (the plan covers those only)"
+            ),
         )
     table = _read_regions(path)
     first_level = entry.get("first_level_contrast")
@@ -647,7 +673,15 @@ def _plan_row(
     cost_session: float = DEFAULT_COST_SESSION,
 ) -> PlanResult:
     where = f"{path}: region {row['name']!r} ({row['hemisphere']})"
+    slope = _slope_effect(entry)
     var_animal = float(row["var_animal"])
+    if slope is not None:
+        if slope[1] not in row.index:
+            raise UserError(
+                f"{path}: lacks the column {slope[1]} (the {slope[0]} slope variance of "
+                "each region); rerun the analysis to rewrite it"
+            )
+        var_animal = float(row[slope[1]])
     var_run = float(row["var_run"])
     observed = float(row["effect"])
     if not all(math.isfinite(v) for v in (var_animal, var_run, observed)):
@@ -659,12 +693,21 @@ def _plan_row(
     var_session = _session_variance(row, where)
     n_animals = entry.get("animals", row.get("animals"))
     n_runs = entry.get("runs", row.get("runs"))
-    if var_session is None:
+    layout = _layout(entry, slope, var_session)
+    if layout["sessions"] is None:
         grid = power_grid(used, var_animal, var_run, first_level, alpha=alpha, sided=sided)
         grid["cost"] = design_cost(grid["animals"], grid["runs"], cost_animal, cost_run)
     else:
         grid = session_grid(
-            used, var_animal, var_session, var_run, first_level, alpha=alpha, sided=sided
+            used,
+            var_animal,
+            var_session or 0.0,
+            var_run,
+            first_level,
+            sessions=layout["sessions"],
+            varies=layout["varies"],
+            alpha=alpha,
+            sided=sided,
         )
         grid["cost"] = design_cost(
             grid["animals"],
@@ -692,9 +735,26 @@ def _plan_row(
     }
     if var_session is not None:
         inputs |= {"var_session": var_session, "cost_session": cost_session}
+    if slope is not None:
+        inputs |= {
+            "tested_effect": f"{slope[0]} (within animals, varies between {slope[2]}s)",
+            "var_animal_is": f"the variance of the animals' own {slope[0]} effects ({slope[1]})",
+            "varies": layout["varies"],
+        }
+    if layout["note"]:
+        inputs["layout_note"] = layout["note"]
     if n_animals is not None and n_runs is not None and int(n_animals) >= 2:
         inputs |= _this_study(
-            used, var_animal, var_session, var_run, first_level, entry, alpha=alpha, sided=sided
+            used,
+            var_animal,
+            var_session,
+            var_run,
+            first_level,
+            entry,
+            alpha=alpha,
+            sided=sided,
+            varies=layout["varies"],
+            sessions_grid=layout["sessions"] is not None,
         )
     caution = (CAUTION_OBSERVED if effect is None else CAUTION_GIVEN) + CAUTION_VARIANCES.format(
         animals=n_animals if n_animals is not None else "the",
@@ -725,6 +785,42 @@ def _session_variance(row: pd.Series, where: str) -> float | None:
     return value
 
 
+#: Sessions per animal in the grid of an effect that varies between sessions (half of
+#: them each way: an even number; our own choice of range, as DEFAULT_SESSIONS).
+EVEN_SESSIONS = (2, 4, 6)
+
+
+def _layout(
+    entry: dict[str, Any], slope: tuple[str, str, str] | None, var_session: float | None
+) -> dict[str, Any]:
+    """The grid's sessions (None: animals × runs only), what the effect varies between
+    in the power formula, and a note when the layout is held at the study's own.
+
+    Without a fitted session level a within-animal effect that varies between sessions
+    has the day-to-day variance inside its slope variance (each animal's own effect is
+    a difference of days); the number of sessions is then held at the study's own and
+    the formula of an effect within sessions applied, which is exact at that number.
+    """
+    if slope is None:
+        sessions = None if var_session is None else DEFAULT_SESSIONS
+        return {"sessions": sessions, "varies": "animal", "note": ""}
+    varies = slope[2]
+    if var_session is not None:
+        return {
+            "sessions": EVEN_SESSIONS if varies == "session" else DEFAULT_SESSIONS,
+            "varies": varies,
+            "note": "",
+        }
+    per_animal = max(1, round(float(entry.get("sessions") or 1) / float(entry["animals"])))
+    note = ""
+    if varies == "session":
+        note = (
+            f"no session level was fitted, so the day-to-day variance is part of the slope "
+            f"variance: sessions are held at the study's {per_animal} per animal"
+        )
+    return {"sessions": (per_animal,), "varies": "run", "note": note}
+
+
 def _this_study(
     effect: float,
     var_animal: float,
@@ -735,6 +831,8 @@ def _this_study(
     *,
     alpha: float,
     sided: str,
+    varies: str = "animal",
+    sessions_grid: bool = False,
 ) -> dict[str, Any]:
     """The analysed study's own design and its power under the plan's variances (mean
     numbers of sessions per animal and runs per session when unbalanced)."""
@@ -743,7 +841,7 @@ def _this_study(
     sessions = 1.0
     per = float(n_runs) / n_animals
     out["runs_per_animal"] = per
-    if var_session is not None and entry.get("sessions"):
+    if sessions_grid and entry.get("sessions"):
         sessions = float(entry["sessions"]) / n_animals
         per = float(n_runs) / float(entry["sessions"])
         out |= {"sessions_per_animal": sessions, "runs_per_session": per}
@@ -758,6 +856,7 @@ def _this_study(
         sided=sided,
         sessions=sessions,
         var_session=var_session or 0.0,
+        varies=varies,
     )
     out["power_of_this_study"] = float(now["power"])
     out["se_of_this_study"] = float(now["se"])

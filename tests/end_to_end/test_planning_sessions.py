@@ -155,3 +155,73 @@ def test_report_words_for_the_session_level():
     assert "drug[T.on] slope in group wt" in text and "median n/a" in text
     assert "cov" not in text
     assert _more_levels_text({"animal": {"median": 1.0}, "run": {"median": 0.5}}) == ""
+
+
+@pytest.fixture(scope="module")
+def slope_output(tmp_path_factory) -> tuple[Path, pd.DataFrame]:
+    """6 animals × 2 days (drug off, drug on) × 3 runs whose drug effect differs between
+    animals; analysed once with the default random slope, without permutations."""
+    folder = tmp_path_factory.mktemp("slope")
+    rng = np.random.default_rng(32)
+    rows, averages = [], []
+    for a in range(ANIMALS):
+        u0, u1 = rng.normal(0, 1.0, SHAPE), rng.normal(0, 0.7, SHAPE)
+        for day, drug in ((1, "off"), (2, "on")):
+            for r in range(3):
+                data = u0 + (0.5 + u1) * (drug == "on") + rng.normal(0, 0.5, SHAPE)
+                path = save(folder / "maps" / f"a{a}_d{day}_r{r}.nii.gz", data, AFFINE)
+                rows.append(
+                    {
+                        "animal": f"a{a}",
+                        "session": f"d{day}",
+                        "run": r + 1,
+                        "drug": drug,
+                        "effect": str(path.relative_to(folder)),
+                    }
+                )
+                averages.append({"animal": a, "on": float(drug == "on"), "y": data[TARGET].mean()})
+    pd.DataFrame(rows).to_csv(folder / "runs.tsv", sep="\t", index=False)
+    labels = np.full(SHAPE, 2.0)
+    labels[TARGET] = 1.0
+    save(folder / "atlas.nii.gz", labels, AFFINE)
+    (folder / "atlas.tsv").write_text(
+        "index\tname\tabbreviation\themisphere\n1\ttarget\tTG\tboth\n2\trest\tRE\tboth\n"
+    )
+    (folder / "study.toml").write_text(
+        '[study]\ntable = "runs.tsv"\n\n[inference]\npermutations = 0\n\n'
+        '[atlas]\nimage = "atlas.nii.gz"\nlabels = "atlas.tsv"\nmidline_mm = 0.0\n\n'
+        '[model]\nformula = "1 + drug"\n\n'
+        '[[contrast]]\nname = "drug_effect"\nweights = { "drug[T.on]" = 1 }\n'
+    )
+    out = run_study(folder / "study.toml", folder / "out")
+    return out, pd.DataFrame(averages)
+
+
+def test_region_table_and_plan_of_a_within_animal_effect(slope_output):
+    out, averages = slope_output
+    regions = pd.read_csv(out / "drug_effect" / "regions.tsv", sep="\t")
+    row = regions[regions["name"] == "target"].iloc[0]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = smf.mixedlm("y ~ on", averages, groups="animal", re_formula="1 + on").fit(
+            reml=True, method=["lbfgs"], gtol=1e-10
+        )
+    # statsmodels MixedLM (REML) with a random drug slope, on the region's run averages:
+    # the drug effect and the slope variance to 1e-3 relative (the same model as the
+    # voxels, so regions.tsv no longer tests the drug effect against run-to-run noise)
+    np.testing.assert_allclose(row["effect"], ref.fe_params["on"], rtol=1e-6)
+    np.testing.assert_allclose(row["var_slope_drug_T.on"], ref.cov_re.iloc[1, 1], rtol=1e-3)
+    np.testing.assert_allclose(row["var_run"], ref.scale, rtol=1e-3)
+    # the slope df (containment): animals − 1, the paired comparison of the animals
+    assert row["df"] == ANIMALS - 1
+    plans = plan_from_output(out, regions=["target"], effect=0.5)
+    (plan,) = [p for p in plans if p.name == "drug_effect"]
+    inputs = plan.inputs
+    assert inputs["var_animal"] == pytest.approx(row["var_slope_drug_T.on"], rel=1e-12)
+    assert "held at the study's 2 per animal" in inputs["layout_note"]
+    # balanced paired design (common practice): SE² of the mean difference =
+    # (τ²_slope + σ²/3 + σ²/3) / A with 3 runs per day — regions.tsv's model-based SE
+    textbook = (row["var_slope_drug_T.on"] + 2 * row["var_run"] / 3) / ANIMALS
+    assert inputs["se_of_this_study"] ** 2 == pytest.approx(textbook, rel=1e-9)
+    assert inputs["se_of_this_study"] == pytest.approx(row["se"], rel=1e-6)
+    assert set(plan.grid["sessions"]) == {2}
