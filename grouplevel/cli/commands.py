@@ -67,7 +67,8 @@ def _add_report_command(sub: argparse._SubParsersAction) -> None:
 def _add_plan_command(sub: argparse._SubParsersAction) -> None:
     """The ``plan`` command: power of future designs from an output folder."""
     pl = sub.add_parser(
-        "plan", help="power of future designs (animals x runs) from a finished output folder"
+        "plan",
+        help="power of future designs (animals x sessions x runs) from a finished output folder",
     )
     pl.add_argument("folder", type=Path, help="output folder of `grouplevel run`")
     pl.add_argument(
