@@ -23,7 +23,7 @@ import statsmodels.formula.api as smf
 
 from grouplevel.pipeline import run_study
 from grouplevel.planning import SESSION_GRID_COLUMNS, plan_from_output, write_plan
-from grouplevel.report import render_report
+from grouplevel.report.render import _plan as _plan_section
 from tests.conftest import save
 
 SHAPE = (6, 7, 5)
@@ -131,10 +131,11 @@ def test_plan_over_sessions(session_output, tmp_path):
     entry = json.loads((copy / "summary.json").read_text())["plan"]["mean"]["regions"][0]
     assert entry["runs_are"] == "runs per session"
     assert "session variance" in entry["caution"]
-    # the report shows the plan with sessions and the session level in plain words
-    html = Path(render_report(copy)).read_text()
-    assert "sessions × " in html and "one more session:" in html
-    assert "Also fitted: ω² (between sessions of one animal" in html
+    # the report's planning rows name sessions and what one more session buys
+    summary = json.loads((copy / "summary.json").read_text())
+    (report_row,) = _plan_section(copy, "mean", summary)["rows"]
+    assert " sessions × " in report_row["best"] and "one more session:" in report_row["best"]
+    assert "3.0 sessions of 2.0 runs" in report_row["now"]
 
 
 def test_report_words_for_the_session_level():

@@ -93,7 +93,7 @@ def test_three_way_interaction_fit_matches_statsmodels():
             [0.0, 0.1, 0.1, 0.5],
         ]
     )
-    n_vox = 3
+    n_vox = 2
     u = np.einsum("ij,mjv->miv", np.linalg.cholesky(T), rng.normal(size=(ANIMALS, 4, n_vox)))
     Zfull = np.column_stack([np.ones(len(runs)), Z])
     y = np.einsum("nq,nqv->nv", Zfull, u[animal]) + rng.normal(size=(len(runs), n_vox)) * 0.5
