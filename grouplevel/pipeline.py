@@ -334,7 +334,8 @@ def _unsloped_df(
     part of the contrast when it has one; otherwise the run-level rule of
     :func:`~grouplevel.model.contrasts.between_animal_df` applies.
     """
-    weighted = np.flatnonzero(np.asarray(c) != 0)
+    c = np.asarray(c, dtype=float)
+    weighted = np.flatnonzero(c != 0)
     free = [
         j for j in weighted if design.within[j] and (not random.terms or random.terms[j] is None)
     ]
