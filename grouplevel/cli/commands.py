@@ -236,9 +236,9 @@ def _plan(args: argparse.Namespace) -> int:
                 f"{where}: cheapest design with power >= {args.target_power}: "
                 f"{design_text(best)} (power {best['power']:.2f}, cost {best['cost']:g})"
             )
-            if "sessions" in best.index:
+            if "power_one_more_session" in best.index:
                 print(
-                    f"  one more session of {int(best['runs'])} runs: power "
+                    f"  one more session of {int(best['runs'])} run(s): power "
                     f"{best['power_one_more_session']:.2f}; the same runs added to the "
                     f"existing sessions: {best['power_same_runs_in_sessions']:.2f}"
                 )

@@ -111,11 +111,9 @@ class PlanResult:
                 "se": float(self.cheapest["se"]),
                 "cost": float(self.cheapest["cost"]),
             }
-            if sessions:
-                best["power_one_more_session"] = float(self.cheapest["power_one_more_session"])
-                best["power_same_runs_in_sessions"] = float(
-                    self.cheapest["power_same_runs_in_sessions"]
-                )
+            for column in GAIN_COLUMNS:
+                if column in self.cheapest.index:
+                    best[column] = float(self.cheapest[column])
         grid = self.grid
         best_in_grid = grid.loc[grid["power"].idxmax()]
         extra: dict[str, Any] = {}
@@ -717,6 +715,9 @@ def _plan_row(
             sessions=grid["sessions"],
             cost_session=cost_session,
         )
+    if layout["note"] or (layout["sessions"] is not None and len(layout["sessions"]) == 1):
+        # sessions held at the study's own: what another session buys is not planned
+        grid = grid.drop(columns=list(GAIN_COLUMNS))
     cheapest = cheapest_design(grid, cost_animal, cost_run, target_power, cost_session=cost_session)
     inputs: dict[str, Any] = {
         "effect": used,
@@ -762,6 +763,8 @@ def _plan_row(
     )
     if var_session is not None:
         caution += CAUTION_SESSIONS.format(sessions=entry.get("sessions", "the"))
+    if slope is not None:
+        caution += CAUTION_SLOPE.format(column=slope[0])
     return PlanResult(
         name=name,
         region=str(row["name"]),
@@ -784,6 +787,15 @@ def _session_variance(row: pd.Series, where: str) -> float | None:
         raise UserError(f"{where} has a session variance of {value}; choose another region")
     return value
 
+
+#: The two columns of a session grid that say what one more session buys.
+GAIN_COLUMNS = ("power_one_more_session", "power_same_runs_in_sessions")
+
+CAUTION_SLOPE = (
+    " Here τ² is the variance of the animals' own {column} effects (the random slope): "
+    "how much the effect itself differs from one animal to the next. The plan assumes "
+    "half of each animal's sessions (or runs) each way, as balanced as this study's."
+)
 
 #: Sessions per animal in the grid of an effect that varies between sessions (half of
 #: them each way: an even number; our own choice of range, as DEFAULT_SESSIONS).

@@ -834,12 +834,16 @@ def _best_text(best: dict) -> str:
             f"{best['animals']} animals × {best['runs']} runs: power {best['power']:.2f}, "
             f"cost {best['cost']:g}"
         )
-    return (
+    text = (
         f"{best['animals']} animals × {best['sessions']} sessions × {best['runs']} runs: "
-        f"power {best['power']:.2f}, cost {best['cost']:g}; one more session: "
-        f"{best['power_one_more_session']:.2f}, the same runs in the existing sessions: "
-        f"{best['power_same_runs_in_sessions']:.2f}"
+        f"power {best['power']:.2f}, cost {best['cost']:g}"
     )
+    if "power_one_more_session" in best:
+        text += (
+            f"; one more session: {best['power_one_more_session']:.2f}, the same runs in "
+            f"the existing sessions: {best['power_same_runs_in_sessions']:.2f}"
+        )
+    return text
 
 
 def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:

@@ -226,3 +226,6 @@ def test_region_table_and_plan_of_a_within_animal_effect(slope_output):
     assert inputs["se_of_this_study"] ** 2 == pytest.approx(textbook, rel=1e-9)
     assert inputs["se_of_this_study"] == pytest.approx(row["se"], rel=1e-6)
     assert set(plan.grid["sessions"]) == {2}
+    # sessions held: what another session buys is not claimed
+    assert "power_one_more_session" not in plan.grid.columns
+    assert "variance of the animals' own drug[T.on] effects" in plan.caution
