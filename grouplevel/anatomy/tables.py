@@ -22,6 +22,7 @@ import pandas as pd
 
 from grouplevel.anatomy.atlas import Atlas
 from grouplevel.anatomy.regions import (
+    RegionModel,
     animal_table,
     cluster_table,
     region_table,
@@ -144,9 +145,19 @@ def _significant_clusters(
 
 
 def region_tables(
-    gm: GroupMap, data: RegionData, design: Design, c: np.ndarray, settings: Settings
+    gm: GroupMap,
+    data: RegionData,
+    design: Design,
+    c: np.ndarray,
+    settings: Settings,
+    *,
+    model: RegionModel | None = None,
 ) -> RegionTables:
-    """clusters.tsv, regions.tsv and animals.tsv of one group map, as DataFrames."""
+    """clusters.tsv, regions.tsv and animals.tsv of one group map, as DataFrames.
+
+    ``model``: how the regions are fitted and tested when the voxel model goes beyond
+    one random intercept per animal (:class:`~grouplevel.anatomy.regions.RegionModel`).
+    """
     inf_settings = settings.inference
     method = settings.clusters.resolved_method(inf_settings)
     surviving = surviving_voxels(gm, inf_settings.alpha)
@@ -184,6 +195,7 @@ def region_tables(
         alpha=inf_settings.alpha,
         fdr_method=inf_settings.fdr,
         surviving=surviving,
+        model=model,
     )
     animals_df = animal_table(
         data.atlas,
