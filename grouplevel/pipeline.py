@@ -30,6 +30,7 @@ import pandas as pd
 from scipy import stats
 
 from grouplevel import __version__
+from grouplevel.anatomy.regions import RegionModel
 from grouplevel.anatomy.tables import RegionData, region_data, region_tables
 from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
@@ -63,7 +64,7 @@ from grouplevel.model import (
     satterthwaite_df,
     test_contrast,
 )
-from grouplevel.model.contrasts import slope_df
+from grouplevel.model.contrasts import session_df, slope_df
 from grouplevel.model.ftest import test_f
 from grouplevel.model.marginal import RandomTerms, marginal_run_variance
 from grouplevel.outputs.animal_maps import (
@@ -356,6 +357,32 @@ def _reduced_data(
     return data, c_reduced, informative
 
 
+def _unsloped_df(
+    design: Design, random: RandomEffects, present: np.ndarray, c: np.ndarray
+) -> np.ndarray:
+    """Containment df of a contrast whose within-animal columns have no random slope.
+
+    With a session level fitted, columns constant within sessions (drug one day,
+    vehicle another) are judged against the sessions within animals
+    (:func:`~grouplevel.model.contrasts.session_df`), together with the animal-level
+    part of the contrast when it has one; otherwise the run-level rule of
+    :func:`~grouplevel.model.contrasts.between_animal_df` applies.
+    """
+    c = np.asarray(c, dtype=float)
+    weighted = np.flatnonzero(c != 0)
+    free = [
+        j for j in weighted if design.within[j] and (not random.terms or random.terms[j] is None)
+    ]
+    if not (random.sessions and free and all(design.level[j] == "session" for j in free)):
+        return between_animal_df(design.matrix, design.animal, present, c)
+    on_sessions = np.where(np.isin(np.arange(c.size), free), c, 0.0)
+    df = session_df(design.matrix, design.animal, design.session, present, on_sessions)
+    animal_part = np.where(design.within, 0.0, c)
+    if animal_part.any():
+        df = np.minimum(df, between_animal_df(design.matrix, design.animal, present, animal_part))
+    return df
+
+
 def _contrast_df(
     study: Study, fl: FirstLevel, fit, present: np.ndarray, c: np.ndarray
 ) -> np.ndarray:
@@ -383,7 +410,7 @@ def _contrast_df(
             axis=0,
         )
     else:
-        df = between_animal_df(design.matrix, design.animal, present, c)
+        df = _unsloped_df(design, random, present, c)
         if kind != CONTRAST_ANIMAL and random.slope_columns:
             # mixed levels: the smaller df of the animal-level part and of each slope
             for i in range(len(random.slope_columns)):
@@ -524,15 +551,8 @@ def _fit_first_level(
             gm = replace(gm, animal_effects=_animal_effects(fitted, c))
         with clock.step("regions"):
             if regions is not None:
-                tables = region_tables(
-                    gm,
-                    regions,
-                    fl.design,
-                    c,
-                    study.settings,
-                    terms=random_terms(fl.design, fl.random),
-                    model_df=lambda fit, present, cc: _contrast_df(study, fl, fit, present, cc),
-                )
+                model = _region_model(study, fl, c)
+                tables = region_tables(gm, regions, fl.design, c, study.settings, model=model)
                 gm = replace(gm, tables=tables)
         with clock.step("questions"):
             results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
@@ -719,6 +739,40 @@ def _variance_group_note(fitted: _FittedLevel) -> str | None:
     return _group_variance_warning(
         fitted.label, fitted.fl, lambda: fitted.reduced_for(on_animal)[::2]
     )
+
+
+def _region_model(study: Study, fl: FirstLevel, c: np.ndarray) -> RegionModel | None:
+    """The voxel model's random effects and df rule for the region averages, or None
+    for the run-within-animal model (regions.tsv then uses its own default)."""
+    design, random, settings = fl.design, fl.random, study.settings
+    if not random.extended:
+        return None
+
+    def fit(values: np.ndarray, variances: np.ndarray | None):
+        return fit_design(
+            Backend(kind="local"),
+            values,
+            variances,
+            design,
+            random,
+            estimate_run_variance=settings.model.run_variance == "estimate",
+            max_iter=settings.model.max_iter,
+            memory_gb=settings.compute.memory_gb,
+        )
+
+    def df(fitted, present: np.ndarray) -> np.ndarray:
+        return _contrast_df(study, fl, fitted, present, c)
+
+    names = ["session"] if random.sessions else []
+    names += [f"slope[{design.columns[j]}]" for j in random.slope_columns]
+    if random.animal_group is not None:
+        names = [f"animal[{g}]" for g in random.group_names] + [
+            f"{n}[{g}]" if n.startswith("slope[") else n
+            for n in names
+            for g in (random.group_names if n.startswith("slope[") else [None])
+        ]
+    files = component_files(dict.fromkeys(names))
+    return RegionModel(fit=fit, df=df, columns={n: files[n][0] for n in names})
 
 
 def _region_data(study: Study, fitted: _FittedLevel) -> RegionData | None:

@@ -35,7 +35,8 @@ powerful approach to multiple testing. J R Stat Soc B 57:289-300.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -46,9 +47,8 @@ from scipy import ndimage, stats
 from grouplevel.anatomy.coordinates import STEREOTAXIC_COLUMNS, to_stereotaxic, voxel_to_mm
 from grouplevel.inference import fdr
 from grouplevel.inference.clusters import Clusters
-from grouplevel.model import between_animal_df, test_contrast
+from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.model.animals import animal_means
-from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
 
 if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
     from grouplevel.anatomy.atlas import Atlas
@@ -655,6 +655,29 @@ def _check_region_arrays(atlas: Atlas, values: np.ndarray, variances: np.ndarray
     return values, variances
 
 
+@dataclass(frozen=True)
+class RegionModel:
+    """How region averages are fitted and tested when the voxel model goes beyond one
+    random intercept per animal (so that regions.tsv follows the same model).
+
+    Attributes
+    ----------
+    fit
+        ``(values, variances) -> fit``: the voxel model's fit applied to the
+        ``(n_runs, n_regions)`` region averages (a fit with ``beta``, ``cov_beta``,
+        ``var_animal``, ``var_run``, ``n_runs``, ``n_animals`` and ``components``).
+    df
+        ``(fit, present) -> (n_regions,)`` degrees of freedom of the tested contrast.
+    columns
+        Variance component name → regions.tsv column (e.g. ``"session"`` →
+        ``"var_session"``), in the order the columns are written.
+    """
+
+    fit: Callable
+    df: Callable
+    columns: Mapping[str, str]
+
+
 def region_table(
     atlas: Atlas,
     values: np.ndarray,
@@ -667,17 +690,14 @@ def region_table(
     alpha: float,
     fdr_method: str,
     surviving: Mapping[str, np.ndarray],
-    terms: RandomTerms | None = None,
-    model_df: ModelDf | None = None,
+    model: RegionModel | None = None,
 ) -> pd.DataFrame:
     """The group effect in every atlas region, from the same REML model as the voxels.
 
     Each region's run values (:func:`region_values`) and their first-level variances
-    (:func:`region_variances`) are fitted with the voxels' model (random ``terms``:
-    :func:`grouplevel.model.marginal.fit_terms`; default a random intercept per animal),
-    one region per "voxel", and the contrast is tested with
-    :func:`grouplevel.model.test_contrast` on the voxels' degrees-of-freedom rule
-    ``model_df(fit, present, c)`` (default: between-animal df).
+    (:func:`region_variances`) are fitted with :func:`grouplevel.model.fit_reml`, one
+    region per "voxel", and the contrast is tested with
+    :func:`grouplevel.model.test_contrast` on the between-animal degrees of freedom.
 
     Parameters
     ----------
@@ -702,8 +722,12 @@ def region_table(
         Method name → ``(V,)`` bool in-mask vector of voxels that survive it; each gives
         a column ``surviving_<name>``: the share-weighted fraction of the region's
         in-mask volume that survives.
-    terms, model_df
-        The random terms and df rule of the voxels' model (see above).
+    model
+        How the regions are fitted and tested when the voxel model has more than a
+        random intercept per animal (sessions, random slopes, variance groups): the same
+        random effects and df rule as the voxels (:class:`RegionModel`). Its variance
+        components get columns between ``var_animal`` and ``var_run``. None: the
+        run-within-animal model and the between-animal df.
 
     Returns
     -------
@@ -732,8 +756,7 @@ def region_table(
         estimate_run_variance=estimate_run_variance,
         alpha=alpha,
         fdr_method=fdr_method,
-        terms=terms,
-        model_df=model_df,
+        model=model,
     )
     regions = atlas.regions
     table = pd.DataFrame(
@@ -780,8 +803,7 @@ def _region_statistics(
     estimate_run_variance: bool,
     alpha: float,
     fdr_method: str,
-    terms: RandomTerms | None = None,
-    model_df: ModelDf | None = None,
+    model: RegionModel | None = None,
 ) -> dict[str, np.ndarray]:
     """The REML fit and contrast test of every region, FDR across regions.
 
@@ -792,13 +814,15 @@ def _region_statistics(
         order of :func:`region_table`.
     """
     present = np.isfinite(values)
-    fit = fit_terms(
-        values, variances, X, animal, terms, estimate_run_variance=estimate_run_variance
-    )
-    if model_df is None:
+    extra: dict[str, np.ndarray] = {}
+    if model is None:
+        fit = fit_reml(values, variances, X, animal, estimate_run_variance=estimate_run_variance)
         df = between_animal_df(X, animal, present, c)
     else:
-        df = model_df(fit, present, c)
+        fit = model.fit(values, variances)
+        df = model.df(fit, present)
+        components = getattr(fit, "components", {}) or {}
+        extra = {col: components[name] for name, col in model.columns.items() if name in components}
     result = test_contrast(fit, c, df)
     q = fdr(result.p, alpha=alpha, method=fdr_method).q
     with np.errstate(invalid="ignore"):
@@ -814,6 +838,7 @@ def _region_statistics(
         "q": q,
         "fdr_significant": np.nan_to_num(q, nan=np.inf) <= alpha,
         "var_animal": fit.var_animal,
+        **extra,
         "var_run": fit.var_run,
         "runs": fit.n_runs,
         "animals": fit.n_animals,

@@ -22,6 +22,7 @@ import pandas as pd
 
 from grouplevel.anatomy.atlas import Atlas
 from grouplevel.anatomy.regions import (
+    RegionModel,
     animal_table,
     cluster_table,
     region_table,
@@ -31,7 +32,6 @@ from grouplevel.anatomy.regions import (
 from grouplevel.inference import Clusters, find_clusters
 from grouplevel.intake.design import Design
 from grouplevel.intake.settings import Settings
-from grouplevel.model.marginal import ModelDf, RandomTerms
 from grouplevel.results.maps import GroupMap
 
 
@@ -151,13 +151,12 @@ def region_tables(
     c: np.ndarray,
     settings: Settings,
     *,
-    terms: RandomTerms | None = None,
-    model_df: ModelDf | None = None,
+    model: RegionModel | None = None,
 ) -> RegionTables:
     """clusters.tsv, regions.tsv and animals.tsv of one group map, as DataFrames.
 
-    ``terms`` and ``model_df`` are the random terms and the df rule of the voxels' model;
-    the region tests use them (default: a random intercept, between-animal df).
+    ``model``: how the regions are fitted and tested when the voxel model goes beyond
+    one random intercept per animal (:class:`~grouplevel.anatomy.regions.RegionModel`).
     """
     inf_settings = settings.inference
     method = settings.clusters.resolved_method(inf_settings)
@@ -196,8 +195,7 @@ def region_tables(
         alpha=inf_settings.alpha,
         fdr_method=inf_settings.fdr,
         surviving=surviving,
-        terms=terms,
-        model_df=model_df,
+        model=model,
     )
     animals_df = animal_table(
         data.atlas,

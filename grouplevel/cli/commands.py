@@ -71,7 +71,8 @@ def _add_report_command(sub: argparse._SubParsersAction) -> None:
 def _add_plan_command(sub: argparse._SubParsersAction) -> None:
     """The ``plan`` command: power of future designs from an output folder."""
     pl = sub.add_parser(
-        "plan", help="power of future designs (animals x runs) from a finished output folder"
+        "plan",
+        help="power of future designs (animals x sessions x runs) from a finished output folder",
     )
     pl.add_argument("folder", type=Path, help="output folder of `grouplevel run`")
     pl.add_argument(
@@ -97,6 +98,15 @@ def _add_plan_command(sub: argparse._SubParsersAction) -> None:
         type=float,
         default=1.0,
         help="cost of one more run of an animal (same unit; default 1)",
+    )
+    pl.add_argument(
+        "--cost-session",
+        type=float,
+        default=2.0,
+        help=(
+            "cost of one more imaging session beyond its runs, used when the analysis "
+            "fitted sessions as their own level (same unit; default 2)"
+        ),
     )
     pl.add_argument(
         "--alpha",
@@ -210,8 +220,7 @@ def _report(args: argparse.Namespace) -> int:
 
 def _plan(args: argparse.Namespace) -> int:
     from grouplevel.outputs.folder import require_grouplevel_output
-    from grouplevel.planning.plan import plan_from_output, write_plan
-    from grouplevel.report.words import count
+    from grouplevel.planning.plan import design_text, plan_from_output, write_plan
 
     require_grouplevel_output(args.folder)
     plans = plan_from_output(
@@ -222,6 +231,7 @@ def _plan(args: argparse.Namespace) -> int:
         cost_run=args.cost_run,
         alpha=args.alpha,
         target_power=args.target_power,
+        cost_session=args.cost_session,
     )
     for plan in plans:
         where = f"{plan.name}: {plan.region} ({plan.hemisphere})"
@@ -231,9 +241,14 @@ def _plan(args: argparse.Namespace) -> int:
             best = plan.cheapest
             print(
                 f"{where}: cheapest design with power >= {args.target_power}: "
-                f"{count(int(best['animals']), 'animal')} x {count(int(best['runs']), 'run')} "
-                f"(power {best['power']:.2f}, cost {best['cost']:g})"
+                f"{design_text(best)} (power {best['power']:.2f}, cost {best['cost']:g})"
             )
+            if "power_one_more_session" in best.index:
+                print(
+                    f"  one more session of {int(best['runs'])} run(s): power "
+                    f"{best['power_one_more_session']:.2f}; the same runs added to the "
+                    f"existing sessions: {best['power_same_runs_in_sessions']:.2f}"
+                )
     if plans:
         print(f"caution: {plans[0].caution}")
     for path in write_plan(args.folder, plans):

@@ -954,6 +954,9 @@ def random_effects(
                 f"add its main effect (e.g. '+ {v}') so that its random slope has a column"
             )
         slope_columns.extend(cols)
+    slope_columns += _interaction_slopes(
+        design, variables, slope_columns, contrasts if random_slopes == SLOPES_AUTO else None
+    )
     terms: list[SlopeTerm | None] = [None] * X.shape[1]
     for j in np.flatnonzero(design.within):
         for i, col in enumerate(slope_columns):
@@ -968,6 +971,55 @@ def random_effects(
         sessions=_sessions_on(design, sessions, slope_columns),
         **_variance_groups(design, runs, variance_groups),
     )
+
+
+def _within_variables(design: Design, j: int, animal_vars: set[str]) -> frozenset[str]:
+    """The within-animal formula variables of design column ``j``."""
+    return frozenset(design.column_variables[j] - animal_vars)
+
+
+def _interaction_slopes(
+    design: Design,
+    variables: Sequence[str],
+    slope_columns: Sequence[int],
+    contrasts: Sequence[np.ndarray] | None,
+) -> list[int]:
+    """Columns of interactions between within-animal slope variables that get their own
+    random slope (e.g. ``drug:time`` with drug and time both varying within animals).
+
+    An animal's drug-by-time interaction varies between animals as its drug and time
+    effects do; without its own slope the interaction, and every animal-level moderation
+    of it (``genotype:drug:time``), would be judged against the run-to-run scatter. The
+    interaction column of two or more slope variables gets a slope when the formula has
+    it as a column of its own; with ``contrasts`` (the ``"auto"`` rule) only when some
+    contrast weights a column whose within-animal variables are exactly those of the
+    interaction (the interaction itself or its animal-level moderations).
+
+    References
+    ----------
+    Barr DJ, Levy R, Scheepers C, Tily HJ (2013). Random effects structure for
+    confirmatory hypothesis testing: keep it maximal. J Mem Lang 68:255-278.
+    """
+    chosen = set(variables)
+    animal_vars = {
+        v
+        for j in np.flatnonzero(~design.within)
+        for v in design.column_variables[j]
+        if len(design.column_variables[j]) == 1
+    }
+    tested = None
+    if contrasts is not None:
+        weighted = tested_columns(design, contrasts) & design.within
+        tested = {_within_variables(design, int(k), animal_vars) for k in np.flatnonzero(weighted)}
+    out: list[int] = []
+    for j in np.flatnonzero(design.within):
+        names = design.column_variables[j]
+        if len(names) < 2 or not names <= chosen or j in slope_columns:
+            continue
+        if tested is not None and frozenset(names) not in tested:
+            continue
+        out.append(int(j))
+    return sorted(out, key=lambda j: (len(design.column_variables[j]), j))
 
 
 def _sessions_on(design: Design, sessions: str, slope_columns: Sequence[int] = ()) -> bool:
@@ -1098,12 +1150,21 @@ def unslope_warning(design: Design, random: RandomEffects, name: str, c: np.ndar
     if kind != CONTRAST_WITHIN:
         return None
     cols = [design.columns[j] for j in np.flatnonzero(np.asarray(c) != 0) if design.within[j]]
+    on_sessions = random.sessions and all(
+        design.level[j] == "session" for j in np.flatnonzero(np.asarray(c) != 0) if design.within[j]
+    )
+    against = (
+        "the scatter of sessions within animals with sessions − animals df"
+        if on_sessions
+        else "the run-to-run scatter with runs − animals df"
+    )
     return (
         f"contrast '{name}' tests the within-animal column(s) {', '.join(cols)} without a "
-        "random slope per animal ([model] random_slopes): its t is judged against the "
-        "run-to-run scatter with runs − animals df, which is anti-conservative (too many "
-        "false positives) whenever the effect differs between animals; use random_slopes "
-        '= "auto" unless you know that it does not'
+        f"random slope per animal ([model] random_slopes): its t is judged against {against}, "
+        "which is anti-conservative (too many false positives) whenever the effect differs "
+        "between animals"
+        + (" beyond what one session per animal and condition absorbs" if on_sessions else "")
+        + '; use random_slopes = "auto" unless you know that it does not'
     )
 
 
@@ -1194,8 +1255,10 @@ def model_problems(
         if auto:
             warnings.append(
                 '[model] sessions = "none": animals have repeated sessions, whose day-to-day '
-                "variance is pooled into the run variance; a session-level effect is then "
-                "tested with too many degrees of freedom"
+                "variance is pooled into the run variance; a session-level effect (one "
+                "value per session, e.g. drug on one day and vehicle on another) is then "
+                "tested with too many degrees of freedom (too many false positives). Set "
+                'sessions = "auto" to fit sessions as their own level'
             )
     for name, c in contrasts:
         note = unslope_warning(design, random, name, c)

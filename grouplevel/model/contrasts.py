@@ -226,6 +226,79 @@ def between_animal_df(X: np.ndarray, animal: np.ndarray, present: np.ndarray, c)
     return df_pattern[inverse]
 
 
+def session_df(
+    X: np.ndarray, animal: np.ndarray, session: np.ndarray, present: np.ndarray, c
+) -> np.ndarray:
+    """Session-level (containment) degrees of freedom of a contrast at every voxel.
+
+    With a session variance level in the model, an effect that is constant within every
+    session but varies between the sessions of an animal (drug on one day, vehicle on
+    another) without a random slope is judged against the scatter of sessions within
+    animals: ``sessions with data − animals with data − (rank of the session-level
+    design − rank of its animal-level part)``, the within-animal stratum of the nested
+    analysis of variance. Columns constant within every session (animal- and
+    session-level) make the session-level design. Ranks are computed once per distinct
+    presence pattern.
+
+    Parameters
+    ----------
+    X : ndarray, shape (n_runs, p)
+    animal : ndarray of int, shape (n_runs,)
+    session : ndarray of int, shape (n_runs,)
+        Session codes unique across animals (sessions are nested in animals).
+    present : ndarray of bool, shape (n_runs, V)
+    c : array_like, shape (p,)
+        Must weight only columns constant within sessions, at least one of them varying
+        within an animal.
+
+    Returns
+    -------
+    ndarray, shape (V,)
+
+    Raises
+    ------
+    ArgumentError
+        For a contrast on a column that varies within sessions, or only on animal-level
+        columns (:func:`between_animal_df` covers those).
+
+    References
+    ----------
+    Pinheiro, J. C., & Bates, D. M. (2000). Mixed-Effects Models in S and S-PLUS.
+    Springer, §2.4.2 (containment rule for nested levels; section from memory).
+    """
+    X = np.asarray(X, dtype=np.float64)
+    animal = np.asarray(animal, dtype=np.int64)
+    session = np.asarray(session, dtype=np.int64)
+    present = np.asarray(present, dtype=bool)
+    if present.ndim == 1:
+        present = present[:, None]
+    if animal.shape != (X.shape[0],) or session.shape != (X.shape[0],):
+        raise ArgumentError(
+            f"session_df: design has {X.shape[0]} runs, animal codes {animal.shape[0]} and "
+            f"session codes {session.shape[0]}; they must agree."
+        )
+    c = _as_contrast(c, X.shape[1])
+    level_a = animal_level_columns(X, animal)
+    level_s = animal_level_columns(X, session)
+    weighted = c != 0
+    if not np.all(level_s[weighted]) or np.all(level_a[weighted]):
+        raise ArgumentError(
+            "session_df: the contrast must weight only columns constant within sessions, "
+            "at least one of them varying within an animal."
+        )
+    patterns, inverse = presence_patterns(present)
+    df_pattern = np.zeros(len(patterns))
+    xs, xa = X[:, level_s], X[:, level_a]
+    for i, pat in enumerate(patterns):  # loop over distinct patterns, not voxels
+        if not pat.any():
+            continue
+        n_s = np.unique(session[pat]).size
+        m_v = np.unique(animal[pat]).size
+        rank_a = np.linalg.matrix_rank(xa[pat]) if xa.shape[1] else 0
+        df_pattern[i] = n_s - m_v - (np.linalg.matrix_rank(xs[pat]) - rank_a)
+    return df_pattern[inverse]
+
+
 def slope_df(
     X: np.ndarray,
     animal: np.ndarray,

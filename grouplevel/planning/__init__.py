@@ -15,6 +15,9 @@ from typing import Any
 
 _EXPORTS = {
     "GRID_COLUMNS": "power",
+    "SESSION_GRID_COLUMNS": "power",
+    "animal_variance": "power",
+    "session_grid": "power",
     "cheapest_design": "power",
     "design_cost": "power",
     "design_power": "power",

@@ -34,9 +34,12 @@ from grouplevel.planning.power import (
     _REGION_COLUMNS,
     CAUTION_GIVEN,
     CAUTION_OBSERVED,
+    CAUTION_SESSIONS,
     CAUTION_VARIANCES,
     DEFAULT_COST_ANIMAL,
     DEFAULT_COST_RUN,
+    DEFAULT_COST_SESSION,
+    DEFAULT_SESSIONS,
     DEFAULT_TARGET_POWER,
     FIRST_LEVEL_VARIANCE_COLUMN,
     POWER_COLORMAP,
@@ -44,8 +47,10 @@ from grouplevel.planning.power import (
     design_cost,
     design_power,
     power_grid,
+    session_grid,
 )
 from grouplevel.questions.sides import resolve_side, split_side
+from grouplevel.report.words import count
 
 # --------------------------------------------------------------------------------------
 # Results
@@ -98,16 +103,25 @@ class PlanResult:
     def summary(self) -> dict[str, Any]:
         """Plain-JSON description (for ``plan.json``)."""
         best = None
+        sessions = "sessions" in self.grid.columns
         if self.cheapest is not None:
             best = {
                 "animals": int(self.cheapest["animals"]),
+                **({"sessions": int(self.cheapest["sessions"])} if sessions else {}),
                 "runs": int(self.cheapest["runs"]),
                 "power": float(self.cheapest["power"]),
                 "se": float(self.cheapest["se"]),
                 "cost": float(self.cheapest["cost"]),
             }
+            for column in GAIN_COLUMNS:
+                if column in self.cheapest.index:
+                    best[column] = float(self.cheapest[column])
         grid = self.grid
         best_in_grid = grid.loc[grid["power"].idxmax()]
+        extra: dict[str, Any] = {}
+        if sessions:
+            extra["sessions_range"] = [int(grid["sessions"].min()), int(grid["sessions"].max())]
+            extra["runs_are"] = "runs per session"
         return {
             "result": self.name,
             "region": self.region,
@@ -119,9 +133,11 @@ class PlanResult:
             "cheapest": best,
             "highest_power_in_grid": {
                 "animals": int(best_in_grid["animals"]),
+                **({"sessions": int(best_in_grid["sessions"])} if sessions else {}),
                 "runs": int(best_in_grid["runs"]),
                 "power": float(best_in_grid["power"]),
             },
+            **extra,
             "caution": self.caution,
         }
 
@@ -143,6 +159,29 @@ class PlanResult:
         return plans_figure_png([self])
 
 
+def design_text(row: pd.Series | dict) -> str:
+    """ "8 animals × 4 runs" or "8 animals × 2 sessions × 3 runs" ("1 run", not "1 runs")."""
+    parts = [count(int(row["animals"]), "animal")]
+    if "sessions" in row:
+        parts.append(count(int(row["sessions"]), "session"))
+    parts.append(count(int(row["runs"]), "run"))
+    return " × ".join(parts)
+
+
+def _figure_slice(res: PlanResult) -> tuple[pd.DataFrame, str, str]:
+    """The part of a plan's grid a heat map shows, its row column and axis label.
+
+    A grid over animals × runs is shown whole. A grid over animals × sessions × runs per
+    session is shown over animals × sessions at the runs per session of the cheapest
+    design (else the largest number of runs in the grid).
+    """
+    g = res.grid
+    if "sessions" not in g.columns:
+        return g, "runs", "runs per animal"
+    runs = int(res.cheapest["runs"]) if res.cheapest is not None else int(g["runs"].max())
+    return g[g["runs"] == runs], "sessions", f"sessions per animal ({runs} runs each)"
+
+
 def plans_figure_png(results: Sequence[PlanResult]) -> bytes:
     """One heat-map panel per plan: power over animals × runs, target contour, cheapest.
 
@@ -161,11 +200,11 @@ def plans_figure_png(results: Sequence[PlanResult]) -> bytes:
     axes = fig.subplots(rows, cols, squeeze=False)
     image = None
     for ax, res in zip(axes.ravel(), results, strict=False):
-        g = res.grid
+        g, rows, ylabel = _figure_slice(res)
         a = np.sort(g["animals"].unique())
-        r = np.sort(g["runs"].unique())
+        r = np.sort(g[rows].unique())
         power = (
-            g.pivot(index="runs", columns="animals", values="power")
+            g.pivot(index=rows, columns="animals", values="power")
             .reindex(index=r, columns=a)
             .to_numpy(dtype=float)
         )
@@ -179,17 +218,14 @@ def plans_figure_png(results: Sequence[PlanResult]) -> bytes:
         if res.cheapest is not None:
             ax.plot(
                 [res.cheapest["animals"]],
-                [res.cheapest["runs"]],
+                [res.cheapest[rows]],
                 marker="o",
                 markersize=11,
                 markerfacecolor="none",
                 markeredgecolor="white",
                 markeredgewidth=2,
                 linestyle="none",
-                label=(
-                    f"cheapest: {int(res.cheapest['animals'])} animals × "
-                    f"{int(res.cheapest['runs'])} runs"
-                ),
+                label=f"cheapest: {design_text(res.cheapest)}",
             )
             ax.legend(
                 loc="upper right", fontsize=8, facecolor="0.2", labelcolor="white", framealpha=0.8
@@ -197,7 +233,7 @@ def plans_figure_png(results: Sequence[PlanResult]) -> bytes:
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
         ax.yaxis.set_major_locator(MaxNLocator(integer=True))
         ax.set_xlabel("animals")
-        ax.set_ylabel("runs per animal")
+        ax.set_ylabel(ylabel)
         ax.set_title(res.figure_title or f"{res.name}: {res.region} ({res.hemisphere})", fontsize=9)
     for ax in axes.ravel()[n:]:
         ax.set_visible(False)
@@ -271,6 +307,28 @@ def _is_group_mean(entry: dict[str, Any]) -> bool:
     if columns is None:  # an older summary without the design: assume the default mean
         return True
     return list(columns) == ["Intercept"] and (weights in (None, {"Intercept": 1.0}))
+
+
+def _slope_effect(entry: dict[str, Any]) -> tuple[str, str, str] | None:
+    """The tested within-animal effect of a result whose contrast is the mean of one
+    random slope, or None.
+
+    Returns
+    -------
+    column, variance_column, varies
+        The design column (a 0/1 indicator of a text variable, e.g. ``drug[T.on]``, so
+        that its coefficient is the difference between two conditions), the regions.tsv
+        column of its slope variance and where it varies (``"session"`` or ``"run"``).
+    """
+    weights = entry.get("weights") or {}
+    if entry.get("tested_level") != "slope" or len(weights) != 1:
+        return None
+    ((column, weight),) = weights.items()
+    level = (entry.get("design_levels") or {}).get(column)
+    component = (entry.get("variance_components") or {}).get(f"slope[{column}]")
+    if weight != 1.0 or level not in ("session", "run") or "[T." not in column or not component:
+        return None
+    return column, str(component["map"]).removesuffix(".nii.gz"), level
 
 
 class _FirstLevelVariance:
@@ -401,8 +459,14 @@ def plan_from_output(
     cost_run: float = DEFAULT_COST_RUN,
     alpha: float | None = None,
     target_power: float = DEFAULT_TARGET_POWER,
+    cost_session: float = DEFAULT_COST_SESSION,
 ) -> list[PlanResult]:
     """Power over animals × runs for the target regions of a finished analysis.
+
+    When the analysis fitted sessions as their own variance level (regions.tsv has a
+    ``var_session`` column), the grid runs over animals × sessions per animal × runs per
+    session (:func:`~grouplevel.planning.power.session_grid`), with the session variance
+    ω² of each region.
 
     For each analysed map of ``out_dir/summary.json`` whose folder has ``regions.tsv``
     and whose group contrast is the group mean (intercept-only design), the regions are
@@ -426,6 +490,8 @@ def plan_from_output(
         Significance level; default the analysis's ``[inference] alpha``.
     target_power
         Power to reach.
+    cost_session
+        Cost of one imaging session beyond its runs (>= 0; used with sessions).
 
     Returns
     -------
@@ -453,6 +519,7 @@ def plan_from_output(
         alpha=alpha,
         target_power=target_power,
     )
+    options["cost_session"] = _check_number("cost per session", cost_session, 0.0)
     reader = _FirstLevelVariance(summary)
     plans: list[PlanResult] = []
     skipped: list[str] = []
@@ -531,12 +598,15 @@ def _rows_to_plan(
     none = np.zeros(0, dtype=np.int64)
     if not path.is_file():
         return path, None, none, "no regions.tsv (the analysis had no atlas)"
-    if not _is_group_mean(entry):
+    if not _is_group_mean(entry) and _slope_effect(entry) is None:
         return (
             path,
             None,
             none,
-            ("not the mean of an intercept-only design (the plan covers one-sample designs only)"),
+            (
+                "neither the mean of an intercept-only design nor the mean of one "
+                "within-animal indicator with its random slope (the plan covers those only)"
+            ),
         )
     table = _read_regions(path)
     first_level = entry.get("first_level_contrast")
@@ -599,9 +669,18 @@ def _plan_row(
     alpha: float,
     sided: str,
     target_power: float,
+    cost_session: float = DEFAULT_COST_SESSION,
 ) -> PlanResult:
     where = f"{path}: region {row['name']!r} ({row['hemisphere']})"
+    slope = _slope_effect(entry)
     var_animal = float(row["var_animal"])
+    if slope is not None:
+        if slope[1] not in row.index:
+            raise UserError(
+                f"{path}: lacks the column {slope[1]} (the {slope[0]} slope variance of "
+                "each region); rerun the analysis to rewrite it"
+            )
+        var_animal = float(row[slope[1]])
     var_run = float(row["var_run"])
     observed = float(row["effect"])
     if not all(math.isfinite(v) for v in (var_animal, var_run, observed)):
@@ -610,11 +689,37 @@ def _plan_row(
     if var_animal + var_run + first_level <= 0:
         raise UserError(f"{where} has all variances 0; its power is undefined, choose another")
     used = observed if effect is None else effect
-    grid = power_grid(used, var_animal, var_run, first_level, alpha=alpha, sided=sided)
-    grid["cost"] = design_cost(grid["animals"], grid["runs"], cost_animal, cost_run)
-    cheapest = cheapest_design(grid, cost_animal, cost_run, target_power)
+    var_session = _session_variance(row, where)
     n_animals = entry.get("animals", row.get("animals"))
     n_runs = entry.get("runs", row.get("runs"))
+    layout = _layout(entry, slope, var_session)
+    if layout["sessions"] is None:
+        grid = power_grid(used, var_animal, var_run, first_level, alpha=alpha, sided=sided)
+        grid["cost"] = design_cost(grid["animals"], grid["runs"], cost_animal, cost_run)
+    else:
+        grid = session_grid(
+            used,
+            var_animal,
+            var_session or 0.0,
+            var_run,
+            first_level,
+            sessions=layout["sessions"],
+            varies=layout["varies"],
+            alpha=alpha,
+            sided=sided,
+        )
+        grid["cost"] = design_cost(
+            grid["animals"],
+            grid["runs"],
+            cost_animal,
+            cost_run,
+            sessions=grid["sessions"],
+            cost_session=cost_session,
+        )
+    if layout["note"] or (layout["sessions"] is not None and len(layout["sessions"]) == 1):
+        # sessions held at the study's own: what another session buys is not planned
+        grid = grid.drop(columns=list(GAIN_COLUMNS))
+    cheapest = cheapest_design(grid, cost_animal, cost_run, target_power, cost_session=cost_session)
     inputs: dict[str, Any] = {
         "effect": used,
         "effect_source": "observed" if effect is None else "given",
@@ -630,28 +735,37 @@ def _plan_row(
         "cost_animal": cost_animal,
         "cost_run": cost_run,
     }
+    if var_session is not None:
+        inputs |= {"var_session": var_session, "cost_session": cost_session}
+    if slope is not None:
+        inputs |= {
+            "tested_effect": f"{slope[0]} (within animals, varies between {slope[2]}s)",
+            "var_animal_is": f"the variance of the animals' own {slope[0]} effects ({slope[1]})",
+            "varies": layout["varies"],
+        }
+    if layout["note"]:
+        inputs["layout_note"] = layout["note"]
     if n_animals is not None and n_runs is not None and int(n_animals) >= 2:
-        per_animal = float(n_runs) / float(n_animals)
-        now = design_power(
+        inputs |= _this_study(
             used,
             var_animal,
+            var_session,
             var_run,
             first_level,
-            float(n_animals),
-            per_animal,
+            entry,
             alpha=alpha,
             sided=sided,
+            varies=layout["varies"],
+            sessions_grid=layout["sessions"] is not None,
         )
-        inputs |= {
-            "animals": int(n_animals),
-            "runs": int(n_runs),
-            "runs_per_animal": per_animal,
-            "power_of_this_study": float(now["power"]),
-        }
     caution = (CAUTION_OBSERVED if effect is None else CAUTION_GIVEN) + CAUTION_VARIANCES.format(
         animals=n_animals if n_animals is not None else "the",
         runs=n_runs if n_runs is not None else "the",
     )
+    if var_session is not None:
+        caution += CAUTION_SESSIONS.format(sessions=entry.get("sessions", "the"))
+    if slope is not None:
+        caution += CAUTION_SLOPE.format(column=slope[0])
     return PlanResult(
         name=name,
         region=str(row["name"]),
@@ -663,6 +777,103 @@ def _plan_row(
         caution=caution,
         figure_title=f"{name}: {row['name']} ({row['hemisphere']}), effect {used:.3g}",
     )
+
+
+def _session_variance(row: pd.Series, where: str) -> float | None:
+    """ω² of a region row, or None when the analysis fitted no session level."""
+    if "var_session" not in row.index or pd.isna(row["var_session"]):
+        return None
+    value = float(row["var_session"])
+    if not math.isfinite(value) or value < 0:
+        raise UserError(f"{where} has a session variance of {value}; choose another region")
+    return value
+
+
+#: The two columns of a session grid that say what one more session buys.
+GAIN_COLUMNS = ("power_one_more_session", "power_same_runs_in_sessions")
+
+CAUTION_SLOPE = (
+    " Here τ² is the variance of the animals' own {column} effects (the random slope): "
+    "how much the effect itself differs from one animal to the next. The plan assumes "
+    "half of each animal's sessions (or runs) each way, as balanced as this study's."
+)
+
+#: Sessions per animal in the grid of an effect that varies between sessions (half of
+#: them each way: an even number; our own choice of range, as DEFAULT_SESSIONS).
+EVEN_SESSIONS = (2, 4, 6)
+
+
+def _layout(
+    entry: dict[str, Any], slope: tuple[str, str, str] | None, var_session: float | None
+) -> dict[str, Any]:
+    """The grid's sessions (None: animals × runs only), what the effect varies between
+    in the power formula, and a note when the layout is held at the study's own.
+
+    Without a fitted session level a within-animal effect that varies between sessions
+    has the day-to-day variance inside its slope variance (each animal's own effect is
+    a difference of days); the number of sessions is then held at the study's own and
+    the formula of an effect within sessions applied, which is exact at that number.
+    """
+    if slope is None:
+        sessions = None if var_session is None else DEFAULT_SESSIONS
+        return {"sessions": sessions, "varies": "animal", "note": ""}
+    varies = slope[2]
+    if var_session is not None:
+        return {
+            "sessions": EVEN_SESSIONS if varies == "session" else DEFAULT_SESSIONS,
+            "varies": varies,
+            "note": "",
+        }
+    per_animal = max(1, round(float(entry.get("sessions") or 1) / float(entry["animals"])))
+    note = ""
+    if varies == "session":
+        note = (
+            f"no session level was fitted, so the day-to-day variance is part of the slope "
+            f"variance: sessions are held at the study's {per_animal} per animal"
+        )
+    return {"sessions": (per_animal,), "varies": "run", "note": note}
+
+
+def _this_study(
+    effect: float,
+    var_animal: float,
+    var_session: float | None,
+    var_run: float,
+    first_level: float,
+    entry: dict[str, Any],
+    *,
+    alpha: float,
+    sided: str,
+    varies: str = "animal",
+    sessions_grid: bool = False,
+) -> dict[str, Any]:
+    """The analysed study's own design and its power under the plan's variances (mean
+    numbers of sessions per animal and runs per session when unbalanced)."""
+    n_animals, n_runs = int(entry["animals"]), int(entry["runs"])
+    out: dict[str, Any] = {"animals": n_animals, "runs": n_runs}
+    sessions = 1.0
+    per = float(n_runs) / n_animals
+    out["runs_per_animal"] = per
+    if sessions_grid and entry.get("sessions"):
+        sessions = float(entry["sessions"]) / n_animals
+        per = float(n_runs) / float(entry["sessions"])
+        out |= {"sessions_per_animal": sessions, "runs_per_session": per}
+    now = design_power(
+        effect,
+        var_animal,
+        var_run,
+        first_level,
+        float(n_animals),
+        per,
+        alpha=alpha,
+        sided=sided,
+        sessions=sessions,
+        var_session=var_session or 0.0,
+        varies=varies,
+    )
+    out["power_of_this_study"] = float(now["power"])
+    out["se_of_this_study"] = float(now["se"])
+    return out
 
 
 # --------------------------------------------------------------------------------------
@@ -710,4 +921,4 @@ def write_plan(out_dir: str | Path, results: Sequence[PlanResult]) -> list[Path]
     return written
 
 
-__all__ = ["PlanResult", "plan_from_output", "plans_figure_png", "write_plan"]
+__all__ = ["PlanResult", "design_text", "plan_from_output", "plans_figure_png", "write_plan"]

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import base64
 import datetime as _dt
+import re
 import time
 from importlib import resources
 from pathlib import Path
@@ -36,6 +37,7 @@ from grouplevel.outputs.records import (
     write_report_options,
 )
 from grouplevel.outputs.summary import present_files, read_summary, result_names
+from grouplevel.planning.plan import design_text
 from grouplevel.report import figures
 from grouplevel.report.browser import (
     apply_content_security_policy,
@@ -555,10 +557,41 @@ def _variance_figures(folder: Path, name: str, result: dict, mask_img) -> list[d
                 f"{int(m.sum()):,} analysed voxels; medians τ² = "
                 f"{result.get('var_animal_median', float('nan')):.3g}, σ² = "
                 f"{result.get('var_run_median', float('nan')):.3g}. Many animals are worth "
-                "more than many runs where τ² dominates.",
+                "more than many runs where τ² dominates."
+                + _more_levels_text(result.get("variance_components") or {}),
             )
         )
     return figs
+
+
+def _more_levels_text(components: dict) -> str:
+    """Plain words on the variance levels fitted beyond τ² and σ² (session level, random
+    slopes, per-group animal variances), with their medians over voxels; "" when none."""
+    parts = []
+    for name, info in components.items():
+        median = (info or {}).get("median")
+        value = "n/a" if median is None else f"{median:.3g}"
+        slope = re.fullmatch(r"slope\[(.+?)\](?:\[(.+)\])?", name)
+        group = re.fullmatch(r"animal\[(.+)\]", name)
+        if name == "session":
+            parts.append(
+                f"ω² (between sessions of one animal: how much the response changes from "
+                f"one imaging day to the next beyond run-to-run noise) median {value}; "
+                "where it is large, more sessions per animal help more than more runs in "
+                "the same session"
+            )
+        elif slope:
+            where = f" in group {slope.group(2)}" if slope.group(2) else ""
+            parts.append(
+                f"variance of the {slope.group(1)} slope{where} (how much the animals' own "
+                f"{slope.group(1)} effects differ from one animal to the next; a "
+                f"within-animal effect is judged against it) median {value}"
+            )
+        elif group:
+            parts.append(f"τ² of group {group.group(1)} median {value}")
+    if not parts:
+        return ""
+    return " Also fitted: " + "; ".join(parts) + "."
 
 
 def _run_quality_figures(name: str, frames) -> list[dict]:
@@ -944,6 +977,20 @@ def _frames(out_dir: Path, name: str) -> dict:
     return out
 
 
+def _best_text(best: dict) -> str:
+    """The cheapest design of a plan in words; with sessions, what one more session buys
+    against adding the same runs to the existing sessions."""
+    text = f"{design_text(best)}: power {best['power']:.2f}, cost {best['cost']:g}"
+    if "sessions" not in best:
+        return text
+    if "power_one_more_session" in best:
+        text += (
+            f"; one more session: {best['power_one_more_session']:.2f}, the same runs in "
+            f"the existing sessions: {best['power_same_runs_in_sessions']:.2f}"
+        )
+    return text
+
+
 def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:
     """The planning section of one result (after `grouplevel plan`), or None."""
     plan = (read_plans(out_dir, summary).get(name) or {}).get("regions")
@@ -956,16 +1003,20 @@ def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:
         effect = inputs.get("effect", float("nan"))
         runs = inputs.get("runs_per_animal", 0.0)
         power = inputs.get("power_of_this_study", float("nan"))
+        now = f"{count(inputs.get('animals') or 0, 'animal')}, {mean_count(runs, 'run')}"
+        if "sessions_per_animal" in inputs:
+            now = (
+                f"{count(inputs.get('animals') or 0, 'animal')}, "
+                f"{mean_count(inputs['sessions_per_animal'], 'session')} of "
+                f"{count(round(inputs['runs_per_session'], 1), 'run')}"
+            )
+        now += f": power {power:.2f}"
         rows.append(
             {
                 "region": place(p.get("region"), p.get("hemisphere")),
                 "effect": f"{effect:.3g} ({inputs.get('effect_source', '')})",
-                "now": f"{count(inputs.get('animals') or 0, 'animal')}, "
-                f"{mean_count(runs, 'run')}: power {power:.2f}",
-                "best": "none in the grid reaches the target"
-                if not best
-                else f"{count(best['animals'], 'animal')} × {count(best['runs'], 'run')}: power "
-                f"{best['power']:.2f}, cost {best['cost']:g}",
+                "now": now,
+                "best": "none in the grid reaches the target" if not best else _best_text(best),
             }
         )
     figure = None

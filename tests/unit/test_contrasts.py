@@ -191,3 +191,46 @@ def test_satterthwaite_all_components_on_boundary_is_infinite():
     res = test_contrast(fit, [1.0], satterthwaite_df(fit, [1.0]))
     assert res.z[0] == pytest.approx(res.t[0])  # infinite df: z = t
     assert res.p[0] == pytest.approx(2 * stats.norm.sf(abs(res.t[0])), rel=1e-12)
+
+
+# --------------------------------------------------------------------------------------
+# session_df: the sessions-within-animals stratum of a balanced nested design
+# --------------------------------------------------------------------------------------
+
+
+def _sessions_design(m=5, sessions=4, runs=2):
+    animal = np.repeat(np.arange(m), sessions * runs)
+    session = np.repeat(np.arange(m * sessions), runs)
+    drug = np.tile(np.repeat(np.arange(sessions) % 2, runs), m).astype(float)
+    X = np.column_stack([np.ones(animal.size), drug])
+    return X, animal, session
+
+
+def test_session_df_is_the_nested_anova_stratum():
+    from grouplevel.model.contrasts import session_df
+
+    X, animal, session = _sessions_design()
+    present = np.ones((X.shape[0], 3), dtype=bool)
+    # nested ANOVA (common practice): sessions within animals m(S − 1) = 15, minus the
+    # one drug column: 14
+    np.testing.assert_array_equal(session_df(X, animal, session, present, [0, 1]), 14)
+    # voxel 1 lacks one whole session, voxel 2 one animal's vehicle sessions: 15 − 1 − 1
+    # sessions → 13; the animal then has no drug contrast but still counts its sessions
+    present[session == 0, 1] = False
+    present[(animal == 1) & (X[:, 1] == 0), 2] = False
+    df = session_df(X, animal, session, present, [0, 1])
+    assert df[1] == 19 - 5 - 1
+    assert df[2] == 18 - 5 - 1
+
+
+def test_session_df_refuses_run_level_and_animal_level_contrasts():
+    from grouplevel.errors import ArgumentError
+    from grouplevel.model.contrasts import session_df
+
+    X, animal, session = _sessions_design()
+    present = np.ones((X.shape[0], 1), dtype=bool)
+    with pytest.raises(ArgumentError, match="constant within sessions"):
+        session_df(X, animal, session, present, [1, 0])
+    run_level = np.column_stack([X, np.tile([0.0, 1.0], X.shape[0] // 2)])
+    with pytest.raises(ArgumentError, match="constant within sessions"):
+        session_df(run_level, animal, session, present, [0, 0, 1])
