@@ -221,6 +221,7 @@ def _report(args: argparse.Namespace) -> int:
 def _plan(args: argparse.Namespace) -> int:
     from grouplevel.outputs.folder import require_grouplevel_output
     from grouplevel.planning.plan import design_text, plan_from_output, write_plan
+    from grouplevel.report.words import count
 
     require_grouplevel_output(args.folder)
     plans = plan_from_output(
@@ -243,9 +244,9 @@ def _plan(args: argparse.Namespace) -> int:
                 f"{where}: cheapest design with power >= {args.target_power}: "
                 f"{design_text(best)} (power {best['power']:.2f}, cost {best['cost']:g})"
             )
-            if "power_one_more_session" in best.index:
+            if "power_one_more_session" in best:
                 print(
-                    f"  one more session of {int(best['runs'])} run(s): power "
+                    f"  one more session of {count(int(best['runs']), 'run')}: power "
                     f"{best['power_one_more_session']:.2f}; the same runs added to the "
                     f"existing sessions: {best['power_same_runs_in_sessions']:.2f}"
                 )
