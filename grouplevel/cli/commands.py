@@ -242,7 +242,7 @@ def _plan(args: argparse.Namespace) -> int:
             best = plan.cheapest
             print(
                 f"{where}: cheapest design with power >= {args.target_power}: "
-                f"{design_text(best)} (power {best['power']:.2f}, cost {best['cost']:g})"
+                f"{design_text(best, 'x')} (power {best['power']:.2f}, cost {best['cost']:g})"
             )
             if "power_one_more_session" in best:
                 print(
