@@ -137,7 +137,10 @@ def test_plan_over_sessions(session_output, tmp_path):
     # the report's planning rows name sessions and what one more session buys
     summary = json.loads((copy / "summary.json").read_text())
     (report_row,) = _plan_section(copy, "mean", summary)["rows"]
-    assert re.search(r" sessions? × ", report_row["best"]) and "one more session:" in report_row["best"]
+    assert (
+        re.search(r" sessions? × ", report_row["best"])
+        and "one more session:" in report_row["best"]
+    )
     assert "3 sessions each of 2 runs" in report_row["now"]
 
 
