@@ -35,6 +35,7 @@ class Summary(TypedDict, total=False):
     results: dict[str, dict[str, Any]]  # result folder name -> its entry
     warnings: list[str]
     plan: dict[str, Any]  # written by `grouplevel plan`
+    outputs: dict[str, Any]  # files written from the results: "figures" (the report's)
 
 
 def read_summary(out_dir: str | Path) -> Summary:
