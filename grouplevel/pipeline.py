@@ -30,8 +30,8 @@ import pandas as pd
 from scipy import stats
 
 from grouplevel import __version__
-from grouplevel.anatomy.tables import RegionData, region_data, region_tables
-from grouplevel.errors import UserError
+from grouplevel.anatomy.tables import RegionData, region_data, region_tables, surviving_voxels
+from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
     AnimalLevelData,
@@ -53,7 +53,7 @@ from grouplevel.intake.design import (
     slope_design,
     weights_dict,
 )
-from grouplevel.intake.images import Grid, write_map
+from grouplevel.intake.images import Grid, write_map, write_volumes
 from grouplevel.intake.settings import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
 from grouplevel.intake.study import FirstLevel, Study, load_runs, load_study
 from grouplevel.model import (
@@ -61,6 +61,7 @@ from grouplevel.model import (
     satterthwaite_df,
     test_contrast,
 )
+from grouplevel.model.animals import animal_means
 from grouplevel.model.contrasts import slope_df
 from grouplevel.outputs.folder import (
     TOOL_NAME,
@@ -76,10 +77,12 @@ from grouplevel.questions.ask import (
     question_plan,
     skipped_warning,
 )
+from grouplevel.questions.sides import asked_region
+from grouplevel.questions.specificity import leaf_rows
 from grouplevel.report import render_report, write_manuscript_tables, write_methods
 from grouplevel.results.compute import Backend, fit_design, open_backend
 from grouplevel.results.correction import permutation_arguments
-from grouplevel.results.maps import MAP_DESCRIPTIONS, Corrected, GroupMap
+from grouplevel.results.maps import MAP_DESCRIPTIONS, AnimalMaps, Corrected, GroupMap
 
 # Variance components written on top of var_animal and var_run (general model only):
 # component-name pattern -> (file stem, header description). ``{0}`` is the slope or
@@ -481,6 +484,7 @@ def _fit_first_level(
     results = []
     for cname, c in fl.contrasts:
         gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
+        gm = replace(gm, animal_maps=_animal_maps(fitted, c))
         if regions is not None:
             gm = replace(gm, tables=region_tables(gm, regions, fl.design, c, study.settings))
         results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
@@ -578,6 +582,48 @@ def _fit(
         var_animal=_pooled_var_animal(fit, random),
         smooth=_smoothness(y, s2, fit, design.matrix, mask, study.grid),
     )
+
+
+#: What each animal's map holds, by the level the contrast tests.
+_ANIMAL_ESTIMATE = {
+    "mean": "the precision-weighted mean of the animal's runs, weights 1/(sigma^2 + s_k^2) "
+    "with the fitted between-run variance sigma^2",
+    "reduced": "the animal's own GLS estimate of what the contrast tests (its intercept or "
+    "slope under the fitted variances), as the permutations use it",
+}
+
+
+def _animal_maps(fitted: _FittedLevel, c: np.ndarray) -> AnimalMaps | None:
+    """Each animal's own estimate of what contrast ``c`` tests, with its standard error.
+
+    A design without run-level columns or extra random effects reduces every animal to
+    the precision-weighted mean of its runs (:func:`grouplevel.model.animals.animal_means`,
+    σ̂² treated as known); any other design to the animal's own estimate of the tested
+    intercept or slope (the reduction the permutations use). None when the design has
+    no such reduction (e.g. a run-level covariate tested parametrically).
+    """
+    design, random = fitted.fl.design, fitted.fl.random
+    ids = tuple(str(a) for a in design.animal_ids)
+    if not random.extended and design.animal_level.all():
+        means = animal_means(
+            fitted.y,
+            design.animal,
+            n_animals=design.n_animals,
+            variance=fitted.s2,
+            var_run=fitted.fit.var_run,
+            present=fitted.present,
+        )
+        return AnimalMaps(ids, means.mean, means.se, _ANIMAL_ESTIMATE["mean"])
+    try:
+        data, _c, taking_part = fitted.reduced_for(c)
+    except ArgumentError:
+        return None
+    known = data.precision > 0  # (voxels, animals)
+    with np.errstate(divide="ignore"):
+        se = np.where(known, 1.0 / np.sqrt(np.where(known, data.precision, 1.0)), np.nan)
+    effect = np.where(known, data.mean, np.nan)
+    kept = tuple(a for a, keep in zip(ids, taking_part, strict=True) if keep)
+    return AnimalMaps(kept, effect.T, se.T, _ANIMAL_ESTIMATE["reduced"])
 
 
 def _variance_group_note(fitted: _FittedLevel) -> str | None:
@@ -835,6 +881,7 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "variance_components": _components_summary(gm),
         "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
         "inference": _inference_summary(gm, study.settings.inference.alpha),
+        **_figure_maps_summary(study, gm),
     }
     if gm.answers is not None:
         entry["questions"] = gm.answers.summary(study.settings.inference.alpha)
@@ -931,6 +978,99 @@ def _write_group_map(folder: Path, gm: GroupMap) -> None:
             frame.to_csv(
                 folder / f"{stem}.tsv", sep="\t", index=False, float_format="%.6g", na_rep="n/a"
             )
+
+
+def _surviving_z(study: Study, gm: GroupMap) -> tuple[np.ndarray, str]:
+    """z where the chosen correction's p ≤ alpha (0 elsewhere), and that method."""
+    settings = study.settings
+    method = settings.clusters.resolved_method(settings.inference)
+    keep = surviving_voxels(gm, settings.inference.alpha)[method]
+    return np.where(keep, gm.z, 0.0), method
+
+
+def _targets_volume(study: Study, gm: GroupMap) -> tuple[np.ndarray, dict[str, str]] | None:
+    """The targets of ``[questions]`` on the study grid: label k = the k-th target (a
+    voxel in two targets takes the first), and their names; None without them."""
+    questions = study.settings.questions_for(gm.first_level)
+    atlas = study.atlas
+    if atlas is None or not questions.targets:
+        return None
+    volume = np.zeros(study.grid.shape, dtype=np.int16)
+    labels = {}
+    indices = atlas.regions["index"].to_numpy()
+    for k, name in enumerate(questions.targets, start=1):
+        rows = asked_region(atlas, name, questions.stimulus_side, "[questions] targets").rows
+        inside = np.isin(atlas.label_volume, indices[leaf_rows(atlas, rows)]) & (volume == 0)
+        volume[inside] = k
+        labels[str(k)] = str(name)
+    return volume, labels
+
+
+def _write_figure_maps(folder: Path, study: Study, gm: GroupMap) -> None:
+    """Maps for figures made elsewhere: the thresholded z map, each animal's estimate
+    with its standard error (4-D, one volume per animal, in animal_maps.tsv's order),
+    and the targets as labels."""
+    grid = gm.grid
+    label = f"{gm.first_level or ''} {gm.contrast}".strip()
+    z, method = _surviving_z(study, gm)
+    write_map(
+        folder / "z_surviving.nii.gz",
+        z,
+        gm.mask,
+        grid,
+        f"grouplevel z where {method} p<={study.settings.inference.alpha:g} [{label}]",
+    )
+    animals = gm.animal_maps
+    if animals is not None:
+        for stem, values, what in (
+            ("animal_effect", animals.effect, "each animal's effect"),
+            ("animal_se", animals.se, "SE of each animal's effect"),
+        ):
+            write_volumes(
+                folder / f"{stem}.nii.gz", values, gm.mask, grid, f"grouplevel {what} [{label}]"
+            )
+        pd.DataFrame(
+            {
+                "volume": np.arange(1, len(animals.animals) + 1),
+                "animal": list(animals.animals),
+                "voxels_with_data": np.isfinite(animals.effect).sum(axis=1),
+            }
+        ).to_csv(folder / "animal_maps.tsv", sep="\t", index=False)
+    targets = _targets_volume(study, gm)
+    if targets is not None:
+        write_map(
+            folder / "targets.nii.gz",
+            targets[0],
+            np.ones(grid.shape, dtype=bool),
+            grid,
+            f"grouplevel targets of the questions [{label}]",
+            dtype=np.int16,
+        )
+
+
+def _figure_maps_summary(study: Study, gm: GroupMap) -> dict:
+    """summary.json entries of the maps :func:`_write_figure_maps` writes."""
+    z, method = _surviving_z(study, gm)
+    out: dict = {
+        "z_surviving": {
+            "map": "z_surviving.nii.gz",
+            "method": method,
+            "alpha": study.settings.inference.alpha,
+            "voxels": int((z != 0).sum()),
+        }
+    }
+    if gm.animal_maps is not None:
+        out["animal_maps"] = {
+            "effect": "animal_effect.nii.gz",
+            "se": "animal_se.nii.gz",
+            "table": "animal_maps.tsv",
+            "animals": list(gm.animal_maps.animals),
+            "estimate": gm.animal_maps.estimate,
+        }
+    targets = _targets_volume(study, gm)
+    if targets is not None:
+        out["targets_map"] = {"map": "targets.nii.gz", "labels": targets[1]}
+    return out
 
 
 def _write_answers(folder: Path, gm: GroupMap, label: str) -> None:
@@ -1114,7 +1254,9 @@ def write_outputs(
     try:
         grid = study.grid
         for gm in maps:
-            _write_group_map(child_path(tmp, gm.name), gm)
+            folder = child_path(tmp, gm.name)
+            _write_group_map(folder, gm)
+            _write_figure_maps(folder, study, gm)
         summary = {
             "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),

@@ -178,6 +178,10 @@ def grid_mismatch(reference: Grid, other: Grid) -> str | None:
 _INTENTS: tuple[tuple[str, str, str], ...] = (
     # (stem prefix, intent, name) — the first matching prefix wins
     ("asymmetry_p_fwe", "p value", "p FWE asymmetry"),
+    ("animal_effect", "estimate", "animal effect"),
+    ("animal_se", "estimate", "animal SE"),
+    ("targets", "label", "target regions"),
+    ("z_surviving", "z score", "z surviving"),
     ("asymmetry_t", "estimate", "t asymmetry"),
     ("asymmetry_z", "z score", "z asymmetry"),
     ("asymmetry_q", "estimate", "q FDR asymmetry"),
@@ -197,6 +201,27 @@ _INTENTS: tuple[tuple[str, str, str], ...] = (
     ("p", "p value", "p uncorrected"),
     ("q", "estimate", "q FDR"),
 )
+
+
+def write_volumes(
+    path: Path, values: np.ndarray, mask: np.ndarray, grid: Grid, description: str
+) -> None:
+    """Write ``(n, V)`` in-mask values as one 4-D NIfTI image of ``n`` volumes.
+
+    Like :func:`write_map`: 0 outside the mask and in place of NaN, the header's intent
+    from the file name, the grid's affine.
+    """
+    values = np.asarray(values, dtype=float)
+    out = np.zeros((*grid.shape, values.shape[0]), dtype=np.float32)
+    out[mask] = np.nan_to_num(values, nan=0.0, posinf=0.0, neginf=0.0).T
+    img = nib.Nifti1Image(out, grid.affine)
+    img.header["descrip"] = description.encode("ascii", "replace")[:79]
+    intent, params, name = map_intent(path.name.split(".")[0])
+    img.header.set_intent(intent, params, name=name)
+    img.header.set_xyzt_units("mm")
+    img.set_qform(grid.affine, code=1)
+    img.set_sform(grid.affine, code=1)
+    nib.save(img, str(path))
 
 
 def map_intent(stem: str, df: float | None = None) -> tuple[str, tuple[float, ...], str]:

@@ -15,6 +15,7 @@ from pathlib import Path
 
 import nibabel as nib
 import numpy as np
+import pandas as pd
 
 from grouplevel.report import figures
 from grouplevel.report.figure_files import DrawnFigure
@@ -322,7 +323,7 @@ def _symmetry_figures(name: str, frames: dict) -> list[DrawnFigure]:
                     "the 95% percentile interval of its replicates, one estimator for both. "
                     "Open marker: the LI of the fitted mixed-model maps (li_extent, li_effect), "
                     "which weighs animals by the fitted variances and so can differ; it is "
-                    "not what the interval is about."
+                    "not what the interval is about." + _outside_words(sym)
                     if same
                     else "Open markers: the LI of the fitted group maps; the bars are the "
                     "bootstrap intervals of a simpler group map (this folder predates the "
@@ -345,6 +346,33 @@ def _symmetry_figures(name: str, frames: dict) -> list[DrawnFigure]:
             )
         )
     return out
+
+
+def _outside_words(sym) -> str:
+    """The caption's warning for each bootstrap estimate outside its own interval."""
+    outside = []
+    for column, words, _marker in figures.LI_KINDS:
+        point = f"{column}_shortcut"
+        if not {point, f"{column}_low", f"{column}_high"} <= set(sym):
+            continue
+        for _, row in sym.iterrows():
+            value, low, high = (
+                float(pd.to_numeric(row[k], errors="coerce"))
+                for k in (point, f"{column}_low", f"{column}_high")
+            )
+            if np.isfinite(value) and np.isfinite(low) and (value < low or value > high):
+                outside.append(
+                    f"{row['region']} ({words}: {value:.2f} outside {low:.2f} to {high:.2f})"
+                )
+    if not outside:
+        return ""
+    return (
+        " The bootstrap estimate lies outside its own interval for "
+        + "; ".join(outside)
+        + ": its replicates are shifted away from it (an LI is bounded at ±1 and, by extent, "
+        "counts voxels over a threshold, so near ±1 resampled animals pull it towards 0); "
+        "that interval is biased and says little about the uncertainty."
+    )
 
 
 def _variance_caption(var_animal: np.ndarray, var_run: np.ndarray, name: str) -> str:

@@ -34,6 +34,28 @@ MAP_DESCRIPTIONS = {
 
 
 @dataclass(frozen=True)
+class AnimalMaps:
+    """Each animal's own estimate of what a group contrast tests, at every fitted voxel.
+
+    Attributes
+    ----------
+    animals
+        Animal IDs, one per row.
+    effect, se
+        ``(n_animals, V)`` the estimate and its standard error (NaN: no data, or a
+        standard error that is not known).
+    estimate
+        What the rows are, in words (e.g. "the precision-weighted mean of the animal's
+        runs").
+    """
+
+    animals: tuple[str, ...]
+    effect: np.ndarray
+    se: np.ndarray
+    estimate: str
+
+
+@dataclass(frozen=True)
 class Corrected:
     """Inference corrected for the many voxels tested (per-voxel arrays are in-mask).
 
@@ -105,6 +127,8 @@ class GroupMap:
     random_effects: str = "a random intercept per animal"
     # what the contrast tests (grouplevel.intake.design.contrast_kind): "animal", ...
     tested_level: str = "animal"
+    # each animal's own estimate of what the contrast tests (None: not computable)
+    animal_maps: AnimalMaps | None = None
 
     def volume(self, key: str) -> np.ndarray:
         """A per-voxel quantity as a full 3-D array (0 outside the mask).
