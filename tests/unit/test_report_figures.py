@@ -217,3 +217,19 @@ def test_figure_files_are_pdf_png_at_300_dpi_and_the_caption(tmp_path):
         }
     ]
     assert Image.open(io.BytesIO(png["sound_variance"])).format == "PNG"
+
+
+def test_variance_caption_says_only_what_the_medians_support():
+    from grouplevel.report.result_figures import _variance_caption
+
+    rng = np.random.default_rng(4)
+    sigma2 = rng.uniform(0.05, 0.1, 1000)
+    zero = np.where(rng.uniform(size=1000) < 0.7, 0.0, rng.uniform(0, 0.02, 1000))
+    words = _variance_caption(zero, sigma2, "sound")
+    assert "median" in words and "τ² = 0 " not in words
+    assert f"estimated at 0 at {np.mean(zero <= 0):.0%} of the voxels" in words
+    assert "more animals reduce" not in words  # the claim needs τ² to dominate
+    big = _variance_caption(sigma2 * 3, sigma2, "sound")
+    assert "τ² is the larger part at most voxels (median share 0.75)" in big
+    small = _variance_caption(sigma2 / 3, sigma2, "sound")
+    assert "σ² is the larger part" in small and "more animals reduce" not in small
