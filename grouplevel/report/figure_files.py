@@ -21,9 +21,12 @@ import io
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.backends.backend_pdf import FigureCanvasPdf
 from matplotlib.figure import Figure
+from matplotlib.transforms import Bbox
+from PIL import Image
 
 from grouplevel.errors import UserError
 from grouplevel.outputs.files import atomic_write
@@ -58,14 +61,41 @@ class DrawnFigure:
         return f"{self.title}. {self.caption}"
 
 
-def figure_bytes(figure: Figure, kind: str, dpi: int = PNG_DPI) -> bytes:
-    """The figure as PNG (at ``dpi``) or PDF bytes, cut to its content.
+def png_and_box(figure: Figure, dpi: int = PNG_DPI) -> tuple[bytes, Bbox]:
+    """The figure as PNG bytes at ``dpi``, cut to its drawn content, and that content's
+    box in inches (padded by :data:`PAD_INCHES`), from one draw.
+
+    When the content reaches beyond the figure's edges (a long label), the figure is
+    drawn again on a canvas that holds all of it, so nothing is ever cut off.
+    """
+    canvas = FigureCanvasAgg(figure)
+    figure.set_dpi(dpi)
+    canvas.draw()
+    box = figure.get_tightbbox(canvas.get_renderer()).padded(PAD_INCHES)
+    width, height = figure.get_size_inches()
+    if box.x0 < 0 or box.y0 < 0 or box.x1 > width or box.y1 > height:
+        return figure_bytes(figure, "png", dpi=dpi, box=box), box
+    pixels = np.asarray(canvas.buffer_rgba())
+    rows = pixels.shape[0]
+    left, right = int(np.floor(box.x0 * dpi)), int(np.ceil(box.x1 * dpi))
+    top, bottom = int(np.floor(rows - box.y1 * dpi)), int(np.ceil(rows - box.y0 * dpi))
+    image = Image.fromarray(
+        np.ascontiguousarray(pixels[max(top, 0) : bottom, max(left, 0) : right])
+    )
+    buffer = io.BytesIO()
+    image.save(buffer, format="PNG", dpi=(dpi, dpi))
+    return buffer.getvalue(), box
+
+
+def figure_bytes(figure: Figure, kind: str, dpi: int = PNG_DPI, box: Bbox | None = None) -> bytes:
+    """The figure as PNG (at ``dpi``) or PDF bytes, cut to ``box`` (inches; default: its
+    drawn content, padded).
 
     PDF files carry no creation date, so the same figure gives the same bytes.
     """
     buffer = io.BytesIO()
     options = {
-        "bbox_inches": "tight",
+        "bbox_inches": "tight" if box is None else box,
         "pad_inches": PAD_INCHES,
         "facecolor": figure.get_facecolor(),
     }
@@ -94,9 +124,9 @@ def write_figures(out_dir: str | Path, drawn: list[DrawnFigure]) -> tuple[dict[s
     png: dict[str, bytes] = {}
     entries = []
     for fig in drawn:
-        data = figure_bytes(fig.figure, "png")
+        data, box = png_and_box(fig.figure)  # one box for both files
         atomic_write(_file(folder, fig, ".png"), data)
-        atomic_write(_file(folder, fig, ".pdf"), figure_bytes(fig.figure, "pdf"))
+        atomic_write(_file(folder, fig, ".pdf"), figure_bytes(fig.figure, "pdf", box=box))
         atomic_write(_file(folder, fig, ".txt"), (fig.caption_text + "\n").encode("utf-8"))
         png[fig.stem] = data
         entries.append(

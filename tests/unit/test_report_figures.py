@@ -233,3 +233,19 @@ def test_variance_caption_says_only_what_the_medians_support():
     assert "τ² is the larger part at most voxels (median share 0.75)" in big
     small = _variance_caption(sigma2 / 3, sigma2, "sound")
     assert "σ² is the larger part" in small and "more animals reduce" not in small
+
+
+def test_content_beyond_the_figure_edge_is_kept():
+    from matplotlib.figure import Figure
+
+    from grouplevel.report.figure_files import png_and_box
+
+    inside = Figure(figsize=(2.0, 1.0))
+    inside.text(0.5, 0.5, "inside", ha="center")
+    png, box = png_and_box(inside, dpi=100)
+    assert Image.open(io.BytesIO(png)).size[0] < 200  # cut to the word, not the page
+    beyond = Figure(figsize=(2.0, 1.0))
+    beyond.text(0.9, 0.5, "a label that runs far past the right edge")
+    png, box = png_and_box(beyond, dpi=100)
+    assert box.x1 > 2.0
+    assert Image.open(io.BytesIO(png)).size[0] == pytest.approx(box.width * 100, abs=2)
