@@ -630,6 +630,10 @@ def build_context(out_dir: Path, *, title: str | None = None) -> dict:
 def render_report(out_dir: Path, *, title: str | None = None) -> Path:
     """Render ``out_dir/report.html`` from a finished output folder.
 
+    Every figure is also written to ``out_dir/figures/`` (PDF, 300 dpi PNG, caption;
+    :mod:`grouplevel.report.figure_files`), the report embeds those PNG files, and
+    ``summary.json`` lists them under ``outputs.figures``.
+
     Parameters
     ----------
     out_dir
