@@ -307,24 +307,38 @@ def coronal_montage(
         label,
         outlines,
         f"AP: mm from {origin_name}; left hemisphere on the left; ○ cluster peak",
+        empty=not np.any(overlay),
     )
     return fig
 
 
-def _map_key(fig: Figure, mappable: ScalarMappable, label: str, outlines, note: str) -> None:
+def _map_key(
+    fig: Figure, mappable: ScalarMappable, label: str, outlines, note: str, empty: bool = False
+) -> None:
     """The colour bar with its units and ticks at the shown range, the outline key and a
     note, in the bottom strip of a map figure (white on the dark background)."""
     total = fig.get_figheight()
-    cax = fig.add_axes([0.34, 0.52 / total, 0.32, 0.13 / total])
-    norm = mappable.norm
-    low = float(getattr(norm, "threshold", 0.0))
-    high = float(norm.vmax)
-    bar = fig.colorbar(mappable, cax=cax, orientation="horizontal")
-    # both sides of the weakest shown value meet in the middle: one tick, "±low"
-    bar.set_ticks([-high, 0.0, high])
-    bar.set_ticklabels([f"{-high:.1f}", f"±{low:.1f}", f"{high:.1f}"])
-    bar.ax.tick_params(labelsize=6.5, pad=1, colors="white")
-    bar.outline.set_edgecolor("0.7")
+    if empty:  # no colour scale for nothing: say so where the bar would be
+        fig.text(
+            0.5,
+            0.58 / total,
+            "no voxel shown (none survives)",
+            ha="center",
+            va="center",
+            fontsize=7.5,
+            color="white",
+        )
+    else:
+        cax = fig.add_axes([0.34, 0.52 / total, 0.32, 0.13 / total])
+        norm = mappable.norm
+        low = float(getattr(norm, "threshold", 0.0))
+        high = float(norm.vmax)
+        bar = fig.colorbar(mappable, cax=cax, orientation="horizontal")
+        # both sides of the weakest shown value meet in the middle: one tick, "±low"
+        bar.set_ticks([-high, 0.0, high])
+        bar.set_ticklabels([f"{-high:.1f}", f"±{low:.1f}", f"{high:.1f}"])
+        bar.ax.tick_params(labelsize=6.5, pad=1, colors="white")
+        bar.outline.set_edgecolor("0.7")
     fig.text(0.5, 0.28 / total, label, ha="center", va="center", fontsize=7.5, color="white")
     fig.text(0.5, 0.1 / total, note, ha="center", va="center", fontsize=6.5, color="0.8")
     if outlines:
@@ -436,7 +450,14 @@ def projection_views(
         ax.tick_params(labelsize=6.5, colors="white")
         for spine in ax.spines.values():
             spine.set_visible(False)
-    _map_key(fig, ScalarMappable(norm=norm, cmap=cmap), label, (), f"mm from {origin_name}")
+    _map_key(
+        fig,
+        ScalarMappable(norm=norm, cmap=cmap),
+        label,
+        (),
+        f"mm from {origin_name}",
+        empty=not np.any(overlay),
+    )
     return fig
 
 

@@ -249,3 +249,15 @@ def test_content_beyond_the_figure_edge_is_kept():
     png, box = png_and_box(beyond, dpi=100)
     assert box.x1 > 2.0
     assert Image.open(io.BytesIO(png)).size[0] == pytest.approx(box.width * 100, abs=2)
+
+
+def test_a_map_without_surviving_voxels_has_no_colour_scale():
+    mask = np.ones((5, 6, 4), dtype=bool)
+    template = figures.Volume(np.ones(mask.shape), np.zeros(3), np.full(3, 0.2))
+    empty = np.zeros(mask.shape)
+    slices = figures.choose_slices(mask, figures.cluster_peaks(empty))
+    fig = figures.coronal_montage(
+        template, empty, mask, np.zeros(3), slices, label="z", origin_name="bregma"
+    )
+    assert len(fig.axes) == len(slices)  # the slices only: no colour-bar axes
+    assert "no voxel shown (none survives)" in [t.get_text() for t in fig.texts]
