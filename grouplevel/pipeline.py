@@ -31,7 +31,7 @@ from scipy import stats
 
 from grouplevel import __version__
 from grouplevel.anatomy.regions import RegionModel
-from grouplevel.anatomy.tables import RegionData, region_data, region_tables
+from grouplevel.anatomy.tables import RegionData, region_data, region_tables, surviving_voxels
 from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
@@ -88,6 +88,8 @@ from grouplevel.questions.ask import (
     skipped_warning,
 )
 from grouplevel.questions.means import DIFFERENCE
+from grouplevel.questions.sides import asked_region
+from grouplevel.questions.specificity import leaf_rows
 from grouplevel.results.compute import Backend, fit_design, open_backend, random_terms
 from grouplevel.results.correction import permutation_arguments
 from grouplevel.results.maps import (
@@ -1156,6 +1158,7 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "variance_components": _components_summary(gm),
         "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
         "inference": _inference_summary(gm, study.settings.inference.alpha),
+        **_figure_maps_summary(study, gm),
     }
     if gm.animal_effects is not None:
         entry["animal_maps"] = animal_maps_summary(gm.animal_effects)
@@ -1330,6 +1333,74 @@ def _ftest_summary(study: Study, fm: FTestMap) -> dict:
             "mm": [round(float(v), 4) for v in xyz],
         }
     return entry
+
+
+def _surviving_z(study: Study, gm: GroupMap) -> tuple[np.ndarray, str]:
+    """z where the chosen correction's p ≤ alpha (0 elsewhere), and that method."""
+    settings = study.settings
+    method = settings.clusters.resolved_method(settings.inference)
+    keep = surviving_voxels(gm, settings.inference.alpha)[method]
+    return np.where(keep, gm.z, 0.0), method
+
+
+def _targets_volume(study: Study, gm: GroupMap) -> tuple[np.ndarray, dict[str, str]] | None:
+    """The targets of ``[questions]`` on the study grid: label k = the k-th target (a
+    voxel in two targets takes the first), and their names; None without them."""
+    questions = study.settings.questions_for(gm.first_level)
+    atlas = study.atlas
+    if atlas is None or not questions.targets:
+        return None
+    volume = np.zeros(study.grid.shape, dtype=np.int16)
+    labels = {}
+    indices = atlas.regions["index"].to_numpy()
+    for k, name in enumerate(questions.targets, start=1):
+        rows = asked_region(atlas, name, questions.stimulus_side, "[questions] targets").rows
+        inside = np.isin(atlas.label_volume, indices[leaf_rows(atlas, rows)]) & (volume == 0)
+        volume[inside] = k
+        labels[str(k)] = str(name)
+    return volume, labels
+
+
+def _write_figure_maps(folder: Path, study: Study, gm: GroupMap) -> None:
+    """Maps for figures made elsewhere: the thresholded z map and the targets as labels
+    (each animal's estimate is written by :func:`write_animal_maps`)."""
+    grid = gm.grid
+    label = f"{gm.first_level or ''} {gm.contrast}".strip()
+    z, method = _surviving_z(study, gm)
+    write_map(
+        folder / "z_surviving.nii.gz",
+        z,
+        gm.mask,
+        grid,
+        f"grouplevel z where {method} p<={study.settings.inference.alpha:g} [{label}]",
+    )
+    targets = _targets_volume(study, gm)
+    if targets is not None:
+        write_map(
+            folder / "targets.nii.gz",
+            targets[0],
+            np.ones(grid.shape, dtype=bool),
+            grid,
+            f"grouplevel targets of the questions [{label}]",
+            dtype=np.int16,
+        )
+
+
+def _figure_maps_summary(study: Study, gm: GroupMap) -> dict:
+    """summary.json entries of the maps :func:`_write_figure_maps` writes."""
+    z, method = _surviving_z(study, gm)
+    out: dict = {
+        "z_surviving": {
+            "map": "z_surviving.nii.gz",
+            "method": method,
+            "alpha": study.settings.inference.alpha,
+            "voxels": int((z != 0).sum()),
+        }
+    }
+    targets = _targets_volume(study, gm)
+    if targets is not None:
+        out["targets_map"] = {"map": "targets.nii.gz", "labels": targets[1]}
+    return out
 
 
 def _write_answers(folder: Path, gm: GroupMap, label: str) -> None:
@@ -1518,10 +1589,12 @@ def write_outputs(
         grid = study.grid
         with clock.step("write maps"):
             for gm in maps:
+                folder = child_path(tmp, gm.name)
                 if isinstance(gm, FTestMap):
-                    _write_ftest_map(child_path(tmp, gm.name), gm)
+                    _write_ftest_map(folder, gm)
                 else:
-                    _write_group_map(child_path(tmp, gm.name), gm)
+                    _write_group_map(folder, gm)
+                    _write_figure_maps(folder, study, gm)
         summary = {
             "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),

@@ -198,6 +198,7 @@ def _run(args: argparse.Namespace) -> int:
     )
     print(f"outputs written to {out}")
     print(f"  report: {out / 'report.html'}")
+    print(f"  figures: {out / 'figures'}  (PDF, 300 dpi PNG and caption of each)")
     return 0
 
 
@@ -214,6 +215,7 @@ def _report(args: argparse.Namespace) -> int:
     report = render_report(args.folder, title=args.title)
     print(f"methods: {args.folder / 'methods.md'}")
     print(f"tables: {len(tables)} files in {args.folder / 'tables'}")
+    print(f"figures: {args.folder / 'figures'}")
     print(f"report: {report}")
     return 0
 
@@ -324,6 +326,7 @@ def _demo(args: argparse.Namespace) -> int:
     out = run_study(toml, results, force=args.force, log=None if args.quiet else log)
     print(f"demo finished: outputs in {out}")
     print(f"  report:  {out / 'report.html'}  (open it in a browser)")
+    print(f"  figures: {out / 'figures'}  (each as PDF, 300 dpi PNG and caption)")
     print(f"  summary: {out / 'summary.json'}")
     return 0
 

@@ -95,6 +95,12 @@ from grouplevel.results.maps import GroupMap
 # seed; these offsets keep their random streams apart from the main permutations.
 _BOOTSTRAP_STREAM = 1
 _ASYMMETRY_STREAM = 2
+# Run quality measures a run's agreement with the group map over at least this many
+# voxels (a correlation over fewer says little; our own choice), and a voxel belongs to
+# the targets when at least half of it is covered by them (majority rule, common
+# practice for labelling voxels from an atlas).
+MIN_AGREEMENT_VOXELS = 20
+TARGET_SHARE = 0.5
 
 
 @dataclass(frozen=True)
@@ -624,9 +630,12 @@ def answer_questions(
     )
     weighted = plan.kind.rows_in_mean()
     in_runs = weighted if weighted.size == len(design.animal) and weighted.any() else None
-    quality = _run_quality(y, s2, design, runs, loo, shell, questions, plan.animals, in_runs)
     method = settings.clusters.resolved_method(settings.inference)
     surviving = surviving_voxels(gm, alpha)[method]
+    agreement = _agreement_voxels(regions, questions, surviving, method)
+    quality = _run_quality(
+        y, s2, design, runs, loo, shell, questions, plan.animals, agreement, in_runs
+    )
     response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
     if regions is None:
         reason = "the study has no [atlas], so no region can be asked about"
@@ -931,20 +940,54 @@ def _overlap_verdict(go: GroupOverlap, response: dict, flag_suffix: str) -> dict
     }
 
 
-def _run_quality(y, s2, design, runs, loo, shell, questions, in_mean, in_runs=None):
+def _agreement_voxels(
+    regions: RegionData | None, questions: QuestionSettings, surviving: np.ndarray, method: str
+) -> tuple[np.ndarray | None, str]:
+    """Where a run's agreement with the group map is measured, and that place in words.
+
+    The targets when ``[questions] targets`` names them (chosen before the data were
+    seen); else the voxels surviving the map's correction when there are at least
+    :data:`MIN_AGREEMENT_VOXELS`; else the whole analysed brain.
+    """
+    if regions is not None and questions.targets:
+        atlas = regions.atlas
+        rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
+        share = np.asarray(atlas.shares[:, leaf_rows(atlas, rows)].sum(axis=1)).ravel()
+        inside = share >= TARGET_SHARE
+        if inside.sum() >= MIN_AGREEMENT_VOXELS:
+            return inside, f"inside the targets ({', '.join(questions.targets)})"
+    surviving = np.asarray(surviving, dtype=bool)
+    if surviving.sum() >= MIN_AGREEMENT_VOXELS:
+        return surviving, f"inside the voxels surviving {method}"
+    return None, "the whole analysed brain (too few surviving voxels, no targets)"
+
+
+def _run_quality(
+    y, s2, design, runs, loo, shell, questions, in_mean, agreement, in_runs=None
+) -> RunQuality:
     """Run quality among the runs of the animals whose mean is asked about.
 
     The robust z compares runs with each other; runs of another group (with another
     response) would make the runs of either group look unusual. For the mean of one
     level of a within-animal variable (the drug runs), ``in_runs`` keeps only that
-    level's runs: the other runs show another response.
+    level's runs: the other runs show another response. ``agreement`` is
+    :func:`_agreement_voxels`.
     """
+    where_mask, where = agreement
     keep = np.asarray(in_mean, dtype=bool)[design.animal]
     if in_runs is not None:
         keep &= np.asarray(in_runs, dtype=bool)
     if keep.all():
         return run_quality(
-            y, s2, design.animal, runs, loo.effect, shell, threshold=questions.outlier_z
+            y,
+            s2,
+            design.animal,
+            runs,
+            loo.effect,
+            shell,
+            threshold=questions.outlier_z,
+            agreement=where_mask,
+            agreement_where=where,
         )
     animals, codes = np.unique(design.animal[keep], return_inverse=True)
     return run_quality(
@@ -955,6 +998,8 @@ def _run_quality(y, s2, design, runs, loo, shell, questions, in_mean, in_runs=No
         loo.effect[animals],
         shell,
         threshold=questions.outlier_z,
+        agreement=where_mask,
+        agreement_where=where,
     )
 
 

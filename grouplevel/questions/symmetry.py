@@ -1170,6 +1170,8 @@ TABLE_COLUMNS = (
     "li_effect_low",
     "li_effect_high",
     "li_threshold_free",
+    "li_extent_shortcut",
+    "li_effect_shortcut",
     "left_effect",
     "right_effect",
     "difference",
@@ -1193,8 +1195,9 @@ def symmetry_table(results: Sequence[RegionSymmetry]) -> pd.DataFrame:
     """One row per region pair with the LIs, the hemispheric test and the verdict.
 
     Columns are :data:`TABLE_COLUMNS`; ``li_*_low``/``high`` are the bootstrap percentile
-    interval, ``margin`` is Δ on the difference, ``reasons`` the verdict's sentences
-    joined with "; ".
+    interval of the estimator whose value on the original animals is ``li_*_shortcut``
+    (``li_extent`` and ``li_effect`` are the LIs of the fitted group maps), ``margin`` is
+    Δ on the difference, ``reasons`` the verdict's sentences joined with "; ".
     """
     rows = []
     for r in results:
@@ -1209,6 +1212,11 @@ def symmetry_table(results: Sequence[RegionSymmetry]) -> pd.DataFrame:
                 "li_effect_low": r.bootstrap.effect_ci[0],
                 "li_effect_high": r.bootstrap.effect_ci[1],
                 "li_threshold_free": r.threshold_free.value,
+                # the bootstrap's own estimator on the original animals: the point that
+                # li_*_low/high are an interval of (li_extent/li_effect are of the fitted
+                # mixed-model maps and can differ from it)
+                "li_extent_shortcut": r.bootstrap.extent,
+                "li_effect_shortcut": r.bootstrap.effect,
                 "left_effect": t.left_effect,
                 "right_effect": t.right_effect,
                 "difference": t.difference,
