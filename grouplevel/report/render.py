@@ -802,7 +802,7 @@ def render_report(out_dir: Path, *, title: str | None = None) -> Path:
 
     Every figure is also written to ``out_dir/figures/`` (PDF, 300 dpi PNG, caption;
     :mod:`grouplevel.report.figure_files`), the report embeds those PNG files, and
-    ``summary.json`` lists them under ``outputs.figures``.
+    ``report.json`` lists them under ``figures``.
 
     Parameters
     ----------
