@@ -167,8 +167,12 @@
   }
 
   function colour(res, z) {
+    /* the shown range of |z| (threshold to the largest) onto each half of the signed
+       scale, as in the static figures: the weakest shown value gets the deepest colour */
     var zmax = res.spec.zmax || 1;
-    var t = Math.max(0, Math.min(1, (z + zmax) / (2 * zmax)));
+    var low = Math.min(Number(ui.threshold.value) || 0, zmax);
+    var share = Math.max(0, Math.min(1, (Math.abs(z) - low) / Math.max(zmax - low, 1e-9)));
+    var t = 0.5 + 0.5 * (z < 0 ? -share : share);
     return data.lut[Math.round(t * (data.lut.length - 1))];
   }
 
@@ -275,7 +279,9 @@
     ctx.textBaseline = "top";
     var zmax = res.spec.zmax;
     ctx.textAlign = "left"; ctx.fillText("z " + (-zmax).toFixed(1), 0, barH + 2);
-    ctx.textAlign = "center"; ctx.fillText("0", w / 2, barH + 2);
+    var low = Math.min(Number(ui.threshold.value) || 0, zmax);
+    ctx.textAlign = "center";
+    ctx.fillText(low > 0 ? "\u00b1" + low.toFixed(1) : "0", w / 2, barH + 2);
     ctx.textAlign = "right"; ctx.fillText(zmax.toFixed(1), w, barH + 2);
   }
 
@@ -507,6 +513,7 @@
     });
     ui.threshold.addEventListener("input", function () {
       ui.thresholdText.textContent = Number(ui.threshold.value).toFixed(2);
+      drawBar();
       draw();
     });
     ui.survivors.addEventListener("change", draw);

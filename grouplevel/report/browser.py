@@ -16,7 +16,7 @@ Everything it needs is embedded in the page as one JSON block of compressed arra
   survive the report's correction (one byte each), and each animal's estimate and its
   standard error quantised to 16 bits per animal (largest magnitude → 32000) with the
   number of its runs with data (one byte);
-- the diverging colour table of the static figures (``figures.STAT_CMAP``).
+- the signed colour scale of the static figures (:func:`grouplevel.report.colours.signed_colormap`).
 
 Each run's own value is shown when the result folder keeps it (``run_effect.nii.gz``,
 small studies only) and it fits :data:`RUN_VALUES_EMBED`; otherwise the browser lists
@@ -47,7 +47,7 @@ import numpy as np
 from grouplevel.errors import UserError
 from grouplevel.intake.images import Grid
 from grouplevel.outputs.animal_maps import read_animal_maps
-from grouplevel.report.figures import STAT_CMAP
+from grouplevel.report.colours import TEMPLATE_GREY_MAX, signed_colormap
 
 #: Largest size of the embedded data (base64 text) before the grid is thinned. Our own
 #: choice: a report of a few tens of MB still opens in a second from a shared drive or
@@ -161,10 +161,12 @@ def _template_grey(summary: dict, reference) -> tuple[np.ndarray, str]:
             if inside.size:
                 lo, hi = np.percentile(inside, TEMPLATE_WINDOW)
                 span = hi - lo if hi > lo else 1.0
-                grey = np.clip((data - lo) / span, 0.0, 1.0) * 255
+                # dark greys only, as in the static figures: every coloured voxel is
+                # lighter than the brain under it (colours.TEMPLATE_GREY_MAX)
+                grey = np.clip((data - lo) / span, 0.0, 1.0) * 255 * TEMPLATE_GREY_MAX
                 return np.round(grey).astype(np.uint8), "the study template"
     data, _ = _canonical(reference)
-    grey = np.where(np.asarray(data) > 0, 150, 20).astype(np.uint8)
+    grey = np.where(np.asarray(data) > 0, round(110 * TEMPLATE_GREY_MAX), 10).astype(np.uint8)
     return grey, "the analysis mask (the template was not found or is on another grid)"
 
 
@@ -227,9 +229,7 @@ def _changed_inputs(summary: dict, paths: list[str]) -> list[str]:
 
 
 def _colour_table() -> list[list[int]]:
-    from matplotlib import colormaps
-
-    rgba = colormaps[STAT_CMAP](np.linspace(0.0, 1.0, COLOUR_TABLE_SIZE))
+    rgba = signed_colormap()(np.linspace(0.0, 1.0, COLOUR_TABLE_SIZE))
     return np.round(rgba[:, :3] * 255).astype(int).tolist()
 
 
