@@ -27,7 +27,7 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 
-from grouplevel.intake.images import Grid
+from grouplevel.intake.images import Grid, map_intent
 from grouplevel.results.maps import AnimalEffects
 
 #: File of each per-animal quantity (the keys of the summary entry's ``files``).
@@ -66,7 +66,8 @@ def write_animal_maps(
         img.header["descrip"] = f"grouplevel {_DESCRIPTIONS[key]} [{label}]".encode(
             "ascii", "replace"
         )[:79]
-        img.header.set_intent("estimate", (), name=f"animal {key}"[:16])
+        intent, params, intent_name = map_intent(name.split(".")[0])
+        img.header.set_intent(intent, params, name=intent_name)
         img.header.set_xyzt_units("mm")
         img.set_qform(grid.affine, code=1)
         img.set_sform(grid.affine, code=1)

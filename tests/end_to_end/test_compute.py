@@ -245,9 +245,10 @@ def test_unreachable_scheduler_is_a_user_error():
             pass
 
 
-def _without_run_details(value, drop=("created", "inputs", "compute", "versions")):
+def _without_run_details(value, drop=("created", "inputs", "compute", "versions", "output_folder")):
     """summary.json without what differs between two runs of one study by design: the
-    time, the inputs' folder, the [compute] settings and the tool versions block."""
+    time, the inputs' and the output's folders, the [compute] settings and the tool
+    versions block."""
     if isinstance(value, dict):
         return {k: _without_run_details(v, drop) for k, v in value.items() if k not in drop}
     if isinstance(value, list):

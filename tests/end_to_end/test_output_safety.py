@@ -20,6 +20,7 @@ Outside sources named beside the checks:
 from __future__ import annotations
 
 import hashlib
+import importlib
 import json
 import os
 import re
@@ -522,7 +523,10 @@ def test_interrupted_run_keeps_the_earlier_output(tmp_path, capsys, monkeypatch)
     def interrupted(_folder, **_k):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(pipeline, "render_report", interrupted)
+    # the report is imported when it is drawn (grouplevel.report loads it lazily)
+    monkeypatch.setattr(
+        importlib.import_module("grouplevel.report.render"), "render_report", interrupted
+    )
     code = main(["run", str(toml), "--out", str(out), "--quiet", "--force"])
     assert code == 130
     assert_unchanged(earlier)

@@ -145,7 +145,7 @@ def test_plan_over_sessions(session_output, tmp_path):
 
 
 def test_report_words_for_the_session_level():
-    from grouplevel.report.render import _more_levels_text
+    from grouplevel.report.result_figures import more_levels_text as _more_levels_text
 
     text = _more_levels_text(
         {
