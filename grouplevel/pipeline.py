@@ -31,7 +31,7 @@ from scipy import stats
 
 from grouplevel import __version__
 from grouplevel.anatomy.regions import RegionModel
-from grouplevel.anatomy.tables import RegionData, region_data, region_tables
+from grouplevel.anatomy.tables import RegionData, region_data, region_tables, surviving_voxels
 from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
@@ -66,6 +66,7 @@ from grouplevel.model import (
 )
 from grouplevel.model.contrasts import session_df, slope_df
 from grouplevel.model.ftest import test_f
+from grouplevel.model.marginal import RandomTerms, marginal_run_variance
 from grouplevel.outputs.animal_maps import (
     RUN_VALUES_MAX,
     animal_maps_summary,
@@ -82,10 +83,14 @@ from grouplevel.progress import Progress
 from grouplevel.questions.ask import (
     answer_questions,
     answers_not_asked,
+    comparison_note,
     question_plan,
     skipped_warning,
 )
-from grouplevel.results.compute import Backend, fit_design, open_backend
+from grouplevel.questions.means import DIFFERENCE
+from grouplevel.questions.sides import asked_region
+from grouplevel.questions.specificity import leaf_rows
+from grouplevel.results.compute import Backend, fit_design, open_backend, random_terms
 from grouplevel.results.correction import permutation_arguments
 from grouplevel.results.maps import (
     FTEST_MAP_DESCRIPTIONS,
@@ -146,8 +151,15 @@ SMOOTHNESS_MAX_RUNS = 32
 _SMOOTHNESS_CHUNK = 65536
 
 
-def _smoothness(y, variance, fit, X, mask: np.ndarray, grid: Grid) -> Smoothness | None:
-    """Residual smoothness from standardised residuals (Kiebel et al. 1999)."""
+def _smoothness(
+    y, variance, fit, X, animal, terms: RandomTerms, mask: np.ndarray, grid: Grid
+) -> Smoothness | None:
+    """Residual smoothness from standardised residuals (Kiebel et al. 1999).
+
+    Each run's residual is divided by its marginal standard deviation under the model
+    that was fitted (random slopes, session and group variances included:
+    :func:`grouplevel.model.marginal.marginal_run_variance`).
+    """
     n_runs, n_vox = y.shape
     dof_all = n_runs - np.linalg.matrix_rank(X)
     if dof_all <= 1:
@@ -158,9 +170,9 @@ def _smoothness(y, variance, fit, X, mask: np.ndarray, grid: Grid) -> Smoothness
     for lo in range(0, n_vox, _SMOOTHNESS_CHUNK):
         sl = slice(lo, min(n_vox, lo + _SMOOTHNESS_CHUNK))
         resid = np.asarray(y[runs, sl], dtype=float) - X[runs] @ fit.beta[sl].T
-        total = fit.var_animal[None, sl] + fit.var_run[None, sl]
-        if variance is not None:
-            total = total + variance[runs, sl]
+        components = {k: np.asarray(v)[sl] for k, v in _components(fit).items()}
+        s2 = None if variance is None else variance[:, sl]
+        total = marginal_run_variance(components, X, animal, terms, s2)[runs]
         with np.errstate(invalid="ignore", divide="ignore"):
             ratio = resid / np.sqrt(total)
         standard[:, sl] = np.where(np.isfinite(ratio), ratio, 0.0)
@@ -710,7 +722,9 @@ def _fit(
         present=present,
         components=_components(fit),
         var_animal=_pooled_var_animal(fit, random),
-        smooth=_smoothness(y, s2, fit, design.matrix, mask, study.grid),
+        smooth=_smoothness(
+            y, s2, fit, design.matrix, design.animal, random_terms(design, random), mask, study.grid
+        ),
     )
 
 
@@ -956,6 +970,7 @@ def _with_answers(
     """The group map with the answers to its questions (or why they were not asked)."""
     settings, fl = study.settings, fitted.fl
     plan = question_plan(fl.design, c)
+    terms = random_terms(fl.design, fl.random)
     if plan.asked:
         log(f"  questions of {gm.name}: symmetry, specificity, consistency, run quality")
         answers = answer_questions(
@@ -970,10 +985,29 @@ def _with_answers(
             settings.questions_for(fl.name),
             settings,
             backend=backend,
+            terms=terms,
+            model_df=lambda fit, present, cc: _contrast_df(study, fl, fit, present, cc),
         )
+        if fl.conditions:
+            answers = replace(answers, notes=(*answers.notes, comparison_note(fl.conditions)))
         return replace(gm, answers=answers)
     q = settings.questions_for(fl.name)
-    answers = answers_not_asked(plan, fl.design, c, regions, q, settings, gm, fitted.y)
+    log(f"  questions of {gm.name} (a difference): its own versions of the questions")
+    answers = answers_not_asked(
+        plan,
+        fl.design,
+        c,
+        regions,
+        q,
+        settings,
+        gm,
+        fitted.y,
+        s2=fitted.s2,
+        fit=fitted.fit,
+        runs=fl.runs,
+        terms=terms,
+        model_df=lambda fit, present, cc: _contrast_df(study, fl, fit, present, cc),
+    )
     return replace(gm, answers=answers)
 
 
@@ -1009,7 +1043,15 @@ def fit_study(
             m, w = _fit_first_level(study, fl, log, quiet, backend, clock)
             maps.extend(m)
             warnings.extend(w)
-    warnings.extend(skipped_warning([m.name for m in maps if m.answers and not m.answers.asked]))
+    warnings.extend(
+        skipped_warning(
+            [
+                m.name
+                for m in maps
+                if m.answers and not m.answers.asked and m.answers.contrast_kind != DIFFERENCE
+            ]
+        )
+    )
     return maps, warnings
 
 
@@ -1116,6 +1158,7 @@ def _result_summary(study: Study, gm: GroupMap) -> dict:
         "variance_components": _components_summary(gm),
         "voxels_p_below_0.001_uncorrected": int((gm.p < 0.001).sum()),
         "inference": _inference_summary(gm, study.settings.inference.alpha),
+        **_figure_maps_summary(study, gm),
     }
     if gm.animal_effects is not None:
         entry["animal_maps"] = animal_maps_summary(gm.animal_effects)
@@ -1290,6 +1333,74 @@ def _ftest_summary(study: Study, fm: FTestMap) -> dict:
             "mm": [round(float(v), 4) for v in xyz],
         }
     return entry
+
+
+def _surviving_z(study: Study, gm: GroupMap) -> tuple[np.ndarray, str]:
+    """z where the chosen correction's p ≤ alpha (0 elsewhere), and that method."""
+    settings = study.settings
+    method = settings.clusters.resolved_method(settings.inference)
+    keep = surviving_voxels(gm, settings.inference.alpha)[method]
+    return np.where(keep, gm.z, 0.0), method
+
+
+def _targets_volume(study: Study, gm: GroupMap) -> tuple[np.ndarray, dict[str, str]] | None:
+    """The targets of ``[questions]`` on the study grid: label k = the k-th target (a
+    voxel in two targets takes the first), and their names; None without them."""
+    questions = study.settings.questions_for(gm.first_level)
+    atlas = study.atlas
+    if atlas is None or not questions.targets:
+        return None
+    volume = np.zeros(study.grid.shape, dtype=np.int16)
+    labels = {}
+    indices = atlas.regions["index"].to_numpy()
+    for k, name in enumerate(questions.targets, start=1):
+        rows = asked_region(atlas, name, questions.stimulus_side, "[questions] targets").rows
+        inside = np.isin(atlas.label_volume, indices[leaf_rows(atlas, rows)]) & (volume == 0)
+        volume[inside] = k
+        labels[str(k)] = str(name)
+    return volume, labels
+
+
+def _write_figure_maps(folder: Path, study: Study, gm: GroupMap) -> None:
+    """Maps for figures made elsewhere: the thresholded z map and the targets as labels
+    (each animal's estimate is written by :func:`write_animal_maps`)."""
+    grid = gm.grid
+    label = f"{gm.first_level or ''} {gm.contrast}".strip()
+    z, method = _surviving_z(study, gm)
+    write_map(
+        folder / "z_surviving.nii.gz",
+        z,
+        gm.mask,
+        grid,
+        f"grouplevel z where {method} p<={study.settings.inference.alpha:g} [{label}]",
+    )
+    targets = _targets_volume(study, gm)
+    if targets is not None:
+        write_map(
+            folder / "targets.nii.gz",
+            targets[0],
+            np.ones(grid.shape, dtype=bool),
+            grid,
+            f"grouplevel targets of the questions [{label}]",
+            dtype=np.int16,
+        )
+
+
+def _figure_maps_summary(study: Study, gm: GroupMap) -> dict:
+    """summary.json entries of the maps :func:`_write_figure_maps` writes."""
+    z, method = _surviving_z(study, gm)
+    out: dict = {
+        "z_surviving": {
+            "map": "z_surviving.nii.gz",
+            "method": method,
+            "alpha": study.settings.inference.alpha,
+            "voxels": int((z != 0).sum()),
+        }
+    }
+    targets = _targets_volume(study, gm)
+    if targets is not None:
+        out["targets_map"] = {"map": "targets.nii.gz", "labels": targets[1]}
+    return out
 
 
 def _write_answers(folder: Path, gm: GroupMap, label: str) -> None:
@@ -1478,10 +1589,12 @@ def write_outputs(
         grid = study.grid
         with clock.step("write maps"):
             for gm in maps:
+                folder = child_path(tmp, gm.name)
                 if isinstance(gm, FTestMap):
-                    _write_ftest_map(child_path(tmp, gm.name), gm)
+                    _write_ftest_map(folder, gm)
                 else:
-                    _write_group_map(child_path(tmp, gm.name), gm)
+                    _write_group_map(folder, gm)
+                    _write_figure_maps(folder, study, gm)
         summary = {
             "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),

@@ -198,6 +198,7 @@ def _run(args: argparse.Namespace) -> int:
     )
     print(f"outputs written to {out}")
     print(f"  report: {out / 'report.html'}")
+    print(f"  figures: {out / 'figures'}  (PDF, 300 dpi PNG and caption of each)")
     return 0
 
 
@@ -214,6 +215,7 @@ def _report(args: argparse.Namespace) -> int:
     report = render_report(args.folder, title=args.title)
     print(f"methods: {args.folder / 'methods.md'}")
     print(f"tables: {len(tables)} files in {args.folder / 'tables'}")
+    print(f"figures: {args.folder / 'figures'}")
     print(f"report: {report}")
     return 0
 
@@ -221,6 +223,7 @@ def _report(args: argparse.Namespace) -> int:
 def _plan(args: argparse.Namespace) -> int:
     from grouplevel.outputs.folder import require_grouplevel_output
     from grouplevel.planning.plan import design_text, plan_from_output, write_plan
+    from grouplevel.report.words import count
 
     require_grouplevel_output(args.folder)
     plans = plan_from_output(
@@ -241,11 +244,11 @@ def _plan(args: argparse.Namespace) -> int:
             best = plan.cheapest
             print(
                 f"{where}: cheapest design with power >= {args.target_power}: "
-                f"{design_text(best)} (power {best['power']:.2f}, cost {best['cost']:g})"
+                f"{design_text(best, 'x')} (power {best['power']:.2f}, cost {best['cost']:g})"
             )
-            if "power_one_more_session" in best.index:
+            if "power_one_more_session" in best:
                 print(
-                    f"  one more session of {int(best['runs'])} run(s): power "
+                    f"  one more session of {count(int(best['runs']), 'run')}: power "
                     f"{best['power_one_more_session']:.2f}; the same runs added to the "
                     f"existing sessions: {best['power_same_runs_in_sessions']:.2f}"
                 )
@@ -323,6 +326,7 @@ def _demo(args: argparse.Namespace) -> int:
     out = run_study(toml, results, force=args.force, log=None if args.quiet else log)
     print(f"demo finished: outputs in {out}")
     print(f"  report:  {out / 'report.html'}  (open it in a browser)")
+    print(f"  figures: {out / 'figures'}  (each as PDF, 300 dpi PNG and caption)")
     print(f"  summary: {out / 'summary.json'}")
     return 0
 

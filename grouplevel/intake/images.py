@@ -206,6 +206,10 @@ def grid_mismatch(reference: Grid, other: Grid) -> str | None:
 _INTENTS: tuple[tuple[str, str, str], ...] = (
     # (stem prefix, intent, name) — the first matching prefix wins
     ("asymmetry_p_fwe", "p value", "p FWE asymmetry"),
+    ("animal_effect", "estimate", "animal effect"),
+    ("animal_se", "estimate", "animal SE"),
+    ("targets", "label", "target regions"),
+    ("z_surviving", "z score", "z surviving"),
     ("asymmetry_t", "estimate", "t asymmetry"),
     ("asymmetry_z", "z score", "z asymmetry"),
     ("asymmetry_q", "estimate", "q FDR asymmetry"),

@@ -13,6 +13,9 @@ with Cov(β̂₍₋ₐ₎) = (A − A_a)⁻¹. Each A_a and b_a has the closed f
 intercept block (Sherman–Morrison: V_a⁻¹ = W_a − γ_a w_a w_aᵀ, γ_a = τ²/(1 + τ² Σ w)),
 so all animals and all voxels are downdated together from per-animal sums — one pass
 over the data, a p × p solve per animal and voxel, instead of one REML refit per animal.
+For the general model (random slopes, sessions, variance groups)
+:func:`leave_one_animal_out_model` forms each A_a and b_a from the animal's own
+covariance block instead (:mod:`grouplevel.model.marginal`), at fixed components.
 
 With ``update_variances=False`` the variance components stay at their full-data
 estimates: the "fixed variance components" case-deletion of Christensen, Pearson &
@@ -53,12 +56,17 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from grouplevel.model.marginal import RandomTerms, animal_gls_pieces
+
 # voxels downdated together; the largest temporaries are (chunk, runs) and
 # (chunk, animals, p, p) float64 arrays (common practice: a few tens of MiB)
 DEFAULT_CHUNK = 4096
 # run variances below this fraction of the voxel's total variance are raised to it, so
 # that a run with σ̂² = 0 and no first-level variance keeps a finite weight
 RELATIVE_VARIANCE_FLOOR = 1e-10
+# voxels per chunk of the model-based downdate, whose per-animal covariance blocks are
+# (chunk, animals, runs, runs) float64 arrays (common practice: a few tens of MiB)
+DEFAULT_MODEL_CHUNK = 1024
 
 
 @dataclass(frozen=True)
@@ -179,6 +187,76 @@ def leave_one_animal_out(
         t_full=t[0],
         var_animal=None if steps is None else steps[0],
         var_run=None if steps is None else steps[1],
+    )
+
+
+def leave_one_animal_out_model(
+    y: np.ndarray,
+    variance: np.ndarray | None,
+    X: np.ndarray,
+    animal: np.ndarray,
+    c: np.ndarray,
+    components: dict[str, np.ndarray],
+    terms: RandomTerms | None = None,
+    *,
+    chunk: int = DEFAULT_MODEL_CHUNK,
+) -> LeaveOneOut:
+    """The fixed-components downdate for any fitted model (random slopes, sessions,
+    variance groups).
+
+    Each animal's ``X_aᵀV_a⁻¹X_a`` and ``X_aᵀV_a⁻¹y_a`` come from its own covariance
+    block ``V_a`` under the fitted model
+    (:func:`grouplevel.model.marginal.animal_gls_pieces`) and are subtracted from the
+    sums, at the full-data components (``update_variances=False`` of
+    :func:`leave_one_animal_out`, which it equals for the random intercept).
+    ``components`` are the fit's components by name (``MixedModelFit.components``;
+    ``{"animal": τ̂², "run": σ̂²}`` for a random-intercept fit) and ``terms`` the random
+    terms it was fitted with.
+
+    References
+    ----------
+    Christensen, R., Pearson, L. M., & Johnson, W. (1992). Technometrics 34:38–45.
+    Haslett, J., & Dillane, D. (2004). J R Stat Soc B 66:131–143.
+    """
+    y = np.asarray(y)
+    X = np.asarray(X, dtype=float)
+    animal = np.asarray(animal, dtype=np.intp)
+    c = np.asarray(c, dtype=float).ravel()
+    n, n_vox = y.shape
+    if X.shape[0] != n or animal.shape != (n,) or c.shape != (X.shape[1],):
+        raise ValueError(
+            f"leave_one_animal_out_model: y has {n} runs, X {X.shape}, animal "
+            f"{animal.shape}, c {c.shape}; they must agree"
+        )
+    if chunk < 1:
+        raise ValueError(f"leave_one_animal_out_model: chunk must be at least 1, got {chunk}")
+    m = int(animal.max()) + 1
+    effect = np.full((m + 1, n_vox), np.nan)
+    se = np.full((m + 1, n_vox), np.nan)
+    for lo in range(0, n_vox, chunk):
+        sl = slice(lo, min(n_vox, lo + chunk))
+        part = {k: np.asarray(v)[sl] for k, v in components.items()}
+        s2 = None if variance is None else np.asarray(variance[:, sl], dtype=float)
+        A_a, b_a = animal_gls_pieces(np.asarray(y[:, sl], dtype=float), s2, X, animal, part, terms)
+        # an animal whose block could not be inverted makes every sum unusable
+        A_a = np.nan_to_num(A_a, nan=np.inf)
+        A, b = _leave_out(A_a), _leave_out(np.nan_to_num(b_a))
+        sol, ok = _solve(A, np.stack([b, np.broadcast_to(c, b.shape)], axis=-1))
+        e = np.einsum("p,cmp->cm", c, sol[..., 0])
+        var = np.einsum("p,cmp->cm", c, sol[..., 1])
+        with np.errstate(invalid="ignore"):
+            s = np.sqrt(np.where(var > 0, var, np.nan))
+        effect[:, sl] = np.where(ok, e, np.nan).T
+        se[:, sl] = np.where(ok, s, np.nan).T
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = effect / se
+    return LeaveOneOut(
+        effect=effect[1:],
+        se=se[1:],
+        t=t[1:],
+        effect_full=effect[0],
+        se_full=se[0],
+        t_full=t[0],
     )
 
 

@@ -36,6 +36,7 @@ class Summary(TypedDict, total=False):
     ftests: dict[str, dict[str, Any]]  # F-test result folder name -> its entry
     warnings: list[str]
     plan: dict[str, Any]  # written by `grouplevel plan`
+    outputs: dict[str, Any]  # files written from the results: "figures" (the report's)
 
 
 def read_summary(out_dir: str | Path) -> Summary:

@@ -159,13 +159,14 @@ class PlanResult:
         return plans_figure_png([self])
 
 
-def design_text(row: pd.Series | dict) -> str:
-    """ "8 animals × 4 runs" or "8 animals × 2 sessions × 3 runs" ("1 run", not "1 runs")."""
+def design_text(row: pd.Series | dict, times: str = "×") -> str:
+    """ "8 animals × 4 runs" or "8 animals × 2 sessions × 3 runs" ("1 run", not "1 runs");
+    ``times="x"`` for the console, which may not print "×"."""
     parts = [count(int(row["animals"]), "animal")]
     if "sessions" in row:
         parts.append(count(int(row["sessions"]), "session"))
     parts.append(count(int(row["runs"]), "run"))
-    return " × ".join(parts)
+    return f" {times} ".join(parts)
 
 
 def _figure_slice(res: PlanResult) -> tuple[pd.DataFrame, str, str]:

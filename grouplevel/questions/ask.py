@@ -7,11 +7,21 @@ Glue between the fitted maps (:mod:`grouplevel.pipeline`) and the analyses in
 Which group contrasts are asked: every contrast that is the mean response of a set of
 animals (:func:`grouplevel.questions.means.contrast_kind`: the mean of all animals, of one group,
 an intercept with centred covariates), whatever the design. A difference (genotype,
-drug − vehicle, a slope) gets its own symmetry question, whether its lateralisation
-differs (:func:`grouplevel.symmetry.lateralisation_differences`), and the specificity
-question of its surviving voxels; its consistency and run quality are not asked yet, and
-its summary says why in one sentence (:func:`question_plan`); :func:`skipped_warning`
-makes the one warning ``run`` prints.
+drug − vehicle, a slope) gets its own versions (:func:`answers_not_asked`): whether its
+lateralisation differs (:func:`grouplevel.symmetry.lateralisation_differences`), the
+specificity of its surviving voxels, its consistency across animals (each animal's own
+difference for a within-animal difference, the overlap of the groups for a group
+difference) and the quality of the runs of each of its sides
+(:mod:`grouplevel.questions.ask_differences`); what cannot be asked of a difference (a
+slope over a covariate has no two groups) carries its reason. A contrast that is
+neither a mean nor a difference gets the reason in one sentence
+(:func:`question_plan`); :func:`skipped_warning` makes the one warning ``run`` prints.
+
+The leave-one-animal-out maps behind run quality use the model the contrast was fitted
+with (random slopes, sessions, variance groups: ``terms``). The region-level tests of
+symmetry, the asymmetry map and the specificity tests still fit the random-intercept
+model to their region values; for an extended design the summary says so in its notes
+(:data:`EXTENDED_NOTE`).
 
 One response for all answers: whether the map has a response, and of which sign, is
 decided once, from the voxels that survive the chosen correction (which honours
@@ -40,7 +50,18 @@ from grouplevel.inference.permutation import (
 )
 from grouplevel.intake.design import Design
 from grouplevel.intake.settings import QuestionSettings, Settings
-from grouplevel.model import MixedFit, between_animal_df, fit_reml, test_contrast
+from grouplevel.model import MixedFit, between_animal_df, test_contrast
+from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
+from grouplevel.questions.ask_differences import (
+    BETWEEN,
+    WITHIN,
+    difference_consistency,
+    difference_run_quality,
+    difference_sides,
+    fit_components,
+    target_values,
+)
+from grouplevel.questions.differences import DifferenceConsistency, GroupOverlap
 from grouplevel.questions.means import DIFFERENCE, MEAN, ContrastKind, contrast_kind, design_rows
 from grouplevel.questions.quality import RunQuality, run_quality
 from grouplevel.questions.sides import asked_rows, split_side
@@ -74,6 +95,12 @@ from grouplevel.results.maps import GroupMap
 # seed; these offsets keep their random streams apart from the main permutations.
 _BOOTSTRAP_STREAM = 1
 _ASYMMETRY_STREAM = 2
+# Run quality measures a run's agreement with the group map over at least this many
+# voxels (a correlation over fewer says little; our own choice), and a voxel belongs to
+# the targets when at least half of it is covered by them (majority rule, common
+# practice for labelling voxels from an atlas).
+MIN_AGREEMENT_VOXELS = 20
+TARGET_SHARE = 0.5
 
 
 @dataclass(frozen=True)
@@ -133,13 +160,12 @@ def question_plan(design, c: np.ndarray) -> QuestionPlan:
     m = design.n_animals
     if kind.kind == DIFFERENCE:
         reason = (
-            "asked of group means only; this contrast is a difference (or slope) between "
-            "responses, and the consistency across animals and run quality of a difference "
-            "are not yet assessed"
+            "this contrast is a difference (or slope) between responses: it is asked the "
+            "difference's own versions of the questions"
         )
         return QuestionPlan(False, kind, reason, np.zeros(m, dtype=bool))
     if not kind.is_mean:
-        reason = f"asked of group means only; {kind.why}"
+        reason = f"asked of group means and differences only; {kind.why}"
         return QuestionPlan(False, kind, reason, np.zeros(m, dtype=bool))
     weighted = kind.rows_in_mean()
     animals = np.zeros(m, dtype=bool)
@@ -155,11 +181,39 @@ def skipped_warning(skipped: list[str]) -> list[str]:
     if not skipped:
         return []
     return [
-        "consistency and run quality are asked of group means only; not asked of "
-        f"{', '.join(skipped)} (differences, or contrasts that are not a mean response; a "
-        "difference is asked whether its lateralisation differs and whether it is specific "
-        "to the targets); each result's summary gives the reason"
+        "the questions are asked of group means and of differences only; not asked of "
+        f"{', '.join(skipped)} (neither a mean response nor a difference between "
+        "responses); each result's summary gives the reason"
     ]
+
+
+def comparison_note(conditions: dict[str, float]) -> str:
+    """The note of a within-animal comparison's answers: what "response" means there."""
+    parts = []
+    for name, w in conditions.items():
+        size = name if abs(w) == 1 else f"{abs(w):g}·{name}"
+        sign = "−" if w < 0 else "+"
+        parts.append(f"{sign} {size}" if parts else ("−" if w < 0 else "") + size)
+    terms = " ".join(parts)
+    return (
+        f"This result is a within-animal comparison ({terms}) of the runs that carry every "
+        "condition: each run's value is that run's difference, so 'response' in these "
+        "answers means the difference; consistency counts each animal's own difference "
+        "and run quality scores each run pair's difference."
+    )
+
+
+#: Note of the answers of an extended design: which internal tests use which model.
+EXTENDED_NOTE = (
+    "The model has random slopes, session levels or variance groups: the leave-one-out "
+    "maps, run quality, consistency and the region-level symmetry and specificity tests "
+    "are fitted with that model and use the map's degrees-of-freedom rule, and the "
+    "asymmetry map's t is fitted with it, as are the region table's tests. Still "
+    "simpler: the asymmetry map's permutations reduce each animal's data with "
+    "random-intercept weights; the leave-one-out refits of the target "
+    "effect use between-animal df; the per-animal means (animals.tsv, the symmetry "
+    "bootstrap) weight runs by the run variance alone."
+)
 
 
 @dataclass(frozen=True)
@@ -200,21 +254,27 @@ class Answers:
         lateralisation_summary: dict | None = None,
         spec: Specificity | None = None,
         response: dict | None = None,
+        consistency: DifferenceConsistency | GroupOverlap | None = None,
+        consistency_summary: dict | None = None,
+        quality: RunQuality | None = None,
+        notes: tuple[str, ...] = (),
     ) -> Answers:
-        """The answers of a difference: its lateralisation and specificity where asked."""
+        """The answers of a difference: lateralisation, specificity, consistency and run
+        quality where asked."""
         return cls(
             lateralisation,
             None,
             lateralisation_summary,
             None,
             spec,
+            consistency,
             None,
-            None,
-            None,
-            (),
+            quality,
+            notes,
             not_assessed=not_assessed,
             contrast_kind=plan.kind.kind,
             response=response,
+            consistency_summary=consistency_summary,
             artefact_flag=spec.flag if spec is not None else "",
         )
 
@@ -231,6 +291,10 @@ class Answers:
                 out["lateralisation_difference"] = self.symmetry
             if self.specificity is not None:
                 out["specificity"] = self.specificity.table()
+            if self.consistency is not None:
+                out["consistency"] = self.consistency.table()
+            if self.run_quality is not None:
+                out["run_quality"] = self.run_quality.table()
             return out
         out = {"run_quality": self.run_quality.table(), "leave_one_out": self.loo.table()}
         if self.symmetry is not None:
@@ -447,21 +511,33 @@ def _asymmetry(
     settings: Settings,
     midline_mm: float,
     backend: Backend | None,
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> AsymmetryMap:
-    """Each run minus its mirror image, through the same model and inference."""
+    """Each run minus its mirror image, through the same model and inference.
+
+    The t map comes from the model the contrast was fitted with (``terms``) and its df
+    from the map's rule (``model_df``; default between-animal df); the permutations
+    reduce each animal's data with that fit's intercept and run variances (the
+    random-intercept reduction).
+    """
     mirror = mirror_index(gm.mask, gm.grid.affine, midline_mm)
     data = asymmetry_data(y, s2, mirror)
     half_mask = mirror.half_mask(data.half)
     estimate = settings.model.run_variance == "estimate"
-    fit = fit_reml(
+    fit = fit_terms(
         data.y,
         data.variance,
         design.matrix,
         design.animal,
+        terms,
         estimate_run_variance=estimate or data.variance is None,
         max_iter=settings.model.max_iter,
     )
-    df = between_animal_df(design.matrix, design.animal, np.isfinite(data.y), c)
+    if model_df is None:
+        df = between_animal_df(design.matrix, design.animal, np.isfinite(data.y), c)
+    else:
+        df = model_df(fit, np.isfinite(data.y), c)
     res = test_contrast(fit, c, df)
     inf = settings.inference
     p = np.where(np.isnan(res.p), 1.0, res.p)
@@ -504,20 +580,40 @@ def answer_questions(
     plan: QuestionPlan | None = None,
     *,
     backend: Backend | None = None,
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> Answers:
     """Answer the configured questions of one group mean (see the module docstring).
 
     ``plan`` is :func:`question_plan` of ``c`` (computed when omitted); a contrast that
     is not a group mean gets :meth:`Answers.not_asked`. ``backend`` is where the
     permutations of the asymmetry maps run (``None``: local threads), the same as for
-    the group maps.
+    the group maps. ``terms`` are the random terms of the fitted model (default: a
+    random intercept per animal); the leave-one-out maps and the region-level refits use
+    them. ``model_df(fit, present, c)`` is the group map's df rule, used by the
+    region-level tests (default: between-animal df).
     """
     plan = plan or question_plan(design, c)
+    terms = terms or RandomTerms()
     if not plan.asked:
-        return answers_not_asked(plan, design, c, regions, questions, settings, gm, y)
+        return answers_not_asked(
+            plan,
+            design,
+            c,
+            regions,
+            questions,
+            settings,
+            gm,
+            y,
+            s2=s2,
+            fit=fit,
+            runs=runs,
+            terms=terms,
+            model_df=model_df,
+        )
     estimate = settings.model.run_variance == "estimate"
     alpha = settings.inference.alpha
-    notes: list[str] = []
+    notes: list[str] = [EXTENDED_NOTE] if terms.extended else []
     shell = edge_shell(gm.mask, questions.edge_distance_voxels)
     loo = loo_group_maps(
         y,
@@ -529,10 +625,17 @@ def answer_questions(
         estimate_run_variance=estimate or s2 is None,
         var_animal=fit.var_animal,
         var_run=fit.var_run,
+        components=fit_components(fit) if terms.extended else None,
+        terms=terms,
     )
-    quality = _run_quality(y, s2, design, runs, loo, shell, questions, plan.animals)
+    weighted = plan.kind.rows_in_mean()
+    in_runs = weighted if weighted.size == len(design.animal) and weighted.any() else None
     method = settings.clusters.resolved_method(settings.inference)
     surviving = surviving_voxels(gm, alpha)[method]
+    agreement = _agreement_voxels(regions, questions, surviving, method)
+    quality = _run_quality(
+        y, s2, design, runs, loo, shell, questions, plan.animals, agreement, in_runs
+    )
     response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
     if regions is None:
         reason = "the study has no [atlas], so no region can be asked about"
@@ -554,7 +657,7 @@ def answer_questions(
     spec = cons = cons_summary = None
     if questions.targets:
         spec, cons = _specificity_and_consistency(
-            gm, y, design, c, atlas, surviving, shell, questions
+            gm, y, design, c, atlas, surviving, shell, questions, terms, model_df
         )
     else:
         reason = "no [questions] targets were named"
@@ -565,9 +668,24 @@ def answer_questions(
     sym = curves = sym_summary = asym = None
     if questions.symmetry:
         sym, curves, sym_summary = _symmetry(
-            gm, y, s2, fit, design, c, regions, questions, settings, plan, response, suffix
+            gm,
+            y,
+            s2,
+            fit,
+            design,
+            c,
+            regions,
+            questions,
+            settings,
+            plan,
+            response,
+            suffix,
+            terms,
+            model_df,
         )
-        asym = _asymmetry(gm, y, s2, design, c, settings, atlas.midline_mm, backend)
+        asym = _asymmetry(
+            gm, y, s2, design, c, settings, atlas.midline_mm, backend, terms, model_df
+        )
     else:
         not_assessed["symmetry"] = "no [questions] symmetry regions were named"
     return Answers(
@@ -587,31 +705,94 @@ def answer_questions(
     )
 
 
-def answers_not_asked(plan, design, c, regions, questions, settings, gm=None, y=None) -> Answers:
+def answers_not_asked(
+    plan,
+    design,
+    c,
+    regions,
+    questions,
+    settings,
+    gm=None,
+    y=None,
+    *,
+    s2: np.ndarray | None = None,
+    fit=None,
+    runs: pd.DataFrame | None = None,
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
+) -> Answers:
     """A contrast that is not a group mean.
 
     A difference is asked whether its lateralisation differs (with ``[questions]
-    symmetry``) and whether it is specific to the targets (with ``[questions] targets``;
-    needs the group map ``gm`` and the runs' data ``y``); its consistency and run quality
-    are not asked, with the reason. Any other contrast gets only the reasons.
+    symmetry``), whether it is specific to the targets and whether it is consistent
+    across animals (with ``[questions] targets``), and the quality of the runs of each
+    of its sides (:mod:`grouplevel.questions.ask_differences`). These need the group map
+    ``gm``, the runs' data ``y`` (and first-level variances ``s2``), the ``fit``, the
+    runs table ``runs``, the model's random ``terms`` and, for the target's test, the
+    map's degrees-of-freedom rule ``model_df(fit, present, c)`` (default: between-animal
+    df). Whatever cannot be asked carries its reason. Any other contrast gets only the
+    reasons.
     """
     if plan.kind.kind != DIFFERENCE:
         return Answers.not_asked(plan)
-    not_assessed = {q: plan.reason for q in ("consistency", "run_quality")}
+    terms = terms or RandomTerms()
+    not_assessed: dict[str, str] = {}
+    notes = (EXTENDED_NOTE,) if terms.extended else ()
+    sides = difference_sides(design, runs, c) if runs is not None else None
+    quality = None
+    shell = None if gm is None else edge_shell(gm.mask, questions.edge_distance_voxels)
+    if sides is None or fit is None or y is None or gm is None:
+        not_assessed["run_quality"] = "the runs' data were not given to the questions"
+    elif not sides.level or (sides.level == BETWEEN and not sides.two_groups):
+        not_assessed["run_quality"] = (
+            "the difference has no two sides of runs (two groups or two conditions) whose "
+            "runs could be scored among themselves: " + sides.reason
+        )
+    else:
+        quality = difference_run_quality(
+            y,
+            s2,
+            fit,
+            design,
+            runs,
+            sides,
+            shell,
+            questions.outlier_z,
+            terms,
+            settings.model.run_variance == "estimate" or s2 is None,
+        )
+        if quality is None:
+            not_assessed["run_quality"] = (
+                "neither side of the difference has two runs to compare with each other"
+            )
     if regions is None:
         reason = "the study has no [atlas], so no region can be asked about"
-        not_assessed.update(symmetry=reason, specificity=reason)
-        return Answers.for_difference(plan, not_assessed)
-    spec = response = None
+        not_assessed.update(symmetry=reason, specificity=reason, consistency=reason)
+        return Answers.for_difference(plan, not_assessed, quality=quality, notes=notes)
+    spec = response = cons = cons_summary = None
     if questions.targets and gm is not None and y is not None:
         method = settings.clusters.resolved_method(settings.inference)
         alpha = settings.inference.alpha
         surviving = surviving_voxels(gm, alpha)[method]
         response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
-        shell = edge_shell(gm.mask, questions.edge_distance_voxels)
-        spec = _target_specificity(gm, y, design, c, regions.atlas, surviving, shell, questions)
+        spec = _target_specificity(
+            gm, y, design, c, regions.atlas, surviving, shell, questions, terms, model_df
+        )
+        if sides is None:
+            not_assessed["consistency"] = "the runs table was not given to the questions"
+        elif sides.reason:
+            not_assessed["consistency"] = sides.reason
+        else:
+            values = target_values(y, design, regions.atlas, questions)
+            cons, why = difference_consistency(values, design, c, sides, terms, model_df)
+            if cons is None:
+                not_assessed["consistency"] = why
+            else:
+                suffix = _flag_suffix(spec)
+                cons_summary = _difference_consistency_verdict(cons, response, suffix)
     else:
-        not_assessed["specificity"] = "no [questions] targets were named"
+        reason = "no [questions] targets were named"
+        not_assessed.update(specificity=reason, consistency=reason)
     table = summary = None
     if questions.symmetry:
         table, summary = lateralisation_differences(
@@ -623,6 +804,8 @@ def answers_not_asked(plan, design, c, regions, questions, settings, gm=None, y=
             c=c,
             alpha=settings.inference.alpha,
             stimulus_side=questions.stimulus_side,
+            terms=terms,
+            model_df=model_df,
         )
         suffix = _flag_suffix(spec)
         if suffix:
@@ -632,33 +815,197 @@ def answers_not_asked(plan, design, c, regions, questions, settings, gm=None, y=
             table["verdict"] = [entry["verdict"] for entry in summary.values()]
     else:
         not_assessed["symmetry"] = "no [questions] symmetry regions were named"
-    return Answers.for_difference(plan, not_assessed, table, summary, spec, response)
+    return Answers.for_difference(
+        plan,
+        not_assessed,
+        table,
+        summary,
+        spec,
+        response,
+        consistency=cons,
+        consistency_summary=cons_summary,
+        quality=quality,
+        notes=notes,
+    )
 
 
-def _run_quality(y, s2, design, runs, loo, shell, questions, in_mean) -> RunQuality:
+#: What the consistency of a within-animal difference does not show (summary and report).
+WITHIN_CAUTION = (
+    "Each animal's difference is estimated from its own runs only (GLS over its runs and "
+    "sessions, the fitted run and session variances taken as known), so its interval is "
+    "wide with few runs; animals agreeing in sign does not show that the difference has "
+    "the same size in every animal (see I²), and the target value averages the whole "
+    "target region, not the surviving voxels."
+)
+#: What the overlap of two groups does not show.
+BETWEEN_CAUTION = (
+    "The overlap compares the animals' mean target values between the two groups; it "
+    "does not show that every animal of one group differs from every animal of the "
+    "other, nor why they differ, and with few animals per group its interval is wide. "
+    "The target value averages the whole target region, not the surviving voxels."
+)
+
+
+def _difference_consistency_verdict(cons, response: dict, flag_suffix: str) -> dict:
+    """The consistency verdict of a difference: animals' own differences (within
+    animals) or the overlap of the two groups (between groups)."""
+    if isinstance(cons, GroupOverlap):
+        return _overlap_verdict(cons, response, flag_suffix)
+    in_difference = np.isfinite(cons.animals["effect"].to_numpy(dtype=float))
+    out = _consistency_verdict(cons, response, flag_suffix, in_difference)
+    # the same rules as a mean's, in the words of a difference
+    out["verdict"] = (
+        out["verdict"]
+        .replace("no response to be", "no difference to be")
+        .replace("(negative response)", "(negative difference)")
+    )
+    het = cons.heterogeneity
+    if np.isfinite(het.q):
+        out["reasons"].append(
+            f"heterogeneity of the animals' own differences: Cochran's Q = {het.q:.3g} on "
+            f"{het.df} df (p = {het.p:.2g}), I² = {100 * het.i_squared:.0f}%"
+        )
+    if cons.not_estimable:
+        out["reasons"].append(
+            f"{len(cons.not_estimable)} animal(s) cannot estimate the difference from their "
+            f"own runs (e.g. runs of one side only) and are not counted: "
+            f"{', '.join(cons.not_estimable)}"
+        )
+    out["level"] = WITHIN
+    out["caution"] = WITHIN_CAUTION
+    return out
+
+
+def _overlap_verdict(go: GroupOverlap, response: dict, flag_suffix: str) -> dict:
+    """Sign-aware verdict on how much the two groups' animals overlap."""
+    summary = go.summary()
+    signs = response["signs"]
+    if not signs:
+        sign = ""
+    elif len(signs) == 1:
+        sign = signs[0]
+    else:
+        sign = "negative" if go.effect < 0 else "positive"
+    plus, minus = go.names
+    o = go.overlap
+    # A read in the direction of the map's difference
+    a_dir = o.a if sign != "negative" else 1.0 - o.a
+    low = o.ci[0] if sign != "negative" else 1.0 - o.ci[1]
+    s = -1.0 if sign == "negative" else 1.0
+    if not sign:
+        verdict = "no difference to be consistent about"
+    elif not np.isfinite(go.effect) or s * go.effect <= 0:
+        verdict = f"the groups do not differ in the target with the map's {sign} sign"
+    elif o.separated:
+        verdict = "the groups separate: no animal of one group falls among the other's"
+    elif np.isfinite(low) and low > 0.5:
+        verdict = f"the groups differ with some overlap (A = {a_dir:.2f})"
+    else:
+        verdict = f"the groups overlap (A = {a_dir:.2f})"
+    if sign and flag_suffix:
+        verdict += flag_suffix
+    above = "above" if sign != "negative" else "below"
+    reasons = [_response_sentence(response)]
+    ci = (
+        f"95% CI {o.ci[0]:.2f} to {o.ci[1]:.2f}"
+        if np.isfinite(o.ci[0])
+        else "no interval: the groups separate completely"
+    )
+    reasons.append(
+        f"probability that an animal of {plus} has a larger target value than one of "
+        f"{minus}: A = {o.a:.2f} ({ci}; Mann–Whitney p = {o.p:.2g}, {o.n_plus} vs "
+        f"{o.n_minus} animals)"
+    )
+    for side in summary["groups"].values():
+        if side["animals"]:
+            reasons.append(
+                f"{side['group']}: {side['animals']} animals, median target value "
+                f"{side['median']:.3g} (range {side['min']:.3g} to {side['max']:.3g}), "
+                f"{side['animals_positive']} positive"
+            )
+    if sign:
+        reasons.append(f"the map's difference is {sign}: {plus} {above} {minus} is expected")
+    reasons.append(
+        f"target group difference {go.effect:.3g} (p = {go.p:.2g})"
+        if np.isfinite(go.effect)
+        else "no target group difference"
+    )
+    return {
+        "verdict": verdict,
+        "sign": sign,
+        "reasons": reasons,
+        "level": BETWEEN,
+        "caution": BETWEEN_CAUTION,
+        **summary,
+    }
+
+
+def _agreement_voxels(
+    regions: RegionData | None, questions: QuestionSettings, surviving: np.ndarray, method: str
+) -> tuple[np.ndarray | None, str]:
+    """Where a run's agreement with the group map is measured, and that place in words.
+
+    The targets when ``[questions] targets`` names them (chosen before the data were
+    seen); else the voxels surviving the map's correction when there are at least
+    :data:`MIN_AGREEMENT_VOXELS`; else the whole analysed brain.
+    """
+    if regions is not None and questions.targets:
+        atlas = regions.atlas
+        rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
+        share = np.asarray(atlas.shares[:, leaf_rows(atlas, rows)].sum(axis=1)).ravel()
+        inside = share >= TARGET_SHARE
+        if inside.sum() >= MIN_AGREEMENT_VOXELS:
+            return inside, f"inside the targets ({', '.join(questions.targets)})"
+    surviving = np.asarray(surviving, dtype=bool)
+    if surviving.sum() >= MIN_AGREEMENT_VOXELS:
+        return surviving, f"inside the voxels surviving {method}"
+    return None, "the whole analysed brain (too few surviving voxels, no targets)"
+
+
+def _run_quality(
+    y, s2, design, runs, loo, shell, questions, in_mean, agreement, in_runs=None
+) -> RunQuality:
     """Run quality among the runs of the animals whose mean is asked about.
 
     The robust z compares runs with each other; runs of another group (with another
-    response) would make the runs of either group look unusual.
+    response) would make the runs of either group look unusual. For the mean of one
+    level of a within-animal variable (the drug runs), ``in_runs`` keeps only that
+    level's runs: the other runs show another response. ``agreement`` is
+    :func:`_agreement_voxels`.
     """
+    where_mask, where = agreement
     keep = np.asarray(in_mean, dtype=bool)[design.animal]
+    if in_runs is not None:
+        keep &= np.asarray(in_runs, dtype=bool)
     if keep.all():
         return run_quality(
-            y, s2, design.animal, runs, loo.effect, shell, threshold=questions.outlier_z
+            y,
+            s2,
+            design.animal,
+            runs,
+            loo.effect,
+            shell,
+            threshold=questions.outlier_z,
+            agreement=where_mask,
+            agreement_where=where,
         )
-    codes = np.unique(design.animal[keep], return_inverse=True)[1]
+    animals, codes = np.unique(design.animal[keep], return_inverse=True)
     return run_quality(
         y[keep],
         None if s2 is None else s2[keep],
         codes,
         runs[keep].reset_index(drop=True),
-        loo.effect[np.asarray(in_mean, dtype=bool)],
+        loo.effect[animals],
         shell,
         threshold=questions.outlier_z,
+        agreement=where_mask,
+        agreement_where=where,
     )
 
 
-def _target_specificity(gm, y, design, c, atlas, surviving, shell, questions) -> Specificity:
+def _target_specificity(
+    gm, y, design, c, atlas, surviving, shell, questions, terms=None, model_df=None
+) -> Specificity:
     """Specificity of the surviving voxels for the (possibly one-sided) targets."""
     rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
     height = (np.argwhere(gm.mask) @ gm.grid.affine[:3, :3].T + gm.grid.affine[:3, 3])[:, 2]
@@ -676,12 +1023,18 @@ def _target_specificity(gm, y, design, c, atlas, surviving, shell, questions) ->
         design.matrix,
         design.animal,
         c,
+        terms=terms,
+        model_df=model_df,
     )
 
 
-def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, questions):
+def _specificity_and_consistency(
+    gm, y, design, c, atlas, surviving, shell, questions, terms, model_df=None
+):
     """Specificity of the surviving voxels and consistency of the target effect."""
-    spec = _target_specificity(gm, y, design, c, atlas, surviving, shell, questions)
+    spec = _target_specificity(
+        gm, y, design, c, atlas, surviving, shell, questions, terms, model_df
+    )
     rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
     leaves = leaf_rows(atlas, rows)
     weights = sp.csr_matrix(np.asarray(atlas.shares[:, leaves].sum(axis=1)))
@@ -694,11 +1047,28 @@ def _specificity_and_consistency(gm, y, design, c, atlas, surviving, shell, ques
         design.animal_ids,
         c,
         estimate_run_variance=True,
+        terms=terms,
+        model_df=model_df,
     )
     return spec, cons
 
 
-def _symmetry(gm, y, s2, fit, design, c, regions, questions, settings, plan, response, suffix):
+def _symmetry(
+    gm,
+    y,
+    s2,
+    fit,
+    design,
+    c,
+    regions,
+    questions,
+    settings,
+    plan,
+    response,
+    suffix,
+    terms=None,
+    model_df=None,
+):
     """Symmetry of each named region pair, counted with the map's response signs."""
     alpha = settings.inference.alpha
     results = analyse_symmetry(
@@ -722,6 +1092,8 @@ def _symmetry(gm, y, s2, fit, design, c, regions, questions, settings, plan, res
         X=design.matrix,
         c=c,
         bootstrap_animals=plan.animals,
+        terms=terms,
+        model_df=model_df,
     )
     table = symmetry_table(results)
     summary = {}

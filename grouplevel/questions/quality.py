@@ -4,8 +4,12 @@ For every run three numbers are computed and compared with the other runs by a r
 score (median and scaled median absolute deviation):
 
 * the spatial correlation of the run's effect map with the group effect map fitted
-  *without that run's animal* (so a run is not compared with a map it helped make);
-  an outlying low value marks a run that does not show the group pattern;
+  *without that run's animal* (so a run is not compared with a map it helped make),
+  over the voxels where agreement matters (``agreement``: the targets, or the group's
+  surviving voxels; the whole map when neither is given) — over the whole brain a focal
+  response is a small share of the voxels and the correlation of every run is near 0,
+  whatever the run; an outlying low value marks a run that does not show the group
+  pattern there;
 * the run's mean first-level variance (a noisy run);
 * an edge-rim score: the mean |effect| in the brain's edge shell divided by the mean
   |effect| inside it (stimulus-locked head motion puts signal at the edge).
@@ -49,6 +53,8 @@ QUALITY_COLUMNS = (
     "session",
     "run",
     "correlation",
+    "correlation_voxels",
+    "correlation_where",
     "mean_variance",
     "z_correlation",
     "z_variance",
@@ -90,6 +96,7 @@ class RunQuality:
 
     runs: pd.DataFrame
     threshold: float
+    agreement_where: str = "the whole analysed brain"
 
     def table(self) -> pd.DataFrame:
         """Columns :data:`QUALITY_COLUMNS`, one row per run in the order given."""
@@ -100,6 +107,7 @@ class RunQuality:
         flagged = self.runs[self.runs["flagged"]]
         return {
             "threshold": float(self.threshold),
+            "correlation_where": self.agreement_where,
             "runs": int(len(self.runs)),
             "flagged": int(len(flagged)),
             "flagged_runs": [
@@ -123,6 +131,8 @@ def run_quality(
     shell: np.ndarray,
     *,
     threshold: float = DEFAULT_Z_THRESHOLD,
+    agreement: np.ndarray | None = None,
+    agreement_where: str = "the whole analysed brain",
 ) -> RunQuality:
     """Quality numbers of every run and flags for outliers.
 
@@ -145,6 +155,10 @@ def run_quality(
         ``(V,)`` bool edge shell (:func:`grouplevel.specificity.edge_shell`).
     threshold
         |robust z| above which a run is flagged.
+    agreement
+        ``(V,)`` bool: the voxels over which the correlation is computed (None: all).
+    agreement_where
+        Those voxels in words, for the table's readers (e.g. "inside the targets").
 
     Returns
     -------
@@ -159,7 +173,17 @@ def run_quality(
     y, animal, loo_effect, shell = _check_quality_inputs(
         y, animal, runs, loo_effect, shell, threshold
     )
-    correlation = _correlation(y, loo_effect[animal])
+    if agreement is None:
+        agreement = np.ones(y.shape[1], dtype=bool)
+    agreement = np.asarray(agreement, dtype=bool).reshape(-1)
+    if agreement.shape != (y.shape[1],):
+        raise ArgumentError(
+            f"run_quality: agreement has {agreement.size} values for {y.shape[1]} voxels."
+        )
+    correlation = _correlation(y[:, agreement], loo_effect[animal][:, agreement])
+    n_agree = (np.isfinite(y[:, agreement]) & np.isfinite(loo_effect[animal][:, agreement])).sum(
+        axis=1
+    )
     mean_var = _mean_variance(variance, y)
     edge = _edge_score(y, shell)
     z_c, z_v, z_e = robust_z(correlation), robust_z(mean_var), robust_z(edge)
@@ -172,6 +196,8 @@ def run_quality(
             "session": session.astype(str).to_numpy(),
             "run": runs["run"].astype(str).to_numpy(),
             "correlation": correlation,
+            "correlation_voxels": n_agree,
+            "correlation_where": [agreement_where] * n,
             "mean_variance": mean_var,
             "z_correlation": z_c,
             "z_variance": z_v,
@@ -182,7 +208,7 @@ def run_quality(
         },
         columns=list(QUALITY_COLUMNS),
     )
-    return RunQuality(runs=table, threshold=float(threshold))
+    return RunQuality(runs=table, threshold=float(threshold), agreement_where=agreement_where)
 
 
 def _check_quality_inputs(

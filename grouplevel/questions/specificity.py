@@ -50,9 +50,10 @@ import scipy.sparse as sp
 from scipy import ndimage, stats
 
 from grouplevel.errors import ArgumentError
-from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
-from grouplevel.model.leave_one_out import leave_one_animal_out
+from grouplevel.model.leave_one_out import leave_one_animal_out, leave_one_animal_out_model
+from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
 from grouplevel.questions.verdicts import (  # noqa: F401  (the rules' names, re-exported here)
     ARTEFACT_ENRICHMENT_MIN,
     ARTEFACT_FLAG_TEXT,
@@ -471,6 +472,8 @@ def specificity(
     c: np.ndarray,
     *,
     rim_z_threshold: float = RIM_Z_THRESHOLD,
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> Specificity:
     """Specificity of one group map for a set of target regions.
 
@@ -533,7 +536,7 @@ def specificity(
     shares = _activation_shares(surviving, shell, inner, w_target, _weights(atlas, artefact_leaves))
     active = surviving | (np.nan_to_num(np.abs(z)) > rim_z_threshold)
     rim = rim_score(active, np.sign(np.nan_to_num(z)), shell, height)
-    fit, res = _target_minus_rest(y, w_target, X, animal, c)
+    fit, res = _target_minus_rest(y, w_target, X, animal, c, terms, model_df)
     surv_f = surviving.astype(float)
     off = _off_target_table(atlas, target_leaves, effect, z, surv_f, artefact_leaves)
     tgt = _target_table(
@@ -676,12 +679,15 @@ def _activation_shares(
         )
 
 
-def _target_minus_rest(y, w_target, X, animal, c):
+def _target_minus_rest(y, w_target, X, animal, c, terms=None, model_df=None):
     """Per run: mean in the targets − mean in the rest; REML run-within-animal model."""
     values = _weighted_run_means(y, w_target) - _weighted_run_means(y, 1.0 - w_target)
     present = np.isfinite(values)[:, None]
-    fit = fit_reml(values[:, None], None, X, animal, estimate_run_variance=True)
-    df = between_animal_df(X, animal, present, c)
+    fit = fit_terms(values[:, None], None, X, animal, terms, estimate_run_variance=True)
+    if model_df is None:
+        df = between_animal_df(X, animal, present, c)
+    else:
+        df = model_df(fit, present, c)
     return fit, test_contrast(fit, c, df)
 
 
@@ -835,12 +841,18 @@ def _design_inputs(X, animal, n_runs: int, where: str):
     return X, animal
 
 
-def _test(values, variances, X, animal, c, estimate_run_variance):
-    fit = fit_reml(values, variances, X, animal, estimate_run_variance=estimate_run_variance)
+def _test(values, variances, X, animal, c, estimate_run_variance, terms=None, model_df=None):
+    fit = fit_terms(
+        values, variances, X, animal, terms, estimate_run_variance=estimate_run_variance
+    )
     present = np.isfinite(values)
     if variances is not None:
         present &= np.isfinite(variances)
-    res = test_contrast(fit, c, between_animal_df(X, animal, present, c))
+    if model_df is None:
+        df = between_animal_df(X, animal, present, c)
+    else:
+        df = model_df(fit, present, c)
+    res = test_contrast(fit, c, df)
     return fit, res
 
 
@@ -853,6 +865,8 @@ def consistency(
     c: np.ndarray,
     *,
     estimate_run_variance: bool = True,
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> Consistency:
     """Consistency of the target effect across animals.
 
@@ -870,6 +884,12 @@ def consistency(
         ``(p,)`` contrast.
     estimate_run_variance
         Estimate σ² (else fixed at 0).
+    terms
+        The random terms of the model the contrast was fitted with (default a random
+        intercept per animal); the group test and the leave-one-out refits use them.
+    model_df
+        ``model_df(fit, present, c) -> df``: the group map's df rule for the full-data
+        test (default between-animal df; the leave-one-out refits always use it).
 
     Returns
     -------
@@ -895,7 +915,14 @@ def consistency(
         values, variances, X, animal, animal_ids
     )
     fit, res = _test(
-        values[:, None], None if s2 is None else s2[:, None], X, animal, c, estimate_run_variance
+        values[:, None],
+        None if s2 is None else s2[:, None],
+        X,
+        animal,
+        c,
+        estimate_run_variance,
+        terms,
+        model_df,
     )
     tau2, sig2 = float(fit.var_animal[0]), float(fit.var_run[0])
     icc = tau2 / (tau2 + sig2) if (tau2 + sig2) > 0 else float("nan")
@@ -910,6 +937,7 @@ def consistency(
         var_run=sig2,
         full=full,
         estimate_run_variance=estimate_run_variance,
+        terms=terms,
     )
     return Consistency(
         animals=table,
@@ -963,6 +991,7 @@ def _animal_effects(
     var_run: float,
     full: float,
     estimate_run_variance: bool,
+    terms: RandomTerms | None = None,
 ) -> tuple[pd.DataFrame, np.ndarray]:
     """Each animal's effect with its 95% CI, and the leave-this-animal-out refit.
 
@@ -984,7 +1013,7 @@ def _animal_effects(
     )
     eff, se, runs = means.mean[:, 0], means.se[:, 0], means.runs[:, 0]
     loo_e, loo_t = _leave_each_animal_out(
-        values, s2, X, animal, c, present, m, estimate_run_variance
+        values, s2, X, animal, c, present, m, estimate_run_variance, terms
     )
     change = loo_e - full
     has = runs > 0
@@ -1013,7 +1042,7 @@ def _most_influential(change: np.ndarray, animal_ids: list[str]) -> str:
     return animal_ids[int(np.argmax(abs_change))] if np.isfinite(abs_change).any() else ""
 
 
-def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_variance):
+def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_variance, terms=None):
     """Effect and t of the same REML model refitted without each animal in turn (NaN for
     an animal without runs or when fewer than two runs would remain)."""
     loo_e = np.full(m, np.nan)
@@ -1022,7 +1051,8 @@ def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_va
         keep = (animal != a) & present
         if not present[animal == a].any() or keep.sum() < 2:
             continue
-        codes = np.unique(animal[keep], return_inverse=True)[1]
+        kept, codes = np.unique(animal[keep], return_inverse=True)
+        sub = None if terms is None else terms.subset(keep, np.isin(np.arange(m), kept))
         _, r = _test(
             values[keep][:, None],
             None if s2 is None else s2[keep][:, None],
@@ -1030,6 +1060,7 @@ def _leave_each_animal_out(values, s2, X, animal, c, present, m, estimate_run_va
             codes,
             c,
             estimate_run_variance,
+            sub,
         )
         loo_e[a], loo_t[a] = float(r.effect[0]), float(r.t[0])
     return loo_e, loo_t
@@ -1114,6 +1145,8 @@ def loo_group_maps(
     estimate_run_variance: bool = True,
     var_animal: np.ndarray | None = None,
     var_run: np.ndarray | None = None,
+    components: dict[str, np.ndarray] | None = None,
+    terms: RandomTerms | None = None,
 ) -> LooMaps:
     """The voxelwise group map leaving out each animal in turn.
 
@@ -1121,7 +1154,11 @@ def loo_group_maps(
     exact downdates of the GLS solution at those components
     (:func:`grouplevel.model.leave_one_out.leave_one_animal_out`: one pass over the
     data, whatever the number of animals). Without them, every animal's map is a full
-    REML refit (variance components re-estimated; one whole-map fit per animal).
+    REML refit (variance components re-estimated; one whole-map fit per animal). With
+    ``components`` (the fit's components by name) and ``terms`` (its random slopes,
+    sessions, variance groups) the downdate uses the covariance of that model
+    (:func:`grouplevel.model.leave_one_out.leave_one_animal_out_model`); ``var_animal``
+    and ``var_run`` are then not needed.
 
     Parameters
     ----------
@@ -1159,16 +1196,23 @@ def loo_group_maps(
         codes = np.unique(animal[rows], return_inverse=True)[1]
         yy = y[rows]
         ss = None if s2 is None else s2[rows]
-        fit = fit_reml(yy, ss, X[rows], codes, estimate_run_variance=estimate_run_variance)
+        kept = np.isin(np.arange(m), np.unique(animal[rows]))
+        sub = None if terms is None else terms.subset(rows, kept)
+        fit = fit_terms(yy, ss, X[rows], codes, sub, estimate_run_variance=estimate_run_variance)
         present = np.isfinite(yy) if ss is None else np.isfinite(yy) & np.isfinite(ss)
         res = test_contrast(fit, c, df_fn(X[rows], codes, present, c))
         return res.effect, res.t
 
     n_vox = y.shape[1]
-    if var_animal is not None and var_run is not None:
+    if components is not None:
+        down = leave_one_animal_out_model(y, s2, X, animal, c, components, terms)
+    elif var_animal is not None and var_run is not None:
         down = leave_one_animal_out(
             y, s2, X, animal, c, var_animal, var_run, estimate_run_variance=estimate_run_variance
         )
+    else:
+        down = None
+    if down is not None:
         effect_full, t_full, effect, t_loo = down.effect_full, down.t_full, down.effect, down.t
         for a in range(m):  # a group map needs two animals
             rows = animal != a

@@ -59,8 +59,9 @@ from scipy import stats
 from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM
 from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference.significance import DEFAULT_ALPHA
-from grouplevel.model import between_animal_df, fit_reml, test_contrast
+from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
+from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
 from grouplevel.questions.verdicts import (  # noqa: F401  (the rule's names, re-exported here)
     BILATERAL_EQUIVALENT,
     BILATERAL_UNRESOLVED,
@@ -750,6 +751,8 @@ def hemisphere_test(
     confidence: float = CONFIDENCE_LEVEL,
     X: np.ndarray | None = None,
     c: np.ndarray | None = None,
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> HemisphereTest:
     """Test the hemispheric difference of a region pair, and its equivalence to zero.
 
@@ -782,6 +785,15 @@ def hemisphere_test(
         ``(n_runs, p)`` group design and ``(p,)`` contrast giving the group mean tested
         (a group mean of a larger design, see :mod:`grouplevel.questions.means`); default the
         intercept-only design and its intercept.
+    terms
+        The random terms of the model the contrast was fitted with (random slopes,
+        sessions, variance groups; default a random intercept per animal): the region
+        means are fitted with the same model
+        (:func:`grouplevel.model.marginal.fit_terms`).
+    model_df
+        ``model_df(fit, present, c) -> df``: the degrees-of-freedom rule of the group map
+        the contrast comes from (default: between-animal df,
+        :func:`grouplevel.model.between_animal_df`).
 
     Returns
     -------
@@ -807,8 +819,11 @@ def hemisphere_test(
     c = np.ones(1) if c is None else np.asarray(c, dtype=float).ravel()
     if X.ndim != 2 or X.shape[0] != len(left) or X.shape[1] != c.size:
         raise ValueError(f"X must be ({len(left)} runs, {c.size}) for a contrast of {c.size}")
-    fit = fit_reml(y, None, X, animal, estimate_run_variance=True)
-    df = between_animal_df(X, animal, np.isfinite(y), c)
+    fit = fit_terms(y, None, X, animal, terms, estimate_run_variance=True)
+    if model_df is None:
+        df = between_animal_df(X, animal, np.isfinite(y), c)
+    else:
+        df = model_df(fit, np.isfinite(y), c)
     res = test_contrast(fit, c, df)
     d, se, dfd = float(res.effect[2]), float(res.se[2]), float(res.df[2])
     crit = float(stats.t.ppf(0.5 + confidence / 2.0, dfd)) if dfd > 0 else float("nan")
@@ -934,6 +949,8 @@ def analyse_symmetry(
     X: np.ndarray | None = None,
     c: np.ndarray | None = None,
     bootstrap_animals: np.ndarray | None = None,
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> tuple[RegionSymmetry, ...]:
     """Laterality, hemispheric test and verdict for each named region pair.
 
@@ -992,6 +1009,8 @@ def analyse_symmetry(
             equivalence_margin=equivalence_margin,
             X=X,
             c=c,
+            terms=terms,
+            model_df=model_df,
         )
         verdict = symmetry_verdict(
             test, alpha=alpha, stimulus_side=stimulus_side, sided=sided, signs=signs
@@ -1151,6 +1170,8 @@ TABLE_COLUMNS = (
     "li_effect_low",
     "li_effect_high",
     "li_threshold_free",
+    "li_extent_shortcut",
+    "li_effect_shortcut",
     "left_effect",
     "right_effect",
     "difference",
@@ -1174,8 +1195,9 @@ def symmetry_table(results: Sequence[RegionSymmetry]) -> pd.DataFrame:
     """One row per region pair with the LIs, the hemispheric test and the verdict.
 
     Columns are :data:`TABLE_COLUMNS`; ``li_*_low``/``high`` are the bootstrap percentile
-    interval, ``margin`` is Δ on the difference, ``reasons`` the verdict's sentences
-    joined with "; ".
+    interval of the estimator whose value on the original animals is ``li_*_shortcut``
+    (``li_extent`` and ``li_effect`` are the LIs of the fitted group maps), ``margin`` is
+    Δ on the difference, ``reasons`` the verdict's sentences joined with "; ".
     """
     rows = []
     for r in results:
@@ -1190,6 +1212,11 @@ def symmetry_table(results: Sequence[RegionSymmetry]) -> pd.DataFrame:
                 "li_effect_low": r.bootstrap.effect_ci[0],
                 "li_effect_high": r.bootstrap.effect_ci[1],
                 "li_threshold_free": r.threshold_free.value,
+                # the bootstrap's own estimator on the original animals: the point that
+                # li_*_low/high are an interval of (li_extent/li_effect are of the fitted
+                # mixed-model maps and can differ from it)
+                "li_extent_shortcut": r.bootstrap.extent,
+                "li_effect_shortcut": r.bootstrap.effect,
                 "left_effect": t.left_effect,
                 "right_effect": t.right_effect,
                 "difference": t.difference,
@@ -1326,6 +1353,8 @@ def lateralisation_differences(
     c: np.ndarray,
     alpha: float = DEFAULT_ALPHA,
     stimulus_side: str | None = None,
+    terms: RandomTerms | None = None,
+    model_df: ModelDf | None = None,
 ) -> tuple[pd.DataFrame, dict]:
     """The lateralisation of a difference contrast for each named region pair.
 
@@ -1337,6 +1366,9 @@ def lateralisation_differences(
         Group design and the difference contrast.
     alpha, stimulus_side
         See :func:`lateralisation_difference_verdict`.
+    terms, model_df
+        The random terms of the fitted model and its df rule (see
+        :func:`hemisphere_test`).
 
     Returns
     -------
@@ -1349,7 +1381,13 @@ def lateralisation_differences(
     for name in names:
         left_row, right_row = region_pair(atlas, name)
         test = hemisphere_test(
-            region_values[:, left_row], region_values[:, right_row], animal, X=X, c=c
+            region_values[:, left_row],
+            region_values[:, right_row],
+            animal,
+            X=X,
+            c=c,
+            terms=terms,
+            model_df=model_df,
         )
         verdict = lateralisation_difference_verdict(test, alpha=alpha, stimulus_side=stimulus_side)
         rows.append(

@@ -1,6 +1,7 @@
 """Report and manuscript outputs of a finished output folder (never refits).
 
-* :func:`render_report` — ``DIR/report.html``, one self-contained page;
+* :func:`render_report` — ``DIR/report.html``, one self-contained page, and
+  ``DIR/figures/`` (each of its figures as PDF, 300 dpi PNG and caption);
 * :func:`write_manuscript_tables` — ``DIR/tables/<result>_<table>.{tsv,csv,tex,md}``;
 * :func:`write_methods` — ``DIR/methods.md``, the generated methods paragraph.
 """

@@ -1,47 +1,58 @@
-"""Figures of the report, drawn with matplotlib and returned as PNG bytes.
+"""Figures of the report, drawn with matplotlib and returned as figures.
 
-Every function takes arrays or DataFrames and returns the PNG of one figure; nothing is
-read from or written to disk here. Figures are drawn on a bare
-:class:`matplotlib.figure.Figure` with the Agg canvas (no pyplot state), so rendering
-is safe in any process and without a display.
+Every drawing function takes arrays or DataFrames and returns a bare
+:class:`matplotlib.figure.Figure` (no pyplot state, so drawing is safe in any process
+and without a display); :mod:`grouplevel.report.figure_files` turns each into the PNG
+the report embeds and the PDF and PNG files of ``figures/``. Nothing is read from or
+written to disk here.
 
 Volumes are expected in the closest canonical (RAS+) array order: axis 0 left→right,
 axis 1 posterior→anterior, axis 2 ventral→dorsal; :func:`canonical` gives that order
 from a NIfTI image, whatever the order on disk.
 
-Colours: statistics are drawn with a perceptually uniform diverging colormap
-(matplotlib's ``vanimo``: one hue for negative, another for positive values, dark at
-zero), the template in greys.
+Colours: signed statistics use the diverging map of :mod:`grouplevel.report.colours`
+(blue for negative, orange for positive, lighter with |value|) over a template drawn in
+dark greys, so that every shown voxel is lighter than the brain under it; plots use one
+calm accent colour and a contrasting colour for flagged items.
 """
 
 from __future__ import annotations
 
-import io
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import nibabel as nib
 import numpy as np
 import pandas as pd
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.colors import Normalize
+from matplotlib.cm import ScalarMappable
 from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from scipy import ndimage
 
-#: Perceptually uniform diverging colormap for signed statistics (matplotlib ≥ 3.10;
-#: "vanimo", designed by F. Crameri's scientific colour maps project).
-STAT_CMAP = "vanimo"
-#: Sequential perceptually uniform colormap for one-signed quantities.
-SEQ_CMAP = "cividis"
+from grouplevel.inference.clusters import DEFAULT_CONNECTIVITY, neighbourhood
+from grouplevel.report.colours import TEMPLATE_GREY_MAX, signed_colormap, threshold_norm
+
 TEMPLATE_CMAP = "gray"
-DPI = 110  # screen resolution of the embedded PNGs; sharp on print at page width
-MONTAGE_SLICES = 12  # coronal slices from anterior to posterior (two rows of six)
+OVERVIEW_SLICES = 6  # evenly spaced coronal slices added to the peak slices
+MAX_PEAK_SLICES = 12  # at most this many clusters get a slice through their peak
 MONTAGE_COLUMNS = 6
+# An overview slice closer than this many voxels to a peak slice is left out (it would
+# show nearly the same section twice; our own choice).
+MIN_SLICE_GAP = 2
 # Narrowest share of the figure's width a projection panel gets (our own choice: a
 # panel of a one-voxel-thin grid stays readable next to a long one).
 MIN_PANEL_SHARE = 0.2
-END_TRIM = 0.06  # share of the brain's AP extent skipped at each end of the montage
-OUTLINE_COLOUR = "0.35"
-ACCENT = "#3a6ea5"  # points and bars of the plots (one calm colour)
-FLAG_COLOUR = "#b5432f"
+END_TRIM = 0.06  # share of the brain's AP extent skipped at each end of the overview
+FIGURE_WIDTH_IN = 7.2  # two-column page width of most journals (common practice)
+LABEL_STRIP_IN = 0.34  # height under each slice for its labels (they never sit on it)
+COLOURBAR_STRIP_IN = 0.95  # height of the colour bar, its label and the key
+MAP_BACKGROUND = "black"
+MASK_OUTLINE = "0.6"
+TARGET_OUTLINE = "white"
+TARGET_STYLES = ("solid", (0, (3, 1.5)), (0, (1, 1)), (0, (4, 1, 1, 1)))
+ACCENT = "#2f5f8f"  # points and bars of the plots (one calm colour)
+FLAG_COLOUR = "#c2571a"  # flagged runs (orange: apart from the accent for colour-blind eyes)
+MUTED = "0.45"
 
 
 @dataclass(frozen=True)
@@ -71,40 +82,86 @@ def canonical(img: nib.spatialimages.SpatialImage) -> Volume:
     )
 
 
-def png(fig: Figure) -> bytes:
-    """The figure as PNG bytes."""
-    canvas = FigureCanvasAgg(fig)
-    buffer = io.BytesIO()
-    canvas.print_png(buffer)
-    return buffer.getvalue()
+# --- which slices ------------------------------------------------------------------
 
 
-def _extent(vol: Volume, horizontal: int, vertical: int, origin_mm: np.ndarray) -> list[float]:
-    """imshow extent (origin-relative mm) of a plane spanned by two axes."""
-    h = vol.axis_mm(horizontal) - origin_mm[horizontal]
-    v = vol.axis_mm(vertical) - origin_mm[vertical]
-    dh, dv = abs(vol.step_mm[horizontal]) / 2, abs(vol.step_mm[vertical]) / 2
-    return [h[0] - dh, h[-1] + dh, v[0] - dv, v[-1] + dv]
+@dataclass(frozen=True)
+class Peak:
+    """The strongest voxel of one connected part of a thresholded map.
+
+    ``number`` is the part's rank (1 = most voxels); ``index`` its RAS+ voxel index.
+    """
+
+    number: int
+    index: tuple[int, int, int]
+    value: float
+    voxels: int
 
 
-def _stat_limit(overlay: np.ndarray) -> float:
-    shown = np.abs(overlay[np.isfinite(overlay) & (overlay != 0)])
-    return float(shown.max()) if shown.size else 1.0
+@dataclass(frozen=True)
+class SliceChoice:
+    """One coronal slice of a montage: its index along axis 1 and the peaks it shows."""
+
+    index: int
+    peaks: tuple[Peak, ...] = ()
 
 
-def montage_slices(mask: np.ndarray, n: int = MONTAGE_SLICES) -> np.ndarray:
-    """Indices along axis 1 (posterior→anterior) of ``n`` slices through the mask,
-    ordered from anterior to posterior."""
+def cluster_peaks(overlay: np.ndarray, connectivity: int = DEFAULT_CONNECTIVITY) -> list[Peak]:
+    """The peak of every connected part of the shown (non-zero) voxels, largest first.
+
+    Positive and negative voxels form separate parts, as in the cluster tables; parts
+    are connected through ``connectivity`` neighbours (6, 18 or 26).
+    """
+    structure = neighbourhood(connectivity)
+    found: list[tuple[int, float, tuple[int, int, int]]] = []
+    for sign in (1.0, -1.0):
+        part = np.sign(overlay) == sign
+        labels, n = ndimage.label(part, structure=structure)
+        if n == 0:
+            continue
+        numbers = np.arange(1, n + 1)
+        sizes = ndimage.sum_labels(part, labels, numbers)
+        where = ndimage.maximum_position(np.abs(overlay) * part, labels, numbers)
+        for size, pos in zip(sizes, where, strict=True):
+            ijk = tuple(int(v) for v in pos)
+            found.append((int(size), float(overlay[ijk]), ijk))  # type: ignore[arg-type]
+    found.sort(key=lambda f: (-f[0], -abs(f[1]), f[2]))
+    return [Peak(k + 1, ijk, value, size) for k, (size, value, ijk) in enumerate(found)]
+
+
+def overview_slices(mask: np.ndarray, n: int = OVERVIEW_SLICES) -> np.ndarray:
+    """Indices along axis 1 of ``n`` evenly spaced slices through the mask, anterior first."""
     present = np.flatnonzero(mask.any(axis=(0, 2)))
-    if present.size == 0:
+    if present.size == 0 or n <= 0:
         return np.zeros(0, dtype=int)
-    # leave out the thin caps at both ends (END_TRIM of the extent each)
-    trim = END_TRIM * (present[-1] - present[0])
+    trim = END_TRIM * (present[-1] - present[0])  # leave out the thin caps at both ends
     picks = np.linspace(present[-1] - trim, present[0] + trim, min(n, present.size))
     return np.unique(np.round(picks).astype(int))[::-1]
 
 
-def _bounding_box(mask: np.ndarray, margin: int = 2) -> tuple[slice, slice, slice]:
+def choose_slices(
+    mask: np.ndarray,
+    peaks: Sequence[Peak],
+    *,
+    n_overview: int = OVERVIEW_SLICES,
+    max_peaks: int = MAX_PEAK_SLICES,
+) -> list[SliceChoice]:
+    """A slice through the peak of each of the ``max_peaks`` largest parts, plus an
+    overview of evenly spaced slices away from them; ordered anterior to posterior."""
+    through: dict[int, list[Peak]] = {}
+    for peak in list(peaks)[:max_peaks]:
+        through.setdefault(peak.index[1], []).append(peak)
+    chosen = {j: SliceChoice(j, tuple(p)) for j, p in through.items()}
+    for j in overview_slices(mask, n_overview):
+        if all(abs(int(j) - k) >= MIN_SLICE_GAP for k in chosen):
+            chosen[int(j)] = SliceChoice(int(j))
+    return [chosen[j] for j in sorted(chosen, reverse=True)]
+
+
+# --- maps --------------------------------------------------------------------------
+
+
+def _bounding_box(mask: np.ndarray, margin: int = 1) -> tuple[slice, slice, slice]:
     """Index ranges of the mask's bounding box, widened by ``margin`` voxels."""
     if not mask.any():
         return tuple(slice(0, n) for n in mask.shape)  # type: ignore[return-value]
@@ -118,22 +175,27 @@ def _bounding_box(mask: np.ndarray, margin: int = 2) -> tuple[slice, slice, slic
     return tuple(box)  # type: ignore[return-value]
 
 
-def _bottom_colorbar(fig: Figure, mappable, label: str, height_in: float, note: str) -> None:
-    """A horizontal colour bar in the bottom ``height_in`` inches, its label beneath."""
-    total = fig.get_figheight()
-    cax = fig.add_axes([0.3, 0.5 / total, 0.4, 0.12 / total])
-    bar = fig.colorbar(mappable, cax=cax, orientation="horizontal")
-    bar.ax.tick_params(labelsize=7, pad=1)
-    fig.text(0.5, 0.06 / total, label, ha="center", va="bottom", fontsize=8)
-    if note:
-        fig.text(0.01, 0.06 / total, note, ha="left", va="bottom", fontsize=7, color="0.3")
+def shown_range(overlay: np.ndarray) -> tuple[float, float]:
+    """Smallest and largest |value| shown (the colour scale's two ends)."""
+    shown = np.abs(overlay[np.isfinite(overlay) & (overlay != 0)])
+    if not shown.size:
+        return 0.0, 1.0
+    low, high = float(shown.min()), float(shown.max())
+    return low, high if high > low else low + 1.0
 
 
-def _outline(mask2d: np.ndarray) -> np.ndarray:
-    """Boundary voxels of a 2-D mask (inside, with a 4-neighbour outside)."""
-    padded = np.pad(mask2d, 1)
-    interior = padded[:-2, 1:-1] & padded[2:, 1:-1] & padded[1:-1, :-2] & padded[1:-1, 2:]
-    return mask2d & ~interior
+def _template_limits(template: Volume, mask: np.ndarray) -> tuple[float, float]:
+    """imshow limits that draw the template in greys from black to TEMPLATE_GREY_MAX."""
+    inside = template.data[mask] if mask.shape == template.data.shape else template.data
+    low, high = np.percentile(inside, [2, 98]) if inside.size else (0.0, 1.0)
+    high = high if high > low else low + 1.0
+    return float(low), float(low + (high - low) / TEMPLATE_GREY_MAX)
+
+
+def _contour(ax, plane: np.ndarray, extent, **style) -> None:
+    """The outline of a 2-D mask (rows = vertical axis), when it has an inside and out."""
+    if 0 < plane.sum() < plane.size and min(plane.shape) >= 2:
+        ax.contour(plane.astype(float), levels=[0.5], origin="lower", extent=extent, **style)
 
 
 def coronal_montage(
@@ -141,98 +203,168 @@ def coronal_montage(
     overlay: np.ndarray,
     mask: np.ndarray,
     origin_mm: np.ndarray,
+    slices: Sequence[SliceChoice],
     *,
     label: str,
     origin_name: str,
-) -> bytes:
-    """Coronal slices through the template from anterior to posterior with an overlay.
-
-    The slices are tiled into one mosaic (one image per layer: template, mask outline,
-    statistic), which keeps drawing fast.
+    outlines: Sequence[tuple[str, np.ndarray]] = (),
+) -> Figure:
+    """Coronal slices with a signed overlay, region outlines and labels under each slice.
 
     Parameters
     ----------
     template
-        Background (RAS+ order), e.g. the study template.
+        Background (RAS+ order), e.g. the study template; drawn in dark greys.
     overlay
-        Signed statistic on the same grid; 0 where nothing is shown (below threshold).
+        Signed statistic on the same grid; 0 where nothing is shown.
     mask
         Analysis mask (its outline is drawn; panels are cropped to its bounding box).
     origin_mm
         World mm of the stereotaxic origin; slice labels give AP from it.
+    slices
+        :func:`choose_slices`: which slices, and the peaks each passes through.
     label
-        Colour-bar label.
+        Colour-bar label, with the statistic's units.
     origin_name
         The origin's name for the slice labels (e.g. "bregma").
+    outlines
+        ``(name, 3-D bool)`` regions outlined on every slice (e.g. the targets).
     """
     mask = mask > 0
-    slices = montage_slices(mask)
     bx, _by, bz = _bounding_box(mask)
-    columns = min(MONTAGE_COLUMNS, max(len(slices), 1))
-    rows = max(1, int(np.ceil(len(slices) / columns)))
-    nx, nz = bx.stop - bx.start, bz.stop - bz.start
-    # mosaic in display orientation: rows of the image = DV (top = dorsal), columns = ML
-    back = np.full((rows * nz, columns * nx), np.nan)
-    stat = np.zeros_like(back)
-    edge = np.zeros(back.shape, dtype=bool)
-    for n, j in enumerate(slices):
-        r, c = divmod(n, columns)
-        rs = slice(r * nz, (r + 1) * nz)
-        cs = slice(c * nx, (c + 1) * nx)
-        back[rs, cs] = template.data[bx, j, bz].T[::-1]
-        stat[rs, cs] = overlay[bx, j, bz].T[::-1]
-        edge[rs, cs] = _outline(mask[bx, j, bz]).T[::-1]
-    aspect = abs(template.step_mm[2] / template.step_mm[0])
-    bottom = 0.75  # inches for the colour bar and its label
-    width = 7.2
-    height = width * rows * nz * aspect / (columns * nx) + bottom
-    fig = Figure(figsize=(width, height), dpi=DPI, facecolor="black")
-    ax = fig.add_axes([0, bottom / height, 1, 1 - bottom / height])
-    ax.set_axis_off()
-    inside = template.data[mask]
-    low, high = np.percentile(inside, [2, 98]) if inside.size else (0.0, 1.0)
-    ax.imshow(
-        np.nan_to_num(back, nan=low),
-        cmap=TEMPLATE_CMAP,
-        vmin=low,
-        vmax=high,
-        aspect=aspect,
-        interpolation="nearest",
-    )
-    ax.imshow(
-        np.ma.masked_where(~edge, np.ones(edge.shape)),
-        cmap="gray",
-        vmin=0,
-        vmax=2,
-        alpha=0.6,
-        aspect=aspect,
-        interpolation="nearest",
-    )
-    limit = _stat_limit(overlay)
-    image = ax.imshow(
-        np.ma.masked_equal(stat, 0.0),
-        cmap=STAT_CMAP,
-        norm=Normalize(-limit, limit),
-        aspect=aspect,
-        interpolation="nearest",
-    )
+    ml = template.axis_mm(0)[bx] - origin_mm[0]
+    dv = template.axis_mm(2)[bz] - origin_mm[2]
+    half_x, half_z = abs(template.step_mm[0]) / 2, abs(template.step_mm[2]) / 2
+    extent = [ml[0] - half_x, ml[-1] + half_x, dv[0] - half_z, dv[-1] + half_z]
+    # as few rows as MONTAGE_COLUMNS allow, filled evenly
+    rows = max(1, int(np.ceil(len(slices) / MONTAGE_COLUMNS)))
+    columns = max(1, int(np.ceil(len(slices) / rows)))
+    panel_w = FIGURE_WIDTH_IN / columns
+    panel_h = panel_w * (extent[3] - extent[2]) / (extent[1] - extent[0])
+    height = rows * (panel_h + LABEL_STRIP_IN) + COLOURBAR_STRIP_IN
+    fig = Figure(figsize=(FIGURE_WIDTH_IN, height), facecolor=MAP_BACKGROUND)
+    cmap = signed_colormap()
+    norm = threshold_norm(*shown_range(overlay))
+    grey_low, grey_high = _template_limits(template, mask)
     y_mm = template.axis_mm(1) - origin_mm[1]
-    for n, j in enumerate(slices):
+    for n, choice in enumerate(slices):
         r, c = divmod(n, columns)
+        bottom = height - (r + 1) * (panel_h + LABEL_STRIP_IN) + LABEL_STRIP_IN
+        ax = fig.add_axes(
+            [
+                c * panel_w / FIGURE_WIDTH_IN,
+                bottom / height,
+                panel_w / FIGURE_WIDTH_IN,
+                panel_h / height,
+            ]
+        )
+        ax.set_axis_off()
+        j = choice.index
+        common = {"origin": "lower", "extent": extent, "interpolation": "nearest"}
+        ax.imshow(
+            template.data[bx, j, bz].T, cmap=TEMPLATE_CMAP, vmin=grey_low, vmax=grey_high, **common
+        )
+        _contour(ax, mask[bx, j, bz].T, extent, colors=MASK_OUTLINE, linewidths=0.5)
+        ax.imshow(np.ma.masked_equal(overlay[bx, j, bz].T, 0.0), cmap=cmap, norm=norm, **common)
+        for k, (_name, region) in enumerate(outlines):
+            _contour(
+                ax,
+                region[bx, j, bz].T,
+                extent,
+                colors=TARGET_OUTLINE,
+                linewidths=0.9,
+                linestyles=[TARGET_STYLES[k % len(TARGET_STYLES)]],
+            )
+        for peak in choice.peaks:
+            ax.plot(
+                template.axis_mm(0)[peak.index[0]] - origin_mm[0],
+                template.axis_mm(2)[peak.index[2]] - origin_mm[2],
+                marker="o",
+                markersize=7,
+                markerfacecolor="none",
+                markeredgecolor="white",
+                markeredgewidth=0.8,
+            )
+        ax.set_xlim(extent[0], extent[1])
+        ax.set_ylim(extent[2], extent[3])
+        text = f"AP {y_mm[j]:+.2f}"
+        if choice.peaks:
+            text += "\npeak " + ", ".join(str(p.number) for p in choice.peaks)
         ax.text(
-            (c + 0.5) * nx - 0.5,
-            (r + 1) * nz - 1.5,
-            f"AP {y_mm[j]:+.2f}",
+            0.5,
+            -0.03,
+            text,
+            transform=ax.transAxes,
             ha="center",
-            va="bottom",
-            fontsize=7,
+            va="top",
+            fontsize=6.5,
+            color="white",
+            linespacing=1.1,
+        )
+    _map_key(
+        fig,
+        ScalarMappable(norm=norm, cmap=cmap),
+        label,
+        outlines,
+        f"AP: mm from {origin_name}; left hemisphere on the left; ○ cluster peak",
+        empty=not np.any(overlay),
+    )
+    return fig
+
+
+def _map_key(
+    fig: Figure, mappable: ScalarMappable, label: str, outlines, note: str, empty: bool = False
+) -> None:
+    """The colour bar with its units and ticks at the shown range, the outline key and a
+    note, in the bottom strip of a map figure (white on the dark background)."""
+    total = fig.get_figheight()
+    if empty:  # no colour scale for nothing: say so where the bar would be
+        fig.text(
+            0.5,
+            0.58 / total,
+            "no voxel shown (none survives)",
+            ha="center",
+            va="center",
+            fontsize=7.5,
             color="white",
         )
-    _bottom_colorbar(fig, image, label, bottom, f"AP: mm from {origin_name}; left on the left")
-    for text in fig.texts:
-        text.set_color("white")
-    fig.axes[-1].tick_params(colors="white")
-    return png(fig)
+    else:
+        cax = fig.add_axes([0.34, 0.52 / total, 0.32, 0.13 / total])
+        norm = mappable.norm
+        low = float(getattr(norm, "threshold", 0.0))
+        high = float(norm.vmax)
+        bar = fig.colorbar(mappable, cax=cax, orientation="horizontal")
+        # both sides of the weakest shown value meet in the middle: one tick, "±low"
+        bar.set_ticks([-high, 0.0, high])
+        bar.set_ticklabels([f"{-high:.1f}", f"±{low:.1f}", f"{high:.1f}"])
+        bar.ax.tick_params(labelsize=6.5, pad=1, colors="white")
+        bar.outline.set_edgecolor("0.7")
+    fig.text(0.5, 0.28 / total, label, ha="center", va="center", fontsize=7.5, color="white")
+    fig.text(0.5, 0.1 / total, note, ha="center", va="center", fontsize=6.5, color="0.8")
+    if outlines:
+        handles = [
+            Line2D(
+                [],
+                [],
+                color=TARGET_OUTLINE,
+                linewidth=0.9,
+                linestyle=TARGET_STYLES[k % len(TARGET_STYLES)],
+            )
+            for k in range(len(outlines))
+        ]
+        legend = fig.legend(
+            handles,
+            [name for name, _ in outlines],
+            loc="lower left",
+            bbox_to_anchor=(0.005, 0.38 / total),
+            fontsize=6.5,
+            frameon=False,
+            labelcolor="white",
+            title="outlined",
+            title_fontsize=6.5,
+            handlelength=2.2,
+        )
+        legend.get_title().set_color("white")
 
 
 def _signed_max_projection(values: np.ndarray, axis: int) -> np.ndarray:
@@ -249,17 +381,16 @@ def projection_views(
     *,
     label: str,
     origin_name: str,
-) -> bytes:
-    """A dorsal (top-down) and a lateral maximum-intensity view over the brain outline.
+) -> Figure:
+    """A dorsal (top-down) and a lateral maximum-intensity view over the brain's outline.
 
     ``axes_mm`` are the origin-relative mm of the three RAS+ axes (ML, AP, DV). The
-    outline is the contour of the mask's own projection.
+    brain is the mask's own projection, drawn in dark grey.
     """
-    bottom = 0.75  # inches for the colour bar and its label
-    fig = Figure(figsize=(7.2, 3.7), dpi=DPI)
-    total_h = fig.get_figheight()
-    limit = _stat_limit(overlay)
-    norm = Normalize(-limit, limit)
+    height = 3.2 + COLOURBAR_STRIP_IN - 0.75
+    fig = Figure(figsize=(FIGURE_WIDTH_IN, height), facecolor=MAP_BACKGROUND)
+    cmap = signed_colormap()
+    norm = threshold_norm(*shown_range(overlay))
     ml, ap, dv = axes_mm
     half = np.abs(step_mm) / 2
 
@@ -268,43 +399,35 @@ def projection_views(
 
     views = (
         # dorsal: look down along DV; ML horizontal, AP vertical (anterior up)
-        ("dorsal view", 2, 0, 1, extent(ml, ap, half[0], half[1]), "ML (mm)", "AP (mm)"),
+        ("dorsal view", 2, extent(ml, ap, half[0], half[1]), "ML (mm)", "AP (mm)"),
         # lateral: look from the right along ML; AP horizontal (anterior right), DV up
         (
             "lateral view (from the right)",
             0,
-            1,
-            2,
             extent(ap, dv, half[1], half[2]),
             "AP (mm)",
             "DV (mm)",
         ),
     )
-    # panel widths follow the brain's extent (voxel edges included, so a grid one voxel
-    # thin still has a width), each panel keeping at least MIN_PANEL_SHARE of the row
+    # panel widths follow the brain's extent, each keeping at least MIN_PANEL_SHARE
     widths = np.array([ml[-1] - ml[0] + 2 * half[0], ap[-1] - ap[0] + 2 * half[1]])
-    left = 0.08
-    total = 0.86
     share = np.maximum(widths / widths.sum(), MIN_PANEL_SHARE)
     share = share / share.sum()
-    image = None
-    for n, (title, along, _h, _v, ext, xlab, ylab) in enumerate(views):
+    left, total = 0.09, 0.86
+    for n, (title, along, ext, xlab, ylab) in enumerate(views):
         ax = fig.add_axes(
             [
-                left + total * share[:n].sum() + 0.04 * n,
-                (bottom + 0.4) / total_h,
-                total * share[n] - 0.04,
-                (total_h - bottom - 0.7) / total_h,
+                left + total * share[:n].sum() + 0.05 * n,
+                (COLOURBAR_STRIP_IN + 0.4) / height,
+                total * share[n] - 0.05,
+                (height - COLOURBAR_STRIP_IN - 0.7) / height,
             ]
         )
-        proj = _signed_max_projection(np.where(mask > 0, overlay, 0.0), along)
-        outline = mask.any(axis=along)
-        if along == 2:
-            proj, outline = proj.T, outline.T  # rows = AP
-        else:
-            proj, outline = proj.T, outline.T  # (AP, DV) -> rows = DV
+        ax.set_facecolor(MAP_BACKGROUND)
+        proj = _signed_max_projection(np.where(mask > 0, overlay, 0.0), along).T
+        outline = mask.any(axis=along).T  # rows = AP (dorsal) or DV (lateral)
         ax.imshow(
-            np.where(outline, 0.93, 1.0),
+            np.where(outline, 0.22, 0.0),
             cmap="gray",
             vmin=0,
             vmax=1,
@@ -312,40 +435,42 @@ def projection_views(
             extent=ext,
             interpolation="nearest",
         )
-        # a contour needs inside and outside, and at least 2 × 2 points
-        if 0 < outline.sum() < outline.size and min(outline.shape) >= 2:
-            ax.contour(
-                outline.astype(float),
-                levels=[0.5],
-                colors=OUTLINE_COLOUR,
-                linewidths=0.8,
-                origin="lower",
-                extent=ext,
-            )
-        image = ax.imshow(
+        _contour(ax, outline, ext, colors=MASK_OUTLINE, linewidths=0.7)
+        ax.imshow(
             np.ma.masked_equal(proj, 0.0),
-            cmap=STAT_CMAP,
+            cmap=cmap,
             norm=norm,
             origin="lower",
             extent=ext,
             interpolation="nearest",
         )
-        ax.set_title(title, fontsize=9)
-        ax.set_xlabel(xlab, fontsize=8)
-        ax.set_ylabel(ylab, fontsize=8)
-        ax.tick_params(labelsize=7)
+        ax.set_title(title, fontsize=8, color="white")
+        ax.set_xlabel(xlab, fontsize=7, color="white")
+        ax.set_ylabel(ylab, fontsize=7, color="white")
+        ax.tick_params(labelsize=6.5, colors="white")
         for spine in ax.spines.values():
             spine.set_visible(False)
-    if image is not None:
-        _bottom_colorbar(fig, image, label, bottom, f"mm from {origin_name}")
-    return png(fig)
+    _map_key(
+        fig,
+        ScalarMappable(norm=norm, cmap=cmap),
+        label,
+        (),
+        f"mm from {origin_name}",
+        empty=not np.any(overlay),
+    )
+    return fig
 
 
-def _interval_axes(n: int, left: float, width: float = 6.4) -> tuple[Figure, object]:
-    """A figure for ``n`` rows of intervals; ``left`` is the label margin (fraction)."""
-    height = 0.75 + 0.28 * max(n, 4)
-    fig = Figure(figsize=(width, height), dpi=DPI)
-    ax = fig.add_axes([left, 0.5 / height, 0.95 - left, 1 - 0.8 / height])
+# --- plots ---------------------------------------------------------------------------
+
+
+def _interval_axes(n: int, left_in: float, width: float = 6.4) -> tuple[Figure, object]:
+    """A figure for ``n`` rows of intervals; ``left_in`` inches are kept for labels."""
+    height = 0.9 + 0.26 * max(n, 3)
+    fig = Figure(figsize=(width, height))
+    ax = fig.add_axes(
+        [left_in / width, 0.55 / height, 1 - (left_in + 0.15) / width, 1 - 0.95 / height]
+    )
     ax.tick_params(labelsize=7)
     return fig, ax
 
@@ -358,13 +483,13 @@ def forest_plot(
     *,
     group: tuple[float, float, float] | None,
     xlabel: str,
-) -> bytes:
+) -> Figure:
     """Per-animal estimates with intervals; the group estimate as a diamond at the bottom.
 
     ``group`` is (effect, low, high) of the group estimate, or None.
     """
     rows = list(labels) + (["group"] if group is not None else [])
-    fig, ax = _interval_axes(len(rows), left=0.14)
+    fig, ax = _interval_axes(len(rows), left_in=0.9)
     y = np.arange(len(labels))[::-1] + (1 if group is not None else 0)
     ax.hlines(y, low, high, color=ACCENT, linewidth=1.2)
     ax.plot(effect, y, "s", color=ACCENT, markersize=4)
@@ -374,128 +499,262 @@ def forest_plot(
         ax.axvline(g, color="0.6", linewidth=0.6, linestyle=":")
     ax.axvline(0, color="0.3", linewidth=0.8)
     ax.set_yticks(list(y) + ([0] if group is not None else []))
-    ax.set_yticklabels(list(labels) + (["group"] if group is not None else []), fontsize=7)
+    ax.set_yticklabels(rows[: len(labels)] + (["group"] if group is not None else []), fontsize=7)
     ax.set_ylim(-0.8, len(rows) - 0.2)
     ax.set_xlabel(xlabel, fontsize=8)
-    return png(fig)
+    return fig
 
 
-def laterality_plot(symmetry: pd.DataFrame) -> bytes:
-    """Laterality indices with confidence intervals, one row per region.
+#: The two laterality indices of symmetry.tsv: column, words, marker.
+LI_KINDS = (("li_extent", "extent", "o"), ("li_effect", "effect", "D"))
 
-    Uses the columns ``li_extent`` / ``li_effect`` with their ``_low`` / ``_high``
-    bounds where present. LI = (L − R) / (L + R): +1 all left, −1 all right.
+
+def laterality_plot(symmetry: pd.DataFrame) -> Figure:
+    """Laterality indices, one row per region and index.
+
+    The filled marker and the bar are the bootstrap's estimator (``li_*_shortcut`` on
+    the original animals, and the percentile interval of its replicates); the open
+    marker is the LI of the fitted group maps (``li_extent``, ``li_effect``), which the
+    interval does not belong to. Tables written before the shortcut column existed
+    show the group-map LI only as open markers with their intervals.
+    LI = (L − R) / (L + R): +1 all left, −1 all right.
     """
     regions = symmetry["region"].astype(str).tolist()
-    fig, ax = _interval_axes(len(regions), left=0.3)
-    y = np.arange(len(regions))[::-1].astype(float)
-    series = (("li_extent", "by extent", "o", -0.12), ("li_effect", "by effect", "D", 0.12))
-    markers = 0
-    for col, name, marker, shift in series:
-        if col not in symmetry:
-            continue
-        v = pd.to_numeric(symmetry[col], errors="coerce").to_numpy()
-        lo = pd.to_numeric(symmetry.get(f"{col}_low"), errors="coerce")
-        hi = pd.to_numeric(symmetry.get(f"{col}_high"), errors="coerce")
-        colour = ACCENT if marker == "o" else "0.25"
-        if lo is not None and hi is not None:
-            ax.hlines(y + shift, np.asarray(lo), np.asarray(hi), color=colour, linewidth=1.1)
-        ax.plot(v, y + shift, marker, color=colour, markersize=4, linestyle="none", label=name)
-        markers += 1
+    kinds = [k for k in LI_KINDS if k[0] in symmetry]
+    labels, ys = [], []
+    fig, ax = _interval_axes(len(regions) * max(len(kinds), 1), left_in=2.1)
+    row = len(regions) * len(kinds) - 1
+    for r, region in enumerate(regions):
+        for col, words, marker in kinds:
+            value = pd.to_numeric(symmetry[col], errors="coerce").to_numpy()[r]
+            lo = _number(symmetry, f"{col}_low", r)
+            hi = _number(symmetry, f"{col}_high", r)
+            point = _number(symmetry, f"{col}_shortcut", r)
+            ax.hlines(row, lo, hi, color=ACCENT, linewidth=1.3)
+            if np.isfinite(point):
+                ax.plot(point, row, marker, color=ACCENT, markersize=4.5)
+            ax.plot(
+                value,
+                row,
+                marker,
+                markerfacecolor="white",
+                markeredgecolor="0.15",
+                markersize=5.5,
+                markeredgewidth=0.9,
+            )
+            labels.append(f"{region} — {words}")
+            ys.append(row)
+            row -= 1
     ax.axvline(0, color="0.3", linewidth=0.8)
-    ax.set_xlim(-1.05, 1.05)
-    ax.set_yticks(y)
-    ax.set_yticklabels(regions, fontsize=7)
+    ax.set_xlim(-1.08, 1.08)
+    ax.set_ylim(-0.7, len(ys) - 0.3)
+    ax.set_yticks(ys)
+    ax.set_yticklabels(labels, fontsize=7)
     ax.set_xlabel("laterality index (L − R)/(L + R): −1 right only, +1 left only", fontsize=8)
-    if markers:
-        ax.legend(fontsize=7, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncols=2, frameon=False)
-    return png(fig)
+    own_point = any(f"{col}_shortcut" in symmetry for col, _w, _m in kinds)
+    handles = [
+        Line2D(
+            [],
+            [],
+            color=ACCENT,
+            marker="o" if own_point else "none",
+            markersize=4.5,
+            linewidth=1.3,
+        ),
+        Line2D(
+            [],
+            [],
+            linestyle="none",
+            marker="o",
+            markerfacecolor="white",
+            markeredgecolor="0.15",
+            markersize=5.5,
+        ),
+    ]
+    fig.legend(
+        handles,
+        [
+            "bootstrap estimate and its interval" if own_point else "bootstrap interval",
+            "LI of the fitted group maps",
+        ],
+        loc="upper center",
+        bbox_to_anchor=(0.5, 1.0),
+        ncols=2,
+        fontsize=7,
+        frameon=False,
+    )
+    return fig
 
 
-def li_curve_plot(curves: pd.DataFrame) -> bytes:
-    """Laterality index against the threshold, one line per region."""
-    fig = Figure(figsize=(6.4, 3.0), dpi=DPI)
-    ax = fig.add_axes([0.1, 0.17, 0.62, 0.75])
+def _number(frame: pd.DataFrame, column: str, row: int) -> float:
+    if column not in frame:
+        return float("nan")
+    return float(pd.to_numeric(frame[column], errors="coerce").to_numpy()[row])
+
+
+def li_curve_plot(curves: pd.DataFrame) -> Figure:
+    """Laterality index against the threshold, one line per region; the legend below."""
     groups = list(curves.groupby("region", sort=False))
+    legend_rows = int(np.ceil(len(groups) / 2))
+    height = 2.8 + 0.2 * legend_rows
+    fig = Figure(figsize=(6.4, height))
+    ax = fig.add_axes(
+        [0.1, (0.55 + 0.2 * legend_rows) / height, 0.86, 1 - (0.75 + 0.2 * legend_rows) / height]
+    )
     for n, (region, part) in enumerate(groups):
         part = part.assign(
             threshold=pd.to_numeric(part["threshold"], errors="coerce"),
             li=pd.to_numeric(part["li"], errors="coerce"),
         ).sort_values("threshold")
-        colour = _palette(n, len(groups))
-        ax.plot(part["threshold"], part["li"], color=colour, linewidth=1.3, label=str(region))
+        ax.plot(
+            part["threshold"],
+            part["li"],
+            color=_palette(n, len(groups)),
+            linewidth=1.4,
+            linestyle=TARGET_STYLES[n % len(TARGET_STYLES)],
+            label=str(region),
+        )
     ax.axhline(0, color="0.3", linewidth=0.8)
     ax.set_ylim(-1.05, 1.05)
-    ax.set_xlabel("threshold", fontsize=8)
+    ax.set_xlabel("z threshold", fontsize=8)
     ax.set_ylabel("laterality index", fontsize=8)
     ax.tick_params(labelsize=7)
-    ax.legend(fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.02, 1.0))
-    return png(fig)
+    fig.legend(loc="lower center", bbox_to_anchor=(0.5, 0.0), ncols=2, fontsize=7, frameon=False)
+    return fig
 
 
 def _palette(n: int, total: int) -> tuple[float, float, float, float]:
-    """Colour ``n`` of ``total`` lines, spread along viridis (its light end left out)."""
+    """Colour ``n`` of ``total`` lines, spread along cividis (its light end left out)."""
     from matplotlib import colormaps
 
-    return colormaps["viridis"](0.85 * n / max(total - 1, 1))
+    return colormaps["cividis"](0.8 * n / max(total - 1, 1))
 
 
-def variance_plot(var_animal: np.ndarray, var_run: np.ndarray, *, unit: str) -> bytes:
+def variance_plot(var_animal: np.ndarray, var_run: np.ndarray, *, unit: str) -> Figure:
     """Distribution over voxels of the between-animal and between-run SDs (τ and σ)."""
-    fig = Figure(figsize=(6.4, 2.6), dpi=DPI)
+    fig = Figure(figsize=(6.4, 2.7))
     tau = np.sqrt(np.clip(var_animal, 0, None))
     sigma = np.sqrt(np.clip(var_run, 0, None))
     top = float(np.percentile(np.concatenate([tau, sigma]), 99.5)) if tau.size else 1.0
     bins = np.linspace(0, max(top, 1e-12), 41)
-    ax = fig.add_axes([0.08, 0.2, 0.5, 0.7])
+    ax = fig.add_axes([0.09, 0.2, 0.5, 0.7])
     ax.hist(
         tau, bins=bins, histtype="step", color=ACCENT, linewidth=1.3, label="τ (between animals)"
     )
     ax.hist(
-        sigma, bins=bins, histtype="step", color="0.25", linewidth=1.3, label="σ (between runs)"
+        sigma,
+        bins=bins,
+        histtype="step",
+        color=FLAG_COLOUR,
+        linewidth=1.3,
+        linestyle="--",
+        label="σ (between runs)",
     )
     ax.set_xlabel(f"standard deviation ({unit})", fontsize=8)
     ax.set_ylabel("voxels", fontsize=8)
     ax.tick_params(labelsize=7)
     ax.legend(fontsize=7, frameon=False)
-    ax2 = fig.add_axes([0.7, 0.2, 0.27, 0.7])
-    total = var_animal + var_run
-    share = np.divide(var_animal, total, out=np.full(total.shape, np.nan), where=total > 0)
-    share = share[np.isfinite(share)]
-    ax2.hist(share, bins=np.linspace(0, 1, 21), color=ACCENT, alpha=0.8)
+    ax2 = fig.add_axes([0.71, 0.2, 0.26, 0.7])
+    ax2.hist(
+        variance_share(var_animal, var_run), bins=np.linspace(0, 1, 21), color=ACCENT, alpha=0.85
+    )
     ax2.set_xlabel("τ² / (τ² + σ²)", fontsize=8)
     ax2.set_ylabel("voxels", fontsize=8)
     ax2.tick_params(labelsize=7)
-    return png(fig)
+    return fig
 
 
-def run_quality_plot(quality: pd.DataFrame) -> bytes:
-    """Each run's similarity to the group (x) against its variance (y), z-scored;
-    flagged runs marked and labelled."""
-    fig = Figure(figsize=(6.4, 3.2), dpi=DPI)
-    ax = fig.add_axes([0.1, 0.16, 0.86, 0.76])
-    x = pd.to_numeric(quality["z_correlation"], errors="coerce").to_numpy()
-    y = pd.to_numeric(quality["z_variance"], errors="coerce").to_numpy()
+def variance_share(var_animal: np.ndarray, var_run: np.ndarray) -> np.ndarray:
+    """τ² / (τ² + σ²) at the voxels where the sum is positive."""
+    total = var_animal + var_run
+    share = np.divide(var_animal, total, out=np.full(total.shape, np.nan), where=total > 0)
+    return share[np.isfinite(share)]
+
+
+#: The three numbers of run quality: robust-z column, axis label.
+QUALITY_MEASURES = (
+    ("z_correlation", "agreement with the group map"),
+    ("z_variance", "mean first-level variance"),
+    ("z_edge", "edge-rim score"),
+)
+
+
+def run_quality_plot(quality: pd.DataFrame, threshold: float) -> Figure:
+    """Each run's robust z on each quality number, one strip per number.
+
+    Runs beyond ±``threshold`` on any number are flagged: drawn as numbered crosses on
+    every strip, with the key (number → animal, session, run) at the right, so that no
+    label sits on another.
+    """
+    measures = [m for m in QUALITY_MEASURES if m[0] in quality]
     flagged = (
         quality["flagged"].astype(str).str.lower().isin(["true", "1", "yes"]).to_numpy()
         if "flagged" in quality
         else np.zeros(len(quality), dtype=bool)
     )
-    ax.plot(x[~flagged], y[~flagged], "o", color=ACCENT, markersize=4, label="run")
-    ax.plot(x[flagged], y[flagged], "X", color=FLAG_COLOUR, markersize=7, label="flagged run")
-    for k in np.flatnonzero(flagged):
-        row = quality.iloc[k]
-        ax.annotate(
-            f"{row.get('animal', '')} s{row.get('session', '')} r{row.get('run', '')}",
-            (x[k], y[k]),
-            xytext=(4, 4),
-            textcoords="offset points",
-            fontsize=7,
+    strip = 0.62
+    height = 0.75 + strip * max(len(measures), 1)
+    fig = Figure(figsize=(7.2, height))
+    values = {c: pd.to_numeric(quality[c], errors="coerce").to_numpy() for c, _ in measures}
+    finite = np.concatenate([v[np.isfinite(v)] for v in values.values()] + [np.zeros(1)])
+    reach = max(float(np.abs(finite).max()), threshold) * 1.08
+    # the same small vertical offset for a run on every strip (its rank), so that runs
+    # with equal z do not hide each other
+    offset = ((np.arange(len(quality)) * 7) % 11) / 10.0 - 0.5
+    numbers = {k: n + 1 for n, k in enumerate(np.flatnonzero(flagged))}
+    for s, (column, words) in enumerate(measures):
+        ax = fig.add_axes(
+            [0.25, (0.5 + strip * (len(measures) - 1 - s)) / height, 0.47, (strip - 0.12) / height]
         )
-    ax.axvline(0, color="0.7", linewidth=0.6)
-    ax.axhline(0, color="0.7", linewidth=0.6)
-    ax.set_xlabel("similarity to the group map (z across runs)", fontsize=8)
-    ax.set_ylabel("mean first-level variance (z across runs)", fontsize=8)
-    ax.tick_params(labelsize=7)
-    ax.legend(fontsize=7, frameon=False)
-    return png(fig)
+        v = values[column]
+        ax.axvspan(-threshold, threshold, color="0.93", zorder=0)
+        ax.plot(v[~flagged], offset[~flagged], "o", color=ACCENT, markersize=3.2)
+        ax.plot(v[flagged], offset[flagged], "X", color=FLAG_COLOUR, markersize=5.5)
+        for k, n in numbers.items():
+            if np.isfinite(v[k]):
+                ax.annotate(
+                    str(n),
+                    (v[k], offset[k]),
+                    xytext=(0, 4),
+                    textcoords="offset points",
+                    ha="center",
+                    fontsize=6,
+                    color=FLAG_COLOUR,
+                )
+        ax.set_xlim(-reach, reach)
+        ax.set_ylim(-1.0, 1.0)
+        ax.set_yticks([])
+        ax.set_ylabel(words, fontsize=7, rotation=0, ha="right", va="center")
+        ax.tick_params(labelsize=6.5)
+        if s < len(measures) - 1:
+            ax.set_xticklabels([])
+    fig.text(
+        0.485,
+        0.12 / height,
+        f"robust z across runs (shaded: within ±{threshold:g}, not flagged)",
+        ha="center",
+        fontsize=7.5,
+    )
+    session = quality["session"] if "session" in quality else pd.Series([""] * len(quality))
+    key = [
+        f"{n}  {quality['animal'].iloc[k]} s{session.iloc[k]} r{quality['run'].iloc[k]}"
+        for k, n in numbers.items()
+    ]
+    fig.text(
+        0.75,
+        1 - 0.2 / height,
+        "flagged runs" if key else "no run flagged",
+        fontsize=7,
+        va="top",
+        fontweight="bold",
+    )
+    fig.text(
+        0.75,
+        1 - 0.42 / height,
+        "\n".join(key),
+        fontsize=6.5,
+        va="top",
+        color=FLAG_COLOUR,
+        linespacing=1.25,
+    )
+    return fig

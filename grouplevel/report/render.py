@@ -20,15 +20,13 @@ from __future__ import annotations
 
 import base64
 import datetime as _dt
-import re
 import time
 from importlib import resources
 from pathlib import Path
 
 import jinja2
-import nibabel as nib
-import numpy as np
 
+from grouplevel.outputs.files import atomic_write
 from grouplevel.outputs.folder import require_grouplevel_output
 from grouplevel.outputs.records import (
     locate_input,
@@ -38,13 +36,14 @@ from grouplevel.outputs.records import (
 )
 from grouplevel.outputs.summary import present_files, read_summary, result_names
 from grouplevel.planning.plan import design_text
-from grouplevel.report import figures
 from grouplevel.report.browser import (
     apply_content_security_policy,
     browser_context,
     policy_placeholder,
 )
+from grouplevel.report.figure_files import FIGURES_FOLDER, DrawnFigure, write_figures
 from grouplevel.report.methods import header_sentence, methods_text
+from grouplevel.report.result_figures import MAP_FIGURES, Threshold, result_figures
 from grouplevel.report.tables import (
     STAT,
     P,
@@ -101,7 +100,35 @@ def _data_uri(png: bytes) -> str:
 
 
 def _figure(key: str, title: str, png: bytes, alt: str, caption: str) -> dict:
-    return {"key": key, "title": title, "src": _data_uri(png), "alt": alt, "caption": caption}
+    return {
+        "key": key,
+        "title": title,
+        "src": _data_uri(png),
+        "alt": alt,
+        "caption": caption,
+        "section": "maps" if key in MAP_FIGURES else "figures",
+    }
+
+
+def _threshold(summary: dict, result: dict) -> Threshold:
+    """The correction the result's maps are shown at (``_method``), with its map."""
+    alpha = ((summary.get("settings") or {}).get("inference") or {}).get("alpha", 0.05)
+    method = _method(summary, result)
+    words = _METHOD_LABEL[method].format(a=alpha) if method in _METHOD_LABEL else method
+    return Threshold(method, _METHOD_MAP.get(method, "q"), words, float(alpha))
+
+
+def _publish(out_dir: Path, drawn: list[DrawnFigure]) -> tuple[dict[str, list[dict]], list]:
+    """Write the figures to ``figures/`` and return the report's figure entries per
+    result (each embedding the very PNG file written) and summary.json's entries."""
+    png, entries = write_figures(out_dir, drawn)
+    by_result: dict[str, list[dict]] = {}
+    for fig in drawn:
+        by_result.setdefault(fig.result, []).append(
+            _figure(fig.key, fig.title, png[fig.stem], fig.alt, fig.caption)
+            | {"file": f"{FIGURES_FOLDER}/{fig.stem}.png"}
+        )
+    return by_result, entries
 
 
 def _method(summary: dict, result: dict) -> str:
@@ -115,25 +142,6 @@ def _method(summary: dict, result: dict) -> str:
     if not inf.get("permutations"):
         return "fdr"
     return "tfce" if inf.get("tfce", True) else "cluster_mass"
-
-
-def _load(
-    path: Path, header_to_true: np.ndarray | None = None
-) -> nib.spatialimages.SpatialImage | None:
-    """A map of the folder, placed in true mm when the headers were declared scaled or
-    their axes exchanged (``header_to_true``, from summary.json's grid)."""
-    if not path.is_file():
-        return None
-    img = nib.load(str(path))
-    if header_to_true is None or np.array_equal(header_to_true, np.eye(4)):
-        return img
-    return nib.Nifti1Image(np.asanyarray(img.dataobj), header_to_true @ img.affine)
-
-
-def _header_to_true(summary: dict) -> np.ndarray:
-    """The headers → true mm matrix of a finished folder (identity for true headers)."""
-    matrix = (summary.get("grid") or {}).get("header_to_true")
-    return np.eye(4) if matrix is None else np.asarray(matrix, dtype=float)
 
 
 def _surviving_count(result: dict, method: str) -> int | None:
@@ -342,39 +350,6 @@ def _unasked(result: dict, questions: dict, frames) -> list[str]:
     return out
 
 
-def _overlay(
-    folder: Path, method: str, alpha: float, fix: np.ndarray
-) -> tuple[np.ndarray | None, str, str]:
-    """z inside the voxels surviving ``method`` (FDR q when that map is missing)."""
-    z_img = _load(folder / "z.nii.gz", fix)
-    if z_img is None:
-        return None, method, ""
-    z = figures.canonical(z_img).data
-    stem = _METHOD_MAP.get(method, "q")
-    p_img = _load(folder / f"{stem}.nii.gz", fix)
-    used = method
-    if p_img is None:
-        p_img, used = _load(folder / "q.nii.gz", fix), "fdr"
-    mask_img = _load(folder / "mask.nii.gz", fix)
-    inside = figures.canonical(mask_img).data > 0 if mask_img is not None else z != 0
-    if p_img is None:
-        return np.zeros_like(z), used, ""
-    p = figures.canonical(p_img).data
-    keep = inside & (p <= alpha)
-    return np.where(keep, z, 0.0), used, _METHOD_LABEL.get(used, used).format(a=alpha)
-
-
-def _background(summary: dict, folder: Path) -> tuple[figures.Volume | None, str]:
-    template = locate_input(_template_setting(summary), summary, folder.parent)
-    fix = _header_to_true(summary)
-    if template is not None:
-        return figures.canonical(_load(template, fix)), "the study template"
-    mask = _load(folder / "mask.nii.gz", fix)
-    if mask is None:
-        return None, ""
-    return figures.canonical(mask), "the analysis mask (the template file was not found)"
-
-
 def _template_setting(summary: dict) -> str | None:
     return ((summary.get("settings") or {}).get("study") or {}).get("template")
 
@@ -394,286 +369,6 @@ def missing_inputs(out_dir: Path) -> list[str]:
             "its output folder?); the maps are drawn on the analysis mask"
         ]
     return []
-
-
-def _result_figures(out_dir: Path, name: str, result: dict, summary: dict, frames) -> list[dict]:
-    """Every figure of one result folder, in the order the report shows them."""
-    settings = summary.get("settings") or {}
-    alpha = (settings.get("inference") or {}).get("alpha", 0.05)
-    space = settings.get("space") or {}
-    origin = np.asarray(space.get("origin_mm", [0.0, 0.0, 0.0]), dtype=float)
-    origin_name = space.get("origin_name", "origin")
-    folder = out_dir / name
-    figs: list[dict] = []
-    method = _method(summary, result)
-    fix = _header_to_true(summary)
-    overlay, used, used_words = _overlay(folder, method, alpha, fix)
-    background, background_words = _background(summary, folder)
-    mask_img = _load(folder / "mask.nii.gz", fix)
-    if background is not None and mask_img is not None:
-        place = (background, figures.canonical(mask_img).data > 0, origin, origin_name)
-        if overlay is not None:
-            figs += _map_figures(name, place, overlay, method, used, used_words, background_words)
-        figs += _asymmetry_figures(folder, name, place, fix)
-    figs += _symmetry_figures(name, frames)
-    forest = _forest(name, result, frames)
-    if forest is not None:
-        figs.append(forest)
-    if mask_img is not None:
-        figs += _variance_figures(folder, name, result, mask_img)
-    figs += _run_quality_figures(name, frames)
-    return figs
-
-
-def _map_figures(name, place, overlay, method, used, used_words, background_words) -> list[dict]:
-    """Coronal montage and dorsal/lateral projections of the thresholded z map."""
-    background, mask, origin, origin_name = place
-    figs: list[dict] = []
-    if background.data.shape == mask.shape:
-        shown = int((overlay != 0).sum())
-        nothing = "" if shown else " No voxel survives, so nothing is overlaid."
-        fallback = (
-            f" ({method} maps are not in the folder; FDR is shown instead.)"
-            if used != method
-            else ""
-        )
-        figs.append(
-            _figure(
-                "montage",
-                "Coronal slices, anterior to posterior",
-                figures.coronal_montage(
-                    background,
-                    overlay,
-                    mask,
-                    origin,
-                    label=f"z ({used_words})",
-                    origin_name=origin_name,
-                ),
-                f"Coronal slices of {background_words} for {name}, from anterior to "
-                f"posterior, with z shown where {used_words} ({shown} voxels).",
-                f"z where {used_words}, over {background_words}; each slice is labelled "
-                f"with its anterior–posterior position in mm from {origin_name}."
-                + nothing
-                + fallback,
-            )
-        )
-        axes_mm = tuple(background.axis_mm(a) - origin[a] for a in range(3))
-        figs.append(
-            _figure(
-                "projections",
-                "Dorsal and lateral views",
-                figures.projection_views(
-                    overlay,
-                    mask,
-                    background.step_mm,
-                    axes_mm,
-                    label=f"z ({used_words})",
-                    origin_name=origin_name,
-                ),
-                f"Maximum-intensity views of the thresholded z map of {name}, seen from "
-                "above and from the right, drawn inside the outline of the analysis mask.",
-                "The value of largest magnitude along each line of sight, inside the "
-                f"brain outline (the mask's own projection); z where {used_words}." + nothing,
-            )
-        )
-    return figs
-
-
-def _asymmetry_figures(folder: Path, name: str, place, fix: np.ndarray) -> list[dict]:
-    """The unthresholded left-minus-right t map, when the folder holds it."""
-    background, mask, origin, origin_name = place
-    figs: list[dict] = []
-    asym = _load(folder / "asymmetry_t.nii.gz", fix)
-    if asym is not None:
-        values = figures.canonical(asym).data
-        if values.shape == mask.shape == background.data.shape:
-            figs.append(
-                _figure(
-                    "asymmetry",
-                    "Left–right asymmetry (unthresholded)",
-                    figures.coronal_montage(
-                        background,
-                        np.where(mask, values, 0.0),
-                        mask,
-                        origin,
-                        label="t of left − right (unthresholded)",
-                        origin_name=origin_name,
-                    ),
-                    f"Coronal slices of the unthresholded left-minus-right t map of {name}.",
-                    "t of the left-minus-right difference at mirrored voxels, unthresholded: "
-                    "exploratory, not a test at any voxel.",
-                )
-            )
-    return figs
-
-
-def _symmetry_figures(name: str, frames) -> list[dict]:
-    """Laterality indices and laterality against threshold."""
-    figs: list[dict] = []
-    if "symmetry" in frames and "region" in frames["symmetry"]:
-        figs.append(
-            _figure(
-                "laterality",
-                "Laterality indices",
-                figures.laterality_plot(frames["symmetry"]),
-                f"Laterality index with its interval for each region of {name}.",
-                "LI = (L − R)/(L + R) by extent (circles) and by effect (diamonds) with their "
-                "intervals from symmetry.tsv; 0 is perfect symmetry.",
-            )
-        )
-    if "li_curves" in frames and {"region", "threshold", "li"} <= set(frames["li_curves"]):
-        figs.append(
-            _figure(
-                "li_curves",
-                "Laterality against threshold",
-                figures.li_curve_plot(frames["li_curves"]),
-                f"Laterality index as a function of the threshold for each region of {name}.",
-                "A laterality index that changes sign or size with the threshold is not a "
-                "stable property of the map (li_curves.tsv).",
-            )
-        )
-    return figs
-
-
-def _variance_figures(folder: Path, name: str, result: dict, mask_img) -> list[dict]:
-    """Histograms of the variance components over the analysed voxels."""
-    figs: list[dict] = []
-    var_animal = _load(folder / "var_animal.nii.gz")
-    var_run = _load(folder / "var_run.nii.gz")
-    if var_animal is not None and var_run is not None:
-        m = np.asarray(mask_img.dataobj) > 0
-        figs.append(
-            _figure(
-                "variance",
-                "Variance components",
-                figures.variance_plot(
-                    np.asarray(var_animal.dataobj, dtype=float)[m],
-                    np.asarray(var_run.dataobj, dtype=float)[m],
-                    unit="map units",
-                ),
-                f"Histograms over voxels of the between-animal and between-run standard "
-                f"deviations of {name}, and of the between-animal share of variance.",
-                f"τ (between animals) and σ (between runs beyond first-level noise) over the "
-                f"{int(m.sum()):,} analysed voxels; medians τ² = "
-                f"{result.get('var_animal_median', float('nan')):.3g}, σ² = "
-                f"{result.get('var_run_median', float('nan')):.3g}. Many animals are worth "
-                "more than many runs where τ² dominates."
-                + _more_levels_text(result.get("variance_components") or {}),
-            )
-        )
-    return figs
-
-
-def _more_levels_text(components: dict) -> str:
-    """Plain words on the variance levels fitted beyond τ² and σ² (session level, random
-    slopes, per-group animal variances), with their medians over voxels; "" when none."""
-    parts = []
-    for name, info in components.items():
-        median = (info or {}).get("median")
-        value = "n/a" if median is None else f"{median:.3g}"
-        slope = re.fullmatch(r"slope\[(.+?)\](?:\[(.+)\])?", name)
-        group = re.fullmatch(r"animal\[(.+)\]", name)
-        if name == "session":
-            parts.append(
-                f"ω² (between sessions of one animal: how much the response changes from "
-                f"one imaging day to the next beyond run-to-run noise) median {value}; "
-                "where it is large, more sessions per animal help more than more runs in "
-                "the same session"
-            )
-        elif slope:
-            where = f" in group {slope.group(2)}" if slope.group(2) else ""
-            parts.append(
-                f"variance of the {slope.group(1)} slope{where} (how much the animals' own "
-                f"{slope.group(1)} effects differ from one animal to the next; a "
-                f"within-animal effect is judged against it) median {value}"
-            )
-        elif group:
-            parts.append(f"τ² of group {group.group(1)} median {value}")
-    if not parts:
-        return ""
-    return " Also fitted: " + "; ".join(parts) + "."
-
-
-def _run_quality_figures(name: str, frames) -> list[dict]:
-    """Each run's similarity to the group map against its variance."""
-    figs: list[dict] = []
-    if "run_quality" in frames and {"z_correlation", "z_variance"} <= set(frames["run_quality"]):
-        figs.append(
-            _figure(
-                "run_quality",
-                "Run quality",
-                figures.run_quality_plot(frames["run_quality"]),
-                f"Scatter of each run's similarity to the group map against its variance for "
-                f"{name}; flagged runs are marked with crosses and labelled.",
-                "Each run's correlation with the group map and its mean first-level variance, "
-                "as z across runs (run_quality.tsv).",
-            )
-        )
-    return figs
-
-
-def _forest(name: str, result: dict, frames) -> dict | None:
-    cons = frames.get("consistency")
-    questions = result.get("questions") or {}
-    if cons is not None and {"animal", "effect", "ci_low", "ci_high"} <= set(cons):
-        eff = cons["effect"].astype(float).to_numpy()
-        region = (questions.get("consistency") or {}).get("region")
-        group = None
-        q = questions.get("consistency") or {}
-        if all(k in q for k in ("effect", "ci_low", "ci_high")):
-            group = (float(q["effect"]), float(q["ci_low"]), float(q["ci_high"]))
-        what = f"in {region}" if region else "in the target"
-        return _figure(
-            "forest",
-            "Per-animal effect",
-            figures.forest_plot(
-                cons["animal"].astype(str).tolist(),
-                eff,
-                cons["ci_low"].astype(float).to_numpy(),
-                cons["ci_high"].astype(float).to_numpy(),
-                group=group,
-                xlabel="effect (map units)",
-            ),
-            f"Forest plot of each animal's effect {what} for {name}, with intervals.",
-            f"Each animal's effect {what} with its interval (consistency.tsv)"
-            + ("; the diamond is the group estimate." if group else "."),
-        )
-    animals = frames.get("animals")
-    clusters = frames.get("clusters")
-    regions = frames.get("regions")
-    if animals is None or clusters is None or regions is None or not len(clusters):
-        return None
-    top = clusters.iloc[0]
-    region, hemi = top.get("peak_region"), top.get("peak_region_hemisphere")
-    if not isinstance(region, str):
-        return None
-    sel = animals[(animals["name"] == region) & (animals["hemisphere"] == hemi)]
-    reg = regions[(regions["name"] == region) & (regions["hemisphere"] == hemi)]
-    if not len(sel):
-        return None
-    eff = sel["effect"].astype(float).to_numpy()
-    se = sel["se"].astype(float).to_numpy()
-    group = None
-    if len(reg):
-        r = reg.iloc[0]
-        group = (float(r["effect"]), float(r["ci_low"]), float(r["ci_high"]))
-    return _figure(
-        "forest",
-        "Per-animal effect",
-        figures.forest_plot(
-            sel["animal"].astype(str).tolist(),
-            eff,
-            eff - 1.96 * se,
-            eff + 1.96 * se,
-            group=group,
-            xlabel=f"effect in {region} ({hemi}), map units",
-        ),
-        f"Forest plot of each animal's effect in {region} ({hemi}), the peak region of the "
-        f"largest cluster of {name}.",
-        f"Each animal's precision-weighted effect in {region} ({hemi}), the peak region of "
-        "the largest cluster, ± 1.96 SE (animals.tsv); the diamond is the group effect "
-        "with its 95% CI from the region model (regions.tsv).",
-    )
 
 
 def _cautions(name: str, result: dict, summary: dict, method_words: str) -> list[str]:
@@ -742,6 +437,11 @@ def _cautions(name: str, result: dict, summary: dict, method_words: str) -> list
             "Each verdict (bilateral, specific, consistent) is a summary by the stated rules "
             "and the numbers beside it, not a separate test: read the reasons with it."
         )
+    # what the questions' own answers say they do not show, and which model they used
+    consistency = answered.get("consistency")
+    if isinstance(consistency, dict) and consistency.get("caution"):
+        out.append(str(consistency["caution"]))
+    out.extend(str(note) for note in answered.get("notes") or [])
     if not _surviving_count(result, method):
         out.append(
             f"No voxel survives {method_words}; absence of a significant effect is not "
@@ -1036,17 +736,18 @@ def build_context(out_dir: Path, *, title: str | None = None) -> dict:
     names = result_names(summary)
     files = present_files(out_dir, summary)
     results = []
+    drawn: list[DrawnFigure] = []
     for name in names:
         result = summary["results"][name]
         frames = _frames(out_dir, name)
         views = result_table_views(out_dir, name, summary)
         brief = result_table_views(out_dir, name, summary, brief=True)
         answer = _answer(name, result, summary, views, frames)
+        drawn += result_figures(out_dir, name, result, summary, frames, _threshold(summary, result))
         results.append(
             {
                 "name": name,
                 "answer": answer,
-                "figures": _result_figures(out_dir, name, result, summary, frames),
                 # each table: the columns a reader needs first, and all of them (folded)
                 "tables": [
                     {"brief": brief[k], "full": views[k]} for k in REPORT_TABLES if k in views
@@ -1055,6 +756,10 @@ def build_context(out_dir: Path, *, title: str | None = None) -> dict:
                 "plan": _plan(out_dir, name, summary),
             }
         )
+    # every figure is written to figures/ and the report embeds those very files
+    shown, figure_files = _publish(out_dir, drawn)
+    for entry in results:
+        entry["figures"] = shown.get(entry["name"], [])
     methods = methods_text(summary, files)
     browser = browser_context(out_dir, summary, _browser_layers(summary, results))
     css = resources.files("grouplevel.templates").joinpath("report.css").read_text("utf-8")
@@ -1071,6 +776,7 @@ def build_context(out_dir: Path, *, title: str | None = None) -> dict:
         "inputs": summary.get("inputs") or [],
         "browser": browser,
         "content_security_policy": policy_placeholder(),
+        "figure_files": figure_files,
     }
 
 
@@ -1093,6 +799,10 @@ def _browser_layers(summary: dict, results: list[dict]) -> list[dict]:
 
 def render_report(out_dir: Path, *, title: str | None = None) -> Path:
     """Render ``out_dir/report.html`` from a finished output folder.
+
+    Every figure is also written to ``out_dir/figures/`` (PDF, 300 dpi PNG, caption;
+    :mod:`grouplevel.report.figure_files`), the report embeds those PNG files, and
+    ``report.json`` lists them under ``figures``.
 
     Parameters
     ----------
@@ -1127,6 +837,8 @@ def render_report(out_dir: Path, *, title: str | None = None) -> Path:
         .render(**context, render_seconds=f"{time.perf_counter() - start:.1f}")
     )
     html = apply_content_security_policy(html)  # hashes of the finished page's own code
+    # the figure files are listed in report.json (summary.json is never rewritten)
+    write_report_options(out_dir, figures=context["figure_files"])
     path = out_dir / "report.html"
-    path.write_text(html, encoding="utf-8")
+    atomic_write(path, html.encode("utf-8"))
     return path

@@ -40,6 +40,7 @@ import numpy as np
 from grouplevel.errors import UserError
 from grouplevel.intake.settings import BACKENDS, ComputeSettings
 from grouplevel.machine import available_cores
+from grouplevel.model.marginal import RandomTerms
 from grouplevel.model.reml import MixedFit, _check_inputs, fit_reml
 
 # Seconds to wait for a remote scheduler before giving up (distributed's own default
@@ -306,6 +307,22 @@ def _concatenate(fits: list[Any]) -> Any:
     return kind(**values)
 
 
+def random_terms(design: Any, random: Any) -> RandomTerms:
+    """The random terms a design's model is fitted with (``RandomTerms()`` for the
+    random-intercept model): what every later use of the fitted model needs to rebuild
+    its covariance (:mod:`grouplevel.model.marginal`)."""
+    if not random.extended:
+        return RandomTerms()
+    slopes = design.matrix[:, list(random.slope_columns)] if random.slope_columns else None
+    return RandomTerms(
+        slopes=slopes,
+        slope_names=tuple(design.columns[j] for j in random.slope_columns),
+        session=design.session if random.sessions else None,
+        animal_group=random.animal_group,
+        group_names=tuple(random.group_names) if random.animal_group is not None else (),
+    )
+
+
 def fit_design(
     backend: Backend,
     y: np.ndarray,
@@ -351,13 +368,13 @@ def fit_design(
         )
     from grouplevel.model.mixed import fit_mixed
 
-    slopes = design.matrix[:, list(random.slope_columns)] if random.slope_columns else None
+    terms = random_terms(design, random)
     kwargs = {
-        "slopes": slopes,
-        "slope_names": tuple(design.columns[j] for j in random.slope_columns),
-        "session": design.session if random.sessions else None,
-        "animal_group": random.animal_group,
-        "group_names": random.group_names,
+        "slopes": terms.slopes,
+        "slope_names": terms.slope_names,
+        "session": terms.session,
+        "animal_group": terms.animal_group,
+        "group_names": terms.group_names,
         "estimate_run_variance": estimate_run_variance,
         "max_iter": max_iter,
         "memory_gb": memory_gb,

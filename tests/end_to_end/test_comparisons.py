@@ -103,6 +103,10 @@ def test_comparison_equals_the_table_of_run_differences(tmp_path):
         )
     # float32 maps: A − B summed on reading vs. written as float32 differences
     assert cmp_.n_animals == 6 and cmp_.n_runs == 18
+    # its questions are the mean's, asked of the run pairs' differences, and say so
+    quality = cmp_.answers.run_quality.table()
+    assert len(quality) == 18
+    assert any("within-animal comparison (A − B)" in n for n in cmp_.answers.notes)
 
 
 def test_comparison_against_statsmodels_mixedlm(tmp_path):

@@ -21,7 +21,8 @@ import pandas as pd
 import pytest
 
 from grouplevel.cli import main
-from grouplevel.report.figures import DPI, projection_views
+from grouplevel.report.figure_files import PNG_DPI, png_and_box
+from grouplevel.report.figures import MIN_PANEL_SHARE, projection_views
 from tests.conftest import TINY_AFFINE, save, write_study
 
 ANIMALS = ["a", "a", "b", "b", "c", "c"]
@@ -390,16 +391,23 @@ def test_one_voxel_thin_grid_runs_end_to_end(tmp_path, capsys, shape):
 @pytest.mark.parametrize("shape", [(1, 5, 4), (5, 1, 4), (5, 4, 1)])
 def test_projection_figure_on_a_thin_grid(shape):
     # PNG signature and size: PNG specification (ISO/IEC 15948), section 5.2; the image
-    # is decoded by matplotlib and must measure the figure size times its dpi.
+    # is decoded by matplotlib and must measure the drawn content's box times its dpi.
     values = np.random.default_rng(5).normal(size=shape)
     mask = np.ones(shape, bool)
     axes = tuple(np.arange(n) * 0.2 for n in shape)
-    data = projection_views(
+    figure = projection_views(
         values, mask, np.array([0.2, 0.2, 0.2]), axes, label="t", origin_name="origin"
     )
+    data, box = png_and_box(figure)
     assert data[:8] == b"\x89PNG\r\n\x1a\n"
     image = matplotlib.image.imread(io.BytesIO(data), format="png")
-    assert image.shape[:2] == (round(3.7 * DPI), round(7.2 * DPI))
+    assert image.shape[0] == pytest.approx(box.height * PNG_DPI, abs=2)
+    assert image.shape[1] == pytest.approx(box.width * PNG_DPI, abs=2)
+    # both views keep a readable width however thin the grid
+    panels = [ax for ax in figure.axes if ax.images]
+    assert len(panels) == 2
+    share = [ax.get_position(original=True).width for ax in panels]
+    assert min(share) >= MIN_PANEL_SHARE / 2  # a tenth of the figure at least
 
 
 # --- other malformed files ------------------------------------------------------------------

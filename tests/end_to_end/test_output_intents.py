@@ -32,6 +32,9 @@ EXPECTED = {
     "p_fwe_cluster_mass": ("p value", "p FWE cluster"),
     "p_fwe_tfce": ("p value", "p FWE TFCE"),
     "tfce": ("estimate", "TFCE"),
+    "z_surviving": ("z score", "z surviving"),
+    "animal_effect": ("estimate", "animal effect"),
+    "animal_se": ("estimate", "animal SE"),
 }
 
 
@@ -53,7 +56,8 @@ def test_every_output_map_carries_its_intent(tiny_study, tmp_path):
         if stem == "t":
             # between-animal df of the tiny study: 6 animals − 1 (the same at every voxel)
             assert params == pytest.approx((5.0,))
-    assert {"t", "z", "p", "q", "effect", "p_fwe_voxel", "mask"} <= seen
+    assert {"t", "z", "p", "q", "effect", "p_fwe_voxel", "mask", "z_surviving"} <= seen
+    assert {"animal_effect", "animal_se"} <= seen
 
 
 def test_t_with_varying_df_is_an_estimate():
@@ -61,3 +65,5 @@ def test_t_with_varying_df_is_an_estimate():
     assert map_intent("t", 9.0) == ("t test", (9.0,), "t")
     assert map_intent("asymmetry_p_fwe_tfce")[0] == "p value"
     assert map_intent("something_new") == ("estimate", (), "something_new")
+    # "targets" starts with "t" but is a label map, not a t test
+    assert map_intent("targets", 9.0) == ("label", (), "target regions")

@@ -103,8 +103,9 @@ def test_contrast_column_and_group_contrasts_name_the_folders(tmp_path):
     table.to_csv(toml.parent / "runs.tsv", sep="\t", index=False)
     out = tmp_path / "out"
     assert main(["run", str(toml), "--out", str(out), "--quiet"]) == 0
+    # the result folders, beside grouplevel's own figures/ (and tables/ with an atlas)
     folders = sorted(p.name for p in out.iterdir() if p.is_dir())
-    assert folders == ["paw", "paw.ko_vs_ctl", "sound", "sound.ko_vs_ctl"]
+    assert folders == ["figures", "paw", "paw.ko_vs_ctl", "sound", "sound.ko_vs_ctl"]
     summary = json.loads((out / "summary.json").read_text())
     assert summary["results"]["sound.ko_vs_ctl"]["group_contrast"] == "ko_vs_ctl"
     assert summary["results"]["paw"]["runs"] == 12

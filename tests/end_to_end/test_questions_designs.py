@@ -8,6 +8,7 @@ without permutations (FDR) so that each takes seconds.
 from __future__ import annotations
 
 import json
+import warnings
 from pathlib import Path
 
 import nibabel as nib
@@ -15,6 +16,8 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.formula.api as smf
+from scipy import stats
+from statsmodels.stats.meta_analysis import combine_effects
 
 from grouplevel.cli import main
 from grouplevel.errors import UserError
@@ -340,10 +343,16 @@ def test_two_group_design_asks_each_group_mean(two_group):
         assert q["not_assessed"] == {}
     diff = summary["results"]["b_minus_a"]["questions"]
     assert not diff["asked"] and diff["contrast_kind"] == "difference"
-    assert diff["consistency"] is None and diff["run_quality"] is None
-    assert set(diff["not_assessed"]) == {"consistency", "run_quality"}
-    for reason in diff["not_assessed"].values():
-        assert reason.startswith("asked of group means only; this contrast is a difference")
+    # a group difference gets its own consistency (the groups' overlap) and the run
+    # quality of each group's runs among themselves
+    assert diff["not_assessed"] == {}
+    assert diff["consistency"]["level"] == "between-group"
+    assert diff["consistency"]["groups"]["plus"]["group"] == "group b"
+    assert diff["consistency"]["groups"]["plus"]["animals"] == 4
+    assert diff["consistency"]["caution"]
+    assert diff["run_quality"]["runs"] == 16
+    quality = pd.read_csv(two_group / "b_minus_a" / "run_quality.tsv", sep="\t")
+    assert sorted(set(quality["side"])) == ["group a", "group b"]
     # the difference (b larger than a, planted in the forelimb area only) is specific to
     # the target, and its direction is named
     assert diff["specificity"]["verdict"] == "specific to target (positive difference)"
@@ -354,13 +363,41 @@ def test_two_group_design_asks_each_group_mean(two_group):
     assert lat["verdict"] == "no evidence that the lateralisation differs"
     assert lat["test"]["p"] > 0.05
     assert (two_group / "b_minus_a" / "lateralisation_difference.tsv").is_file()
-    # one warning for the whole run
-    skipped = [w for w in summary["warnings"] if "asked of group means only" in w]
-    assert len(skipped) == 1 and "b_minus_a" in skipped[0]
+    # no warning of questions not asked: every contrast is a mean or a difference
+    assert not [w for w in summary["warnings"] if "questions are asked of" in w]
     html = (two_group / "report.html").read_text()
-    # the short answer names each question not assessed with its reason
-    assert "consistent — asked of group means only" in html
+    assert "the groups separate" in html
+    # what the overlap does not show is among the result's cautions
+    assert "The overlap compares the animals" in html
     assert "Lateralisation differs?" in html
+
+
+def _area_values(summary) -> tuple[pd.DataFrame, np.ndarray]:
+    """The runs and each run's mean over the forelimb area, read from the maps."""
+    study = load_study(Path(summary["settings"]["source"]))
+    fl = study.first_levels[0]
+    area = _atlas_image() == 1
+    values = [
+        float(np.asarray(nib.load(row["effect"]).dataobj)[area].mean())
+        for _, row in fl.runs.iterrows()
+    ]
+    return fl.runs, np.array(values)
+
+
+def test_group_difference_overlap_equals_mann_whitney(two_group):
+    # Reference: scipy.stats.mannwhitneyu on each animal's mean forelimb-area value
+    # (two runs of equal weight per animal): A = U / (n_b · n_a) (McGraw & Wong 1992).
+    summary = json.loads((two_group / "summary.json").read_text())
+    runs, values = _area_values(summary)
+    frame = pd.DataFrame({"animal": runs["animal"], "group": runs["group"], "v": values})
+    means = frame.groupby("animal").agg(group=("group", "first"), v=("v", "mean"))
+    b, a = means["v"][means["group"] == "b"], means["v"][means["group"] == "a"]
+    ref = stats.mannwhitneyu(b, a, alternative="two-sided")
+    cons = summary["results"]["b_minus_a"]["questions"]["consistency"]
+    assert cons["probability_of_superiority"] == pytest.approx(ref.statistic / 16, abs=1e-12)
+    assert cons["mann_whitney_p"] == pytest.approx(ref.pvalue, rel=1e-9)
+    assert cons["groups"]["plus"]["median"] == pytest.approx(float(np.median(b)), rel=1e-6)
+    assert cons["groups"]["minus"]["max"] == pytest.approx(float(a.max()), rel=1e-6)
 
 
 def test_group_mean_consistency_equals_statsmodels(two_group):
@@ -563,7 +600,7 @@ _WORDS = ("bilateral", "specific", "consistent", "run quality")
 
 def test_report_never_says_not_assessed_without_a_reason():
     # a result not asked: every question with the summary's reason
-    reason = "asked of group means only; this contrast is a difference"
+    reason = "asked of group means and differences only; the weights sum to 2"
     questions = {"asked": False, "not_assessed": dict.fromkeys(QUESTIONS, reason)}
     unasked = _unasked({}, questions, {})
     assert unasked == [f"{word} — {reason}" for word in _WORDS]
@@ -575,3 +612,162 @@ def test_report_never_says_not_assessed_without_a_reason():
         "specific — no reason recorded (this folder was written by an older version, which "
         "asked the questions only of the mean of an intercept-only design)"
     ]
+
+
+# --------------------------------------------------------------------------------------
+# 4. a within-animal difference with a random slope (drug − vehicle runs)
+# --------------------------------------------------------------------------------------
+
+DRUG_TOML = """[model]
+formula = "1 + drug"
+
+[[contrast]]
+name = "drug_minus_vehicle"
+weights = { "drug[T.yes]" = 1.0 }
+
+[[contrast]]
+name = "drug_mean"
+weights = { "Intercept" = 1.0, "drug[T.yes]" = 1.0 }
+
+[questions]
+targets = ["forelimb area"]
+symmetry = ["forelimb area"]
+"""
+
+
+@pytest.fixture(scope="module")
+def drug(tmp_path_factory) -> tuple[Path, dict]:
+    """Six animals, two vehicle and two drug runs each; the drug adds a forelimb-area
+    response whose size varies from animal to animal (invented numbers)."""
+    folder = tmp_path_factory.mktemp("drug") / "study"
+    folder.mkdir()
+    rng = np.random.default_rng(11)
+    response = _both_sides()
+    rows = []
+    for a in range(6):
+        offset = rng.normal(0, 0.2, SHAPE)
+        slope = 2.0 + rng.normal(0, 0.3)
+        for r, given in enumerate(["no", "no", "yes", "yes"]):
+            data = offset + (slope * response if given == "yes" else 0) + rng.normal(0, 0.3, SHAPE)
+            path = save(folder / "maps" / f"a{a}_r{r}.nii.gz", data, AFFINE)
+            rows.append({"animal": f"a{a}", "run": r + 1, "drug": given, "effect": str(path)})
+    pd.DataFrame(rows).to_csv(folder / "runs.tsv", sep="\t", index=False)
+    save(folder / "atlas.nii.gz", _atlas_image(), AFFINE)
+    (folder / "atlas.tsv").write_text(ATLAS_TABLE)
+    (folder / "study.toml").write_text(
+        '[study]\ntable = "runs.tsv"\n\n[inference]\npermutations = 0\n\n'
+        '[atlas]\nimage = "atlas.nii.gz"\nlabels = "atlas.tsv"\nmidline_mm = 0.0\n\n' + DRUG_TOML
+    )
+    maps, _ = fit_study(load_study(folder / "study.toml"))
+    return folder / "study.toml", {m.name: m for m in maps}
+
+
+def test_within_animal_difference_counts_each_animals_own_difference(drug):
+    # References: each animal's own difference by brute force (mean of its drug runs −
+    # mean of its vehicle runs: two runs of equal weight each); its SE and the group
+    # difference against statsmodels MixedLM (REML, random intercept and drug slope per
+    # animal) on the runs' forelimb-area values; Cochran's Q against statsmodels
+    # combine_effects.
+    toml, maps = drug
+    gm = maps["drug_minus_vehicle"]
+    q = gm.answers.summary(0.05)
+    assert q["contrast_kind"] == "difference"
+    assert q["not_assessed"] == {}
+    # the lateralisation difference is tested like the map: slope df = animals − 1
+    # (common practice for a within-animal effect with a random slope; the run-level
+    # df would be 24 runs − 6 animals − 1 = 17)
+    assert q["symmetry"]["forelimb area"]["test"]["df"] == pytest.approx(5.0)
+    cons = q["consistency"]
+    assert cons["level"] == "within-animal" and cons["caution"]
+    assert cons["verdict"] == "all animals agree"
+    runs = load_study(toml).first_levels[0].runs
+    area = _atlas_image() == 1
+    values = np.array([float(np.asarray(nib.load(p).dataobj)[area].mean()) for p in runs["effect"]])
+    frame = pd.DataFrame({"v": values, "d": (runs["drug"] == "yes").astype(float)})
+    frame["a"] = runs["animal"].to_numpy()
+    own = frame[frame.d == 1].groupby("a").v.mean() - frame[frame.d == 0].groupby("a").v.mean()
+    table = gm.answers.consistency.table().set_index("animal")
+    # float32 maps: the region means agree to float32 rounding
+    np.testing.assert_allclose(table.loc[own.index, "effect"], own.to_numpy(), rtol=1e-6)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = smf.mixedlm("v ~ d", frame, groups=frame["a"], re_formula="~d").fit(reml=True)
+    assert cons["effect"] == pytest.approx(float(ref.fe_params["d"]), rel=2e-3)
+    assert cons["se"] == pytest.approx(float(ref.bse_fe["d"]), rel=5e-3)
+    # the region table fits the same slope model, with the slope's df (animals − 1)
+    regions = gm.tables.regions
+    row = regions[(regions["name"] == "forelimb area") & (regions["hemisphere"] == "both")]
+    assert float(row["effect"].iloc[0]) == pytest.approx(float(ref.fe_params["d"]), rel=2e-3)
+    assert float(row["se"].iloc[0]) == pytest.approx(float(ref.bse_fe["d"]), rel=5e-3)
+    assert float(row["df"].iloc[0]) == pytest.approx(5.0)
+    np.testing.assert_allclose(table["se"], np.sqrt(ref.scale), rtol=5e-3)  # √(σ²/2 + σ²/2)
+    meta = combine_effects(table["effect"].to_numpy(), table["se"].to_numpy() ** 2)
+    assert cons["heterogeneity"]["cochran_q"] == pytest.approx(float(meta.q), rel=1e-9)
+    # run quality: the vehicle runs and the drug runs, each among themselves
+    quality = gm.answers.run_quality.table()
+    assert sorted(set(quality["side"])) == ["drug no", "drug yes"]
+    assert len(quality) == 24
+    # the model has a random slope: the notes say which internal tests use it
+    assert any("random slopes" in n for n in q["notes"])
+
+
+def test_extended_model_smoothness_standardises_by_the_slope_models_variance(drug):
+    # Reference: brute force — each run's residual divided by the square root of the
+    # diagonal of Z T Zᵀ + σ² written out from the slope model's components (Laird &
+    # Ware 1982), then the same smoothness estimate; and the residual standard deviation
+    # of a random-intercept reading (τ² + σ²) differs for the drug runs, so the test can
+    # tell the two apart.
+    from grouplevel.inference import estimate_smoothness
+    from grouplevel.pipeline import _fit, _fitted_voxels, _smoothness
+    from grouplevel.results.compute import random_terms
+
+    toml, _ = drug
+    study = load_study(toml)
+    fl = study.first_levels[0]
+    y, s2, mask = _fitted_voxels(study, fl, "t", [])
+    fitted = _fit(study, fl, "t", y, s2, mask, lambda _m: None, None, [])
+    fit, design = fitted.fit, fl.design
+    terms = random_terms(design, fl.random)
+    got = _smoothness(y, s2, fit, design.matrix, design.animal, terms, mask, study.grid)
+    comps = fit.components
+    (name,) = [k for k in comps if k.startswith("slope[")]
+    cov_name = "cov[" + name[len("slope[") :]
+    z = design.matrix[:, list(fl.random.slope_columns)][:, 0]
+    total = comps["animal"] + 2 * z[:, None] * comps[cov_name] + z[:, None] ** 2 * comps[name]
+    total = total + comps["run"]
+    resid = y - design.matrix @ fit.beta.T
+    standard = np.where(np.isfinite(resid / np.sqrt(total)), resid / np.sqrt(total), 0.0)
+    dof = y.shape[0] - np.linalg.matrix_rank(design.matrix)
+    ref = estimate_smoothness(standard, mask, study.grid.voxel_size, float(dof))
+    np.testing.assert_allclose(got.fwhm_mm, ref.fwhm_mm, rtol=1e-5)
+    intercept_only = comps["animal"] + comps["run"]
+    drug_runs = z != 0
+    assert np.nanmedian(np.abs(total[drug_runs] / intercept_only - 1)) > 0.05
+
+
+def test_a_mean_of_a_slope_model_is_asked_with_that_model(drug):
+    # Reference: statsmodels MixedLM (REML, random intercept and drug slope per animal)
+    # on the runs' forelimb-area values; the mean of the drug runs is the sum of its
+    # two coefficients.
+    toml, maps = drug
+    gm = maps["drug_mean"]
+    q = gm.answers.summary(0.05)
+    assert q["asked"] and q["not_assessed"] == {}
+    assert any("random slopes" in n for n in q["notes"])
+    runs = load_study(toml).first_levels[0].runs
+    area = _atlas_image() == 1
+    values = np.array([float(np.asarray(nib.load(p).dataobj)[area].mean()) for p in runs["effect"]])
+    frame = pd.DataFrame({"v": values, "d": (runs["drug"] == "yes").astype(float)})
+    frame["a"] = runs["animal"].to_numpy()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = smf.mixedlm("v ~ d", frame, groups=frame["a"], re_formula="~d").fit(reml=True)
+    cvec = np.array([1.0, 1.0])
+    cov = ref.cov_params().iloc[:2, :2].to_numpy()
+    assert q["consistency"]["effect"] == pytest.approx(float(ref.fe_params.sum()), rel=2e-3)
+    assert q["consistency"]["se"] == pytest.approx(float(np.sqrt(cvec @ cov @ cvec)), rel=5e-3)
+    # the asymmetry map is fitted with the same model; the run-quality reference maps
+    # are downdates of it; only the drug runs (those in the mean) are scored
+    assert np.isfinite(gm.answers.asymmetry.t).any()
+    quality = gm.answers.run_quality.table()
+    assert len(quality) == 12 and set(quality["run"]) == {"3", "4"}

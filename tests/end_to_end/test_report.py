@@ -546,8 +546,8 @@ def test_question_sections_render_when_files_exist(with_questions):
     alts = " ".join(i["alt"] for i in page.images)
     for words in (
         "Laterality index with its interval",
-        "as a function of the threshold",
-        "Scatter of each run",
+        "as a function of the z threshold",
+        "Strips of each run",
         "unthresholded left-minus-right",
         "Forest plot",
     ):

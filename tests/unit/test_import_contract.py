@@ -43,6 +43,7 @@ CORE_MODULES = (
     "grouplevel.anatomy.sidenames",
     "grouplevel.questions.symmetry",
     "grouplevel.questions.specificity",
+    "grouplevel.questions.differences",
     "grouplevel.questions.quality",
     "grouplevel.questions.verdicts",
     "grouplevel.planning.power",

@@ -102,3 +102,40 @@ def test_run_quality_bad_inputs():
         run_quality(y, variance, animal, runs, loo[:, :-1], shell)
     with pytest.raises(UserError, match="threshold"):
         run_quality(y, variance, animal, runs, loo, shell, threshold=0.0)
+
+
+def test_agreement_is_measured_where_the_response_is():
+    # A focal response (100 of 4000 voxels) inside a target three times its size: over
+    # the whole brain every run's correlation with the group map is small, whether the
+    # run shows the response or not; inside the target it tells the two apart.
+    # Reference: numpy.corrcoef over the same voxels.
+    rng = np.random.default_rng(5)
+    animal = np.repeat(np.arange(8), 3)
+    n, n_vox = animal.size, 4000
+    target = np.zeros(n_vox, dtype=bool)
+    target[:300] = True
+    pattern = np.zeros(n_vox)
+    pattern[:100] = rng.uniform(1.0, 2.0, 100)
+    y = pattern + rng.normal(0, 1, (n, n_vox))
+    y[7] = rng.normal(0, 1, n_vox)  # a run without the response
+    loo = np.stack([pattern + rng.normal(0, 0.1, n_vox) for _ in range(8)])
+    runs = pd.DataFrame({"animal": [f"a{a}" for a in animal], "session": 1, "run": 1})
+    shell = np.zeros(n_vox, dtype=bool)
+    shell[-300:] = True
+    whole = run_quality(y, None, animal, runs, loo, shell).table()
+    inside = run_quality(
+        y, None, animal, runs, loo, shell, agreement=target, agreement_where="inside the target"
+    ).table()
+    for k in (0, 7, 20):
+        expected = np.corrcoef(y[k, target], loo[animal[k], target])[0, 1]
+        assert inside["correlation"][k] == pytest.approx(expected, abs=1e-12)
+    assert (inside["correlation_voxels"] == 300).all()
+    assert set(inside["correlation_where"]) == {"inside the target"}
+    assert set(whole["correlation_where"]) == {"the whole analysed brain"}
+    others = np.delete(np.arange(n), 7)
+    assert whole["correlation"][others].median() < 0.35
+    assert inside["correlation"][others].median() > 0.5
+    assert inside["correlation"][7] < 0.2  # the run without the response stands out
+    assert inside["z_correlation"][7] < -DEFAULT_Z_THRESHOLD
+    with pytest.raises(ValueError, match="agreement"):
+        run_quality(y, None, animal, runs, loo, shell, agreement=target[:-1])

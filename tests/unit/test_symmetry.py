@@ -566,3 +566,54 @@ def test_region_pairs_and_tables_on_a_small_atlas():
     curves = li_curves(out)
     assert list(curves.columns) == ["region", "threshold", "li"] and len(curves) == 50
     json.dumps([r.summary() for r in out])
+
+
+def test_bootstrap_point_is_the_model_lis_when_the_estimators_coincide():
+    # The bootstrap's point (li_*_shortcut) and its interval come from one estimator:
+    # the one-sample t of the animals' precision-weighted means. With every animal
+    # holding the same number of runs, no first-level variances and τ̂² > 0 at every
+    # voxel, REML on runs nested in animals gives that same t (balanced REML equals the
+    # ANOVA estimate; Searle, Casella & McCulloch 1992, Variance Components, ch. 3, from
+    # memory), so the fitted maps' LIs must equal the bootstrap's point; scipy's
+    # ttest_1samp on the animal means is the outside reference for the t.
+    rng = np.random.default_rng(11)
+    m, runs, per_side = 8, 3, 25
+    animal = np.repeat(np.arange(m), runs)
+    mean = np.r_[rng.uniform(0.5, 2.2, per_side), rng.uniform(0.0, 1.4, per_side)]
+    y = (
+        mean
+        + rng.normal(0, 1.0, (m, 1, 2 * per_side))[animal, 0]
+        + rng.normal(0, 0.25, (animal.size, 2 * per_side))
+    )
+    X = np.ones((animal.size, 1))
+    fit = fit_reml(y, None, X, animal)
+    assert np.all(fit.var_animal > 0)
+    present = np.isfinite(y)
+    res = test_contrast(fit, np.array([1.0]), between_animal_df(X, animal, present, [1.0]))
+    means = y.reshape(m, runs, -1).mean(axis=1)
+    t_ref = stats.ttest_1samp(means, 0.0).statistic
+    np.testing.assert_allclose(res.t, t_ref, rtol=1e-5)
+    left, right = np.arange(per_side), np.arange(per_side, 2 * per_side)
+    threshold = 3.0
+    boot = bootstrap_li(
+        y,
+        present,
+        animal,
+        left,
+        right,
+        threshold=threshold,
+        n_boot=200,
+        rng=np.random.default_rng(0),
+    )
+    ones = np.ones(per_side)
+    model_extent = laterality(
+        extent_amount(res.z[left], ones, threshold), extent_amount(res.z[right], ones, threshold)
+    )
+    model_effect = laterality(
+        effect_amount(res.effect[left], ones), effect_amount(res.effect[right], ones)
+    )
+    assert 0.05 < model_extent < 0.95  # both sides have voxels above the threshold
+    assert boot.extent == pytest.approx(model_extent, abs=1e-12)
+    assert boot.effect == pytest.approx(model_effect, abs=1e-9)
+    assert boot.extent_ci[0] <= boot.extent <= boot.extent_ci[1]
+    assert boot.effect_ci[0] <= boot.effect <= boot.effect_ci[1]

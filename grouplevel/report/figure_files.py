@@ -1,0 +1,160 @@
+"""The report's figures as files for a manuscript: ``OUT/figures/``.
+
+Each figure of the report is written three times, under the name
+``<result>_<figure>``:
+
+* ``.pdf`` — vector (text, lines and axes stay sharp; map slices are embedded images
+  at the PNG's resolution);
+* ``.png`` — :data:`PNG_DPI` dots per inch (the resolution most journals ask of
+  figures, common practice), with the resolution stored in the file;
+* ``.txt`` — the caption, word for word as the report prints it under the figure.
+
+The report embeds these very PNG files, so the figure in the report and the file on
+disk are the same image. Files are written atomically; files of an earlier rendering
+that are no longer drawn are removed (``figures/`` holds only what grouplevel writes
+there).
+"""
+
+from __future__ import annotations
+
+import io
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.backends.backend_pdf import FigureCanvasPdf
+from matplotlib.figure import Figure
+from matplotlib.transforms import Bbox
+from PIL import Image
+
+from grouplevel.errors import UserError
+from grouplevel.outputs.files import atomic_write
+from grouplevel.outputs.names import NAME_RULE, name_problem
+
+FIGURES_FOLDER = "figures"
+PNG_DPI = 300  # common practice: journals ask for 300 dpi at print size
+SUFFIXES = (".png", ".pdf", ".txt")
+# the space left around the drawn content when figures are cut to it (inches)
+PAD_INCHES = 0.06
+
+
+@dataclass(frozen=True)
+class DrawnFigure:
+    """One figure of the report before it is written: what it shows and its words."""
+
+    result: str  # result folder name
+    key: str  # figure kind, e.g. "montage"
+    title: str
+    alt: str
+    caption: str
+    figure: Figure
+
+    @property
+    def stem(self) -> str:
+        """The file name without suffix: ``<result>_<key>``."""
+        return f"{self.result}_{self.key}"
+
+    @property
+    def caption_text(self) -> str:
+        """The caption as the report prints it: title, then the caption."""
+        return f"{self.title}. {self.caption}"
+
+
+def png_and_box(figure: Figure, dpi: int = PNG_DPI) -> tuple[bytes, Bbox]:
+    """The figure as PNG bytes at ``dpi``, cut to its drawn content, and that content's
+    box in inches (padded by :data:`PAD_INCHES`), from one draw.
+
+    When the content reaches beyond the figure's edges (a long label), the figure is
+    drawn again on a canvas that holds all of it, so nothing is ever cut off.
+    """
+    canvas = FigureCanvasAgg(figure)
+    figure.set_dpi(dpi)
+    canvas.draw()
+    box = figure.get_tightbbox(canvas.get_renderer()).padded(PAD_INCHES)
+    width, height = figure.get_size_inches()
+    if box.x0 < 0 or box.y0 < 0 or box.x1 > width or box.y1 > height:
+        return figure_bytes(figure, "png", dpi=dpi, box=box), box
+    pixels = np.asarray(canvas.buffer_rgba())
+    rows = pixels.shape[0]
+    left, right = int(np.floor(box.x0 * dpi)), int(np.ceil(box.x1 * dpi))
+    top, bottom = int(np.floor(rows - box.y1 * dpi)), int(np.ceil(rows - box.y0 * dpi))
+    image = Image.fromarray(
+        np.ascontiguousarray(pixels[max(top, 0) : bottom, max(left, 0) : right])
+    )
+    buffer = io.BytesIO()
+    image.save(buffer, format="PNG", dpi=(dpi, dpi))
+    return buffer.getvalue(), box
+
+
+def figure_bytes(figure: Figure, kind: str, dpi: int = PNG_DPI, box: Bbox | None = None) -> bytes:
+    """The figure as PNG (at ``dpi``) or PDF bytes, cut to ``box`` (inches; default: its
+    drawn content, padded).
+
+    PDF files carry no creation date, so the same figure gives the same bytes.
+    """
+    buffer = io.BytesIO()
+    options = {
+        "bbox_inches": "tight" if box is None else box,
+        "pad_inches": PAD_INCHES,
+        "facecolor": figure.get_facecolor(),
+    }
+    if kind == "png":
+        FigureCanvasAgg(figure).print_figure(buffer, format="png", dpi=dpi, **options)
+    elif kind == "pdf":
+        FigureCanvasPdf(figure).print_figure(
+            buffer, format="pdf", dpi=dpi, metadata={"CreationDate": None}, **options
+        )
+    else:
+        raise ValueError(f"kind must be 'png' or 'pdf', got {kind!r}")
+    return buffer.getvalue()
+
+
+def write_figures(out_dir: str | Path, drawn: list[DrawnFigure]) -> tuple[dict[str, bytes], list]:
+    """Write every figure to ``out_dir/figures/`` and remove stale ones.
+
+    Returns
+    -------
+    png, entries
+        The PNG bytes of each figure by stem (for the report to embed) and one
+        summary.json entry per figure (result, figure, title, files, dpi).
+    """
+    folder = Path(out_dir) / FIGURES_FOLDER
+    folder.mkdir(exist_ok=True)
+    png: dict[str, bytes] = {}
+    entries = []
+    for fig in drawn:
+        data, box = png_and_box(fig.figure)  # one box for both files
+        atomic_write(_file(folder, fig, ".png"), data)
+        atomic_write(_file(folder, fig, ".pdf"), figure_bytes(fig.figure, "pdf", box=box))
+        atomic_write(_file(folder, fig, ".txt"), (fig.caption_text + "\n").encode("utf-8"))
+        png[fig.stem] = data
+        entries.append(
+            {
+                "result": fig.result,
+                "figure": fig.key,
+                "title": fig.title,
+                "png": f"{FIGURES_FOLDER}/{fig.stem}.png",
+                "pdf": f"{FIGURES_FOLDER}/{fig.stem}.pdf",
+                "caption": f"{FIGURES_FOLDER}/{fig.stem}.txt",
+                "dpi": PNG_DPI,
+            }
+        )
+    keep = {f"{fig.stem}{suffix}" for fig in drawn for suffix in SUFFIXES}
+    for path in folder.iterdir():
+        if path.is_file() and path.suffix in SUFFIXES and path.name not in keep:
+            path.unlink()
+    return png, entries
+
+
+def _file(folder: Path, fig: DrawnFigure, suffix: str) -> Path:
+    """``folder/<result>_<key><suffix>``, refused unless the result's name follows the
+    name rule and the file stays in ``folder`` (the name may be longer than a result
+    name may be: the rule's limit leaves room for these suffixes)."""
+    why = name_problem(fig.result)
+    if why:
+        raise UserError(f"{fig.result!r} {why}; no figure written in {folder}: {NAME_RULE}")
+    path = folder / f"{fig.stem}{suffix}"
+    if path.resolve().parent != folder.resolve():
+        raise UserError(f"{path}: resolves outside {folder}; not written")
+    return path
