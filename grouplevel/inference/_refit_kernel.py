@@ -16,7 +16,8 @@ voxels is compiled (numba) because each voxel iterates to its own convergence.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+
+from grouplevel.compiled import lazy_njit
 
 # Fisher-scoring limits for the one-parameter REML refit: the start is the unpermuted
 # estimate, so a few iterations suffice; tolerance relative to τ² + mean sampling
@@ -30,7 +31,7 @@ REFIT_TOL = 1e-8
 REFIT_FISHER_STEPS = 2
 
 
-@njit(cache=True, nogil=True)
+@lazy_njit(cache=True, nogil=True)
 def _solve_spd(C: np.ndarray, Cinv: np.ndarray, p: int, A: np.ndarray) -> bool:
     """Invert a small symmetric positive definite matrix by Gauss–Jordan; False if singular.
 
@@ -74,7 +75,7 @@ def _solve_spd(C: np.ndarray, Cinv: np.ndarray, p: int, A: np.ndarray) -> bool:
     return True
 
 
-@njit(cache=True, nogil=True)
+@lazy_njit(cache=True, nogil=True)
 def _moment_start(y, prec, X, tau2):
     """Method-of-moments start for τ² in the intercept-only case (DerSimonian & Laird
     1986, Control Clin Trials 7:177); other designs start from the given τ²."""
@@ -107,7 +108,7 @@ def _moment_start(y, prec, X, tau2):
     return est if est > 0.0 else 0.0
 
 
-@njit(cache=True, nogil=True)
+@lazy_njit(cache=True, nogil=True)
 def _refit_voxel(y, prec, X, tau2, max_iter, tol, C, Cinv, G2, G3, beta, rhs, A, wk):
     m, p = X.shape
     n_present = 0
@@ -233,7 +234,7 @@ def _refit_voxel(y, prec, X, tau2, max_iter, tol, C, Cinv, G2, G3, beta, rhs, A,
     return b0 / np.sqrt(Cinv[0, 0]), tau2
 
 
-@njit(cache=True, nogil=True)
+@lazy_njit(cache=True, nogil=True)
 def _refit_mean_voxel(y, prec, X, tau2, max_iter, tol):
     """Intercept-only refit (p = 1, x = 1) with one pass of sums per iteration.
 
@@ -310,7 +311,7 @@ def _refit_mean_voxel(y, prec, X, tau2, max_iter, tol):
     return (swy / sw) * np.sqrt(sw), tau2
 
 
-@njit(cache=True, nogil=True)
+@lazy_njit(cache=True, nogil=True)
 def refit_t_permuted(fitted, residual, prec, sign, order, X, tau2_start, out_t, max_iter, tol):
     """t of the first coefficient after one permutation, at every voxel.
 
@@ -348,7 +349,7 @@ def refit_t_permuted(fitted, residual, prec, sign, order, X, tau2_start, out_t, 
         out_t[v] = t
 
 
-@njit(cache=True, nogil=True)
+@lazy_njit(cache=True, nogil=True)
 def _z_from_table(t, tables, row, du):
     """Equal-p z of t from a table of z over u = asinh(|t|) on a uniform grid of step du."""
     if not np.isfinite(t):
@@ -365,7 +366,7 @@ def _z_from_table(t, tables, row, du):
     return z if t >= 0.0 else -z
 
 
-@njit(cache=True, nogil=True)
+@lazy_njit(cache=True, nogil=True)
 def refit_z_permuted(
     fitted, residual, prec, sign, order, X, tau2_start, tables, df_row, du, out_z, max_iter, tol
 ):
@@ -380,7 +381,7 @@ def refit_z_permuted(
         out_z[v] = _z_from_table(out_z[v], tables, df_row[v], du)
 
 
-@njit(cache=True, nogil=True)
+@lazy_njit(cache=True, nogil=True)
 def refit_f_permuted(
     fitted, residual, prec, sign, order, X, n_interest, tau2_start, out_f, max_iter, tol
 ):

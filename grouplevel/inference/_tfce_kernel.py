@@ -10,10 +10,11 @@ The pure-Python reference versions that check these kernels live in the tests.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+
+from grouplevel.compiled import lazy_njit
 
 
-@njit(cache=True)
+@lazy_njit(cache=True)
 def _find(parent: np.ndarray, node: int) -> int:
     """Root of ``node`` in a union-find forest, with full path compression."""
     root = node
@@ -26,7 +27,7 @@ def _find(parent: np.ndarray, node: int) -> int:
     return root
 
 
-@njit(cache=True)
+@lazy_njit(cache=True)
 def tfce_sweep(
     order: np.ndarray,
     height_integrals: np.ndarray,
@@ -134,7 +135,7 @@ def tfce_sweep(
         out[order[i]] = sign * total[i]
 
 
-@njit(cache=True)
+@lazy_njit(cache=True)
 def label_components(signs: np.ndarray, shape: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     """Connected components of the nonzero voxels of ``signs``, one sign at a time.
 
@@ -219,7 +220,7 @@ def label_components(signs: np.ndarray, shape: np.ndarray, offsets: np.ndarray) 
     return labels
 
 
-@njit(cache=True)
+@lazy_njit(cache=True)
 def max_extent_and_mass(
     signs: np.ndarray, excess: np.ndarray, shape: np.ndarray, offsets: np.ndarray
 ) -> tuple[int, float]:

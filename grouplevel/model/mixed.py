@@ -73,8 +73,8 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
-from numba import njit
 
+from grouplevel.compiled import lazy_njit
 from grouplevel.machine import available_cores as _available_cores
 from grouplevel.memory import CHUNK_SHARE, GIB, WORKING_BYTES
 from grouplevel.model.reml import presence_patterns
@@ -438,7 +438,7 @@ class _Structure:
 # --------------------------------------------------------------------------------------
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_spd_inverse(V, inv, logdet, ok):
     """Cholesky-based inverse and log-determinant of each matrix of a (N, w, w) stack."""
     n_mat, w, _ = V.shape
@@ -545,7 +545,7 @@ def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
 
 
 # reassociation and fused multiply-add only: NaN and infinity keep their meaning
-@njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
+@lazy_njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
 def _nb_block_sums(A, E, a, Minv, G, used, tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa):
     """Per-voxel sums over animals of the block products that the REML score and
     information need (see :func:`_information`); outputs are zeroed here."""

@@ -54,8 +54,8 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
-from numba import njit
 
+from grouplevel.compiled import lazy_njit
 from grouplevel.errors import ArgumentError
 from grouplevel.machine import available_cores
 from grouplevel.model.memory import CHUNK_ARRAYS, chunk_voxels
@@ -671,7 +671,7 @@ def _fit_chunk(d, y, s2, pres, estimate_sigma, max_iter, tol):
 # _fit_chunk is the vectorised numpy reference.
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_chol_inv(M, L, Minv, z):
     """Cholesky of a small SPD matrix; fills Minv, returns log|M| (NaN if not SPD)."""
     p = M.shape[0]
@@ -709,7 +709,7 @@ def _nb_chol_inv(M, L, Minv, z):
     return logdet
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_evaluate(tau2, sig2, y, s2, pres, X, animal, n_obs, v1, v2, v3):
     """REML log-likelihood at (τ², σ²) for one voxel; fills the scratch arrays."""
     n, p = X.shape
@@ -796,7 +796,7 @@ def _nb_evaluate(tau2, sig2, y, s2, pres, X, animal, n_obs, v1, v2, v3):
     return ll
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_tr(A, B):
     p = A.shape[0]
     s = 0.0
@@ -806,7 +806,7 @@ def _nb_tr(A, B):
     return s
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_quadform(Minv, a, b):
     p = a.shape[0]
     s = 0.0
@@ -816,7 +816,7 @@ def _nb_quadform(Minv, a, b):
     return s
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_derivatives(tau2, pres, X, animal, v1, v2, v3, g, F, H, Q):
     """Score g, expected information F, observed information H and Q_j = XᵀV⁻¹V_jV⁻¹X."""
     n, p = X.shape
@@ -938,7 +938,7 @@ def _nb_derivatives(tau2, pres, X, animal, v1, v2, v3, g, F, H, Q):
     H[1, 1] = k_ss - F[1, 1]
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_pinv_free(A, free0, free1, out):
     """Scalar version of :func:`_pinv_free`."""
     out[:, :] = 0.0
@@ -967,7 +967,7 @@ def _nb_pinv_free(A, free0, free1, out):
             out[1, 1] = 1.0 / e
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_step(H, F, g, free0, free1, tmp, delta):
     a, b, e = H[0, 0], H[0, 1], H[1, 1]
     if free0 and free1:
@@ -983,7 +983,7 @@ def _nb_step(H, F, g, free0, free1, tmp, delta):
     delta[1] = tmp[1, 0] * g[0] + tmp[1, 1] * g[1]
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_direction(theta, lb, g, F, H, estimate_sigma, tmp, delta):
     """Scalar version of :func:`_direction`."""
     at0 = theta[0] <= lb[0]
@@ -1004,7 +1004,7 @@ def _nb_direction(theta, lb, g, F, H, estimate_sigma, tmp, delta):
 _N_V1, _N_V2, _N_V3 = 18, 5, 10
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_workspace(n, m, p):
     return (
         np.zeros((_N_V1, max(n, m, p))),
@@ -1013,7 +1013,7 @@ def _nb_workspace(n, m, p):
     )
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_fit_voxel(
     y,
     s2,
@@ -1187,7 +1187,7 @@ def _nb_fit_voxel(
     o_misc[2] = n_iter
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_fit_many(
     y,
     variance,
