@@ -13,7 +13,8 @@ maps (1 = linear).
 
 Targets: peak RSS below 4 GiB at 1 000 000 voxels × 200 maps; time about linear.
 
-With ``--whole N`` each size is also run as a whole ``grouplevel run`` in a fresh child:
+With ``--whole N`` the largest size is also run as a whole ``grouplevel run`` in a fresh
+child:
 an atlas of four areas per hemisphere is added, with the questions (symmetry and
 specificity of one area, consistency, run quality) and N sign flips with TFCE and
 clusters, the maps, tables and report written; the child prints its time per step and
@@ -249,7 +250,7 @@ def main(argv: list[str] | None = None) -> None:
                 f"{100 * res['converged_share']:.2f} %",
                 flush=True,
             )
-            if args.whole:
+            if args.whole and n_vox == sizes[-1]:  # the largest size only
                 add_atlas_and_questions(folder, n_vox, args.whole)
                 whole = subprocess.run(
                     [
