@@ -26,7 +26,7 @@ demo: $(BASE)
 	$(BIN)/grouplevel demo --out demo_output --force
 
 test: $(TEST)
-	$(BIN)/python -m pytest -q
+	$(BIN)/python -m pytest -q -n auto --dist loadscope
 
 lint: $(TEST)
 	$(BIN)/ruff check .
