@@ -1208,21 +1208,34 @@ def _unfitted_as_null(key: str, values: np.ndarray) -> np.ndarray:
     return values
 
 
+def _constant_df(df: np.ndarray) -> float | None:
+    """The degrees of freedom when every fitted voxel has the same (for the intent)."""
+    dfs = np.unique(df[np.isfinite(df)])
+    return float(dfs[0]) if dfs.size == 1 else None
+
+
+def _write_described_maps(
+    folder: Path, result, descriptions: dict, label: str, stat_key: str, stat_df
+) -> None:
+    """The in-mask maps of a result named in ``descriptions``; ``stat_df`` goes into the
+    intent of the statistic map ``stat_key`` (None: not constant)."""
+    for key, what in descriptions.items():
+        write_map(
+            folder / f"{key}.nii.gz",
+            _unfitted_as_null(key, getattr(result, key)),
+            result.mask,
+            result.grid,
+            f"grouplevel {what} [{label}]",
+            df=stat_df if key == stat_key else None,
+        )
+
+
 def _write_group_map(folder: Path, gm: GroupMap) -> None:
     """Every map and table of one group contrast into its own folder."""
     folder.mkdir()
     grid = gm.grid
     label = f"{gm.first_level or ''} {gm.contrast}".strip()
-    dfs = np.unique(gm.df[np.isfinite(gm.df)])
-    for key, what in MAP_DESCRIPTIONS.items():
-        write_map(
-            folder / f"{key}.nii.gz",
-            _unfitted_as_null(key, getattr(gm, key)),
-            gm.mask,
-            grid,
-            f"grouplevel {what} [{label}]",
-            df=float(dfs[0]) if key == "t" and dfs.size == 1 else None,
-        )
+    _write_described_maps(folder, gm, MAP_DESCRIPTIONS, label, "t", _constant_df(gm.df))
     for cname, (stem, what) in component_files(gm.components).items():
         write_map(
             folder / f"{stem}.nii.gz",
@@ -1266,16 +1279,9 @@ def _write_ftest_map(folder: Path, fm: FTestMap) -> None:
     folder.mkdir()
     grid = fm.grid
     label = f"{fm.first_level or ''} {fm.ftest}".strip()
-    dfs = np.unique(fm.df[np.isfinite(fm.df)])
-    for key, what in FTEST_MAP_DESCRIPTIONS.items():
-        write_map(
-            folder / f"{key}.nii.gz",
-            _unfitted_as_null(key, getattr(fm, key)),
-            fm.mask,
-            grid,
-            f"grouplevel {what} [{label}]",
-            df=(float(fm.df_num), float(dfs[0])) if key == "f" and dfs.size == 1 else None,
-        )
+    denominator = _constant_df(fm.df)
+    stat_df = None if denominator is None else (float(fm.df_num), denominator)
+    _write_described_maps(folder, fm, FTEST_MAP_DESCRIPTIONS, label, "f", stat_df)
     full = np.ones(grid.shape, dtype=bool)
     write_map(
         folder / "mask.nii.gz",

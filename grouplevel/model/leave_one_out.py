@@ -97,6 +97,23 @@ class LeaveOneOut:
     var_run: np.ndarray | None = None
 
 
+def _checked(y, X, animal, c, chunk: int, name: str):
+    """The inputs of a leave-one-out function as arrays, their shapes checked."""
+    y = np.asarray(y)
+    X = np.asarray(X, dtype=float)
+    animal = np.asarray(animal, dtype=np.intp)
+    c = np.asarray(c, dtype=float).ravel()
+    n = y.shape[0]
+    if X.shape[0] != n or animal.shape != (n,) or c.shape != (X.shape[1],):
+        raise ValueError(
+            f"{name}: y has {n} runs, X {X.shape}, animal {animal.shape}, c {c.shape}; "
+            "they must agree"
+        )
+    if chunk < 1:
+        raise ValueError(f"{name}: chunk must be at least 1, got {chunk}")
+    return y, X, animal, c
+
+
 def leave_one_animal_out(
     y: np.ndarray,
     variance: np.ndarray | None,
@@ -143,18 +160,8 @@ def leave_one_animal_out(
     -------
     LeaveOneOut
     """
-    y = np.asarray(y)
-    X = np.asarray(X, dtype=float)
-    animal = np.asarray(animal, dtype=np.intp)
-    c = np.asarray(c, dtype=float).ravel()
+    y, X, animal, c = _checked(y, X, animal, c, chunk, "leave_one_animal_out")
     n, n_vox = y.shape
-    if X.shape[0] != n or animal.shape != (n,) or c.shape != (X.shape[1],):
-        raise ValueError(
-            f"leave_one_animal_out: y has {n} runs, X {X.shape}, animal {animal.shape}, "
-            f"c {c.shape}; they must agree"
-        )
-    if chunk < 1:
-        raise ValueError(f"leave_one_animal_out: chunk must be at least 1, got {chunk}")
     m = int(animal.max()) + 1
     p = X.shape[1]
     G = np.zeros((n, m))
@@ -218,18 +225,8 @@ def leave_one_animal_out_model(
     Christensen, R., Pearson, L. M., & Johnson, W. (1992). Technometrics 34:38–45.
     Haslett, J., & Dillane, D. (2004). J R Stat Soc B 66:131–143.
     """
-    y = np.asarray(y)
-    X = np.asarray(X, dtype=float)
-    animal = np.asarray(animal, dtype=np.intp)
-    c = np.asarray(c, dtype=float).ravel()
+    y, X, animal, c = _checked(y, X, animal, c, chunk, "leave_one_animal_out_model")
     n, n_vox = y.shape
-    if X.shape[0] != n or animal.shape != (n,) or c.shape != (X.shape[1],):
-        raise ValueError(
-            f"leave_one_animal_out_model: y has {n} runs, X {X.shape}, animal "
-            f"{animal.shape}, c {c.shape}; they must agree"
-        )
-    if chunk < 1:
-        raise ValueError(f"leave_one_animal_out_model: chunk must be at least 1, got {chunk}")
     m = int(animal.max()) + 1
     effect = np.full((m + 1, n_vox), np.nan)
     se = np.full((m + 1, n_vox), np.nan)
