@@ -56,7 +56,7 @@ multivariate random effects model for meta-analysis and meta-regression. Biom J
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -349,11 +349,20 @@ class _VectorFlipWork:
         return float(z.max()), int(extent), float(mass), max_tfce
 
 
-def plan_vector_flips(m: int, n_requested: int, rng: np.random.Generator) -> PermutationScheme:
-    """Sign flips of m animals' whole vectors: all 2ᵐ when no more than requested (then
-    the identity and the all-flip pair, smallest p 2/2ᵐ), else ``n_requested`` random
-    ones with the identity first."""
-    return plan_permutations(np.ones((m, 1)), np.zeros((m, 0)), n_requested, rng, "positive", True)
+def plan_vector_flips(
+    m: int, n_effects: int, n_requested: int, rng: np.random.Generator
+) -> PermutationScheme:
+    """Sign flips of m animals' whole vectors of ``n_effects`` effects: all 2ᵐ when no
+    more than requested (then the identity and the all-flip pair give the same F, so the
+    smallest attainable p is 2/2ᵐ), else ``n_requested`` random ones, identity first.
+
+    The flips are those of a one-sample sign-flip test of the same animals (same seed,
+    same flips); the scheme's ``kind`` names the unit flipped.
+    """
+    scheme = plan_permutations(
+        np.ones((m, 1)), np.zeros((m, 0)), n_requested, rng, "positive", f_test=True
+    )
+    return replace(scheme, kind=f"sign flips of each animal's vector of {n_effects} own effects")
 
 
 def vector_flip_test(
@@ -420,7 +429,7 @@ def vector_flip_test(
     V, m, _ = data.effect.shape
     if int(mask.sum()) != V:
         raise ArgumentError(f"mask has {int(mask.sum())} voxels but the data have {V}")
-    scheme = plan_vector_flips(m, n_permutations, rng)
+    scheme = plan_vector_flips(m, data.n_effects, n_permutations, rng)
     scaled, no_f = _scaled_terms(data, variance_groups)
     work = _VectorFlipWork(
         scaled=scaled,
