@@ -290,9 +290,7 @@ def test_run_permutes_a_within_animal_f_test_as_hotelling_brute_force(tmp_path):
     assert "as likely as its negative" in cautions
 
 
-def test_a_within_animal_f_test_of_moderated_slopes_is_refused_with_permutations(
-    tmp_path, capsys
-):
+def test_a_within_animal_f_test_of_moderated_slopes_is_refused_with_permutations(tmp_path, capsys):
     # stimulus × genotype: the stimulus slopes differ between genotypes, so the animals'
     # vectors would need the genotype removed first (not implemented). A declared
     # F-test of both stimulus differences is refused naming the key and the block; the
