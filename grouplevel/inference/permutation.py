@@ -20,6 +20,9 @@ the units of every permutation are whole animals.
   exchangeability with animals as the exchangeable blocks (Winkler et al. 2015).
 * Contrasts that weight a within-animal column without its random slope are refused
   (see :func:`animal_level_data`).
+* An **F-test of several within-animal random slopes** flips each animal's whole
+  vector of own effects: :mod:`grouplevel.inference.vector_flips`, which shares
+  :func:`run_scheme` with this engine.
 * With **one between-animal variance per group of animals** the animals are not
   exchangeable between groups; the errors are still symmetric, so whole animals are
   sign-flipped (Freedman–Lane residuals for a group difference) and the statistic is

@@ -310,3 +310,13 @@ def test_a_within_animal_f_test_of_moderated_slopes_is_refused_with_permutations
     assert err.startswith("error: ") and "Traceback" not in err
     assert "F-test 'stim-both': [inference] permutations = 100: its rows weight several" in err
     assert "animal-level columns moderate" in err
+    # without the block, the default F-test of the same rows stays parametric (a warning)
+    text = toml.read_text()
+    toml.write_text(
+        text.replace('[[ftest]]\nname = "stim-both"\n', "").replace(
+            'contrasts = ["b-minus-a", "c-minus-a"]\n', "", 1
+        )
+    )
+    assert main(["check", str(toml)]) == 0
+    out = capsys.readouterr().out
+    assert "'stim-any-difference' (a default F-test) is tested parametrically only" in out
