@@ -76,6 +76,9 @@ from grouplevel.inference.permutation import (
 from grouplevel.inference.tfce import tfce as tfce_map
 from grouplevel.model.ftest import RANK_TOLERANCE, f_to_z
 
+# The start of the ``kind`` of these schemes (summary.json; "... of 2 own effects").
+VECTOR_FLIPS_KIND = "sign flips of each animal's vector of"
+
 
 @dataclass(frozen=True)
 class AnimalEffectVectors:
@@ -265,7 +268,18 @@ def null_between_covariance(
 def _scaled_terms(data: AnimalEffectVectors, groups) -> tuple[np.ndarray, np.ndarray]:
     """``C⁻¹ W_a d_a`` per voxel and animal (``H = C Cᵀ``), so that the F of any flip s
     is ``|Σ_a s_a C⁻¹W_a d_a|² / q``; and which voxels have no F (H not positive
-    definite: no valid animal)."""
+    definite: no valid animal). Chunks of voxels keep the (V, m, q, q) temporaries
+    small."""
+    V, m, q = data.effect.shape
+    scaled, bad = np.empty((V, m, q)), np.empty(V, dtype=bool)
+    for lo in range(0, V, _EFFECT_CHUNK_VOXELS):
+        sl = slice(lo, min(V, lo + _EFFECT_CHUNK_VOXELS))
+        part = AnimalEffectVectors(data.effect[sl], data.covariance[sl], data.valid[sl])
+        scaled[sl], bad[sl] = _scaled_chunk(part, groups)
+    return scaled, bad
+
+
+def _scaled_chunk(data: AnimalEffectVectors, groups) -> tuple[np.ndarray, np.ndarray]:
     q = data.n_effects
     T0 = null_between_covariance(data, groups)
     eye = np.eye(q)
@@ -277,7 +291,7 @@ def _scaled_terms(data: AnimalEffectVectors, groups) -> tuple[np.ndarray, np.nda
     Wd = np.einsum("vaij,vaj->vai", W, data.effect)  # (V, m, q)
     scaled = np.linalg.solve(C[:, None], Wd[..., None])[..., 0]
     scaled[bad] = 0.0
-    return np.ascontiguousarray(scaled), bad
+    return scaled, bad
 
 
 def vector_f(data: AnimalEffectVectors, signs: np.ndarray, groups=None) -> np.ndarray:
@@ -362,7 +376,7 @@ def plan_vector_flips(
     scheme = plan_permutations(
         np.ones((m, 1)), np.zeros((m, 0)), n_requested, rng, "positive", f_test=True
     )
-    return replace(scheme, kind=f"sign flips of each animal's vector of {n_effects} own effects")
+    return replace(scheme, kind=f"{VECTOR_FLIPS_KIND} {n_effects} own effects")
 
 
 def vector_flip_test(

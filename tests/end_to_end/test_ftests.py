@@ -288,6 +288,9 @@ def test_run_permutes_a_within_animal_f_test_as_hotelling_brute_force(tmp_path):
     assert perm["smallest_attainable_p"] == pytest.approx(2 / 64, abs=1e-12)
     cautions = " ".join(summary["ftests"]["stim-any-difference"]["cautions"])
     assert "as likely as its negative" in cautions
+    methods = (out / "methods.md").read_text()
+    assert "sign-flipped as a whole (Winkler et al. 2015)" in methods
+    assert "Multi-level block permutation. NeuroImage 123:253" in methods
 
 
 def test_a_within_animal_f_test_of_moderated_slopes_is_refused_with_permutations(tmp_path, capsys):

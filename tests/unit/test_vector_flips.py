@@ -90,7 +90,7 @@ def test_exhaustive_p_equals_hotelling_brute_force(seed, shift):
         threads=1,
     )
     assert res.scheme.exhaustive and res.scheme.n == 32
-    assert res.scheme.kind == "sign flips"
+    assert res.scheme.kind == "sign flips of each animal's vector of 2 own effects"
     # identity and all-flip give the same T² (the only such pair for generic data)
     same = int(np.sum(np.isclose(t2, t2[0], rtol=1e-9)))
     assert same == 2 == res.scheme.n_equivalent
@@ -148,3 +148,26 @@ def test_bad_arguments_are_refused():
         vector_flip_test(
             data, 4.0, np.ones((1, 1, 1), bool), n_permutations=10, rng=rng, sided="two"
         )
+
+
+def test_null_covariance_per_group_and_chunks(monkeypatch):
+    # reference: the moment formula written out per group with numpy
+    rng = np.random.default_rng(5)
+    y, own, animal, _ = _runs(rng, n_vox=5)
+    U = np.array([[0.0, 1, 0], [0, 0, 1]])
+    data = animal_effect_vectors(y, None, own, U, animal, np.full(5, 0.3))
+    groups = np.array([0, 0, 1, 1, 1])
+    T = null_between_covariance(data, groups)
+    for g in (0, 1):
+        sel = groups == g
+        d, S = data.effect[:, sel], data.covariance[:, sel]
+        moment = (np.einsum("vai,vaj->vij", d, d) - S.sum(axis=1)) / sel.sum()
+        vals, vecs = np.linalg.eigh(moment)
+        ref = np.einsum("vij,vj,vkj->vik", vecs, np.clip(vals, 0, None), vecs)
+        for a in np.flatnonzero(sel):
+            np.testing.assert_allclose(T[:, a], ref, rtol=1e-12, atol=1e-14)
+    # voxel chunks give the same F as one piece
+    signs = _flips(5)[:7]
+    whole = vector_f(data, signs, groups)
+    monkeypatch.setattr("grouplevel.inference.vector_flips._EFFECT_CHUNK_VOXELS", 2)
+    np.testing.assert_allclose(vector_f(data, signs, groups), whole, rtol=1e-13)
