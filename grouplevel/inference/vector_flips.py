@@ -280,6 +280,7 @@ def _scaled_terms(data: AnimalEffectVectors, groups) -> tuple[np.ndarray, np.nda
 
 
 def _scaled_chunk(data: AnimalEffectVectors, groups) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_scaled_terms` of one chunk of voxels."""
     q = data.n_effects
     T0 = null_between_covariance(data, groups)
     eye = np.eye(q)
