@@ -41,6 +41,11 @@ from grouplevel.inference.permutation import (
     permutation_test,
 )
 from grouplevel.inference.significance import sided_p
+from grouplevel.inference.vector_flips import (
+    AnimalEffectVectors,
+    animal_effect_vectors,
+    vector_flip_test,
+)
 from grouplevel.intake.description import design_description
 from grouplevel.intake.design import (
     CONTRAST_ANIMAL,
@@ -53,6 +58,7 @@ from grouplevel.intake.design import (
     contrast_kind,
     describe_random_effects,
     ftest_permutation_refusal,
+    own_effect_rows,
     slope_design,
     weights_dict,
 )
@@ -202,7 +208,9 @@ def _correct(
     permute: bool = True,
 ) -> Corrected:
     """FDR and permutation inference of one contrast (``t``), or of an F-test when its
-    upper-tail ``f_p`` is given (``c`` then holds its rows; the side is the upper tail)."""
+    upper-tail ``f_p`` is given (``c`` then holds its rows; the side is the upper tail).
+    ``animal_data`` as :class:`AnimalEffectVectors` (an F-test of several random slopes)
+    flips each animal's vector of own effects (``c`` is then not used)."""
     inf: InferenceSettings = study.settings.inference
     f_test = f_p is not None
     sided = "positive" if f_test else inf.sided
@@ -213,19 +221,31 @@ def _correct(
     if inf.permutations > 0 and permute:
         rng = np.random.default_rng(inf.seed)
         bar = Progress(f"permutations {label}", "permutations", quiet=quiet)
-        perm = permutation_test(
-            animal_data,
-            c,
-            df,
-            mask,
-            rng=rng,
-            progress=bar.update,
-            variance_groups=variance_groups,
-            f_test=f_test,
-            **permutation_arguments(
-                inf, voxel_volume_mm3=study.grid.voxel_volume, backend=backend, sided=sided
-            ),
+        arguments = permutation_arguments(
+            inf, voxel_volume_mm3=study.grid.voxel_volume, backend=backend, sided=sided
         )
+        if isinstance(animal_data, AnimalEffectVectors):
+            perm = vector_flip_test(
+                animal_data,
+                df,
+                mask,
+                rng=rng,
+                progress=bar.update,
+                variance_groups=variance_groups,
+                **arguments,
+            )
+        else:
+            perm = permutation_test(
+                animal_data,
+                c,
+                df,
+                mask,
+                rng=rng,
+                progress=bar.update,
+                variance_groups=variance_groups,
+                f_test=f_test,
+                **arguments,
+            )
         bar.close()
         if perm.scheme.smallest_p > inf.alpha:
             warnings.append(
@@ -357,6 +377,34 @@ def _reduced_data(
             design=data.design[informative],
         )
     return data, c_reduced, informative
+
+
+def _effect_vectors(
+    y, s2, fit, design: Design, random: RandomEffects, weights: np.ndarray
+) -> tuple[AnimalEffectVectors, np.ndarray]:
+    """Each animal's own estimates of the rows of an F-test on several random slopes
+    (its vector of own effects), and which animals take part (those that estimate every
+    row at some voxel). Within-animal columns without a random slope are removed first
+    at their fitted values, as :func:`_reduced_data` does."""
+    within = design.within
+    nuisance = [j for j in np.flatnonzero(within) if not random.terms or random.terms[j] is None]
+    offset = None
+    if nuisance:
+        offset = design.matrix[:, nuisance] @ fit.beta[:, nuisance].T
+    data = animal_effect_vectors(
+        y,
+        s2,
+        design.matrix[:, list(random.slope_columns)],
+        own_effect_rows(random, weights),
+        design.animal,
+        fit.var_run,
+        session=design.session if random.sessions else None,
+        var_session=_components(fit).get("session"),
+        offset=offset,
+    )
+    # an animal without every condition the rows need takes no part (as for one slope)
+    taking_part = data.valid.any(axis=0)
+    return data.animals(taking_part), taking_part
 
 
 def _unsloped_df(
@@ -908,7 +956,13 @@ def _test_ftest(
         )
         is None
     )
-    if permute:
+    if permute and kind == CONTRAST_SLOPES:
+        animal_data, taking_part = _effect_vectors(
+            fitted.y, fitted.s2, fit, design, random, ft.weights
+        )
+        if groups is not None:
+            groups = groups[taking_part]
+    elif permute:
         animal_data, _, taking_part = fitted.reduced_for(np.abs(ft.weights).sum(axis=0))
         rows = _ftest_rows_reduced(design, random, ft.weights)
         if groups is not None:
@@ -1330,6 +1384,15 @@ def _ftest_summary(study: Study, fm: FTestMap) -> dict:
             "levels are ordered (as a dose-response would be)"
         ],
     }
+    if fm.tested_level == CONTRAST_SLOPES and fm.inference.permutation is not None:
+        entry["cautions"].append(
+            "the permutation maps flip each animal's whole vector of its own effects: they "
+            "assume that, with no effect, every animal's vector is as likely as its "
+            "negative and independent of the other animals' (not that the effects are "
+            "normal); their statistic estimates the between-animal covariance of the "
+            "effects with no effect assumed, so it can rank voxels slightly differently "
+            "from the f map (Wald F of the full fit)"
+        )
     if peak is not None:
         ijk = np.argwhere(fm.mask)[peak]
         xyz = study.grid.affine[:3, :3] @ ijk + study.grid.affine[:3, 3]

@@ -20,6 +20,9 @@ the units of every permutation are whole animals.
   exchangeability with animals as the exchangeable blocks (Winkler et al. 2015).
 * Contrasts that weight a within-animal column without its random slope are refused
   (see :func:`animal_level_data`).
+* An **F-test of several within-animal random slopes** flips each animal's whole
+  vector of own effects: :mod:`grouplevel.inference.vector_flips`, which shares
+  :func:`run_scheme` with this engine.
 * With **one between-animal variance per group of animals** the animals are not
   exchangeable between groups; the errors are still symmetric, so whole animals are
   sign-flipped (Freedman–Lane residuals for a group difference) and the statistic is
@@ -303,6 +306,26 @@ def animal_effect_data(
 
 def _own_fit(y, variance, offset, rows, sl, Xa, target, var_run, omega, same):
     """GLS estimate and precision of one coefficient for one animal, chunk of voxels."""
+    coef, M, Minv = _own_gls(y, variance, offset, rows, sl, Xa, var_run, omega, same)
+    k = Xa.shape[1]
+    if np.ndim(target) == 0:
+        unit = np.zeros(k)
+        unit[int(target)] = 1.0
+    else:
+        unit = np.asarray(target, dtype=float)
+    recon = unit @ np.einsum("vkl,vlj->vkj", Minv, M)
+    scale = max(1.0, float(np.abs(unit).max()))
+    estimable = np.all(np.abs(recon - unit) < _ESTIMABLE_TOL * max(1.0, k) * scale, axis=1)
+    var_t = np.einsum("k,vkl,l->v", unit, Minv, unit)
+    ok = estimable & (var_t > 0) & np.isfinite(var_t)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        precision = np.where(ok, 1.0 / var_t, 0.0)
+    return np.where(ok, coef @ unit, 0.0), precision
+
+
+def _own_gls(y, variance, offset, rows, sl, Xa, var_run, omega, same):
+    """One animal's GLS fit on its own design ``Xa``, chunk of voxels: the coefficients
+    (v, k), the information ``M = XaᵀV⁻¹Xa`` (v, k, k) and its pseudo-inverse."""
     yc = np.asarray(y[rows, sl], dtype=float).T  # (v, n_a)
     if offset is not None:
         yc = yc - np.asarray(offset[rows, sl], dtype=float).T
@@ -333,20 +356,7 @@ def _own_fit(y, variance, offset, rows, sl, Xa, target, var_run, omega, same):
     M = np.einsum("vnk,vnl->vkl", Xw, Xw)
     Minv = np.linalg.pinv(M, hermitian=True)
     coef = np.einsum("vkl,vnl,vn->vk", Minv, Xw, yw)
-    k = Xa.shape[1]
-    if np.ndim(target) == 0:
-        unit = np.zeros(k)
-        unit[int(target)] = 1.0
-    else:
-        unit = np.asarray(target, dtype=float)
-    recon = unit @ np.einsum("vkl,vlj->vkj", Minv, M)
-    scale = max(1.0, float(np.abs(unit).max()))
-    estimable = np.all(np.abs(recon - unit) < _ESTIMABLE_TOL * max(1.0, k) * scale, axis=1)
-    var_t = np.einsum("k,vkl,l->v", unit, Minv, unit)
-    ok = estimable & (var_t > 0) & np.isfinite(var_t)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        precision = np.where(ok, 1.0 / var_t, 0.0)
-    return np.where(ok, coef @ unit, 0.0), precision
+    return coef, M, Minv
 
 
 def partition_design(design: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -1113,7 +1123,27 @@ def permutation_test(
         tfce_H=tfce_H,
         **extra,
     )
+    return run_scheme(work, scheme, progress=progress, threads=threads, backend=backend)
 
+
+def run_scheme(
+    work,
+    scheme: PermutationScheme,
+    *,
+    progress: Callable[[int, int], None] | None = None,
+    threads: int | None = None,
+    backend: PermutationBackend | None = None,
+) -> PermutationResult:
+    """The null maxima of every rearrangement of ``scheme`` and the FWE-corrected
+    observed maps (rearrangement 0 is the identity).
+
+    ``work`` computes one rearrangement's statistic and maxima (``statistic``,
+    ``oriented``, ``volume``, ``tfce_of``, ``maxima`` and the cluster settings, as
+    :class:`_PermutationWork`); the arguments are those of :func:`permutation_test`.
+    """
+    mask, thr, sided = work.mask, work.threshold, work.sided
+    connectivity, voxel_volume_mm3 = work.connectivity, work.voxel_volume_mm3
+    use_tfce = work.use_tfce
     n = scheme.n
     if backend is not None and backend.distributed:
         # the plan is drawn above, locally: the workers only evaluate given permutations

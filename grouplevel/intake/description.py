@@ -21,6 +21,7 @@ from grouplevel.intake.design import (
     animal_design,
     contrast_kind,
     describe_random_effects,
+    own_effect_rows,
     slope_design,
     weights_dict,
 )
@@ -48,13 +49,17 @@ def _reduced_design(
     the animal's intercept, its own slope, or its own combination of slopes), without
     the data; animals with no information on a tested slope take no part. None when
     ``c`` mixes levels (``check`` refuses permutations for it). ``c`` may be the (q, p)
-    rows of an F-test (reduced column-wise; None for rows on several slopes).
+    rows of an F-test (reduced column-wise; rows on several slopes reduce to each
+    animal's vector of own effects, one row per animal that estimates all of them).
     """
     kind, slope = contrast_kind(design, random, np.abs(np.atleast_2d(c)).sum(axis=0))
     if kind == CONTRAST_ANIMAL:
         columns = [j for j in range(len(design.columns)) if not design.within[j]]
         return animal_design(design)[:, columns], c[..., columns]
-    if kind not in (CONTRAST_SLOPE, CONTRAST_SLOPES) or (kind == CONTRAST_SLOPES and c.ndim > 1):
+    if kind == CONTRAST_SLOPES and c.ndim > 1:
+        taking_part = _vector_animals(design, random, c)
+        return np.ones((int(taking_part.sum()), 1)), np.ones((1, 1))
+    if kind not in (CONTRAST_SLOPE, CONTRAST_SLOPES):
         return None
     slope_cols = (
         [random.slope_columns[slope]]
@@ -71,6 +76,15 @@ def _reduced_design(
     return np.ones((int(varies.sum()), 1)), np.ones(1)
 
 
+def _vector_animals(design: Design, random: RandomEffects, weights: np.ndarray) -> np.ndarray:
+    """(m,) the animals whose own runs estimate every row of an F-test on several slopes
+    (where every run has data)."""
+    from grouplevel.inference.vector_flips import estimable_animals
+
+    own = design.matrix[:, list(random.slope_columns)]
+    return estimable_animals(own, design.animal, own_effect_rows(random, weights))
+
+
 def _scheme(
     design: Design, random: RandomEffects, c: np.ndarray, inference: InferenceSettings
 ) -> dict:
@@ -85,15 +99,30 @@ def _scheme(
     if reduced is None:
         why = "the contrast mixes animal-level and within-animal columns"
         if f_test:
-            why = "its rows are several within-animal random slopes, or mix levels"
+            why = (
+                "its rows mix levels, or weight several random slopes that animal-level "
+                "columns moderate"
+            )
         return {"kind": "none", "why": why}
-    x_i, Z = partition_design(*reduced)
     rng = np.random.default_rng(inference.seed)
+    if f_test and contrast_kind(design, random, np.abs(c).sum(axis=0))[0] == CONTRAST_SLOPES:
+        from grouplevel.inference.vector_flips import plan_vector_flips
+
+        m = reduced[0].shape[0]  # the animals that estimate every row
+        return _scheme_entry(
+            plan_vector_flips(m, c.shape[0], inference.permutations, rng), inference
+        )
+    x_i, Z = partition_design(*reduced)
     if f_test and random.variance_groups is not None:
         # the G statistic: sign flips of whole animals only (as run does)
         x_i, Z = np.ones(x_i.shape[0]), Z[:, :0]
     sided = "positive" if f_test else inference.sided
     scheme = plan_permutations(x_i, Z, inference.permutations, rng, sided, f_test)
+    return _scheme_entry(scheme, inference)
+
+
+def _scheme_entry(scheme, inference: InferenceSettings) -> dict:
+    """A permutation scheme as described for check and summary.json."""
     return {
         "kind": scheme.kind,
         "exhaustive": scheme.exhaustive,

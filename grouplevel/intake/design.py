@@ -1138,6 +1138,15 @@ def slope_design(design: Design, random: RandomEffects, slope: int) -> tuple[np.
     return G, columns
 
 
+def own_effect_rows(random: RandomEffects, weights: np.ndarray) -> np.ndarray:
+    """The rows of a contrast or F-test on several random slopes, written on each
+    animal's own design ``[1, slope columns]`` (intercept weight 0): the animal's own
+    combinations of its effects that the rows test."""
+    weights = np.atleast_2d(np.asarray(weights, dtype=float))
+    own = weights[:, list(random.slope_columns)]
+    return np.column_stack([np.zeros(weights.shape[0]), own])
+
+
 def animal_design(design: Design) -> np.ndarray:
     """(m, p) one row of the design per animal (its first run)."""
     first = np.array([np.flatnonzero(design.animal == a)[0] for a in range(design.n_animals)])
@@ -1302,26 +1311,31 @@ def ftest_permutation_refusal(
     """Why ``[inference] permutations`` cannot test this F-test correctly, or None.
 
     Permuted: F-tests of animal-level columns (whole-animal permutations or sign flips,
-    Freedman–Lane), and of one random slope with its animal-level moderators (each
-    animal's own slope). Refused: F-tests whose rows are several random slopes (each
-    animal's own effects would form a vector, exchanged as a whole with its own
-    covariance, which the engine does not model), and those that mix levels.
+    Freedman–Lane), of one random slope with its animal-level moderators (each
+    animal's own slope), and of several random slopes without moderators (each
+    animal's vector of its own effects, flipped as a whole:
+    :mod:`grouplevel.inference.vector_flips`). Refused: F-tests whose rows mix levels,
+    weight within-animal columns without a random slope, or weight several random
+    slopes that animal-level columns moderate (the moderators would have to be removed
+    as nuisance from every animal's vector at once, which is not implemented).
     """
     union = np.abs(ftest.weights).sum(axis=0)
+    head = f"F-test '{ftest.name}': [inference] permutations = {permutations}"
+    kind, _ = ftest_kind(design, random, ftest.weights)
+    weighted = np.flatnonzero(union != 0)
+    if kind == CONTRAST_MIXED and design.within[weighted].all():
+        return (
+            f"{head}: its rows weight several within-animal random slopes that "
+            "animal-level columns moderate (an interaction such as stimulus × genotype); "
+            "flipping each animal's vector of own effects would first need those "
+            "moderators removed from every vector at once, which is not implemented. "
+            "Test it with permutations = 0, or test its rows as separate contrasts"
+        )
     refusal = permutation_refusal(
         design, random, f"F-test {ftest.name}", union, permutations, full_coverage
     )
     if refusal:
         return refusal.replace("contrast 'F-test ", "F-test '").replace("the contrast", "it")
-    kind, _ = ftest_kind(design, random, ftest.weights)
-    if kind == CONTRAST_SLOPES:
-        return (
-            f"F-test '{ftest.name}': [inference] permutations = {permutations}: its rows are "
-            "differences of several within-animal random slopes; a permutation F-test of "
-            "those would exchange each animal's vector of own effects, which is not "
-            "implemented. Test it parametrically (permutations = 0), or test the rows as "
-            "separate contrasts with permutations"
-        )
     return None
 
 

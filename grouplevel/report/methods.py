@@ -27,6 +27,7 @@ from dataclasses import dataclass
 from importlib import metadata
 from pathlib import Path
 
+from grouplevel.inference.vector_flips import VECTOR_FLIPS_KIND
 from grouplevel.outputs.folder import require_grouplevel_output
 from grouplevel.outputs.summary import present_files, read_summary
 
@@ -44,6 +45,8 @@ REFERENCES = {
     "NeuroImage 44:83–98.",
     "winkler": "Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014). "
     "Permutation inference for the general linear model. NeuroImage 92:381–397.",
+    "winkler2015": "Winkler AM, Webster MA, Vidaurre D, Nichols TE, Smith SM (2015). "
+    "Multi-level block permutation. NeuroImage 123:253–268.",
     "freedman": "Freedman D, Lane D (1983). A nonstochastic interpretation of reported "
     "significance levels. J Bus Econ Stat 1:292–298.",
     "eklund": "Eklund A, Nichols TE, Knutsson H (2016). Cluster failure: why fMRI "
@@ -130,6 +133,7 @@ def _cite(keys: list[str], key: str) -> str:
         "by": "Benjamini & Yekutieli 2001",
         "tfce": "Smith & Nichols 2009",
         "winkler": "Winkler et al. 2014",
+        "winkler2015": "Winkler et al. 2015",
         "freedman": "Freedman & Lane 1983",
         "eklund": "Eklund et al. 2016",
         "seghier": "Seghier 2008",
@@ -249,6 +253,23 @@ def _model_paragraph(summary: dict, model: dict, results: dict, cites: list[str]
             "F = (Lβ̂)ᵀ(L Cov(β̂) Lᵀ)⁻¹(Lβ̂)/q on q and the denominator degrees of freedom "
             "of the level the rows test, upper tail; FDR and permutation inference used "
             "the normal value with the same upper-tail p."
+        )
+    flipped = [
+        n
+        for n, f in ftests.items()
+        if str(((f.get("inference") or {}).get("permutation") or {}).get("kind", "")).startswith(
+            VECTOR_FLIPS_KIND
+        )
+    ]
+    if flipped:
+        names = ", ".join(f'"{n}"' for n in flipped)
+        model_sentences.append(
+            f"For {names}, whose rows are several within-animal effects, each animal's "
+            "vector of its own estimates of those effects was sign-flipped as a whole "
+            f"({_cite(cites, 'winkler2015')}), assuming that with no effect each vector is "
+            "symmetric about zero and independent of the other animals'; the permuted "
+            "statistic was the Wald F with the between-animal covariance estimated by "
+            "moments with no effect assumed, which no flip changes."
         )
     return " ".join(model_sentences)
 

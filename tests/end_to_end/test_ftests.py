@@ -194,31 +194,132 @@ def test_within_animal_f_test_matches_statsmodels_random_slopes(tmp_path):
         assert fm.f[v] == pytest.approx(float(np.squeeze(ref.f_test(L).fvalue)), rel=1e-3)
 
 
-def test_a_default_f_test_on_several_slopes_stays_parametric(tmp_path, capsys):
-    # three stimuli within every animal: the default F-test's rows are two random
-    # slopes, which the permutation engine does not exchange jointly. The default
-    # F-test must not make the study invalid (a warning, parametric only); the same
-    # rows declared as [[ftest]] are refused, naming the block.
-    rng = np.random.default_rng(2)
-    animals = [f"m{i}" for i in range(6) for _ in range(3)]
-    stim = ["a", "b", "c"] * 6
+def _stimulus_study(folder, toml_extra, shape=(2, 2, 1), formula="1 + stim", columns=None):
+    """6 animals, each with 2 runs of three stimuli (a, b, c) alternated; every animal
+    has its own b − a and c − a responses (a random slope each), small run noise."""
+    rng = np.random.default_rng(8)
+    m, per = 6, 6
+    stim = np.array([["a", "b", "c"][k % 3] for _ in range(m) for k in range(per)])
+    animal = np.repeat(np.arange(m), per)
+    own_b = rng.normal(0.0, 1.0, (m, *shape))[animal]
+    own_c = 0.5 * own_b + rng.normal(0.0, 1.0, (m, *shape))[animal]
+    effects = (
+        rng.normal(0.0, 1.0, (m, *shape))[animal]
+        + (stim == "b")[:, None, None, None] * own_b
+        + (stim == "c")[:, None, None, None] * own_c
+        + rng.normal(0.0, 0.05, (m * per, *shape))
+    )
+    toml = write_study(
+        folder,
+        effects,
+        [f"m{a}" for a in animal],
+        shape=shape,
+        columns={"stim": list(stim), **(columns or {})},
+        model=f'formula = "{formula}"',
+        toml_extra=toml_extra,
+    )
+    return toml, effects, stim, animal
+
+
+def test_check_prints_the_vector_flips_of_a_within_animal_f_test(tmp_path, capsys):
+    # three stimuli within every animal: the F-test's rows are two random slopes, and
+    # its permutations flip each animal's vector of both own effects; all 2⁶ flips are
+    # enumerated, the identity and the flip of every animal give F back: p ≥ 2/64
     extra = (
         '\n[inference]\npermutations = 100\n\n[[contrast]]\nname = "b-vs-c"\n'
         'weights = { "stim[T.b]" = 1, "stim[T.c]" = -1 }\n'
+        '\n[[ftest]]\nname = "stim-all"\ncontrasts = ["b-minus-a", "b-vs-c"]\n'
     )
-    toml = write_study(
-        tmp_path / "s",
-        rng.normal(size=18),
-        animals,
-        columns={"stim": stim},
-        model='formula = "1 + stim"',
-        toml_extra=extra,
+    toml, *_ = _stimulus_study(tmp_path / "s", extra)
+    assert main(["check", str(toml)]) == 0
+    out = capsys.readouterr().out
+    scheme = (
+        "64 exhaustive sign flips of each animal's vector of 2 own effects (2 of them give "
+        "the observed F back); smallest attainable p 0.0312"
+    )
+    assert out.count(scheme) == 2  # the default F-test and the declared one
+    assert "tested parametrically only" not in out
+
+
+def test_run_permutes_a_within_animal_f_test_as_hotelling_brute_force(tmp_path):
+    # reference: per voxel, each animal's own differences of condition means (what the
+    # GLS of its own runs gives with equal run variances), Hotelling's T² recomputed for
+    # all 2⁶ flips with numpy (common practice; Hotelling 1931, Ann Math Stat 2:360),
+    # turned into the engine's F = m·r/q with r = T²/(m − 1 + T²) (equal sampling
+    # covariances, see grouplevel/inference/vector_flips.py) and into z on (2, 5) df with
+    # scipy.stats; the FWE p of a voxel is the share of flips whose maximum z over the
+    # voxels reaches its observed z.
+    from scipy import stats
+
+    # one [[contrast]] keeps the run short (the default F-test stays)
+    extra = (
+        '\n[inference]\npermutations = 100\n\n[[contrast]]\nname = "b-minus-a"\n'
+        'weights = { "stim[T.b]" = 1 }\n'
+    )
+    toml, effects, stim, animal = _stimulus_study(tmp_path / "s", extra)
+    out = tmp_path / "out"
+    assert main(["run", str(toml), "--out", str(out), "--quiet"]) == 0
+    folder = out / "stim-any-difference"
+    p_fwe = np.asarray(nib.load(folder / "p_fwe_voxel.nii.gz").dataobj)
+    for stem in ("f", "z", "p", "q", "p_fwe_tfce", "p_fwe_cluster", "tfce", "null_max"):
+        assert any(x.name.startswith(stem + ".") for x in folder.iterdir()), stem
+    m = 6
+    bits = (np.arange(2**m)[:, None] >> np.arange(m)[None, :]) & 1
+    signs = 1 - 2 * bits
+    voxels = [tuple(v) for v in np.argwhere(np.ones(effects.shape[1:], bool))]
+    z = np.empty((signs.shape[0], len(voxels)))
+    for j, idx in enumerate(voxels):
+        y = effects[(slice(None), *idx)]
+        means = np.array([[y[(animal == a) & (stim == c)].mean() for c in "abc"] for a in range(m)])
+        d = means[:, 1:] - means[:, :1]
+        for k, s in enumerate(signs):
+            e = s[:, None] * d
+            t2 = m * e.mean(0) @ np.linalg.solve(np.cov(e, rowvar=False), e.mean(0))
+            f = m * (t2 / (m - 1 + t2)) / 2
+            z[k, j] = stats.norm.isf(stats.f.sf(f, 2, m - 1))
+    for j, idx in enumerate(voxels):
+        p_ref = np.mean(z.max(axis=1) >= z[0, j] - 1e-6)
+        # maps are float32: abs 1e-6
+        assert p_fwe[idx] == pytest.approx(p_ref, abs=1e-6), idx
+    summary = json.loads((out / "summary.json").read_text())
+    perm = summary["ftests"]["stim-any-difference"]["inference"]["permutation"]
+    assert perm["kind"] == "sign flips of each animal's vector of 2 own effects"
+    assert perm["permutations"] == 64 and perm["equivalent_to_identity"] == 2
+    assert perm["smallest_attainable_p"] == pytest.approx(2 / 64, abs=1e-12)
+    cautions = " ".join(summary["ftests"]["stim-any-difference"]["cautions"])
+    assert "as likely as its negative" in cautions
+    methods = (out / "methods.md").read_text()
+    assert "sign-flipped as a whole (Winkler et al. 2015)" in methods
+    assert "Multi-level block permutation. NeuroImage 123:253" in methods
+
+
+def test_a_within_animal_f_test_of_moderated_slopes_is_refused_with_permutations(tmp_path, capsys):
+    # stimulus × genotype: the stimulus slopes differ between genotypes, so the animals'
+    # vectors would need the genotype removed first (not implemented). A declared
+    # F-test of both stimulus differences is refused naming the key and the block; the
+    # default F-test stays parametric with a warning.
+    extra = (
+        '\n[inference]\npermutations = 100\n\n[[ftest]]\nname = "stim-both"\n'
+        'contrasts = ["b-minus-a", "c-minus-a"]\n\n[[contrast]]\nname = "b-minus-a"\n'
+        'weights = { "stim[T.b]" = 1 }\n\n[[contrast]]\nname = "c-minus-a"\n'
+        'weights = { "stim[T.c]" = 1 }\n'
+    )
+    genotype = ["wt"] * 18 + ["ko"] * 18
+    toml, *_ = _stimulus_study(
+        tmp_path / "s", extra, formula="1 + stim * genotype", columns={"genotype": genotype}
+    )
+    assert main(["check", str(toml)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and "Traceback" not in err
+    assert "F-test 'stim-both': [inference] permutations = 100: its rows weight several" in err
+    assert "animal-level columns moderate" in err
+    # without the block, the default F-test of the same rows stays parametric (a warning)
+    text = toml.read_text()
+    toml.write_text(
+        text.replace('[[ftest]]\nname = "stim-both"\n', "").replace(
+            'contrasts = ["b-minus-a", "c-minus-a"]\n', "", 1
+        )
     )
     assert main(["check", str(toml)]) == 0
     out = capsys.readouterr().out
     assert "'stim-any-difference' (a default F-test) is tested parametrically only" in out
-    with toml.open("a") as f:
-        f.write('\n[[ftest]]\nname = "stim-all"\ncontrasts = ["b-minus-a", "c-minus-a"]\n')
-    assert main(["check", str(toml)]) == 2
-    err = capsys.readouterr().err
-    assert "F-test 'stim-all': [inference] permutations = 100: its rows are differences" in err
