@@ -14,7 +14,7 @@ import numpy as np
 from grouplevel.compiled import lazy_njit
 
 
-@lazy_njit(cache=True)
+@lazy_njit(cache=True, nogil=True)
 def _find(parent: np.ndarray, node: int) -> int:
     """Root of ``node`` in a union-find forest, with full path compression."""
     root = node
@@ -27,35 +27,98 @@ def _find(parent: np.ndarray, node: int) -> int:
     return root
 
 
-@lazy_njit(cache=True)
-def tfce_sweep(
-    order: np.ndarray,
-    height_integrals: np.ndarray,
-    shape: np.ndarray,
-    offsets: np.ndarray,
-    extent_weights: np.ndarray,
-    out: np.ndarray,
-    sign: float,
-) -> None:
-    """Exact TFCE of one sign, written into ``out`` (flat grid) at the voxels of ``order``.
+#: Bits of the key sorted in each pass of :func:`sort_descending` (2048 buckets: the
+#: counts stay in the fastest cache).
+RADIX_BITS = 11
+
+
+@lazy_njit(cache=True, nogil=True)
+def sort_descending(values, candidates, n, order, keys, spare_order, spare_keys, counts):
+    """Put ``candidates[:n]`` into ``order[:n]`` so that ``values`` descends along it.
+
+    ``values`` must be positive at the candidates. A positive float64 sorts like its bit
+    pattern read as an unsigned integer, so the bits (complemented, for a descending
+    order) are sorted by least-significant-digit radix sort, ``RADIX_BITS`` per pass;
+    a pass whose digit is the same for every key is skipped. Stable, O(n) per pass.
+    ``keys``, ``spare_order`` and ``spare_keys`` are workspaces of at least ``n``
+    entries, ``counts`` of ``2**RADIX_BITS + 1``.
+
+    References
+    ----------
+    Knuth DE (1998). The Art of Computer Programming, Vol. 3: Sorting and Searching,
+    2nd ed., section 5.2.5 (radix sorting). Addison-Wesley.
+    """
+    bits = values.view(np.uint64)
+    for i in range(n):
+        c = candidates[i]
+        order[i] = c
+        keys[i] = ~bits[c]
+    n_buckets = 1 << RADIX_BITS
+    digit_mask = np.uint64(n_buckets - 1)
+    src_o, src_k, dst_o, dst_k = order, keys, spare_order, spare_keys
+    shift = 0
+    while shift < 64:
+        sh = np.uint64(shift)
+        for d in range(n_buckets + 1):
+            counts[d] = 0
+        for i in range(n):
+            counts[((src_k[i] >> sh) & digit_mask) + 1] += 1
+        if n == 0 or counts[((src_k[0] >> sh) & digit_mask) + 1] == n:
+            shift += RADIX_BITS
+            continue  # one digit for all keys: this pass would not move anything
+        for d in range(n_buckets):
+            counts[d + 1] += counts[d]
+        for i in range(n):
+            d = (src_k[i] >> sh) & digit_mask
+            j = counts[d]
+            counts[d] = j + 1
+            dst_o[j] = src_o[i]
+            dst_k[j] = src_k[i]
+        src_o, src_k, dst_o, dst_k = dst_o, dst_k, src_o, src_k
+        shift += RADIX_BITS
+    if src_o is not order:
+        for i in range(n):
+            order[i] = src_o[i]
+
+
+@lazy_njit(cache=True, nogil=True)
+def _height_integral(h, h1):
+    """``F(h) = h^(H+1) / (H+1)`` with ``h1 = H + 1`` (h·h·h / 3 for the usual H = 2)."""
+    if h1 == 3.0:
+        return h * h * h / 3.0
+    return h**h1 / h1
+
+
+@lazy_njit(cache=True, nogil=True)
+def _sweep(
+    order, n, values, h1, grid_of, shape, offsets, extent_weights,
+    position, parent, size, active, link, own, level,
+):  # fmt: skip
+    """Exact TFCE of the ``n`` voxels of ``order``; entry i's score is left in ``own[i]``.
 
     Parameters
     ----------
     order
-        Flat grid indices of the voxels to enter, sorted so that ``heights`` descends.
-    height_integrals
-        ``F(h) = h^(H+1) / (H+1)`` of their (positive) statistic values ``h``, descending.
+        The voxels to enter (indices into ``values`` and ``grid_of``), sorted so that
+        ``values`` descends.
+    values
+        Positive statistic values (the heights ``h``).
+    h1
+        ``H + 1``: heights enter through ``F(h) = h^(H+1) / (H+1)``.
+    grid_of
+        Flat C-order grid index of each voxel of ``values``.
     shape
         ``(nx, ny, nz)`` of the grid.
     offsets
         ``(K, 3)`` neighbour offsets (the full neighbourhood, without the centre).
     extent_weights
-        ``(len(order) + 1,)``: entry ``k`` is ``(k * voxel volume)^E``, the weight of a
-        component of ``k`` voxels (extent in mm³).
-    out
-        Flat float64 grid; ``out[order[i]]`` is set to ``sign * TFCE``.
-    sign
-        +1.0 or -1.0.
+        Entry ``k`` is ``(k * voxel volume)^E``, the weight of a component of ``k``
+        voxels (extent in mm³); at least ``n + 1`` entries.
+    position
+        Workspace over the grid padded by one voxel on every side: -1 everywhere on entry,
+        and left so on return.
+    parent, size, active, link, own, level
+        Workspaces of at least ``n`` entries (nothing needs to be set on entry).
 
     Notes
     -----
@@ -77,33 +140,27 @@ def tfce_sweep(
     links, computed in one backward pass because every link points to a later entry.
     All terms are non-negative, so the result has no cancellation error.
     """
-    n = order.size
-    nx, ny, nz = shape[0], shape[1], shape[2]
+    ny, nz = shape[1], shape[2]
     plane = ny * nz
     # Positions live on the grid padded by one voxel on every side, so a neighbour is
     # one fixed flat offset away and never outside: no bounds checks in the inner loop.
     prow = nz + 2
     pplane = (ny + 2) * prow
-    position = np.full((nx + 2) * pplane, -1, dtype=np.int64)
     n_offsets = offsets.shape[0]
     flat_offsets = np.empty(n_offsets, dtype=np.int64)
     for k in range(n_offsets):
         flat_offsets[k] = offsets[k, 0] * pplane + offsets[k, 1] * prow + offsets[k, 2]
-    parent = np.empty(n, dtype=np.int64)
-    size = np.empty(n, dtype=np.int64)
-    active = np.empty(n, dtype=np.int64)
-    link = np.full(n, -1, dtype=np.int64)
-    own = np.zeros(n, dtype=np.float64)
-    level = np.empty(n, dtype=np.float64)
 
     for i in range(n):
-        v = order[i]
-        f_h = height_integrals[i]
+        v = grid_of[order[i]]
+        f_h = _height_integral(values[order[i]], h1)
         pv = (v // plane + 1) * pplane + ((v // nz) % ny + 1) * prow + v % nz + 1
         position[pv] = i
         parent[i] = i
         size[i] = 1
         active[i] = i
+        link[i] = -1
+        own[i] = 0.0
         level[i] = f_h
         a = i  # root of the new voxel's component, kept current through its merges
         for k in range(n_offsets):
@@ -128,14 +185,62 @@ def tfce_sweep(
         if parent[r] == r:
             q = active[r]
             own[q] += extent_weights[size[r]] * level[q]
-    total = own  # reused in place: entries are finished from the last one backwards
+    # totals, from the last entry backwards: every link points to a later entry
     for i in range(n - 1, -1, -1):
         if link[i] >= 0:
-            total[i] += total[link[i]]
-        out[order[i]] = sign * total[i]
+            own[i] += own[link[i]]
+    for i in range(n):  # leave the workspace as it was found
+        v = grid_of[order[i]]
+        position[(v // plane + 1) * pplane + ((v // nz) % ny + 1) * prow + v % nz + 1] = -1
 
 
-@lazy_njit(cache=True)
+@lazy_njit(cache=True, nogil=True)
+def _signed_candidates(stat, sign, values, candidates):
+    """Heights ``sign * stat`` into ``values``; indices where they are > 0 into
+    ``candidates``; returns how many (NaN never counts)."""
+    n = 0
+    for v in range(stat.size):
+        h = sign * stat[v]
+        values[v] = h
+        if h > 0.0:
+            candidates[n] = v
+            n += 1
+    return n
+
+
+@lazy_njit(cache=True, nogil=True)
+def tfce_signed(
+    stat, grid_of, shape, offsets, extent_weights, h1, sign, out,
+    ws_values, ws_candidates, ws_order, ws_keys, ws_spare_order, ws_spare_keys, ws_counts,
+    position, parent, size, active, link, own, level,
+):  # fmt: skip
+    """TFCE of ``sign * stat`` (voxels where it is > 0) and the largest score.
+
+    ``stat`` holds the statistic of the voxels whose flat grid indices are ``grid_of``.
+    When ``out`` has the size of ``stat``, ``out[v]`` is set to ``sign * TFCE`` at those
+    voxels (others are left alone); pass an empty ``out`` for the maximum only. The
+    ``ws_*`` and the union-find arrays are workspaces of ``stat``'s size (``ws_counts``:
+    ``2**RADIX_BITS + 1``; ``position``: the padded grid, all -1).
+    """
+    n = _signed_candidates(stat, sign, ws_values, ws_candidates)
+    sort_descending(
+        ws_values, ws_candidates, n, ws_order, ws_keys, ws_spare_order, ws_spare_keys, ws_counts
+    )
+    _sweep(
+        ws_order, n, ws_values, h1, grid_of, shape, offsets, extent_weights,
+        position, parent, size, active, link, own, level,
+    )  # fmt: skip
+    largest = 0.0
+    write = out.size == stat.size
+    for i in range(n):
+        if own[i] > largest:
+            largest = own[i]
+        if write:
+            out[ws_order[i]] = sign * own[i]
+    return largest
+
+
+@lazy_njit(cache=True, nogil=True)
 def label_components(signs: np.ndarray, shape: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     """Connected components of the nonzero voxels of ``signs``, one sign at a time.
 
@@ -220,7 +325,7 @@ def label_components(signs: np.ndarray, shape: np.ndarray, offsets: np.ndarray) 
     return labels
 
 
-@lazy_njit(cache=True)
+@lazy_njit(cache=True, nogil=True)
 def max_extent_and_mass(
     signs: np.ndarray, excess: np.ndarray, shape: np.ndarray, offsets: np.ndarray
 ) -> tuple[int, float]:

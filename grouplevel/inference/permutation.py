@@ -74,6 +74,7 @@ from grouplevel.errors import ArgumentError
 from grouplevel.inference import _refit_kernel
 from grouplevel.inference.clusters import Clusters, find_clusters, max_cluster_extent_and_mass
 from grouplevel.inference.significance import check_sided
+from grouplevel.inference.tfce import TfceWorkspace
 from grouplevel.inference.tfce import tfce as tfce_map
 from grouplevel.machine import available_cores
 from grouplevel.model.animals import VARIANCE_FLOOR, animal_means
@@ -790,15 +791,36 @@ class _PermutationWork:
             sided=self.sided,
         )
 
-    def maxima(self, k: int) -> tuple[float, int, float, float]:
-        """Maximum statistic, cluster extent, cluster mass and TFCE of permutation k."""
+    def tfce_workspace(self) -> TfceWorkspace | None:
+        """TFCE buffers for this mask and these weights (one per thread), or None."""
+        if not self.use_tfce:
+            return None
+        return TfceWorkspace(
+            self.mask,
+            connectivity=self.connectivity,
+            E=self.tfce_E,
+            H=self.tfce_H,
+            voxel_volume_mm3=self.voxel_volume_mm3,
+        )
+
+    def maxima(
+        self, k: int, scratch: TfceWorkspace | None = None
+    ) -> tuple[float, int, float, float]:
+        """Maximum statistic, cluster extent, cluster mass and TFCE of permutation k.
+
+        ``scratch`` (from :meth:`tfce_workspace`) is reused by the caller's later
+        permutations; without it one is made for this call.
+        """
         z = self.statistic(k)
         vol = self.volume(z)
         max_stat = float(self.oriented(z).max())
         extent, mass = max_cluster_extent_and_mass(
             vol, self.mask, self.threshold, connectivity=self.connectivity, sided=self.sided
         )
-        max_tfce = float(np.abs(self.tfce_of(vol)).max()) if self.use_tfce else 0.0
+        max_tfce = 0.0
+        if self.use_tfce:
+            scratch = scratch if scratch is not None else self.tfce_workspace()
+            max_tfce = scratch.scores(z, self.sided)
         return max_stat, int(extent), float(mass), max_tfce
 
 
@@ -976,8 +998,9 @@ class _GroupVarianceWork(_PermutationWork):
 def maxima_rows(work: _PermutationWork, ks: np.ndarray) -> np.ndarray:
     """(len(ks), 4) null maxima of the permutations ``ks``: one task of a distributed run."""
     out = np.zeros((len(ks), 4))
+    scratch = work.tfce_workspace()
     for i, k in enumerate(ks):
-        out[i] = work.maxima(int(k))
+        out[i] = work.maxima(int(k), scratch)
     return out
 
 
@@ -1158,12 +1181,17 @@ def run_scheme(
         pool = ThreadPoolExecutor(max_workers=n_threads) if n_threads > 1 else None
         try:
             for start in range(0, n, batch):
-                ks = range(start, min(n, start + batch))
-                rows = pool.map(work.maxima, ks) if pool is not None else map(work.maxima, ks)
-                for k, row in zip(ks, rows, strict=True):
-                    null[k] = row
+                ks = np.arange(start, min(n, start + batch))
+                # one share per thread, each with its own TFCE buffers
+                shares = np.array_split(ks, min(n_threads, ks.size))
+                rows = (
+                    pool.map(maxima_rows, [work] * len(shares), shares)
+                    if pool is not None
+                    else map(maxima_rows, [work], shares)
+                )
+                null[ks] = np.concatenate(list(rows))
                 if progress is not None:
-                    progress(len(ks), n)
+                    progress(ks.size, n)
         finally:
             if pool is not None:
                 pool.shutdown()

@@ -15,7 +15,7 @@ union-find forest (path compression, union by size). Each component keeps its ex
 a lazily updated integral, brought down from the height it was last touched only when it
 changes; a component that is absorbed hangs below the voxel that absorbed it, and a
 voxel's TFCE is the sum of the integrals along that chain, so every score is a sum of
-non-negative terms (see :func:`grouplevel.inference._tfce_kernel.tfce_sweep`).
+non-negative terms (see :func:`grouplevel.inference._tfce_kernel._sweep`).
 This is the component tree of the thresholded map (Salembier et al. 1998; Najman &
 Couprie 2006), traversed once. The cost is O(V log V) for sorting V voxels plus nearly
 linear time for the merges.
@@ -111,32 +111,117 @@ def tfce(
     """
     name = "tfce"
     _check_sided(sided, name)
-    offsets = neighbour_offsets(connectivity)
-    if not (np.isfinite(E) and E >= 0.0 and np.isfinite(H) and H >= 0.0):
-        raise ArgumentError(f"{name}: the weights E and H must be >= 0; got E = {E}, H = {H}.")
-    if not (np.isfinite(voxel_volume_mm3) and voxel_volume_mm3 > 0):
-        raise ArgumentError(f"{name}: voxel volume must be > 0 mm³; got {voxel_volume_mm3}.")
     input_shape = np.shape(stat)
     stat3, mask3 = _as_grid(stat, mask, name)
-    flat = stat3.ravel()
     inside = mask3.ravel()
-    if np.isinf(flat[inside]).any():
+    values = stat3.ravel()[inside]
+    if np.isinf(values).any():
         raise ArgumentError(
             f"{name}: the statistic map has infinite values inside the mask; TFCE needs "
             "finite values (replace them, or leave those voxels out of the mask)."
         )
-    shape = np.asarray(stat3.shape, dtype=np.int64)
-    out = np.zeros(flat.size, dtype=np.float64)
-    for sign in (1.0, -1.0):
-        if (sign > 0 and sided == "negative") or (sign < 0 and sided == "positive"):
-            continue
-        heights = sign * flat
-        candidates = np.flatnonzero(inside & (heights > 0.0))  # NaN compares False
-        # Any sort order of tied values gives the same integral (ties merge at one
-        # height and add nothing); quicksort is the fastest deterministic choice.
-        order = candidates[np.argsort(-heights[candidates])]
-        h1 = float(H) + 1.0
-        height_integrals = heights[order] ** h1 / h1
-        extent_weights = (np.arange(order.size + 1) * float(voxel_volume_mm3)) ** float(E)
-        _tfce_kernel.tfce_sweep(order, height_integrals, shape, offsets, extent_weights, out, sign)
+    scratch = TfceWorkspace(
+        mask3, connectivity=connectivity, E=E, H=H, voxel_volume_mm3=voxel_volume_mm3
+    )
+    scores = np.zeros(values.size)
+    scratch.scores(values, sided, scores)
+    out = np.zeros(inside.size)
+    out[inside] = scores
     return out.reshape(input_shape)
+
+
+class TfceWorkspace:
+    """TFCE of maps on one mask, with its buffers kept from one map to the next.
+
+    Permutations score thousands of maps on the same mask: the sorting and union-find
+    buffers, the neighbour offsets and the extent weights are made once here. The
+    buffers are written by every call, so a workspace serves one thread at a time.
+
+    Parameters
+    ----------
+    mask
+        3-D boolean mask; maps are given as the vector of its voxels (C order).
+    connectivity, E, H, voxel_volume_mm3
+        As for :func:`tfce`.
+
+    Raises
+    ------
+    ArgumentError
+        For an unknown connectivity, negative weights or a non-positive voxel volume.
+    """
+
+    def __init__(
+        self,
+        mask: np.ndarray,
+        *,
+        connectivity: int = DEFAULT_CONNECTIVITY,
+        E: float = DEFAULT_TFCE_E,
+        H: float = DEFAULT_TFCE_H,
+        voxel_volume_mm3: float = 1.0,
+    ) -> None:
+        name = "tfce"
+        self.offsets = neighbour_offsets(connectivity)
+        if not (np.isfinite(E) and E >= 0.0 and np.isfinite(H) and H >= 0.0):
+            raise ArgumentError(f"{name}: the weights E and H must be >= 0; got E = {E}, H = {H}.")
+        if not (np.isfinite(voxel_volume_mm3) and voxel_volume_mm3 > 0):
+            raise ArgumentError(f"{name}: voxel volume must be > 0 mm³; got {voxel_volume_mm3}.")
+        mask = np.asarray(mask, dtype=bool)
+        self.shape = np.asarray(mask.shape, dtype=np.int64)
+        self.grid_of = np.flatnonzero(mask.ravel()).astype(np.int64)
+        n = self.grid_of.size
+        self.h1 = float(H) + 1.0
+        self.extent_weights = (np.arange(n + 1) * float(voxel_volume_mm3)) ** float(E)
+        padded = int(np.prod(self.shape + 2))
+        self._buffers = (
+            np.empty(n),  # heights of one sign
+            np.empty(n, dtype=np.int64),  # candidates
+            np.empty(n, dtype=np.int64),  # order
+            np.empty(n, dtype=np.uint64),  # sort keys
+            np.empty(n, dtype=np.int64),  # spare order
+            np.empty(n, dtype=np.uint64),  # spare keys
+            np.empty((1 << _tfce_kernel.RADIX_BITS) + 1, dtype=np.int64),  # counts
+            np.full(padded, -1, dtype=np.int32),  # position on the padded grid
+            np.empty(n, dtype=np.int32),  # parent
+            np.empty(n, dtype=np.int32),  # size
+            np.empty(n, dtype=np.int32),  # active
+            np.empty(n, dtype=np.int32),  # link
+            np.empty(n),  # own
+            np.empty(n),  # level
+        )
+        self._no_output = np.empty(0)
+
+    def scores(self, values: np.ndarray, sided: str, out: np.ndarray | None = None) -> float:
+        """Largest |TFCE| of one map; its TFCE into ``out`` when given.
+
+        Parameters
+        ----------
+        values
+            The statistic at the mask's voxels (float64, finite or NaN; NaN neither
+            scores nor connects).
+        sided
+            As for :func:`tfce`.
+        out
+            Optional float64 vector of the same size, set to the signed TFCE where a
+            score applies (other entries are left alone).
+        """
+        values = np.ascontiguousarray(values, dtype=np.float64)
+        target = self._no_output if out is None else out
+        largest = 0.0
+        for sign in (1.0, -1.0):
+            if (sign > 0 and sided == "negative") or (sign < 0 and sided == "positive"):
+                continue
+            largest = max(
+                largest,
+                _tfce_kernel.tfce_signed(
+                    values,
+                    self.grid_of,
+                    self.shape,
+                    self.offsets,
+                    self.extent_weights,
+                    self.h1,
+                    sign,
+                    target,
+                    *self._buffers,
+                ),  # fmt: skip
+            )
+        return largest

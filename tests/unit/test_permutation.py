@@ -451,3 +451,59 @@ def test_pipeline_warns_when_smallest_p_exceeds_alpha(tmp_path: Path):
     assert "16 sign flips" in warned[0] and "0.125" in warned[0]
     text = json.dumps(summary)
     assert '"smallest_attainable_p": 0.125' in text
+
+
+def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
+    """The refit of many voxels side by side (intercept only) gives, bit for bit, the
+    t of the one-voxel path, including voxels with missing animals and a last block that
+    is not full. Outside reference: the REML optimum of τ² found by scipy's bounded
+    scalar minimiser on the profiled REML log-likelihood of the random-effects model
+    (Viechtbauer 2005, J Educ Behav Stat 30:261), and t = μ̂ / SE(μ̂) at it."""
+    import numba
+    from scipy.optimize import minimize_scalar
+
+    from grouplevel.inference import _refit_kernel as kernel
+
+    rng = np.random.default_rng(11)
+    V, m = 2 * kernel.LANES + 13, 9
+    mean = rng.normal(0.2, 1.0, (V, m)) + rng.normal(0, 0.7, (V, 1))
+    prec = 1.0 / rng.uniform(0.1, 2.0, (V, m))
+    prec[rng.random((V, m)) < 0.1] = 0.0  # animals without data at some voxels
+    prec[5, :-1] = 0.0  # one animal left: no fit (NaN)
+    mean[prec == 0.0] = np.nan
+    sign = rng.choice([-1.0, 1.0], m)
+    order = rng.permutation(m)
+    fitted, X = np.zeros((V, m)), np.ones((m, 1))
+    tau2_start = rng.uniform(0.0, 1.0, V)
+    got = np.empty(V)
+    kernel.refit_t_permuted(fitted, mean, prec, sign, order, X, tau2_start, got, 50, 1e-8)
+
+    @numba.njit
+    def one_by_one(out):
+        y, pr = np.empty(m), np.empty(m)
+        for v in range(V):
+            for a in range(m):
+                y[a] = sign[a] * mean[v, order[a]]
+                pr[a] = prec[v, order[a]]
+            out[v] = kernel._refit_mean_voxel(y, pr, X, tau2_start[v], 50, 1e-8)[0]
+
+    want = np.empty(V)
+    one_by_one(want)
+    np.testing.assert_array_equal(got, want)
+    assert np.isnan(got[5]) and np.isfinite(np.delete(got, 5)).all()
+
+    for v in (0, 17, V - 1):
+        have = prec[v, order] > 0
+        y, var = (sign * mean[v, order])[have], 1.0 / prec[v, order][have]
+
+        def neg_reml(t2, y=y, var=var):
+            w = 1.0 / (t2 + var)
+            mu = (w * y).sum() / w.sum()
+            return 0.5 * (np.log(t2 + var).sum() + np.log(w.sum()) + (w * (y - mu) ** 2).sum())
+
+        t2 = minimize_scalar(
+            neg_reml, bounds=(0.0, 50.0), method="bounded", options={"xatol": 1e-10}
+        ).x
+        w = 1.0 / (t2 + var)
+        t_ref = (w * y).sum() / w.sum() * np.sqrt(w.sum())
+        assert got[v] == pytest.approx(t_ref, rel=1e-5)
