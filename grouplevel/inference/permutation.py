@@ -727,53 +727,14 @@ class PermutationBackend(Protocol):
         """``[func(shared, b) for b in batches]`` in order; ``progress(len(b))`` per batch."""
 
 
-@dataclass(frozen=True, eq=False)
-class _PermutationWork:
-    """Everything one permutation needs: the arrays shared by all permutations and the
-    plan. Picklable, so a distributed backend can send it to each worker once."""
+class MapMaxima:
+    """What every rearrangement of a permutation engine ends with: the statistic's
+    largest value, largest cluster extent and mass, and largest TFCE.
 
-    fitted: np.ndarray  # (V, m) nuisance fit at the unpermuted τ̂²
-    residual: np.ndarray  # (V, m) what is flipped / permuted
-    precision: np.ndarray  # (V, m)
-    X_perm: np.ndarray  # (m, p) [x_interest, nuisance]
-    tau2_start: np.ndarray  # (V,)
-    signs: np.ndarray  # (n, m) float
-    orders: np.ndarray  # (n, m) int64
-    tables: np.ndarray  # t → z tables, one row per df value
-    df_row: np.ndarray  # (V,) table row of each voxel
-    du: float
-    mask: np.ndarray  # 3-D bool
-    sided: str
-    threshold: float  # cluster-forming z
-    connectivity: int
-    voxel_volume_mm3: float
-    use_tfce: bool
-    tfce_E: float
-    tfce_H: float
-
-    def statistic(self, k: int) -> np.ndarray:
-        """z map (in-mask) of permutation k; k = 0 is the unpermuted data."""
-        z = np.empty(self.fitted.shape[0])
-        _refit_kernel.refit_z_permuted(
-            self.fitted,
-            self.residual,
-            self.precision,
-            self.signs[k],
-            self.orders[k],
-            self.X_perm,
-            self.tau2_start,
-            self.tables,
-            self.df_row,
-            self.du,
-            z,
-            _refit_kernel.REFIT_MAX_ITER,
-            _refit_kernel.REFIT_TOL,
-        )
-        return z
-
-    def oriented(self, z: np.ndarray) -> np.ndarray:
-        """The statistic as it is ranked for the maximum (larger: more extreme)."""
-        return _oriented(z, self.sided)
+    A subclass provides ``statistic(k)`` (the in-mask map of rearrangement k),
+    ``oriented(z)`` and the fields ``mask``, ``sided``, ``threshold``, ``connectivity``,
+    ``voxel_volume_mm3``, ``use_tfce``, ``tfce_E`` and ``tfce_H``.
+    """
 
     def volume(self, values: np.ndarray) -> np.ndarray:
         out = np.zeros(self.mask.shape)
@@ -822,6 +783,55 @@ class _PermutationWork:
             scratch = scratch if scratch is not None else self.tfce_workspace()
             max_tfce = scratch.scores(z, self.sided)
         return max_stat, int(extent), float(mass), max_tfce
+
+
+@dataclass(frozen=True, eq=False)
+class _PermutationWork(MapMaxima):
+    """Everything one permutation needs: the arrays shared by all permutations and the
+    plan. Picklable, so a distributed backend can send it to each worker once."""
+
+    fitted: np.ndarray  # (V, m) nuisance fit at the unpermuted τ̂²
+    residual: np.ndarray  # (V, m) what is flipped / permuted
+    precision: np.ndarray  # (V, m)
+    X_perm: np.ndarray  # (m, p) [x_interest, nuisance]
+    tau2_start: np.ndarray  # (V,)
+    signs: np.ndarray  # (n, m) float
+    orders: np.ndarray  # (n, m) int64
+    tables: np.ndarray  # t → z tables, one row per df value
+    df_row: np.ndarray  # (V,) table row of each voxel
+    du: float
+    mask: np.ndarray  # 3-D bool
+    sided: str
+    threshold: float  # cluster-forming z
+    connectivity: int
+    voxel_volume_mm3: float
+    use_tfce: bool
+    tfce_E: float
+    tfce_H: float
+
+    def statistic(self, k: int) -> np.ndarray:
+        """z map (in-mask) of permutation k; k = 0 is the unpermuted data."""
+        z = np.empty(self.fitted.shape[0])
+        _refit_kernel.refit_z_permuted(
+            self.fitted,
+            self.residual,
+            self.precision,
+            self.signs[k],
+            self.orders[k],
+            self.X_perm,
+            self.tau2_start,
+            self.tables,
+            self.df_row,
+            self.du,
+            z,
+            _refit_kernel.REFIT_MAX_ITER,
+            _refit_kernel.REFIT_TOL,
+        )
+        return z
+
+    def oriented(self, z: np.ndarray) -> np.ndarray:
+        """The statistic as it is ranked for the maximum (larger: more extreme)."""
+        return _oriented(z, self.sided)
 
 
 # Smallest residual variance of a variance group, relative to the voxel's largest one,

@@ -61,10 +61,10 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from grouplevel.errors import ArgumentError
-from grouplevel.inference.clusters import max_cluster_extent_and_mass
 from grouplevel.inference.permutation import (
     _EFFECT_CHUNK_VOXELS,
     _ESTIMABLE_TOL,
+    MapMaxima,
     PermutationBackend,
     PermutationResult,
     PermutationScheme,
@@ -73,7 +73,6 @@ from grouplevel.inference.permutation import (
     plan_permutations,
     run_scheme,
 )
-from grouplevel.inference.tfce import tfce as tfce_map
 from grouplevel.model.ftest import RANK_TOLERANCE, f_to_z
 
 # The start of the ``kind`` of these schemes (summary.json; "... of 2 own effects").
@@ -308,7 +307,7 @@ def vector_f(data: AnimalEffectVectors, signs: np.ndarray, groups=None) -> np.nd
 
 
 @dataclass(frozen=True, eq=False)
-class _VectorFlipWork:
+class _VectorFlipWork(MapMaxima):
     """Everything one rearrangement needs (picklable for a distributed backend)."""
 
     scaled: np.ndarray  # (V, m, q) C⁻¹ W_a d_a
@@ -336,32 +335,6 @@ class _VectorFlipWork:
 
     def oriented(self, z: np.ndarray) -> np.ndarray:
         return z  # z rises with F over its whole range
-
-    def volume(self, values: np.ndarray) -> np.ndarray:
-        out = np.zeros(self.mask.shape)
-        out[self.mask] = values
-        return out
-
-    def tfce_of(self, vol: np.ndarray) -> np.ndarray:
-        return tfce_map(
-            vol,
-            self.mask,
-            connectivity=self.connectivity,
-            E=self.tfce_E,
-            H=self.tfce_H,
-            voxel_volume_mm3=self.voxel_volume_mm3,
-            sided=self.sided,
-        )
-
-    def maxima(self, k: int) -> tuple[float, int, float, float]:
-        """Maximum z, cluster extent, cluster mass and TFCE of rearrangement k."""
-        z = self.statistic(k)
-        vol = self.volume(z)
-        extent, mass = max_cluster_extent_and_mass(
-            vol, self.mask, self.threshold, connectivity=self.connectivity, sided=self.sided
-        )
-        max_tfce = float(np.abs(self.tfce_of(vol)).max()) if self.use_tfce else 0.0
-        return float(z.max()), int(extent), float(mass), max_tfce
 
 
 def plan_vector_flips(
