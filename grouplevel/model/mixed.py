@@ -77,6 +77,7 @@ import numpy as np
 from grouplevel.compiled import lazy_njit
 from grouplevel.machine import available_cores as _available_cores
 from grouplevel.memory import CHUNK_SHARE, GIB, WORKING_BYTES
+from grouplevel.model.block_sums import LowRankComponents, block_sums
 from grouplevel.model.reml import presence_patterns
 
 # Working set of one chunk of voxels when no memory budget is given (common practice:
@@ -347,6 +348,9 @@ class _Structure:
         Z[animal, slot, 1:] = slopes
         self.Z = Z
         names, mats, quad = [], [], []
+        # the same matrices in low-rank form: basis columns z (then one indicator per
+        # session of the animal), entries (column, column, coefficient), identity
+        entries, identity = [], []
         n_groups = int(groups.max()) + 1
         self.n_groups = n_groups
         self.groups = groups
@@ -361,6 +365,9 @@ class _Structure:
                     if a_ != b_:
                         Gj = Gj + np.swapaxes(Gj, 1, 2)
                     mats.append(Gj * in_g)
+                    pairs = [(a_, b_, 1.0)] if a_ == b_ else [(a_, b_, 1.0), (b_, a_, 1.0)]
+                    entries.append(pairs)
+                    identity.append(0.0)
                     if a_ == b_ == 0:
                         names.append(f"animal{suffix}")
                     elif a_ == b_:
@@ -377,14 +384,33 @@ class _Structure:
             mats.append(same.astype(float))
             names.append("session")
             quad.append(("session",))
+            local = _local_codes(S)
+            n_local = int(local.max()) + 1
+            indicators = (local[:, :, None] == np.arange(n_local)).astype(float)
+            entries.append([(r + s_, r + s_, 1.0) for s_ in range(n_local)])
+            identity.append(0.0)
+        else:
+            indicators = np.zeros((m, w, 0))
         if est_run:
             mats.append(np.broadcast_to(np.eye(w), (m, w, w)).copy())
             names.append("run")
             quad.append(("run",))
+            entries.append([])
+            identity.append(1.0)
         self.names = tuple(names)
         self.G = np.stack(mats)  # (J, m, w, w)
         self.G_flat = self.G.reshape(len(mats), -1)
         self.used = np.any(self.G != 0, axis=(2, 3))  # (J, m): G_j has a block for animal
+        flat = [e for es in entries for e in es]
+        self.low_rank = LowRankComponents(
+            basis=np.ascontiguousarray(np.concatenate([Z, indicators], axis=2)),
+            starts=np.cumsum([0] + [len(es) for es in entries]).astype(np.int64),
+            rows=np.array([e[0] for e in flat], dtype=np.int64),
+            cols=np.array([e[1] for e in flat], dtype=np.int64),
+            coefs=np.array([e[2] for e in flat], dtype=np.float64),
+            identity=np.array(identity, dtype=np.float64),
+            used=self.used,
+        )
         self.X_flat = self.X.reshape(m * w, p)
         self.J = len(names)
         self.r = r
@@ -431,6 +457,15 @@ class _Structure:
         blocks = 8 * m * w * w + 6 * m * w * p + 8 * m * w
         info = 3 * J * J * p * p + 6 * J * J + 4 * J * p
         return int(WORKSPACE_FACTOR * (blocks + info))
+
+
+def _local_codes(S):
+    """Session codes (m, w; -1 padding) → 0, 1, ... within each animal (-1 padding)."""
+    local = np.full(S.shape, -1, dtype=np.int64)
+    for k in range(S.shape[0]):  # loop over animals, not voxels
+        valid = S[k] >= 0
+        _, local[k, valid] = np.unique(S[k, valid], return_inverse=True)
+    return local
 
 
 # --------------------------------------------------------------------------------------
@@ -516,133 +551,175 @@ def _solve_small(A, b):
 
 
 def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
-    """ℓ and the GLS quantities at φ; arrays (c, m, w), missing: pres 0, y 0, s2 0."""
+    """ℓ and the GLS quantities at φ; arrays (c, m, w), missing: pres 0, y 0, s2 0.
+
+    Returns a dict with ``theta``, the inverse blocks ``A`` (c, m, w, w; zero rows and
+    columns where a run is missing), ``E = ÃX`` per animal, ``Minv = (XᵀV⁻¹X)⁻¹``, the
+    GLS ``beta``, ``a = Ã r`` and the REML log-likelihood ``ll`` (−inf where V or XᵀV⁻¹X
+    is not positive definite). One compiled pass over voxels and animals.
+    """
     c, m, w = y.shape
     p = st.p
     theta = st.theta(phi)
-    pp = pres[..., :, None] * pres[..., None, :]
-    V = (theta @ st.G_flat).reshape(c, m, w, w) * pp
-    idx = np.arange(w)
-    V[..., idx, idx] += s2 * pres + (1.0 - pres)
-    A, logdet_v, ok = _cholesky_inverse(V)
-    ok = ok.all(axis=1)
-    A *= pp
-    E = A @ st.X  # (c, m, w, p): Ã X per animal
-    Ef = E.reshape(c, m * w, p)
-    M = st.X_flat.T @ Ef
-    M = 0.5 * (M + np.swapaxes(M, 1, 2))
-    rhs = (y.reshape(c, 1, m * w) @ Ef)[:, 0]
-    sign, logdet_m = np.linalg.slogdet(M)
-    ok &= sign > 0
-    Minv = np.linalg.inv(np.where(ok[:, None, None], M, np.eye(p)))
-    beta = (Minv @ rhs[..., None])[..., 0]
-    r = (y - (beta @ st.X_flat.T).reshape(c, m, w)) * pres
-    a = (A @ r[..., None])[..., 0]
-    quad = np.sum((r * a).reshape(c, -1), axis=1)
-    ll = -0.5 * (logdet_v.sum(axis=1) + logdet_m + quad + (n_obs - p) * _LOG_2PI)
-    ll = np.where(ok & np.isfinite(ll), ll, -np.inf)
+    A = np.empty((c, m, w, w))
+    E = np.empty((c, m, w, p))
+    a = np.empty((c, m, w))
+    Minv = np.empty((c, p, p))
+    beta = np.empty((c, p))
+    ll = np.empty(c)
+    _nb_evaluate(
+        np.ascontiguousarray(theta),
+        st.G,
+        st.X,
+        np.ascontiguousarray(y),
+        np.ascontiguousarray(s2),
+        np.ascontiguousarray(pres),
+        np.ascontiguousarray(n_obs, dtype=np.float64),
+        A,
+        E,
+        a,
+        Minv,
+        beta,
+        ll,
+    )
     return {"theta": theta, "A": A, "E": E, "Minv": Minv, "beta": beta, "a": a, "ll": ll}
 
 
-# reassociation and fused multiply-add only: NaN and infinity keep their meaning
-@lazy_njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
-def _nb_block_sums(A, E, a, Minv, G, used, tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa):
-    """Per-voxel sums over animals of the block products that the REML score and
-    information need (see :func:`_information`); outputs are zeroed here."""
-    c, m, w, _ = A.shape
-    J = G.shape[0]
-    p = E.shape[3]
-    B = np.zeros((J, w, w))
-    CG = np.zeros((J, w, p))
-    ACG = np.zeros((J, w, p))
-    ACGM = np.zeros((J, w, p))
-    Ga = np.zeros((J, w))
-    AGa = np.zeros((J, w))
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_evaluate(theta, G, X, y, s2, pres, n_obs, A, E, a, Minv, beta, ll):
+    """Compiled body of :func:`_evaluate`: per voxel, per animal V = Σ θ_j G_j +
+    diag(s²) (identity rows and columns where a run is missing), its Cholesky inverse
+    and log-determinant, then the GLS fit and the REML log-likelihood (Harville 1977)."""
+    c, m, w = y.shape
+    J = theta.shape[1]
+    p = X.shape[2]
+    V = np.zeros((w, w))
+    L = np.zeros((w, w))
+    Li = np.zeros((w, w))
+    M = np.zeros((p, p))
+    Lm = np.zeros((p, p))
+    Lmi = np.zeros((p, p))
+    rhs = np.zeros(p)
+    res = np.zeros(w)
     for t in range(c):
-        tr_ag[t] = 0.0
-        tr_bb[t] = 0.0
-        Q[t] = 0.0
-        tr_mr[t] = 0.0
-        Mt = Minv[t]
-        W1[t] = 0.0
-        EGa[t] = 0.0
-        gaa[t] = 0.0
+        good = True
+        logdet_v = 0.0
+        for q1 in range(p):
+            rhs[q1] = 0.0
+            for q2 in range(p):
+                M[q1, q2] = 0.0
         for k in range(m):
-            Ak = A[t, k]
-            Ek = E[t, k]
-            ak = a[t, k]
-            for j in range(J):
-                if not used[j, k]:
-                    continue
-                Gj = G[j, k]
-                for r in range(w):
-                    for s in range(w):
-                        acc = 0.0
-                        for u in range(w):
-                            acc += Ak[r, u] * Gj[u, s]
-                        B[j, r, s] = acc
-                    for q in range(p):
-                        acc = 0.0
-                        for u in range(w):
-                            acc += Gj[r, u] * Ek[u, q]
-                        CG[j, r, q] = acc
+            for r in range(w):
+                for s in range(r + 1):
+                    v = 0.0
+                    if pres[t, k, r] > 0.0 and pres[t, k, s] > 0.0:
+                        for j in range(J):
+                            v += theta[t, j] * G[j, k, r, s]
+                    V[r, s] = v
+                V[r, r] += s2[t, k, r] * pres[t, k, r] + (1.0 - pres[t, k, r])
+            # Cholesky factor, its inverse, and Ã = L⁻ᵀL⁻¹
+            for j in range(w):
+                d = V[j, j]
+                for u in range(j):
+                    d -= L[j, u] * L[j, u]
+                if not d > 0.0:
+                    good = False
+                    d = 1.0
+                piv = np.sqrt(d)
+                L[j, j] = piv
+                logdet_v += 2.0 * np.log(piv)
+                for i in range(j + 1, w):
+                    acc = V[i, j]
+                    for u in range(j):
+                        acc -= L[i, u] * L[j, u]
+                    L[i, j] = acc / piv
+            for i in range(w):
+                Li[i, i] = 1.0 / L[i, i]
+                for j in range(i):
                     acc = 0.0
-                    for u in range(w):
-                        acc += Gj[r, u] * ak[u]
-                    Ga[j, r] = acc
-                for r in range(w):
-                    for q in range(p):
-                        acc = 0.0
-                        for u in range(w):
-                            acc += Ak[r, u] * CG[j, u, q]
-                        ACG[j, r, q] = acc
-                    acc = 0.0
-                    for u in range(w):
-                        acc += Ak[r, u] * Ga[j, u]
-                    AGa[j, r] = acc
-                for r in range(w):  # Ã G_j Ã X M⁻¹
-                    for q in range(p):
-                        acc = 0.0
-                        for u in range(p):
-                            acc += ACG[j, r, u] * Mt[u, q]
-                        ACGM[j, r, q] = acc
-                for r in range(w):
-                    tr_ag[t, j] += B[j, r, r]
-                    gaa[t, j] += Ga[j, r] * ak[r]
-                    for q in range(p):
-                        EGa[t, j, q] += Ek[r, q] * Ga[j, r]
-                for q1 in range(p):
-                    for q2 in range(p):
-                        acc = 0.0
-                        for r in range(w):
-                            acc += Ek[r, q1] * CG[j, r, q2]
-                        Q[t, j, q1, q2] += acc
-            for i in range(J):
-                if not used[i, k]:
-                    continue
+                    for u in range(j, i):
+                        acc += L[i, u] * Li[u, j]
+                    Li[i, j] = -acc / L[i, i]
+            for i in range(w):
                 for j in range(i + 1):
-                    if not used[j, k]:
-                        continue
+                    acc = 0.0
+                    if pres[t, k, i] > 0.0 and pres[t, k, j] > 0.0:
+                        for u in range(i, w):
+                            acc += Li[u, i] * Li[u, j]
+                    A[t, k, i, j] = acc
+                    A[t, k, j, i] = acc
+            # E = ÃX, XᵀÃX and XᵀÃy summed over animals
+            for r in range(w):
+                for q in range(p):
+                    acc = 0.0
+                    for u in range(w):
+                        acc += A[t, k, r, u] * X[k, u, q]
+                    E[t, k, r, q] = acc
+            for q1 in range(p):
+                acc = 0.0
+                for r in range(w):
+                    acc += E[t, k, r, q1] * y[t, k, r]
+                rhs[q1] += acc
+                for q2 in range(q1 + 1):
                     acc = 0.0
                     for r in range(w):
-                        for s in range(w):
-                            acc += B[i, r, s] * B[j, s, r]
-                    tr_bb[t, i, j] += acc
-                    acc = 0.0
-                    for r in range(w):
-                        acc += Ga[i, r] * AGa[j, r]
-                    W1[t, i, j] += acc
-                    # tr(M⁻¹ XᵀÃG_iÃG_jÃX), symmetric in (i, j)
-                    acc = 0.0
-                    for r in range(w):
-                        for q in range(p):
-                            acc += CG[i, r, q] * ACGM[j, r, q]
-                    tr_mr[t, i, j] += acc
-        for i in range(J):
+                        acc += X[k, r, q1] * E[t, k, r, q2]
+                    M[q1, q2] += acc
+        # (XᵀV⁻¹X)⁻¹ by Cholesky; log|XᵀV⁻¹X|
+        logdet_m = 0.0
+        for j in range(p):
+            d = M[j, j]
+            for u in range(j):
+                d -= Lm[j, u] * Lm[j, u]
+            if not d > 0.0:
+                good = False
+                d = 1.0
+            piv = np.sqrt(d)
+            Lm[j, j] = piv
+            logdet_m += 2.0 * np.log(piv)
+            for i in range(j + 1, p):
+                acc = M[i, j]
+                for u in range(j):
+                    acc -= Lm[i, u] * Lm[j, u]
+                Lm[i, j] = acc / piv
+        for i in range(p):
+            Lmi[i, i] = 1.0 / Lm[i, i]
             for j in range(i):
-                tr_bb[t, j, i] = tr_bb[t, i, j]
-                W1[t, j, i] = W1[t, i, j]
-                tr_mr[t, j, i] = tr_mr[t, i, j]
+                acc = 0.0
+                for u in range(j, i):
+                    acc += Lm[i, u] * Lmi[u, j]
+                Lmi[i, j] = -acc / Lm[i, i]
+        for i in range(p):
+            for j in range(i + 1):
+                acc = 0.0
+                for u in range(i, p):
+                    acc += Lmi[u, i] * Lmi[u, j]
+                Minv[t, i, j] = acc
+                Minv[t, j, i] = acc
+        for q1 in range(p):
+            acc = 0.0
+            for q2 in range(p):
+                acc += Minv[t, q1, q2] * rhs[q2]
+            beta[t, q1] = acc
+        # residuals, a = Ã r and rᵀÃr
+        quad = 0.0
+        for k in range(m):
+            for r in range(w):
+                acc = y[t, k, r]
+                for q in range(p):
+                    acc -= X[k, r, q] * beta[t, q]
+                res[r] = acc * pres[t, k, r]
+            for r in range(w):
+                acc = 0.0
+                for u in range(w):
+                    acc += A[t, k, r, u] * res[u]
+                a[t, k, r] = acc
+                quad += res[r] * acc
+        value = -0.5 * (logdet_v + logdet_m + quad + (n_obs[t] - p) * _LOG_2PI)
+        if good and np.isfinite(value):
+            ll[t] = value
+        else:
+            ll[t] = -np.inf
 
 
 def _information(st: _Structure, ev):
@@ -651,33 +728,12 @@ def _information(st: _Structure, ev):
     With P = V⁻¹ − V⁻¹X(XᵀV⁻¹X)⁻¹XᵀV⁻¹ and Py = Ã r (Harville 1977):
     ∂ℓ/∂θ_j = −½ tr(P G_j) + ½ yᵀP G_j P y, F_ij = ½ tr(P G_i P G_j) and
     ∂²ℓ/∂θ_i∂θ_j = F_ij − yᵀP G_i P G_j P y, each trace split into per-animal sums
-    (compiled loop over voxels and animals in :func:`_nb_block_sums`).
+    (compiled loop over voxels and animals on the low-rank form of the G_j, in
+    :func:`grouplevel.model.block_sums.block_sums`).
     """
-    A, E, Minv, a = ev["A"], ev["E"], ev["Minv"], ev["a"]
-    c, m, w, p = E.shape
-    J = st.J
-    tr_ag = np.empty((c, J))
-    tr_bb = np.empty((c, J, J))
-    Q = np.empty((c, J, p, p))
-    tr_mr = np.empty((c, J, J))
-    W1 = np.empty((c, J, J))
-    EGa = np.empty((c, J, p))
-    gaa = np.empty((c, J))
-    _nb_block_sums(
-        np.ascontiguousarray(A),
-        np.ascontiguousarray(E),
-        np.ascontiguousarray(a),
-        np.ascontiguousarray(Minv),
-        st.G,
-        st.used,
-        tr_ag,
-        tr_bb,
-        Q,
-        tr_mr,
-        W1,
-        EGa,
-        gaa,
-    )
+    Minv = ev["Minv"]
+    c, J = Minv.shape[0], st.J
+    tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa = block_sums(ev["A"], ev["E"], ev["a"], Minv, st.low_rank)
     MQ = Minv[:, None] @ Q
     tr_mqmq = MQ.reshape(c, J, -1) @ np.swapaxes(MQ, -1, -2).reshape(c, J, -1).transpose(0, 2, 1)
     F = 0.5 * (tr_bb - 2.0 * tr_mr + tr_mqmq)
