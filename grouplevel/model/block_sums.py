@@ -153,8 +153,9 @@ def block_sums(A, E, a, Minv, comp: LowRankComponents):
 # reassociation and fused multiply-add only: NaN and infinity keep their meaning
 @lazy_njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
 def _nb_low_rank_sums(
-    A, E, a, Minv, basis, starts, rows, cols, coefs, ident, used, tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa
-):
+    A, E, a, Minv, basis, starts, rows, cols, coefs, ident, used,
+    tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa,
+):  # fmt: skip
     """Compiled loop over voxels and animals of :func:`block_sums` (outputs zeroed here)."""
     c, m, w, _ = A.shape
     p = E.shape[3]
