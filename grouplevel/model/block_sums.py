@@ -39,6 +39,8 @@ from grouplevel.compiled import lazy_njit
 class LowRankComponents:
     """The component matrices of the animal blocks as basis columns and entries.
 
+    Build it with :func:`low_rank_components`.
+
     Attributes
     ----------
     basis : ndarray, shape (m, w, K)
@@ -53,6 +55,11 @@ class LowRankComponents:
         Multiple of the identity in each component.
     used : ndarray of bool, shape (J, m)
         Whether component ``j`` has a (non-zero) block in animal ``k``.
+    pairs : ndarray of int, shape (n_terms, 6)
+        Every product of an entry of ``G_i`` and an entry of ``G_j`` (i ≥ j) that the
+        sums over pairs of components need: ``(i, j, α, β, γ, δ)``.
+    pair_coefs : ndarray, shape (n_terms,)
+        The product of the two entries' coefficients.
     """
 
     basis: np.ndarray
@@ -62,6 +69,8 @@ class LowRankComponents:
     coefs: np.ndarray
     identity: np.ndarray
     used: np.ndarray
+    pairs: np.ndarray
+    pair_coefs: np.ndarray
 
     @property
     def n_components(self) -> int:
@@ -79,6 +88,59 @@ class LowRankComponents:
                 out[j] += self.coefs[e] * b1[:, :, None] * b2[:, None, :]
             out[j] += self.identity[j] * np.eye(w)
         return out * self.used[:, :, None, None]
+
+
+def low_rank_components(
+    basis: np.ndarray,
+    entries: list[list[tuple[int, int, float]]],
+    identity,
+    used: np.ndarray,
+) -> LowRankComponents:
+    """Component matrices ``G_j = Σ_e c_e b_α b_βᵀ + identity[j] I`` per animal block.
+
+    Parameters
+    ----------
+    basis : ndarray, shape (m, w, K)
+        Basis columns of each animal's block.
+    entries : list of J lists of (α, β, c)
+        The entries of each component; each component's entries must describe a
+        symmetric matrix (``(β, α, c)`` present with every ``(α, β, c)``, α ≠ β).
+    identity : sequence of float, length J
+    used : ndarray of bool, shape (J, m)
+        Whether component ``j`` has a block in animal ``k``.
+
+    Returns
+    -------
+    LowRankComponents
+    """
+    basis = np.ascontiguousarray(basis, dtype=np.float64)
+    K = basis.shape[2]
+    J = len(entries)
+    for j, es in enumerate(entries):
+        pairs_j = {(a, b): c for a, b, c in es}
+        if any(not (0 <= a < K and 0 <= b < K) for a, b in pairs_j):
+            raise ValueError(f"low_rank_components: entry of component {j} outside the basis.")
+        if any(pairs_j.get((b, a)) != c for (a, b), c in pairs_j.items()):
+            raise ValueError(f"low_rank_components: entries of component {j} not symmetric.")
+    flat = [e for es in entries for e in es]
+    terms, term_coefs = [], []
+    for i in range(J):  # loop over pairs of components and their entries, not voxels
+        for j in range(i + 1):
+            for a, b, ci in entries[i]:
+                for g, d, cj in entries[j]:
+                    terms.append((i, j, a, b, g, d))
+                    term_coefs.append(ci * cj)
+    return LowRankComponents(
+        basis=basis,
+        starts=np.cumsum([0] + [len(es) for es in entries]).astype(np.int64),
+        rows=np.array([e[0] for e in flat], dtype=np.int64),
+        cols=np.array([e[1] for e in flat], dtype=np.int64),
+        coefs=np.array([e[2] for e in flat], dtype=np.float64),
+        identity=np.asarray(identity, dtype=np.float64).reshape(J),
+        used=np.ascontiguousarray(used, dtype=np.bool_),
+        pairs=np.array(terms, dtype=np.int64).reshape(-1, 6),
+        pair_coefs=np.array(term_coefs, dtype=np.float64),
+    )
 
 
 def block_sums(A, E, a, Minv, comp: LowRankComponents):
@@ -139,6 +201,8 @@ def block_sums(A, E, a, Minv, comp: LowRankComponents):
         comp.coefs,
         comp.identity,
         comp.used,
+        comp.pairs,
+        comp.pair_coefs,
         tr_ag,
         tr_bb,
         Q,
@@ -153,7 +217,7 @@ def block_sums(A, E, a, Minv, comp: LowRankComponents):
 # reassociation and fused multiply-add only: NaN and infinity keep their meaning
 @lazy_njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
 def _nb_low_rank_sums(
-    A, E, a, Minv, basis, starts, rows, cols, coefs, ident, used,
+    A, E, a, Minv, basis, starts, rows, cols, coefs, ident, used, pairs, pair_coefs,
     tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa,
 ):  # fmt: skip
     """Compiled loop over voxels and animals of :func:`block_sums` (outputs zeroed here)."""
@@ -165,7 +229,11 @@ def _nb_low_rank_sums(
     for j in range(J):
         if ident[j] != 0.0:
             any_ident = True
+    n_terms = pairs.shape[0]
     AB = np.zeros((w, K))
+    sw2 = np.zeros(J)
+    sh2 = np.zeros(J)
+    sf2 = np.zeros(J)
     W = np.zeros((K, K))
     W2 = np.zeros((K, K))
     F = np.zeros((K, p))
@@ -286,12 +354,18 @@ def _nb_low_rank_sums(
                 dj = ident[j]
                 s_ag = dj * tr_a
                 s_aa = dj * aa
+                s_w2 = 0.0
+                s_h2 = 0.0
+                s_f2 = 0.0
                 for e in range(starts[j], starts[j + 1]):
                     al = rows[e]
                     be = cols[e]
                     ce = coefs[e]
                     s_ag += ce * W[al, be]
                     s_aa += ce * h[al] * h[be]
+                    s_w2 += ce * W2[be, al]
+                    s_h2 += ce * h[al] * h2[be]
+                    s_f2 += ce * F2MF[be, al]
                     for q1 in range(p):
                         EGa[t, j, q1] += ce * F[al, q1] * h[be]
                         for q2 in range(p):
@@ -303,48 +377,38 @@ def _nb_low_rank_sums(
                             Q[t, j, q1, q2] += dj * EE[q1, q2]
                 tr_ag[t, j] += s_ag
                 gaa[t, j] += s_aa
-            # pairs of components
-            for i in range(J):
-                if not used[i, k]:
+                sw2[j] = s_w2  # tr(Ã G_j Ã), aᵀG_jÃa, tr(M⁻¹XᵀG_jÃÃX) (with symmetric G_j)
+                sh2[j] = s_h2
+                sf2[j] = s_f2
+            # pairs of components: products of their entries (a flat list) ...
+            for n in range(n_terms):
+                i = pairs[n, 0]
+                j = pairs[n, 1]
+                if not (used[i, k] and used[j, k]):
                     continue
-                di = ident[i]
-                for j in range(i + 1):
-                    if not used[j, k]:
+                al = pairs[n, 2]
+                be = pairs[n, 3]
+                ga = pairs[n, 4]
+                de = pairs[n, 5]
+                cw = pair_coefs[n] * W[be, ga]
+                tr_bb[t, i, j] += cw * W[de, al]
+                W1[t, i, j] += cw * h[al] * h[de]
+                tr_mr[t, i, j] += cw * FMF[de, al]
+            # ... and the terms of the identity
+            if any_ident:
+                for i in range(J):
+                    if not used[i, k]:
                         continue
-                    dj = ident[j]
-                    s_bb = 0.0
-                    s_w1 = 0.0
-                    s_mr = 0.0
-                    for e in range(starts[i], starts[i + 1]):
-                        al = rows[e]
-                        be = cols[e]
-                        ce = coefs[e]
-                        for f in range(starts[j], starts[j + 1]):
-                            ga = rows[f]
-                            de = cols[f]
-                            cf = ce * coefs[f]
-                            s_bb += cf * W[be, ga] * W[de, al]
-                            s_w1 += cf * h[al] * W[be, ga] * h[de]
-                            s_mr += cf * W[be, ga] * FMF[de, al]
-                        if dj != 0.0:  # G_i Ã (dj I)
-                            s_bb += ce * dj * W2[be, al]
-                            s_w1 += ce * dj * h[al] * h2[be]
-                            s_mr += ce * dj * F2MF[be, al]
-                    if di != 0.0:  # (di I) Ã G_j
-                        for f in range(starts[j], starts[j + 1]):
-                            ga = rows[f]
-                            de = cols[f]
-                            cf = di * coefs[f]
-                            s_bb += cf * W2[de, ga]
-                            s_w1 += cf * h2[ga] * h[de]
-                            s_mr += cf * F2MF[ga, de]
-                        if dj != 0.0:
-                            s_bb += di * dj * tr_aa
-                            s_w1 += di * dj * a_aa
-                            s_mr += di * dj * tr_meae
-                    tr_bb[t, i, j] += s_bb
-                    W1[t, i, j] += s_w1
-                    tr_mr[t, i, j] += s_mr
+                    di = ident[i]
+                    for j in range(i + 1):
+                        if not used[j, k]:
+                            continue
+                        dj = ident[j]
+                        if di == 0.0 and dj == 0.0:
+                            continue
+                        tr_bb[t, i, j] += dj * sw2[i] + di * sw2[j] + di * dj * tr_aa
+                        W1[t, i, j] += dj * sh2[i] + di * sh2[j] + di * dj * a_aa
+                        tr_mr[t, i, j] += dj * sf2[i] + di * sf2[j] + di * dj * tr_meae
         for i in range(J):
             for j in range(i):
                 tr_bb[t, j, i] = tr_bb[t, i, j]

@@ -77,7 +77,7 @@ import numpy as np
 from grouplevel.compiled import lazy_njit
 from grouplevel.machine import available_cores as _available_cores
 from grouplevel.memory import CHUNK_SHARE, GIB, WORKING_BYTES
-from grouplevel.model.block_sums import LowRankComponents, block_sums
+from grouplevel.model.block_sums import block_sums, low_rank_components
 from grouplevel.model.reml import presence_patterns
 
 # Working set of one chunk of voxels when no memory budget is given (common practice:
@@ -410,15 +410,8 @@ class _Structure:
         self.G = np.stack(mats)  # (J, m, w, w)
         self.G_flat = self.G.reshape(len(mats), -1)
         self.used = np.any(self.G != 0, axis=(2, 3))  # (J, m): G_j has a block for animal
-        flat = [e for es in entries for e in es]
-        self.low_rank = LowRankComponents(
-            basis=np.ascontiguousarray(np.concatenate([Z, indicators], axis=2)),
-            starts=np.cumsum([0] + [len(es) for es in entries]).astype(np.int64),
-            rows=np.array([e[0] for e in flat], dtype=np.int64),
-            cols=np.array([e[1] for e in flat], dtype=np.int64),
-            coefs=np.array([e[2] for e in flat], dtype=np.float64),
-            identity=np.array(identity, dtype=np.float64),
-            used=self.used,
+        self.low_rank = low_rank_components(
+            np.concatenate([Z, indicators], axis=2), entries, identity, self.used
         )
         self.X_flat = self.X.reshape(m * w, p)
         self.J = len(names)
