@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 import grouplevel.model.mixed as mm
-from grouplevel.model.block_sums import block_sums
+from grouplevel.model.block_sums import block_sums, low_rank_components
 
 RTOL = 1e-12  # the sums are rearrangements of the same products: rounding only
 
@@ -178,3 +178,14 @@ def test_compiled_evaluation_flags_a_covariance_that_is_not_positive_definite():
     phi = np.ones((2, st.J))
     ev = mm._evaluate(st, phi, y, s2, pres, pres.sum(axis=(1, 2)))
     assert np.isfinite(ev["ll"][0]) and ev["ll"][1] == -np.inf
+
+
+def test_low_rank_components_refuse_entries_that_are_not_symmetric():
+    basis = np.ones((2, 3, 2))
+    used = np.ones((1, 2), dtype=bool)
+    with pytest.raises(ValueError, match="not symmetric"):
+        low_rank_components(basis, [[(0, 1, 1.0)]], [0.0], used)
+    with pytest.raises(ValueError, match="outside the basis"):
+        low_rank_components(basis, [[(0, 2, 1.0), (2, 0, 1.0)]], [0.0], used)
+    comp = low_rank_components(basis, [[(0, 1, 2.0), (1, 0, 2.0)]], [1.0], used)
+    np.testing.assert_allclose(comp.dense()[0, 0], 4.0 * np.ones((3, 3)) + np.eye(3))
