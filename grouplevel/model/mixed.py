@@ -435,6 +435,8 @@ class _Structure:
             else:
                 C[j, j, j] = 1.0
         self.C = C
+        self.C_flat = np.ascontiguousarray(C.reshape(J, J * J).T)  # (J·J, J): θ = vec(φφᵀ) C
+        self.C_rows = np.ascontiguousarray(C.reshape(J * J, J).T)  # (J, J·J): ∂θ/∂φ = 2 φ C
         # index of T_g[a, b] in θ, for every group (both triangles)
         self.t_index = np.zeros((n_groups, r, r), dtype=np.int64)
         for key, j in index.items():
@@ -448,7 +450,9 @@ class _Structure:
         )
 
     def theta(self, phi):
-        return np.einsum("ci,jik,ck->cj", phi, self.C, phi)
+        c, J = phi.shape
+        outer = (phi[:, :, None] * phi[:, None, :]).reshape(c, J * J)
+        return outer @ self.C_flat
 
     def floats_per_voxel(self) -> int:
         """Float64 values alive per voxel of a chunk: the animal blocks (covariance,
@@ -735,17 +739,55 @@ def _information(st: _Structure, ev):
     """
     Minv = ev["Minv"]
     c, J = Minv.shape[0], st.J
-    tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa = block_sums(ev["A"], ev["E"], ev["a"], Minv, st.low_rank)
-    MQ = Minv[:, None] @ Q
-    tr_mqmq = MQ.reshape(c, J, -1) @ np.swapaxes(MQ, -1, -2).reshape(c, J, -1).transpose(0, 2, 1)
-    F = 0.5 * (tr_bb - 2.0 * tr_mr + tr_mqmq)
-    F = 0.5 * (F + np.swapaxes(F, 1, 2))
-    tr_mq = np.trace(MQ, axis1=-2, axis2=-1)
-    g = -0.5 * (tr_ag - tr_mq) + 0.5 * gaa
-    W2 = EGa @ Minv @ np.swapaxes(EGa, 1, 2)
-    H = F - (W1 - W2)
-    H = 0.5 * (H + np.swapaxes(H, 1, 2))
-    return g, F, H, Q
+    sums = block_sums(ev["A"], ev["E"], ev["a"], Minv, st.low_rank)
+    g = np.empty((c, J))
+    F = np.empty((c, J, J))
+    H = np.empty((c, J, J))
+    _nb_assemble(*sums, np.ascontiguousarray(Minv), g, F, H)
+    return g, F, H, sums[2]
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_assemble(tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa, Minv, g, F, H):
+    """g, F and H of :func:`_information` from the per-animal sums, voxel by voxel:
+    with MQ_j = M⁻¹Q_j, F = ½[tr(ÃG_iÃG_j) − 2 tr_mr + tr(MQ_i MQ_j)],
+    g = −½[tr(ÃG_j) − tr(MQ_j)] + ½ aᵀG_ja, H = F − W1 + (XᵀÃG_ia)ᵀM⁻¹(XᵀÃG_ja)."""
+    c, J, p, _ = Q.shape
+    MQ = np.zeros((J, p, p))
+    ME = np.zeros((J, p))
+    for t in range(c):
+        for j in range(J):
+            for q1 in range(p):
+                acc2 = 0.0
+                for q2 in range(p):
+                    acc = 0.0
+                    for u in range(p):
+                        acc += Minv[t, q1, u] * Q[t, j, u, q2]
+                    MQ[j, q1, q2] = acc
+                    acc2 += Minv[t, q1, q2] * EGa[t, j, q2]
+                ME[j, q1] = acc2
+            tr_mq = 0.0
+            for q in range(p):
+                tr_mq += MQ[j, q, q]
+            g[t, j] = -0.5 * (tr_ag[t, j] - tr_mq) + 0.5 * gaa[t, j]
+        for i in range(J):
+            for j in range(i + 1):
+                tr_mqmq = 0.0
+                for q1 in range(p):
+                    for q2 in range(p):
+                        tr_mqmq += MQ[i, q1, q2] * MQ[j, q2, q1]
+                # both triangles of the (symmetric) sums, averaged as in the dense form
+                f_ij = 0.5 * (tr_bb[t, i, j] - 2.0 * tr_mr[t, i, j] + tr_mqmq)
+                f_ji = 0.5 * (tr_bb[t, j, i] - 2.0 * tr_mr[t, j, i] + tr_mqmq)
+                f = 0.5 * (f_ij + f_ji)
+                w2 = 0.0
+                for q in range(p):
+                    w2 += EGa[t, i, q] * ME[j, q]
+                h = f - 0.5 * (W1[t, i, j] + W1[t, j, i]) + w2
+                F[t, i, j] = f
+                F[t, j, i] = f
+                H[t, i, j] = h
+                H[t, j, i] = h
 
 
 def _take(ev, idx):
@@ -845,16 +887,18 @@ def _session_moment(st: _Structure, e, pres, run_var):
 
 def _direction(st: _Structure, phi, g, F, H):
     """Newton step in φ where −∂²ℓ/∂φ² is positive definite, else Fisher scoring."""
-    jac = 2.0 * np.einsum("jik,ck->cji", st.C, phi)  # ∂θ_j/∂φ_i
-    g_phi = np.einsum("cji,cj->ci", jac, g)
-    neg_h = -(np.swapaxes(jac, 1, 2) @ H @ jac + 2.0 * np.einsum("cj,jik->cik", g, st.C))
+    c, J = phi.shape
+    jac = 2.0 * (phi @ st.C_rows).reshape(c, J, J)  # ∂θ_j/∂φ_i
+    g_phi = (g[:, None, :] @ jac)[:, 0]
+    curvature = 2.0 * (g @ st.C.reshape(J, J * J)).reshape(c, J, J)  # Σ_j g_j ∂²θ_j/∂φ²
+    neg_h = -(np.swapaxes(jac, 1, 2) @ H @ jac + curvature)
     inv_h, _, ok_h = _cholesky_inverse(neg_h)
     F_phi = np.swapaxes(jac, 1, 2) @ F @ jac
     top = np.max(np.abs(np.diagonal(F_phi, axis1=1, axis2=2)), axis=1)
     F_phi = F_phi + (FISHER_RIDGE * top + 1e-300)[:, None, None] * np.eye(st.J)
     inv_f, _, ok_f = _cholesky_inverse(F_phi)
     step = np.where(ok_h[:, None, None], inv_h, inv_f)
-    delta = np.einsum("cij,cj->ci", step, g_phi)
+    delta = (step @ g_phi[:, :, None])[:, :, 0]
     delta = np.where((ok_h | ok_f)[:, None] & np.isfinite(delta), delta, 0.0)
     return delta, np.einsum("ci,ci->c", g_phi, delta)
 
