@@ -143,7 +143,7 @@ def low_rank_components(
     )
 
 
-def block_sums(A, E, a, Minv, comp: LowRankComponents):
+def block_sums(A, E, a, Minv, comp: LowRankComponents, index=None):
     """Sums over animals of the products that the REML score and information need.
 
     Parameters
@@ -158,6 +158,9 @@ def block_sums(A, E, a, Minv, comp: LowRankComponents):
     Minv : ndarray, shape (c, p, p)
         ``(XᵀV⁻¹X)⁻¹``.
     comp : LowRankComponents
+    index : ndarray of int, shape (n,), optional
+        The voxels (rows of the arrays above) to sum for, in this order; all by
+        default. Outputs then have ``n`` rows (no copy of the blocks is made).
 
     Returns
     -------
@@ -181,6 +184,8 @@ def block_sums(A, E, a, Minv, comp: LowRankComponents):
     Harville, D. A. (1977). Journal of the American Statistical Association 72:320–338.
     """
     c, m, w, p = E.shape
+    index = np.arange(c) if index is None else np.asarray(index, dtype=np.int64)
+    c = index.shape[0]
     J = comp.n_components
     tr_ag = np.empty((c, J))
     tr_bb = np.empty((c, J, J))
@@ -194,6 +199,7 @@ def block_sums(A, E, a, Minv, comp: LowRankComponents):
         np.ascontiguousarray(E, dtype=np.float64),
         np.ascontiguousarray(a, dtype=np.float64),
         np.ascontiguousarray(Minv, dtype=np.float64),
+        index,
         comp.basis,
         comp.starts,
         comp.rows,
@@ -217,11 +223,12 @@ def block_sums(A, E, a, Minv, comp: LowRankComponents):
 # reassociation and fused multiply-add only: NaN and infinity keep their meaning
 @lazy_njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
 def _nb_low_rank_sums(
-    A, E, a, Minv, basis, starts, rows, cols, coefs, ident, used, pairs, pair_coefs,
+    A, E, a, Minv, index, basis, starts, rows, cols, coefs, ident, used, pairs, pair_coefs,
     tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa,
 ):  # fmt: skip
     """Compiled loop over voxels and animals of :func:`block_sums` (outputs zeroed here)."""
-    c, m, w, _ = A.shape
+    _, m, w, _ = A.shape
+    c = index.shape[0]
     p = E.shape[3]
     K = basis.shape[2]
     J = ident.shape[0]
@@ -248,7 +255,8 @@ def _nb_low_rank_sums(
     EE = np.zeros((p, p))
     AE = np.zeros((w, p))
     for t in range(c):
-        Mt = Minv[t]
+        v = index[t]
+        Mt = Minv[v]
         for j in range(J):
             tr_ag[t, j] = 0.0
             gaa[t, j] = 0.0
@@ -261,9 +269,9 @@ def _nb_low_rank_sums(
                 tr_mr[t, j, i] = 0.0
                 W1[t, j, i] = 0.0
         for k in range(m):
-            Ak = A[t, k]
-            Ek = E[t, k]
-            ak = a[t, k]
+            Ak = A[v, k]
+            Ek = E[v, k]
+            ak = a[v, k]
             Bk = basis[k]
             # reduced products of the basis
             for r in range(w):

@@ -728,18 +728,19 @@ def _nb_evaluate(theta, G, X, y, s2, pres, n_obs, A, E, a, Minv, beta, ll):
             ll[t] = -np.inf
 
 
-def _information(st: _Structure, ev):
+def _information(st: _Structure, ev, index=None):
     """REML score g, expected information F and observed ∂²ℓ H in θ, and Q_j.
 
     With P = V⁻¹ − V⁻¹X(XᵀV⁻¹X)⁻¹XᵀV⁻¹ and Py = Ã r (Harville 1977):
     ∂ℓ/∂θ_j = −½ tr(P G_j) + ½ yᵀP G_j P y, F_ij = ½ tr(P G_i P G_j) and
     ∂²ℓ/∂θ_i∂θ_j = F_ij − yᵀP G_i P G_j P y, each trace split into per-animal sums
     (compiled loop over voxels and animals on the low-rank form of the G_j, in
-    :func:`grouplevel.model.block_sums.block_sums`).
+    :func:`grouplevel.model.block_sums.block_sums`). ``index`` selects the voxels of
+    ``ev`` (all by default) without copying their blocks.
     """
-    Minv = ev["Minv"]
+    Minv = ev["Minv"] if index is None else ev["Minv"][index]
     c, J = Minv.shape[0], st.J
-    sums = block_sums(ev["A"], ev["E"], ev["a"], Minv, st.low_rank)
+    sums = block_sums(ev["A"], ev["E"], ev["a"], ev["Minv"], st.low_rank, index)
     g = np.empty((c, J))
     F = np.empty((c, J, J))
     H = np.empty((c, J, J))
@@ -790,13 +791,10 @@ def _nb_assemble(tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa, Minv, g, F, H):
                 H[t, j, i] = h
 
 
-def _take(ev, idx):
-    return {k: v[idx] for k, v in ev.items()}
-
-
-def _put(ev, idx, new):
+def _put(ev, idx, new, src):
+    """Voxels ``idx`` of the evaluation ``ev`` replaced by voxels ``src`` of ``new``."""
     for k, v in new.items():
-        ev[k][idx] = v
+        ev[k][idx] = v[src]
 
 
 # --------------------------------------------------------------------------------------
@@ -991,7 +989,7 @@ def _escape_saddles(st: _Structure, phi, vox, g, ev, y, s2, pres, n_obs):
     ll0 = ev["ll"][sel]
     better = ev_t["ll"] > ll0 + FLAT_DECREMENT * (1.0 + np.abs(ll0))
     phi[sel[better]] = trial[better]
-    _put(ev, sel[better], _take(ev_t, better))
+    _put(ev, sel[better], ev_t, better)
     moved[np.nonzero(moved)[0][~better]] = False
     return moved
 
@@ -1017,8 +1015,8 @@ def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol, n_iter=None
         act = np.nonzero(active)[0]
         if act.size <= leave:
             break
-        cur = _take(ev, act)
-        g, F, H, _ = _information(st, cur)
+        cur = {"theta": ev["theta"][act], "ll": ev["ll"][act]}
+        g, F, H, _ = _information(st, ev, act)
         delta, gain = _direction(st, phi[act], g, F, H)
         theta = cur["theta"]
         step_theta = st.theta(phi[act] + delta) - theta
@@ -1047,7 +1045,7 @@ def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol, n_iter=None
             ll0 = ev["ll"][vox]
             up = ev_t["ll"] > ll0 + FLAT_DECREMENT * (1.0 + np.abs(ll0))
             phi[vox[up]] = trial[up]
-            _put(ev, vox[up], _take(ev_t, up))
+            _put(ev, vox[up], ev_t, up)
             keep = ~np.isin(pending, vox[up])
             pending, d_pend, gain_pend = pending[keep], d_pend[keep], gain_pend[keep]
         tried = 0  # step lengths 1, 1/2, 1/4, ... tried so far
@@ -1068,7 +1066,7 @@ def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol, n_iter=None
             first = np.argmax(up, axis=0)[ok] * k + np.nonzero(ok)[0]
             acc = pending[ok]
             phi[acc] = trial[first]
-            _put(ev, acc, _take(ev_t, first))
+            _put(ev, acc, ev_t, first)
             pending, d_pend, gain_pend = pending[~ok], d_pend[~ok], gain_pend[~ok]
             tried += n_len
         # no increase possible: at the optimum when the predicted gain is at the
