@@ -808,7 +808,8 @@ def _scale_and_start(st: _Structure, y, s2, pres, n_obs):
     Returns (y, s2, scale2, fittable, phi0) with y and s2 scaled in place.
     """
     c = y.shape[0]
-    XtX = np.einsum("map,cma,maq->cpq", st.X, pres, st.X)
+    XX = st.X_flat[:, :, None] * st.X_flat[:, None, :]  # (m·w, p, p)
+    XtX = (pres.reshape(c, -1) @ XX.reshape(XX.shape[0], -1)).reshape(c, st.p, st.p)
     Xty = np.einsum("map,cma->cp", st.X, y)
     beta = _solve_small(XtX, Xty)
     r = (y - np.einsum("map,cp->cma", st.X, np.nan_to_num(beta))) * pres
@@ -830,7 +831,7 @@ def _scale_and_start(st: _Structure, y, s2, pres, n_obs):
     ridge = 1e-8 * (np.einsum("cmrr->cm", ZtZ) + 1.0)
     ZtZ = ZtZ + ridge[..., None, None] * np.eye(st.r)
     ZtZ_inv, _, _ = _cholesky_inverse(ZtZ)
-    b = np.einsum("cmrs,cmas,cma->cmr", ZtZ_inv, Zp, r)
+    b = (ZtZ_inv @ np.einsum("cmas,cma->cms", Zp, r)[..., None])[..., 0]
     e = (r - np.einsum("cmar,cmr->cma", Zp, b)) * pres
     n_a = pres.sum(axis=2)
     within_df = np.maximum(n_obs - np.minimum(n_a, st.r).sum(axis=1), 1)
