@@ -130,6 +130,10 @@ ESCAPE_STEP = 1e-3
 # of the Satterthwaite degrees of freedom); our own choice, well below any variance
 # that the data can resolve.
 BOUNDARY_FRACTION = 1e-6
+# A positive definite matrix whose condition number is bounded below 1 / PINV_SAFE is
+# inverted directly where a pseudo-inverse is asked for (numpy's pinv cuts singular
+# values below 1e-15 of the largest, three orders further; our own choice).
+PINV_SAFE = 1e-12
 # A design column lies in the span of the animal-level columns and the random slopes
 # when its least-squares residual is below this fraction of its norm (common practice
 # for floating-point data).
@@ -1196,10 +1200,22 @@ def _finish(st: _Structure, phi, y, s2, pres, n_obs, scale2):
 
 
 def _pinv_stack(A):
+    """Pseudo-inverse of a stack of symmetric positive semi-definite matrices (NaN where
+    not finite). Where the Cholesky inverse exists and bounds the condition number
+    (cond₂ ≤ n² max|A| max|A⁻¹|) below ``1 / PINV_SAFE``, far from numpy's cut-off for
+    small singular values, the pseudo-inverse is that inverse; numpy's ``pinv``
+    elsewhere."""
+    n = A.shape[-1]
     out = np.full(A.shape, np.nan)
     good = np.isfinite(A).all(axis=(1, 2))
-    if good.any():
-        out[good] = np.linalg.pinv(A[good], hermitian=True)
+    inv, _, ok = _cholesky_inverse(np.where(good[:, None, None], A, np.eye(n)))
+    with np.errstate(invalid="ignore", over="ignore"):
+        bound = n * n * np.abs(A).max(axis=(1, 2)) * np.abs(inv).max(axis=(1, 2))
+        safe = good & ok & (bound * PINV_SAFE < 1.0)
+    out[safe] = inv[safe]
+    rest = good & ~safe
+    if rest.any():
+        out[rest] = np.linalg.pinv(A[rest], hermitian=True)
     return out
 
 
