@@ -109,3 +109,18 @@ def test_fit_with_slow_voxels_reaches_the_dense_reml_maximum():
             best = min(best, res.fun)
         # ours at least as high as the dense optimum found by scipy (to 1e-6)
         assert fit.loglik[v] >= -best - 1e-6
+
+
+def test_pseudo_inverse_of_the_information_equals_numpy_pinv():
+    """numpy.linalg.pinv (hermitian) on well-conditioned, singular and non-finite stacks."""
+    rng = np.random.default_rng(6)
+    R = rng.normal(size=(60, 5, 5))
+    A = R @ np.swapaxes(R, 1, 2) + 0.1 * np.eye(5)
+    A[:20, :, 0] = A[:20, 0, :] = 0.0  # a component on the boundary: singular
+    A[20, 1, 1] = np.nan
+    got = mm._pinv_stack(A)
+    assert np.isnan(got[20]).all()
+    keep = np.arange(60) != 20
+    want = np.linalg.pinv(A[keep], hermitian=True)
+    scale = np.abs(want).max(axis=(1, 2), keepdims=True)
+    np.testing.assert_allclose(got[keep] / scale, want / scale, rtol=0, atol=1e-10)
