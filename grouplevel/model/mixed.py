@@ -19,10 +19,14 @@ parameters θ (the entries of every ``T_g``, ω², σ²):
 with fixed, animal-block-diagonal ``G_j``. The data of one chunk of voxels are laid out
 as (voxels, animals, runs of the animal) arrays; every quantity REML needs (log|V|,
 ``XᵀV⁻¹X``, the score and the expected and observed information, with the traces
-``tr(P G_i P G_j)``) is assembled from batched dense products of the small per-animal
-blocks, summed over animals. No n × n matrix is formed and no Python loop runs over
-voxels; the small per-animal Cholesky factorisations run in a compiled (numba) loop,
-and chunks of voxels are fitted in a few threads.
+``tr(P G_i P G_j)``) is assembled from products of the small per-animal blocks,
+summed over animals. No n × n matrix is formed and no Python loop runs over voxels:
+the per-animal Cholesky factorisations and the GLS fit run in one compiled (numba)
+loop, the traces in another that uses the low-rank form of the ``G_j`` (a few columns
+z and session indicators per animal, and the identity;
+:mod:`grouplevel.model.block_sums`), and chunks of voxels are fitted in a few threads.
+The few voxels of each chunk that are still iterating when the rest has finished are
+continued together with those of all other chunks.
 
 A run missing at a voxel (NaN effect or variance) is decoupled exactly: its row and
 column of the animal block are replaced by those of the identity and its entries of the
