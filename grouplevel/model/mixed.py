@@ -417,6 +417,7 @@ class _Structure:
         self.names = tuple(names)
         self.G = np.stack(mats)  # (J, m, w, w)
         self.G_flat = self.G.reshape(len(mats), -1)
+        self.G_last = np.ascontiguousarray(np.moveaxis(self.G, 0, -1))  # (m, w, w, J)
         self.used = np.any(self.G != 0, axis=(2, 3))  # (J, m): G_j has a block for animal
         self.low_rank = low_rank_components(
             np.concatenate([Z, indicators], axis=2), entries, identity, self.used
@@ -583,7 +584,7 @@ def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
     ll = np.empty(c)
     _nb_evaluate(
         np.ascontiguousarray(theta),
-        st.G,
+        st.G_last,
         st.X,
         np.ascontiguousarray(y),
         np.ascontiguousarray(s2),
@@ -600,7 +601,7 @@ def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
 
 
 @lazy_njit(cache=True, nogil=True, error_model="numpy")
-def _nb_evaluate(theta, G, X, y, s2, pres, n_obs, A, E, a, Minv, beta, ll):
+def _nb_evaluate(theta, G, X, y, s2, pres, n_obs, A, E, a, Minv, beta, ll):  # G: (m, w, w, J)
     """Compiled body of :func:`_evaluate`: per voxel, per animal V = Σ θ_j G_j +
     diag(s²) (identity rows and columns where a run is missing), its Cholesky inverse
     and log-determinant, then the GLS fit and the REML log-likelihood (Harville 1977)."""
@@ -628,7 +629,7 @@ def _nb_evaluate(theta, G, X, y, s2, pres, n_obs, A, E, a, Minv, beta, ll):
                     v = 0.0
                     if pres[t, k, r] > 0.0 and pres[t, k, s] > 0.0:
                         for j in range(J):
-                            v += theta[t, j] * G[j, k, r, s]
+                            v += theta[t, j] * G[k, r, s, j]
                     V[r, s] = v
                 V[r, r] += s2[t, k, r] * pres[t, k, r] + (1.0 - pres[t, k, r])
             # Cholesky factor, its inverse, and Ã = L⁻ᵀL⁻¹
