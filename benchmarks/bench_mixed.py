@@ -9,6 +9,7 @@ layout of earlier measurements): an animal's two session indicators then span th
 columns as its intercept and slope, the session variance cannot be told apart from the
 animal covariance matrix (a flat ridge of the likelihood), and where a fit ends on the
 ridge is arbitrary.
+
 Prints our whole-fit wall time and the per-voxel time ratio against
 statsmodels ``MixedLM`` (REML, ``re_formula="1 + condition"``,
 ``vc_formula={"session": "0 + C(session)"}``) timed on a few voxels in the same run,
