@@ -1,9 +1,16 @@
 """Benchmark of the generalised REML fit (random slope, nested sessions) against statsmodels.
 
 Synthetic study: 10 animals × 2 sessions × 2 runs (40 runs); a within-animal condition
-(one session of each condition per animal) with a random slope per animal, a session
-variance and a run variance; no first-level variances, so that statsmodels fits the
-same model. Prints our whole-fit wall time and the per-voxel time ratio against
+with a random slope per animal, a session variance and a run variance; no first-level
+variances, so that statsmodels fits the same model. By default (``--design crossed``)
+every session holds one run of each condition, so that every component is identified.
+``--design session-per-condition`` gives each condition a session of its own (the
+layout of earlier measurements): an animal's two session indicators then span the same
+columns as its intercept and slope, the session variance cannot be told apart from the
+animal covariance matrix (a flat ridge of the likelihood), and where a fit ends on the
+ridge is arbitrary.
+
+Prints our whole-fit wall time and the per-voxel time ratio against
 statsmodels ``MixedLM`` (REML, ``re_formula="1 + condition"``,
 ``vc_formula={"session": "0 + C(session)"}``) timed on a few voxels in the same run,
 and the largest differences between the two fits on those voxels.
@@ -29,11 +36,19 @@ SESSIONS_PER_ANIMAL = 2
 RUNS_PER_SESSION = 2
 
 
-def make_data(n_vox: int, rng: np.random.Generator):
+DESIGNS = ("crossed", "session-per-condition")
+
+
+def make_data(n_vox: int, rng: np.random.Generator, design: str = "crossed"):
     runs = SESSIONS_PER_ANIMAL * RUNS_PER_SESSION
     animal = np.repeat(np.arange(N_ANIMALS), runs)
     session = np.repeat(np.arange(N_ANIMALS * SESSIONS_PER_ANIMAL), RUNS_PER_SESSION)
-    condition = np.tile(np.repeat([-0.5, 0.5], RUNS_PER_SESSION), N_ANIMALS)
+    if design == "crossed":  # runs alternate between the conditions inside every session
+        within = np.arange(RUNS_PER_SESSION) % 2 - 0.5
+        condition = np.tile(within, N_ANIMALS * SESSIONS_PER_ANIMAL)
+    else:  # all runs of a session in one condition, one session per condition
+        per_session = np.arange(SESSIONS_PER_ANIMAL) % 2 - 0.5
+        condition = np.tile(np.repeat(per_session, RUNS_PER_SESSION), N_ANIMALS)
     n = animal.size
     X = np.column_stack([np.ones(n), condition])
     u0 = rng.normal(size=(N_ANIMALS, n_vox))
@@ -64,10 +79,11 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--reference-voxels", type=int, default=20)
     parser.add_argument("--tiny", action="store_true", help="a few hundred voxels")
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--design", choices=DESIGNS, default=DESIGNS[0])
     args = parser.parse_args(argv)
     n_vox, n_ref = (300, 3) if args.tiny else (args.voxels, args.reference_voxels)
     rng = np.random.default_rng(args.seed)
-    y, X, animal, session, condition = make_data(n_vox, rng)
+    y, X, animal, session, condition = make_data(n_vox, rng, args.design)
     kwargs = {"slopes": condition, "slope_names": ["condition"], "session": session}
 
     fit_mixed(y[:, :8], None, X, animal, **kwargs)  # compile (or load) the small kernel
@@ -89,7 +105,7 @@ def main(argv: list[str] | None = None) -> None:
     d_ll = max(r.llf - fit.loglik[v] for v, r in zip(columns, refs, strict=True))
     print(
         f"voxels: {n_vox}, runs: {y.shape[0]} ({N_ANIMALS} animals x "
-        f"{SESSIONS_PER_ANIMAL} sessions x {RUNS_PER_SESSION} runs)"
+        f"{SESSIONS_PER_ANIMAL} sessions x {RUNS_PER_SESSION} runs; design {args.design})"
     )
     print(f"variance components: {', '.join(fit.component_names)}")
     print(

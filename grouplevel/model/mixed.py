@@ -19,10 +19,14 @@ parameters θ (the entries of every ``T_g``, ω², σ²):
 with fixed, animal-block-diagonal ``G_j``. The data of one chunk of voxels are laid out
 as (voxels, animals, runs of the animal) arrays; every quantity REML needs (log|V|,
 ``XᵀV⁻¹X``, the score and the expected and observed information, with the traces
-``tr(P G_i P G_j)``) is assembled from batched dense products of the small per-animal
-blocks, summed over animals. No n × n matrix is formed and no Python loop runs over
-voxels; the small per-animal Cholesky factorisations run in a compiled (numba) loop,
-and chunks of voxels are fitted in a few threads.
+``tr(P G_i P G_j)``) is assembled from products of the small per-animal blocks,
+summed over animals. No n × n matrix is formed and no Python loop runs over voxels:
+the per-animal Cholesky factorisations and the GLS fit run in one compiled (numba)
+loop, the traces in another that uses the low-rank form of the ``G_j`` (a few columns
+z and session indicators per animal, and the identity;
+:mod:`grouplevel.model.block_sums`), and chunks of voxels are fitted in a few threads.
+The few voxels of each chunk that are still iterating when the rest has finished are
+continued together with those of all other chunks.
 
 A run missing at a voxel (NaN effect or variance) is decoupled exactly: its row and
 column of the animal block are replaced by those of the identity and its entries of the
@@ -77,6 +81,7 @@ import numpy as np
 from grouplevel.compiled import lazy_njit
 from grouplevel.machine import available_cores as _available_cores
 from grouplevel.memory import CHUNK_SHARE, GIB, WORKING_BYTES
+from grouplevel.model.block_sums import block_sums, low_rank_components
 from grouplevel.model.reml import presence_patterns
 
 # Working set of one chunk of voxels when no memory budget is given (common practice:
@@ -92,6 +97,15 @@ WORKSPACE_FACTOR = 2.0
 
 # Step-halving: at most this many halvings of a step (2⁻³⁰ ≈ 1e-9).
 MAX_STEP_HALVINGS = 30
+# Halvings are tried several at once while (voxels left) × (lengths) stays below this
+# many likelihood evaluations: one call then costs about as much as its numpy overhead
+# (our own measurement on the mixed-model benchmark).
+HALVING_BATCH = 256
+# A chunk stops iterating when no more than this share of its voxels (at least one) is
+# left; those voxels are continued together with the slow voxels of all other chunks,
+# so that the long tail of a few slow voxels is paid once, not once per chunk (our own
+# choice).
+STRAGGLER_SHARE = 0.02
 # Starting variances are kept at least this fraction of the residual variance (1 after
 # scaling) inside the parameter space, so that the iteration can move both ways
 # (common practice).
@@ -120,6 +134,10 @@ ESCAPE_STEP = 1e-3
 # of the Satterthwaite degrees of freedom); our own choice, well below any variance
 # that the data can resolve.
 BOUNDARY_FRACTION = 1e-6
+# A positive definite matrix whose condition number is bounded below 1 / PINV_SAFE is
+# inverted directly where a pseudo-inverse is asked for (numpy's pinv cuts singular
+# values below 1e-15 of the largest, three orders further; our own choice).
+PINV_SAFE = 1e-12
 # A design column lies in the span of the animal-level columns and the random slopes
 # when its least-squares residual is below this fraction of its norm (common practice
 # for floating-point data).
@@ -347,6 +365,9 @@ class _Structure:
         Z[animal, slot, 1:] = slopes
         self.Z = Z
         names, mats, quad = [], [], []
+        # the same matrices in low-rank form: basis columns z (then one indicator per
+        # session of the animal), entries (column, column, coefficient), identity
+        entries, identity = [], []
         n_groups = int(groups.max()) + 1
         self.n_groups = n_groups
         self.groups = groups
@@ -361,6 +382,9 @@ class _Structure:
                     if a_ != b_:
                         Gj = Gj + np.swapaxes(Gj, 1, 2)
                     mats.append(Gj * in_g)
+                    pairs = [(a_, b_, 1.0)] if a_ == b_ else [(a_, b_, 1.0), (b_, a_, 1.0)]
+                    entries.append(pairs)
+                    identity.append(0.0)
                     if a_ == b_ == 0:
                         names.append(f"animal{suffix}")
                     elif a_ == b_:
@@ -377,14 +401,27 @@ class _Structure:
             mats.append(same.astype(float))
             names.append("session")
             quad.append(("session",))
+            local = _local_codes(S)
+            n_local = int(local.max()) + 1
+            indicators = (local[:, :, None] == np.arange(n_local)).astype(float)
+            entries.append([(r + s_, r + s_, 1.0) for s_ in range(n_local)])
+            identity.append(0.0)
+        else:
+            indicators = np.zeros((m, w, 0))
         if est_run:
             mats.append(np.broadcast_to(np.eye(w), (m, w, w)).copy())
             names.append("run")
             quad.append(("run",))
+            entries.append([])
+            identity.append(1.0)
         self.names = tuple(names)
         self.G = np.stack(mats)  # (J, m, w, w)
         self.G_flat = self.G.reshape(len(mats), -1)
+        self.G_last = np.ascontiguousarray(np.moveaxis(self.G, 0, -1))  # (m, w, w, J)
         self.used = np.any(self.G != 0, axis=(2, 3))  # (J, m): G_j has a block for animal
+        self.low_rank = low_rank_components(
+            np.concatenate([Z, indicators], axis=2), entries, identity, self.used
+        )
         self.X_flat = self.X.reshape(m * w, p)
         self.J = len(names)
         self.r = r
@@ -407,6 +444,8 @@ class _Structure:
             else:
                 C[j, j, j] = 1.0
         self.C = C
+        self.C_flat = np.ascontiguousarray(C.reshape(J, J * J).T)  # (J·J, J): θ = vec(φφᵀ) C
+        self.C_rows = np.ascontiguousarray(C.reshape(J * J, J).T)  # (J, J·J): ∂θ/∂φ = 2 φ C
         # index of T_g[a, b] in θ, for every group (both triangles)
         self.t_index = np.zeros((n_groups, r, r), dtype=np.int64)
         for key, j in index.items():
@@ -420,7 +459,9 @@ class _Structure:
         )
 
     def theta(self, phi):
-        return np.einsum("ci,jik,ck->cj", phi, self.C, phi)
+        c, J = phi.shape
+        outer = (phi[:, :, None] * phi[:, None, :]).reshape(c, J * J)
+        return outer @ self.C_flat
 
     def floats_per_voxel(self) -> int:
         """Float64 values alive per voxel of a chunk: the animal blocks (covariance,
@@ -431,6 +472,15 @@ class _Structure:
         blocks = 8 * m * w * w + 6 * m * w * p + 8 * m * w
         info = 3 * J * J * p * p + 6 * J * J + 4 * J * p
         return int(WORKSPACE_FACTOR * (blocks + info))
+
+
+def _local_codes(S):
+    """Session codes (m, w; -1 padding) → 0, 1, ... within each animal (-1 padding)."""
+    local = np.full(S.shape, -1, dtype=np.int64)
+    for k in range(S.shape[0]):  # loop over animals, not voxels
+        valid = S[k] >= 0
+        _, local[k, valid] = np.unique(S[k, valid], return_inverse=True)
+    return local
 
 
 # --------------------------------------------------------------------------------------
@@ -516,187 +566,244 @@ def _solve_small(A, b):
 
 
 def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
-    """ℓ and the GLS quantities at φ; arrays (c, m, w), missing: pres 0, y 0, s2 0."""
+    """ℓ and the GLS quantities at φ; arrays (c, m, w), missing: pres 0, y 0, s2 0.
+
+    Returns a dict with ``theta``, the inverse blocks ``A`` (c, m, w, w; zero rows and
+    columns where a run is missing), ``E = ÃX`` per animal, ``Minv = (XᵀV⁻¹X)⁻¹``, the
+    GLS ``beta``, ``a = Ã r`` and the REML log-likelihood ``ll`` (−inf where V or XᵀV⁻¹X
+    is not positive definite). One compiled pass over voxels and animals.
+    """
     c, m, w = y.shape
     p = st.p
     theta = st.theta(phi)
-    pp = pres[..., :, None] * pres[..., None, :]
-    V = (theta @ st.G_flat).reshape(c, m, w, w) * pp
-    idx = np.arange(w)
-    V[..., idx, idx] += s2 * pres + (1.0 - pres)
-    A, logdet_v, ok = _cholesky_inverse(V)
-    ok = ok.all(axis=1)
-    A *= pp
-    E = A @ st.X  # (c, m, w, p): Ã X per animal
-    Ef = E.reshape(c, m * w, p)
-    M = st.X_flat.T @ Ef
-    M = 0.5 * (M + np.swapaxes(M, 1, 2))
-    rhs = (y.reshape(c, 1, m * w) @ Ef)[:, 0]
-    sign, logdet_m = np.linalg.slogdet(M)
-    ok &= sign > 0
-    Minv = np.linalg.inv(np.where(ok[:, None, None], M, np.eye(p)))
-    beta = (Minv @ rhs[..., None])[..., 0]
-    r = (y - (beta @ st.X_flat.T).reshape(c, m, w)) * pres
-    a = (A @ r[..., None])[..., 0]
-    quad = np.sum((r * a).reshape(c, -1), axis=1)
-    ll = -0.5 * (logdet_v.sum(axis=1) + logdet_m + quad + (n_obs - p) * _LOG_2PI)
-    ll = np.where(ok & np.isfinite(ll), ll, -np.inf)
+    A = np.empty((c, m, w, w))
+    E = np.empty((c, m, w, p))
+    a = np.empty((c, m, w))
+    Minv = np.empty((c, p, p))
+    beta = np.empty((c, p))
+    ll = np.empty(c)
+    _nb_evaluate(
+        np.ascontiguousarray(theta),
+        st.G_last,
+        st.X,
+        np.ascontiguousarray(y),
+        np.ascontiguousarray(s2),
+        np.ascontiguousarray(pres),
+        np.ascontiguousarray(n_obs, dtype=np.float64),
+        A,
+        E,
+        a,
+        Minv,
+        beta,
+        ll,
+    )
     return {"theta": theta, "A": A, "E": E, "Minv": Minv, "beta": beta, "a": a, "ll": ll}
 
 
-# reassociation and fused multiply-add only: NaN and infinity keep their meaning
-@lazy_njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc", "contract"})
-def _nb_block_sums(A, E, a, Minv, G, used, tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa):
-    """Per-voxel sums over animals of the block products that the REML score and
-    information need (see :func:`_information`); outputs are zeroed here."""
-    c, m, w, _ = A.shape
-    J = G.shape[0]
-    p = E.shape[3]
-    B = np.zeros((J, w, w))
-    CG = np.zeros((J, w, p))
-    ACG = np.zeros((J, w, p))
-    ACGM = np.zeros((J, w, p))
-    Ga = np.zeros((J, w))
-    AGa = np.zeros((J, w))
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_evaluate(theta, G, X, y, s2, pres, n_obs, A, E, a, Minv, beta, ll):  # G: (m, w, w, J)
+    """Compiled body of :func:`_evaluate`: per voxel, per animal V = Σ θ_j G_j +
+    diag(s²) (identity rows and columns where a run is missing), its Cholesky inverse
+    and log-determinant, then the GLS fit and the REML log-likelihood (Harville 1977)."""
+    c, m, w = y.shape
+    J = theta.shape[1]
+    p = X.shape[2]
+    V = np.zeros((w, w))
+    L = np.zeros((w, w))
+    Li = np.zeros((w, w))
+    M = np.zeros((p, p))
+    Lm = np.zeros((p, p))
+    Lmi = np.zeros((p, p))
+    rhs = np.zeros(p)
+    res = np.zeros(w)
     for t in range(c):
-        tr_ag[t] = 0.0
-        tr_bb[t] = 0.0
-        Q[t] = 0.0
-        tr_mr[t] = 0.0
-        Mt = Minv[t]
-        W1[t] = 0.0
-        EGa[t] = 0.0
-        gaa[t] = 0.0
+        good = True
+        logdet_v = 0.0
+        for q1 in range(p):
+            rhs[q1] = 0.0
+            for q2 in range(p):
+                M[q1, q2] = 0.0
         for k in range(m):
-            Ak = A[t, k]
-            Ek = E[t, k]
-            ak = a[t, k]
-            for j in range(J):
-                if not used[j, k]:
-                    continue
-                Gj = G[j, k]
-                for r in range(w):
-                    for s in range(w):
-                        acc = 0.0
-                        for u in range(w):
-                            acc += Ak[r, u] * Gj[u, s]
-                        B[j, r, s] = acc
-                    for q in range(p):
-                        acc = 0.0
-                        for u in range(w):
-                            acc += Gj[r, u] * Ek[u, q]
-                        CG[j, r, q] = acc
+            for r in range(w):
+                for s in range(r + 1):
+                    v = 0.0
+                    if pres[t, k, r] > 0.0 and pres[t, k, s] > 0.0:
+                        for j in range(J):
+                            v += theta[t, j] * G[k, r, s, j]
+                    V[r, s] = v
+                V[r, r] += s2[t, k, r] * pres[t, k, r] + (1.0 - pres[t, k, r])
+            # Cholesky factor, its inverse, and Ã = L⁻ᵀL⁻¹
+            for j in range(w):
+                d = V[j, j]
+                for u in range(j):
+                    d -= L[j, u] * L[j, u]
+                if not d > 0.0:
+                    good = False
+                    d = 1.0
+                piv = np.sqrt(d)
+                L[j, j] = piv
+                logdet_v += 2.0 * np.log(piv)
+                for i in range(j + 1, w):
+                    acc = V[i, j]
+                    for u in range(j):
+                        acc -= L[i, u] * L[j, u]
+                    L[i, j] = acc / piv
+            for i in range(w):
+                Li[i, i] = 1.0 / L[i, i]
+                for j in range(i):
                     acc = 0.0
-                    for u in range(w):
-                        acc += Gj[r, u] * ak[u]
-                    Ga[j, r] = acc
-                for r in range(w):
-                    for q in range(p):
-                        acc = 0.0
-                        for u in range(w):
-                            acc += Ak[r, u] * CG[j, u, q]
-                        ACG[j, r, q] = acc
-                    acc = 0.0
-                    for u in range(w):
-                        acc += Ak[r, u] * Ga[j, u]
-                    AGa[j, r] = acc
-                for r in range(w):  # Ã G_j Ã X M⁻¹
-                    for q in range(p):
-                        acc = 0.0
-                        for u in range(p):
-                            acc += ACG[j, r, u] * Mt[u, q]
-                        ACGM[j, r, q] = acc
-                for r in range(w):
-                    tr_ag[t, j] += B[j, r, r]
-                    gaa[t, j] += Ga[j, r] * ak[r]
-                    for q in range(p):
-                        EGa[t, j, q] += Ek[r, q] * Ga[j, r]
-                for q1 in range(p):
-                    for q2 in range(p):
-                        acc = 0.0
-                        for r in range(w):
-                            acc += Ek[r, q1] * CG[j, r, q2]
-                        Q[t, j, q1, q2] += acc
-            for i in range(J):
-                if not used[i, k]:
-                    continue
+                    for u in range(j, i):
+                        acc += L[i, u] * Li[u, j]
+                    Li[i, j] = -acc / L[i, i]
+            for i in range(w):
                 for j in range(i + 1):
-                    if not used[j, k]:
-                        continue
+                    acc = 0.0
+                    if pres[t, k, i] > 0.0 and pres[t, k, j] > 0.0:
+                        for u in range(i, w):
+                            acc += Li[u, i] * Li[u, j]
+                    A[t, k, i, j] = acc
+                    A[t, k, j, i] = acc
+            # E = ÃX, XᵀÃX and XᵀÃy summed over animals
+            for r in range(w):
+                for q in range(p):
+                    acc = 0.0
+                    for u in range(w):
+                        acc += A[t, k, r, u] * X[k, u, q]
+                    E[t, k, r, q] = acc
+            for q1 in range(p):
+                acc = 0.0
+                for r in range(w):
+                    acc += E[t, k, r, q1] * y[t, k, r]
+                rhs[q1] += acc
+                for q2 in range(q1 + 1):
                     acc = 0.0
                     for r in range(w):
-                        for s in range(w):
-                            acc += B[i, r, s] * B[j, s, r]
-                    tr_bb[t, i, j] += acc
-                    acc = 0.0
-                    for r in range(w):
-                        acc += Ga[i, r] * AGa[j, r]
-                    W1[t, i, j] += acc
-                    # tr(M⁻¹ XᵀÃG_iÃG_jÃX), symmetric in (i, j)
-                    acc = 0.0
-                    for r in range(w):
-                        for q in range(p):
-                            acc += CG[i, r, q] * ACGM[j, r, q]
-                    tr_mr[t, i, j] += acc
-        for i in range(J):
+                        acc += X[k, r, q1] * E[t, k, r, q2]
+                    M[q1, q2] += acc
+        # (XᵀV⁻¹X)⁻¹ by Cholesky; log|XᵀV⁻¹X|
+        logdet_m = 0.0
+        for j in range(p):
+            d = M[j, j]
+            for u in range(j):
+                d -= Lm[j, u] * Lm[j, u]
+            if not d > 0.0:
+                good = False
+                d = 1.0
+            piv = np.sqrt(d)
+            Lm[j, j] = piv
+            logdet_m += 2.0 * np.log(piv)
+            for i in range(j + 1, p):
+                acc = M[i, j]
+                for u in range(j):
+                    acc -= Lm[i, u] * Lm[j, u]
+                Lm[i, j] = acc / piv
+        for i in range(p):
+            Lmi[i, i] = 1.0 / Lm[i, i]
             for j in range(i):
-                tr_bb[t, j, i] = tr_bb[t, i, j]
-                W1[t, j, i] = W1[t, i, j]
-                tr_mr[t, j, i] = tr_mr[t, i, j]
+                acc = 0.0
+                for u in range(j, i):
+                    acc += Lm[i, u] * Lmi[u, j]
+                Lmi[i, j] = -acc / Lm[i, i]
+        for i in range(p):
+            for j in range(i + 1):
+                acc = 0.0
+                for u in range(i, p):
+                    acc += Lmi[u, i] * Lmi[u, j]
+                Minv[t, i, j] = acc
+                Minv[t, j, i] = acc
+        for q1 in range(p):
+            acc = 0.0
+            for q2 in range(p):
+                acc += Minv[t, q1, q2] * rhs[q2]
+            beta[t, q1] = acc
+        # residuals, a = Ã r and rᵀÃr
+        quad = 0.0
+        for k in range(m):
+            for r in range(w):
+                acc = y[t, k, r]
+                for q in range(p):
+                    acc -= X[k, r, q] * beta[t, q]
+                res[r] = acc * pres[t, k, r]
+            for r in range(w):
+                acc = 0.0
+                for u in range(w):
+                    acc += A[t, k, r, u] * res[u]
+                a[t, k, r] = acc
+                quad += res[r] * acc
+        value = -0.5 * (logdet_v + logdet_m + quad + (n_obs[t] - p) * _LOG_2PI)
+        if good and np.isfinite(value):
+            ll[t] = value
+        else:
+            ll[t] = -np.inf
 
 
-def _information(st: _Structure, ev):
+def _information(st: _Structure, ev, index=None):
     """REML score g, expected information F and observed ∂²ℓ H in θ, and Q_j.
 
     With P = V⁻¹ − V⁻¹X(XᵀV⁻¹X)⁻¹XᵀV⁻¹ and Py = Ã r (Harville 1977):
     ∂ℓ/∂θ_j = −½ tr(P G_j) + ½ yᵀP G_j P y, F_ij = ½ tr(P G_i P G_j) and
     ∂²ℓ/∂θ_i∂θ_j = F_ij − yᵀP G_i P G_j P y, each trace split into per-animal sums
-    (compiled loop over voxels and animals in :func:`_nb_block_sums`).
+    (compiled loop over voxels and animals on the low-rank form of the G_j, in
+    :func:`grouplevel.model.block_sums.block_sums`). ``index`` selects the voxels of
+    ``ev`` (all by default) without copying their blocks.
     """
-    A, E, Minv, a = ev["A"], ev["E"], ev["Minv"], ev["a"]
-    c, m, w, p = E.shape
-    J = st.J
-    tr_ag = np.empty((c, J))
-    tr_bb = np.empty((c, J, J))
-    Q = np.empty((c, J, p, p))
-    tr_mr = np.empty((c, J, J))
-    W1 = np.empty((c, J, J))
-    EGa = np.empty((c, J, p))
-    gaa = np.empty((c, J))
-    _nb_block_sums(
-        np.ascontiguousarray(A),
-        np.ascontiguousarray(E),
-        np.ascontiguousarray(a),
-        np.ascontiguousarray(Minv),
-        st.G,
-        st.used,
-        tr_ag,
-        tr_bb,
-        Q,
-        tr_mr,
-        W1,
-        EGa,
-        gaa,
-    )
-    MQ = Minv[:, None] @ Q
-    tr_mqmq = MQ.reshape(c, J, -1) @ np.swapaxes(MQ, -1, -2).reshape(c, J, -1).transpose(0, 2, 1)
-    F = 0.5 * (tr_bb - 2.0 * tr_mr + tr_mqmq)
-    F = 0.5 * (F + np.swapaxes(F, 1, 2))
-    tr_mq = np.trace(MQ, axis1=-2, axis2=-1)
-    g = -0.5 * (tr_ag - tr_mq) + 0.5 * gaa
-    W2 = EGa @ Minv @ np.swapaxes(EGa, 1, 2)
-    H = F - (W1 - W2)
-    H = 0.5 * (H + np.swapaxes(H, 1, 2))
-    return g, F, H, Q
+    Minv = ev["Minv"] if index is None else ev["Minv"][index]
+    c, J = Minv.shape[0], st.J
+    sums = block_sums(ev["A"], ev["E"], ev["a"], ev["Minv"], st.low_rank, index)
+    g = np.empty((c, J))
+    F = np.empty((c, J, J))
+    H = np.empty((c, J, J))
+    _nb_assemble(*sums, np.ascontiguousarray(Minv), g, F, H)
+    return g, F, H, sums[2]
 
 
-def _take(ev, idx):
-    return {k: v[idx] for k, v in ev.items()}
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_assemble(tr_ag, tr_bb, Q, tr_mr, W1, EGa, gaa, Minv, g, F, H):
+    """g, F and H of :func:`_information` from the per-animal sums, voxel by voxel:
+    with MQ_j = M⁻¹Q_j, F = ½[tr(ÃG_iÃG_j) − 2 tr_mr + tr(MQ_i MQ_j)],
+    g = −½[tr(ÃG_j) − tr(MQ_j)] + ½ aᵀG_ja, H = F − W1 + (XᵀÃG_ia)ᵀM⁻¹(XᵀÃG_ja)."""
+    c, J, p, _ = Q.shape
+    MQ = np.zeros((J, p, p))
+    ME = np.zeros((J, p))
+    for t in range(c):
+        for j in range(J):
+            for q1 in range(p):
+                acc2 = 0.0
+                for q2 in range(p):
+                    acc = 0.0
+                    for u in range(p):
+                        acc += Minv[t, q1, u] * Q[t, j, u, q2]
+                    MQ[j, q1, q2] = acc
+                    acc2 += Minv[t, q1, q2] * EGa[t, j, q2]
+                ME[j, q1] = acc2
+            tr_mq = 0.0
+            for q in range(p):
+                tr_mq += MQ[j, q, q]
+            g[t, j] = -0.5 * (tr_ag[t, j] - tr_mq) + 0.5 * gaa[t, j]
+        for i in range(J):
+            for j in range(i + 1):
+                tr_mqmq = 0.0
+                for q1 in range(p):
+                    for q2 in range(p):
+                        tr_mqmq += MQ[i, q1, q2] * MQ[j, q2, q1]
+                # both triangles of the (symmetric) sums, averaged as in the dense form
+                f_ij = 0.5 * (tr_bb[t, i, j] - 2.0 * tr_mr[t, i, j] + tr_mqmq)
+                f_ji = 0.5 * (tr_bb[t, j, i] - 2.0 * tr_mr[t, j, i] + tr_mqmq)
+                f = 0.5 * (f_ij + f_ji)
+                w2 = 0.0
+                for q in range(p):
+                    w2 += EGa[t, i, q] * ME[j, q]
+                h = f - 0.5 * (W1[t, i, j] + W1[t, j, i]) + w2
+                F[t, i, j] = f
+                F[t, j, i] = f
+                H[t, i, j] = h
+                H[t, j, i] = h
 
 
-def _put(ev, idx, new):
+def _put(ev, idx, new, src):
+    """Voxels ``idx`` of the evaluation ``ev`` replaced by voxels ``src`` of ``new``."""
     for k, v in new.items():
-        ev[k][idx] = v
+        ev[k][idx] = v[src]
 
 
 # --------------------------------------------------------------------------------------
@@ -710,7 +817,8 @@ def _scale_and_start(st: _Structure, y, s2, pres, n_obs):
     Returns (y, s2, scale2, fittable, phi0) with y and s2 scaled in place.
     """
     c = y.shape[0]
-    XtX = np.einsum("map,cma,maq->cpq", st.X, pres, st.X)
+    XX = st.X_flat[:, :, None] * st.X_flat[:, None, :]  # (m·w, p, p)
+    XtX = (pres.reshape(c, -1) @ XX.reshape(XX.shape[0], -1)).reshape(c, st.p, st.p)
     Xty = np.einsum("map,cma->cp", st.X, y)
     beta = _solve_small(XtX, Xty)
     r = (y - np.einsum("map,cp->cma", st.X, np.nan_to_num(beta))) * pres
@@ -732,7 +840,7 @@ def _scale_and_start(st: _Structure, y, s2, pres, n_obs):
     ridge = 1e-8 * (np.einsum("cmrr->cm", ZtZ) + 1.0)
     ZtZ = ZtZ + ridge[..., None, None] * np.eye(st.r)
     ZtZ_inv, _, _ = _cholesky_inverse(ZtZ)
-    b = np.einsum("cmrs,cmas,cma->cmr", ZtZ_inv, Zp, r)
+    b = (ZtZ_inv @ np.einsum("cmas,cma->cms", Zp, r)[..., None])[..., 0]
     e = (r - np.einsum("cmar,cmr->cma", Zp, b)) * pres
     n_a = pres.sum(axis=2)
     within_df = np.maximum(n_obs - np.minimum(n_a, st.r).sum(axis=1), 1)
@@ -786,19 +894,94 @@ def _session_moment(st: _Structure, e, pres, run_var):
 
 
 def _direction(st: _Structure, phi, g, F, H):
-    """Newton step in φ where −∂²ℓ/∂φ² is positive definite, else Fisher scoring."""
-    jac = 2.0 * np.einsum("jik,ck->cji", st.C, phi)  # ∂θ_j/∂φ_i
-    g_phi = np.einsum("cji,cj->ci", jac, g)
-    neg_h = -(np.swapaxes(jac, 1, 2) @ H @ jac + 2.0 * np.einsum("cj,jik->cik", g, st.C))
-    inv_h, _, ok_h = _cholesky_inverse(neg_h)
-    F_phi = np.swapaxes(jac, 1, 2) @ F @ jac
-    top = np.max(np.abs(np.diagonal(F_phi, axis1=1, axis2=2)), axis=1)
-    F_phi = F_phi + (FISHER_RIDGE * top + 1e-300)[:, None, None] * np.eye(st.J)
-    inv_f, _, ok_f = _cholesky_inverse(F_phi)
-    step = np.where(ok_h[:, None, None], inv_h, inv_f)
-    delta = np.einsum("cij,cj->ci", step, g_phi)
-    delta = np.where((ok_h | ok_f)[:, None] & np.isfinite(delta), delta, 0.0)
-    return delta, np.einsum("ci,ci->c", g_phi, delta)
+    """Newton step in φ where −∂²ℓ/∂φ² is positive definite, else Fisher scoring.
+
+    Returns (δ, gᵀδ) with g the score in φ (chain rule through θ(φ)); δ is 0 where
+    neither matrix is positive definite or the step is not finite.
+    """
+    c, J = phi.shape
+    delta = np.empty((c, J))
+    gain = np.empty(c)
+    _nb_direction(
+        np.ascontiguousarray(phi),
+        np.ascontiguousarray(g),
+        np.ascontiguousarray(F),
+        np.ascontiguousarray(H),
+        st.C,
+        FISHER_RIDGE,
+        delta,
+        gain,
+    )
+    return delta, gain
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_direction(phi, g, F, H, C, ridge, delta, gain):
+    """Compiled body of :func:`_direction`, voxel by voxel: with ∂θ_j/∂φ_i = 2 Σ_k C_jik φ_k,
+    −∂²ℓ/∂φ² = −(Jᵀ H J + 2 Σ_j g_j C_j) and the φ-space Fisher information Jᵀ F J
+    (plus a ridge relative to its largest diagonal element)."""
+    c, J = phi.shape
+    jac = np.zeros((J, J))
+    HJ = np.zeros((J, J))
+    FJ = np.zeros((J, J))
+    A = np.zeros((2, J, J))
+    inv = np.zeros((2, J, J))
+    logdet = np.zeros(2)
+    ok = np.zeros(2, dtype=np.bool_)
+    g_phi = np.zeros(J)
+    for t in range(c):
+        for j in range(J):
+            for i in range(J):
+                acc = 0.0
+                for k in range(J):
+                    acc += C[j, i, k] * phi[t, k]
+                jac[j, i] = 2.0 * acc
+        for i in range(J):
+            acc = 0.0
+            for j in range(J):
+                acc += g[t, j] * jac[j, i]
+            g_phi[i] = acc
+        for j in range(J):  # H J and F J
+            for b in range(J):
+                acc_h = 0.0
+                acc_f = 0.0
+                for k in range(J):
+                    acc_h += H[t, j, k] * jac[k, b]
+                    acc_f += F[t, j, k] * jac[k, b]
+                HJ[j, b] = acc_h
+                FJ[j, b] = acc_f
+        top = 0.0
+        for a in range(J):
+            for b in range(J):
+                acc_h = 0.0
+                acc_f = 0.0
+                acc_c = 0.0
+                for j in range(J):
+                    acc_h += jac[j, a] * HJ[j, b]
+                    acc_f += jac[j, a] * FJ[j, b]
+                    acc_c += g[t, j] * C[j, a, b]
+                A[0, a, b] = -(acc_h + 2.0 * acc_c)
+                A[1, a, b] = acc_f
+            top = max(top, abs(A[1, a, a]))
+        for a in range(J):
+            A[1, a, a] += ridge * top + 1e-300
+        _nb_spd_inverse(A, inv, logdet, ok)
+        use = 0 if ok[0] else 1
+        good = ok[0] or ok[1]
+        g_sum = 0.0
+        for i in range(J):
+            acc = 0.0
+            for j in range(J):
+                acc += inv[use, i, j] * g_phi[j]
+            delta[t, i] = acc
+            if not np.isfinite(acc):
+                good = False
+        if not good:
+            for i in range(J):
+                delta[t, i] = 0.0
+        for i in range(J):
+            g_sum += g_phi[i] * delta[t, i]
+        gain[t] = g_sum
 
 
 def _project_to_phi(st: _Structure, theta):
@@ -889,24 +1072,34 @@ def _escape_saddles(st: _Structure, phi, vox, g, ev, y, s2, pres, n_obs):
     ll0 = ev["ll"][sel]
     better = ev_t["ll"] > ll0 + FLAT_DECREMENT * (1.0 + np.abs(ll0))
     phi[sel[better]] = trial[better]
-    _put(ev, sel[better], _take(ev_t, better))
+    _put(ev, sel[better], ev_t, better)
     moved[np.nonzero(moved)[0][~better]] = False
     return moved
 
 
-def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol):
-    """Maximise the REML log-likelihood over φ for a chunk of (scaled) voxels."""
+def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol, n_iter=None, leave=0):
+    """Maximise the REML log-likelihood over φ for a chunk of (scaled) voxels.
+
+    Every voxel gets at most ``max_iter`` iterations in all (counting the ``n_iter``
+    it has had already). With ``leave`` > 0 the loop stops as soon as no more than
+    ``leave`` voxels are still iterating; those are returned as ``active`` (their φ and
+    counts as they stand) so that the slow voxels of many chunks can be continued
+    together. Each voxel's path depends on its own data only, so stopping and
+    continuing gives the same estimates as one uninterrupted loop.
+
+    Returns (φ, converged, n_iter, active).
+    """
     c = phi.shape[0]
     ev = _evaluate(st, phi, y, s2, pres, n_obs)
     converged = np.zeros(c, dtype=bool)
-    n_iter = np.zeros(c, dtype=np.int64)
-    active = np.isfinite(ev["ll"])
-    for _ in range(max_iter):
+    n_iter = np.zeros(c, dtype=np.int64) if n_iter is None else n_iter.copy()
+    active = np.isfinite(ev["ll"]) & (n_iter < max_iter)
+    while True:
         act = np.nonzero(active)[0]
-        if act.size == 0:
+        if act.size <= leave:
             break
-        cur = _take(ev, act)
-        g, F, H, _ = _information(st, cur)
+        cur = {"theta": ev["theta"][act], "ll": ev["ll"][act]}
+        g, F, H, _ = _information(st, ev, act)
         delta, gain = _direction(st, phi[act], g, F, H)
         theta = cur["theta"]
         step_theta = st.theta(phi[act] + delta) - theta
@@ -924,7 +1117,6 @@ def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol):
         pending = act[~small]
         d_pend = delta[~small]
         gain_pend = gain[~small]
-        alpha = 1.0
         n_iter[act] += 1
         # near a boundary, first try the projected θ-space step; keep it if it increases ℓ
         near = _near_boundary(st, theta[~small])
@@ -936,28 +1128,38 @@ def _iterate(st: _Structure, phi, y, s2, pres, n_obs, max_iter, tol):
             ll0 = ev["ll"][vox]
             up = ev_t["ll"] > ll0 + FLAT_DECREMENT * (1.0 + np.abs(ll0))
             phi[vox[up]] = trial[up]
-            _put(ev, vox[up], _take(ev_t, up))
+            _put(ev, vox[up], ev_t, up)
             keep = ~np.isin(pending, vox[up])
             pending, d_pend, gain_pend = pending[keep], d_pend[keep], gain_pend[keep]
-        for _half in range(MAX_STEP_HALVINGS + 1):
-            if pending.size == 0:
-                break
-            trial = phi[pending] + alpha * d_pend
-            ev_t = _evaluate(st, trial, y[pending], s2[pending], pres[pending], n_obs[pending])
+        tried = 0  # step lengths 1, 1/2, 1/4, ... tried so far
+        while pending.size and tried <= MAX_STEP_HALVINGS:
+            # the next 1, 1, 2, 4, ... lengths at once while few voxels are left (the
+            # same outcome as one after the other: each voxel keeps the first length
+            # that is accepted)
+            n_len = min(max(tried, 1), HALVING_BATCH // pending.size)
+            n_len = int(np.clip(n_len, 1, MAX_STEP_HALVINGS + 1 - tried))
+            alphas = 0.5 ** np.arange(tried, tried + n_len)
+            k = pending.size
+            trial = (phi[pending][None] + alphas[:, None, None] * d_pend[None]).reshape(-1, st.J)
+            rep = np.tile(pending, n_len)
+            ev_t = _evaluate(st, trial, y[rep], s2[rep], pres[rep], n_obs[rep])
             ll0 = ev["ll"][pending]
-            up = ev_t["ll"] >= ll0 - 1e-12 * (1.0 + np.abs(ll0))
-            acc = pending[up]
-            phi[acc] = trial[up]
-            _put(ev, acc, _take(ev_t, up))
-            pending, d_pend, gain_pend = pending[~up], d_pend[~up], gain_pend[~up]
-            alpha *= 0.5
+            up = (ev_t["ll"] >= np.tile(ll0 - 1e-12 * (1.0 + np.abs(ll0)), n_len)).reshape(n_len, k)
+            ok = up.any(axis=0)
+            first = np.argmax(up, axis=0)[ok] * k + np.nonzero(ok)[0]
+            acc = pending[ok]
+            phi[acc] = trial[first]
+            _put(ev, acc, ev_t, first)
+            pending, d_pend, gain_pend = pending[~ok], d_pend[~ok], gain_pend[~ok]
+            tried += n_len
         # no increase possible: at the optimum when the predicted gain is at the
         # precision of ℓ, otherwise a failure
         if pending.size:
             ll0 = ev["ll"][pending]
             converged[pending] = gain_pend <= FLAT_DECREMENT * (1.0 + np.abs(ll0))
             active[pending] = False
-    return phi, converged, n_iter
+        active &= n_iter < max_iter
+    return phi, converged, n_iter, active
 
 
 def _free_components(st: _Structure, theta):
@@ -1003,10 +1205,22 @@ def _finish(st: _Structure, phi, y, s2, pres, n_obs, scale2):
 
 
 def _pinv_stack(A):
+    """Pseudo-inverse of a stack of symmetric positive semi-definite matrices (NaN where
+    not finite). Where the Cholesky inverse exists and bounds the condition number
+    (cond₂ ≤ n² max|A| max|A⁻¹|) below ``1 / PINV_SAFE``, far from numpy's cut-off for
+    small singular values, the pseudo-inverse is that inverse; numpy's ``pinv``
+    elsewhere."""
+    n = A.shape[-1]
     out = np.full(A.shape, np.nan)
     good = np.isfinite(A).all(axis=(1, 2))
-    if good.any():
-        out[good] = np.linalg.pinv(A[good], hermitian=True)
+    inv, _, ok = _cholesky_inverse(np.where(good[:, None, None], A, np.eye(n)))
+    with np.errstate(invalid="ignore", over="ignore"):
+        bound = n * n * np.abs(A).max(axis=(1, 2)) * np.abs(inv).max(axis=(1, 2))
+        safe = good & ok & (bound * PINV_SAFE < 1.0)
+    out[safe] = inv[safe]
+    rest = good & ~safe
+    if rest.any():
+        out[rest] = np.linalg.pinv(A[rest], hermitian=True)
     return out
 
 
@@ -1179,17 +1393,39 @@ def fit_mixed(
         n_obs = pres.sum(axis=(1, 2))
         yc, s2, scale2, fittable, phi = _scale_and_start(st, yc, s2, pres, n_obs)
         fit_idx = np.nonzero(fittable)[0]
-        sub = (yc[fit_idx], s2[fit_idx], pres[fit_idx], n_obs[fit_idx])
-        phi, conv, its = _iterate(st, phi[fit_idx], *sub, max_iter, tol)
-        return idx[fit_idx], _finish(st, phi, *sub, scale2[fit_idx]), conv, its
+        sub = (yc[fit_idx], s2[fit_idx], pres[fit_idx], n_obs[fit_idx], scale2[fit_idx])
+        leave = int(STRAGGLER_SHARE * fit_idx.size)
+        phi, conv, its, left = _iterate(st, phi[fit_idx], *sub[:4], max_iter, tol, leave=leave)
+        done = ~left
+        res = _finish(st, phi[done], *(a[done] for a in sub)) if done.any() else {}
+        finished = (idx[fit_idx][done], res, conv[done], its[done])
+        slow = (idx[fit_idx][left], phi[left], its[left]) + tuple(a[left] for a in sub)
+        return finished, slow
 
-    # chunks of voxels in a few threads (numpy releases the GIL in its array work)
+    def store(target, res, conv, its):
+        if target.size == 0:
+            return
+        for key, value in res.items():
+            out[key][target] = value
+        converged[target] = conv & np.isfinite(res["loglik"])
+        n_iter[target] = its
+
+    # chunks of voxels in a few threads (numpy and the compiled kernels release the
+    # GIL); the few slow voxels of every chunk are then continued together
+    slow_parts = []
     with ThreadPoolExecutor(max_workers=n_threads) as pool:
-        for target, res, conv, its in pool.map(work, chunks):
-            for key, value in res.items():
-                out[key][target] = value
-            converged[target] = conv & np.isfinite(res["loglik"])
-            n_iter[target] = its
+        for finished, slow in pool.map(work, chunks):
+            store(*finished)
+            slow_parts.append(slow)
+    if any(part[0].size for part in slow_parts):
+        target, phi, its, *data = (np.concatenate(parts) for parts in zip(*slow_parts, strict=True))
+        for i in range(0, target.size, cs):
+            part = slice(i, i + cs)
+            sub = tuple(a[part] for a in data)
+            phi_s, conv, its_s, _ = _iterate(
+                st, phi[part], *sub[:4], max_iter, tol, n_iter=its[part]
+            )
+            store(target[part], _finish(st, phi_s, *sub), conv, its_s)
     theta = out["theta"]
     components = {name: theta[:, j] for j, name in enumerate(st.names)}
     var_run = components["run"] if st.est_run else np.where(np.isnan(out["loglik"]), np.nan, 0.0)
