@@ -67,6 +67,7 @@ from grouplevel.model import (
 from grouplevel.model.contrasts import session_df, slope_df
 from grouplevel.model.ftest import test_f
 from grouplevel.model.marginal import RandomTerms, marginal_run_variance
+from grouplevel.model.memory import REGION_AVERAGE_ARRAYS, chunk_rows, chunk_voxels, voxel_chunks
 from grouplevel.outputs.animal_maps import (
     RUN_VALUES_MAX,
     animal_maps_summary,
@@ -550,7 +551,9 @@ def _fit_first_level(
     for cname, c in fl.contrasts:
         with clock.step("test and correct"):
             gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
-            gm = replace(gm, animal_effects=_animal_effects(fitted, c))
+            gm = replace(
+                gm, animal_effects=_animal_effects(fitted, c, study.settings.compute.memory_gb)
+            )
         with clock.step("regions"):
             if regions is not None:
                 model = _region_model(study, fl, c)
@@ -583,7 +586,7 @@ def _run_labels(runs: pd.DataFrame, animal_ids) -> tuple[tuple[str, ...], ...]:
     )
 
 
-def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None:
+def _animal_effects(fitted: _FittedLevel, c: np.ndarray, memory_gb: float) -> AnimalEffects | None:
     """Each animal's own estimate of what ``c`` tests at every voxel (the data the
     permutation test rearranges), or None for a contrast without one (a within-animal
     column without a random slope, or a mix of levels)."""
@@ -596,14 +599,19 @@ def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None
     except ArgumentError:  # e.g. run-level columns: no per-animal reduction exists
         return None
     n_voxels = fitted.y.shape[1]
-    effect = np.full((design.n_animals, n_voxels), np.nan)
+    # float32 and int16, as written: m × voxels of each is held until the write step;
+    # filled a chunk of voxels at a time so that no float64 m × voxels copy is made
+    effect = np.full((design.n_animals, n_voxels), np.nan, dtype=np.float32)
     se = np.full_like(effect, np.nan)
-    precision = data.precision.T
-    with np.errstate(divide="ignore"):
-        effect[taking_part] = np.where(precision > 0, data.mean.T, np.nan)
-        se[taking_part] = np.where(precision > 0, 1.0 / np.sqrt(precision), np.nan)
-    indicator = np.zeros((design.n_animals, len(design.animal)))
-    indicator[design.animal, np.arange(len(design.animal))] = 1.0
+    chunk = chunk_voxels(design.n_animals, memory_gb)
+    for sl in voxel_chunks(n_voxels, chunk):
+        precision, mean = data.precision[sl].T, data.mean[sl].T
+        with np.errstate(divide="ignore"):
+            effect[taking_part, sl] = np.where(precision > 0, mean, np.nan)
+            se[taking_part, sl] = np.where(precision > 0, 1.0 / np.sqrt(precision), np.nan)
+    runs = np.zeros((design.n_animals, n_voxels), dtype=np.int16)
+    for a in range(design.n_animals):  # a loop over animals: no float copy of presence
+        runs[a] = fitted.present[design.animal == a].sum(axis=0)
     if kind == CONTRAST_ANIMAL and not random.extended and design.animal_level.all():
         what = "each animal's precision-weighted mean of its runs (σ² of the fit held fixed)"
     elif kind == CONTRAST_ANIMAL:
@@ -612,12 +620,11 @@ def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None
         what = f"each animal's own {design.columns[random.slope_columns[slope]]} slope (GLS)"
     else:
         what = "each animal's own combination of its slopes (GLS)"
-    # float32 and int16, as written: m × voxels of each is held until the write step
     return AnimalEffects(
         animals=tuple(str(a) for a in design.animal_ids),
-        effect=effect.astype(np.float32),
-        se=se.astype(np.float32),
-        runs=(indicator @ fitted.present).astype(np.int16),
+        effect=effect,
+        se=se,
+        runs=runs,
         run_labels=_run_labels(fitted.fl.runs, design.animal_ids),
         what=what,
         run_values=_run_values(fitted, design.animal_ids),
@@ -788,6 +795,9 @@ def _region_data(study: Study, fitted: _FittedLevel) -> RegionData | None:
         fitted.y,
         fitted.s2,
         study.settings.model.run_variance == "estimate",
+        chunk_rows=chunk_rows(
+            fitted.y.shape[1], study.settings.compute.memory_gb, REGION_AVERAGE_ARRAYS
+        ),
     )
 
 

@@ -164,8 +164,8 @@ def animal_level_data(
     var_run = np.asarray(var_run, dtype=float)
     var_animal = np.asarray(var_animal, dtype=float)
     n_vox = y.shape[1]
-    mean = np.empty((m, n_vox))
-    prec = np.empty((m, n_vox))
+    mean = np.empty((n_vox, m))  # (V, m) filled directly: no transposed copy at the end
+    prec = np.empty((n_vox, m))
     var_animal_used = np.empty(n_vox)
     # voxel chunks: the runs × voxels temporaries below stay chunk-sized
     for lo in range(0, n_vox, _CHUNK_VOXELS):
@@ -185,12 +185,12 @@ def animal_level_data(
         means = animal_means(
             yc, animal, n_animals=m, variance=vc, var_run=vr, present=present, floor=floor
         )
-        prec[:, sl] = means.precision
-        mean[:, sl] = np.where(means.precision > 0, means.mean, 0.0)
+        prec[sl] = means.precision.T
+        mean[sl] = np.where(means.precision > 0, means.mean, 0.0).T
     var_animal = var_animal_used
     return AnimalLevelData(
-        mean=np.ascontiguousarray(mean.T),
-        precision=np.ascontiguousarray(prec.T),
+        mean=mean,
+        precision=prec,
         design=Xa,
         var_animal=var_animal,
     )
