@@ -149,17 +149,26 @@ def component_files(components: dict[str, np.ndarray]) -> dict[str, tuple[str, s
 # that its full-grid float64 copies stay small on large studies (our own choice; 30 maps
 # already estimate the FWHM within a few percent, see tests/test_smoothness.py).
 SMOOTHNESS_MAX_RUNS = 32
+# voxels standardised together when no budget is given (the run passes its own)
 _SMOOTHNESS_CHUNK = 65536
 
 
 def _smoothness(
-    y, variance, fit, X, animal, terms: RandomTerms, mask: np.ndarray, grid: Grid
+    y,
+    variance,
+    fit,
+    X,
+    animal,
+    terms: RandomTerms,
+    mask: np.ndarray,
+    grid: Grid,
+    chunk: int = _SMOOTHNESS_CHUNK,
 ) -> Smoothness | None:
     """Residual smoothness from standardised residuals (Kiebel et al. 1999).
 
     Each run's residual is divided by its marginal standard deviation under the model
     that was fitted (random slopes, session and group variances included:
-    :func:`grouplevel.model.marginal.marginal_run_variance`).
+    :func:`grouplevel.model.marginal.marginal_run_variance`), ``chunk`` voxels at a time.
     """
     n_runs, n_vox = y.shape
     dof_all = n_runs - np.linalg.matrix_rank(X)
@@ -168,8 +177,7 @@ def _smoothness(
     runs = np.unique(np.linspace(0, n_runs - 1, min(n_runs, SMOOTHNESS_MAX_RUNS)).round())
     runs = runs.astype(int)
     standard = np.zeros((runs.size, n_vox), dtype=np.float32)
-    for lo in range(0, n_vox, _SMOOTHNESS_CHUNK):
-        sl = slice(lo, min(n_vox, lo + _SMOOTHNESS_CHUNK))
+    for sl in voxel_chunks(n_vox, chunk):
         resid = np.asarray(y[runs, sl], dtype=float) - X[runs] @ fit.beta[sl].T
         components = {k: np.asarray(v)[sl] for k, v in _components(fit).items()}
         s2 = None if variance is None else variance[:, sl]
@@ -515,15 +523,25 @@ class _FittedLevel:
         default_factory=dict
     )
 
+    def _reduced_key(self, c: np.ndarray) -> tuple:
+        # the reduced data depend on the level tested; the reduced contrast on c itself
+        kind, slope = contrast_kind(self.fl.design, self.fl.random, c)
+        return (kind, slope, tuple(c))
+
     def reduced_for(self, c: np.ndarray) -> tuple[AnimalLevelData, np.ndarray, np.ndarray]:
         """:func:`_reduced_data` for contrast ``c``, shared by contrasts of one level."""
-        design, random = self.fl.design, self.fl.random
-        kind, slope = contrast_kind(design, random, c)
-        # the reduced data depend on the level tested; the reduced contrast on c itself
-        key = (kind, slope, tuple(c))
+        key = self._reduced_key(c)
         if key not in self.reduced:
+            design, random = self.fl.design, self.fl.random
             self.reduced[key] = _reduced_data(self.y, self.s2, self.fit, design, random, c)
         return self.reduced[key]
+
+    def keep_reduced(self, still_needed: list[np.ndarray]) -> None:
+        """Forget the reduced data no contrast in ``still_needed`` uses (they are
+        animals × voxels arrays; the questions need the memory)."""
+        keep = {self._reduced_key(c) for c in still_needed}
+        for key in [k for k in self.reduced if k not in keep]:
+            del self.reduced[key]
 
 
 def _fit_first_level(
@@ -548,7 +566,9 @@ def _fit_first_level(
     with clock.step("regions"):
         regions = _region_data(study, fitted)
     results = []
-    for cname, c in fl.contrasts:
+    # what the permutations of later contrasts and of the F-tests may reduce the data for
+    later = [c for _, c in fl.contrasts] + [np.abs(ft.weights).sum(axis=0) for ft in fl.ftests]
+    for i, (cname, c) in enumerate(fl.contrasts):
         with clock.step("test and correct"):
             gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
             gm = replace(
@@ -559,6 +579,7 @@ def _fit_first_level(
                 model = _region_model(study, fl, c)
                 tables = region_tables(gm, regions, fl.design, c, study.settings, model=model)
                 gm = replace(gm, tables=tables)
+        fitted.keep_reduced(later[i + 1 :])
         with clock.step("questions"):
             results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
     for ft in fl.ftests:
@@ -730,7 +751,15 @@ def _fit(
         components=_components(fit),
         var_animal=_pooled_var_animal(fit, random),
         smooth=_smoothness(
-            y, s2, fit, design.matrix, design.animal, random_terms(design, random), mask, study.grid
+            y,
+            s2,
+            fit,
+            design.matrix,
+            design.animal,
+            random_terms(design, random),
+            mask,
+            study.grid,
+            chunk_voxels(y.shape[0], settings.compute.memory_gb),
         ),
     )
 

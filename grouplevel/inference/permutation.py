@@ -82,7 +82,7 @@ _TZ_POINTS = 4001
 _TZ_MAX_T = 1e8
 _MAX_DF_TABLES = 64
 # Voxels per chunk when reducing runs to animal means (keeps temporaries small).
-_CHUNK_VOXELS = 65536
+_CHUNK_VOXELS = 16384  # runs × chunk float64 temporaries: ~25 MiB each at 200 runs
 # Where σ² is folded into τ² (no animal with two runs) and a run has no first-level
 # variance, its sampling variance is floored at this share of the voxel's total variance
 # τ̂² + σ̂², which keeps the floor relative to the data's scale (our own choice: far below

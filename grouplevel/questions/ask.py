@@ -33,7 +33,7 @@ flags an edge/rim or artefact-label pattern, the symmetry and consistency verdic
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -707,6 +707,9 @@ def answer_questions(
         in_runs,
         settings.compute.memory_gb,
     )
+    # the answers keep the leave-one-out numbers, not the (animals, voxels) maps that
+    # only the run quality reads: they would be held until the outputs are written
+    loo = replace(loo, effect=None)
     response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
     if regions is None:
         reason = "the study has no [atlas], so no region can be asked about"
@@ -841,6 +844,8 @@ def answers_not_asked(
             questions.outlier_z,
             terms,
             settings.model.run_variance == "estimate" or s2 is None,
+            loo_chunk=_loo_chunk(settings, y.shape[0], design.n_animals),
+            chunk_rows=_row_chunk(settings.compute.memory_gb, y.shape[1], RUN_SCORE_ARRAYS),
         )
         if quality is None:
             not_assessed["run_quality"] = (
@@ -857,14 +862,30 @@ def answers_not_asked(
         surviving = surviving_voxels(gm, alpha)[method]
         response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
         spec = _target_specificity(
-            gm, y, design, c, regions.atlas, surviving, shell, questions, terms, model_df
+            gm,
+            y,
+            design,
+            c,
+            regions.atlas,
+            surviving,
+            shell,
+            questions,
+            terms,
+            model_df,
+            _row_chunk(settings.compute.memory_gb, y.shape[1], REGION_AVERAGE_ARRAYS),
         )
         if sides is None:
             not_assessed["consistency"] = "the runs table was not given to the questions"
         elif sides.reason:
             not_assessed["consistency"] = sides.reason
         else:
-            values = target_values(y, design, regions.atlas, questions)
+            values = target_values(
+                y,
+                design,
+                regions.atlas,
+                questions,
+                _row_chunk(settings.compute.memory_gb, y.shape[1], REGION_AVERAGE_ARRAYS),
+            )
             cons, why = difference_consistency(values, design, c, sides, terms, model_df)
             if cons is None:
                 not_assessed["consistency"] = why

@@ -1094,7 +1094,8 @@ class LooMaps:
         ``(V,)`` full-data t and effect maps.
     effect
         ``(m, V)`` the group effect map without each animal (NaN row when that refit
-        was not possible).
+        was not possible); None in the answers of a group map, which keep only the
+        numbers below once the run quality has read the maps.
     correlation
         ``(m,)`` Pearson correlation of each LOO t map with the full t map (over voxels
         finite in both).
@@ -1105,7 +1106,7 @@ class LooMaps:
     animal_ids: tuple[str, ...]
     t_full: np.ndarray
     effect_full: np.ndarray
-    effect: np.ndarray
+    effect: np.ndarray | None
     correlation: np.ndarray
     max_abs_dt: np.ndarray
 

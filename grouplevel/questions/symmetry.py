@@ -62,7 +62,7 @@ from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
 from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
-from grouplevel.model.memory import BOOTSTRAP_ARRAYS, chunk_rows
+from grouplevel.model.memory import BOOTSTRAP_ARRAYS, chunk_rows, chunk_voxels, voxel_chunks
 from grouplevel.questions.verdicts import (  # noqa: F401  (the rule's names, re-exported here)
     BILATERAL_EQUIVALENT,
     BILATERAL_UNRESOLVED,
@@ -411,6 +411,16 @@ def _animal_means(y, present, animal, variance, var_run):
     return np.where(means.has_data, means.mean, 0.0), means.has_data
 
 
+def _pair_animal_means(y, present, animal, variance, var_run, rows, cols, sign):
+    """(m, k) animal means and 'has data' of ``sign`` × the runs ``rows`` at the voxels
+    ``cols`` (only those are copied, then made float64)."""
+    sub = np.ix_(rows, cols)
+    sub_var = None if variance is None else np.asarray(np.asarray(variance)[sub], dtype=float)
+    sub_run = None if var_run is None else np.asarray(var_run, dtype=float)[cols]
+    sub_y = sign * np.asarray(y[sub], dtype=float)
+    return _animal_means(sub_y, present[sub], animal, sub_var, sub_run)
+
+
 def _shortcut_maps(
     counts: np.ndarray, means: np.ndarray, has: np.ndarray, threshold: float
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -452,6 +462,8 @@ def bootstrap_li(
     n_boot: int = DEFAULT_BOOTSTRAP,
     confidence: float = CONFIDENCE_LEVEL,
     rng: np.random.Generator,
+    rows: np.ndarray | None = None,
+    sign: float = 1.0,
     memory_gb: float | None = None,
 ) -> BootstrapLI:
     """Percentile bootstrap intervals of the extent and effect LIs, resampling animals.
@@ -471,7 +483,7 @@ def bootstrap_li(
     y, present
         ``(n_runs, V)`` first-level effects and their presence.
     animal
-        ``(n_runs,)`` animal codes ``0..m-1``.
+        ``(n_runs,)`` animal codes ``0..m-1`` (of ``rows`` when given).
     left_cols, right_cols
         In-mask voxel indices (columns of ``y``) of the left and right region.
     left_weights, right_weights
@@ -485,10 +497,16 @@ def bootstrap_li(
         Replicates and interval level.
     rng
         Source of the resampling.
+    rows
+        The runs resampled (rows of ``y``, ``present`` and ``variance``; default all):
+        only their values at the pair's voxels are copied.
+    sign
+        The maps are multiplied by it (−1: the LIs of a negative response).
     memory_gb
-        Budget in GiB (``[compute] memory_gb``) for the replicates' maps, each
-        ``(replicates, pair voxels)``: fewer replicates are mapped together when the
-        pair is large (default: :data:`_BOOT_CHUNK`). The numbers do not depend on it.
+        Budget in GiB (``[compute] memory_gb``): the pair's runs are read a chunk of
+        voxels at a time (:func:`grouplevel.model.memory.chunk_voxels`), and fewer
+        replicates are mapped together when the pair is large (default: all voxels,
+        :data:`_BOOT_CHUNK` replicates). The numbers do not depend on it.
 
     Returns
     -------
@@ -513,7 +531,8 @@ def bootstrap_li(
     y = np.asarray(y)
     present = np.asarray(present, dtype=bool)
     animal = np.asarray(animal, dtype=np.int64)
-    if y.ndim != 2 or present.shape != y.shape or animal.shape != (y.shape[0],):
+    rows = np.arange(len(y)) if rows is None else np.asarray(rows, dtype=np.intp).ravel()
+    if y.ndim != 2 or present.shape != y.shape or animal.shape != rows.shape:
         raise ValueError("y, present must be (runs, V) and animal (runs,)")
     if int(n_boot) < 1:
         raise ArgumentError(f"n_boot = {n_boot}: a bootstrap needs at least 1 replicate.")
@@ -525,11 +544,16 @@ def bootstrap_li(
     rw = _weights(right_cols, right_weights, "right_weights")
     cols = np.concatenate([left_cols, right_cols])
     nl = len(left_cols)
-    # the region pair's columns only, then float64
-    sub_var = None if variance is None else np.asarray(np.asarray(variance)[:, cols], dtype=float)
-    sub_run = None if var_run is None else np.asarray(var_run, dtype=float)[cols]
-    sub_y = np.asarray(y[:, cols], dtype=float)
-    means, has = _animal_means(sub_y, present[:, cols], animal, sub_var, sub_run)
+    if memory_gb is not None:  # the pair's runs × voxels are read a chunk at a time
+        chunk = chunk_voxels(len(rows), memory_gb)
+        parts = [
+            _pair_animal_means(y, present, animal, variance, var_run, rows, cols[sl], sign)
+            for sl in voxel_chunks(len(cols), chunk)
+        ]
+        means = np.concatenate([p[0] for p in parts], axis=1)
+        has = np.concatenate([p[1] for p in parts], axis=1)
+    else:
+        means, has = _pair_animal_means(y, present, animal, variance, var_run, rows, cols, sign)
     m = means.shape[0]
 
     def lis(counts):
@@ -1161,19 +1185,18 @@ def _pair_laterality(
         extent_amount(zs[lc], lw, threshold), extent_amount(zs[rc], rw, threshold)
     )
     li_effect = laterality(effect_amount(es[lc], lw), effect_amount(es[rc], rw))
-    # only the pair's voxels of the resampled runs: a (runs, pair voxels) copy
-    cols = np.concatenate([lc, rc])
-    sub = np.ix_(rows, cols)
     boot = bootstrap_li(
-        flip * np.asarray(yb[sub], dtype=float),
-        present_b[sub],
+        yb,
+        present_b,
         animal_b,
-        np.arange(len(lc)),
-        np.arange(len(lc), len(cols)),
+        lc,
+        rc,
+        rows=rows,
+        sign=flip,
         left_weights=lw,
         right_weights=rw,
-        variance=None if variance_b is None else variance_b[sub],
-        var_run=None if var_run is None else np.asarray(var_run)[cols],
+        variance=variance_b,
+        var_run=var_run,
         threshold=threshold,
         n_boot=n_boot,
         rng=rng,

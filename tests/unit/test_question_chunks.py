@@ -170,15 +170,32 @@ def test_region_values_and_target_means_in_blocks_of_runs():
     _same(_weighted_run_means(y, target, 4), _weighted_run_means(y, target))
 
 
-def test_bootstrap_replicates_mapped_in_small_blocks_equal_one_block():
-    # a tiny budget maps one replicate at a time; the draws and every LI are unchanged
-    y, s2, _, animal = _data(n_vox=50)
+def test_bootstrap_in_chunks_of_voxels_and_replicates_equals_one_pass():
+    # a tiny budget reads the pair's voxels MIN_CHUNK_VOXELS at a time and maps one
+    # replicate at a time; the draws and every LI are unchanged
+    y, s2, _, animal = _data(n_vox=700)
     present = np.isfinite(y) & np.isfinite(s2)
-    args = (y, present, animal, np.arange(0, 20), np.arange(25, 50))
-    kwargs = {"variance": s2, "var_run": np.full(50, 0.1), "threshold": 1.0, "n_boot": 300}
+    args = (y, present, animal, np.arange(0, 300), np.arange(350, 700))
+    kwargs = {"variance": s2, "var_run": np.full(700, 0.1), "threshold": 1.0, "n_boot": 300}
     one = bootstrap_li(*args, rng=np.random.default_rng(3), **kwargs)
     many = bootstrap_li(*args, rng=np.random.default_rng(3), memory_gb=1e-9, **kwargs)
     _same(many.extent_replicates, one.extent_replicates)
     _same(many.effect_replicates, one.effect_replicates)
     assert many.effect_ci == pytest.approx(one.effect_ci, rel=RTOL)
     assert np.isfinite(one.effect_replicates).all()
+    # some runs, sign-flipped, without a copy: the same as the copied, flipped runs
+    keep = np.flatnonzero(animal >= 2)
+    copied = bootstrap_li(
+        -y[keep].astype(float),
+        present[keep],
+        animal[keep] - 2,
+        *args[3:],
+        rng=np.random.default_rng(4),
+        **{**kwargs, "variance": s2[keep]},
+    )
+    picked = bootstrap_li(
+        *args[:2], animal[keep] - 2, *args[3:], rows=keep, sign=-1.0, memory_gb=1e-9,
+        rng=np.random.default_rng(4), **kwargs,
+    )  # fmt: skip
+    _same(picked.effect_replicates, copied.effect_replicates)
+    _same(picked.extent_replicates, copied.extent_replicates)
