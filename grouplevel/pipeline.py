@@ -73,6 +73,7 @@ from grouplevel.model import (
 from grouplevel.model.contrasts import session_df, slope_df
 from grouplevel.model.ftest import test_f
 from grouplevel.model.marginal import RandomTerms, marginal_run_variance
+from grouplevel.model.memory import REGION_AVERAGE_ARRAYS, chunk_rows, chunk_voxels, voxel_chunks
 from grouplevel.outputs.animal_maps import (
     RUN_VALUES_MAX,
     animal_maps_summary,
@@ -154,17 +155,26 @@ def component_files(components: dict[str, np.ndarray]) -> dict[str, tuple[str, s
 # that its full-grid float64 copies stay small on large studies (our own choice; 30 maps
 # already estimate the FWHM within a few percent, see tests/test_smoothness.py).
 SMOOTHNESS_MAX_RUNS = 32
+# voxels standardised together when no budget is given (the run passes its own)
 _SMOOTHNESS_CHUNK = 65536
 
 
 def _smoothness(
-    y, variance, fit, X, animal, terms: RandomTerms, mask: np.ndarray, grid: Grid
+    y,
+    variance,
+    fit,
+    X,
+    animal,
+    terms: RandomTerms,
+    mask: np.ndarray,
+    grid: Grid,
+    chunk: int = _SMOOTHNESS_CHUNK,
 ) -> Smoothness | None:
     """Residual smoothness from standardised residuals (Kiebel et al. 1999).
 
     Each run's residual is divided by its marginal standard deviation under the model
     that was fitted (random slopes, session and group variances included:
-    :func:`grouplevel.model.marginal.marginal_run_variance`).
+    :func:`grouplevel.model.marginal.marginal_run_variance`), ``chunk`` voxels at a time.
     """
     n_runs, n_vox = y.shape
     dof_all = n_runs - np.linalg.matrix_rank(X)
@@ -173,8 +183,7 @@ def _smoothness(
     runs = np.unique(np.linspace(0, n_runs - 1, min(n_runs, SMOOTHNESS_MAX_RUNS)).round())
     runs = runs.astype(int)
     standard = np.zeros((runs.size, n_vox), dtype=np.float32)
-    for lo in range(0, n_vox, _SMOOTHNESS_CHUNK):
-        sl = slice(lo, min(n_vox, lo + _SMOOTHNESS_CHUNK))
+    for sl in voxel_chunks(n_vox, chunk):
         resid = np.asarray(y[runs, sl], dtype=float) - X[runs] @ fit.beta[sl].T
         components = {k: np.asarray(v)[sl] for k, v in _components(fit).items()}
         s2 = None if variance is None else variance[:, sl]
@@ -562,15 +571,25 @@ class _FittedLevel:
         default_factory=dict
     )
 
+    def _reduced_key(self, c: np.ndarray) -> tuple:
+        # the reduced data depend on the level tested; the reduced contrast on c itself
+        kind, slope = contrast_kind(self.fl.design, self.fl.random, c)
+        return (kind, slope, tuple(c))
+
     def reduced_for(self, c: np.ndarray) -> tuple[AnimalLevelData, np.ndarray, np.ndarray]:
         """:func:`_reduced_data` for contrast ``c``, shared by contrasts of one level."""
-        design, random = self.fl.design, self.fl.random
-        kind, slope = contrast_kind(design, random, c)
-        # the reduced data depend on the level tested; the reduced contrast on c itself
-        key = (kind, slope, tuple(c))
+        key = self._reduced_key(c)
         if key not in self.reduced:
+            design, random = self.fl.design, self.fl.random
             self.reduced[key] = _reduced_data(self.y, self.s2, self.fit, design, random, c)
         return self.reduced[key]
+
+    def keep_reduced(self, still_needed: list[np.ndarray]) -> None:
+        """Forget the reduced data no contrast in ``still_needed`` uses (they are
+        animals × voxels arrays; the questions need the memory)."""
+        keep = {self._reduced_key(c) for c in still_needed}
+        for key in [k for k in self.reduced if k not in keep]:
+            del self.reduced[key]
 
 
 def _fit_first_level(
@@ -595,15 +614,20 @@ def _fit_first_level(
     with clock.step("regions"):
         regions = _region_data(study, fitted)
     results = []
-    for cname, c in fl.contrasts:
+    # what the permutations of later contrasts and of the F-tests may reduce the data for
+    later = [c for _, c in fl.contrasts] + [np.abs(ft.weights).sum(axis=0) for ft in fl.ftests]
+    for i, (cname, c) in enumerate(fl.contrasts):
         with clock.step("test and correct"):
             gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
-            gm = replace(gm, animal_effects=_animal_effects(fitted, c))
+            gm = replace(
+                gm, animal_effects=_animal_effects(fitted, c, study.settings.compute.memory_gb)
+            )
         with clock.step("regions"):
             if regions is not None:
                 model = _region_model(study, fl, c)
                 tables = region_tables(gm, regions, fl.design, c, study.settings, model=model)
                 gm = replace(gm, tables=tables)
+        fitted.keep_reduced(later[i + 1 :])
         with clock.step("questions"):
             results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
     for ft in fl.ftests:
@@ -631,7 +655,7 @@ def _run_labels(runs: pd.DataFrame, animal_ids) -> tuple[tuple[str, ...], ...]:
     )
 
 
-def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None:
+def _animal_effects(fitted: _FittedLevel, c: np.ndarray, memory_gb: float) -> AnimalEffects | None:
     """Each animal's own estimate of what ``c`` tests at every voxel (the data the
     permutation test rearranges), or None for a contrast without one (a within-animal
     column without a random slope, or a mix of levels)."""
@@ -644,14 +668,19 @@ def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None
     except ArgumentError:  # e.g. run-level columns: no per-animal reduction exists
         return None
     n_voxels = fitted.y.shape[1]
-    effect = np.full((design.n_animals, n_voxels), np.nan)
+    # float32 and int16, as written: m × voxels of each is held until the write step;
+    # filled a chunk of voxels at a time so that no float64 m × voxels copy is made
+    effect = np.full((design.n_animals, n_voxels), np.nan, dtype=np.float32)
     se = np.full_like(effect, np.nan)
-    precision = data.precision.T
-    with np.errstate(divide="ignore"):
-        effect[taking_part] = np.where(precision > 0, data.mean.T, np.nan)
-        se[taking_part] = np.where(precision > 0, 1.0 / np.sqrt(precision), np.nan)
-    indicator = np.zeros((design.n_animals, len(design.animal)))
-    indicator[design.animal, np.arange(len(design.animal))] = 1.0
+    chunk = chunk_voxels(design.n_animals, memory_gb)
+    for sl in voxel_chunks(n_voxels, chunk):
+        precision, mean = data.precision[sl].T, data.mean[sl].T
+        with np.errstate(divide="ignore"):
+            effect[taking_part, sl] = np.where(precision > 0, mean, np.nan)
+            se[taking_part, sl] = np.where(precision > 0, 1.0 / np.sqrt(precision), np.nan)
+    runs = np.zeros((design.n_animals, n_voxels), dtype=np.int16)
+    for a in range(design.n_animals):  # a loop over animals: no float copy of presence
+        runs[a] = fitted.present[design.animal == a].sum(axis=0)
     if kind == CONTRAST_ANIMAL and not random.extended and design.animal_level.all():
         what = "each animal's precision-weighted mean of its runs (σ² of the fit held fixed)"
     elif kind == CONTRAST_ANIMAL:
@@ -660,12 +689,11 @@ def _animal_effects(fitted: _FittedLevel, c: np.ndarray) -> AnimalEffects | None
         what = f"each animal's own {design.columns[random.slope_columns[slope]]} slope (GLS)"
     else:
         what = "each animal's own combination of its slopes (GLS)"
-    # float32 and int16, as written: m × voxels of each is held until the write step
     return AnimalEffects(
         animals=tuple(str(a) for a in design.animal_ids),
-        effect=effect.astype(np.float32),
-        se=se.astype(np.float32),
-        runs=(indicator @ fitted.present).astype(np.int16),
+        effect=effect,
+        se=se,
+        runs=runs,
         run_labels=_run_labels(fitted.fl.runs, design.animal_ids),
         what=what,
         run_values=_run_values(fitted, design.animal_ids),
@@ -771,7 +799,15 @@ def _fit(
         components=_components(fit),
         var_animal=_pooled_var_animal(fit, random),
         smooth=_smoothness(
-            y, s2, fit, design.matrix, design.animal, random_terms(design, random), mask, study.grid
+            y,
+            s2,
+            fit,
+            design.matrix,
+            design.animal,
+            random_terms(design, random),
+            mask,
+            study.grid,
+            chunk_voxels(y.shape[0], settings.compute.memory_gb),
         ),
     )
 
@@ -836,6 +872,9 @@ def _region_data(study: Study, fitted: _FittedLevel) -> RegionData | None:
         fitted.y,
         fitted.s2,
         study.settings.model.run_variance == "estimate",
+        chunk_rows=chunk_rows(
+            fitted.y.shape[1], study.settings.compute.memory_gb, REGION_AVERAGE_ARRAYS
+        ),
     )
 
 

@@ -551,7 +551,7 @@ def _weighted_sums(shares: sp.spmatrix, values: np.ndarray) -> np.ndarray:
 
 
 def region_values(
-    y: np.ndarray, present: np.ndarray, shares: sp.spmatrix
+    y: np.ndarray, present: np.ndarray, shares: sp.spmatrix, *, chunk_rows: int | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
     """Share-weighted mean of each run's in-mask values over each region.
 
@@ -564,6 +564,10 @@ def region_values(
         whatever ``present`` says.
     shares
         ``(V, n_regions)`` sparse shares (:attr:`Atlas.shares`).
+    chunk_rows
+        Runs averaged together (default all), each block converted to float64 on its
+        own; a run's averages are its own, so the block size changes only the memory
+        used (:func:`grouplevel.model.memory.chunk_rows` sizes it for a budget).
 
     Returns
     -------
@@ -580,17 +584,22 @@ def region_values(
     Poldrack RA (2007). Soc Cogn Affect Neurosci 2:67-70.
     """
     shares = sp.csr_matrix(shares)
-    y = _as_runs_by_voxels(np.asarray(y, dtype=float), shares, "y")
+    y = _as_runs_by_voxels(np.asarray(y), shares, "y")
     present = _as_runs_by_voxels(np.asarray(present, dtype=bool), shares, "present")
     if present.shape != y.shape:
         raise ValueError(f"present {present.shape} and y {y.shape} differ in shape")
-    present = present & np.isfinite(y)
-    weight = _weighted_sums(shares, present.astype(float))
+    n = y.shape[0]
+    step = max(1, n if chunk_rows is None else int(chunk_rows))
+    weight = np.empty((n, shares.shape[1]))
+    sums = np.empty((n, shares.shape[1]))
+    for lo in range(0, n, step):  # blocks of runs, not voxels
+        yb = np.asarray(y[lo : lo + step], dtype=float)
+        pb = present[lo : lo + step] & np.isfinite(yb)
+        weight[lo : lo + step] = _weighted_sums(shares, pb.astype(float))
+        sums[lo : lo + step] = _weighted_sums(shares, np.where(pb, yb, 0.0))
     total = np.asarray(shares.sum(axis=0)).ravel()
     with np.errstate(invalid="ignore", divide="ignore"):
-        values = np.where(
-            weight > 0, _weighted_sums(shares, np.where(present, y, 0.0)) / weight, np.nan
-        )
+        values = np.where(weight > 0, sums / weight, np.nan)
         coverage = np.where(total > 0, weight / total, np.nan)
     return values, coverage
 

@@ -71,6 +71,7 @@ def region_data(
     y: np.ndarray,
     variance: np.ndarray | None,
     estimate_run_variance: bool,
+    chunk_rows: int | None = None,
 ) -> RegionData:
     """Average every run over every region (leaves and parents).
 
@@ -79,10 +80,12 @@ def region_data(
     correlated within a region), and the run-to-run spread that σ² captures already
     contains it. With ``run_variance = "known"`` (σ² = 0) the conservative bound of
     fully correlated noise is used (:func:`grouplevel.regions.region_variances`).
+    ``chunk_rows`` runs are averaged together (default all; see
+    :func:`grouplevel.anatomy.regions.region_values`).
     """
     restricted = restrict_atlas(atlas, atlas_mask, mask)
     present = np.isfinite(y)
-    values, _coverage = region_values(y, present, restricted.shares)
+    values, _coverage = region_values(y, present, restricted.shares, chunk_rows=chunk_rows)
     variances = None
     if variance is not None and not estimate_run_variance:
         variances = region_variances(variance, present, restricted.shares)

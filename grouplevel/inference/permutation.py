@@ -86,7 +86,7 @@ _TZ_POINTS = 4001
 _TZ_MAX_T = 1e8
 _MAX_DF_TABLES = 64
 # Voxels per chunk when reducing runs to animal means (keeps temporaries small).
-_CHUNK_VOXELS = 65536
+_CHUNK_VOXELS = 16384  # runs × chunk float64 temporaries: ~25 MiB each at 200 runs
 # Where σ² is folded into τ² (no animal with two runs) and a run has no first-level
 # variance, its sampling variance is floored at this share of the voxel's total variance
 # τ̂² + σ̂², which keeps the floor relative to the data's scale (our own choice: far below
@@ -168,8 +168,8 @@ def animal_level_data(
     var_run = np.asarray(var_run, dtype=float)
     var_animal = np.asarray(var_animal, dtype=float)
     n_vox = y.shape[1]
-    mean = np.empty((m, n_vox))
-    prec = np.empty((m, n_vox))
+    mean = np.empty((n_vox, m))  # (V, m) filled directly: no transposed copy at the end
+    prec = np.empty((n_vox, m))
     var_animal_used = np.empty(n_vox)
     # voxel chunks: the runs × voxels temporaries below stay chunk-sized
     for lo in range(0, n_vox, _CHUNK_VOXELS):
@@ -189,12 +189,12 @@ def animal_level_data(
         means = animal_means(
             yc, animal, n_animals=m, variance=vc, var_run=vr, present=present, floor=floor
         )
-        prec[:, sl] = means.precision
-        mean[:, sl] = np.where(means.precision > 0, means.mean, 0.0)
+        prec[sl] = means.precision.T
+        mean[sl] = np.where(means.precision > 0, means.mean, 0.0).T
     var_animal = var_animal_used
     return AnimalLevelData(
-        mean=np.ascontiguousarray(mean.T),
-        precision=np.ascontiguousarray(prec.T),
+        mean=mean,
+        precision=prec,
         design=Xa,
         var_animal=var_animal,
     )

@@ -12,7 +12,10 @@ This module turns a budget in GiB (``[compute] memory_gb``) into
 - :func:`study_memory_need`: those plus the presence mask and the fit's per-voxel
   outputs, i.e. what one first-level contrast needs beyond the chunk working set;
 - :func:`chunk_voxels`: a chunk size whose float64 working set stays within a fixed
-  share of the budget;
+  share of the budget (for steps that are computed voxel by voxel);
+- :func:`chunk_rows`: how many runs (rows) of a runs × voxels array to take together
+  (for steps that are computed run by run: region averages, run quality);
+- :func:`voxel_chunks`: the voxel slices of a chunked pass;
 - :func:`memory_plan`: all of these for one contrast, with a ``summary()`` for
   summary.json.
 
@@ -40,6 +43,23 @@ PRESENCE_BYTES = 1
 # grouplevel/model/reml.py). The compiled kernel needs about three (voxel-major copies of
 # effects, variances and presence), so this bound covers both backends.
 CHUNK_ARRAYS = 24
+
+# (runs, voxels) float64 arrays alive at once while a block of runs is averaged over
+# atlas regions (grouplevel/anatomy/regions.py, region_values: the block, its presence
+# as float, the zeroed values, and their transposes inside the sparse product)
+REGION_AVERAGE_ARRAYS = 6
+# (runs, voxels) float64 arrays alive at once while a block of runs is scored for run
+# quality (grouplevel/questions/quality.py: the block, |y|, the masked copies, products)
+RUN_SCORE_ARRAYS = 8
+
+# (replicates, pair voxels) float64 arrays alive at once while bootstrap replicates of a
+# region pair's laterality are mapped (grouplevel/questions/symmetry.py, _shortcut_maps:
+# sums, means, variances, t, masks and their products)
+BOOTSTRAP_ARRAYS = 12
+# (voxels, animals + 1, animals) float64 arrays alive at once in the one-step variance
+# update of the leave-one-animal-out maps (grouplevel/model/leave_one_out.py,
+# _variance_step: residual sums u, v, z and their weighted products)
+LEAVE_ONE_OUT_ARRAYS = 12
 
 # Share of the budget that one chunk's working set may use (our own choice: the
 # runs × voxels arrays take most of the budget; the chunk is a small addition to them).
@@ -156,6 +176,58 @@ def chunk_voxels(
     return max(MIN_CHUNK_VOXELS, int(share * memory_gb * GIB) // per_voxel)
 
 
+def chunk_rows(
+    n_voxels: int,
+    memory_gb: float,
+    arrays_per_row: int,
+    *,
+    share: float = CHUNK_SHARE,
+) -> int:
+    """Rows of a (rows, voxels) array to process together within a share of the budget.
+
+    The counterpart of :func:`chunk_voxels` for steps whose numbers are computed for
+    each run separately from all its voxels (a run's region averages, its quality
+    scores): a block of rows gives the same numbers as all rows at once.
+
+    Parameters
+    ----------
+    n_voxels
+        Voxels per row.
+    memory_gb
+        The budget in GiB (``[compute] memory_gb``).
+    arrays_per_row
+        Float64 arrays of shape (rows, voxels) alive at once.
+    share
+        Share of the budget for the block's working set (0 < share ≤ 1).
+
+    Returns
+    -------
+    int
+        ``floor(share · memory_gb · 2³⁰ / (8 · n_voxels · arrays_per_row))``, at least 1.
+    """
+    if not memory_gb > 0:
+        raise ArgumentError(f"memory_gb must be a positive number of GiB, got {memory_gb}.")
+    if not 0 < share <= 1:
+        raise ArgumentError(f"memory: share must be in (0, 1], got {share}.")
+    if arrays_per_row < 1:
+        raise ArgumentError(f"memory: arrays_per_row must be at least 1, got {arrays_per_row}.")
+    per_row = WORKING_BYTES * max(int(n_voxels), 1) * int(arrays_per_row)
+    return max(1, int(share * memory_gb * GIB) // per_row)
+
+
+def voxel_chunks(n_voxels: int, chunk: int) -> list[slice]:
+    """The slices ``[0, chunk), [chunk, 2·chunk), …`` covering ``n_voxels`` (or rows).
+
+    Raises
+    ------
+    ArgumentError
+        When ``chunk`` is below 1.
+    """
+    if chunk < 1:
+        raise ArgumentError(f"memory: a chunk needs at least 1 voxel, got {chunk}.")
+    return [slice(lo, min(int(n_voxels), lo + int(chunk))) for lo in range(0, int(n_voxels), chunk)]
+
+
 @dataclass(frozen=True)
 class MemoryPlan:
     """What one first-level contrast needs against the budget.
@@ -229,11 +301,17 @@ def memory_plan(
 __all__ = [
     "CHUNK_ARRAYS",
     "CHUNK_SHARE",
+    "BOOTSTRAP_ARRAYS",
     "GIB",
+    "LEAVE_ONE_OUT_ARRAYS",
     "MIN_CHUNK_VOXELS",
     "MemoryPlan",
+    "REGION_AVERAGE_ARRAYS",
+    "RUN_SCORE_ARRAYS",
+    "chunk_rows",
     "chunk_voxels",
     "memory_plan",
     "runs_array_bytes",
     "study_memory_need",
+    "voxel_chunks",
 ]

@@ -33,7 +33,7 @@ flags an edge/rim or artefact-label pattern, the symmetry and consistency verdic
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -43,6 +43,7 @@ from grouplevel.anatomy.regions import region_values
 from grouplevel.anatomy.tables import RegionData, surviving_voxels
 from grouplevel.inference import fdr
 from grouplevel.inference.permutation import (
+    AnimalLevelData,
     PermutationResult,
     animal_level_data,
     cluster_forming_z,
@@ -52,6 +53,14 @@ from grouplevel.intake.design import Design
 from grouplevel.intake.settings import QuestionSettings, Settings
 from grouplevel.model import MixedFit, between_animal_df, test_contrast
 from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
+from grouplevel.model.memory import (
+    LEAVE_ONE_OUT_ARRAYS,
+    REGION_AVERAGE_ARRAYS,
+    RUN_SCORE_ARRAYS,
+    chunk_rows,
+    chunk_voxels,
+    voxel_chunks,
+)
 from grouplevel.questions.ask_differences import (
     BETWEEN,
     WITHIN,
@@ -502,6 +511,29 @@ def _quality_verdict(summary: dict) -> dict:
     return {"verdict": verdict, "reasons": reasons, **summary}
 
 
+def _voxel_chunk(settings: Settings, n_runs: int) -> int:
+    """Voxels the questions take together: the fit's chunk for ``[compute] memory_gb``
+    (:func:`grouplevel.model.memory.chunk_voxels`)."""
+    return chunk_voxels(n_runs, settings.compute.memory_gb)
+
+
+def _loo_chunk(settings: Settings, n_runs: int, n_animals: int) -> int:
+    """Voxels downdated together for the leave-one-animal-out maps: the fit's chunk,
+    or fewer when the (voxels, animals + 1, animals) arrays of the variance update
+    would pass the same share of ``[compute] memory_gb``."""
+    memory_gb = settings.compute.memory_gb
+    per_voxel = (n_animals + 1) * n_animals
+    return min(
+        chunk_voxels(n_runs, memory_gb), chunk_voxels(per_voxel, memory_gb, LEAVE_ONE_OUT_ARRAYS)
+    )
+
+
+def _row_chunk(memory_gb: float | None, n_voxels: int, arrays: int) -> int | None:
+    """Runs the questions take together for ``[compute] memory_gb`` (None: all)
+    (:func:`grouplevel.model.memory.chunk_rows`)."""
+    return None if memory_gb is None else chunk_rows(n_voxels, memory_gb, arrays)
+
+
 def _asymmetry(
     gm: GroupMap,
     y: np.ndarray,
@@ -522,8 +554,47 @@ def _asymmetry(
     random-intercept reduction).
     """
     mirror = mirror_index(gm.mask, gm.grid.affine, midline_mm)
-    data = asymmetry_data(y, s2, mirror)
-    half_mask = mirror.half_mask(data.half)
+    half = mirror.left & (mirror.index >= 0)
+    inf = settings.inference
+    # the runs × kept voxels differences are made, fitted and reduced one chunk of
+    # voxels at a time (every number is per voxel); only per-voxel results are kept
+    chunk = _voxel_chunk(settings, y.shape[0])
+    parts = [
+        _asymmetry_part(y, s2, mirror, sl, design, c, settings, terms, model_df)
+        for sl in voxel_chunks(int(half.sum()), chunk) or [slice(0, 0)]
+    ]
+    t, z, p, df = (np.concatenate([part[k] for part in parts]) for k in range(4))
+    half_mask = mirror.half_mask(half)
+    q = fdr(np.where(np.isnan(p), 1.0, p), alpha=inf.alpha, method=inf.fdr).q
+    perm = None
+    if inf.permutations > 0:
+        pieces = [part[4] for part in parts]
+        animal_data = AnimalLevelData(
+            mean=np.concatenate([a.mean for a in pieces]),
+            precision=np.concatenate([a.precision for a in pieces]),
+            design=pieces[0].design,
+            var_animal=np.concatenate([a.var_animal for a in pieces]),
+        )
+        perm = permutation_test(
+            animal_data,
+            c,
+            df,
+            half_mask,
+            rng=np.random.default_rng([inf.seed, _ASYMMETRY_STREAM]),
+            **permutation_arguments(
+                inf, voxel_volume_mm3=gm.grid.voxel_volume, backend=backend, sided="two"
+            ),
+        )
+    return AsymmetryMap(mask=half_mask, t=t, z=z, q=q, permutation=perm)
+
+
+def _asymmetry_part(y, s2, mirror, columns, design, c, settings, terms, model_df):
+    """One chunk of the mirrored maps: fitted with the contrast's model and tested.
+
+    Returns ``(t, z, p, df, animal_data)`` of the chunk's voxels; ``animal_data`` (the
+    permutations' reduction) is None without permutations.
+    """
+    data = asymmetry_data(y, s2, mirror, columns)
     estimate = settings.model.run_variance == "estimate"
     fit = fit_terms(
         data.y,
@@ -534,16 +605,14 @@ def _asymmetry(
         estimate_run_variance=estimate or data.variance is None,
         max_iter=settings.model.max_iter,
     )
+    present = np.isfinite(data.y)
     if model_df is None:
-        df = between_animal_df(design.matrix, design.animal, np.isfinite(data.y), c)
+        df = between_animal_df(design.matrix, design.animal, present, c)
     else:
-        df = model_df(fit, np.isfinite(data.y), c)
+        df = model_df(fit, present, c)
     res = test_contrast(fit, c, df)
-    inf = settings.inference
-    p = np.where(np.isnan(res.p), 1.0, res.p)
-    q = fdr(p, alpha=inf.alpha, method=inf.fdr).q
-    perm = None
-    if inf.permutations > 0:
+    animal_data = None
+    if settings.inference.permutations > 0:
         animal_data = animal_level_data(
             data.y,
             data.variance,
@@ -553,17 +622,8 @@ def _asymmetry(
             fit.var_animal,
             design.columns,
         )
-        perm = permutation_test(
-            animal_data,
-            c,
-            np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape),
-            half_mask,
-            rng=np.random.default_rng([inf.seed, _ASYMMETRY_STREAM]),
-            **permutation_arguments(
-                inf, voxel_volume_mm3=gm.grid.voxel_volume, backend=backend, sided="two"
-            ),
-        )
-    return AsymmetryMap(mask=half_mask, t=res.t, z=res.z, q=q, permutation=perm)
+    df = np.broadcast_to(np.asarray(res.df, dtype=float), res.t.shape)
+    return res.t, res.z, res.p, df, animal_data
 
 
 def answer_questions(
@@ -627,6 +687,7 @@ def answer_questions(
         var_run=fit.var_run,
         components=fit_components(fit) if terms.extended else None,
         terms=terms,
+        chunk=_loo_chunk(settings, y.shape[0], design.n_animals),
     )
     weighted = plan.kind.rows_in_mean()
     in_runs = weighted if weighted.size == len(design.animal) and weighted.any() else None
@@ -634,8 +695,21 @@ def answer_questions(
     surviving = surviving_voxels(gm, alpha)[method]
     agreement = _agreement_voxels(regions, questions, surviving, method)
     quality = _run_quality(
-        y, s2, design, runs, loo, shell, questions, plan.animals, agreement, in_runs
+        y,
+        s2,
+        design,
+        runs,
+        loo,
+        shell,
+        questions,
+        plan.animals,
+        agreement,
+        in_runs,
+        settings.compute.memory_gb,
     )
+    # the answers keep the leave-one-out numbers, not the (animals, voxels) maps that
+    # only the run quality reads: they would be held until the outputs are written
+    loo = replace(loo, effect=None)
     response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
     if regions is None:
         reason = "the study has no [atlas], so no region can be asked about"
@@ -657,7 +731,17 @@ def answer_questions(
     spec = cons = cons_summary = None
     if questions.targets:
         spec, cons = _specificity_and_consistency(
-            gm, y, design, c, atlas, surviving, shell, questions, terms, model_df
+            gm,
+            y,
+            design,
+            c,
+            atlas,
+            surviving,
+            shell,
+            questions,
+            terms,
+            model_df,
+            settings.compute.memory_gb,
         )
     else:
         reason = "no [questions] targets were named"
@@ -760,6 +844,8 @@ def answers_not_asked(
             questions.outlier_z,
             terms,
             settings.model.run_variance == "estimate" or s2 is None,
+            loo_chunk=_loo_chunk(settings, y.shape[0], design.n_animals),
+            chunk_rows=_row_chunk(settings.compute.memory_gb, y.shape[1], RUN_SCORE_ARRAYS),
         )
         if quality is None:
             not_assessed["run_quality"] = (
@@ -776,14 +862,30 @@ def answers_not_asked(
         surviving = surviving_voxels(gm, alpha)[method]
         response = map_response(surviving, gm.z, method, settings.inference.sided, alpha)
         spec = _target_specificity(
-            gm, y, design, c, regions.atlas, surviving, shell, questions, terms, model_df
+            gm,
+            y,
+            design,
+            c,
+            regions.atlas,
+            surviving,
+            shell,
+            questions,
+            terms,
+            model_df,
+            _row_chunk(settings.compute.memory_gb, y.shape[1], REGION_AVERAGE_ARRAYS),
         )
         if sides is None:
             not_assessed["consistency"] = "the runs table was not given to the questions"
         elif sides.reason:
             not_assessed["consistency"] = sides.reason
         else:
-            values = target_values(y, design, regions.atlas, questions)
+            values = target_values(
+                y,
+                design,
+                regions.atlas,
+                questions,
+                _row_chunk(settings.compute.memory_gb, y.shape[1], REGION_AVERAGE_ARRAYS),
+            )
             cons, why = difference_consistency(values, design, c, sides, terms, model_df)
             if cons is None:
                 not_assessed["consistency"] = why
@@ -963,7 +1065,7 @@ def _agreement_voxels(
 
 
 def _run_quality(
-    y, s2, design, runs, loo, shell, questions, in_mean, agreement, in_runs=None
+    y, s2, design, runs, loo, shell, questions, in_mean, agreement, in_runs=None, memory_gb=None
 ) -> RunQuality:
     """Run quality among the runs of the animals whose mean is asked about.
 
@@ -977,34 +1079,25 @@ def _run_quality(
     keep = np.asarray(in_mean, dtype=bool)[design.animal]
     if in_runs is not None:
         keep &= np.asarray(in_runs, dtype=bool)
-    if keep.all():
-        return run_quality(
-            y,
-            s2,
-            design.animal,
-            runs,
-            loo.effect,
-            shell,
-            threshold=questions.outlier_z,
-            agreement=where_mask,
-            agreement_where=where,
-        )
     animals, codes = np.unique(design.animal[keep], return_inverse=True)
+    every = animals.size == len(loo.effect)  # every animal: no copy of the maps
     return run_quality(
-        y[keep],
-        None if s2 is None else s2[keep],
+        y,
+        s2,
         codes,
         runs[keep].reset_index(drop=True),
-        loo.effect[animals],
+        loo.effect if every else loo.effect[animals],
         shell,
         threshold=questions.outlier_z,
         agreement=where_mask,
         agreement_where=where,
+        rows=np.flatnonzero(keep),
+        chunk_rows=_row_chunk(memory_gb, y.shape[1], RUN_SCORE_ARRAYS),
     )
 
 
 def _target_specificity(
-    gm, y, design, c, atlas, surviving, shell, questions, terms=None, model_df=None
+    gm, y, design, c, atlas, surviving, shell, questions, terms=None, model_df=None, rows_chunk=None
 ) -> Specificity:
     """Specificity of the surviving voxels for the (possibly one-sided) targets."""
     rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
@@ -1025,20 +1118,22 @@ def _target_specificity(
         c,
         terms=terms,
         model_df=model_df,
+        chunk_rows=rows_chunk,
     )
 
 
 def _specificity_and_consistency(
-    gm, y, design, c, atlas, surviving, shell, questions, terms, model_df=None
+    gm, y, design, c, atlas, surviving, shell, questions, terms, model_df=None, memory_gb=None
 ):
     """Specificity of the surviving voxels and consistency of the target effect."""
+    rows_chunk = _row_chunk(memory_gb, y.shape[1], REGION_AVERAGE_ARRAYS)
     spec = _target_specificity(
-        gm, y, design, c, atlas, surviving, shell, questions, terms, model_df
+        gm, y, design, c, atlas, surviving, shell, questions, terms, model_df, rows_chunk
     )
     rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
     leaves = leaf_rows(atlas, rows)
     weights = sp.csr_matrix(np.asarray(atlas.shares[:, leaves].sum(axis=1)))
-    target_values, _ = region_values(y, np.isfinite(y), weights)
+    target_values, _ = region_values(y, np.isfinite(y), weights, chunk_rows=rows_chunk)
     cons = consistency(
         target_values[:, 0],
         None,
@@ -1094,6 +1189,7 @@ def _symmetry(
         bootstrap_animals=plan.animals,
         terms=terms,
         model_df=model_df,
+        memory_gb=settings.compute.memory_gb,
     )
     table = symmetry_table(results)
     summary = {}

@@ -174,12 +174,13 @@ def fit_components(fit) -> dict[str, np.ndarray]:
     return dict(comps) if comps is not None else {"animal": fit.var_animal, "run": fit.var_run}
 
 
-def target_values(y, design, atlas, questions) -> np.ndarray:
-    """``(n_runs,)`` each run's mean over the (possibly one-sided) target regions."""
+def target_values(y, design, atlas, questions, chunk_rows: int | None = None) -> np.ndarray:
+    """``(n_runs,)`` each run's mean over the (possibly one-sided) target regions
+    (``chunk_rows`` runs at a time; default all)."""
     rows = asked_rows(atlas, questions.targets, questions.stimulus_side, "[questions] targets")
     leaves = leaf_rows(atlas, rows)
     weights = sp.csr_matrix(np.asarray(atlas.shares[:, leaves].sum(axis=1)))
-    values, _ = region_values(y, np.isfinite(y), weights)
+    values, _ = region_values(y, np.isfinite(y), weights, chunk_rows=chunk_rows)
     return values[:, 0]
 
 
@@ -275,12 +276,16 @@ def difference_run_quality(
     threshold: float,
     terms: RandomTerms,
     estimate_run_variance: bool,
+    *,
+    loo_chunk: int | None = None,
+    chunk_rows: int | None = None,
 ) -> RunQuality | None:
     """Run quality of each side's runs among themselves (``side`` column added).
 
     Each side's reference map is its own mean response (the mean of its runs' design
     rows) with one animal left out at a time, downdated at the fitted components of the
-    contrast's model.
+    contrast's model. ``loo_chunk`` voxels are downdated together and ``chunk_rows``
+    runs scored together (default all at once; the numbers do not depend on either).
     """
     comps = fit_components(fit)
     frames = []
@@ -291,7 +296,14 @@ def difference_run_quality(
         c_side = design.matrix[keep].mean(axis=0)
         if terms.extended:
             loo = loo_group_maps(
-                y, s2, design.matrix, design.animal, c_side, components=comps, terms=terms
+                y,
+                s2,
+                design.matrix,
+                design.animal,
+                c_side,
+                components=comps,
+                terms=terms,
+                chunk=loo_chunk,
             )
         else:
             loo = loo_group_maps(
@@ -303,17 +315,20 @@ def difference_run_quality(
                 estimate_run_variance=estimate_run_variance,
                 var_animal=fit.var_animal,
                 var_run=fit.var_run,
+                chunk=loo_chunk,
             )
         animals = np.unique(design.animal[keep])
         codes = np.searchsorted(animals, design.animal[keep])
         quality = run_quality(
-            y[keep],
-            None if s2 is None else s2[keep],
+            y,
+            s2,
             codes,
             runs[keep].reset_index(drop=True),
             loo.effect[animals],
             shell,
             threshold=threshold,
+            rows=np.flatnonzero(keep),
+            chunk_rows=chunk_rows,
         )
         table = quality.table()
         table.insert(0, "side", name)

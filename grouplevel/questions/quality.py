@@ -39,6 +39,7 @@ import numpy as np
 import pandas as pd
 
 from grouplevel.errors import ArgumentError
+from grouplevel.model.memory import voxel_chunks
 from grouplevel.questions.specificity import _correlation
 
 #: |robust z| above which a run is flagged (Iglewicz & Hoaglin 1993; value from memory).
@@ -133,6 +134,8 @@ def run_quality(
     threshold: float = DEFAULT_Z_THRESHOLD,
     agreement: np.ndarray | None = None,
     agreement_where: str = "the whole analysed brain",
+    rows: np.ndarray | None = None,
+    chunk_rows: int | None = None,
 ) -> RunQuality:
     """Quality numbers of every run and flags for outliers.
 
@@ -159,6 +162,14 @@ def run_quality(
         ``(V,)`` bool: the voxels over which the correlation is computed (None: all).
     agreement_where
         Those voxels in words, for the table's readers (e.g. "inside the targets").
+    rows
+        The rows of ``y`` and ``variance`` that are the runs assessed (default all);
+        ``animal``, ``runs`` and the order of the result follow them. Saves a copy of
+        the runs × voxels arrays when only some runs are assessed.
+    chunk_rows
+        Runs scored together (default all); every number is a run's own, so it does
+        not depend on this (:func:`grouplevel.model.memory.chunk_rows` sizes it for a
+        budget).
 
     Returns
     -------
@@ -170,8 +181,10 @@ def run_quality(
 
     Hajnal JV et al. (1994). Magn Reson Med 31:283-291.
     """
-    y, animal, loo_effect, shell = _check_quality_inputs(
-        y, animal, runs, loo_effect, shell, threshold
+    y = np.asarray(y)
+    rows = np.arange(len(y)) if rows is None else np.asarray(rows, dtype=np.intp).ravel()
+    animal, loo_effect, shell = _check_quality_inputs(
+        y, rows, animal, runs, loo_effect, shell, threshold
     )
     if agreement is None:
         agreement = np.ones(y.shape[1], dtype=bool)
@@ -180,15 +193,22 @@ def run_quality(
         raise ArgumentError(
             f"run_quality: agreement has {agreement.size} values for {y.shape[1]} voxels."
         )
-    correlation = _correlation(y[:, agreement], loo_effect[animal][:, agreement])
-    n_agree = (np.isfinite(y[:, agreement]) & np.isfinite(loo_effect[animal][:, agreement])).sum(
-        axis=1
-    )
-    mean_var = _mean_variance(variance, y)
-    edge = _edge_score(y, shell)
+    if variance is not None and np.shape(variance) != y.shape:
+        raise ArgumentError(f"run_quality: variance {np.shape(variance)} and y {y.shape} differ.")
+    n = len(rows)
+    correlation, mean_var, edge = np.empty(n), np.empty(n), np.empty(n)
+    n_agree = np.empty(n, dtype=np.int64)
+    # a block of runs at a time, each as float64: every number below is one run's own
+    for block in voxel_chunks(n, max(1, n if chunk_rows is None else chunk_rows)):
+        yb = np.asarray(y[rows[block]], dtype=float)
+        loo_b = loo_effect[animal[block]][:, agreement]
+        correlation[block] = _correlation(yb[:, agreement], loo_b)
+        n_agree[block] = (np.isfinite(yb[:, agreement]) & np.isfinite(loo_b)).sum(axis=1)
+        vb = None if variance is None else np.asarray(variance[rows[block]], dtype=float)
+        mean_var[block] = _mean_variance(vb, yb)
+        edge[block] = _edge_score(yb, shell)
     z_c, z_v, z_e = robust_z(correlation), robust_z(mean_var), robust_z(edge)
     flagged, why = _flags(correlation, mean_var, edge, (z_c, z_v, z_e), threshold)
-    n = len(y)
     session = runs["session"] if "session" in runs.columns else pd.Series([""] * n)
     table = pd.DataFrame(
         {
@@ -213,23 +233,27 @@ def run_quality(
 
 def _check_quality_inputs(
     y: np.ndarray,
+    rows: np.ndarray,
     animal: np.ndarray,
     runs: pd.DataFrame,
     loo_effect: np.ndarray,
     shell: np.ndarray,
     threshold: float,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """``y``, ``animal``, ``loo_effect`` and ``shell`` as arrays, checked against each other.
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``animal``, ``loo_effect`` and ``shell`` as arrays, checked against ``y`` and the
+    ``rows`` assessed.
 
     Raises
     ------
     ArgumentError
         On shapes that do not match or a threshold that is not positive.
     """
-    y = np.asarray(y, dtype=float)
     if y.ndim != 2:
         raise ArgumentError(f"run_quality: y must be (runs, voxels), got shape {y.shape}.")
-    n, n_vox = y.shape
+    n_vox = y.shape[1]
+    n = len(rows)
+    if n and (rows.min() < 0 or rows.max() >= len(y)):
+        raise ArgumentError(f"run_quality: rows must be run indices below {len(y)}.")
     animal = np.asarray(animal, dtype=np.int64).reshape(-1)
     loo_effect = np.asarray(loo_effect, dtype=float)
     shell = np.asarray(shell, dtype=bool).reshape(-1)
@@ -246,7 +270,7 @@ def _check_quality_inputs(
         raise ArgumentError(f"run_quality: shell has {shell.size} values for {n_vox} voxels.")
     if not threshold > 0:
         raise ArgumentError(f"run quality threshold must be positive, got {threshold!r}.")
-    return y, animal, loo_effect, shell
+    return animal, loo_effect, shell
 
 
 def _mean_variance(variance: np.ndarray | None, y: np.ndarray) -> np.ndarray:
@@ -254,8 +278,6 @@ def _mean_variance(variance: np.ndarray | None, y: np.ndarray) -> np.ndarray:
     if variance is None:
         return np.full(len(y), np.nan)
     variance = np.asarray(variance, dtype=float)
-    if variance.shape != y.shape:
-        raise ArgumentError(f"run_quality: variance {variance.shape} and y {y.shape} differ.")
     with np.errstate(invalid="ignore"):
         ok = np.isfinite(variance)
         return np.where(ok, variance, 0.0).sum(axis=1) / ok.sum(axis=1)

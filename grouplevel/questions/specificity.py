@@ -54,6 +54,7 @@ from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
 from grouplevel.model.leave_one_out import leave_one_animal_out, leave_one_animal_out_model
 from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
+from grouplevel.model.memory import voxel_chunks
 from grouplevel.questions.verdicts import (  # noqa: F401  (the rules' names, re-exported here)
     ARTEFACT_ENRICHMENT_MIN,
     ARTEFACT_FLAG_TEXT,
@@ -210,13 +211,22 @@ def _weights(atlas: Atlas, rows: np.ndarray) -> np.ndarray:
     return np.clip(w, 0.0, 1.0)
 
 
-def _weighted_run_means(y: np.ndarray, w: np.ndarray) -> np.ndarray:
-    """``Σ_v w_v y_kv / Σ_v w_v`` over the voxels where run ``k`` has data."""
-    present = np.isfinite(y)
-    num = np.where(present, y, 0.0) @ w
-    den = present.astype(float) @ w
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(den > 0, num / den, np.nan)
+def _weighted_run_means(y: np.ndarray, w: np.ndarray, chunk_rows: int | None = None) -> np.ndarray:
+    """``Σ_v w_v y_kv / Σ_v w_v`` over the voxels where run ``k`` has data.
+
+    ``chunk_rows`` runs at a time (default all), each block as float64: a run's mean
+    is its own, so the block size changes nothing but the memory used.
+    """
+    n = len(y)
+    out = np.empty(n)
+    for block in voxel_chunks(n, max(1, n if chunk_rows is None else chunk_rows)):
+        yb = np.asarray(y[block], dtype=float)
+        present = np.isfinite(yb)
+        num = np.where(present, yb, 0.0) @ w
+        den = present.astype(float) @ w
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out[block] = np.where(den > 0, num / den, np.nan)
+    return out
 
 
 def _ci(effect: float, se: float, df: float) -> tuple[float, float]:
@@ -474,6 +484,7 @@ def specificity(
     rim_z_threshold: float = RIM_Z_THRESHOLD,
     terms: RandomTerms | None = None,
     model_df: ModelDf | None = None,
+    chunk_rows: int | None = None,
 ) -> Specificity:
     """Specificity of one group map for a set of target regions.
 
@@ -504,6 +515,9 @@ def specificity(
     rim_z_threshold
         |z| above which a shell voxel counts for the rim score besides the surviving
         ones.
+    chunk_rows
+        Runs averaged together (default all; the numbers do not depend on it:
+        :func:`grouplevel.model.memory.chunk_rows` sizes it for a budget).
 
     Returns
     -------
@@ -536,7 +550,7 @@ def specificity(
     shares = _activation_shares(surviving, shell, inner, w_target, _weights(atlas, artefact_leaves))
     active = surviving | (np.nan_to_num(np.abs(z)) > rim_z_threshold)
     rim = rim_score(active, np.sign(np.nan_to_num(z)), shell, height)
-    fit, res = _target_minus_rest(y, w_target, X, animal, c, terms, model_df)
+    fit, res = _target_minus_rest(y, w_target, X, animal, c, terms, model_df, chunk_rows)
     surv_f = surviving.astype(float)
     off = _off_target_table(atlas, target_leaves, effect, z, surv_f, artefact_leaves)
     tgt = _target_table(
@@ -606,7 +620,7 @@ def _check_specificity_inputs(n_vox, surviving, z, effect, shell, inner, height,
         _vector(inner, n_vox, "inner", bool),
         _vector(height, n_vox, "height"),
     )
-    y = np.asarray(y, dtype=float)
+    y = np.asarray(y)  # float32 stays so: each block of runs is converted on its own
     if y.ndim != 2 or y.shape[1] != n_vox:
         raise ArgumentError(f"specificity: y must be (runs, {n_vox} voxels), got {y.shape}.")
     if len(list(targets)) == 0:
@@ -679,9 +693,11 @@ def _activation_shares(
         )
 
 
-def _target_minus_rest(y, w_target, X, animal, c, terms=None, model_df=None):
+def _target_minus_rest(y, w_target, X, animal, c, terms=None, model_df=None, chunk_rows=None):
     """Per run: mean in the targets − mean in the rest; REML run-within-animal model."""
-    values = _weighted_run_means(y, w_target) - _weighted_run_means(y, 1.0 - w_target)
+    values = _weighted_run_means(y, w_target, chunk_rows) - _weighted_run_means(
+        y, 1.0 - w_target, chunk_rows
+    )
     present = np.isfinite(values)[:, None]
     fit = fit_terms(values[:, None], None, X, animal, terms, estimate_run_variance=True)
     if model_df is None:
@@ -1078,7 +1094,8 @@ class LooMaps:
         ``(V,)`` full-data t and effect maps.
     effect
         ``(m, V)`` the group effect map without each animal (NaN row when that refit
-        was not possible).
+        was not possible); None in the answers of a group map, which keep only the
+        numbers below once the run quality has read the maps.
     correlation
         ``(m,)`` Pearson correlation of each LOO t map with the full t map (over voxels
         finite in both).
@@ -1089,7 +1106,7 @@ class LooMaps:
     animal_ids: tuple[str, ...]
     t_full: np.ndarray
     effect_full: np.ndarray
-    effect: np.ndarray
+    effect: np.ndarray | None
     correlation: np.ndarray
     max_abs_dt: np.ndarray
 
@@ -1133,6 +1150,12 @@ def _correlation(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.where(n > 2, r, np.nan)
 
 
+def _correlation_by_row(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """:func:`_correlation` of each row of ``a`` (k, V) with ``b`` (V,), one row at a
+    time: its temporaries are (V,) arrays instead of (k, V) ones."""
+    return np.array([_correlation(row, b)[0] for row in np.atleast_2d(a)], dtype=float)
+
+
 def loo_group_maps(
     y: np.ndarray,
     variance: np.ndarray | None,
@@ -1147,6 +1170,7 @@ def loo_group_maps(
     var_run: np.ndarray | None = None,
     components: dict[str, np.ndarray] | None = None,
     terms: RandomTerms | None = None,
+    chunk: int | None = None,
 ) -> LooMaps:
     """The voxelwise group map leaving out each animal in turn.
 
@@ -1163,7 +1187,8 @@ def loo_group_maps(
     Parameters
     ----------
     y, variance
-        ``(n_runs, V)`` run effect maps and first-level variances (or None).
+        ``(n_runs, V)`` run effect maps and first-level variances (or None); float32
+        is kept as it is (each chunk is converted to float64 on its own).
     X, animal, c
         Design, animal codes ``0..m-1``, contrast.
     df_fn
@@ -1175,6 +1200,10 @@ def loo_group_maps(
         Estimate σ² (else fixed at 0); used by the refits only.
     var_animal, var_run
         ``(V,)`` the full fit's τ̂² and σ̂²: downdate at these instead of refitting.
+    chunk
+        Voxels downdated together (default: all at once); the numbers of a voxel do not
+        depend on it (:func:`grouplevel.model.memory.chunk_voxels` sizes it for a
+        budget). The refits without variance components are not chunked.
 
     Returns
     -------
@@ -1184,18 +1213,75 @@ def loo_group_maps(
     ----------
     Patterson HD, Thompson R (1971). Biometrika 58:545-554.
     """
-    y = np.asarray(y, dtype=float)
+    y = np.asarray(y)
     if y.ndim != 2:
         raise ArgumentError(f"loo_group_maps: y must be (runs, voxels), got shape {y.shape}.")
     X, animal = _design_inputs(X, animal, y.shape[0], "loo_group_maps")
     m = int(animal.max()) + 1
     ids = tuple(str(a) for a in (animal_ids if animal_ids is not None else range(m)))
-    s2 = None if variance is None else np.asarray(variance, dtype=float)
+    s2 = None if variance is None else np.asarray(variance)
+    if components is not None or (var_animal is not None and var_run is not None):
+        maps = _downdated_maps(
+            y, s2, X, animal, c, len(ids), estimate_run_variance, var_animal, var_run,
+            components, terms, max(1, y.shape[1] if chunk is None else chunk),
+        )  # fmt: skip
+    else:
+        maps = _refitted_maps(y, s2, X, animal, c, df_fn, len(ids), estimate_run_variance, terms)
+    effect_full, t_full, effect, t_loo, max_dt = maps
+    return LooMaps(
+        animal_ids=ids,
+        t_full=t_full,
+        effect_full=effect_full,
+        effect=effect,
+        correlation=_correlation_by_row(t_loo, t_full),
+        max_abs_dt=max_dt,
+    )
+
+
+def _downdated_maps(
+    y, s2, X, animal, c, n_ids, estimate_run_variance, var_animal, var_run, components, terms,
+    chunk,
+):  # fmt: skip
+    """The leave-one-out maps by downdating, ``chunk`` voxels at a time: full effect and
+    t, (n_ids, V) effect and t without each animal, and the (n_ids,) largest |Δt|."""
+    n_vox = y.shape[1]
+    m = int(animal.max()) + 1
+    # a group map needs two animals: without such an animal there is none
+    too_few = np.array([np.unique(animal[animal != a]).size < 2 for a in range(m)])
+    effect_full, t_full = np.full(n_vox, np.nan), np.full(n_vox, np.nan)
+    effect, t_loo = np.full((n_ids, n_vox), np.nan), np.full((n_ids, n_vox), np.nan)
+    largest = np.full(n_ids, -np.inf)
+    any_finite = np.zeros(n_ids, dtype=bool)
+    for sl in voxel_chunks(n_vox, chunk):
+        ss = None if s2 is None else s2[:, sl]
+        if components is not None:
+            part = {k: np.asarray(v)[sl] for k, v in components.items()}
+            down = leave_one_animal_out_model(y[:, sl], ss, X, animal, c, part, terms)
+        else:
+            down = leave_one_animal_out(
+                y[:, sl], ss, X, animal, c, var_animal[sl], var_run[sl],
+                estimate_run_variance=estimate_run_variance, chunk=chunk,
+            )  # fmt: skip
+        down.effect[too_few] = down.t[too_few] = np.nan
+        effect_full[sl], t_full[sl] = down.effect_full, down.t_full
+        effect[:m, sl], t_loo[:m, sl] = down.effect, down.t
+        with np.errstate(invalid="ignore"):
+            dt = np.abs(t_loo[:, sl] - t_full[None, sl])
+        finite = np.isfinite(dt)
+        any_finite |= finite.any(axis=1)
+        if dt.shape[1]:
+            largest = np.maximum(largest, np.where(finite, dt, -np.inf).max(axis=1))
+    return effect_full, t_full, effect, t_loo, np.where(any_finite, largest, np.nan)
+
+
+def _refitted_maps(y, s2, X, animal, c, df_fn, n_ids, estimate_run_variance, terms):
+    """The leave-one-out maps by a whole-map REML refit per animal (no components)."""
+    m = int(animal.max()) + 1
 
     def fit_t(rows: np.ndarray):
         codes = np.unique(animal[rows], return_inverse=True)[1]
-        yy = y[rows]
-        ss = None if s2 is None else s2[rows]
+        yy = np.asarray(y[rows], dtype=float)
+        ss = None if s2 is None else np.asarray(s2[rows], dtype=float)
         kept = np.isin(np.arange(m), np.unique(animal[rows]))
         sub = None if terms is None else terms.subset(rows, kept)
         fit = fit_terms(yy, ss, X[rows], codes, sub, estimate_run_variance=estimate_run_variance)
@@ -1204,29 +1290,14 @@ def loo_group_maps(
         return res.effect, res.t
 
     n_vox = y.shape[1]
-    if components is not None:
-        down = leave_one_animal_out_model(y, s2, X, animal, c, components, terms)
-    elif var_animal is not None and var_run is not None:
-        down = leave_one_animal_out(
-            y, s2, X, animal, c, var_animal, var_run, estimate_run_variance=estimate_run_variance
-        )
-    else:
-        down = None
-    if down is not None:
-        effect_full, t_full, effect, t_loo = down.effect_full, down.t_full, down.effect, down.t
-        for a in range(m):  # a group map needs two animals
-            rows = animal != a
-            if np.unique(animal[rows]).size < 2:
-                effect[a] = t_loo[a] = np.nan
-    else:
-        effect_full, t_full = fit_t(np.ones(y.shape[0], dtype=bool))
-        effect = np.full((len(ids), n_vox), np.nan)
-        t_loo = np.full((len(ids), n_vox), np.nan)
-        for a in range(len(ids)):  # one vectorised whole-map fit per animal
-            rows = animal != a
-            if rows.all() or np.unique(animal[rows]).size < 2:
-                continue
-            effect[a], t_loo[a] = fit_t(rows)
+    effect_full, t_full = fit_t(np.ones(y.shape[0], dtype=bool))
+    effect = np.full((n_ids, n_vox), np.nan)
+    t_loo = np.full((n_ids, n_vox), np.nan)
+    for a in range(n_ids):  # one vectorised whole-map fit per animal
+        rows = animal != a
+        if rows.all() or np.unique(animal[rows]).size < 2:
+            continue
+        effect[a], t_loo[a] = fit_t(rows)
     with np.errstate(invalid="ignore"):
         dt = np.abs(t_loo - t_full[None])
     max_dt = np.where(
@@ -1234,11 +1305,4 @@ def loo_group_maps(
         np.nanmax(np.where(np.isfinite(dt), dt, -np.inf), axis=1),
         np.nan,
     )
-    return LooMaps(
-        animal_ids=ids,
-        t_full=t_full,
-        effect_full=effect_full,
-        effect=effect,
-        correlation=_correlation(t_loo, t_full),
-        max_abs_dt=max_dt,
-    )
+    return effect_full, t_full, effect, t_loo, max_dt

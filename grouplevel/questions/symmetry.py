@@ -62,6 +62,7 @@ from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
 from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
+from grouplevel.model.memory import BOOTSTRAP_ARRAYS, chunk_rows, chunk_voxels, voxel_chunks
 from grouplevel.questions.verdicts import (  # noqa: F401  (the rule's names, re-exported here)
     BILATERAL_EQUIVALENT,
     BILATERAL_UNRESOLVED,
@@ -245,25 +246,36 @@ class AsymmetryData(NamedTuple):
     half: np.ndarray  # (V,) bool: in-mask voxels kept (left half with a mirror)
 
 
-def asymmetry_data(y: np.ndarray, variance: np.ndarray | None, mirror: MirrorMap) -> AsymmetryData:
+def asymmetry_data(
+    y: np.ndarray,
+    variance: np.ndarray | None,
+    mirror: MirrorMap,
+    columns: slice | None = None,
+) -> AsymmetryData:
     """Per run, each left-half voxel's value minus its mirror voxel's value.
 
     Parameters
     ----------
     y
-        ``(n_runs, V)`` first-level effects at the in-mask voxels (NaN: no data).
+        ``(n_runs, V)`` first-level effects at the in-mask voxels (NaN: no data); float32
+        is kept as it is, only the kept columns are converted to float64.
     variance
         ``(n_runs, V)`` their first-level variances, or None.
     mirror
         From :func:`mirror_index` on the same mask.
+    columns
+        A slice of the kept voxels (default all): only those columns are computed, so a
+        caller can go through the kept voxels one chunk at a time and get the same
+        numbers as all at once.
 
     Returns
     -------
     AsymmetryData
-        ``y``: ``(n_runs, n_kept)`` left minus right, NaN where either side (or, when
-        variances are given, either variance) is missing; ``variance``: the sum of the two
-        first-level variances (None when none are given); ``half``: the ``(V,)`` bool
-        in-mask selection of kept voxels (left half, mirror defined), in C order.
+        ``y``: ``(n_runs, n_kept)`` left minus right (``n_kept`` within ``columns``), NaN
+        where either side (or, when variances are given, either variance) is missing;
+        ``variance``: the sum of the two first-level variances (None when none are
+        given); ``half``: the ``(V,)`` bool in-mask selection of all kept voxels (left
+        half, mirror defined), in C order.
 
     Notes
     -----
@@ -273,19 +285,24 @@ def asymmetry_data(y: np.ndarray, variance: np.ndarray | None, mirror: MirrorMap
     an over-estimate for positive correlation; the run-level variance σ² estimated by the
     model absorbs part of any mis-statement.
     """
-    y = np.asarray(y, dtype=float)
+    y = np.asarray(y)
     n_vox = mirror.index.shape[0]
     if y.ndim != 2 or y.shape[1] != n_vox:
         raise ValueError(f"y must be (runs, {n_vox} in-mask voxels), got {y.shape}")
     half = mirror.left & (mirror.index >= 0)
-    partner = mirror.index[half]
-    y_diff = y[:, half] - y[:, partner]
+    kept = np.flatnonzero(half)
+    if columns is not None:
+        kept = kept[columns]
+    partner = mirror.index[kept]
+    y_diff = np.asarray(y[:, kept], dtype=float) - np.asarray(y[:, partner], dtype=float)
     var_sum = None
     if variance is not None:
-        variance = np.asarray(variance, dtype=float)
+        variance = np.asarray(variance)
         if variance.shape != y.shape:
             raise ValueError(f"variance {variance.shape} and y {y.shape} differ in shape")
-        var_sum = variance[:, half] + variance[:, partner]
+        var_sum = np.asarray(variance[:, kept], dtype=float) + np.asarray(
+            variance[:, partner], dtype=float
+        )
         y_diff = np.where(np.isfinite(var_sum), y_diff, np.nan)
         var_sum = np.where(np.isfinite(y_diff), var_sum, np.nan)
     return AsymmetryData(y=y_diff, variance=var_sum, half=half)
@@ -394,6 +411,16 @@ def _animal_means(y, present, animal, variance, var_run):
     return np.where(means.has_data, means.mean, 0.0), means.has_data
 
 
+def _pair_animal_means(y, present, animal, variance, var_run, rows, cols, sign):
+    """(m, k) animal means and 'has data' of ``sign`` × the runs ``rows`` at the voxels
+    ``cols`` (only those are copied, then made float64)."""
+    sub = np.ix_(rows, cols)
+    sub_var = None if variance is None else np.asarray(np.asarray(variance)[sub], dtype=float)
+    sub_run = None if var_run is None else np.asarray(var_run, dtype=float)[cols]
+    sub_y = sign * np.asarray(y[sub], dtype=float)
+    return _animal_means(sub_y, present[sub], animal, sub_var, sub_run)
+
+
 def _shortcut_maps(
     counts: np.ndarray, means: np.ndarray, has: np.ndarray, threshold: float
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -435,6 +462,9 @@ def bootstrap_li(
     n_boot: int = DEFAULT_BOOTSTRAP,
     confidence: float = CONFIDENCE_LEVEL,
     rng: np.random.Generator,
+    rows: np.ndarray | None = None,
+    sign: float = 1.0,
+    memory_gb: float | None = None,
 ) -> BootstrapLI:
     """Percentile bootstrap intervals of the extent and effect LIs, resampling animals.
 
@@ -453,7 +483,7 @@ def bootstrap_li(
     y, present
         ``(n_runs, V)`` first-level effects and their presence.
     animal
-        ``(n_runs,)`` animal codes ``0..m-1``.
+        ``(n_runs,)`` animal codes ``0..m-1`` (of ``rows`` when given).
     left_cols, right_cols
         In-mask voxel indices (columns of ``y``) of the left and right region.
     left_weights, right_weights
@@ -467,6 +497,16 @@ def bootstrap_li(
         Replicates and interval level.
     rng
         Source of the resampling.
+    rows
+        The runs resampled (rows of ``y``, ``present`` and ``variance``; default all):
+        only their values at the pair's voxels are copied.
+    sign
+        The maps are multiplied by it (−1: the LIs of a negative response).
+    memory_gb
+        Budget in GiB (``[compute] memory_gb``): the pair's runs are read a chunk of
+        voxels at a time (:func:`grouplevel.model.memory.chunk_voxels`), and fewer
+        replicates are mapped together when the pair is large (default: all voxels,
+        :data:`_BOOT_CHUNK` replicates). The numbers do not depend on it.
 
     Returns
     -------
@@ -488,10 +528,11 @@ def bootstrap_li(
 
     Seghier ML (2008). Magn Reson Imaging 26:594-601 (bootstrapped LIs).
     """
-    y = np.asarray(y, dtype=float)
+    y = np.asarray(y)
     present = np.asarray(present, dtype=bool)
     animal = np.asarray(animal, dtype=np.int64)
-    if y.ndim != 2 or present.shape != y.shape or animal.shape != (y.shape[0],):
+    rows = np.arange(len(y)) if rows is None else np.asarray(rows, dtype=np.intp).ravel()
+    if y.ndim != 2 or present.shape != y.shape or animal.shape != rows.shape:
         raise ValueError("y, present must be (runs, V) and animal (runs,)")
     if int(n_boot) < 1:
         raise ArgumentError(f"n_boot = {n_boot}: a bootstrap needs at least 1 replicate.")
@@ -503,9 +544,16 @@ def bootstrap_li(
     rw = _weights(right_cols, right_weights, "right_weights")
     cols = np.concatenate([left_cols, right_cols])
     nl = len(left_cols)
-    sub_var = None if variance is None else np.asarray(variance, dtype=float)[:, cols]
-    sub_run = None if var_run is None else np.asarray(var_run, dtype=float)[cols]
-    means, has = _animal_means(y[:, cols], present[:, cols], animal, sub_var, sub_run)
+    if memory_gb is not None:  # the pair's runs × voxels are read a chunk at a time
+        chunk = chunk_voxels(len(rows), memory_gb)
+        parts = [
+            _pair_animal_means(y, present, animal, variance, var_run, rows, cols[sl], sign)
+            for sl in voxel_chunks(len(cols), chunk)
+        ]
+        means = np.concatenate([p[0] for p in parts], axis=1)
+        has = np.concatenate([p[1] for p in parts], axis=1)
+    else:
+        means, has = _pair_animal_means(y, present, animal, variance, var_run, rows, cols, sign)
     m = means.shape[0]
 
     def lis(counts):
@@ -517,10 +565,19 @@ def bootstrap_li(
     ext0, eff0 = lis(np.ones((1, m)))
     ext_reps = np.empty(int(n_boot))
     eff_reps = np.empty(int(n_boot))
+    # replicates drawn _BOOT_CHUNK at a time (the stream of draws does not depend on
+    # the budget), their maps made ``block`` at a time: each replicate is its own
+    block = _BOOT_CHUNK
+    if memory_gb is not None:
+        block = min(block, chunk_rows(len(cols), memory_gb, BOOTSTRAP_ARRAYS))
     for start in range(0, int(n_boot), _BOOT_CHUNK):
         stop = min(int(n_boot), start + _BOOT_CHUNK)
         counts = rng.multinomial(m, np.full(m, 1.0 / m), size=stop - start).astype(float)
-        ext_reps[start:stop], eff_reps[start:stop] = lis(counts)
+        for lo in range(0, stop - start, block):
+            hi = min(stop - start, lo + block)
+            ext_reps[start + lo : start + hi], eff_reps[start + lo : start + hi] = lis(
+                counts[lo:hi]
+            )
     tail = (1.0 - confidence) / 2.0
 
     def interval(reps):
@@ -951,6 +1008,7 @@ def analyse_symmetry(
     bootstrap_animals: np.ndarray | None = None,
     terms: RandomTerms | None = None,
     model_df: ModelDf | None = None,
+    memory_gb: float | None = None,
 ) -> tuple[RegionSymmetry, ...]:
     """Laterality, hemispheric test and verdict for each named region pair.
 
@@ -982,6 +1040,8 @@ def analyse_symmetry(
     bootstrap_animals
         ``(m,)`` bool: the animals the bootstrap resamples (those whose mean ``c`` is);
         default all.
+    memory_gb
+        Budget of the bootstrap's replicate maps (:func:`bootstrap_li`).
 
     Returns
     -------
@@ -1029,6 +1089,7 @@ def analyse_symmetry(
             n_thresholds=n_thresholds,
             weighting=weighting,
             rng=rng,
+            memory_gb=memory_gb,
         )
         out.append(
             RegionSymmetry(
@@ -1100,6 +1161,7 @@ def _pair_laterality(
     n_thresholds: int,
     weighting: str,
     rng: np.random.Generator,
+    memory_gb: float | None = None,
 ) -> tuple[float, float, BootstrapLI, ThresholdFreeLI]:
     """The LIs of one region pair on maps multiplied by ``flip`` (−1 for a negative response).
 
@@ -1117,18 +1179,20 @@ def _pair_laterality(
         The point LIs of the group maps, the bootstrap intervals and the threshold-free LI.
     """
     (lc, lw), (rc, rw) = left, right
-    yb, present_b, animal_b, variance_b = runs
+    yb, present_b, animal_b, variance_b, rows = runs
     zs, es = flip * z, flip * effect
     li_extent = laterality(
         extent_amount(zs[lc], lw, threshold), extent_amount(zs[rc], rw, threshold)
     )
     li_effect = laterality(effect_amount(es[lc], lw), effect_amount(es[rc], rw))
     boot = bootstrap_li(
-        flip * yb,
+        yb,
         present_b,
         animal_b,
         lc,
         rc,
+        rows=rows,
+        sign=flip,
         left_weights=lw,
         right_weights=rw,
         variance=variance_b,
@@ -1136,6 +1200,7 @@ def _pair_laterality(
         threshold=threshold,
         n_boot=n_boot,
         rng=rng,
+        memory_gb=memory_gb,
     )
     tf = threshold_free_li(
         zs,
@@ -1150,14 +1215,17 @@ def _pair_laterality(
 
 
 def _bootstrap_runs(y, present, animal, variance, bootstrap_animals):
-    """The runs of the animals the bootstrap resamples, with animal codes 0..k-1."""
-    y = np.asarray(y, dtype=float)
+    """The runs of the animals the bootstrap resamples: the arrays as given (no copy;
+    each region pair takes its own voxels of these rows), their animal codes 0..k-1
+    and the rows."""
+    y = np.asarray(y)
+    present = np.asarray(present, dtype=bool)
+    variance = None if variance is None else np.asarray(variance)
     if bootstrap_animals is None:
-        return y, present, animal, variance
+        return y, present, animal, variance, np.arange(len(animal))
     keep = np.asarray(bootstrap_animals, dtype=bool)[animal]
     codes = np.unique(animal[keep], return_inverse=True)[1].astype(np.int64)
-    sub_var = None if variance is None else np.asarray(variance, dtype=float)[keep]
-    return y[keep], np.asarray(present, dtype=bool)[keep], codes, sub_var
+    return y, present, codes, variance, np.flatnonzero(keep)
 
 
 #: Columns of :func:`symmetry_table`, in order.
