@@ -601,6 +601,44 @@ def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
 
 
 @lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_cholesky_inverse(S, L, Li, logdet):
+    """Cholesky factor ``L`` of the small symmetric matrix ``S`` (lower triangle read)
+    and ``Li = L⁻¹``; returns (``logdet`` + log|S|, positive definite): the pivots'
+    logarithms are added to a running total one by one.
+
+    A pivot that is not positive marks ``S`` as not positive definite and is taken as
+    1, so that the loops finish (the caller discards the voxel). Unlike
+    :func:`grouplevel.model.reml._nb_chol_inv` this keeps the triangular inverse, from
+    which the caller forms only the entries it needs.
+    """
+    n = S.shape[0]
+    spd = True
+    for j in range(n):
+        d = S[j, j]
+        for u in range(j):
+            d -= L[j, u] * L[j, u]
+        if not d > 0.0:
+            spd = False
+            d = 1.0
+        piv = np.sqrt(d)
+        L[j, j] = piv
+        logdet += 2.0 * np.log(piv)
+        for i in range(j + 1, n):
+            acc = S[i, j]
+            for u in range(j):
+                acc -= L[i, u] * L[j, u]
+            L[i, j] = acc / piv
+    for i in range(n):
+        Li[i, i] = 1.0 / L[i, i]
+        for j in range(i):
+            acc = 0.0
+            for u in range(j, i):
+                acc += L[i, u] * Li[u, j]
+            Li[i, j] = -acc / L[i, i]
+    return logdet, spd
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_evaluate(theta, G, X, y, s2, pres, n_obs, A, E, a, Minv, beta, ll):  # G: (m, w, w, J)
     """Compiled body of :func:`_evaluate`: per voxel, per animal V = Σ θ_j G_j +
     diag(s²) (identity rows and columns where a run is missing), its Cholesky inverse
@@ -633,28 +671,8 @@ def _nb_evaluate(theta, G, X, y, s2, pres, n_obs, A, E, a, Minv, beta, ll):  # G
                     V[r, s] = v
                 V[r, r] += s2[t, k, r] * pres[t, k, r] + (1.0 - pres[t, k, r])
             # Cholesky factor, its inverse, and Ã = L⁻ᵀL⁻¹
-            for j in range(w):
-                d = V[j, j]
-                for u in range(j):
-                    d -= L[j, u] * L[j, u]
-                if not d > 0.0:
-                    good = False
-                    d = 1.0
-                piv = np.sqrt(d)
-                L[j, j] = piv
-                logdet_v += 2.0 * np.log(piv)
-                for i in range(j + 1, w):
-                    acc = V[i, j]
-                    for u in range(j):
-                        acc -= L[i, u] * L[j, u]
-                    L[i, j] = acc / piv
-            for i in range(w):
-                Li[i, i] = 1.0 / L[i, i]
-                for j in range(i):
-                    acc = 0.0
-                    for u in range(j, i):
-                        acc += L[i, u] * Li[u, j]
-                    Li[i, j] = -acc / L[i, i]
+            logdet_v, spd = _nb_cholesky_inverse(V, L, Li, logdet_v)
+            good = good and spd
             for i in range(w):
                 for j in range(i + 1):
                     acc = 0.0
@@ -681,29 +699,8 @@ def _nb_evaluate(theta, G, X, y, s2, pres, n_obs, A, E, a, Minv, beta, ll):  # G
                         acc += X[k, r, q1] * E[t, k, r, q2]
                     M[q1, q2] += acc
         # (XᵀV⁻¹X)⁻¹ by Cholesky; log|XᵀV⁻¹X|
-        logdet_m = 0.0
-        for j in range(p):
-            d = M[j, j]
-            for u in range(j):
-                d -= Lm[j, u] * Lm[j, u]
-            if not d > 0.0:
-                good = False
-                d = 1.0
-            piv = np.sqrt(d)
-            Lm[j, j] = piv
-            logdet_m += 2.0 * np.log(piv)
-            for i in range(j + 1, p):
-                acc = M[i, j]
-                for u in range(j):
-                    acc -= Lm[i, u] * Lm[j, u]
-                Lm[i, j] = acc / piv
-        for i in range(p):
-            Lmi[i, i] = 1.0 / Lm[i, i]
-            for j in range(i):
-                acc = 0.0
-                for u in range(j, i):
-                    acc += Lm[i, u] * Lmi[u, j]
-                Lmi[i, j] = -acc / Lm[i, i]
+        logdet_m, spd = _nb_cholesky_inverse(M, Lm, Lmi, 0.0)
+        good = good and spd
         for i in range(p):
             for j in range(i + 1):
                 acc = 0.0
