@@ -234,83 +234,6 @@ def _refit_voxel(y, prec, X, tau2, max_iter, tol, C, Cinv, G2, G3, beta, rhs, A,
     return b0 / np.sqrt(Cinv[0, 0]), tau2
 
 
-@lazy_njit(cache=True, nogil=True)
-def _refit_mean_voxel(y, prec, X, tau2, max_iter, tol):
-    """Intercept-only refit (p = 1, x = 1) with one pass of sums per iteration.
-
-    Returns (t, τ²). The sums expand the residuals r = y − μ̂ around the GLS mean, so
-    each iteration reads the animals once.
-    """
-    m = y.size
-    n = 0
-    vbar = 0.0
-    for a in range(m):
-        if prec[a] > 0.0:
-            n += 1
-            vbar += 1.0 / prec[a]
-    if n < 2:
-        return np.nan, tau2
-    vbar /= n
-    tau2 = max(_moment_start(y, prec, X, tau2), 0.0)  # X is the column of ones here
-    for _it in range(max_iter):
-        sw = 0.0
-        sw2 = 0.0
-        sw3 = 0.0
-        swy = 0.0
-        sw2y = 0.0
-        sw3y = 0.0
-        sw2yy = 0.0
-        sw3yy = 0.0
-        for a in range(m):
-            pa = prec[a]
-            if pa <= 0.0:
-                continue
-            w = pa / (1.0 + tau2 * pa)
-            w2 = w * w
-            w3 = w2 * w
-            ya = y[a]
-            sw += w
-            sw2 += w2
-            sw3 += w3
-            swy += w * ya
-            sw2y += w2 * ya
-            sw3y += w3 * ya
-            sw2yy += w2 * ya * ya
-            sw3yy += w3 * ya * ya
-        mu = swy / sw
-        quad = sw2yy - 2.0 * mu * sw2y + mu * mu * sw2  # Σ (w r)²
-        cube = sw3yy - 2.0 * mu * sw3y + mu * mu * sw3  # Σ w³ r²
-        w2r = sw2y - mu * sw2  # Σ w² r
-        trace_p = sw - sw2 / sw
-        trace_pp = sw2 - 2.0 * sw3 / sw + (sw2 / sw) ** 2
-        score = 0.5 * (quad - trace_p)
-        info = 0.5 * trace_pp
-        observed = cube - w2r * w2r / sw - 0.5 * trace_pp
-        expected = info
-        if observed > info * 1e-3 and _it >= REFIT_FISHER_STEPS:
-            info = observed
-        if info <= 0.0:
-            break
-        new = tau2 + score / info
-        if new < 0.0 and expected > 0.0:
-            new = tau2 + score / expected  # Fisher scoring past the boundary (as above)
-        if new < 0.0:
-            new = 0.0
-        change = abs(new - tau2)
-        tau2 = new
-        if change <= tol * (tau2 + vbar):
-            break
-    sw = 0.0
-    swy = 0.0
-    for a in range(m):
-        pa = prec[a]
-        if pa > 0.0:
-            w = pa / (1.0 + tau2 * pa)
-            sw += w
-            swy += w * y[a]
-    return (swy / sw) * np.sqrt(sw), tau2
-
-
 #: Voxels refitted side by side by :func:`_refit_mean_lanes`: the sums over animals run
 #: over this many voxels at once, which the compiler turns into vector instructions.
 LANES = 64
@@ -349,8 +272,11 @@ def _lane_sums(P, Y, tau, acc, m, nl):
 def _lane_steps(acc, tau, vbar, active, nl, it, tol):
     """One Newton (or Fisher-scoring) step of τ² in every active lane, from the sums.
 
-    The step of :func:`_refit_mean_voxel`, written with selections instead of branches
-    so that the lanes compile to vector instructions; inactive lanes keep their τ².
+    From the sums: score ½(Σ(wr)² − tr P), expected information ½ tr P², observed
+    Σw³r² − (Σw²r)²/Σw − ½ tr P² (Newton after ``REFIT_FISHER_STEPS`` scoring steps
+    where it is positive; a Newton step past 0 is replaced by the scoring step, then
+    clamped at 0). Written with selections instead of branches so that the lanes
+    compile to vector instructions; inactive lanes keep their τ².
     """
     L = LANES
     for k in range(nl):
@@ -381,13 +307,16 @@ def _lane_steps(acc, tau, vbar, active, nl, it, tol):
 
 @lazy_njit(cache=True, nogil=True)
 def _refit_mean_lanes(fitted, residual, prec, sign, order, tau2_start, out_t, max_iter, tol):
-    """:func:`_refit_mean_voxel` for every voxel, ``LANES`` voxels side by side.
+    """Intercept-only refit (p = 1, x = 1) of every voxel, ``LANES`` voxels side by side.
 
-    Each lane follows exactly the arithmetic of :func:`_refit_mean_voxel` (the same sums
-    in the same order, the same steps and the same stopping rule); a lane that has
-    converged keeps its τ² while the others go on, so the results are those of the
-    one-voxel path. Only the layout differs: the animals' values of ``LANES`` voxels are
-    copied side by side and every sum runs over the lanes innermost.
+    Per voxel: τ² starts from the moment estimate (:func:`_moment_start`), then each
+    iteration takes one pass of eight weighted sums over the animals
+    (:func:`_lane_sums`; the residuals r = y − μ̂ are expanded around the GLS mean) and
+    one Newton or Fisher-scoring step (:func:`_lane_steps`, the same rules as
+    :func:`_refit_voxel`); t = μ̂ / SE(μ̂) at the converged τ². A lane that has converged
+    keeps its τ² while the others go on, so each voxel's result does not depend on its
+    neighbours in the block: the animals' values of ``LANES`` voxels are only copied side
+    by side so that every sum runs over the lanes innermost (vector instructions).
     """
     V, m = residual.shape
     L = LANES
@@ -396,7 +325,7 @@ def _refit_mean_lanes(fitted, residual, prec, sign, order, tau2_start, out_t, ma
     acc = np.zeros(8 * L)
     tau = np.zeros(L)
     vbar = np.zeros(L)
-    n_here = np.zeros(L, dtype=np.int64)
+    ones = np.ones((m, 1))
     live = np.zeros(L, dtype=np.bool_)
     active = np.zeros(L, dtype=np.bool_)
     for v0 in range(0, V, L):
@@ -412,42 +341,22 @@ def _refit_mean_lanes(fitted, residual, prec, sign, order, tau2_start, out_t, ma
                 else:  # no data: weight 0, value 0
                     Y[a * L + k] = 0.0
                     P[a * L + k] = 0.0
-        # animals present, mean sampling variance and the moment start (as
-        # _moment_start for the column of ones) of each lane
+        # animals present, mean sampling variance and the moment start of each lane
         for k in range(nl):
             n = 0
             vb = 0.0
-            sw = 0.0
-            sw2 = 0.0
-            swy = 0.0
             for a in range(m):
                 pa = P[a * L + k]
                 if pa > 0.0:
                     n += 1
                     vb += 1.0 / pa
-                    sw += pa
-                    sw2 += pa * pa
-                    swy += pa * Y[a * L + k]
-            n_here[k] = n
             live[k] = n >= 2
             active[k] = n >= 2
             tau[k] = 0.0
-            if n < 2:
-                continue
-            vbar[k] = vb / n
-            start = tau2_start[v0 + k]
-            mu = swy / sw
-            q = 0.0
-            for a in range(m):
-                pa = P[a * L + k]
-                if pa > 0.0:
-                    r = Y[a * L + k] - mu
-                    q += pa * r * r
-            denom = sw - sw2 / sw
-            if denom > 0.0:
-                est = (q - (n - 1)) / denom
-                start = est if est > 0.0 else 0.0
-            tau[k] = start if start > 0.0 else 0.0
+            if n >= 2:
+                vbar[k] = vb / n
+                start = _moment_start(Y[k::L], P[k::L], ones, tau2_start[v0 + k])
+                tau[k] = start if start > 0.0 else 0.0
         for it in range(max_iter):
             n_active = 0
             for k in range(nl):
