@@ -489,36 +489,51 @@ def _local_codes(S):
 
 
 @lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_cholesky_inverse(S, L, Li, logdet):
+    """Cholesky factor ``L`` of the small symmetric matrix ``S`` (lower triangle read)
+    and ``Li = L⁻¹``; returns (``logdet`` + log|S|, positive definite): the pivots'
+    logarithms are added to a running total one by one.
+
+    A pivot that is not positive marks ``S`` as not positive definite and is taken as
+    1, so that the loops finish (the caller discards the voxel). Unlike
+    :func:`grouplevel.model.reml._nb_chol_inv` this keeps the triangular inverse, from
+    which the caller forms only the entries it needs.
+    """
+    n = S.shape[0]
+    spd = True
+    for j in range(n):
+        d = S[j, j]
+        for u in range(j):
+            d -= L[j, u] * L[j, u]
+        if not d > 0.0:
+            spd = False
+            d = 1.0
+        piv = np.sqrt(d)
+        L[j, j] = piv
+        logdet += 2.0 * np.log(piv)
+        for i in range(j + 1, n):
+            acc = S[i, j]
+            for u in range(j):
+                acc -= L[i, u] * L[j, u]
+            L[i, j] = acc / piv
+    for i in range(n):
+        Li[i, i] = 1.0 / L[i, i]
+        for j in range(i):
+            acc = 0.0
+            for u in range(j, i):
+                acc += L[i, u] * Li[u, j]
+            Li[i, j] = -acc / L[i, i]
+    return logdet, spd
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
 def _nb_spd_inverse(V, inv, logdet, ok):
     """Cholesky-based inverse and log-determinant of each matrix of a (N, w, w) stack."""
     n_mat, w, _ = V.shape
     L = np.zeros((w, w))
     Li = np.zeros((w, w))
     for t in range(n_mat):
-        good = True
-        ld = 0.0
-        for j in range(w):
-            d = V[t, j, j]
-            for k in range(j):
-                d -= L[j, k] * L[j, k]
-            if not d > 0.0:
-                good = False
-                d = 1.0
-            piv = np.sqrt(d)
-            L[j, j] = piv
-            ld += 2.0 * np.log(piv)
-            for i in range(j + 1, w):
-                s = V[t, i, j]
-                for k in range(j):
-                    s -= L[i, k] * L[j, k]
-                L[i, j] = s / piv
-        for i in range(w):
-            Li[i, i] = 1.0 / L[i, i]
-            for j in range(i):
-                s = 0.0
-                for k in range(j, i):
-                    s += L[i, k] * Li[k, j]
-                Li[i, j] = -s / L[i, i]
+        ld, good = _nb_cholesky_inverse(V[t], L, Li, 0.0)
         for i in range(w):
             for j in range(i + 1):
                 s = 0.0
@@ -598,44 +613,6 @@ def _evaluate(st: _Structure, phi, y, s2, pres, n_obs):
         ll,
     )
     return {"theta": theta, "A": A, "E": E, "Minv": Minv, "beta": beta, "a": a, "ll": ll}
-
-
-@lazy_njit(cache=True, nogil=True, error_model="numpy")
-def _nb_cholesky_inverse(S, L, Li, logdet):
-    """Cholesky factor ``L`` of the small symmetric matrix ``S`` (lower triangle read)
-    and ``Li = L⁻¹``; returns (``logdet`` + log|S|, positive definite): the pivots'
-    logarithms are added to a running total one by one.
-
-    A pivot that is not positive marks ``S`` as not positive definite and is taken as
-    1, so that the loops finish (the caller discards the voxel). Unlike
-    :func:`grouplevel.model.reml._nb_chol_inv` this keeps the triangular inverse, from
-    which the caller forms only the entries it needs.
-    """
-    n = S.shape[0]
-    spd = True
-    for j in range(n):
-        d = S[j, j]
-        for u in range(j):
-            d -= L[j, u] * L[j, u]
-        if not d > 0.0:
-            spd = False
-            d = 1.0
-        piv = np.sqrt(d)
-        L[j, j] = piv
-        logdet += 2.0 * np.log(piv)
-        for i in range(j + 1, n):
-            acc = S[i, j]
-            for u in range(j):
-                acc -= L[i, u] * L[j, u]
-            L[i, j] = acc / piv
-    for i in range(n):
-        Li[i, i] = 1.0 / L[i, i]
-        for j in range(i):
-            acc = 0.0
-            for u in range(j, i):
-                acc += L[i, u] * Li[u, j]
-            Li[i, j] = -acc / L[i, i]
-    return logdet, spd
 
 
 @lazy_njit(cache=True, nogil=True, error_model="numpy")
