@@ -140,6 +140,20 @@ def study_memory_need(
     return arrays + presence + outputs
 
 
+def _units_within(memory_gb: float, share: float, length: int, arrays: int, name: str) -> int:
+    """How many units (voxels or rows) of ``arrays`` float64 arrays of ``length`` values
+    each fit in ``share`` of the budget; the inputs checked (``name``: the caller's
+    argument for ``arrays``)."""
+    if not memory_gb > 0:
+        raise ArgumentError(f"memory_gb must be a positive number of GiB, got {memory_gb}.")
+    if not 0 < share <= 1:
+        raise ArgumentError(f"memory: share must be in (0, 1], got {share}.")
+    if arrays < 1:
+        raise ArgumentError(f"memory: {name} must be at least 1, got {arrays}.")
+    per_unit = WORKING_BYTES * max(int(length), 1) * int(arrays)
+    return int(share * memory_gb * GIB) // per_unit
+
+
 def chunk_voxels(
     n_runs: int,
     memory_gb: float,
@@ -166,14 +180,8 @@ def chunk_voxels(
         ``floor(share · memory_gb · 2³⁰ / (8 · n_runs · arrays_per_voxel))``, at least
         ``MIN_CHUNK_VOXELS``.
     """
-    if not memory_gb > 0:
-        raise ArgumentError(f"memory_gb must be a positive number of GiB, got {memory_gb}.")
-    if not 0 < share <= 1:
-        raise ArgumentError(f"memory: share must be in (0, 1], got {share}.")
-    if arrays_per_voxel < 1:
-        raise ArgumentError(f"memory: arrays_per_voxel must be at least 1, got {arrays_per_voxel}.")
-    per_voxel = WORKING_BYTES * max(int(n_runs), 1) * int(arrays_per_voxel)
-    return max(MIN_CHUNK_VOXELS, int(share * memory_gb * GIB) // per_voxel)
+    fitting = _units_within(memory_gb, share, n_runs, arrays_per_voxel, "arrays_per_voxel")
+    return max(MIN_CHUNK_VOXELS, fitting)
 
 
 def chunk_rows(
@@ -205,14 +213,7 @@ def chunk_rows(
     int
         ``floor(share · memory_gb · 2³⁰ / (8 · n_voxels · arrays_per_row))``, at least 1.
     """
-    if not memory_gb > 0:
-        raise ArgumentError(f"memory_gb must be a positive number of GiB, got {memory_gb}.")
-    if not 0 < share <= 1:
-        raise ArgumentError(f"memory: share must be in (0, 1], got {share}.")
-    if arrays_per_row < 1:
-        raise ArgumentError(f"memory: arrays_per_row must be at least 1, got {arrays_per_row}.")
-    per_row = WORKING_BYTES * max(int(n_voxels), 1) * int(arrays_per_row)
-    return max(1, int(share * memory_gb * GIB) // per_row)
+    return max(1, _units_within(memory_gb, share, n_voxels, arrays_per_row, "arrays_per_row"))
 
 
 def voxel_chunks(n_voxels: int, chunk: int) -> list[slice]:
