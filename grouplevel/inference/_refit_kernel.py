@@ -305,80 +305,132 @@ def _lane_steps(acc, tau, vbar, active, nl, it, tol):
         active[k] = moving and abs(new - t) > tol * (new + vbar[k])
 
 
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _lane_load(fitted, residual, prec, sign, order, v0, nl, m, Y, P):
+    """Copy the permuted animal values and precisions of voxels ``v0 .. v0 + nl - 1``
+    side by side (animal ``a`` of lane ``k`` at ``a * LANES + k``); 0 and 0 where an
+    animal has no data."""
+    L = LANES
+    for k in range(nl):
+        v = v0 + k
+        for a in range(m):
+            oa = order[a]
+            pa = prec[v, oa]
+            present = pa > 0.0
+            Y[a * L + k] = fitted[v, a] + sign[a] * residual[v, oa] if present else 0.0
+            P[a * L + k] = pa if present else 0.0
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _lane_start(P, Y, tau2_start, v0, nl, m, tau, vbar, live, active, work):
+    """Per lane: animals present, mean sampling variance and the start of τ².
+
+    The start is :func:`_moment_start`'s method-of-moments estimate (its fallback to
+    ``tau2_start`` included), computed for all lanes at once with the same sums in the
+    same order, so each lane's start is the same number bit for bit. A lane with fewer
+    than two animals is not live.
+    """
+    L = LANES
+    sw = work[0:L]
+    sw2 = work[L : 2 * L]
+    swy = work[2 * L : 3 * L]
+    vb = work[3 * L : 4 * L]
+    q = work[4 * L : 5 * L]
+    count = work[5 * L : 6 * L]
+    for k in range(nl):
+        sw[k] = 0.0
+        sw2[k] = 0.0
+        swy[k] = 0.0
+        vb[k] = 0.0
+        q[k] = 0.0
+        count[k] = 0.0
+    for a in range(m):
+        base = a * L
+        for k in range(nl):
+            pa = P[base + k]
+            present = pa > 0.0
+            count[k] += 1.0 if present else 0.0
+            vb[k] += 1.0 / pa if present else 0.0
+            sw[k] += pa if present else 0.0
+            sw2[k] += pa * pa if present else 0.0
+            swy[k] += pa * Y[base + k] if present else 0.0
+    for a in range(m):
+        base = a * L
+        for k in range(nl):
+            pa = P[base + k]
+            r = Y[base + k] - swy[k] / sw[k]
+            q[k] += pa * r * r if pa > 0.0 else 0.0
+    for k in range(nl):
+        n = count[k]
+        denom = sw[k] - sw2[k] / sw[k]
+        est = (q[k] - (n - 1.0)) / denom
+        est = est if est > 0.0 else 0.0
+        start = tau2_start[v0 + k] if (sw[k] <= 0.0 or denom <= 0.0) else est
+        ok = n >= 2.0
+        live[k] = ok
+        active[k] = ok
+        tau[k] = start if (ok and start > 0.0) else 0.0
+        vbar[k] = vb[k] / n if ok else 0.0
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _lane_t(P, Y, tau, live, nl, m, v0, out_t, work):
+    """t = μ̂ / SE(μ̂) of each lane at its converged τ²; NaN where the lane is not live."""
+    L = LANES
+    s0 = work[0:L]
+    s1 = work[L : 2 * L]
+    for k in range(nl):
+        s0[k] = 0.0
+        s1[k] = 0.0
+    for a in range(m):
+        base = a * L
+        for k in range(nl):
+            pa = P[base + k]
+            w = pa / (1.0 + tau[k] * pa)
+            s0[k] += w if pa > 0.0 else 0.0
+            s1[k] += w * Y[base + k] if pa > 0.0 else 0.0
+    for k in range(nl):
+        out_t[v0 + k] = (s1[k] / s0[k]) * np.sqrt(s0[k]) if live[k] else np.nan
+
+
 @lazy_njit(cache=True, nogil=True)
 def _refit_mean_lanes(fitted, residual, prec, sign, order, tau2_start, out_t, max_iter, tol):
     """Intercept-only refit (p = 1, x = 1) of every voxel, ``LANES`` voxels side by side.
 
-    Per voxel: τ² starts from the moment estimate (:func:`_moment_start`), then each
-    iteration takes one pass of eight weighted sums over the animals
-    (:func:`_lane_sums`; the residuals r = y − μ̂ are expanded around the GLS mean) and
-    one Newton or Fisher-scoring step (:func:`_lane_steps`, the same rules as
-    :func:`_refit_voxel`); t = μ̂ / SE(μ̂) at the converged τ². A lane that has converged
-    keeps its τ² while the others go on, so each voxel's result does not depend on its
-    neighbours in the block: the animals' values of ``LANES`` voxels are only copied side
-    by side so that every sum runs over the lanes innermost (vector instructions).
+    Per voxel: τ² starts from the moment estimate (:func:`_lane_start`, the same numbers
+    as :func:`_moment_start`), then each iteration takes one pass of eight weighted sums
+    over the animals (:func:`_lane_sums`; the residuals r = y − μ̂ are expanded around
+    the GLS mean) and one Newton or Fisher-scoring step (:func:`_lane_steps`, the same
+    rules as :func:`_refit_voxel`); t = μ̂ / SE(μ̂) at the converged τ² (:func:`_lane_t`).
+    A lane that has converged keeps its τ² while the others go on, so each voxel's result
+    does not depend on its neighbours in the block: the animals' values of ``LANES``
+    voxels are only copied side by side so that every sum runs over the lanes innermost
+    (vector instructions), and every per-lane step is written with selections rather
+    than branches for the same reason.
     """
     V, m = residual.shape
     L = LANES
     Y = np.zeros(m * L)
     P = np.zeros(m * L)
     acc = np.zeros(8 * L)
+    work = np.zeros(6 * L)
     tau = np.zeros(L)
     vbar = np.zeros(L)
-    ones = np.ones((m, 1))
     live = np.zeros(L, dtype=np.bool_)
     active = np.zeros(L, dtype=np.bool_)
     for v0 in range(0, V, L):
         nl = min(L, V - v0)
-        for k in range(nl):
-            v = v0 + k
-            for a in range(m):
-                oa = order[a]
-                pa = prec[v, oa]
-                if pa > 0.0:
-                    Y[a * L + k] = fitted[v, a] + sign[a] * residual[v, oa]
-                    P[a * L + k] = pa
-                else:  # no data: weight 0, value 0
-                    Y[a * L + k] = 0.0
-                    P[a * L + k] = 0.0
-        # animals present, mean sampling variance and the moment start of each lane
-        for k in range(nl):
-            n = 0
-            vb = 0.0
-            for a in range(m):
-                pa = P[a * L + k]
-                if pa > 0.0:
-                    n += 1
-                    vb += 1.0 / pa
-            live[k] = n >= 2
-            active[k] = n >= 2
-            tau[k] = 0.0
-            if n >= 2:
-                vbar[k] = vb / n
-                start = _moment_start(Y[k::L], P[k::L], ones, tau2_start[v0 + k])
-                tau[k] = start if start > 0.0 else 0.0
+        _lane_load(fitted, residual, prec, sign, order, v0, nl, m, Y, P)
+        _lane_start(P, Y, tau2_start, v0, nl, m, tau, vbar, live, active, work)
         for it in range(max_iter):
             n_active = 0
             for k in range(nl):
-                if active[k]:
-                    n_active += 1
+                n_active += active[k]
             if n_active == 0:
                 break
             _lane_sums(P, Y, tau, acc, m, nl)
             _lane_steps(acc, tau, vbar, active, nl, it, tol)
-        for k in range(nl):
-            if not live[k]:
-                out_t[v0 + k] = np.nan
-                continue
-            s0 = 0.0
-            s1 = 0.0
-            for a in range(m):
-                pa = P[a * L + k]
-                if pa > 0.0:
-                    w = pa / (1.0 + tau[k] * pa)
-                    s0 += w
-                    s1 += w * Y[a * L + k]
-            out_t[v0 + k] = (s1 / s0) * np.sqrt(s0)
+        _lane_t(P, Y, tau, live, nl, m, v0, out_t, work)
 
 
 @lazy_njit(cache=True, nogil=True)

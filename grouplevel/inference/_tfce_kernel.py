@@ -31,32 +31,22 @@ def _find(parent: np.ndarray, node: int) -> int:
 #: counts stay in the fastest cache).
 RADIX_BITS = 11
 
+#: Radix passes over the top of the key before the insertion pass (3 × 11 bits: the sign,
+#: the exponent and the first 20 bits of the mantissa).
+TOP_PASSES = 3
+
 
 @lazy_njit(cache=True, nogil=True)
-def sort_descending(values, candidates, n, order, keys, spare_order, spare_keys, counts):
-    """Put ``candidates[:n]`` into ``order[:n]`` so that ``values`` descends along it.
+def _radix_passes(n, order, keys, spare_order, spare_keys, counts, first_shift):
+    """Stable LSD radix sort of ``(keys, order)`` by the key bits from ``first_shift`` up.
 
-    ``values`` must be positive at the candidates. A positive float64 sorts like its bit
-    pattern read as an unsigned integer, so the bits (complemented, for a descending
-    order) are sorted by least-significant-digit radix sort, ``RADIX_BITS`` per pass;
-    a pass whose digit is the same for every key is skipped. Stable, O(n) per pass.
-    ``keys``, ``spare_order`` and ``spare_keys`` are workspaces of at least ``n``
-    entries, ``counts`` of ``2**RADIX_BITS + 1``.
-
-    References
-    ----------
-    Knuth DE (1998). The Art of Computer Programming, Vol. 3: Sorting and Searching,
-    2nd ed., section 5.2.5 (radix sorting). Addison-Wesley.
+    ``RADIX_BITS`` per pass; a pass whose digit is the same for every key is skipped.
+    The result is left in ``order`` and ``keys``.
     """
-    bits = values.view(np.uint64)
-    for i in range(n):
-        c = candidates[i]
-        order[i] = c
-        keys[i] = ~bits[c]
     n_buckets = 1 << RADIX_BITS
     digit_mask = np.uint64(n_buckets - 1)
     src_o, src_k, dst_o, dst_k = order, keys, spare_order, spare_keys
-    shift = 0
+    shift = first_shift
     while shift < 64:
         sh = np.uint64(shift)
         for d in range(n_buckets + 1):
@@ -79,6 +69,53 @@ def sort_descending(values, candidates, n, order, keys, spare_order, spare_keys,
     if src_o is not order:
         for i in range(n):
             order[i] = src_o[i]
+            keys[i] = src_k[i]
+
+
+@lazy_njit(cache=True, nogil=True)
+def sort_descending(order, keys, n, spare_order, spare_keys, counts):
+    """Sort ``(keys[:n], order[:n])`` by key, stably: the heights then descend.
+
+    Each key is the complemented bit pattern of a positive float64 height (a positive
+    float64 sorts like its bits read as an unsigned integer, so the complement sorts
+    descending heights first); ``order`` carries what each key belongs to.
+    ``spare_order`` and ``spare_keys`` are workspaces of at least ``n`` entries,
+    ``counts`` of ``2**RADIX_BITS + 1``.
+
+    Least-significant-digit radix sort, ``RADIX_BITS`` per pass, over the top
+    ``TOP_PASSES`` digits only; keys equal in those bits (heights equal to about six
+    significant digits) are then put in order by one insertion pass. Both are stable, so
+    the result is the stable sort by the whole key. If that pass has to move more than
+    ``n`` entries (heights crowded in a narrow band), the remaining low digits are
+    radix-sorted as well and the top digits again: the same result, in at most nine
+    passes. O(n) per pass.
+
+    References
+    ----------
+    Knuth DE (1998). The Art of Computer Programming, Vol. 3: Sorting and Searching,
+    2nd ed., sections 5.2.1 (insertion sort) and 5.2.5 (radix sorting). Addison-Wesley.
+    """
+    top = 64 - TOP_PASSES * RADIX_BITS
+    _radix_passes(n, order, keys, spare_order, spare_keys, counts, top)
+    moves = 0
+    for i in range(1, n):
+        k = keys[i]
+        if k >= keys[i - 1]:
+            continue
+        o = order[i]
+        j = i - 1
+        while j >= 0 and keys[j] > k:
+            keys[j + 1] = keys[j]
+            order[j + 1] = order[j]
+            j -= 1
+        moves += i - 1 - j
+        keys[j + 1] = k
+        order[j + 1] = o
+        if moves > n:
+            # Too many near-ties: sort every digit. Equal keys have kept their input
+            # order through the stable steps so far, so the result is the same.
+            _radix_passes(n, order, keys, spare_order, spare_keys, counts, 0)
+            return
 
 
 @lazy_njit(cache=True, nogil=True)
@@ -91,7 +128,7 @@ def _height_integral(h, h1):
 
 @lazy_njit(cache=True, nogil=True)
 def _sweep(
-    order, n, values, h1, grid_of, shape, offsets, extent_weights,
+    order, keys, n, h1, flat_offsets, extent_weights,
     position, parent, size, active, link, own, level,
 ):  # fmt: skip
     """Exact TFCE of the ``n`` voxels of ``order``; entry i's score is left in ``own[i]``.
@@ -99,24 +136,20 @@ def _sweep(
     Parameters
     ----------
     order
-        The voxels to enter (indices into ``values`` and ``grid_of``), sorted so that
-        ``values`` descends.
-    values
-        Positive statistic values (the heights ``h``).
+        The voxels to enter, as flat indices into the grid padded by one voxel on every
+        side, sorted so that their heights descend.
+    keys
+        The complemented bit pattern of each entry's height (see
+        :func:`sort_descending`): the heights are read from here, in entry order.
     h1
         ``H + 1``: heights enter through ``F(h) = h^(H+1) / (H+1)``.
-    grid_of
-        Flat C-order grid index of each voxel of ``values``.
-    shape
-        ``(nx, ny, nz)`` of the grid.
-    offsets
-        ``(K, 3)`` neighbour offsets (the full neighbourhood, without the centre).
+    flat_offsets
+        The neighbourhood (without the centre) as flat offsets on the padded grid.
     extent_weights
         Entry ``k`` is ``(k * voxel volume)^E``, the weight of a component of ``k``
         voxels (extent in mm³); at least ``n + 1`` entries.
     position
-        Workspace over the grid padded by one voxel on every side: -1 everywhere on entry,
-        and left so on return.
+        Workspace over the padded grid: -1 everywhere on entry, and left so on return.
     parent, size, active, link, own, level
         Workspaces of at least ``n`` entries (nothing needs to be set on entry).
 
@@ -139,22 +172,20 @@ def _sweep(
     brought down to 0 and each voxel's TFCE is the sum of ``own`` along its chain of
     links, computed in one backward pass because every link points to a later entry.
     All terms are non-negative, so the result has no cancellation error.
-    """
-    ny, nz = shape[1], shape[2]
-    plane = ny * nz
-    # Positions live on the grid padded by one voxel on every side, so a neighbour is
-    # one fixed flat offset away and never outside: no bounds checks in the inner loop.
-    prow = nz + 2
-    pplane = (ny + 2) * prow
-    n_offsets = offsets.shape[0]
-    flat_offsets = np.empty(n_offsets, dtype=np.int64)
-    for k in range(n_offsets):
-        flat_offsets[k] = offsets[k, 0] * pplane + offsets[k, 1] * prow + offsets[k, 2]
 
+    Everything read per entry comes in entry order (its padded position and its key);
+    only the union-find arrays and the position grid are read out of order. The
+    entered neighbours are first gathered without branching, so the unpredictable
+    "entered or not" test does not stall the loop.
+    """
+    n_offsets = flat_offsets.size
+    entered = np.empty(n_offsets, dtype=np.int64)
+    bits = np.empty(1, dtype=np.uint64)
+    height = bits.view(np.float64)
     for i in range(n):
-        v = grid_of[order[i]]
-        f_h = _height_integral(values[order[i]], h1)
-        pv = (v // plane + 1) * pplane + ((v // nz) % ny + 1) * prow + v % nz + 1
+        pv = order[i]
+        bits[0] = ~keys[i]
+        f_h = _height_integral(height[0], h1)
         position[pv] = i
         parent[i] = i
         size[i] = 1
@@ -162,12 +193,14 @@ def _sweep(
         link[i] = -1
         own[i] = 0.0
         level[i] = f_h
-        a = i  # root of the new voxel's component, kept current through its merges
+        count = 0
         for k in range(n_offsets):
             j = position[pv + flat_offsets[k]]
-            if j < 0:
-                continue
-            b = _find(parent, j)
+            entered[count] = j
+            count += j >= 0
+        a = i  # root of the new voxel's component, kept current through its merges
+        for t in range(count):
+            b = _find(parent, entered[t])
             if a == b:
                 continue
             q = active[b]
@@ -190,53 +223,55 @@ def _sweep(
         if link[i] >= 0:
             own[i] += own[link[i]]
     for i in range(n):  # leave the workspace as it was found
-        v = grid_of[order[i]]
-        position[(v // plane + 1) * pplane + ((v // nz) % ny + 1) * prow + v % nz + 1] = -1
+        position[order[i]] = -1
 
 
 @lazy_njit(cache=True, nogil=True)
-def _signed_candidates(stat, sign, values, candidates):
-    """Heights ``sign * stat`` into ``values``; indices where they are > 0 into
-    ``candidates``; returns how many (NaN never counts)."""
+def _signed_keys(stat, sign, padded_of, order, keys):
+    """Entries where ``sign * stat > 0`` (NaN never counts): their padded positions into
+    ``order`` and their sort keys (complemented height bits) into ``keys``; returns how
+    many."""
+    bits = np.empty(1, dtype=np.uint64)
+    height = bits.view(np.float64)
     n = 0
     for v in range(stat.size):
         h = sign * stat[v]
-        values[v] = h
         if h > 0.0:
-            candidates[n] = v
+            height[0] = h
+            order[n] = padded_of[v]
+            keys[n] = ~bits[0]
             n += 1
     return n
 
 
 @lazy_njit(cache=True, nogil=True)
 def tfce_signed(
-    stat, grid_of, shape, offsets, extent_weights, h1, sign, out,
-    ws_values, ws_candidates, ws_order, ws_keys, ws_spare_order, ws_spare_keys, ws_counts,
+    stat, padded_of, voxel_at, flat_offsets, extent_weights, h1, sign, out,
+    ws_order, ws_keys, ws_spare_order, ws_spare_keys, ws_counts,
     position, parent, size, active, link, own, level,
 ):  # fmt: skip
     """TFCE of ``sign * stat`` (voxels where it is > 0) and the largest score.
 
-    ``stat`` holds the statistic of the voxels whose flat grid indices are ``grid_of``.
+    ``stat`` holds the statistic of the voxels whose flat indices on the grid padded by
+    one voxel are ``padded_of``; ``voxel_at`` maps a padded index back to the voxel.
     When ``out`` has the size of ``stat``, ``out[v]`` is set to ``sign * TFCE`` at those
     voxels (others are left alone); pass an empty ``out`` for the maximum only. The
     ``ws_*`` and the union-find arrays are workspaces of ``stat``'s size (``ws_counts``:
     ``2**RADIX_BITS + 1``; ``position``: the padded grid, all -1).
     """
-    n = _signed_candidates(stat, sign, ws_values, ws_candidates)
-    sort_descending(
-        ws_values, ws_candidates, n, ws_order, ws_keys, ws_spare_order, ws_spare_keys, ws_counts
-    )
+    n = _signed_keys(stat, sign, padded_of, ws_order, ws_keys)
+    sort_descending(ws_order, ws_keys, n, ws_spare_order, ws_spare_keys, ws_counts)
     _sweep(
-        ws_order, n, ws_values, h1, grid_of, shape, offsets, extent_weights,
+        ws_order, ws_keys, n, h1, flat_offsets, extent_weights,
         position, parent, size, active, link, own, level,
     )  # fmt: skip
     largest = 0.0
-    write = out.size == stat.size
     for i in range(n):
         if own[i] > largest:
             largest = own[i]
-        if write:
-            out[ws_order[i]] = sign * own[i]
+    if out.size == stat.size:
+        for i in range(n):
+            out[voxel_at[ws_order[i]]] = sign * own[i]
     return largest
 
 

@@ -166,21 +166,28 @@ class TfceWorkspace:
         if not (np.isfinite(voxel_volume_mm3) and voxel_volume_mm3 > 0):
             raise ArgumentError(f"{name}: voxel volume must be > 0 mm³; got {voxel_volume_mm3}.")
         mask = np.asarray(mask, dtype=bool)
-        self.shape = np.asarray(mask.shape, dtype=np.int64)
-        self.grid_of = np.flatnonzero(mask.ravel()).astype(np.int64)
-        n = self.grid_of.size
+        if mask.ndim != 3:
+            raise ArgumentError(f"{name}: the mask must be 3-D; got shape {mask.shape}.")
+        # Voxels are addressed on the grid padded by one voxel on every side, so that
+        # a neighbour is one fixed flat offset away and never outside the grid.
+        padded_shape = np.asarray(mask.shape, dtype=np.int64) + 2
+        inside = np.zeros(padded_shape, dtype=bool)
+        inside[1:-1, 1:-1, 1:-1] = mask
+        self.padded_of = np.flatnonzero(inside.ravel()).astype(np.int32)
+        n = self.padded_of.size
+        self.voxel_at = np.full(inside.size, -1, dtype=np.int32)
+        self.voxel_at[self.padded_of] = np.arange(n, dtype=np.int32)
+        strides = np.array([padded_shape[1] * padded_shape[2], padded_shape[2], 1])
+        self.flat_offsets = (self.offsets @ strides).astype(np.int64)
         self.h1 = float(H) + 1.0
         self.extent_weights = (np.arange(n + 1) * float(voxel_volume_mm3)) ** float(E)
-        padded = int(np.prod(self.shape + 2))
         self._buffers = (
-            np.empty(n),  # heights of one sign
-            np.empty(n, dtype=np.int64),  # candidates
-            np.empty(n, dtype=np.int64),  # order
+            np.empty(n, dtype=np.int32),  # order: padded positions
             np.empty(n, dtype=np.uint64),  # sort keys
-            np.empty(n, dtype=np.int64),  # spare order
+            np.empty(n, dtype=np.int32),  # spare order
             np.empty(n, dtype=np.uint64),  # spare keys
             np.empty((1 << _tfce_kernel.RADIX_BITS) + 1, dtype=np.int64),  # counts
-            np.full(padded, -1, dtype=np.int32),  # position on the padded grid
+            np.full(inside.size, -1, dtype=np.int32),  # position on the padded grid
             np.empty(n, dtype=np.int32),  # parent
             np.empty(n, dtype=np.int32),  # size
             np.empty(n, dtype=np.int32),  # active
@@ -214,9 +221,9 @@ class TfceWorkspace:
                 largest,
                 _tfce_kernel.tfce_signed(
                     values,
-                    self.grid_of,
-                    self.shape,
-                    self.offsets,
+                    self.padded_of,
+                    self.voxel_at,
+                    self.flat_offsets,
                     self.extent_weights,
                     self.h1,
                     sign,

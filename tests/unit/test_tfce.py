@@ -333,9 +333,12 @@ def test_bad_input_gives_clear_errors():
         tfce(stat, None)
 
 
-def test_radix_order_equals_numpy_argsort():
+@pytest.mark.parametrize("crowded", [False, True])
+def test_radix_order_equals_numpy_argsort(crowded):
     # Reference: numpy.argsort (stable, descending via the negated values); ties, values
-    # over many binades, subnormals and the largest double all sort the same way.
+    # over many binades, subnormals and the largest double all sort the same way. The
+    # crowded case puts thousands of heights in one band narrower than the top radix
+    # digits resolve, so the sort has to fall back on every digit.
     from grouplevel.inference import _tfce_kernel as kernel
 
     rng = np.random.default_rng(4)
@@ -348,14 +351,20 @@ def test_radix_order_equals_numpy_argsort():
             -rng.uniform(0, 1, 50),  # not candidates
         ]
     )
-    candidates = np.flatnonzero(values > 0)
-    n = candidates.size
-    order, spare_order = np.empty(n, dtype=np.int64), np.empty(n, dtype=np.int64)
-    keys, spare_keys = np.empty(n, dtype=np.uint64), np.empty(n, dtype=np.uint64)
+    if crowded:
+        values = np.concatenate([values, 2.0 + 1e-9 * rng.standard_normal(3000)])
+    n_all = values.size
+    order = np.empty(n_all, dtype=np.int32)
+    keys = np.empty(n_all, dtype=np.uint64)
+    spare_order, spare_keys = np.empty_like(order), np.empty_like(keys)
     counts = np.empty((1 << kernel.RADIX_BITS) + 1, dtype=np.int64)
-    kernel.sort_descending(values, candidates, n, order, keys, spare_order, spare_keys, counts)
+    tags = np.arange(n_all, dtype=np.int32)  # what each key belongs to
+    n = kernel._signed_keys(values, 1.0, tags, order, keys)
+    kernel.sort_descending(order, keys, n, spare_order, spare_keys, counts)
+    candidates = np.flatnonzero(values > 0)
     want = candidates[np.argsort(-values[candidates], kind="stable")]
-    np.testing.assert_array_equal(order, want)
+    np.testing.assert_array_equal(order[:n], want)
+    np.testing.assert_array_equal((~keys[:n]).view(np.float64), values[want])
 
 
 @pytest.mark.parametrize("sided", ["two", "positive", "negative"])
