@@ -167,7 +167,7 @@ def run_grouplevel(data, df, mask, n: int, seed: int = 1):
 def breakdown(data, df, mask, repeats: int = 10) -> dict[str, float]:
     """Seconds of each step of one permutation (single thread), averaged.
 
-    The refit and the t → z conversion run in one compiled pass (``refit_z_permuted``,
+    The refit and the t → z conversion run in one call (``refit_z_permuted``,
     what the engine calls); the refit alone (``refit_t_permuted``) is timed as well, so
     the t → z share is the difference of the two.
     """
