@@ -1005,10 +1005,15 @@ class _GroupVarianceWork(_PermutationWork):
         return np.arange(self.tables.shape[1]) * self.du
 
 
-def maxima_rows(work: _PermutationWork, ks: np.ndarray) -> np.ndarray:
-    """(len(ks), 4) null maxima of the permutations ``ks``: one task of a distributed run."""
+def maxima_rows(
+    work: _PermutationWork, ks: np.ndarray, scratch: TfceWorkspace | None = None
+) -> np.ndarray:
+    """(len(ks), 4) null maxima of the permutations ``ks``: one task of a distributed run.
+
+    ``scratch``: TFCE buffers to reuse (one thread at a time); made here when None.
+    """
     out = np.zeros((len(ks), 4))
-    scratch = work.tfce_workspace()
+    scratch = scratch if scratch is not None else work.tfce_workspace()
     for i, k in enumerate(ks):
         out[i] = work.maxima(int(k), scratch)
     return out
@@ -1189,15 +1194,18 @@ def run_scheme(
         batch = 16
         n_threads = threads or available_cores()
         pool = ThreadPoolExecutor(max_workers=n_threads) if n_threads > 1 else None
+        # one set of TFCE buffers per share, kept for the whole run: share i of every
+        # batch uses set i, and a batch ends before the next starts, so no set is ever
+        # used by two threads at once
+        scratches = [work.tfce_workspace() for _ in range(min(n_threads, max(n, 1)))]
         try:
             for start in range(0, n, batch):
                 ks = np.arange(start, min(n, start + batch))
-                # one share per thread, each with its own TFCE buffers
                 shares = np.array_split(ks, min(n_threads, ks.size))
                 rows = (
-                    pool.map(maxima_rows, [work] * len(shares), shares)
+                    pool.map(maxima_rows, [work] * len(shares), shares, scratches)
                     if pool is not None
-                    else map(maxima_rows, [work], shares)
+                    else map(maxima_rows, [work], shares, scratches)
                 )
                 null[ks] = np.concatenate(list(rows))
                 if progress is not None:
