@@ -309,15 +309,19 @@ def _lane_steps(acc, tau, vbar, active, nl, it, tol):
 def _lane_load(fitted, residual, prec, sign, order, v0, nl, m, Y, P):
     """Copy the permuted animal values and precisions of voxels ``v0 .. v0 + nl - 1``
     side by side (animal ``a`` of lane ``k`` at ``a * LANES + k``); 0 and 0 where an
-    animal has no data."""
+    animal has no data. An empty ``fitted`` (no rows) stands for zeros."""
     L = LANES
+    with_fit = fitted.shape[0] > 0
     for k in range(nl):
         v = v0 + k
         for a in range(m):
             oa = order[a]
             pa = prec[v, oa]
             present = pa > 0.0
-            Y[a * L + k] = fitted[v, a] + sign[a] * residual[v, oa] if present else 0.0
+            value = sign[a] * residual[v, oa]
+            if with_fit:
+                value = fitted[v, a] + value
+            Y[a * L + k] = value if present else 0.0
             P[a * L + k] = pa if present else 0.0
 
 
@@ -439,7 +443,8 @@ def refit_t_permuted(fitted, residual, prec, sign, order, X, tau2_start, out_t, 
 
     The permuted animal-level data are ``fitted[:, a] + sign[a] * residual[:, order[a]]``
     with precision ``prec[:, order[a]]`` (Freedman–Lane; ``fitted`` is 0 without
-    nuisance). Intercept-only designs take the one-pass path.
+    nuisance, and may then be passed with no rows, which saves reading it).
+    Intercept-only designs take the one-pass path.
     """
     V, m = residual.shape
     p = X.shape[1]
@@ -461,9 +466,12 @@ def refit_t_permuted(fitted, residual, prec, sign, order, X, tau2_start, out_t, 
     if intercept_only:
         _refit_mean_lanes(fitted, residual, prec, sign, order, tau2_start, out_t, max_iter, tol)
         return
+    with_fit = fitted.shape[0] > 0
     for v in range(V):
         for a in range(m):
-            y[a] = fitted[v, a] + sign[a] * residual[v, order[a]]
+            y[a] = sign[a] * residual[v, order[a]]
+            if with_fit:
+                y[a] = fitted[v, a] + y[a]
             pr[a] = prec[v, order[a]]
         t, _tau2 = _refit_voxel(
             y, pr, X, tau2_start[v], max_iter, tol, C, Cinv, G2, G3, beta, rhs, A, wk

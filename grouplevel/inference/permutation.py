@@ -60,6 +60,7 @@ Smith SM, Nichols TE (2009). Threshold-free cluster enhancement. NeuroImage 44:8
 
 from __future__ import annotations
 
+import functools
 import itertools
 import math
 from collections.abc import Callable
@@ -813,7 +814,7 @@ class _PermutationWork(MapMaxima):
         """z map (in-mask) of permutation k; k = 0 is the unpermuted data."""
         z = np.empty(self.fitted.shape[0])
         _refit_kernel.refit_z_permuted(
-            self.fitted,
+            self._fitted_or_none,
             self.residual,
             self.precision,
             self.signs[k],
@@ -832,6 +833,14 @@ class _PermutationWork(MapMaxima):
     def oriented(self, z: np.ndarray) -> np.ndarray:
         """The statistic as it is ranked for the maximum (larger: more extreme)."""
         return _oriented(z, self.sided)
+
+    @functools.cached_property
+    def _fitted_or_none(self) -> np.ndarray:
+        """``fitted``, or an array with no rows when it is all 0 (no nuisance): the
+        refit kernel then skips reading it."""
+        if np.any(self.fitted):
+            return self.fitted
+        return np.zeros((0, self.fitted.shape[1]))
 
 
 # Smallest residual variance of a variance group, relative to the voxel's largest one,
