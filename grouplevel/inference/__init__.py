@@ -1,7 +1,8 @@
 """Inference on statistic maps: FDR, clusters, exact TFCE and smoothness.
 
-Pure functions on numpy arrays; the permutation engine calls :func:`tfce` and
-:func:`max_cluster_extent_and_mass` once per permutation.
+Pure functions on numpy arrays; for the maxima of each permutation the engine keeps
+one :class:`~grouplevel.inference.clusters.ClusterWorkspace` and one
+:class:`~grouplevel.inference.tfce.TfceWorkspace` per thread.
 """
 
 from __future__ import annotations

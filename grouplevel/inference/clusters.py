@@ -7,7 +7,8 @@ above ``+threshold`` never joins one below ``-threshold``.
 
 For each cluster this module reports its extent (voxels and mm³), its mass (the summed
 excess of ``|stat|`` over the threshold), its sign and its peak. The permutation engine
-calls :func:`max_cluster_extent_and_mass`, a fast path that returns only the two maxima.
+needs only the largest extent and mass of each map: :class:`ClusterWorkspace` (behind
+:func:`max_cluster_extent_and_mass`) finds them from the supra-threshold voxels alone.
 
 References
 ----------
@@ -290,10 +291,88 @@ def max_cluster_extent_and_mass(
     name = "max_cluster_extent_and_mass"
     _check_sided(sided, name)
     threshold = _check_threshold(threshold, name)
-    offsets = neighbour_offsets(connectivity)
     stat3, mask3 = _as_grid(stat, mask, name)
-    signs = _signs(stat3, mask3, threshold, sided)
-    excess = np.abs(stat3) - threshold
-    shape = np.asarray(stat3.shape, dtype=np.int64)
-    extent, mass = _tfce_kernel.max_extent_and_mass(signs.ravel(), excess.ravel(), shape, offsets)
-    return int(extent), float(mass)
+    scratch = ClusterWorkspace(mask3, connectivity=connectivity)
+    return scratch.maxima(stat3[mask3], threshold, sided)
+
+
+@dataclass(frozen=True)
+class PaddedGrid:
+    """The in-mask voxels of a 3-D mask addressed on the grid padded by one voxel on
+    every side, where a neighbour is one fixed flat offset away and never outside.
+
+    Attributes
+    ----------
+    padded_of
+        int32 flat padded index of each in-mask voxel (C order).
+    voxel_at
+        int32 map from a padded index back to the voxel (-1 outside the mask).
+    flat_offsets
+        int64 flat offsets of the neighbours on the padded grid.
+    """
+
+    padded_of: np.ndarray
+    voxel_at: np.ndarray
+    flat_offsets: np.ndarray
+
+    @classmethod
+    def of(cls, mask: np.ndarray, connectivity: int) -> PaddedGrid:
+        """The padded addressing of ``mask`` (3-D) for one connectivity."""
+        offsets = neighbour_offsets(connectivity)
+        mask = np.asarray(mask, dtype=bool)
+        if mask.ndim != 3:
+            raise ArgumentError(f"the mask must be a 3-D grid; got shape {mask.shape}.")
+        padded_shape = np.asarray(mask.shape, dtype=np.int64) + 2
+        inside = np.zeros(padded_shape, dtype=bool)
+        inside[1:-1, 1:-1, 1:-1] = mask
+        padded_of = np.flatnonzero(inside.ravel()).astype(np.int32)
+        voxel_at = np.full(inside.size, -1, dtype=np.int32)
+        voxel_at[padded_of] = np.arange(padded_of.size, dtype=np.int32)
+        strides = np.array([padded_shape[1] * padded_shape[2], padded_shape[2], 1])
+        return cls(padded_of, voxel_at, (offsets @ strides).astype(np.int64))
+
+    def empty_positions(self) -> np.ndarray:
+        """A workspace over the padded grid, all -1 (as the union-find kernels want it)."""
+        return np.full(self.voxel_at.size, -1, dtype=np.int32)
+
+
+class ClusterWorkspace:
+    """Largest cluster extent and mass of maps on one mask, with buffers kept from one
+    map to the next (one thread at a time), for permutations.
+
+    Parameters
+    ----------
+    mask
+        3-D boolean mask; maps are given as the vector of its voxels (C order).
+    connectivity
+        6, 18 or 26.
+    """
+
+    def __init__(self, mask: np.ndarray, *, connectivity: int = DEFAULT_CONNECTIVITY) -> None:
+        self.grid = PaddedGrid.of(mask, connectivity)
+        n = self.grid.padded_of.size
+        self._buffers = (
+            self.grid.empty_positions(),
+            np.empty(n, dtype=np.int64),  # members
+            np.empty(n, dtype=np.int64),  # parent
+            np.empty(n, dtype=np.int64),  # size
+            np.empty(n),  # mass
+        )
+
+    def maxima(self, values: np.ndarray, threshold: float, sided: str) -> tuple[int, float]:
+        """Largest extent (voxels) and largest mass of the clusters of one map.
+
+        ``values`` is the statistic at the mask's voxels; ``threshold`` and ``sided`` as
+        for :func:`find_clusters` (already checked by the caller). ``(0, 0.0)`` when
+        there is no cluster.
+        """
+        extent, mass = _tfce_kernel.max_extent_and_mass(
+            np.ascontiguousarray(values, dtype=np.float64),
+            float(threshold),
+            sided in ("two", "positive"),
+            sided in ("two", "negative"),
+            self.grid.padded_of,
+            self.grid.flat_offsets,
+            *self._buffers,
+        )
+        return int(extent), float(mass)

@@ -73,7 +73,7 @@ from scipy import stats
 
 from grouplevel.errors import ArgumentError
 from grouplevel.inference import _refit_kernel
-from grouplevel.inference.clusters import Clusters, find_clusters, max_cluster_extent_and_mass
+from grouplevel.inference.clusters import Clusters, ClusterWorkspace, find_clusters
 from grouplevel.inference.significance import check_sided
 from grouplevel.inference.tfce import TfceWorkspace
 from grouplevel.inference.tfce import tfce as tfce_map
@@ -753,37 +753,43 @@ class MapMaxima:
             sided=self.sided,
         )
 
-    def tfce_workspace(self) -> TfceWorkspace | None:
-        """TFCE buffers for this mask and these weights (one per thread), or None."""
-        if not self.use_tfce:
-            return None
-        return TfceWorkspace(
-            self.mask,
-            connectivity=self.connectivity,
-            E=self.tfce_E,
-            H=self.tfce_H,
-            voxel_volume_mm3=self.voxel_volume_mm3,
-        )
+    def workspace(self) -> MaximaWorkspace:
+        """Cluster and TFCE buffers for this mask and these settings (one per thread)."""
+        tfce = None
+        if self.use_tfce:
+            tfce = TfceWorkspace(
+                self.mask,
+                connectivity=self.connectivity,
+                E=self.tfce_E,
+                H=self.tfce_H,
+                voxel_volume_mm3=self.voxel_volume_mm3,
+            )
+        return MaximaWorkspace(ClusterWorkspace(self.mask, connectivity=self.connectivity), tfce)
 
     def maxima(
-        self, k: int, scratch: TfceWorkspace | None = None
+        self, k: int, scratch: MaximaWorkspace | None = None
     ) -> tuple[float, int, float, float]:
         """Maximum statistic, cluster extent, cluster mass and TFCE of permutation k.
 
-        ``scratch`` (from :meth:`tfce_workspace`) is reused by the caller's later
+        ``scratch`` (from :meth:`workspace`) is reused by the caller's later
         permutations; without it one is made for this call.
         """
+        scratch = scratch if scratch is not None else self.workspace()
         z = self.statistic(k)
-        vol = self.volume(z)
         max_stat = float(self.oriented(z).max())
-        extent, mass = max_cluster_extent_and_mass(
-            vol, self.mask, self.threshold, connectivity=self.connectivity, sided=self.sided
-        )
+        extent, mass = scratch.clusters.maxima(z, self.threshold, self.sided)
         max_tfce = 0.0
-        if self.use_tfce:
-            scratch = scratch if scratch is not None else self.tfce_workspace()
-            max_tfce = scratch.scores(z, self.sided)
+        if scratch.tfce is not None:
+            max_tfce = scratch.tfce.scores(z, self.sided)
         return max_stat, int(extent), float(mass), max_tfce
+
+
+@dataclass(frozen=True)
+class MaximaWorkspace:
+    """The buffers one thread reuses from one rearrangement to the next."""
+
+    clusters: ClusterWorkspace
+    tfce: TfceWorkspace | None
 
 
 @dataclass(frozen=True, eq=False)
@@ -1015,14 +1021,14 @@ class _GroupVarianceWork(_PermutationWork):
 
 
 def maxima_rows(
-    work: _PermutationWork, ks: np.ndarray, scratch: TfceWorkspace | None = None
+    work: _PermutationWork, ks: np.ndarray, scratch: MaximaWorkspace | None = None
 ) -> np.ndarray:
     """(len(ks), 4) null maxima of the permutations ``ks``: one task of a distributed run.
 
-    ``scratch``: TFCE buffers to reuse (one thread at a time); made here when None.
+    ``scratch``: buffers to reuse (one thread at a time); made here when None.
     """
     out = np.zeros((len(ks), 4))
-    scratch = scratch if scratch is not None else work.tfce_workspace()
+    scratch = scratch if scratch is not None else work.workspace()
     for i, k in enumerate(ks):
         out[i] = work.maxima(int(k), scratch)
     return out
@@ -1203,10 +1209,10 @@ def run_scheme(
         batch = 16
         n_threads = threads or available_cores()
         pool = ThreadPoolExecutor(max_workers=n_threads) if n_threads > 1 else None
-        # one set of TFCE buffers per share, kept for the whole run: share i of every
-        # batch uses set i, and a batch ends before the next starts, so no set is ever
-        # used by two threads at once
-        scratches = [work.tfce_workspace() for _ in range(min(n_threads, max(n, 1)))]
+        # one set of buffers per share, kept for the whole run: share i of every batch
+        # uses set i, and a batch ends before the next starts, so no set is ever used by
+        # two threads at once
+        scratches = [work.workspace() for _ in range(min(n_threads, max(n, 1)))]
         try:
             for start in range(0, n, batch):
                 ks = np.arange(start, min(n, start + batch))

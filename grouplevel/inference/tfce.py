@@ -40,9 +40,9 @@ from grouplevel.errors import ArgumentError
 from grouplevel.inference import _tfce_kernel
 from grouplevel.inference.clusters import (
     DEFAULT_CONNECTIVITY,
+    PaddedGrid,
     _as_grid,
     _check_sided,
-    neighbour_offsets,
 )
 
 #: Extent weight E (Smith & Nichols 2009, NeuroImage 44:83).
@@ -160,25 +160,14 @@ class TfceWorkspace:
         voxel_volume_mm3: float = 1.0,
     ) -> None:
         name = "tfce"
-        self.offsets = neighbour_offsets(connectivity)
         if not (np.isfinite(E) and E >= 0.0 and np.isfinite(H) and H >= 0.0):
             raise ArgumentError(f"{name}: the weights E and H must be >= 0; got E = {E}, H = {H}.")
         if not (np.isfinite(voxel_volume_mm3) and voxel_volume_mm3 > 0):
             raise ArgumentError(f"{name}: voxel volume must be > 0 mm³; got {voxel_volume_mm3}.")
-        mask = np.asarray(mask, dtype=bool)
-        if mask.ndim != 3:
-            raise ArgumentError(f"{name}: the mask must be 3-D; got shape {mask.shape}.")
-        # Voxels are addressed on the grid padded by one voxel on every side, so that
-        # a neighbour is one fixed flat offset away and never outside the grid.
-        padded_shape = np.asarray(mask.shape, dtype=np.int64) + 2
-        inside = np.zeros(padded_shape, dtype=bool)
-        inside[1:-1, 1:-1, 1:-1] = mask
-        self.padded_of = np.flatnonzero(inside.ravel()).astype(np.int32)
+        grid = PaddedGrid.of(mask, connectivity)
+        self.padded_of, self.voxel_at = grid.padded_of, grid.voxel_at
+        self.flat_offsets = grid.flat_offsets
         n = self.padded_of.size
-        self.voxel_at = np.full(inside.size, -1, dtype=np.int32)
-        self.voxel_at[self.padded_of] = np.arange(n, dtype=np.int32)
-        strides = np.array([padded_shape[1] * padded_shape[2], padded_shape[2], 1])
-        self.flat_offsets = (self.offsets @ strides).astype(np.int64)
         self.h1 = float(H) + 1.0
         self.extent_weights = (np.arange(n + 1) * float(voxel_volume_mm3)) ** float(E)
         self._buffers = (
@@ -187,7 +176,7 @@ class TfceWorkspace:
             np.empty(n, dtype=np.int32),  # spare order
             np.empty(n, dtype=np.uint64),  # spare keys
             np.empty((1 << _tfce_kernel.RADIX_BITS) + 1, dtype=np.int64),  # counts
-            np.full(inside.size, -1, dtype=np.int32),  # position on the padded grid
+            grid.empty_positions(),  # position on the padded grid
             np.empty(n, dtype=np.int32),  # parent
             np.empty(n, dtype=np.int32),  # size
             np.empty(n, dtype=np.int32),  # active
