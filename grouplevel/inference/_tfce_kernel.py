@@ -130,8 +130,13 @@ def _height_integral(h, h1):
 def _sweep(
     order, keys, n, h1, flat_offsets, extent_weights,
     position, parent, size, active, link, own, level,
+    beat, best, tail, roots,
 ):  # fmt: skip
     """Exact TFCE of the ``n`` voxels of ``order``; entry i's score is left in ``own[i]``.
+
+    Returns the number of entries swept: ``n``, or fewer when ``beat > 0`` and the sweep
+    stopped early because no score can exceed ``beat`` (see Notes; ``own`` then holds
+    nothing of use).
 
     Parameters
     ----------
@@ -152,6 +157,11 @@ def _sweep(
         Workspace over the padded grid: -1 everywhere on entry, and left so on return.
     parent, size, active, link, own, level
         Workspaces of at least ``n`` entries (nothing needs to be set on entry).
+    beat
+        When > 0: stop as soon as it is certain that no score exceeds ``beat``.
+        0 (or less): sweep everything.
+    best, tail, roots
+        Workspaces of at least ``n`` entries, used only when ``beat > 0``.
 
     Notes
     -----
@@ -173,6 +183,17 @@ def _sweep(
     links, computed in one backward pass because every link points to a later entry.
     All terms are non-negative, so the result has no cancellation error.
 
+    **Stopping early** (used for the maximum of a two-sided map: once one sign's maximum
+    is known, the other sign matters only if it can exceed it). Every score is a
+    partial integral down to the current height ``h_i`` plus the rest below it, and
+    below ``h_i`` no extent exceeds ``N(h)``, the number of voxels at or above ``h``. So
+    with ``tail[i] = ∫_0^{h_i} (N(h) · voxel volume)^E h^H dh`` (a suffix sum over the
+    sorted heights) and ``best[a]`` the largest sum of ``own`` along a chain of links up
+    to the active entry ``a`` (kept through the merges), no score can exceed
+    ``max over components (best[a] + own[a] + e^E (level[a] - F(h_i))) + tail[i]``.
+    This bound is checked about 64 times over the sweep, once ``tail`` alone is below
+    ``beat``; the components are scanned from a shrinking list of roots.
+
     Everything read per entry comes in entry order (its padded position and its key);
     only the union-find arrays and the position grid are read out of order. The
     entered neighbours are first gathered without branching, so the unpredictable
@@ -182,6 +203,21 @@ def _sweep(
     entered = np.empty(n_offsets, dtype=np.int64)
     bits = np.empty(1, dtype=np.uint64)
     height = bits.view(np.float64)
+    bounded = beat > 0.0
+    if bounded:
+        # tail[j] = Σ_{k >= j} w(k + 1) (F(h_k) - F(h_{k+1})), with F(h_n) = 0
+        total = 0.0
+        f_next = 0.0
+        for j in range(n - 1, -1, -1):
+            bits[0] = ~keys[j]
+            f_j = _height_integral(height[0], h1)
+            total += extent_weights[j + 1] * (f_j - f_next)
+            tail[j] = total
+            f_next = f_j
+    check_every = max(n // 64, 64)
+    next_check = check_every
+    n_roots = 0
+    listed = 0  # entries before this one have been put on the roots list
     for i in range(n):
         pv = order[i]
         bits[0] = ~keys[i]
@@ -199,6 +235,7 @@ def _sweep(
             entered[count] = j
             count += j >= 0
         a = i  # root of the new voxel's component, kept current through its merges
+        chain = 0.0
         for t in range(count):
             b = _find(parent, entered[t])
             if a == b:
@@ -207,12 +244,39 @@ def _sweep(
             if level[q] != f_h:
                 own[q] += extent_weights[size[b]] * (level[q] - f_h)
                 level[q] = f_h
+            if bounded and best[q] + own[q] > chain:
+                chain = best[q] + own[q]
             link[q] = i
             if size[a] < size[b]:
                 a, b = b, a
             parent[b] = a
             size[a] += size[b]
             active[a] = i
+        if not bounded:
+            continue
+        best[i] = chain
+        if i + 1 < next_check or tail[i] >= beat:
+            continue
+        next_check = i + 1 + check_every
+        # the roots: survivors of the last scan, then the entries since
+        kept = 0
+        partial = 0.0
+        for t in range(n_roots + i + 1 - listed):
+            r = roots[t] if t < n_roots else listed + t - n_roots
+            if parent[r] != r:
+                continue
+            roots[kept] = r
+            kept += 1
+            q = active[r]
+            score = best[q] + own[q] + extent_weights[size[r]] * (level[q] - f_h)
+            if score > partial:
+                partial = score
+        n_roots = kept
+        listed = i + 1
+        if (partial + tail[i]) * (1.0 + 1e-9) < beat:
+            for j in range(i + 1):  # leave the workspace as it was found
+                position[order[j]] = -1
+            return i + 1
 
     for r in range(n):
         if parent[r] == r:
@@ -224,6 +288,7 @@ def _sweep(
             own[i] += own[link[i]]
     for i in range(n):  # leave the workspace as it was found
         position[order[i]] = -1
+    return n
 
 
 @lazy_njit(cache=True, nogil=True)
@@ -246,33 +311,54 @@ def _signed_keys(stat, sign, padded_of, order, keys):
 
 @lazy_njit(cache=True, nogil=True)
 def tfce_signed(
-    stat, padded_of, voxel_at, flat_offsets, extent_weights, h1, sign, out,
+    stat, padded_of, voxel_at, flat_offsets, extent_weights, h1, sign, out, beat,
     ws_order, ws_keys, ws_spare_order, ws_spare_keys, ws_counts,
-    position, parent, size, active, link, own, level,
+    position, parent, size, active, link, own, level, best, tail, roots,
 ):  # fmt: skip
     """TFCE of ``sign * stat`` (voxels where it is > 0) and the largest score.
 
     ``stat`` holds the statistic of the voxels whose flat indices on the grid padded by
     one voxel are ``padded_of``; ``voxel_at`` maps a padded index back to the voxel.
     When ``out`` has the size of ``stat``, ``out[v]`` is set to ``sign * TFCE`` at those
-    voxels (others are left alone); pass an empty ``out`` for the maximum only. The
-    ``ws_*`` and the union-find arrays are workspaces of ``stat``'s size (``ws_counts``:
-    ``2**RADIX_BITS + 1``; ``position``: the padded grid, all -1).
+    voxels (others are left alone); pass an empty ``out`` for the maximum only, and
+    then ``beat > 0`` lets the sweep stop once no score can exceed ``beat``: the result
+    is then -1 (meaning "not more than ``beat``"). The ``ws_*`` and the union-find
+    arrays are workspaces of ``stat``'s size (``ws_counts``: ``2**RADIX_BITS + 1``;
+    ``position``: the padded grid, all -1).
     """
+    write = out.size == stat.size
     n = _signed_keys(stat, sign, padded_of, ws_order, ws_keys)
     sort_descending(ws_order, ws_keys, n, ws_spare_order, ws_spare_keys, ws_counts)
-    _sweep(
+    swept = _sweep(
         ws_order, ws_keys, n, h1, flat_offsets, extent_weights,
         position, parent, size, active, link, own, level,
+        0.0 if write else beat, best, tail, roots,
     )  # fmt: skip
+    if swept < n:
+        return -1.0
     largest = 0.0
     for i in range(n):
         if own[i] > largest:
             largest = own[i]
-    if out.size == stat.size:
+    if write:
         for i in range(n):
             out[voxel_at[ws_order[i]]] = sign * own[i]
     return largest
+
+
+@lazy_njit(cache=True, nogil=True)
+def larger_side(stat):
+    """+1.0 when the largest positive value of ``stat`` is at least the largest
+    magnitude of its negative values, else -1.0 (NaN ignored)."""
+    top = 0.0
+    bottom = 0.0
+    for v in range(stat.size):
+        x = stat[v]
+        if x > top:
+            top = x
+        elif -x > bottom:
+            bottom = -x
+    return 1.0 if top >= bottom else -1.0
 
 
 @lazy_njit(cache=True, nogil=True)

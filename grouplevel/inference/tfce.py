@@ -183,6 +183,9 @@ class TfceWorkspace:
             np.empty(n, dtype=np.int32),  # link
             np.empty(n),  # own
             np.empty(n),  # level
+            np.empty(n),  # best chain sums (stopping early)
+            np.empty(n),  # tail integrals (stopping early)
+            np.empty(n, dtype=np.int32),  # roots (stopping early)
         )
         self._no_output = np.empty(0)
 
@@ -202,22 +205,25 @@ class TfceWorkspace:
         """
         values = np.ascontiguousarray(values, dtype=np.float64)
         target = self._no_output if out is None else out
+        signs = {"positive": (1.0,), "negative": (-1.0,)}.get(sided)
+        if signs is None:
+            # Both: the side with the higher peak first; for the maximum alone, the other
+            # side's sweep may stop once it cannot beat the first (an exact maximum).
+            first = _tfce_kernel.larger_side(values)
+            signs = (first, -first)
         largest = 0.0
-        for sign in (1.0, -1.0):
-            if (sign > 0 and sided == "negative") or (sign < 0 and sided == "positive"):
-                continue
-            largest = max(
+        for sign in signs:
+            score = _tfce_kernel.tfce_signed(
+                values,
+                self.padded_of,
+                self.voxel_at,
+                self.flat_offsets,
+                self.extent_weights,
+                self.h1,
+                sign,
+                target,
                 largest,
-                _tfce_kernel.tfce_signed(
-                    values,
-                    self.padded_of,
-                    self.voxel_at,
-                    self.flat_offsets,
-                    self.extent_weights,
-                    self.h1,
-                    sign,
-                    target,
-                    *self._buffers,
-                ),  # fmt: skip
+                *self._buffers,
             )
+            largest = max(largest, score)
         return largest

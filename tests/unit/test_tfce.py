@@ -393,3 +393,41 @@ def test_workspace_reused_for_many_maps_equals_fresh_maps(sided):
             want = np.where(stat < 0, want, 0.0)
         np.testing.assert_allclose(out, want[mask], rtol=1e-10, atol=0)
         assert largest == pytest.approx(np.abs(want).max(), rel=1e-10)
+
+
+def test_two_sided_maximum_stops_early_only_when_it_cannot_change():
+    # Reference: the pure-Python union-find above (largest |TFCE| over both signs, 1e-10).
+    # The sweep of the second sign may stop once no score can beat the first sign's
+    # maximum; called directly with a bar above or below that sign's own maximum, the
+    # kernel must return the exact maximum whenever it exceeds the bar, and must stop
+    # (return -1) when the bar is well above it.
+    from grouplevel.inference import _tfce_kernel as kernel
+    from grouplevel.inference.tfce import TfceWorkspace
+
+    rng = np.random.default_rng(21)
+    shape = (20, 18, 12)
+    mask = np.ones(shape, dtype=bool)
+    scratch = TfceWorkspace(mask, connectivity=26)
+    stopped = 0
+    for seed in range(4):
+        stat = ndimage.gaussian_filter(rng.standard_normal(shape), 1.5)
+        stat /= stat.std()
+        stat += 0.3 * seed * (np.indices(shape)[0] > 10)  # one side higher, sometimes
+        want = python_tfce(stat, mask, 26, 0.5, 2.0, 1.0)
+        assert scratch.scores(stat.ravel(), "two") == pytest.approx(np.abs(want).max(), rel=1e-10)
+        for sign in (1.0, -1.0):
+            own_max = np.max(sign * want)
+            for bar in own_max * np.array([0.5, 0.99, 1.0, 1.01, 1.5, 3.0]):
+                got = kernel.tfce_signed(
+                    stat.ravel(), scratch.padded_of, scratch.voxel_at, scratch.flat_offsets,
+                    scratch.extent_weights, scratch.h1, sign, np.empty(0), bar,
+                    *scratch._buffers,
+                )  # fmt: skip
+                if bar < own_max:
+                    assert got == pytest.approx(own_max, rel=1e-10)
+                else:
+                    assert got == -1.0 or got == pytest.approx(own_max, rel=1e-10)
+                if bar >= 1.5 * own_max:
+                    assert got == -1.0
+                    stopped += 1
+    assert stopped == 16
