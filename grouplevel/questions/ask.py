@@ -51,6 +51,7 @@ from grouplevel.inference.permutation import (
 )
 from grouplevel.intake.design import Design
 from grouplevel.intake.settings import QuestionSettings, Settings
+from grouplevel.machine import available_cores
 from grouplevel.model import MixedFit, between_animal_df, test_contrast
 from grouplevel.model.marginal import ModelDf, RandomTerms, fit_terms
 from grouplevel.model.memory import (
@@ -688,6 +689,7 @@ def answer_questions(
         components=fit_components(fit) if terms.extended else None,
         terms=terms,
         chunk=_loo_chunk(settings, y.shape[0], design.n_animals),
+        workers=available_cores(),
     )
     weighted = plan.kind.rows_in_mean()
     in_runs = weighted if weighted.size == len(design.animal) and weighted.any() else None

@@ -41,6 +41,7 @@ Wiley (inverse-variance weighting).
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -1171,6 +1172,7 @@ def loo_group_maps(
     components: dict[str, np.ndarray] | None = None,
     terms: RandomTerms | None = None,
     chunk: int | None = None,
+    workers: int = 1,
 ) -> LooMaps:
     """The voxelwise group map leaving out each animal in turn.
 
@@ -1204,6 +1206,10 @@ def loo_group_maps(
         Voxels downdated together (default: all at once); the numbers of a voxel do not
         depend on it (:func:`grouplevel.model.memory.chunk_voxels` sizes it for a
         budget). The refits without variance components are not chunked.
+    workers
+        Threads that downdate chunks side by side (default 1). Each then takes
+        ``chunk // workers`` voxels, so the memory held at once stays that of one
+        ``chunk``; no number depends on it (each voxel is downdated on its own).
 
     Returns
     -------
@@ -1223,7 +1229,7 @@ def loo_group_maps(
     if components is not None or (var_animal is not None and var_run is not None):
         maps = _downdated_maps(
             y, s2, X, animal, c, len(ids), estimate_run_variance, var_animal, var_run,
-            components, terms, max(1, y.shape[1] if chunk is None else chunk),
+            components, terms, max(1, y.shape[1] if chunk is None else chunk), workers,
         )  # fmt: skip
     else:
         maps = _refitted_maps(y, s2, X, animal, c, df_fn, len(ids), estimate_run_variance, terms)
@@ -1240,19 +1246,22 @@ def loo_group_maps(
 
 def _downdated_maps(
     y, s2, X, animal, c, n_ids, estimate_run_variance, var_animal, var_run, components, terms,
-    chunk,
+    chunk, workers=1,
 ):  # fmt: skip
-    """The leave-one-out maps by downdating, ``chunk`` voxels at a time: full effect and
-    t, (n_ids, V) effect and t without each animal, and the (n_ids,) largest |Δt|."""
+    """The leave-one-out maps by downdating, ``chunk`` voxels at a time (``workers``
+    chunks of ``chunk // workers`` side by side): full effect and t, (n_ids, V) effect
+    and t without each animal, and the (n_ids,) largest |Δt|."""
     n_vox = y.shape[1]
     m = int(animal.max()) + 1
     # a group map needs two animals: without such an animal there is none
     too_few = np.array([np.unique(animal[animal != a]).size < 2 for a in range(m)])
     effect_full, t_full = np.full(n_vox, np.nan), np.full(n_vox, np.nan)
     effect, t_loo = np.full((n_ids, n_vox), np.nan), np.full((n_ids, n_vox), np.nan)
-    largest = np.full(n_ids, -np.inf)
-    any_finite = np.zeros(n_ids, dtype=bool)
-    for sl in voxel_chunks(n_vox, chunk):
+    workers = max(1, min(int(workers), -(-n_vox // chunk)))
+    part_chunk = max(1, chunk // workers)
+
+    def one_chunk(sl: slice) -> np.ndarray:
+        """Downdate the voxels ``sl`` into the output arrays; their |Δt| (n_ids, k)."""
         ss = None if s2 is None else s2[:, sl]
         if components is not None:
             part = {k: np.asarray(v)[sl] for k, v in components.items()}
@@ -1260,18 +1269,31 @@ def _downdated_maps(
         else:
             down = leave_one_animal_out(
                 y[:, sl], ss, X, animal, c, var_animal[sl], var_run[sl],
-                estimate_run_variance=estimate_run_variance, chunk=chunk,
+                estimate_run_variance=estimate_run_variance, chunk=part_chunk,
             )  # fmt: skip
         down.effect[too_few] = down.t[too_few] = np.nan
         effect_full[sl], t_full[sl] = down.effect_full, down.t_full
         effect[:m, sl], t_loo[:m, sl] = down.effect, down.t
         with np.errstate(invalid="ignore"):
-            dt = np.abs(t_loo[:, sl] - t_full[None, sl])
-        finite = np.isfinite(dt)
-        any_finite |= finite.any(axis=1)
-        if dt.shape[1]:
-            largest = np.maximum(largest, np.where(finite, dt, -np.inf).max(axis=1))
-    return effect_full, t_full, effect, t_loo, np.where(any_finite, largest, np.nan)
+            return _largest_finite(np.abs(t_loo[:, sl] - t_full[None, sl]))
+
+    slices = voxel_chunks(n_vox, part_chunk)
+    if workers == 1:
+        per_chunk = [one_chunk(sl) for sl in slices]
+    else:  # numpy's linear algebra and einsum release the GIL: threads share the cores
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            per_chunk = list(pool.map(one_chunk, slices))
+    if not per_chunk:
+        return effect_full, t_full, effect, t_loo, np.full(n_ids, np.nan)
+    largest = np.stack(per_chunk).max(axis=0)  # -inf where no chunk had a finite |Δt|
+    return effect_full, t_full, effect, t_loo, np.where(np.isfinite(largest), largest, np.nan)
+
+
+def _largest_finite(dt: np.ndarray) -> np.ndarray:
+    """The largest finite value of each row of ``dt`` (-inf where none is finite)."""
+    if not dt.shape[1]:
+        return np.full(dt.shape[0], -np.inf)
+    return np.where(np.isfinite(dt), dt, -np.inf).max(axis=1)
 
 
 def _refitted_maps(y, s2, X, animal, c, df_fn, n_ids, estimate_run_variance, terms):

@@ -65,16 +65,19 @@ def png_and_box(figure: Figure, dpi: int = PNG_DPI) -> tuple[bytes, Bbox]:
     """The figure as PNG bytes at ``dpi``, cut to its drawn content, and that content's
     box in inches (padded by :data:`PAD_INCHES`), from one draw.
 
-    When the content reaches beyond the figure's edges (a long label), the figure is
-    drawn again on a canvas that holds all of it, so nothing is ever cut off.
+    When the content reaches beyond the figure's edges (a long label, or content up to
+    an edge, whose padding then lies outside), the figure is drawn on a canvas that
+    holds all of it, so nothing is ever cut off. The box is measured by a layout pass
+    that rasterises nothing, so either way the figure is rasterised once.
     """
     canvas = FigureCanvasAgg(figure)
     figure.set_dpi(dpi)
-    canvas.draw()
+    figure.draw_without_rendering()  # text extents known; no pixels drawn
     box = figure.get_tightbbox(canvas.get_renderer()).padded(PAD_INCHES)
     width, height = figure.get_size_inches()
     if box.x0 < 0 or box.y0 < 0 or box.x1 > width or box.y1 > height:
         return figure_bytes(figure, "png", dpi=dpi, box=box), box
+    canvas.draw()
     pixels = np.asarray(canvas.buffer_rgba())
     rows = pixels.shape[0]
     left, right = int(np.floor(box.x0 * dpi)), int(np.ceil(box.x1 * dpi))

@@ -77,6 +77,13 @@ def test_loo_maps_in_many_chunks_equal_one_chunk(model):
     for field in ("t_full", "effect_full", "effect", "correlation", "max_abs_dt"):
         _same(getattr(many, field), getattr(one, field))
     assert np.isfinite(one.correlation).all() and np.isfinite(one.max_abs_dt).all()
+    # chunks downdated side by side on threads: each voxel is downdated on its own, so
+    # every number equals the one-chunk run exactly (not just to rounding)
+    threaded = loo_group_maps(y, s2, X, animal, c, chunk=8, workers=3, **kwargs)
+    one_by_one = loo_group_maps(y, s2, X, animal, c, chunk=8 // 3, **kwargs)
+    for field in ("t_full", "effect_full", "effect", "correlation", "max_abs_dt"):
+        np.testing.assert_array_equal(getattr(threaded, field), getattr(one_by_one, field))
+        _same(getattr(threaded, field), getattr(one, field))
 
 
 def test_loo_effect_equals_gls_without_the_animal():

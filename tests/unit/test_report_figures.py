@@ -251,6 +251,40 @@ def test_content_beyond_the_figure_edge_is_kept():
     assert Image.open(io.BytesIO(png)).size[0] == pytest.approx(box.width * 100, abs=2)
 
 
+def test_crop_box_measured_without_pixels_equals_the_drawn_one():
+    # the box png_and_box measures by a layout pass is matplotlib's own tight box of the
+    # fully rasterised figure (FigureCanvasAgg.draw, then Figure.get_tightbbox), and a
+    # figure cut inside its edges is the drawn canvas's pixels in that box
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    from grouplevel.report.figure_files import PAD_INCHES, png_and_box
+
+    def figure(x):
+        fig = Figure(figsize=(2.0, 1.0))
+        fig.add_axes((0.3, 0.3, 0.5, 0.5)).plot([0, 1], [1, 0])
+        fig.text(x, 0.1, "label")
+        return fig
+
+    for x in (0.2, 0.0):  # inside the edges; touching the left edge (padding outside)
+        png, box = png_and_box(figure(x), dpi=100)
+        drawn = figure(x)
+        canvas = FigureCanvasAgg(drawn)
+        drawn.set_dpi(100)
+        canvas.draw()
+        reference = drawn.get_tightbbox(canvas.get_renderer()).padded(PAD_INCHES)
+        np.testing.assert_allclose(box.bounds, reference.bounds, atol=1e-12)
+        if x > 0:
+            pixels = np.asarray(canvas.buffer_rgba())
+            rows = pixels.shape[0]
+            top, bottom = int(np.floor(rows - box.y1 * 100)), int(np.ceil(rows - box.y0 * 100))
+            left, right = int(np.floor(box.x0 * 100)), int(np.ceil(box.x1 * 100))
+            np.testing.assert_array_equal(
+                np.asarray(Image.open(io.BytesIO(png)).convert("RGBA")),
+                pixels[top:bottom, left:right],
+            )
+
+
 def test_a_map_without_surviving_voxels_has_no_colour_scale():
     mask = np.ones((5, 6, 4), dtype=bool)
     template = figures.Volume(np.ones(mask.shape), np.zeros(3), np.full(3, 0.2))
