@@ -26,11 +26,18 @@ specificity of one area, consistency, run quality) and N sign flips with TFCE an
 clusters, the maps, tables and report written; the child prints its time per step and
 its peak resident memory (target: below 4 GiB at 1 000 000 voxels × 200 maps).
 
+``--design three-groups`` deals the animals in turn to three groups and fits
+``formula = "1 + group"``: the whole run then tests the design's default contrasts (each
+group's mean, the differences from the reference group, the mean over groups) and the
+F-test ``group-any-difference``, all with the N permutations, and asks each difference
+its own questions (lateralisation difference, specificity, consistency, run quality).
+The default (``mean``) is one group mean, as before.
+
 Run with ``.venv/bin/python benchmarks/bench_scale.py`` (optionally ``--voxels 250000
-1000000``, ``--memory-gb 3``, ``--dir /some/scratch``, ``--whole 20``). Needs about 2 GB of scratch
-disk per million voxels. ``--tiny`` (6 animals × 2 runs, 2 000 and 4 000 voxels) runs
-to the end in seconds: a check that the script still runs
-(tests/end_to_end/test_benchmarks.py), not a measurement.
+1000000``, ``--memory-gb 3``, ``--dir /some/scratch``, ``--whole 20``, ``--design
+three-groups``). Needs about 2 GB of scratch disk per million voxels. ``--tiny``
+(6 animals × 2 runs, 2 000 and 4 000 voxels) runs to the end in seconds: a check that
+the script still runs (tests/end_to_end/test_benchmarks.py), not a measurement.
 """
 
 from __future__ import annotations
