@@ -26,11 +26,18 @@ specificity of one area, consistency, run quality) and N sign flips with TFCE an
 clusters, the maps, tables and report written; the child prints its time per step and
 its peak resident memory (target: below 4 GiB at 1 000 000 voxels × 200 maps).
 
+``--design three-groups`` deals the animals in turn to three groups and fits
+``formula = "1 + group"``: the whole run then tests the design's default contrasts (each
+group's mean, the differences from the reference group, the mean over groups) and the
+F-test ``group-any-difference``, all with the N permutations, and asks each difference
+its own questions (lateralisation difference, specificity, consistency, run quality).
+The default (``mean``) is one group mean, as before.
+
 Run with ``.venv/bin/python benchmarks/bench_scale.py`` (optionally ``--voxels 250000
-1000000``, ``--memory-gb 3``, ``--dir /some/scratch``, ``--whole 20``). Needs about 2 GB of scratch
-disk per million voxels. ``--tiny`` (6 animals × 2 runs, 2 000 and 4 000 voxels) runs
-to the end in seconds: a check that the script still runs
-(tests/end_to_end/test_benchmarks.py), not a measurement.
+1000000``, ``--memory-gb 3``, ``--dir /some/scratch``, ``--whole 20``, ``--design
+three-groups``). Needs about 2 GB of scratch disk per million voxels. ``--tiny``
+(6 animals × 2 runs, 2 000 and 4 000 voxels) runs to the end in seconds: a check that
+the script still runs (tests/end_to_end/test_benchmarks.py), not a measurement.
 """
 
 from __future__ import annotations
@@ -58,6 +65,12 @@ TAU2_RANGE = (0.0, 1.0)
 SIG2_RANGE = (0.0, 1.0)
 S2_RANGE = (0.2, 1.5)
 TRUE_MEAN = 0.3
+#: --design three-groups: animals dealt in turn to three groups (an animal-level factor
+#: of three levels: its default contrasts, the F-test ``group-any-difference`` with
+#: permutations, and the questions of each difference, lateralisation differences
+#: included)
+GROUP_NAMES = ("alpha", "beta", "gamma")
+DESIGNS = ("mean", "three-groups")
 #: --tiny sizes
 TINY_ANIMALS, TINY_RUNS, TINY_VOXELS = 6, 2, (2_000, 4_000)
 
@@ -77,6 +90,7 @@ def write_study(
     seed: int,
     animals: int = N_ANIMALS,
     runs: int = RUNS_PER_ANIMAL,
+    design: str = "mean",
 ) -> float:
     """Write maps, mask, runs table and study.toml; return the seconds spent writing."""
     rng = np.random.default_rng(seed)
@@ -89,7 +103,8 @@ def write_study(
     nib.save(nib.Nifti1Image(mask, affine), folder / "mask.nii")
     tau2 = rng.uniform(*TAU2_RANGE, n_voxels).astype(np.float32)
     sig2 = rng.uniform(*SIG2_RANGE, n_voxels).astype(np.float32)
-    rows = ["animal\tsession\trun\teffect\tvariance"]
+    groups = design == "three-groups"
+    rows = ["animal\tsession\trun\teffect\tvariance" + ("\tgroup" if groups else "")]
     volume = np.zeros(shape, dtype=np.float32)
     start = time.perf_counter()
     for a in range(animals):
@@ -102,12 +117,14 @@ def write_study(
             for kind, values in (("effect", effect), ("variance", s2)):
                 volume[inside] = values
                 nib.save(nib.Nifti1Image(volume, affine), folder / f"{stem}_{kind}.nii")
-            rows.append(f"a{a:02d}\t1\t{r + 1}\t{stem}_effect.nii\t{stem}_variance.nii")
+            group = f"\t{GROUP_NAMES[a % len(GROUP_NAMES)]}" if groups else ""
+            rows.append(f"a{a:02d}\t1\t{r + 1}\t{stem}_effect.nii\t{stem}_variance.nii{group}")
     seconds = time.perf_counter() - start
     (folder / "runs.tsv").write_text("\n".join(rows) + "\n")
     (folder / "study.toml").write_text(
         f'[study]\ntitle = "scale benchmark"\ntable = "runs.tsv"\nmask = "mask.nii"\n\n'
         f"[inference]\npermutations = 0\n\n[compute]\nmemory_gb = {memory_gb}\n"
+        + ('\n[model]\nformula = "1 + group"\n' if groups else "")
     )
     return seconds
 
@@ -198,6 +215,7 @@ def whole_child(toml: str, out: str) -> None:
                 "steps": clock.seconds,
                 "step_peak_rss_gib": step_peaks,
                 "peak_rss_gib": peak_gib,
+                "results": sorted(p.name for p in Path(out).iterdir() if p.is_dir()),
             }
         )
     )
@@ -226,7 +244,8 @@ def child(toml: str) -> None:
     )
     times["fit_s"] = time.perf_counter() - t0
     t0 = time.perf_counter()
-    c = np.ones(1)
+    c = np.zeros(fl.design.matrix.shape[1])
+    c[0] = 1.0  # the intercept: the group mean, or the reference group's mean
     present = np.isfinite(data.effect) & np.isfinite(data.variance)
     df = between_animal_df(fl.design.matrix, fl.design.animal, present, c)
     result = test_contrast(fit, c, df)
@@ -264,6 +283,14 @@ def main(argv: list[str] | None = None) -> None:
         metavar="PERMUTATIONS",
         help="also time a whole `run` (atlas, questions, this many sign flips with TFCE)",
     )
+    parser.add_argument(
+        "--design",
+        choices=DESIGNS,
+        default="mean",
+        help="mean: one group mean (default); three-groups: an animal-level factor of three "
+        "levels (its contrasts, the F-test of any difference with permutations, the "
+        "questions of each difference)",
+    )
     parser.add_argument("--child", default=None, help=argparse.SUPPRESS)
     parser.add_argument("--whole-child", nargs=2, default=None, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
@@ -280,13 +307,16 @@ def main(argv: list[str] | None = None) -> None:
     n_maps = animals * runs
     print(
         f"{animals} animals × {runs} runs = {n_maps} effect maps + {n_maps} "
-        f"variance maps, uncompressed .nii, [compute] memory_gb = {args.memory_gb}"
+        f"variance maps, uncompressed .nii, [compute] memory_gb = {args.memory_gb}, "
+        f"design {args.design}"
     )
     results = []
     for n_vox in sizes:
         with tempfile.TemporaryDirectory(dir=args.dir, prefix="grouplevel-scale-") as tmp:
             folder = Path(tmp)
-            write_s = write_study(folder, n_vox, args.memory_gb, args.seed, animals, runs)
+            write_s = write_study(
+                folder, n_vox, args.memory_gb, args.seed, animals, runs, args.design
+            )
             out = subprocess.run(
                 [sys.executable, __file__, "--child", str(folder / "study.toml")],
                 capture_output=True,
@@ -334,6 +364,7 @@ def main(argv: list[str] | None = None) -> None:
                     f"whole-run peak RSS: {w['peak_rss_gib']:.2f} GiB",
                     flush=True,
                 )
+                print(f"folders of the whole run: {', '.join(w['results'])}", flush=True)
     if len(results) >= 2:
         size = np.log([r["voxels"] * r["runs"] for r in results])
         for key in ("fit_s", "load_s"):

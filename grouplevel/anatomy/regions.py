@@ -49,6 +49,7 @@ from grouplevel.inference import fdr
 from grouplevel.inference.clusters import Clusters
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
 from grouplevel.model.animals import animal_means
+from grouplevel.model.memory import voxel_chunks
 
 if TYPE_CHECKING:  # types only: the atlas is read and built by the shell
     from grouplevel.anatomy.atlas import Atlas
@@ -604,7 +605,13 @@ def region_values(
     return values, coverage
 
 
-def region_variances(variance: np.ndarray, present: np.ndarray, shares: sp.spmatrix) -> np.ndarray:
+def region_variances(
+    variance: np.ndarray,
+    present: np.ndarray,
+    shares: sp.spmatrix,
+    *,
+    chunk_rows: int | None = None,
+) -> np.ndarray:
     """First-level variance of each run's region average, assuming fully correlated noise.
 
     The region average is ``ȳ = Σ_v a_v y_v`` with ``a_v = w_v / Σ w``. Its variance is
@@ -623,6 +630,10 @@ def region_variances(variance: np.ndarray, present: np.ndarray, shares: sp.spmat
         ``(n_runs, V)`` bool: the run has data there (NaN variances count as absent).
     shares
         ``(V, n_regions)`` sparse shares.
+    chunk_rows
+        Runs taken together (default all), each block converted to float64 on its own:
+        a run's bound is its own, so the block size changes only the memory used
+        (:func:`grouplevel.model.memory.chunk_rows` sizes it for a budget).
 
     Returns
     -------
@@ -636,13 +647,22 @@ def region_variances(variance: np.ndarray, present: np.ndarray, shares: sp.spmat
     the conservative choice; chapter from memory).
     """
     shares = sp.csr_matrix(shares)
-    variance = _as_runs_by_voxels(np.asarray(variance, dtype=float), shares, "variance")
+    # kept in its stored precision (float32 maps stay float32); one block of runs at a
+    # time becomes float64 below
+    variance = _as_runs_by_voxels(np.asarray(variance), shares, "variance")
     present = _as_runs_by_voxels(np.asarray(present, dtype=bool), shares, "present")
     if present.shape != variance.shape:
         raise ValueError(f"present {present.shape} and variance {variance.shape} differ")
-    if np.any(variance[present & np.isfinite(variance)] < 0):
-        raise ValueError("first-level variances must not be negative")
-    mean_se, _ = region_values(np.sqrt(np.where(present, variance, np.nan)), present, shares)
+    n = variance.shape[0]
+    mean_se = np.empty((n, shares.shape[1]))
+    for block in voxel_chunks(n, max(1, n if chunk_rows is None else int(chunk_rows))):
+        vb = np.asarray(variance[block], dtype=float)
+        pb = present[block]
+        if np.any(vb[pb & np.isfinite(vb)] < 0):
+            raise ValueError("first-level variances must not be negative")
+        se = np.sqrt(np.where(pb, vb, np.nan))
+        del vb
+        mean_se[block], _ = region_values(se, pb, shares)
     return mean_se**2
 
 

@@ -88,7 +88,7 @@ def region_data(
     values, _coverage = region_values(y, present, restricted.shares, chunk_rows=chunk_rows)
     variances = None
     if variance is not None and not estimate_run_variance:
-        variances = region_variances(variance, present, restricted.shares)
+        variances = region_variances(variance, present, restricted.shares, chunk_rows=chunk_rows)
     return RegionData(atlas=restricted, values=values, variances=variances)
 
 

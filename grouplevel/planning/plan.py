@@ -349,6 +349,7 @@ class _FirstLevelVariance:
         from grouplevel.anatomy.regions import region_variances
         from grouplevel.anatomy.tables import restrict_atlas
         from grouplevel.intake.study import load_runs, load_study
+        from grouplevel.model.memory import REGION_AVERAGE_ARRAYS, chunk_rows
 
         source = (self.summary.get("settings") or {}).get("source")
         if not source or not Path(source).is_file():
@@ -373,7 +374,8 @@ class _FirstLevelVariance:
         data = load_runs(study, fl)
         restricted = restrict_atlas(study.atlas, study.atlas_mask, fl.mask)
         present = np.isfinite(data.effect) & np.isfinite(data.variance)
-        per_run = region_variances(data.variance, present, restricted.shares)
+        rows = chunk_rows(present.shape[1], study.settings.compute.memory_gb, REGION_AVERAGE_ARRAYS)
+        per_run = region_variances(data.variance, present, restricted.shares, chunk_rows=rows)
         with np.errstate(invalid="ignore"):
             counts = np.isfinite(per_run).sum(axis=0)
             mean = np.where(counts > 0, np.nansum(per_run, axis=0) / np.maximum(counts, 1), np.nan)

@@ -134,6 +134,16 @@ def _canonical(img) -> tuple[np.ndarray, np.ndarray]:
     return np.asanyarray(can.dataobj), np.asarray(can.affine, dtype=float)
 
 
+def _canonical_part(img, sl: tuple[slice, ...], dtype=None) -> np.ndarray:
+    """The part ``sl`` (of the first three axes) of an image in the closest RAS+ order.
+
+    The slices are taken from the image's data proxy before any conversion, so a 4-D
+    map (animals or runs × voxels) is held only at the thinned size, never whole.
+    """
+    can = nib.as_closest_canonical(img)
+    return np.asarray(can.dataobj[sl], dtype=dtype)
+
+
 def _load(path: Path):
     return nib.load(str(path)) if path.is_file() else None
 
@@ -290,9 +300,9 @@ class _Layer:
 
     def _pack_animals(self, sl, mask) -> dict:
         a = self.animals
-        runs = np.asarray(_canonical(a.runs)[0])[sl][mask].T  # (animals, voxels)
-        effect = np.asarray(_canonical(a.effect)[0], dtype=float)[sl][mask].T
-        se = np.asarray(_canonical(a.se)[0], dtype=float)[sl][mask].T
+        runs = _canonical_part(a.runs, sl)[mask].T  # (animals, voxels)
+        effect = _canonical_part(a.effect, sl, float)[mask].T
+        se = _canonical_part(a.se, sl, float)[mask].T
         has = runs > 0
         effect = np.where(has, effect, np.nan)
         se = np.where(has & (se > 0), se, np.nan)
@@ -310,7 +320,7 @@ class _Layer:
             "run_values": None,
         }
         if a.run_values is not None and a.run_values.shape[3] * mask.sum() <= RUN_VALUES_EMBED:
-            values = np.asarray(_canonical(a.run_values)[0], dtype=np.float32)[sl][mask].T
+            values = _canonical_part(a.run_values, sl, np.float32)[mask].T
             q_values, value_scale = _quantise(values)
             out["run_values"] = _pack(q_values, "<i2")
             out["run_scale"] = value_scale
