@@ -353,9 +353,9 @@ class ClusterWorkspace:
         n = self.grid.padded_of.size
         self._buffers = (
             self.grid.empty_positions(),
-            np.empty(n, dtype=np.int64),  # members
-            np.empty(n, dtype=np.int64),  # parent
-            np.empty(n, dtype=np.int64),  # size
+            np.empty(n, dtype=np.int32),  # members
+            np.empty(n, dtype=np.int32),  # parent
+            np.empty(n, dtype=np.int32),  # size
             np.empty(n),  # mass
         )
 
