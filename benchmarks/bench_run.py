@@ -26,6 +26,7 @@ from __future__ import annotations
 import argparse
 import importlib.util
 import json
+import os
 import subprocess
 import sys
 import tempfile
@@ -108,10 +109,14 @@ def main(argv: list[str] | None = None) -> None:
             f"study: {n_vox:,} voxels, {animals} animals × {runs} runs, effect + variance "
             "maps, no atlas; `grouplevel run --permutations 0` in a child process"
         )
+        # as a user's interpreter runs it: with its byte-code cache (a shell that sets
+        # PYTHONDONTWRITEBYTECODE recompiles every grouplevel module at each start)
+        env = {k: v for k, v in os.environ.items() if k != "PYTHONDONTWRITEBYTECODE"}
         done = subprocess.run(
             [sys.executable, __file__, "--child", str(folder / "study.toml"), str(folder / "out")],
             capture_output=True,
             text=True,
+            env=env,
         )
         if done.returncode:
             sys.exit(f"the child run failed:\n{done.stderr}")

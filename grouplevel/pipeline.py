@@ -27,11 +27,11 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from grouplevel import __version__
 from grouplevel.anatomy.regions import RegionModel
 from grouplevel.anatomy.tables import RegionData, region_data, region_tables, surviving_voxels
+from grouplevel.distributions import f_median
 from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference import Smoothness, estimate_smoothness, fdr
 from grouplevel.inference.permutation import (
@@ -533,7 +533,7 @@ def _group_variance_warning(
                 ratio = ratio[np.isfinite(ratio) & (ratio > 0)]
                 if not ratio.size:
                     continue
-                score = float(np.median(ratio) / stats.f.median(da, db))
+                score = float(np.median(ratio) / f_median(da, db))
                 big = max(score, 1.0 / score)
                 if big >= VARIANCE_RATIO_WARNING and (worst is None or big > worst[0]):
                     more, less = (a, b) if score > 1 else (b, a)

@@ -42,9 +42,10 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
-from scipy import ndimage, stats
+from scipy import ndimage
 
 from grouplevel.anatomy.coordinates import STEREOTAXIC_COLUMNS, to_stereotaxic, voxel_to_mm
+from grouplevel.distributions import t_ppf
 from grouplevel.inference import fdr
 from grouplevel.inference.clusters import Clusters
 from grouplevel.model import between_animal_df, fit_reml, test_contrast
@@ -855,7 +856,7 @@ def _region_statistics(
     result = test_contrast(fit, c, df)
     q = fdr(result.p, alpha=alpha, method=fdr_method).q
     with np.errstate(invalid="ignore"):
-        critical = stats.t.ppf(0.5 + CONFIDENCE_LEVEL / 2.0, result.df)
+        critical = t_ppf(0.5 + CONFIDENCE_LEVEL / 2.0, result.df)
     return {
         "effect": result.effect,
         "se": result.se,

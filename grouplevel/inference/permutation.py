@@ -69,8 +69,8 @@ from dataclasses import dataclass
 from typing import Protocol
 
 import numpy as np
-from scipy import stats
 
+from grouplevel.distributions import norm_isf, norm_ppf, t_logsf
 from grouplevel.errors import ArgumentError
 from grouplevel.inference import _refit_kernel
 from grouplevel.inference.clusters import Clusters, ClusterWorkspace, find_clusters
@@ -653,8 +653,8 @@ class _TtoZ:
         self.u = u
         self.tables = []
         for d in self.values:
-            logp = stats.t.logsf(t, d)
-            z = -stats.norm.ppf(np.exp(np.clip(logp, -700, 0)))
+            logp = t_logsf(t, d)
+            z = -norm_ppf(np.exp(np.clip(logp, -700, 0)))
             # beyond float range of p, use the asymptotic normal tail
             z = np.where(np.isfinite(z), z, np.sqrt(-2.0 * logp))
             self.tables.append(np.maximum(z, 0.0))
@@ -685,7 +685,7 @@ class PermutationResult:
 
 def cluster_forming_z(p: float, sided: str) -> float:
     """z threshold for a cluster-forming p (two-sided p for ``sided="two"``)."""
-    return float(stats.norm.isf(p / 2.0 if sided == "two" else p))
+    return float(norm_isf(p / 2.0 if sided == "two" else p))
 
 
 def _oriented(z: np.ndarray, sided: str) -> np.ndarray:

@@ -31,8 +31,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
+from grouplevel.distributions import t_logsf, t_sf
 from grouplevel.errors import ArgumentError
 from grouplevel.model.reml import MixedFit, presence_patterns
 
@@ -97,7 +98,7 @@ def t_to_z(t: np.ndarray, df: np.ndarray | float) -> np.ndarray:
     finite_df = np.isfinite(df) & (df > 0)
     ok = finite_df & ~np.isnan(t)
     if np.any(ok):
-        logsf = stats.t.logsf(np.abs(t[ok]), df[ok])
+        logsf = t_logsf(np.abs(t[ok]), df[ok])
         out[ok] = -np.sign(t[ok]) * special.ndtri_exp(logsf)
     inf_df = np.isposinf(df)
     out[inf_df] = t[inf_df]
@@ -138,7 +139,7 @@ def test_contrast(fit: MixedFit, c, df) -> ContrastResult:
     t = np.where(bad, np.nan, t)
     p = np.full(n_vox, np.nan)
     ok = ~np.isnan(t)
-    p[ok] = 2.0 * stats.t.sf(np.abs(t[ok]), df[ok])
+    p[ok] = 2.0 * t_sf(np.abs(t[ok]), df[ok])
     z = t_to_z(t, df)
     return ContrastResult(effect=effect, se=se, t=t, df=df, z=z, p=p)
 

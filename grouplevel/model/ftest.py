@@ -27,8 +27,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
+from grouplevel.distributions import chi2_logsf, f_logsf, f_sf
 from grouplevel.errors import ArgumentError
 
 # Rows of L count as independent when the smallest singular value of L, relative to the
@@ -118,11 +119,11 @@ def f_to_z(f: np.ndarray, df_num: float, df: np.ndarray | float) -> np.ndarray:
         z = -special.ndtri(p)
         tiny = p <= 0.0
         if np.any(tiny):
-            z[tiny] = -special.ndtri_exp(stats.f.logsf(fv[tiny], df_num, dv[tiny]))
+            z[tiny] = -special.ndtri_exp(f_logsf(fv[tiny], df_num, dv[tiny]))
         out[finite] = z
     inf_df = np.isposinf(df) & ~np.isnan(f)
     if np.any(inf_df):
-        logsf = stats.chi2.logsf(np.maximum(f[inf_df], 0.0) * df_num, df_num)
+        logsf = chi2_logsf(np.maximum(f[inf_df], 0.0) * df_num, df_num)
         out[inf_df] = -special.ndtri_exp(logsf)
     return out
 
@@ -191,7 +192,7 @@ def test_f(fit, L, df) -> FTestResult:
     f = np.where(bad, np.nan, f)
     p = np.full(n_vox, np.nan)
     ok = ~np.isnan(f)
-    p[ok] = stats.f.sf(f[ok], L.shape[0], df[ok])
+    p[ok] = f_sf(f[ok], L.shape[0], df[ok])
     return FTestResult(f=f, df_num=int(L.shape[0]), df=df, p=p, z=f_to_z(f, L.shape[0], df))
 
 

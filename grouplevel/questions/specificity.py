@@ -48,8 +48,9 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
-from scipy import ndimage, stats
+from scipy import ndimage
 
+from grouplevel.distributions import norm_ppf, t_ppf
 from grouplevel.errors import ArgumentError
 from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
@@ -233,7 +234,7 @@ def _weighted_run_means(y: np.ndarray, w: np.ndarray, chunk_rows: int | None = N
 def _ci(effect: float, se: float, df: float) -> tuple[float, float]:
     if not (np.isfinite(se) and np.isfinite(df) and df > 0):
         return float("nan"), float("nan")
-    crit = float(stats.t.ppf(0.5 + CONFIDENCE_LEVEL / 2.0, df))
+    crit = float(t_ppf(0.5 + CONFIDENCE_LEVEL / 2.0, df))
     return float(effect - crit * se), float(effect + crit * se)
 
 
@@ -780,7 +781,7 @@ def inner_layer(
 
 #: Two-sided normal quantile of the per-animal confidence intervals (σ̂² is treated as
 #: known within an animal, so the interval is normal-based; common practice).
-_Z_CRIT = float(stats.norm.ppf(0.5 + CONFIDENCE_LEVEL / 2.0))
+_Z_CRIT = float(norm_ppf(0.5 + CONFIDENCE_LEVEL / 2.0))
 
 
 @dataclass(frozen=True)

@@ -54,9 +54,9 @@ from typing import TYPE_CHECKING, NamedTuple
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
-from scipy import stats
 
 from grouplevel.anatomy.coordinates import MIDLINE_TOLERANCE_MM
+from grouplevel.distributions import norm_isf, norm_sf, t_cdf, t_isf, t_ppf, t_sf
 from grouplevel.errors import ArgumentError, UserError
 from grouplevel.inference.significance import DEFAULT_ALPHA
 from grouplevel.model import between_animal_df, test_contrast
@@ -99,7 +99,7 @@ DEFAULT_EQUIVALENCE_MARGIN = 0.2
 
 #: z above which a voxel counts towards the extent LI: one-sided p < 0.001 uncorrected,
 #: the usual voxel threshold of laterality work (common practice).
-DEFAULT_EXTENT_Z = float(stats.norm.isf(0.001))
+DEFAULT_EXTENT_Z = float(norm_isf(0.001))
 
 #: Bootstrap replicates (common practice for percentile intervals; Efron & Tibshirani
 #: 1993 suggest at least 1000 for interval end points, value from memory).
@@ -441,7 +441,7 @@ def _shortcut_maps(
     n_int = np.rint(n_eff).astype(np.int64)
     df = np.arange(counts.shape[1] + 1) - 1.0
     crit = np.full(df.shape, np.inf)  # fewer than two animals: no t, never above
-    crit[2:] = stats.t.isf(stats.norm.sf(threshold), df[2:])
+    crit[2:] = t_isf(norm_sf(threshold), df[2:])
     # a zero spread with a positive mean gives t = +inf, above every threshold
     above = np.nan_to_num(t, nan=-np.inf) > crit[n_int]
     return np.where(n_eff > 0, mean, np.nan), above
@@ -784,8 +784,8 @@ def tost(difference: float, se: float, df: float, margin: float) -> tuple[float,
     """
     if not (np.isfinite(se) and se > 0 and np.isfinite(df) and df > 0):
         return float("nan"), float("nan"), float("nan")
-    p_lower = float(stats.t.sf((difference + margin) / se, df))
-    p_upper = float(stats.t.cdf((difference - margin) / se, df))
+    p_lower = float(t_sf((difference + margin) / se, df))
+    p_upper = float(t_cdf((difference - margin) / se, df))
     return p_lower, p_upper, max(p_lower, p_upper)
 
 
@@ -883,7 +883,7 @@ def hemisphere_test(
         df = model_df(fit, np.isfinite(y), c)
     res = test_contrast(fit, c, df)
     d, se, dfd = float(res.effect[2]), float(res.se[2]), float(res.df[2])
-    crit = float(stats.t.ppf(0.5 + confidence / 2.0, dfd)) if dfd > 0 else float("nan")
+    crit = float(t_ppf(0.5 + confidence / 2.0, dfd)) if dfd > 0 else float("nan")
     margin = margin_li * abs(float(res.effect[3]))
     p_lower, p_upper, p_tost = tost(d, se, dfd, margin)
     return HemisphereTest(
