@@ -1696,13 +1696,17 @@ def write_outputs(
     try:
         grid = study.grid
         with clock.step("write maps"):
-            for gm in maps:
-                folder = child_path(tmp, gm.name)
-                if isinstance(gm, FTestMap):
-                    _write_ftest_map(folder, gm)
-                else:
-                    _write_group_map(folder, gm)
-                    _write_figure_maps(folder, study, gm)
+            from grouplevel.outputs.files import parallel_saves
+
+            # the maps compress side by side on threads; all are on disk after the block
+            with parallel_saves():
+                for gm in maps:
+                    folder = child_path(tmp, gm.name)
+                    if isinstance(gm, FTestMap):
+                        _write_ftest_map(folder, gm)
+                    else:
+                        _write_group_map(folder, gm)
+                        _write_figure_maps(folder, study, gm)
         summary = {
             "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),

@@ -13,6 +13,7 @@ import nibabel as nib
 import numpy as np
 
 from grouplevel.errors import UserError
+from grouplevel.outputs.files import save_image
 
 # Affines may differ by rounding in the header (float32 storage); 1e-3 mm is far below
 # any rodent voxel (0.05-0.3 mm) yet above float32 round-off for typical coordinates.
@@ -317,4 +318,4 @@ def write_map(
     img.header.set_xyzt_units("mm")
     img.set_qform(affine, code=1)
     img.set_sform(affine, code=1)
-    nib.save(img, str(path))
+    save_image(img, path)  # on a thread inside outputs.files.parallel_saves

@@ -28,6 +28,7 @@ import nibabel as nib
 import numpy as np
 
 from grouplevel.intake.images import Grid, map_intent
+from grouplevel.outputs.files import save_image
 from grouplevel.results.maps import AnimalEffects
 
 #: File of each per-animal quantity (the keys of the summary entry's ``files``).
@@ -71,7 +72,7 @@ def write_animal_maps(
         img.header.set_xyzt_units("mm")
         img.set_qform(grid.affine, code=1)
         img.set_sform(grid.affine, code=1)
-        nib.save(img, str(folder / name))
+        save_image(img, folder / name)
     if effects.run_values is not None:
         values = np.zeros((*grid.shape, effects.run_values.shape[0]), dtype=np.float32)
         values[mask] = effects.run_values.T  # NaN kept: a run without data there
@@ -83,7 +84,7 @@ def write_animal_maps(
         img.header.set_xyzt_units("mm")
         img.set_qform(grid.affine, code=1)
         img.set_sform(grid.affine, code=1)
-        nib.save(img, str(folder / RUN_VALUES_FILE))
+        save_image(img, folder / RUN_VALUES_FILE)
 
 
 def animal_maps_summary(effects: AnimalEffects) -> dict:

@@ -38,6 +38,7 @@ import hashlib
 import json
 import re
 import zlib
+from collections.abc import Iterator
 from importlib import resources
 from pathlib import Path
 
@@ -69,7 +70,8 @@ TEMPLATE_WINDOW = (1.0, 99.5)
 COLOUR_TABLE_SIZE = 256
 
 _POLICY_TOKEN = "grouplevel-content-security-policy"
-_INLINE = re.compile(r"<(script|style)(\s[^>]*)?>(.*?)</\1>", re.DOTALL | re.IGNORECASE)
+_OPENING = re.compile(r"<(script|style)(\s[^>]*)?>", re.IGNORECASE)
+_CLOSING = {kind: re.compile(f"</{kind}>", re.IGNORECASE) for kind in ("script", "style")}
 
 
 # --------------------------------------------------------------------------------------
@@ -89,7 +91,7 @@ def inline_hashes(html: str) -> dict[str, list[str]]:
     listed. The hash is over the block's text exactly as written (CSP Level 3, §8.4).
     """
     out: dict[str, list[str]] = {"script": [], "style": []}
-    for kind, attrs, body in _INLINE.findall(html):
+    for kind, attrs, body in _inline_blocks(html):
         kind = kind.lower()
         if kind == "script" and attrs and re.search(r"type\s*=\s*\"application/json\"", attrs):
             continue
@@ -98,6 +100,25 @@ def inline_hashes(html: str) -> dict[str, list[str]]:
         if source not in out[kind]:
             out[kind].append(source)
     return out
+
+
+def _inline_blocks(html: str) -> Iterator[tuple[str, str, str]]:
+    """(tag, attributes, text) of every ``<script>`` or ``<style>`` block, in order: the
+    text runs to the first closing tag of the same kind (in any letter case).
+
+    The matches of ``<(script|style)(\\s[^>]*)?>(.*?)</\\1>`` (DOTALL, IGNORECASE),
+    found with one search per tag, so that a page of megabytes of embedded data is not
+    matched character by character.
+    """
+    pos = 0
+    while (opening := _OPENING.search(html, pos)) is not None:
+        kind = opening.group(1)
+        closing = _CLOSING[kind.lower()].search(html, opening.end())
+        if closing is None:  # an unclosed tag opens no block; look further on
+            pos = opening.start() + 1
+            continue
+        yield kind, opening.group(2) or "", html[opening.end() : closing.start()]
+        pos = closing.end()
 
 
 def content_security_policy(html: str) -> str:

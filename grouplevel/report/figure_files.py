@@ -24,6 +24,7 @@ from pathlib import Path
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.backends.backend_pdf import FigureCanvasPdf
+from matplotlib.colors import to_rgba
 from matplotlib.figure import Figure
 from matplotlib.transforms import Bbox
 from PIL import Image
@@ -37,6 +38,13 @@ PNG_DPI = 300  # common practice: journals ask for 300 dpi at print size
 SUFFIXES = (".png", ".pdf", ".txt")
 # the space left around the drawn content when figures are cut to it (inches)
 PAD_INCHES = 0.06
+# content this close to an edge is inside it: axes that fill the figure end at its
+# edge up to rounding (far below a pixel at PNG_DPI)
+EDGE_TOLERANCE_INCHES = 1e-6
+# zlib level of the PNG files: 1, the fastest, writes a figure in a fraction of the
+# time of the default 6 for files a little larger; the pixels are the same (PNG is
+# lossless, PNG specification, W3C 2003)
+PNG_COMPRESS_LEVEL = 1
 
 
 @dataclass(frozen=True)
@@ -65,29 +73,47 @@ def png_and_box(figure: Figure, dpi: int = PNG_DPI) -> tuple[bytes, Bbox]:
     """The figure as PNG bytes at ``dpi``, cut to its drawn content, and that content's
     box in inches (padded by :data:`PAD_INCHES`), from one draw.
 
-    When the content reaches beyond the figure's edges (a long label, or content up to
-    an edge, whose padding then lies outside), the figure is drawn on a canvas that
-    holds all of it, so nothing is ever cut off. The box is measured by a layout pass
-    that rasterises nothing, so either way the figure is rasterised once.
+    The figure is rasterised once on its own canvas and its content's box measured on
+    that drawing. The padding may reach past the figure's edges (content up to an
+    edge): it is the figure's background colour, as a canvas the size of the box would
+    draw it. Only when the content itself reaches beyond the edges (a long label) is
+    the figure drawn again, on a canvas that holds all of it, so nothing is cut off.
     """
     canvas = FigureCanvasAgg(figure)
     figure.set_dpi(dpi)
-    figure.draw_without_rendering()  # text extents known; no pixels drawn
-    box = figure.get_tightbbox(canvas.get_renderer()).padded(PAD_INCHES)
-    width, height = figure.get_size_inches()
-    if box.x0 < 0 or box.y0 < 0 or box.x1 > width or box.y1 > height:
-        return figure_bytes(figure, "png", dpi=dpi, box=box), box
     canvas.draw()
+    content = figure.get_tightbbox(canvas.get_renderer())
+    box = content.padded(PAD_INCHES)
+    width, height = figure.get_size_inches()
+    edge = EDGE_TOLERANCE_INCHES
+    beyond = (content.x0 < -edge, content.y0 < -edge)
+    beyond += (content.x1 > width + edge, content.y1 > height + edge)
+    if any(beyond):
+        return figure_bytes(figure, "png", dpi=dpi, box=box), box
     pixels = np.asarray(canvas.buffer_rgba())
-    rows = pixels.shape[0]
+    rows, columns = pixels.shape[:2]
     left, right = int(np.floor(box.x0 * dpi)), int(np.ceil(box.x1 * dpi))
     top, bottom = int(np.floor(rows - box.y1 * dpi)), int(np.ceil(rows - box.y0 * dpi))
-    image = Image.fromarray(
-        np.ascontiguousarray(pixels[max(top, 0) : bottom, max(left, 0) : right])
-    )
+    if left >= 0 and top >= 0 and right <= columns and bottom <= rows:
+        cut = np.ascontiguousarray(pixels[top:bottom, left:right])
+    else:  # the padding reaches past an edge: the background colour there
+        background = np.round(np.asarray(to_rgba(figure.get_facecolor())) * 255)
+        cut = np.empty((bottom - top, right - left, 4), dtype=np.uint8)
+        cut[...] = background.astype(np.uint8)
+        inside = pixels[max(top, 0) : min(bottom, rows), max(left, 0) : min(right, columns)]
+        row, column = max(-top, 0), max(-left, 0)
+        cut[row : row + inside.shape[0], column : column + inside.shape[1]] = inside
+    return _png(cut, dpi), box
+
+
+def _png(pixels: np.ndarray, dpi: int) -> bytes:
+    """RGBA pixels as PNG bytes with their resolution, compressed fast
+    (:data:`PNG_COMPRESS_LEVEL`)."""
     buffer = io.BytesIO()
-    image.save(buffer, format="PNG", dpi=(dpi, dpi))
-    return buffer.getvalue(), box
+    Image.fromarray(pixels).save(
+        buffer, format="PNG", dpi=(dpi, dpi), compress_level=PNG_COMPRESS_LEVEL
+    )
+    return buffer.getvalue()
 
 
 def figure_bytes(figure: Figure, kind: str, dpi: int = PNG_DPI, box: Bbox | None = None) -> bytes:
@@ -103,7 +129,13 @@ def figure_bytes(figure: Figure, kind: str, dpi: int = PNG_DPI, box: Bbox | None
         "facecolor": figure.get_facecolor(),
     }
     if kind == "png":
-        FigureCanvasAgg(figure).print_figure(buffer, format="png", dpi=dpi, **options)
+        FigureCanvasAgg(figure).print_figure(
+            buffer,
+            format="png",
+            dpi=dpi,
+            pil_kwargs={"compress_level": PNG_COMPRESS_LEVEL},
+            **options,
+        )
     elif kind == "pdf":
         FigureCanvasPdf(figure).print_figure(
             buffer, format="pdf", dpi=dpi, metadata={"CreationDate": None}, **options

@@ -727,7 +727,7 @@ def run_quality_plot(quality: pd.DataFrame, threshold: float) -> Figure:
         ax.set_ylabel(words, fontsize=7, rotation=0, ha="right", va="center")
         ax.tick_params(labelsize=6.5)
         if s < len(measures) - 1:
-            ax.set_xticklabels([])
+            ax.tick_params(labelbottom=False)  # the bottom strip's numbers serve all
     fig.text(
         0.485,
         0.12 / height,

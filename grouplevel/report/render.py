@@ -21,6 +21,7 @@ from __future__ import annotations
 import base64
 import datetime as _dt
 import time
+from concurrent.futures import ThreadPoolExecutor
 from importlib import resources
 from pathlib import Path
 
@@ -730,20 +731,22 @@ def _plan(out_dir: Path, name: str, summary: dict) -> dict | None:
 
 
 def build_context(out_dir: Path, *, title: str | None = None) -> dict:
-    """Everything the template needs (figures drawn, tables formatted)."""
+    """Everything the template needs (figures drawn, tables formatted).
+
+    The slice browser's data (maps read, packed and deflated: mostly work outside
+    Python's global lock) are made on a thread while the figures are drawn.
+    """
     out_dir = Path(out_dir)
     summary = read_summary(out_dir)
     names = result_names(summary)
     files = present_files(out_dir, summary)
     results = []
-    drawn: list[DrawnFigure] = []
     for name in names:
         result = summary["results"][name]
         frames = _frames(out_dir, name)
         views = result_table_views(out_dir, name, summary)
         brief = result_table_views(out_dir, name, summary, brief=True)
         answer = _answer(name, result, summary, views, frames)
-        drawn += result_figures(out_dir, name, result, summary, frames, _threshold(summary, result))
         results.append(
             {
                 "name": name,
@@ -754,14 +757,23 @@ def build_context(out_dir: Path, *, title: str | None = None) -> dict:
                 ],
                 "cautions": _cautions(name, result, summary, answer["method"]),
                 "plan": _plan(out_dir, name, summary),
+                "frames": frames,
             }
         )
-    # every figure is written to figures/ and the report embeds those very files
-    shown, figure_files = _publish(out_dir, drawn)
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="browser") as pool:
+        browser = pool.submit(browser_context, out_dir, summary, _browser_layers(summary, results))
+        drawn: list[DrawnFigure] = []
+        for entry in results:
+            result = summary["results"][entry["name"]]
+            frames = entry.pop("frames")
+            threshold = _threshold(summary, result)
+            drawn += result_figures(out_dir, entry["name"], result, summary, frames, threshold)
+        # every figure is written to figures/ and the report embeds those very files
+        shown, figure_files = _publish(out_dir, drawn)
+        browser = browser.result()
     for entry in results:
         entry["figures"] = shown.get(entry["name"], [])
     methods = methods_text(summary, files)
-    browser = browser_context(out_dir, summary, _browser_layers(summary, results))
     css = resources.files("grouplevel.templates").joinpath("report.css").read_text("utf-8")
     tool = summary.get("tool") or {}
     return {

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import base64
 import hashlib
+import re
 import zlib
 
 import numpy as np
@@ -53,6 +54,24 @@ def test_policy_lists_own_code_only_and_skips_data_blocks():
     assert "unsafe" not in policy
     with pytest.raises(ValueError):
         browser.apply_content_security_policy("<html></html>")
+
+
+@pytest.mark.parametrize(
+    "page",
+    [
+        '<script>a</SCRIPT><style x="1">b</style><script type="application/json">{}</script>',
+        "<script>never closed <style>s</style>",
+        "<SCRIPT>x</script></script><style>",
+        "<scripts>x</scripts><script>y</script>",
+        "<style>a<script>b</script>c</style><script>d</script>",
+        "<p>no code</p>",
+    ],
+)
+def test_inline_blocks_are_those_of_the_one_regular_expression(page):
+    # reference: the blocks as one regular expression (Python's re, DOTALL and
+    # IGNORECASE) finds them, scanning the page character by character
+    reference = re.compile(r"<(script|style)(\s[^>]*)?>(.*?)</\1>", re.DOTALL | re.IGNORECASE)
+    assert list(browser._inline_blocks(page)) == reference.findall(page)
 
 
 def test_packed_arrays_unpack_with_zlib_and_base64():

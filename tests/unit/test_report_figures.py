@@ -251,10 +251,11 @@ def test_content_beyond_the_figure_edge_is_kept():
     assert Image.open(io.BytesIO(png)).size[0] == pytest.approx(box.width * 100, abs=2)
 
 
-def test_crop_box_measured_without_pixels_equals_the_drawn_one():
-    # the box png_and_box measures by a layout pass is matplotlib's own tight box of the
-    # fully rasterised figure (FigureCanvasAgg.draw, then Figure.get_tightbbox), and a
-    # figure cut inside its edges is the drawn canvas's pixels in that box
+def test_crop_box_and_pixels_are_those_of_the_drawn_canvas():
+    # the box png_and_box cuts to is matplotlib's own tight box of the fully rasterised
+    # figure (FigureCanvasAgg.draw, then Figure.get_tightbbox), and the PNG is that
+    # canvas's pixels in the box; where the padding reaches past the figure's edge it
+    # is the figure's background colour (white here), as print_figure would fill it
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -274,15 +275,16 @@ def test_crop_box_measured_without_pixels_equals_the_drawn_one():
         canvas.draw()
         reference = drawn.get_tightbbox(canvas.get_renderer()).padded(PAD_INCHES)
         np.testing.assert_allclose(box.bounds, reference.bounds, atol=1e-12)
-        if x > 0:
-            pixels = np.asarray(canvas.buffer_rgba())
-            rows = pixels.shape[0]
-            top, bottom = int(np.floor(rows - box.y1 * 100)), int(np.ceil(rows - box.y0 * 100))
-            left, right = int(np.floor(box.x0 * 100)), int(np.ceil(box.x1 * 100))
-            np.testing.assert_array_equal(
-                np.asarray(Image.open(io.BytesIO(png)).convert("RGBA")),
-                pixels[top:bottom, left:right],
-            )
+        pixels = np.asarray(canvas.buffer_rgba())
+        rows = pixels.shape[0]
+        top, bottom = int(np.floor(rows - box.y1 * 100)), int(np.ceil(rows - box.y0 * 100))
+        left, right = int(np.floor(box.x0 * 100)), int(np.ceil(box.x1 * 100))
+        image = np.asarray(Image.open(io.BytesIO(png)).convert("RGBA"))
+        assert image.shape[:2] == (bottom - top, right - left)
+        pad = max(-left, 0)  # columns left of the figure's edge
+        assert (pad > 0) == (x == 0.0)
+        np.testing.assert_array_equal(image[:, :pad], 255)
+        np.testing.assert_array_equal(image[:, pad:], pixels[top:bottom, max(left, 0) : right])
 
 
 def test_a_map_without_surviving_voxels_has_no_colour_scale():
