@@ -79,6 +79,7 @@ from grouplevel.outputs.animal_maps import (
     animal_maps_summary,
     write_animal_maps,
 )
+from grouplevel.outputs.files import parallel_saves
 from grouplevel.outputs.folder import (
     TOOL_NAME,
     check_output_folder,
@@ -1696,8 +1697,6 @@ def write_outputs(
     try:
         grid = study.grid
         with clock.step("write maps"):
-            from grouplevel.outputs.files import parallel_saves
-
             # the maps compress side by side on threads; all are on disk after the block
             with parallel_saves():
                 for gm in maps:
