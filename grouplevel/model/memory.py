@@ -56,10 +56,10 @@ RUN_SCORE_ARRAYS = 8
 # region pair's laterality are mapped (grouplevel/questions/symmetry.py, _shortcut_maps:
 # sums, means, variances, t, masks and their products)
 BOOTSTRAP_ARRAYS = 12
-# (voxels, animals + 1, animals) float64 arrays alive at once in the one-step variance
-# update of the leave-one-animal-out maps (grouplevel/model/leave_one_out.py,
-# _variance_step: residual sums u, v, z and their weighted products)
-LEAVE_ONE_OUT_ARRAYS = 12
+# (voxels, animals + 1) float64 arrays alive at once per chunk of the leave-one-animal-out
+# downdate beyond its two (voxels, runs) copies (grouplevel/model/leave_one_out.py: the
+# kernel's effect and variance outputs, and the left-out t and |Δt| rows of the maps)
+LEAVE_ONE_OUT_ARRAYS = 4
 
 # Share of the budget that one chunk's working set may use (our own choice: the
 # runs × voxels arrays take most of the budget; the chunk is a small addition to them).
