@@ -50,6 +50,7 @@ import pandas as pd
 import scipy.sparse as sp
 from scipy import ndimage, stats
 
+from grouplevel.compiled import lazy_njit
 from grouplevel.errors import ArgumentError
 from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
@@ -1136,25 +1137,73 @@ class LooMaps:
         }
 
 
-def _correlation(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Row-wise Pearson correlation of ``a`` (k, V) with ``b`` (k, V) or (V,), NaN-aware."""
-    a = np.atleast_2d(a)
-    b = np.broadcast_to(b, a.shape)
-    ok = np.isfinite(a) & np.isfinite(b)
-    n = ok.sum(axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ma = np.where(ok, a, 0.0).sum(axis=1) / n
-        mb = np.where(ok, b, 0.0).sum(axis=1) / n
-        da = np.where(ok, a - ma[:, None], 0.0)
-        db = np.where(ok, b - mb[:, None], 0.0)
-        r = (da * db).sum(axis=1) / np.sqrt((da * da).sum(axis=1) * (db * db).sum(axis=1))
-    return np.where(n > 2, r, np.nan)
+def row_correlations(
+    a: np.ndarray,
+    b: np.ndarray,
+    a_rows: np.ndarray | None = None,
+    b_rows: np.ndarray | None = None,
+    where: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Pearson correlation of rows of ``a`` with rows of ``b`` over the voxels finite in
+    both (and in ``where``), NaN with fewer than three such voxels.
+
+    Parameters
+    ----------
+    a, b
+        ``(ka, V)`` and ``(kb, V)`` maps (float32 or float64; read as they are, no copy).
+    a_rows, b_rows
+        ``(k,)`` the rows paired: row ``a_rows[i]`` of ``a`` with row ``b_rows[i]`` of
+        ``b`` (default: every row of ``a``, each with the same row of ``b``, or with the
+        only row of ``b``).
+    where
+        ``(V,)`` bool: the voxels the correlation is taken over (default all).
+
+    Returns
+    -------
+    r, n
+        ``(k,)`` the correlations and the voxels each was taken over.
+    """
+    a, b = np.atleast_2d(np.asarray(a)), np.atleast_2d(np.asarray(b))
+    if a_rows is None:
+        a_rows = np.arange(len(a))
+    if b_rows is None:
+        b_rows = np.zeros(len(a_rows), np.int64) if len(b) == 1 else np.asarray(a_rows)
+    if where is None:
+        where = np.ones(a.shape[1], dtype=bool)
+    r, n = np.empty(len(a_rows)), np.zeros(len(a_rows), dtype=np.int64)
+    _nb_row_correlations(
+        a,
+        b,
+        np.asarray(a_rows, dtype=np.int64),
+        np.asarray(b_rows, dtype=np.int64),
+        np.asarray(where, dtype=bool),
+        r,
+        n,
+    )
+    return r, n
 
 
-def _correlation_by_row(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """:func:`_correlation` of each row of ``a`` (k, V) with ``b`` (V,), one row at a
-    time: its temporaries are (V,) arrays instead of (k, V) ones."""
-    return np.array([_correlation(row, b)[0] for row in np.atleast_2d(a)], dtype=float)
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_row_correlations(a, b, a_rows, b_rows, where, r, n):
+    """The loops of :func:`row_correlations`: means, then centred cross-products."""
+    for i in range(len(a_rows)):
+        x, y = a[a_rows[i]], b[b_rows[i]]
+        count, sx, sy = 0, 0.0, 0.0
+        for j in range(x.shape[0]):
+            if where[j] and np.isfinite(x[j]) and np.isfinite(y[j]):
+                count += 1
+                sx += x[j]
+                sy += y[j]
+        mx, my = sx / count, sy / count
+        sxy, sxx, syy = 0.0, 0.0, 0.0
+        for j in range(x.shape[0]):
+            if where[j] and np.isfinite(x[j]) and np.isfinite(y[j]):
+                dx, dy = x[j] - mx, y[j] - my
+                sxy += dx * dy
+                sxx += dx * dx
+                syy += dy * dy
+        n[i] = count
+        r[i] = sxy / np.sqrt(sxx * syy) if count > 2 else np.nan
 
 
 def loo_group_maps(
@@ -1239,7 +1288,7 @@ def loo_group_maps(
         t_full=t_full,
         effect_full=effect_full,
         effect=effect,
-        correlation=_correlation_by_row(t_loo, t_full),
+        correlation=row_correlations(t_loo, t_full)[0],
         max_abs_dt=max_dt,
     )
 
