@@ -352,6 +352,9 @@ def _nb_well_conditioned(M, work):
     above ``CONDITION_LIMIT`` times its largest |eigenvalue| (cyclic Jacobi
     eigenvalues; Golub & Van Loan 2013, Algorithm 8.5.2)."""
     p = M.shape[0]
+    if p == 1:  # the one eigenvalue is the entry (a mean's design)
+        x = M[0, 0]
+        return np.isfinite(x) and x > CONDITION_LIMIT * max(abs(x), 1e-300)
     total = 0.0
     for i in range(p):
         for j in range(p):
