@@ -48,8 +48,9 @@ CHUNK_ARRAYS = 24
 # atlas regions (grouplevel/anatomy/regions.py, region_values: the block, its presence
 # as float, the zeroed values, and their transposes inside the sparse product)
 REGION_AVERAGE_ARRAYS = 6
-# (runs, voxels) float64 arrays alive at once while a block of runs is scored for run
-# quality (grouplevel/questions/quality.py: the block, |y|, the masked copies, products)
+# (runs, voxels) float64 arrays a block of runs may hold while it is scored for run
+# quality: an upper bound (grouplevel/questions/quality.py now reads the runs in place
+# in compiled loops and holds none; kept so that the block size stays a safe bound)
 RUN_SCORE_ARRAYS = 8
 
 # (replicates, pair voxels) float64 arrays alive at once while bootstrap replicates of a

@@ -93,6 +93,10 @@ DEFAULT_SHELL_VOXELS = 2
 #: is on the boundary; chessboard distance) or 6 (faces only; city-block distance).
 DEFAULT_SHELL_CONNECTIVITY = 26
 
+#: Parts of a chunk per thread in the threaded leave-one-out downdate: more, smaller
+#: parts balance the threads (our own choice; the numbers do not depend on it).
+PARTS_PER_WORKER = 4
+
 #: Level of the confidence intervals (common practice).
 CONFIDENCE_LEVEL = 0.95
 
@@ -1256,9 +1260,10 @@ def loo_group_maps(
         depend on it (:func:`grouplevel.model.memory.chunk_voxels` sizes it for a
         budget). The refits without variance components are not chunked.
     workers
-        Threads that downdate chunks side by side (default 1). Each then takes
-        ``chunk // workers`` voxels, so the memory held at once stays that of one
-        ``chunk``; no number depends on it (each voxel is downdated on its own).
+        Threads that downdate chunks side by side (default 1). Each then takes parts
+        of ``chunk // (workers · PARTS_PER_WORKER)`` voxels, so the memory held at once
+        stays within that of one ``chunk``; no number depends on it (each voxel is
+        downdated on its own).
 
     Returns
     -------
@@ -1298,8 +1303,8 @@ def _downdated_maps(
     chunk, workers=1,
 ):  # fmt: skip
     """The leave-one-out maps by downdating, ``chunk`` voxels at a time (``workers``
-    chunks of ``chunk // workers`` side by side): full effect and t, (n_ids, V) effect
-    and t without each animal, and the (n_ids,) largest |Δt|."""
+    parts of ``chunk // (workers · PARTS_PER_WORKER)`` side by side): full effect and
+    t, (n_ids, V) effect and t without each animal, and the (n_ids,) largest |Δt|."""
     n_vox = y.shape[1]
     m = int(animal.max()) + 1
     # a group map needs two animals: without such an animal there is none
@@ -1307,7 +1312,8 @@ def _downdated_maps(
     effect_full, t_full = np.full(n_vox, np.nan), np.full(n_vox, np.nan)
     effect, t_loo = np.full((n_ids, n_vox), np.nan), np.full((n_ids, n_vox), np.nan)
     workers = max(1, min(int(workers), -(-n_vox // chunk)))
-    part_chunk = max(1, chunk // workers)
+    # several parts per thread, so that the threads finish together
+    part_chunk = max(1, chunk // (workers * (PARTS_PER_WORKER if workers > 1 else 1)))
 
     def one_chunk(sl: slice) -> np.ndarray:
         """Downdate the voxels ``sl`` into the output arrays; their |Δt| (n_ids, k)."""
