@@ -454,22 +454,32 @@ def _nb_animal_sums(y, s2, X, animal, tau2, sig2, powers, S, Sy, Syy2, Sx, Sxy, 
     floor = RELATIVE_VARIANCE_FLOOR * (total if total > 0 else 1.0)
     sig = _nb_finite(sig2)
     for k in range(n):
-        if not (np.isfinite(y[k]) and np.isfinite(s2[k])):
+        yk = y[k]
+        if not (np.isfinite(yk) and np.isfinite(s2[k])):
             continue
         w = 1.0 / max(sig + s2[k], floor)
         a = animal[k]
-        for j in range(powers):
-            wk = w if j == 0 else (w * w if j == 1 else w * w * w)
-            wy = wk * y[k]
-            S[j, a] += wk
-            Sy[j, a] += wy
-            if j == 1:
-                Syy2[a] += wy * y[k]
-            for i in range(p):
-                Sx[j, a, i] += wk * X[k, i]
-                Sxy[j, a, i] += wy * X[k, i]
-                for l in range(p):
-                    Sxx[j, a, i, l] += wk * (X[k, i] * X[k, l])
+        _nb_add_power(0, w, yk, X, k, a, S, Sy, Sx, Sxy, Sxx)
+        if powers > 1:
+            w2 = w * w
+            _nb_add_power(1, w2, yk, X, k, a, S, Sy, Sx, Sxy, Sxx)
+            Syy2[a] += w2 * yk * yk
+            _nb_add_power(2, w2 * w, yk, X, k, a, S, Sy, Sx, Sxy, Sxx)
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_add_power(j, wk, yk, X, k, a, S, Sy, Sx, Sxy, Sxx):
+    """Add run ``k`` (of animal ``a``, weight power ``wk``) to the sums of power j + 1."""
+    p = X.shape[1]
+    wy = wk * yk
+    S[j, a] += wk
+    Sy[j, a] += wy
+    for i in range(p):
+        xi = X[k, i]
+        Sx[j, a, i] += wk * xi
+        Sxy[j, a, i] += wy * xi
+        for l in range(p):
+            Sxx[j, a, i, l] += wk * (xi * X[k, l])
 
 
 @lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
