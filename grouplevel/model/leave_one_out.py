@@ -33,9 +33,17 @@ V_σ = the identity on runs with data), and the GLS estimate and its covariance 
 the step to first order, ∂β̂/∂θ_k = −A⁻¹XᵀV⁻¹V_kV⁻¹(y − Xβ̂), ∂A/∂θ_k = −XᵀV⁻¹V_kV⁻¹X
 (the one-step idea of Pregibon 1981, applied to the variance components as Christensen,
 Pearson & Johnson 1992 do). Every piece is a sum of per-animal closed forms of the
-random-intercept block, so the whole update is still one pass over the data. Its
-distance from full refits is measured by tests/unit/test_leave_one_out.py and
+random-intercept block, so the whole update is still one pass over the data. The
+score quadratic Q_k(β) = (y − Xβ)ᵀV⁻¹V_kV⁻¹(y − Xβ) and g_k(β) = XᵀV⁻¹V_kV⁻¹(y − Xβ)
+of a left-out fit are taken at its own β̂₍₋ₐ₎ through their exact expansion about the
+full fit's β̂ (Hessian 2C_k, slope −C_k with C_k = XᵀV⁻¹V_kV⁻¹X), so each left-out fit
+costs O(p²) beyond its p × p solves, not a pass over every animal. Its distance from
+full refits is measured by tests/unit/test_leave_one_out.py and
 benchmarks/bench_leave_one_out.py.
+
+The random-intercept downdate runs as a compiled per-voxel kernel (numba; p × p and
+per-animal scratch arrays only, voxel-major float64 copies of one chunk of the runs ×
+voxels arrays); callers run chunks side by side in threads.
 
 References
 ----------
@@ -47,6 +55,8 @@ Royal Statistical Society B 66:131–143.
 Harville, D. A. (1977). Maximum likelihood approaches to variance component estimation
 and to related problems. Journal of the American Statistical Association 72:320–338.
 Pregibon, D. (1981). Logistic regression diagnostics. Annals of Statistics 9:705–724.
+Golub, G. H., & Van Loan, C. F. (2013). Matrix Computations, 4th ed. Johns Hopkins
+University Press (§8.5, the cyclic Jacobi eigenvalue method).
 Sherman, J., & Morrison, W. J. (1950). Annals of Mathematical Statistics 21:124–127.
 """
 
@@ -56,10 +66,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from grouplevel.compiled import lazy_njit
 from grouplevel.model.marginal import RandomTerms, animal_gls_pieces
+from grouplevel.model.memory import voxel_chunks
 
-# voxels downdated together; the largest temporaries are (chunk, runs) and
-# (chunk, animals, p, p) float64 arrays (common practice: a few tens of MiB)
+# voxels downdated together; the temporaries are two (chunk, runs) float64 copies and
+# the (animals + 1, chunk) outputs (common practice: a few MiB)
 DEFAULT_CHUNK = 4096
 # run variances below this fraction of the voxel's total variance are raised to it, so
 # that a run with σ̂² = 0 and no first-level variance keeps a finite weight
@@ -161,28 +173,48 @@ def leave_one_animal_out(
     LeaveOneOut
     """
     y, X, animal, c = _checked(y, X, animal, c, chunk, "leave_one_animal_out")
-    n, n_vox = y.shape
+    n_vox = y.shape[1]
     m = int(animal.max()) + 1
-    p = X.shape[1]
-    G = np.zeros((n, m))
-    G[np.arange(n), animal] = 1.0
-    GX = (G[:, :, None] * X[:, None, :]).reshape(n, m * p)
-    GXX = (G[:, :, None, None] * X[:, None, :, None] * X[:, None, None, :]).reshape(n, -1)
+    X = np.ascontiguousarray(X, dtype=np.float64)
+    animal = np.ascontiguousarray(animal, dtype=np.int64)
+    c = np.ascontiguousarray(c, dtype=np.float64)
     effect = np.full((m + 1, n_vox), np.nan)
-    se = np.full((m + 1, n_vox), np.nan)
-    steps = np.full((2, m, n_vox), np.nan) if update_variances and return_variances else None
-    for lo in range(0, n_vox, chunk):
-        sl = slice(lo, min(n_vox, lo + chunk))
-        yc = np.asarray(y[:, sl], dtype=float).T  # (c, n)
-        s2 = None if variance is None else np.asarray(variance[:, sl], dtype=float).T
-        tau2 = np.asarray(var_animal[sl], dtype=float)
-        sig2 = np.asarray(var_run[sl], dtype=float)
-        sums = _animal_sums(yc, s2, G, GX, GXX, X.shape[1], tau2, sig2, update_variances)
-        e, s, theta = _downdate(sums, c, tau2, sig2, update_variances, estimate_run_variance)
-        effect[:, sl] = e.T
-        se[:, sl] = s.T
+    var = np.full((m + 1, n_vox), np.nan)
+    keep = bool(update_variances and return_variances)
+    steps = np.full((2, m, n_vox), np.nan) if keep else None
+    for sl in voxel_chunks(n_vox, chunk):
+        k = sl.stop - sl.start
+        # voxel-major float64 copies of the chunk: the kernel reads each voxel's runs
+        # contiguously (float32 becomes float64 exactly, one chunk at a time)
+        yc = np.ascontiguousarray(y[:, sl].T, dtype=np.float64)
+        if variance is None:
+            s2c = np.zeros_like(yc)
+        else:
+            s2c = np.ascontiguousarray(np.asarray(variance[:, sl]).T, dtype=np.float64)
+        e, v = np.empty((m + 1, k)), np.empty((m + 1, k))
+        th = np.empty((2, m, k if keep else 0))
+        _nb_leave_one_out_many(
+            yc,
+            s2c,
+            X,
+            animal,
+            c,
+            np.ascontiguousarray(var_animal[sl], dtype=np.float64),
+            np.ascontiguousarray(var_run[sl], dtype=np.float64),
+            bool(update_variances),
+            bool(estimate_run_variance),
+            keep,
+            e,
+            v,
+            th,
+        )
+        effect[:, sl], var[:, sl] = e, v
         if steps is not None:
-            steps[:, :, sl] = theta.transpose(2, 1, 0)
+            steps[:, :, sl] = th
+    se = var  # in place: the variances become standard errors
+    with np.errstate(invalid="ignore"):
+        se[~(se > 0)] = np.nan
+        np.sqrt(se, out=se)
     with np.errstate(divide="ignore", invalid="ignore"):
         t = effect / se
     return LeaveOneOut(
@@ -257,42 +289,6 @@ def leave_one_animal_out_model(
     )
 
 
-def _animal_sums(y, s2, G, GX, GXX, p, tau2, sig2, higher: bool) -> dict[str, np.ndarray]:
-    """Per-animal weighted sums of one chunk (c voxels × m animals), at (τ̂², σ̂²).
-
-    ``w = 1/(σ² + s²)`` on runs with data. The plain sums give the GLS blocks; with
-    ``higher`` the sums of w² and w³ needed by the variance-component step are added.
-    """
-    n_c = y.shape[0]
-    m = G.shape[1]
-    present = np.isfinite(y)
-    if s2 is not None:
-        present &= np.isfinite(s2)
-        s2 = np.where(present, s2, 0.0)
-    else:
-        s2 = np.zeros_like(y)
-    y = np.where(present, y, 0.0)
-    total = np.nan_to_num(tau2) + np.nan_to_num(sig2)
-    floor = RELATIVE_VARIANCE_FLOOR * np.where(total > 0, total, 1.0)
-    vk = np.maximum(np.nan_to_num(sig2)[:, None] + s2, floor[:, None])
-    w = np.where(present, 1.0 / vk, 0.0)
-    out = {}
-    for name, weight in (("1", w), ("2", w * w), ("3", w * w * w))[: 3 if higher else 1]:
-        wy = weight * y
-        out["S" + name] = weight @ G  # (c, m): Σ w^k
-        out["Sy" + name] = wy @ G  # Σ w^k y
-        out["Sx" + name] = (weight @ GX).reshape(n_c, m, p)  # Σ w^k x
-        out["Sxy" + name] = (wy @ GX).reshape(n_c, m, p)  # Σ w^k x y
-        out["Sxx" + name] = (weight @ GXX).reshape(n_c, m, p, p)  # Σ w^k x xᵀ
-        if name == "2":
-            out["Syy2"] = (wy * y) @ G  # Σ w² y²
-    return out
-
-
-def _outer(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    return a[..., :, None] * b[..., None, :]
-
-
 def _leave_out(total_and_own: np.ndarray) -> np.ndarray:
     """(c, m, ...) per-animal terms → (c, 1 + m, ...): their sum, then without each."""
     total = total_and_own.sum(axis=1, keepdims=True)
@@ -308,147 +304,476 @@ def _solve(M: np.ndarray, rhs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return sol, ok
 
 
-def _downdate(sums, c, tau2, sig2, update: bool, estimate_run_variance: bool):
-    """(c, 1 + m) contrast estimates and SEs (all animals, then without each), and the
-    (c, m, 2) variance components of each left-out fit (NaN when not updated)."""
-    S, Sy, Sx, Sxy, Sxx = sums["S1"], sums["Sy1"], sums["Sx1"], sums["Sxy1"], sums["Sxx1"]
-    n_c, m, p = Sx.shape
-    t2 = np.nan_to_num(tau2)[:, None]
-    delta = 1.0 / (1.0 + t2 * S)  # (c, m)
-    gam = t2 * delta  # τ²/(1 + τ² Σ w)
-    A_a = Sxx - gam[..., None, None] * _outer(Sx, Sx)
-    b_a = Sxy - gam[..., None] * Sx * Sy[..., None]
-    A, b = _leave_out(A_a), _leave_out(b_a)  # (c, 1 + m, p, p), (c, 1 + m, p)
-    cc = np.broadcast_to(c, b.shape)
-    sol, ok = _solve(A, np.stack([b, cc], axis=-1))
-    beta, k = sol[..., 0], sol[..., 1]
-    effect = np.einsum("p,cmp->cm", c, beta)
-    var = np.einsum("p,cmp->cm", c, k)
-    theta = np.full((n_c, m, 2), np.nan)
-    if update:
-        effect_new, var_new, theta, moved = _variance_step(
-            sums, delta, gam, A, A_a, beta, c, tau2, sig2, estimate_run_variance
-        )
-        effect = np.where(moved, effect_new, effect)
-        var = np.where(moved, var_new, var)
-    with np.errstate(invalid="ignore"):
-        se = np.sqrt(np.where(var > 0, var, np.nan))
-    bad = ~ok | ~np.isfinite(tau2)[:, None]
-    return np.where(bad, np.nan, effect), np.where(bad, np.nan, se), theta
-
-
-def _variance_step(sums, delta, gam, A, A_a, beta, c, tau2, sig2, estimate_run_variance):
-    """One Fisher-scoring step of (τ², σ²) without each animal, and β̂, Cov(β̂) moved
-    to first order along it (module docstring). Returns the left-out contrast
-    estimates and variances (c, 1 + m), the components (c, m, 2) and where the step
-    was taken (c, 1 + m; never for the first column, all animals)."""
-    S1, S2, S3 = sums["S1"], sums["S2"], sums["S3"]
-    Sx1, Sx2, Sx3 = sums["Sx1"], sums["Sx2"], sums["Sx3"]
-    Sy1, Sy2 = sums["Sy1"], sums["Sy2"]
-    Sxy2, Sxx2, Sxx3, Syy2 = sums["Sxy2"], sums["Sxx2"], sums["Sxx3"], sums["Syy2"]
-    n_c, m, p = Sx1.shape
-    d2 = delta * delta
-    g_ = gam[..., None]
-    # per animal (c, m, ...): the pieces of score and information (module docstring)
-    h = Sx2 - g_ * S2[..., None] * Sx1  # (V⁻¹X)ᵀw
-    C_t = d2[..., None, None] * _outer(Sx1, Sx1)  # XᵀV⁻¹ 11ᵀ V⁻¹X
-    C_s = (
-        Sxx2
-        - g_[..., None] * (_outer(Sx2, Sx1) + _outer(Sx1, Sx2))
-        + (gam * gam * S2)[..., None, None] * _outer(Sx1, Sx1)
-    )  # XᵀV⁻²X
-    tr_t = delta * S1  # tr(V⁻¹ 11ᵀ)
-    tr_s = S1 - gam * S2  # tr(V⁻¹)
-    T_tt = d2 * S1 * S1
-    T_ss = S2 - 2 * gam * S3 + gam * gam * S2 * S2
-    T_ts = d2 * S2
-    B_tt = (d2 * delta * S1)[..., None, None] * _outer(Sx1, Sx1)
-    B_ss = (
-        Sxx3
-        - g_[..., None] * (_outer(Sx3, Sx1) + _outer(Sx1, Sx3))
-        + (gam * gam * S3)[..., None, None] * _outer(Sx1, Sx1)
-        - g_[..., None] * _outer(h, h)
-    )  # XᵀV⁻³X
-    B_ts = d2[..., None, None] * _outer(Sx1, h)  # XᵀV⁻¹11ᵀV⁻²X
-    B_ts = 0.5 * (B_ts + np.swapaxes(B_ts, -1, -2))
-    # left-out sums (c, 1 + m, ...)
-    C = np.stack([_leave_out(C_t), _leave_out(C_s)], axis=2)  # (c, 1+m, 2, p, p)
-    trV = np.stack([_leave_out(tr_t), _leave_out(tr_s)], axis=-1)  # (c, 1+m, 2)
-    T = np.stack(
-        [
-            np.stack([_leave_out(T_tt), _leave_out(T_ts)], axis=-1),
-            np.stack([_leave_out(T_ts), _leave_out(T_ss)], axis=-1),
-        ],
-        axis=-2,
-    )  # (c, 1+m, 2, 2)
-    B = np.stack(
-        [
-            np.stack([_leave_out(B_tt), _leave_out(B_ts)], axis=2),
-            np.stack([_leave_out(B_ts), _leave_out(B_ss)], axis=2),
-        ],
-        axis=2,
-    )  # (c, 1+m, 2, 2, p, p)
-    # residual quadratics at each left-out β̂: u = Σ w e, v = Σ w² e, z = Σ w² e²
-    # for every left-out fit (index a) and animal (index b): (c, 1+m, m)
-    u = Sy1[:, None, :] - np.einsum("cbp,cap->cab", Sx1, beta)
-    v = Sy2[:, None, :] - np.einsum("cbp,cap->cab", Sx2, beta)
-    z = (
-        Syy2[:, None, :]
-        - 2 * np.einsum("cbp,cap->cab", Sxy2, beta)
-        + np.einsum("cap,cbpq,caq->cab", beta, Sxx2, beta)
-    )
-    keep = np.ones((1, m + 1, m))
-    keep[0, np.arange(1, m + 1), np.arange(m)] = 0.0  # animal a is out of fit a
-    dl, gl = delta[:, None, :], gam[:, None, :]
-    Q_t = (keep * dl * dl * u * u).sum(axis=-1)
-    Q_s = (keep * (z - 2 * gl * u * v + gl * gl * S2[:, None, :] * u * u)).sum(axis=-1)
-    # XᵀV⁻¹V_kV⁻¹e summed over the animals of each fit: (c, 1+m, p)
-    g_t = np.einsum("cab,cbp->cap", keep * dl * dl * u, Sx1)
-    g_s = (
-        np.einsum("cab,cbp->cap", keep, Sxy2)
-        - np.einsum("cab,cbpq,caq->cap", keep, Sxx2, beta)
-        - np.einsum("cab,cbp->cap", keep * gl * u, Sx2)
-        - np.einsum("cab,cbp->cap", keep * gl * v, Sx1)
-        + np.einsum("cab,cbp->cap", keep * gl * gl * S2[:, None, :] * u, Sx1)
-    )
-    g = np.stack([g_t, g_s], axis=2)  # (c, 1+m, 2, p)
-    # A⁻¹C_k, A⁻¹B_kl and A⁻¹g_k
-    Ainv = np.full(A.shape, np.nan)
-    invertible = _well_conditioned(A)
-    Ainv[invertible] = np.linalg.inv(A[invertible])
-    AC = np.einsum("capq,cakqr->cakpr", Ainv, C)
-    tr_AC = np.einsum("cakpp->cak", AC)
-    tr_AB = np.einsum("capq,caklqp->cakl", Ainv, B)
-    tr_ACAC = np.einsum("cakpq,calqp->cakl", AC, AC)
-    score = 0.5 * (np.stack([Q_t, Q_s], axis=-1) - (trV - tr_AC))
-    info = 0.5 * (T - 2 * tr_AB + tr_ACAC)
-    if not estimate_run_variance:  # σ² held: step in τ² alone
-        score[..., 1] = 0.0
-        info[..., 0, 1] = info[..., 1, 0] = 0.0
-        info[..., 1, 1] = 1.0
-    theta0 = np.stack([np.nan_to_num(tau2), np.nan_to_num(sig2)], axis=-1)[:, None, :]
-    det = info[..., 0, 0] * info[..., 1, 1] - info[..., 0, 1] ** 2
-    with np.errstate(divide="ignore", invalid="ignore"):
-        step_t = (info[..., 1, 1] * score[..., 0] - info[..., 0, 1] * score[..., 1]) / det
-        step_s = (info[..., 0, 0] * score[..., 1] - info[..., 0, 1] * score[..., 0]) / det
-    step = np.stack([step_t, step_s], axis=-1)
-    good = np.isfinite(step).all(axis=-1) & (det > 0)
-    theta = np.maximum(theta0 + np.where(good[..., None], step, 0.0), 0.0)
-    move = theta - theta0  # the step actually taken (clipped at 0)
-    # β̂ and A after the step, to first order: dβ = −A⁻¹ Σ_k g_k dθ_k; dA = −Σ_k C_k dθ_k
-    dbeta = -np.einsum("capq,cakq,cak->cap", Ainv, g, move)
-    A_new = A - np.einsum("cakpq,cak->capq", C, move)
-    cc = np.broadcast_to(c, beta.shape)
-    k, ok = _solve(A_new, cc[..., None])
-    effect = np.einsum("p,cap->ca", c, beta + dbeta)
-    var = np.einsum("p,cap->ca", c, k[..., 0])
-    moved = good & ok & (var > 0)
-    moved[:, 0] = False  # the full fit keeps its own REML estimate
-    return effect, var, theta[:, 1:, :], moved
-
-
 def _well_conditioned(M: np.ndarray) -> np.ndarray:
     """True where a stack of symmetric p × p matrices is safely invertible."""
     eig = np.linalg.eigvalsh(np.where(np.isfinite(M), M, 0.0))
     top = np.abs(eig).max(axis=-1)
-    return np.isfinite(M).all(axis=(-1, -2)) & (eig.min(axis=-1) > 1e-12 * np.maximum(top, 1e-300))
+    return np.isfinite(M).all(axis=(-1, -2)) & (
+        eig.min(axis=-1) > CONDITION_LIMIT * np.maximum(top, 1e-300)
+    )
+
+
+# --------------------------------------------------------------------------------------
+# compiled per-voxel kernel of the random-intercept downdate (numba)
+# --------------------------------------------------------------------------------------
+# One voxel at a time: its per-animal weighted sums (w = 1/(σ² + s²), and w², w³ for the
+# variance step), the GLS blocks A_a, b_a (Sherman–Morrison), every left-out solve and
+# the one-step update, with p × p and per-animal scratch arrays only. The kernel
+# releases the GIL; the callers run it on disjoint chunks of voxels in threads.
+
+# Fisher-scoring pieces kept per animal (and their sums over animals): index of each
+_C_T, _C_S, _B_TT, _B_SS, _B_TS = 0, 1, 2, 3, 4  # p × p blocks
+_TR_T, _TR_S, _T_TT, _T_SS, _T_TS, _Q_T, _Q_S = 0, 1, 2, 3, 4, 5, 6  # scalars
+# p × p scratch matrices of one voxel: index of each
+_EYE, _WORK, _AINV, _A_NEW, _LO = 0, 1, 2, 3, 4  # _LO.._LO + 4: the left-out blocks
+_AC = 9  # _AC, _AC + 1: A⁻¹C_τ, A⁻¹C_σ
+_SCRATCH_MATRICES = 11
+# smallest eigenvalue over the largest |eigenvalue| of a matrix taken as invertible
+CONDITION_LIMIT = 1e-12
+# Jacobi sweeps for the eigenvalues of a p × p matrix: each sweep squares the
+# off-diagonal mass, so a handful reach rounding for the small p of a design
+_JACOBI_SWEEPS = 50
+_FLOAT_MAX = float(np.finfo(np.float64).max)
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_finite(x):
+    """``np.nan_to_num`` of one number."""
+    if np.isnan(x):
+        return 0.0
+    if np.isinf(x):
+        return _FLOAT_MAX if x > 0 else -_FLOAT_MAX
+    return x
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_well_conditioned(M, work):
+    """True where a symmetric p × p matrix is finite and its smallest eigenvalue is
+    above ``CONDITION_LIMIT`` times its largest |eigenvalue| (cyclic Jacobi
+    eigenvalues; Golub & Van Loan 2013, Algorithm 8.5.2)."""
+    p = M.shape[0]
+    if p == 1:  # the one eigenvalue is the entry (a mean's design)
+        x = M[0, 0]
+        return np.isfinite(x) and x > CONDITION_LIMIT * max(abs(x), 1e-300)
+    total = 0.0
+    for i in range(p):
+        for j in range(p):
+            if not np.isfinite(M[i, j]):
+                return False
+            work[i, j] = M[i, j]
+            total += M[i, j] * M[i, j]
+    for _ in range(_JACOBI_SWEEPS):
+        off = 0.0
+        for i in range(p):
+            for j in range(i + 1, p):
+                off += work[i, j] * work[i, j]
+        if off <= 1e-36 * total:
+            break
+        for i in range(p):
+            for j in range(i + 1, p):
+                _nb_rotate(work, i, j)
+    lo, top = work[0, 0], 0.0
+    for i in range(p):
+        lo = min(lo, work[i, i])
+        top = max(top, abs(work[i, i]))
+    return lo > CONDITION_LIMIT * max(top, 1e-300)
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_rotate(work, i, j):
+    """One Jacobi rotation zeroing ``work[i, j]`` (Golub & Van Loan 2013, Alg. 8.5.1)."""
+    if work[i, j] == 0.0:
+        return
+    tau = (work[j, j] - work[i, i]) / (2.0 * work[i, j])
+    if abs(tau) > 1e150:
+        t = 0.5 / tau
+    else:
+        t = 1.0 / (abs(tau) + np.sqrt(1.0 + tau * tau))
+        if tau < 0:
+            t = -t
+    cs = 1.0 / np.sqrt(1.0 + t * t)
+    sn = t * cs
+    for k in range(work.shape[0]):
+        a, b = work[k, i], work[k, j]
+        work[k, i] = cs * a - sn * b
+        work[k, j] = sn * a + cs * b
+    for k in range(work.shape[0]):
+        a, b = work[i, k], work[j, k]
+        work[i, k] = cs * a - sn * b
+        work[j, k] = sn * a + cs * b
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_solve(M, R, W, out):
+    """``out = M⁻¹ R`` by Gaussian elimination with partial pivoting (M: p × p, R and
+    out: p × r; W: p × p scratch)."""
+    p, r = R.shape
+    for i in range(p):
+        for k in range(p):
+            W[i, k] = M[i, k]
+        for k in range(r):
+            out[i, k] = R[i, k]
+    for j in range(p):
+        piv = j
+        for i in range(j + 1, p):
+            if abs(W[i, j]) > abs(W[piv, j]):
+                piv = i
+        if piv != j:
+            for k in range(p):
+                W[j, k], W[piv, k] = W[piv, k], W[j, k]
+            for k in range(r):
+                out[j, k], out[piv, k] = out[piv, k], out[j, k]
+        for i in range(j + 1, p):
+            f = W[i, j] / W[j, j]
+            for k in range(j, p):
+                W[i, k] -= f * W[j, k]
+            for k in range(r):
+                out[i, k] -= f * out[j, k]
+    for j in range(p - 1, -1, -1):
+        for k in range(r):
+            s = out[j, k]
+            for i in range(j + 1, p):
+                s -= W[j, i] * out[i, k]
+            out[j, k] = s / W[j, j]
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_animal_sums(y, s2, X, animal, tau2, sig2, powers, S, Sy, Syy2, Sx, Sxy, Sxx):
+    """Per-animal sums of w^k, w^k y, w^k x, w^k x y, w^k x xᵀ (k = 1..powers) and
+    w² y² of one voxel, ``w = 1/(σ² + s²)`` on the runs with data (floored)."""
+    n, p = X.shape
+    m = S.shape[1]
+    for j in range(powers):
+        for a in range(m):
+            S[j, a] = Sy[j, a] = Syy2[a] = 0.0
+            for i in range(p):
+                Sx[j, a, i] = Sxy[j, a, i] = 0.0
+                for l in range(p):
+                    Sxx[j, a, i, l] = 0.0
+    total = _nb_finite(tau2) + _nb_finite(sig2)
+    floor = RELATIVE_VARIANCE_FLOOR * (total if total > 0 else 1.0)
+    sig = _nb_finite(sig2)
+    for k in range(n):
+        yk = y[k]
+        if not (np.isfinite(yk) and np.isfinite(s2[k])):
+            continue
+        w = 1.0 / max(sig + s2[k], floor)
+        a = animal[k]
+        _nb_add_power(0, w, yk, X, k, a, S, Sy, Sx, Sxy, Sxx)
+        if powers > 1:
+            w2 = w * w
+            _nb_add_power(1, w2, yk, X, k, a, S, Sy, Sx, Sxy, Sxx)
+            Syy2[a] += w2 * yk * yk
+            _nb_add_power(2, w2 * w, yk, X, k, a, S, Sy, Sx, Sxy, Sxx)
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_add_power(j, wk, yk, X, k, a, S, Sy, Sx, Sxy, Sxx):
+    """Add run ``k`` (of animal ``a``, weight power ``wk``) to the sums of power j + 1."""
+    p = X.shape[1]
+    wy = wk * yk
+    S[j, a] += wk
+    Sy[j, a] += wy
+    for i in range(p):
+        xi = X[k, i]
+        Sx[j, a, i] += wk * xi
+        Sxy[j, a, i] += wy * xi
+        for l in range(p):
+            Sxx[j, a, i, l] += wk * (xi * X[k, l])
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_gls(S, Sy, Sx, Sxy, Sxx, t2, c, delta, gam, Aa, ba, A, b, beta, kk, ok, sp, rhs):
+    """The GLS blocks of every animal (Sherman–Morrison), their sums with every animal
+    and without each (fit 0, fits 1..m), and each fit's β̂ and (XᵀV⁻¹X)⁻¹c."""
+    m, p = Sx.shape[1], Sx.shape[2]
+    work, sol = sp[_WORK], rhs[1]
+    A[0] = 0.0
+    b[0] = 0.0
+    for a in range(m):
+        delta[a] = 1.0 / (1.0 + t2 * S[0, a])
+        gam[a] = t2 * delta[a]
+        for i in range(p):
+            ba[a, i] = Sxy[0, a, i] - gam[a] * Sx[0, a, i] * Sy[0, a]
+            b[0, i] += ba[a, i]
+            for j in range(p):
+                Aa[a, i, j] = Sxx[0, a, i, j] - gam[a] * (Sx[0, a, i] * Sx[0, a, j])
+                A[0, i, j] += Aa[a, i, j]
+    for a in range(m):
+        for i in range(p):
+            b[a + 1, i] = b[0, i] - ba[a, i]
+            for j in range(p):
+                A[a + 1, i, j] = A[0, i, j] - Aa[a, i, j]
+    for f in range(m + 1):
+        ok[f] = _nb_well_conditioned(A[f], work)
+        if not ok[f]:
+            for i in range(p):
+                beta[f, i] = kk[f, i] = np.nan
+            continue
+        for i in range(p):
+            rhs[0, i, 0] = b[f, i]
+            rhs[0, i, 1] = c[i]
+        _nb_solve(A[f], rhs[0], work, sol)
+        for i in range(p):
+            beta[f, i] = sol[i, 0]
+            kk[f, i] = sol[i, 1]
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_step_pieces(S, Sx, Sxx, delta, gam, h, blocks, traces):
+    """Per animal: (V⁻¹X)ᵀw, the p × p blocks C_τ, C_σ, B_ττ, B_σσ, B_τσ and the
+    traces tr V⁻¹V_k and T_kl of the score and information (module docstring); the
+    last index of ``blocks`` and ``traces`` along animals holds their sums."""
+    m, p = Sx.shape[1], Sx.shape[2]
+    traces[:_Q_T, m] = 0.0
+    blocks[:, m] = 0.0
+    for a in range(m):
+        d, g = delta[a], gam[a]
+        d2 = d * d
+        S1, S2, S3 = S[0, a], S[1, a], S[2, a]
+        for i in range(p):
+            h[a, i] = Sx[1, a, i] - g * S2 * Sx[0, a, i]
+        for i in range(p):
+            for j in range(p):
+                x11 = Sx[0, a, i] * Sx[0, a, j]
+                blocks[_C_T, a, i, j] = d2 * x11
+                blocks[_C_S, a, i, j] = (
+                    Sxx[1, a, i, j]
+                    - g * (Sx[1, a, i] * Sx[0, a, j] + Sx[0, a, i] * Sx[1, a, j])
+                    + (g * g * S2) * x11
+                )
+                blocks[_B_TT, a, i, j] = (d2 * d * S1) * x11
+                blocks[_B_SS, a, i, j] = (
+                    Sxx[2, a, i, j]
+                    - g * (Sx[2, a, i] * Sx[0, a, j] + Sx[0, a, i] * Sx[2, a, j])
+                    + (g * g * S3) * x11
+                    - g * (h[a, i] * h[a, j])
+                )
+                blocks[_B_TS, a, i, j] = 0.5 * (
+                    d2 * (Sx[0, a, i] * h[a, j]) + d2 * (Sx[0, a, j] * h[a, i])
+                )
+        traces[_TR_T, a] = d * S1
+        traces[_TR_S, a] = S1 - g * S2
+        traces[_T_TT, a] = d2 * S1 * S1
+        traces[_T_SS, a] = S2 - 2 * g * S3 + g * g * S2 * S2
+        traces[_T_TS, a] = d2 * S2
+        for k in range(_Q_T):
+            traces[k, m] += traces[k, a]
+        for k in range(blocks.shape[0]):
+            for i in range(p):
+                for j in range(p):
+                    blocks[k, m, i, j] += blocks[k, a, i, j]
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_residual_pieces(S, Sy, Syy2, Sx, Sxy, Sxx, delta, gam, center, traces, gq):
+    """Per animal, at β = ``center``: the score quadratics Q_τ = (1ᵀV⁻¹e)², Q_σ =
+    eᵀV⁻²e (into ``traces``) and g_k = XᵀV⁻¹V_kV⁻¹e (into ``gq``, 2 × animals × p),
+    from u = Σ w e, v = Σ w² e, z = Σ w² e²; the last index along animals holds sums.
+
+    Q_k is quadratic and g_k linear in β (Hessian 2C_k, slope −C_k), so every left-out
+    fit's values follow from these at one center and its own C_k (module docstring)."""
+    m, p = Sx.shape[1], Sx.shape[2]
+    traces[_Q_T, m] = traces[_Q_S, m] = 0.0
+    for i in range(p):
+        gq[0, m, i] = gq[1, m, i] = 0.0
+    for a in range(m):
+        u, v, z = Sy[0, a], Sy[1, a], Syy2[a]
+        quad = 0.0
+        for i in range(p):
+            u -= Sx[0, a, i] * center[i]
+            v -= Sx[1, a, i] * center[i]
+            z -= 2 * Sxy[1, a, i] * center[i]
+            for j in range(p):
+                quad += center[i] * Sxx[1, a, i, j] * center[j]
+        z += quad
+        d, g, S2 = delta[a], gam[a], S[1, a]
+        traces[_Q_T, a] = d * d * u * u
+        traces[_Q_S, a] = z - 2 * g * u * v + g * g * S2 * u * u
+        traces[_Q_T, m] += traces[_Q_T, a]
+        traces[_Q_S, m] += traces[_Q_S, a]
+        for i in range(p):
+            xb = 0.0
+            for j in range(p):
+                xb += Sxx[1, a, i, j] * center[j]
+            gq[0, a, i] = d * d * u * Sx[0, a, i]
+            gq[1, a, i] = (
+                Sxy[1, a, i]
+                - xb
+                - g * u * Sx[1, a, i]
+                - g * v * Sx[0, a, i]
+                + g * g * S2 * u * Sx[0, a, i]
+            )
+            gq[0, m, i] += gq[0, a, i]
+            gq[1, m, i] += gq[1, a, i]
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_left_out_score(f, center, beta, gq, traces, lo, g, delta_beta):
+    """Q_τ, Q_σ and g_τ, g_σ (into ``g``) of fit ``f`` at its own β̂, from the sums of
+    :func:`_nb_residual_pieces` without its animal and its left-out C_τ, C_σ (``lo``):
+    Q_k(β) = Q_k(c) − 2 g_k(c)ᵀ(β − c) + (β − c)ᵀC_k(β − c), g_k(β) = g_k(c) − C_k(β − c)."""
+    p = beta.shape[1]
+    m, o = gq.shape[1] - 1, f - 1
+    for i in range(p):
+        delta_beta[i] = beta[f, i] - center[i]
+    q_t = q_s = 0.0
+    for k in range(2):
+        qk = traces[_Q_T + k, m] - traces[_Q_T + k, o]
+        for i in range(p):
+            gk = gq[k, m, i] - gq[k, o, i]
+            cd = 0.0
+            for j in range(p):
+                cd += lo[k, i, j] * delta_beta[j]
+            qk += (cd - 2 * gk) * delta_beta[i]
+            g[k, i] = gk - cd
+        if k == 0:
+            q_t = qk
+        else:
+            q_s = qk
+    return q_t, q_s
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_fisher_step(f, theta0, estimate_sigma, center, beta, A, blocks, traces, gq, g, sp, dbeta):
+    """One Fisher-scoring step of (τ², σ²) from ``theta0`` for fit ``f`` (its animal
+    left out), at that fit's sums; leaves A⁻¹ in ``sp[_AINV]`` and the left-out
+    blocks in ``sp[_LO:]``. Returns the new (τ², σ²), clipped at 0, and whether the
+    step was finite with a positive-definite information (else it is not taken)."""
+    p = A.shape[1]
+    m, o = blocks.shape[1] - 1, f - 1
+    eye, Ainv = sp[_EYE], sp[_AINV]
+    for i in range(p):
+        for j in range(p):
+            eye[i, j] = 1.0 if i == j else 0.0
+    _nb_solve(A[f], eye, sp[_WORK], Ainv)
+    lo, AC = sp[_LO : _LO + 5], sp[_AC : _AC + 2]
+    for k in range(5):
+        for i in range(p):
+            for j in range(p):
+                lo[k, i, j] = blocks[k, m, i, j] - blocks[k, o, i, j]
+    q_t, q_s = _nb_left_out_score(f, center, beta, gq, traces, lo, g, dbeta)
+    tr_ac_t = tr_ac_s = tr_ab_tt = tr_ab_ts = tr_ab_ss = 0.0
+    for k in range(2):  # A⁻¹C_k
+        for i in range(p):
+            for j in range(p):
+                s = 0.0
+                for q in range(p):
+                    s += Ainv[i, q] * lo[k, q, j]
+                AC[k, i, j] = s
+    tr_acac_tt = tr_acac_ts = tr_acac_ss = 0.0
+    for i in range(p):
+        tr_ac_t += AC[0, i, i]
+        tr_ac_s += AC[1, i, i]
+        for j in range(p):
+            tr_ab_tt += Ainv[i, j] * lo[_B_TT, j, i]
+            tr_ab_ts += Ainv[i, j] * lo[_B_TS, j, i]
+            tr_ab_ss += Ainv[i, j] * lo[_B_SS, j, i]
+            tr_acac_tt += AC[0, i, j] * AC[0, j, i]
+            tr_acac_ts += AC[0, i, j] * AC[1, j, i]
+            tr_acac_ss += AC[1, i, j] * AC[1, j, i]
+    s_t = 0.5 * (q_t - ((traces[_TR_T, m] - traces[_TR_T, o]) - tr_ac_t))
+    s_s = 0.5 * (q_s - ((traces[_TR_S, m] - traces[_TR_S, o]) - tr_ac_s))
+    i_tt = 0.5 * ((traces[_T_TT, m] - traces[_T_TT, o]) - 2 * tr_ab_tt + tr_acac_tt)
+    i_ts = 0.5 * ((traces[_T_TS, m] - traces[_T_TS, o]) - 2 * tr_ab_ts + tr_acac_ts)
+    i_ss = 0.5 * ((traces[_T_SS, m] - traces[_T_SS, o]) - 2 * tr_ab_ss + tr_acac_ss)
+    if not estimate_sigma:  # σ² held: step in τ² alone
+        s_s, i_ts, i_ss = 0.0, 0.0, 1.0
+    det = i_tt * i_ss - i_ts * i_ts
+    step_t = (i_ss * s_t - i_ts * s_s) / det
+    step_s = (i_tt * s_s - i_ts * s_t) / det
+    good = np.isfinite(step_t) and np.isfinite(step_s) and det > 0
+    if not good:
+        step_t, step_s = 0.0, 0.0
+    return max(theta0[0] + step_t, 0.0), max(theta0[1] + step_s, 0.0), good
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _nb_moved(f, c, A, beta, move_t, move_s, g, sp, rhs):
+    """The contrast estimate and variance of fit ``f`` moved to first order along the
+    step (module docstring): cᵀ(β̂ + dβ), cᵀ(A + dA)⁻¹c, and whether A + dA is safely
+    invertible. Needs A⁻¹ and the left-out C_τ, C_σ of :func:`_nb_fisher_step`."""
+    p = A.shape[1]
+    Ainv, A_new, lo = sp[_AINV], sp[_A_NEW], sp[_LO : _LO + 2]
+    effect = 0.0
+    for i in range(p):
+        db = 0.0
+        for q in range(p):
+            db += Ainv[i, q] * (g[0, q] * move_t + g[1, q] * move_s)
+        effect += c[i] * (beta[f, i] - db)
+        for j in range(p):
+            A_new[i, j] = A[f, i, j] - (lo[0, i, j] * move_t + lo[1, i, j] * move_s)
+    for i in range(p):
+        for j in range(i):
+            A_new[i, j] = A_new[j, i] = 0.5 * (A_new[i, j] + A_new[j, i])
+    if not _nb_well_conditioned(A_new, sp[_WORK]):
+        return effect, np.nan, False
+    for i in range(p):
+        rhs[0, i, 0] = c[i]
+    _nb_solve(A_new, rhs[0, :, :1], sp[_WORK], rhs[1, :, :1])
+    var = 0.0
+    for i in range(p):
+        var += c[i] * rhs[1, i, 0]
+    return effect, var, True
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_leave_one_out_many(
+    y, s2, X, animal, c, tau2, sig2, update, estimate_sigma, keep_theta, effect, var, theta
+):
+    """Every voxel of a chunk (``y``, ``s2``: voxels × runs): the contrast estimate and
+    variance of the fit with all animals and without each (``effect``, ``var``:
+    (1 + m) × voxels, NaN where not estimable) and, with ``keep_theta``, each left-out
+    fit's variance components (``theta``: 2 × m × voxels)."""
+    n_vox = y.shape[0]
+    p = X.shape[1]
+    m = effect.shape[0] - 1
+    S, Sy, Syy2 = np.zeros((3, m)), np.zeros((3, m)), np.zeros(m)
+    Sx, Sxy, Sxx = np.zeros((3, m, p)), np.zeros((3, m, p)), np.zeros((3, m, p, p))
+    delta, gam, Aa, ba = np.zeros(m), np.zeros(m), np.zeros((m, p, p)), np.zeros((m, p))
+    A, b, beta, kk = (
+        np.zeros((m + 1, p, p)),
+        np.zeros((m + 1, p)),
+        np.zeros((m + 1, p)),
+        np.zeros((m + 1, p)),
+    )
+    ok = np.zeros(m + 1, dtype=np.bool_)
+    h, blocks, traces = np.zeros((m, p)), np.zeros((5, m + 1, p, p)), np.zeros((7, m + 1))
+    gq, center, dbeta = np.zeros((2, m + 1, p)), np.zeros(p), np.zeros(p)
+    sp, rhs, g = np.zeros((_SCRATCH_MATRICES, p, p)), np.zeros((2, p, 2)), np.zeros((2, p))
+    theta0 = np.zeros(2)
+    powers = 3 if update else 1
+    for v in range(n_vox):
+        _nb_animal_sums(y[v], s2[v], X, animal, tau2[v], sig2[v], powers, S, Sy, Syy2, Sx, Sxy, Sxx)
+        t2 = _nb_finite(tau2[v])
+        _nb_gls(S, Sy, Sx, Sxy, Sxx, t2, c, delta, gam, Aa, ba, A, b, beta, kk, ok, sp, rhs)
+        bad = not np.isfinite(tau2[v])
+        if update:
+            theta0[0], theta0[1] = t2, _nb_finite(sig2[v])
+            _nb_step_pieces(S, Sx, Sxx, delta, gam, h, blocks, traces)
+            for i in range(p):  # the full fit's β̂ where it has one (any center is exact)
+                center[i] = beta[0, i] if ok[0] else 0.0
+            _nb_residual_pieces(S, Sy, Syy2, Sx, Sxy, Sxx, delta, gam, center, traces, gq)
+        for f in range(m + 1):
+            e, w = 0.0, 0.0
+            for i in range(p):
+                e += c[i] * beta[f, i]
+                w += c[i] * kk[f, i]
+            if update and f > 0:
+                new_t, new_s = max(theta0[0], 0.0), max(theta0[1], 0.0)
+                if ok[f]:  # (else A⁻¹ is NaN and no step is finite)
+                    new_t, new_s, good = _nb_fisher_step(
+                        f, theta0, estimate_sigma, center, beta, A, blocks, traces, gq, g, sp, dbeta
+                    )
+                    if good:
+                        e_new, w_new, ok_new = _nb_moved(
+                            f, c, A, beta, new_t - theta0[0], new_s - theta0[1], g, sp, rhs
+                        )
+                        if ok_new and w_new > 0:
+                            e, w = e_new, w_new
+                if keep_theta:
+                    theta[0, f - 1, v], theta[1, f - 1, v] = new_t, new_s
+            if bad or not ok[f]:
+                e, w = np.nan, np.nan
+            effect[f, v] = e
+            var[f, v] = w

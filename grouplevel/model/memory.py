@@ -48,18 +48,19 @@ CHUNK_ARRAYS = 24
 # atlas regions (grouplevel/anatomy/regions.py, region_values: the block, its presence
 # as float, the zeroed values, and their transposes inside the sparse product)
 REGION_AVERAGE_ARRAYS = 6
-# (runs, voxels) float64 arrays alive at once while a block of runs is scored for run
-# quality (grouplevel/questions/quality.py: the block, |y|, the masked copies, products)
+# (runs, voxels) float64 arrays a block of runs may hold while it is scored for run
+# quality: an upper bound (grouplevel/questions/quality.py now reads the runs in place
+# in compiled loops and holds none; kept so that the block size stays a safe bound)
 RUN_SCORE_ARRAYS = 8
 
 # (replicates, pair voxels) float64 arrays alive at once while bootstrap replicates of a
 # region pair's laterality are mapped (grouplevel/questions/symmetry.py, _shortcut_maps:
 # sums, means, variances, t, masks and their products)
 BOOTSTRAP_ARRAYS = 12
-# (voxels, animals + 1, animals) float64 arrays alive at once in the one-step variance
-# update of the leave-one-animal-out maps (grouplevel/model/leave_one_out.py,
-# _variance_step: residual sums u, v, z and their weighted products)
-LEAVE_ONE_OUT_ARRAYS = 12
+# (voxels, animals + 1) float64 arrays alive at once per chunk of the leave-one-animal-out
+# downdate beyond its two (voxels, runs) copies (grouplevel/model/leave_one_out.py: the
+# kernel's effect and variance outputs, and the left-out t and |Δt| rows of the maps)
+LEAVE_ONE_OUT_ARRAYS = 4
 
 # Share of the budget that one chunk's working set may use (our own choice: the
 # runs × voxels arrays take most of the budget; the chunk is a small addition to them).

@@ -520,10 +520,10 @@ def _voxel_chunk(settings: Settings, n_runs: int) -> int:
 
 def _loo_chunk(settings: Settings, n_runs: int, n_animals: int) -> int:
     """Voxels downdated together for the leave-one-animal-out maps: the fit's chunk,
-    or fewer when the (voxels, animals + 1, animals) arrays of the variance update
-    would pass the same share of ``[compute] memory_gb``."""
+    or fewer when the (voxels, animals + 1) arrays of the downdate would pass the same
+    share of ``[compute] memory_gb``."""
     memory_gb = settings.compute.memory_gb
-    per_voxel = (n_animals + 1) * n_animals
+    per_voxel = n_animals + 1
     return min(
         chunk_voxels(n_runs, memory_gb), chunk_voxels(per_voxel, memory_gb, LEAVE_ONE_OUT_ARRAYS)
     )

@@ -38,9 +38,10 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from grouplevel.compiled import lazy_njit
 from grouplevel.errors import ArgumentError
 from grouplevel.model.memory import voxel_chunks
-from grouplevel.questions.specificity import _correlation
+from grouplevel.questions.specificity import row_correlations
 
 #: |robust z| above which a run is flagged (Iglewicz & Hoaglin 1993; value from memory).
 DEFAULT_Z_THRESHOLD = 3.5
@@ -198,15 +199,12 @@ def run_quality(
     n = len(rows)
     correlation, mean_var, edge = np.empty(n), np.empty(n), np.empty(n)
     n_agree = np.empty(n, dtype=np.int64)
-    # a block of runs at a time, each as float64: every number below is one run's own
+    # a block of runs at a time, read in place: every number below is one run's own
     for block in voxel_chunks(n, max(1, n if chunk_rows is None else chunk_rows)):
-        yb = np.asarray(y[rows[block]], dtype=float)
-        loo_b = loo_effect[animal[block]][:, agreement]
-        correlation[block] = _correlation(yb[:, agreement], loo_b)
-        n_agree[block] = (np.isfinite(yb[:, agreement]) & np.isfinite(loo_b)).sum(axis=1)
-        vb = None if variance is None else np.asarray(variance[rows[block]], dtype=float)
-        mean_var[block] = _mean_variance(vb, yb)
-        edge[block] = _edge_score(yb, shell)
+        correlation[block], n_agree[block] = row_correlations(
+            y, loo_effect, rows[block], animal[block], agreement
+        )
+        mean_var[block], edge[block] = _run_scores(y, variance, rows[block], shell)
     z_c, z_v, z_e = robust_z(correlation), robust_z(mean_var), robust_z(edge)
     flagged, why = _flags(correlation, mean_var, edge, (z_c, z_v, z_e), threshold)
     session = runs["session"] if "session" in runs.columns else pd.Series([""] * n)
@@ -273,24 +271,50 @@ def _check_quality_inputs(
     return animal, loo_effect, shell
 
 
-def _mean_variance(variance: np.ndarray | None, y: np.ndarray) -> np.ndarray:
-    """``(n_runs,)`` mean of each run's finite first-level variances (NaN without them)."""
-    if variance is None:
-        return np.full(len(y), np.nan)
-    variance = np.asarray(variance, dtype=float)
-    with np.errstate(invalid="ignore"):
-        ok = np.isfinite(variance)
-        return np.where(ok, variance, 0.0).sum(axis=1) / ok.sum(axis=1)
+def _run_scores(
+    y: np.ndarray, variance: np.ndarray | None, rows: np.ndarray, shell: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """For the runs ``rows`` of ``y``: the mean of each run's finite first-level
+    variances (NaN without them) and its edge-rim score, the mean |effect| in the edge
+    shell over the mean |effect| inside it (over finite effects)."""
+    mean_var, edge = np.empty(len(rows)), np.empty(len(rows))
+    y = np.asarray(y)
+    _nb_run_scores(
+        y,
+        y if variance is None else np.asarray(variance),
+        variance is not None,
+        np.asarray(rows, dtype=np.int64),
+        np.asarray(shell, dtype=bool),
+        mean_var,
+        edge,
+    )
+    return mean_var, edge
 
 
-def _edge_score(y: np.ndarray, shell: np.ndarray) -> np.ndarray:
-    """``(n_runs,)`` mean |effect| in the edge shell over the mean |effect| inside it."""
-    a = np.abs(y)
-    fin = np.isfinite(a)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        edge_mean = np.where(fin & shell, a, 0.0).sum(axis=1) / (fin & shell).sum(axis=1)
-        inner_mean = np.where(fin & ~shell, a, 0.0).sum(axis=1) / (fin & ~shell).sum(axis=1)
-        return edge_mean / inner_mean
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_run_scores(y, variance, has_variance, rows, shell, mean_var, edge):
+    """The loops of :func:`_run_scores`, one run at a time."""
+    for i in range(len(rows)):
+        row = y[rows[i]]
+        edge_sum, inner_sum, n_edge, n_inner = 0.0, 0.0, 0, 0
+        for j in range(row.shape[0]):
+            if np.isfinite(row[j]):
+                if shell[j]:
+                    edge_sum += abs(row[j])
+                    n_edge += 1
+                else:
+                    inner_sum += abs(row[j])
+                    n_inner += 1
+        edge[i] = (edge_sum / n_edge) / (inner_sum / n_inner)
+        mean_var[i] = np.nan
+        if has_variance:
+            var = variance[rows[i]]
+            total, count = 0.0, 0
+            for j in range(var.shape[0]):
+                if np.isfinite(var[j]):
+                    total += var[j]
+                    count += 1
+            mean_var[i] = total / count
 
 
 def _flags(

@@ -50,6 +50,7 @@ import pandas as pd
 import scipy.sparse as sp
 from scipy import ndimage
 
+from grouplevel.compiled import lazy_njit
 from grouplevel.distributions import norm_ppf, t_ppf
 from grouplevel.errors import ArgumentError
 from grouplevel.model import between_animal_df, test_contrast
@@ -92,6 +93,10 @@ DEFAULT_SHELL_VOXELS = 2
 #: Neighbourhood of the shell: 26 (a voxel touching the outside by a face, edge or corner
 #: is on the boundary; chessboard distance) or 6 (faces only; city-block distance).
 DEFAULT_SHELL_CONNECTIVITY = 26
+
+#: Parts of a chunk per thread in the threaded leave-one-out downdate: more, smaller
+#: parts balance the threads (our own choice; the numbers do not depend on it).
+PARTS_PER_WORKER = 4
 
 #: Level of the confidence intervals (common practice).
 CONFIDENCE_LEVEL = 0.95
@@ -1137,25 +1142,73 @@ class LooMaps:
         }
 
 
-def _correlation(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Row-wise Pearson correlation of ``a`` (k, V) with ``b`` (k, V) or (V,), NaN-aware."""
-    a = np.atleast_2d(a)
-    b = np.broadcast_to(b, a.shape)
-    ok = np.isfinite(a) & np.isfinite(b)
-    n = ok.sum(axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ma = np.where(ok, a, 0.0).sum(axis=1) / n
-        mb = np.where(ok, b, 0.0).sum(axis=1) / n
-        da = np.where(ok, a - ma[:, None], 0.0)
-        db = np.where(ok, b - mb[:, None], 0.0)
-        r = (da * db).sum(axis=1) / np.sqrt((da * da).sum(axis=1) * (db * db).sum(axis=1))
-    return np.where(n > 2, r, np.nan)
+def row_correlations(
+    a: np.ndarray,
+    b: np.ndarray,
+    a_rows: np.ndarray | None = None,
+    b_rows: np.ndarray | None = None,
+    where: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Pearson correlation of rows of ``a`` with rows of ``b`` over the voxels finite in
+    both (and in ``where``), NaN with fewer than three such voxels.
+
+    Parameters
+    ----------
+    a, b
+        ``(ka, V)`` and ``(kb, V)`` maps (float32 or float64; read as they are, no copy).
+    a_rows, b_rows
+        ``(k,)`` the rows paired: row ``a_rows[i]`` of ``a`` with row ``b_rows[i]`` of
+        ``b`` (default: every row of ``a``, each with the same row of ``b``, or with the
+        only row of ``b``).
+    where
+        ``(V,)`` bool: the voxels the correlation is taken over (default all).
+
+    Returns
+    -------
+    r, n
+        ``(k,)`` the correlations and the voxels each was taken over.
+    """
+    a, b = np.atleast_2d(np.asarray(a)), np.atleast_2d(np.asarray(b))
+    if a_rows is None:
+        a_rows = np.arange(len(a))
+    if b_rows is None:
+        b_rows = np.zeros(len(a_rows), np.int64) if len(b) == 1 else np.asarray(a_rows)
+    if where is None:
+        where = np.ones(a.shape[1], dtype=bool)
+    r, n = np.empty(len(a_rows)), np.zeros(len(a_rows), dtype=np.int64)
+    _nb_row_correlations(
+        a,
+        b,
+        np.asarray(a_rows, dtype=np.int64),
+        np.asarray(b_rows, dtype=np.int64),
+        np.asarray(where, dtype=bool),
+        r,
+        n,
+    )
+    return r, n
 
 
-def _correlation_by_row(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """:func:`_correlation` of each row of ``a`` (k, V) with ``b`` (V,), one row at a
-    time: its temporaries are (V,) arrays instead of (k, V) ones."""
-    return np.array([_correlation(row, b)[0] for row in np.atleast_2d(a)], dtype=float)
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_row_correlations(a, b, a_rows, b_rows, where, r, n):
+    """The loops of :func:`row_correlations`: means, then centred cross-products."""
+    for i in range(len(a_rows)):
+        x, y = a[a_rows[i]], b[b_rows[i]]
+        count, sx, sy = 0, 0.0, 0.0
+        for j in range(x.shape[0]):
+            if where[j] and np.isfinite(x[j]) and np.isfinite(y[j]):
+                count += 1
+                sx += x[j]
+                sy += y[j]
+        mx, my = sx / count, sy / count
+        sxy, sxx, syy = 0.0, 0.0, 0.0
+        for j in range(x.shape[0]):
+            if where[j] and np.isfinite(x[j]) and np.isfinite(y[j]):
+                dx, dy = x[j] - mx, y[j] - my
+                sxy += dx * dy
+                sxx += dx * dx
+                syy += dy * dy
+        n[i] = count
+        r[i] = sxy / np.sqrt(sxx * syy) if count > 2 else np.nan
 
 
 def loo_group_maps(
@@ -1208,9 +1261,10 @@ def loo_group_maps(
         depend on it (:func:`grouplevel.model.memory.chunk_voxels` sizes it for a
         budget). The refits without variance components are not chunked.
     workers
-        Threads that downdate chunks side by side (default 1). Each then takes
-        ``chunk // workers`` voxels, so the memory held at once stays that of one
-        ``chunk``; no number depends on it (each voxel is downdated on its own).
+        Threads that downdate chunks side by side (default 1). Each then takes parts
+        of ``chunk // (workers · PARTS_PER_WORKER)`` voxels, so the memory held at once
+        stays within that of one ``chunk``; no number depends on it (each voxel is
+        downdated on its own).
 
     Returns
     -------
@@ -1240,7 +1294,7 @@ def loo_group_maps(
         t_full=t_full,
         effect_full=effect_full,
         effect=effect,
-        correlation=_correlation_by_row(t_loo, t_full),
+        correlation=row_correlations(t_loo, t_full)[0],
         max_abs_dt=max_dt,
     )
 
@@ -1250,8 +1304,8 @@ def _downdated_maps(
     chunk, workers=1,
 ):  # fmt: skip
     """The leave-one-out maps by downdating, ``chunk`` voxels at a time (``workers``
-    chunks of ``chunk // workers`` side by side): full effect and t, (n_ids, V) effect
-    and t without each animal, and the (n_ids,) largest |Δt|."""
+    parts of ``chunk // (workers · PARTS_PER_WORKER)`` side by side): full effect and
+    t, (n_ids, V) effect and t without each animal, and the (n_ids,) largest |Δt|."""
     n_vox = y.shape[1]
     m = int(animal.max()) + 1
     # a group map needs two animals: without such an animal there is none
@@ -1259,7 +1313,8 @@ def _downdated_maps(
     effect_full, t_full = np.full(n_vox, np.nan), np.full(n_vox, np.nan)
     effect, t_loo = np.full((n_ids, n_vox), np.nan), np.full((n_ids, n_vox), np.nan)
     workers = max(1, min(int(workers), -(-n_vox // chunk)))
-    part_chunk = max(1, chunk // workers)
+    # several parts per thread, so that the threads finish together
+    part_chunk = max(1, chunk // (workers * (PARTS_PER_WORKER if workers > 1 else 1)))
 
     def one_chunk(sl: slice) -> np.ndarray:
         """Downdate the voxels ``sl`` into the output arrays; their |Δt| (n_ids, k)."""
