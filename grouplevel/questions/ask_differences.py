@@ -33,6 +33,7 @@ import pandas as pd
 import scipy.sparse as sp
 
 from grouplevel.anatomy.regions import region_values
+from grouplevel.machine import available_cores
 from grouplevel.model import between_animal_df, test_contrast
 from grouplevel.model.animals import animal_means
 from grouplevel.model.leave_one_out import leave_one_animal_out_model
@@ -304,6 +305,7 @@ def difference_run_quality(
                 components=comps,
                 terms=terms,
                 chunk=loo_chunk,
+                workers=available_cores(),
             )
         else:
             loo = loo_group_maps(
@@ -316,6 +318,7 @@ def difference_run_quality(
                 var_animal=fit.var_animal,
                 var_run=fit.var_run,
                 chunk=loo_chunk,
+                workers=available_cores(),
             )
         animals = np.unique(design.animal[keep])
         codes = np.searchsorted(animals, design.animal[keep])
