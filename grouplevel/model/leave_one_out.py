@@ -349,12 +349,21 @@ def _nb_finite(x):
 @lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def _nb_well_conditioned(M, work):
     """True where a symmetric p × p matrix is finite and its smallest eigenvalue is
-    above ``CONDITION_LIMIT`` times its largest |eigenvalue| (cyclic Jacobi
-    eigenvalues; Golub & Van Loan 2013, Algorithm 8.5.2)."""
-    p = M.shape[0]
-    if p == 1:  # the one eigenvalue is the entry (a mean's design)
+    above ``CONDITION_LIMIT`` times its largest |eigenvalue|. One column (a mean's
+    design) is decided here; larger matrices by :func:`_nb_jacobi_well_conditioned`,
+    a call rather than inlined code (its loops would lengthen the compile at every
+    place this is used)."""
+    if M.shape[0] == 1:  # the one eigenvalue is the entry
         x = M[0, 0]
         return np.isfinite(x) and x > CONDITION_LIMIT * max(abs(x), 1e-300)
+    return _nb_jacobi_well_conditioned(M, work)
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_jacobi_well_conditioned(M, work):
+    """:func:`_nb_well_conditioned` of a p × p matrix, p ≥ 2, by cyclic Jacobi
+    eigenvalues (Golub & Van Loan 2013, Algorithm 8.5.2)."""
+    p = M.shape[0]
     total = 0.0
     for i in range(p):
         for j in range(p):
@@ -405,6 +414,19 @@ def _nb_rotate(work, i, j):
 
 @lazy_njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def _nb_solve(M, R, W, out):
+    """``out = M⁻¹ R`` (M: p × p, R and out: p × r; W: p × p scratch). One column is
+    solved here, with the arithmetic of the elimination for p = 1; larger systems by
+    :func:`_nb_solve_general`, a call rather than inlined code (shorter compiles)."""
+    if M.shape[0] == 1:
+        W[0, 0] = M[0, 0]
+        for k in range(R.shape[1]):
+            out[0, k] = R[0, k] / W[0, 0]
+        return
+    _nb_solve_general(M, R, W, out)
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _nb_solve_general(M, R, W, out):
     """``out = M⁻¹ R`` by Gaussian elimination with partial pivoting (M: p × p, R and
     out: p × r; W: p × p scratch)."""
     p, r = R.shape
