@@ -571,6 +571,10 @@ class _FittedLevel:
     reduced: dict[tuple, tuple[AnimalLevelData, np.ndarray, np.ndarray]] = field(
         default_factory=dict
     )
+    # each animal's own estimates per level tested (see animal_effects_for): made once
+    # and shared by every contrast of that level, since they are animals × voxels
+    # arrays held until the maps are written
+    animal_effects: dict[tuple, AnimalEffects | None] = field(default_factory=dict)
 
     def _reduced_key(self, c: np.ndarray) -> tuple:
         # the reduced data depend on the level tested; the reduced contrast on c itself
@@ -584,6 +588,25 @@ class _FittedLevel:
             design, random = self.fl.design, self.fl.random
             self.reduced[key] = _reduced_data(self.y, self.s2, self.fit, design, random, c)
         return self.reduced[key]
+
+    def animal_effects_for(self, c: np.ndarray, memory_gb: float) -> AnimalEffects | None:
+        """:func:`_animal_effects` of contrast ``c``, one object for every contrast whose
+        animals' own estimates are the same numbers.
+
+        They depend on the level ``c`` tests (and, for a combination of slopes, on its
+        weights on the slopes), not on the contrast on that level: the three group
+        means, their differences and the mean over groups of a group factor all
+        rearrange each animal's own intercept.
+        """
+        design, random = self.fl.design, self.fl.random
+        kind, slope = contrast_kind(design, random, c)
+        weights = None
+        if kind == CONTRAST_SLOPES:
+            weights = tuple(float(c[j]) for j in random.slope_columns)
+        key = (kind, slope, weights)
+        if key not in self.animal_effects:
+            self.animal_effects[key] = _animal_effects(self, c, memory_gb)
+        return self.animal_effects[key]
 
     def keep_reduced(self, still_needed: list[np.ndarray]) -> None:
         """Forget the reduced data no contrast in ``still_needed`` uses (they are
@@ -620,9 +643,8 @@ def _fit_first_level(
     for i, (cname, c) in enumerate(fl.contrasts):
         with clock.step("test and correct"):
             gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
-            gm = replace(
-                gm, animal_effects=_animal_effects(fitted, c, study.settings.compute.memory_gb)
-            )
+            effects = fitted.animal_effects_for(c, study.settings.compute.memory_gb)
+            gm = replace(gm, animal_effects=effects)
         with clock.step("regions"):
             if regions is not None:
                 model = _region_model(study, fl, c)

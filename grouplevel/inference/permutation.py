@@ -1034,6 +1034,39 @@ def maxima_rows(
     return out
 
 
+# voxels of the Freedman–Lane nuisance fit taken together: its (voxels, nuisance
+# columns, animals) float64 products stay a few tens of MiB instead of growing with the
+# study (our own choice, as the other fixed chunks of the model)
+NUISANCE_CHUNK = 32768
+
+
+def _nuisance_fit(data: AnimalLevelData, Z: np.ndarray, chunk: int = NUISANCE_CHUNK) -> np.ndarray:
+    """(V, m) fitted values of the nuisance-only GLS fit of every voxel's animal means,
+    at the unpermuted between-animal variance (Freedman & Lane 1983, as in Winkler et
+    al. 2014), ``chunk`` voxels at a time.
+
+    Every voxel is fitted on its own, so the chunks change no number; only the
+    (chunk, q, m) products are held at once.
+
+    References
+    ----------
+    Freedman D, Lane D (1983). J Bus Econ Stat 1:292-298.
+    Winkler AM et al. (2014). NeuroImage 92:381-397.
+    """
+    fitted = np.empty_like(data.mean)
+    ridge = 1e-300 * np.eye(Z.shape[1])
+    for lo in range(0, data.mean.shape[0], chunk):
+        sl = slice(lo, lo + chunk)
+        precision = data.precision[sl]
+        w = precision / (1.0 + data.var_animal[sl, None] * precision)
+        ZtW = np.einsum("am,va->vma", Z, w)  # (chunk, q, m)
+        A = ZtW @ Z  # (chunk, q, q)
+        b = np.einsum("vma,va->vm", ZtW, data.mean[sl])
+        gamma = np.linalg.solve(A + ridge, b[..., None])[..., 0]
+        fitted[sl] = gamma @ Z.T
+    return fitted
+
+
 def permutation_test(
     data: AnimalLevelData,
     c: np.ndarray,
@@ -1131,12 +1164,7 @@ def permutation_test(
         # the G statistic's own (ordinary least-squares) nuisance fit
         fitted = data.mean @ (Z @ np.linalg.pinv(Z)).T
     elif Z.shape[1]:
-        w = data.precision / (1.0 + data.var_animal[:, None] * data.precision)
-        ZtW = np.einsum("am,va->vma", Z, w)  # (V, q, m)
-        A = ZtW @ Z  # (V, q, q)
-        b = np.einsum("vma,va->vm", ZtW, data.mean)
-        gamma = np.linalg.solve(A + 1e-300 * np.eye(Z.shape[1]), b[..., None])[..., 0]
-        fitted = gamma @ Z.T
+        fitted = _nuisance_fit(data, Z)
     residual = data.mean - fitted
     to_z = _TtoZ(np.asarray(df, dtype=float))
     thr = cluster_forming_z(cluster_forming_p, sided)
