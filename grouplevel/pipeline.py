@@ -630,16 +630,19 @@ def _fit_first_level(
     start = time.perf_counter()
     with clock.step("read maps"):
         y, s2, mask = _fitted_voxels(study, fl, label, warnings)
+    # what the permutations of the contrasts and of the F-tests may reduce the data for
+    later = [c for _, c in fl.contrasts] + [np.abs(ft.weights).sum(axis=0) for ft in fl.ftests]
     with clock.step("fit"):
         fitted = _fit(study, fl, label, y, s2, mask, log, backend, warnings)
         group_note = _variance_group_note(fitted)
+        # the note's animal-level data (animals × voxels arrays) are kept only when a
+        # contrast reduces the data in the same way; else the first test needs the memory
+        fitted.keep_reduced(later)
     if group_note:
         warnings.append(group_note)
     with clock.step("regions"):
         regions = _region_data(study, fitted)
     results = []
-    # what the permutations of later contrasts and of the F-tests may reduce the data for
-    later = [c for _, c in fl.contrasts] + [np.abs(ft.weights).sum(axis=0) for ft in fl.ftests]
     for i, (cname, c) in enumerate(fl.contrasts):
         with clock.step("test and correct"):
             gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
