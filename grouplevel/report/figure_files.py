@@ -18,10 +18,6 @@ there).
 from __future__ import annotations
 
 import io
-import os
-import signal
-import sys
-import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -34,7 +30,6 @@ from matplotlib.transforms import Bbox
 from PIL import Image
 
 from grouplevel.errors import UserError
-from grouplevel.machine import available_cores
 from grouplevel.outputs.files import atomic_write
 from grouplevel.outputs.names import NAME_RULE, name_problem
 
@@ -50,8 +45,6 @@ EDGE_TOLERANCE_INCHES = 1e-6
 # time of the default 6 for files a little larger; the pixels are the same (PNG is
 # lossless, PNG specification, W3C 2003)
 PNG_COMPRESS_LEVEL = 1
-# the PDFs are drawn in a forked child beside the PNGs where that pays (FigureWriter)
-FORK_PDFS = True
 
 
 @dataclass(frozen=True)
@@ -152,150 +145,8 @@ def figure_bytes(figure: Figure, kind: str, dpi: int = PNG_DPI, box: Bbox | None
     return buffer.getvalue()
 
 
-class FigureWriter:
-    """Writes the figures of one rendering to ``out_dir/figures/`` (use as a ``with``
-    block around :meth:`write`).
-
-    The PDF of a figure costs about as much as its PNG (a second full drawing, by
-    matplotlib's PDF backend, in Python). On Linux with two or more usable cores and
-    two or more figures, entering the block forks a child process that draws the PDFs
-    while this process draws the PNGs: the child inherits the figures as they are (no
-    copy, no second import) and gets each figure's crop box through a pipe as soon as
-    its PNG is drawn, so both files of a figure have the same box. The child draws and
-    writes files only (atomically, :func:`~grouplevel.outputs.files.atomic_write`) and
-    leaves with ``os._exit``: it runs no exit handler of this process and touches no
-    lock another thread could hold (the block is entered before this rendering starts
-    any thread). Should the child fail, this process writes every PDF itself (the same
-    bytes: the drawing is deterministic), so the folder is complete either way.
-    Elsewhere, or for one figure, both files are drawn here, one after the other.
-    """
-
-    def __init__(self, out_dir: str | Path, drawn: list[DrawnFigure]) -> None:
-        self.folder = Path(out_dir) / FIGURES_FOLDER
-        self.drawn = drawn
-        self._child: int | None = None
-        self._boxes = None  # the pipe to the child, one line per figure
-
-    def __enter__(self) -> FigureWriter:
-        self.folder.mkdir(exist_ok=True)
-        if _fork_pays(len(self.drawn)):
-            self._fork()
-        return self
-
-    def __exit__(self, *exc) -> None:
-        if self._child is not None:  # write() did not finish: stop the child
-            self._close_boxes()
-            try:
-                os.kill(self._child, signal.SIGKILL)
-            except ProcessLookupError:
-                pass
-            os.waitpid(self._child, 0)
-            self._child = None
-
-    def _fork(self) -> None:
-        read, write = os.pipe()
-        with warnings.catch_warnings():
-            # Python 3.12+ warns on fork in a process with threads (here: idle compute
-            # pools); the child below uses none of them and no lock they may hold
-            warnings.simplefilter("ignore", DeprecationWarning)
-            pid = os.fork()
-        if pid == 0:  # the child: draw each PDF once its box arrives, then leave
-            status = 1
-            try:
-                os.close(write)
-                with os.fdopen(read, "r", encoding="ascii") as boxes:
-                    for line in boxes:
-                        index, *corners = line.split()
-                        x0, y0, x1, y1 = (float(v) for v in corners)
-                        self._write_pdf(int(index), Bbox([[x0, y0], [x1, y1]]))
-                status = 0
-            finally:
-                os._exit(status)
-        os.close(read)
-        self._child = pid
-        self._boxes = os.fdopen(write, "w", encoding="ascii")
-
-    def _write_pdf(self, index: int, box: Bbox) -> None:
-        fig = self.drawn[index]
-        atomic_write(_file(self.folder, fig, ".pdf"), figure_bytes(fig.figure, "pdf", box=box))
-
-    def _close_boxes(self) -> None:
-        if self._boxes is not None:
-            try:
-                self._boxes.close()
-            except BrokenPipeError:  # the child has gone: its PDFs are redrawn here
-                pass
-            self._boxes = None
-
-    def _send_box(self, index: int, box: Bbox) -> None:
-        try:
-            # repr round-trips a float exactly: the child crops to the very same box
-            self._boxes.write(f"{index} {' '.join(repr(float(v)) for v in box.extents)}\n")
-            self._boxes.flush()
-        except BrokenPipeError:  # the child has gone: its PDFs are redrawn here
-            self._boxes = None
-
-    def write(self) -> tuple[dict[str, bytes], list]:
-        """Write every figure (PNG, PDF, caption) and remove stale figure files.
-
-        Returns
-        -------
-        png, entries
-            The PNG bytes of each figure by stem (for the report to embed) and one
-            summary.json entry per figure (result, figure, title, files, dpi).
-        """
-        png: dict[str, bytes] = {}
-        entries = []
-        boxes: list[Bbox] = []
-        for index, fig in enumerate(self.drawn):
-            data, box = png_and_box(fig.figure)  # one box for both files
-            atomic_write(_file(self.folder, fig, ".png"), data)
-            if self._boxes is not None:
-                self._send_box(index, box)
-            elif self._child is None:
-                self._write_pdf(index, box)
-            boxes.append(box)
-            atomic_write(_file(self.folder, fig, ".txt"), (fig.caption_text + "\n").encode("utf-8"))
-            png[fig.stem] = data
-            entries.append(
-                {
-                    "result": fig.result,
-                    "figure": fig.key,
-                    "title": fig.title,
-                    "png": f"{FIGURES_FOLDER}/{fig.stem}.png",
-                    "pdf": f"{FIGURES_FOLDER}/{fig.stem}.pdf",
-                    "caption": f"{FIGURES_FOLDER}/{fig.stem}.txt",
-                    "dpi": PNG_DPI,
-                }
-            )
-        if self._child is not None:
-            self._close_boxes()  # the child reads to the end, writes the last PDF, exits
-            _, status = os.waitpid(self._child, 0)
-            self._child = None
-            if status != 0:  # it failed or was stopped: every PDF is drawn here
-                for index, box in enumerate(boxes):
-                    self._write_pdf(index, box)
-        keep = {f"{fig.stem}{suffix}" for fig in self.drawn for suffix in SUFFIXES}
-        for path in self.folder.iterdir():
-            if path.is_file() and path.suffix in SUFFIXES and path.name not in keep:
-                path.unlink()
-        return png, entries
-
-
-def _fork_pays(figures: int) -> bool:
-    """Whether the PDFs are drawn in a forked child (see :class:`FigureWriter`)."""
-    return (
-        FORK_PDFS
-        and figures >= 2
-        and sys.platform.startswith("linux")
-        and hasattr(os, "fork")
-        and available_cores() >= 2
-    )
-
-
 def write_figures(out_dir: str | Path, drawn: list[DrawnFigure]) -> tuple[dict[str, bytes], list]:
-    """Write every figure to ``out_dir/figures/`` and remove stale ones
-    (:class:`FigureWriter` in one call).
+    """Write every figure to ``out_dir/figures/`` and remove stale ones.
 
     Returns
     -------
@@ -303,8 +154,32 @@ def write_figures(out_dir: str | Path, drawn: list[DrawnFigure]) -> tuple[dict[s
         The PNG bytes of each figure by stem (for the report to embed) and one
         summary.json entry per figure (result, figure, title, files, dpi).
     """
-    with FigureWriter(out_dir, drawn) as writer:
-        return writer.write()
+    folder = Path(out_dir) / FIGURES_FOLDER
+    folder.mkdir(exist_ok=True)
+    png: dict[str, bytes] = {}
+    entries = []
+    for fig in drawn:
+        data, box = png_and_box(fig.figure)  # one box for both files
+        atomic_write(_file(folder, fig, ".png"), data)
+        atomic_write(_file(folder, fig, ".pdf"), figure_bytes(fig.figure, "pdf", box=box))
+        atomic_write(_file(folder, fig, ".txt"), (fig.caption_text + "\n").encode("utf-8"))
+        png[fig.stem] = data
+        entries.append(
+            {
+                "result": fig.result,
+                "figure": fig.key,
+                "title": fig.title,
+                "png": f"{FIGURES_FOLDER}/{fig.stem}.png",
+                "pdf": f"{FIGURES_FOLDER}/{fig.stem}.pdf",
+                "caption": f"{FIGURES_FOLDER}/{fig.stem}.txt",
+                "dpi": PNG_DPI,
+            }
+        )
+    keep = {f"{fig.stem}{suffix}" for fig in drawn for suffix in SUFFIXES}
+    for path in folder.iterdir():
+        if path.is_file() and path.suffix in SUFFIXES and path.name not in keep:
+            path.unlink()
+    return png, entries
 
 
 def _file(folder: Path, fig: DrawnFigure, suffix: str) -> Path:

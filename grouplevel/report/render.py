@@ -42,7 +42,7 @@ from grouplevel.report.browser import (
     browser_context,
     policy_placeholder,
 )
-from grouplevel.report.figure_files import FIGURES_FOLDER, DrawnFigure, FigureWriter
+from grouplevel.report.figure_files import FIGURES_FOLDER, DrawnFigure, write_figures
 from grouplevel.report.methods import header_sentence, methods_text
 from grouplevel.report.result_figures import MAP_FIGURES, Threshold, result_figures
 from grouplevel.report.tables import (
@@ -119,12 +119,12 @@ def _threshold(summary: dict, result: dict) -> Threshold:
     return Threshold(method, _METHOD_MAP.get(method, "q"), words, float(alpha))
 
 
-def _publish(writer: FigureWriter) -> tuple[dict[str, list[dict]], list]:
+def _publish(out_dir: Path, drawn: list[DrawnFigure]) -> tuple[dict[str, list[dict]], list]:
     """Write the figures to ``figures/`` and return the report's figure entries per
     result (each embedding the very PNG file written) and summary.json's entries."""
-    png, entries = writer.write()
+    png, entries = write_figures(out_dir, drawn)
     by_result: dict[str, list[dict]] = {}
-    for fig in writer.drawn:
+    for fig in drawn:
         by_result.setdefault(fig.result, []).append(
             _figure(fig.key, fig.title, png[fig.stem], fig.alt, fig.caption)
             | {"file": f"{FIGURES_FOLDER}/{fig.stem}.png"}
@@ -760,21 +760,16 @@ def build_context(out_dir: Path, *, title: str | None = None) -> dict:
                 "frames": frames,
             }
         )
-    drawn: list[DrawnFigure] = []
-    for entry in results:
-        result = summary["results"][entry["name"]]
-        frames = entry.pop("frames")
-        threshold = _threshold(summary, result)
-        drawn += result_figures(out_dir, entry["name"], result, summary, frames, threshold)
-    # the figure writer first: it may fork (its PDFs beside the PNGs), which it does
-    # before this rendering starts a thread
-    with (
-        FigureWriter(out_dir, drawn) as writer,
-        ThreadPoolExecutor(max_workers=1, thread_name_prefix="browser") as pool,
-    ):
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="browser") as pool:
         browser = pool.submit(browser_context, out_dir, summary, _browser_layers(summary, results))
+        drawn: list[DrawnFigure] = []
+        for entry in results:
+            result = summary["results"][entry["name"]]
+            frames = entry.pop("frames")
+            threshold = _threshold(summary, result)
+            drawn += result_figures(out_dir, entry["name"], result, summary, frames, threshold)
         # every figure is written to figures/ and the report embeds those very files
-        shown, figure_files = _publish(writer)
+        shown, figure_files = _publish(out_dir, drawn)
         browser = browser.result()
     for entry in results:
         entry["figures"] = shown.get(entry["name"], [])

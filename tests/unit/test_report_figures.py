@@ -12,7 +12,6 @@ Outside references:
 from __future__ import annotations
 
 import io
-import os
 
 import numpy as np
 import pandas as pd
@@ -21,7 +20,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from PIL import Image
 from scipy import ndimage
 
-from grouplevel.report import figure_files, figures
+from grouplevel.report import figures
 from grouplevel.report.figure_files import PNG_DPI, DrawnFigure, figure_bytes, write_figures
 
 
@@ -218,93 +217,6 @@ def test_figure_files_are_pdf_png_at_300_dpi_and_the_caption(tmp_path):
         }
     ]
     assert Image.open(io.BytesIO(png["sound_variance"])).format == "PNG"
-
-
-def _three_figures() -> list[DrawnFigure]:
-    rng = np.random.default_rng(7)
-    drawn = []
-    for i, key in enumerate(("variance", "spread", "more")):
-        fig = figures.variance_plot(
-            rng.uniform(0, 0.2, 50 + i), rng.uniform(0, 0.3, 50 + i), unit="map units"
-        )
-        drawn.append(DrawnFigure("sound", key, f"Figure {i}", "alt", "Caption.", fig))
-    return drawn
-
-
-def _folder(path):
-    path.mkdir()
-    return path
-
-
-def _files(folder) -> dict[str, bytes]:
-    return {p.name: p.read_bytes() for p in sorted(folder.iterdir())}
-
-
-@pytest.mark.skipif(not figure_files._fork_pays(3), reason="PDFs are forked on Linux, 2+ cores")
-def test_pdfs_drawn_in_a_forked_child_are_the_bytes_drawn_here(tmp_path, monkeypatch):
-    # the child draws the very figures this process holds, cut to the box of their PNGs:
-    # the same bytes as drawing both files here, one after the other
-    monkeypatch.setattr(figure_files, "FORK_PDFS", False)
-    write_figures(_folder(tmp_path / "here"), _three_figures())
-    monkeypatch.setattr(figure_files, "FORK_PDFS", True)
-    forked = []
-    fork = os.fork
-
-    def counted_fork():
-        pid = fork()
-        if pid:
-            forked.append(pid)
-        return pid
-
-    monkeypatch.setattr(figure_files.os, "fork", counted_fork)
-    png, entries = write_figures(_folder(tmp_path / "child"), _three_figures())
-    assert len(forked) == 1
-    here = _files(tmp_path / "here" / "figures")
-    assert len(here) == 9 and _files(tmp_path / "child" / "figures") == here
-    assert png["sound_more"] == here["sound_more.png"]
-    with pytest.raises(ChildProcessError):  # the child was waited for
-        os.waitpid(forked[0], os.WNOHANG)
-
-
-@pytest.mark.skipif(not figure_files._fork_pays(3), reason="PDFs are forked on Linux, 2+ cores")
-def test_pdfs_are_drawn_here_when_the_child_fails(tmp_path, monkeypatch):
-    monkeypatch.setattr(figure_files, "FORK_PDFS", False)
-    write_figures(_folder(tmp_path / "here"), _three_figures())
-    monkeypatch.setattr(figure_files, "FORK_PDFS", True)
-    parent = os.getpid()
-    draw = figure_files.figure_bytes
-
-    def failing_in_the_child(figure, kind, **kw):
-        if os.getpid() != parent:
-            raise OSError("the child cannot write")
-        return draw(figure, kind, **kw)
-
-    monkeypatch.setattr(figure_files, "figure_bytes", failing_in_the_child)
-    write_figures(_folder(tmp_path / "child"), _three_figures())
-    assert _files(tmp_path / "child" / "figures") == _files(tmp_path / "here" / "figures")
-
-
-@pytest.mark.skipif(not figure_files._fork_pays(3), reason="PDFs are forked on Linux, 2+ cores")
-def test_the_child_is_stopped_when_writing_the_pngs_fails(tmp_path, monkeypatch):
-    monkeypatch.setattr(figure_files, "FORK_PDFS", True)
-    calls = []
-    png_and_box = figure_files.png_and_box
-
-    def second_fails(figure, dpi=PNG_DPI):
-        calls.append(figure)
-        if len(calls) == 2:
-            raise OSError("disk full")
-        return png_and_box(figure, dpi)
-
-    monkeypatch.setattr(figure_files, "png_and_box", second_fails)
-    writer = figure_files.FigureWriter(tmp_path, _three_figures())
-    with pytest.raises(OSError, match="disk full"):
-        with writer:
-            child = writer._child
-            writer.write()
-    assert child is not None and writer._child is None
-    with pytest.raises(ChildProcessError):  # stopped and waited for: no zombie left
-        os.waitpid(child, os.WNOHANG)
 
 
 def test_variance_caption_says_only_what_the_medians_support():
