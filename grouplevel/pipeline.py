@@ -623,8 +623,17 @@ def _fit_first_level(
     quiet: bool = True,
     backend: Backend | None = None,
     clock: StepClock | None = None,
-) -> tuple[list[GroupMap], list[str]]:
+    emit: Callable[[GroupMap | FTestMap], None] | None = None,
+) -> tuple[list[GroupMap | FTestMap], list[str]]:
+    """Fit one first-level contrast and test its group contrasts and F-tests.
+
+    Each finished map goes to ``emit`` as soon as its questions are answered (and is not
+    kept here: its arrays can go once ``emit`` has written them); without ``emit`` the
+    maps are returned.
+    """
     warnings: list[str] = []
+    results: list[GroupMap | FTestMap] = []
+    emit = emit or results.append
     label = fl.name or "the study"
     clock = clock or StepClock()
     start = time.perf_counter()
@@ -642,7 +651,6 @@ def _fit_first_level(
         warnings.append(group_note)
     with clock.step("regions"):
         regions = _region_data(study, fitted)
-    results = []
     for i, (cname, c) in enumerate(fl.contrasts):
         with clock.step("test and correct"):
             gm = _test_and_correct(study, fitted, cname, c, quiet, backend, warnings)
@@ -655,10 +663,14 @@ def _fit_first_level(
                 gm = replace(gm, tables=tables)
         fitted.keep_reduced(later[i + 1 :])
         with clock.step("questions"):
-            results.append(_with_answers(study, fitted, gm, c, regions, log, backend))
+            gm = _with_answers(study, fitted, gm, c, regions, log, backend)
+        emit(gm)
+        del gm  # written (or kept by the caller): its arrays are not held here
     for ft in fl.ftests:
         with clock.step("test and correct"):
-            results.append(_test_ftest(study, fitted, ft, quiet, backend, warnings))
+            fm = _test_ftest(study, fitted, ft, quiet, backend, warnings)
+        emit(fm)
+        del fm
     log(f"  done in {time.perf_counter() - start:.1f} s")
     return results, warnings
 
@@ -768,6 +780,25 @@ def _fitted_voxels(
     return y, s2, mask
 
 
+def _presence(y: np.ndarray, s2: np.ndarray | None, chunk: int) -> np.ndarray:
+    """Where each run has data (runs × voxels, bool): finite effect and variance.
+
+    Maps without a missing value (the usual case) get a read-only all-true view that
+    takes no memory (a runs × voxels bool array is 0.2 GB at 10^6 voxels × 200 runs);
+    the check reads the maps one chunk of voxels at a time.
+    """
+    complete = all(
+        np.isfinite(y[:, sl]).all() and (s2 is None or np.isfinite(s2[:, sl]).all())
+        for sl in voxel_chunks(y.shape[1], chunk)
+    )
+    if complete:
+        return np.broadcast_to(np.True_, y.shape)
+    present = np.isfinite(y)
+    if s2 is not None:
+        present &= np.isfinite(s2)
+    return present
+
+
 def _fit(
     study: Study,
     fl: FirstLevel,
@@ -809,9 +840,7 @@ def _fit(
             f"{label}: {int(unfittable.sum())} voxel(s) could not be fitted (too few runs "
             "with data there, or a design without rank on those runs); their maps are 0"
         )
-    present = np.isfinite(y)
-    if s2 is not None:
-        present &= np.isfinite(s2)
+    present = _presence(y, s2, chunk_voxels(y.shape[0], settings.compute.memory_gb))
     return _FittedLevel(
         fl=fl,
         label=label,
@@ -1136,41 +1165,43 @@ def fit_study(
     *,
     quiet: bool = True,
     clock: StepClock | None = None,
+    sink: Callable[[GroupMap | FTestMap], None] | None = None,
 ) -> tuple[list[GroupMap | FTestMap], list[str]]:
     """Fit the mixed model for every first-level contrast and test every group contrast
     and F-test.
 
     ``clock``, when given, receives the wall time of each step (read maps, fit, test
-    and correct, regions, questions).
+    and correct, regions, questions). ``sink``, when given, receives each map as soon as
+    it is finished (:meth:`OutputWriter.add` writes it and lets its arrays go), in the
+    order the maps would be returned; the maps handed to it are not returned.
 
     Returns
     -------
     maps, warnings
         One :class:`GroupMap` per (first-level contrast, group contrast), followed by one
-        :class:`~grouplevel.results.maps.FTestMap` per (first-level contrast, F-test),
-        and the warnings raised while fitting (the study's own warnings are in
-        ``study.warnings``).
+        :class:`~grouplevel.results.maps.FTestMap` per (first-level contrast, F-test)
+        (none of them with a ``sink``), and the warnings raised while fitting (the
+        study's own warnings are in ``study.warnings``).
     """
     log = log or (lambda _msg: None)
-    maps: list[GroupMap] = []
+    maps: list[GroupMap | FTestMap] = []
+    unasked: list[str] = []  # results whose questions were all skipped
     warnings: list[str] = []
+
+    def emit(m: GroupMap | FTestMap) -> None:
+        answers = getattr(m, "answers", None)
+        if answers and not answers.asked and answers.contrast_kind != DIFFERENCE:
+            unasked.append(m.name)
+        (sink or maps.append)(m)
+
     # one backend for the whole study: a dask cluster takes seconds to start
     with open_backend(study.settings.compute) as backend:
         if backend.distributed:
             log(f"computing on dask: {backend.workers} worker(s)")
         for fl in study.first_levels:
-            m, w = _fit_first_level(study, fl, log, quiet, backend, clock)
-            maps.extend(m)
+            _, w = _fit_first_level(study, fl, log, quiet, backend, clock, emit)
             warnings.extend(w)
-    warnings.extend(
-        skipped_warning(
-            [
-                m.name
-                for m in maps
-                if m.answers and not m.answers.asked and m.answers.contrast_kind != DIFFERENCE
-            ]
-        )
-    )
+    warnings.extend(skipped_warning(unasked))
     return maps, warnings
 
 
@@ -1688,21 +1719,18 @@ def _inference_summary(gm: GroupMap, alpha: float) -> dict:
     return out
 
 
-def write_outputs(
-    study: Study,
-    maps: list[GroupMap | FTestMap],
-    out_dir: str | Path,
-    *,
-    warnings: list[str] | None = None,
-    force: bool = False,
-    clock: StepClock | None = None,
-) -> Path:
-    """Write every map, the masks and summary.json into ``out_dir`` atomically.
+class OutputWriter:
+    """The output folder of one run, written as the results are finished.
+
+    Use as a ``with`` block: entering it checks ``out_dir`` and makes a new hidden
+    sibling folder; :meth:`add` writes one finished result's maps there at once and
+    keeps only its summary.json entry (so a run holds one result's arrays at a time,
+    not all of them); :meth:`finish` writes summary.json, the methods, tables and
+    report, and moves the folder into place. A block left without :meth:`finish` (an
+    error, an interrupt) removes the hidden folder, so no folder that looks complete
+    is ever left, and an earlier output at ``out_dir`` stays as it was.
 
     ``clock``, when given, receives the wall time of writing the maps and of the report.
-
-    Everything is written to a hidden sibling folder first and moved into place at the
-    end, so an interrupted run never leaves a folder that looks complete.
 
     Raises
     ------
@@ -1712,25 +1740,63 @@ def write_outputs(
         is false, it holds an input of the study, it is not a folder grouplevel wrote,
         or it cannot be created.
     """
-    out = check_output_folder(out_dir, force, inputs=study_inputs(study))
-    out.parent.mkdir(parents=True, exist_ok=True)
-    # a new, unique hidden folder (mkdir honours the umask, so the finished folder gets
-    # the usual permissions; an existing folder of that name is never touched)
-    tmp = out.parent / f".{out.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
-    tmp.mkdir()
-    clock = clock or StepClock()
-    try:
-        grid = study.grid
-        with clock.step("write maps"):
+
+    def __init__(
+        self,
+        study: Study,
+        out_dir: str | Path,
+        *,
+        force: bool = False,
+        clock: StepClock | None = None,
+    ) -> None:
+        self.study = study
+        self.out = check_output_folder(out_dir, force, inputs=study_inputs(study))
+        self.clock = clock or StepClock()
+        self.tmp: Path | None = None
+        self.results: dict[str, dict] = {}
+        self.ftests: dict[str, dict] = {}
+
+    def __enter__(self) -> OutputWriter:
+        self.out.parent.mkdir(parents=True, exist_ok=True)
+        # a new, unique hidden folder (mkdir honours the umask, so the finished folder
+        # gets the usual permissions; an existing folder of that name is never touched)
+        tmp = self.out.parent / f".{self.out.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
+        tmp.mkdir()
+        self.tmp = tmp
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if self.tmp is not None:  # not finished: nothing half-written is left
+            shutil.rmtree(self.tmp, ignore_errors=True)
+            self.tmp = None
+
+    def _folder(self) -> Path:
+        if self.tmp is None:
+            raise RuntimeError("OutputWriter: use it as a with block, and add before finish")
+        return self.tmp
+
+    def add(self, gm: GroupMap | FTestMap) -> None:
+        """Write one finished result's maps and keep its summary.json entry."""
+        tmp = self._folder()
+        with self.clock.step("write maps"):
             # the maps compress side by side on threads; all are on disk after the block
             with parallel_saves():
-                for gm in maps:
-                    folder = child_path(tmp, gm.name)
-                    if isinstance(gm, FTestMap):
-                        _write_ftest_map(folder, gm)
-                    else:
-                        _write_group_map(folder, gm)
-                        _write_figure_maps(folder, study, gm)
+                folder = child_path(tmp, gm.name)
+                if isinstance(gm, FTestMap):
+                    _write_ftest_map(folder, gm)
+                else:
+                    _write_group_map(folder, gm)
+                    _write_figure_maps(folder, self.study, gm)
+        if isinstance(gm, FTestMap):
+            self.ftests[gm.name] = _ftest_summary(self.study, gm)
+        else:
+            self.results[gm.name] = _result_summary(self.study, gm)
+
+    def finish(self, warnings: list[str] | None = None) -> Path:
+        """Write summary.json and the human-readable outputs; move the folder into
+        place (an earlier output there is replaced only now) and return its path."""
+        tmp, out, study = self._folder(), self.out, self.study
+        grid = study.grid
         summary = {
             "tool": {"name": TOOL_NAME, "version": __version__, "versions": _versions()},
             "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
@@ -1754,16 +1820,12 @@ def write_outputs(
             "design": {
                 fl.name or "runs": design_description(study, fl) for fl in study.first_levels
             },
-            "results": {
-                gm.name: _result_summary(study, gm) for gm in maps if not isinstance(gm, FTestMap)
-            },
-            "ftests": {
-                fm.name: _ftest_summary(study, fm) for fm in maps if isinstance(fm, FTestMap)
-            },
+            "results": self.results,
+            "ftests": self.ftests,
             "warnings": list(study.warnings) + list(warnings or []),
         }
         write_summary(tmp, summary)
-        with clock.step("report"):
+        with self.clock.step("report"):
             # imported here: the report stack (matplotlib, jinja2) loads only when drawn
             from grouplevel.report import render_report, write_manuscript_tables, write_methods
 
@@ -1772,19 +1834,48 @@ def write_outputs(
             write_methods(tmp)
             write_manuscript_tables(tmp)
             render_report(tmp)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    old = None
-    if out.exists():
-        # the earlier output moves into a hidden holder first, so a crash between the
-        # two renames leaves it intact there
-        old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
-        out.rename(old / out.name)
-    tmp.rename(out)
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
-    return out
+        old = None
+        if out.exists():
+            # the earlier output moves into a hidden holder first, so a crash between
+            # the two renames leaves it intact there
+            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
+            out.rename(old / out.name)
+        tmp.rename(out)
+        self.tmp = None
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+        return out
+
+
+def write_outputs(
+    study: Study,
+    maps: list[GroupMap | FTestMap],
+    out_dir: str | Path,
+    *,
+    warnings: list[str] | None = None,
+    force: bool = False,
+    clock: StepClock | None = None,
+) -> Path:
+    """Write every map, the masks and summary.json into ``out_dir`` atomically
+    (:class:`OutputWriter` for maps already computed).
+
+    ``clock``, when given, receives the wall time of writing the maps and of the report.
+
+    Everything is written to a hidden sibling folder first and moved into place at the
+    end, so an interrupted run never leaves a folder that looks complete.
+
+    Raises
+    ------
+    UserError
+        When ``out_dir`` may not be written (see
+        :func:`grouplevel.outputs.folder.check_output_folder`): it exists and ``force``
+        is false, it holds an input of the study, it is not a folder grouplevel wrote,
+        or it cannot be created.
+    """
+    with OutputWriter(study, out_dir, force=force, clock=clock) as writer:
+        for gm in maps:
+            writer.add(gm)
+        return writer.finish(warnings)
 
 
 def run_study(
@@ -1813,16 +1904,20 @@ def run_study(
     out = check_output_folder(out_dir, force, inputs=study_inputs(study))
     for w in study.warnings:
         log(f"warning: {w}")
-    maps, warnings = fit_study(study, log, quiet=quiet, clock=clock)
-    for w in warnings:
-        log(f"warning: {w}")
-    written = write_outputs(study, maps, out, warnings=warnings, force=force, clock=clock)
+    # each result is written as soon as it is finished, into a hidden folder that is
+    # moved into place at the end (and removed should the run stop before)
+    with OutputWriter(study, out, force=force, clock=clock) as writer:
+        _, warnings = fit_study(study, log, quiet=quiet, clock=clock, sink=writer.add)
+        for w in warnings:
+            log(f"warning: {w}")
+        written = writer.finish(warnings)
     log(clock.line())
     return written
 
 
 __all__ = [
     "GroupMap",
+    "OutputWriter",
     "Settings",
     "check_output_folder",
     "fit_study",

@@ -534,6 +534,68 @@ def test_interrupted_run_keeps_the_earlier_output(tmp_path, capsys, monkeypatch)
     assert not list(tmp_path.glob(".out.*"))  # no half-written folder left beside it
 
 
+def test_interrupted_fit_after_a_written_result_keeps_the_earlier_output(
+    tmp_path, capsys, monkeypatch
+):
+    """A run writes each result as soon as it is finished (into its hidden folder): an
+    interrupt after the first result is on disk still leaves the earlier output as it
+    was and no hidden folder beside it."""
+    toml = study(tmp_path / "s", contrasts=["light", "puff"] * 3)
+    out = tmp_path / "out"
+    assert cli(["run", toml, "--out", out, "--quiet"], capsys)[0] == 0
+    earlier = hashes(out)
+    written: list[list[str]] = []
+    add = pipeline.OutputWriter.add
+
+    def add_then_stop(self, gm):
+        add(self, gm)
+        written.append(sorted(p.name for p in self.tmp.iterdir()))
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(pipeline.OutputWriter, "add", add_then_stop)
+    code = main(["run", str(toml), "--out", str(out), "--quiet", "--force"])
+    assert code == 130
+    assert len(written) == 1 and len(written[0]) == 1  # one result was on disk
+    assert_unchanged(earlier)
+    assert set(hashes(out)) == set(earlier)
+    assert not list(tmp_path.glob(".out.*"))
+
+
+def test_run_writes_each_result_before_the_next_is_tested(tmp_path, monkeypatch):
+    """Each result's maps are written (and its arrays let go) before the next result is
+    tested; the folder equals the one written from all maps at once."""
+    toml = study(tmp_path / "s", contrasts=["light", "puff"] * 3)
+    events: list[str] = []
+    add, test = pipeline.OutputWriter.add, pipeline._test_and_correct
+
+    def logged_add(self, gm):
+        events.append(f"add {gm.name}")
+        add(self, gm)
+
+    def logged_test(*args, **kwargs):
+        events.append("test")
+        return test(*args, **kwargs)
+
+    monkeypatch.setattr(pipeline.OutputWriter, "add", logged_add)
+    monkeypatch.setattr(pipeline, "_test_and_correct", logged_test)
+    streamed = grouplevel.run_study(toml, tmp_path / "streamed")
+    assert events == ["test", "add light", "test", "add puff"]
+    monkeypatch.undo()
+    loaded = grouplevel.load_study(toml)
+    maps, warns = grouplevel.fit_study(loaded)
+    at_once = grouplevel.write_outputs(loaded, maps, tmp_path / "at_once", warnings=warns)
+    ignore = {"report.html", "summary.json", "methods.md"}  # they name the folder and time
+    a, b = (
+        {k.relative_to(f): v for k, v in hashes(f).items() if k.name not in ignore}
+        for f in (streamed, at_once)
+    )
+    assert a == b and len(a) > 10
+    summary = [json.loads((f / "summary.json").read_text()) for f in (streamed, at_once)]
+    for s in summary:
+        s.pop("created"), s.pop("output_folder")
+    assert summary[0] == summary[1]
+
+
 def test_script_tags_in_the_title_are_escaped_in_the_report(tmp_path, capsys):
     toml = study(tmp_path / "s")
     toml.write_text(
