@@ -1862,15 +1862,8 @@ def write_outputs(
     ``clock``, when given, receives the wall time of writing the maps and of the report.
 
     Everything is written to a hidden sibling folder first and moved into place at the
-    end, so an interrupted run never leaves a folder that looks complete.
-
-    Raises
-    ------
-    UserError
-        When ``out_dir`` may not be written (see
-        :func:`grouplevel.outputs.folder.check_output_folder`): it exists and ``force``
-        is false, it holds an input of the study, it is not a folder grouplevel wrote,
-        or it cannot be created.
+    end, so an interrupted run never leaves a folder that looks complete. Raises
+    :class:`~grouplevel.errors.UserError` as :class:`OutputWriter` does.
     """
     with OutputWriter(study, out_dir, force=force, clock=clock) as writer:
         for gm in maps:
