@@ -306,23 +306,45 @@ def _lane_steps(acc, tau, vbar, active, nl, it, tol):
 
 
 @lazy_njit(cache=True, nogil=True, error_model="numpy")
-def _lane_load(fitted, residual, prec, sign, order, v0, nl, m, Y, P):
+def _lane_load(mean, prec, sign, order, v0, nl, m, Y, P):
     """Copy the permuted animal values and precisions of voxels ``v0 .. v0 + nl - 1``
     side by side (animal ``a`` of lane ``k`` at ``a * LANES + k``); 0 and 0 where an
-    animal has no data. An empty ``fitted`` (no rows) stands for zeros."""
+    animal has no data."""
     L = LANES
-    with_fit = fitted.shape[0] > 0
     for k in range(nl):
         v = v0 + k
         for a in range(m):
             oa = order[a]
             pa = prec[v, oa]
             present = pa > 0.0
-            value = sign[a] * residual[v, oa]
-            if with_fit:
-                value = fitted[v, a] + value
+            value = sign[a] * mean[v, oa]
             Y[a * L + k] = value if present else 0.0
             P[a * L + k] = pa if present else 0.0
+
+
+@lazy_njit(cache=True, nogil=True, error_model="numpy")
+def _permuted_voxel(nuisance, Z, mean, prec, sign, order, v, y, pr, fit):
+    """The permuted animal-level data of voxel ``v`` into ``y`` and ``pr``:
+    ``fit[a] + sign[a] * (mean[v, order[a]] − fit[order[a]])`` with the nuisance fit
+    ``fit = Z γ_v`` (``γ_v = nuisance[v]``; no columns: no nuisance, fit = 0) and
+    precision ``prec[v, order[a]]`` (Freedman–Lane).
+
+    The fitted values and residuals are formed here for one voxel at a time, so that no
+    (voxels, animals) array of them is held beside the means."""
+    m = y.size
+    q = Z.shape[1]
+    for a in range(m):
+        f = 0.0
+        for j in range(q):
+            f += nuisance[v, j] * Z[a, j]
+        fit[a] = f
+    for a in range(m):
+        oa = order[a]
+        if q > 0:
+            y[a] = fit[a] + sign[a] * (mean[v, oa] - fit[oa])
+        else:
+            y[a] = sign[a] * mean[v, oa]
+        pr[a] = prec[v, oa]
 
 
 @lazy_njit(cache=True, nogil=True, error_model="numpy")
@@ -398,7 +420,7 @@ def _lane_t(P, Y, tau, live, nl, m, v0, out_t, work):
 
 
 @lazy_njit(cache=True, nogil=True)
-def _refit_mean_lanes(fitted, residual, prec, sign, order, tau2_start, out_t, max_iter, tol):
+def _refit_mean_lanes(mean, prec, sign, order, tau2_start, out_t, max_iter, tol):
     """Intercept-only refit (p = 1, x = 1) of every voxel, ``LANES`` voxels side by side.
 
     Per voxel: τ² starts from the moment estimate (:func:`_lane_start`, the same numbers
@@ -412,7 +434,7 @@ def _refit_mean_lanes(fitted, residual, prec, sign, order, tau2_start, out_t, ma
     (vector instructions), and every per-lane step is written with selections rather
     than branches for the same reason.
     """
-    V, m = residual.shape
+    V, m = mean.shape
     L = LANES
     Y = np.zeros(m * L)
     P = np.zeros(m * L)
@@ -424,7 +446,7 @@ def _refit_mean_lanes(fitted, residual, prec, sign, order, tau2_start, out_t, ma
     active = np.zeros(L, dtype=np.bool_)
     for v0 in range(0, V, L):
         nl = min(L, V - v0)
-        _lane_load(fitted, residual, prec, sign, order, v0, nl, m, Y, P)
+        _lane_load(mean, prec, sign, order, v0, nl, m, Y, P)
         _lane_start(P, Y, tau2_start, v0, nl, m, tau, vbar, live, active, work)
         for it in range(max_iter):
             n_active = 0
@@ -438,18 +460,20 @@ def _refit_mean_lanes(fitted, residual, prec, sign, order, tau2_start, out_t, ma
 
 
 @lazy_njit(cache=True, nogil=True)
-def refit_t_permuted(fitted, residual, prec, sign, order, X, tau2_start, out_t, max_iter, tol):
+def refit_t_permuted(nuisance, Z, mean, prec, sign, order, X, tau2_start, out_t, max_iter, tol):
     """t of the first coefficient after one permutation, at every voxel.
 
-    The permuted animal-level data are ``fitted[:, a] + sign[a] * residual[:, order[a]]``
-    with precision ``prec[:, order[a]]`` (Freedman–Lane; ``fitted`` is 0 without
-    nuisance, and may then be passed with no rows, which saves reading it).
-    Intercept-only designs take the one-pass path.
+    The permuted animal-level data are ``fit[a] + sign[a] * r[order[a]]`` with the
+    nuisance fit ``fit = Z nuisance[v]`` of each voxel (Freedman–Lane; ``nuisance`` is
+    (V, q) coefficients on the (m, q) nuisance columns ``Z``, q = 0 without nuisance),
+    the residuals ``r = mean[v] − fit`` and precision ``prec[v, order[a]]``
+    (:func:`_permuted_voxel`). Intercept-only designs take the one-pass path.
     """
-    V, m = residual.shape
+    V, m = mean.shape
     p = X.shape[1]
     y = np.empty(m)
     pr = np.empty(m)
+    fit = np.empty(m)
     C = np.empty((p, p))
     Cinv = np.empty((p, p))
     G2 = np.empty((p, p))
@@ -458,21 +482,16 @@ def refit_t_permuted(fitted, residual, prec, sign, order, X, tau2_start, out_t, 
     rhs = np.empty(p)
     A = np.empty((p, 2 * p))
     wk = np.empty(m)
-    intercept_only = p == 1
+    intercept_only = p == 1 and Z.shape[1] == 0
     if intercept_only:
         for a in range(m):
             if X[a, 0] != 1.0:
                 intercept_only = False
     if intercept_only:
-        _refit_mean_lanes(fitted, residual, prec, sign, order, tau2_start, out_t, max_iter, tol)
+        _refit_mean_lanes(mean, prec, sign, order, tau2_start, out_t, max_iter, tol)
         return
-    with_fit = fitted.shape[0] > 0
     for v in range(V):
-        for a in range(m):
-            y[a] = sign[a] * residual[v, order[a]]
-            if with_fit:
-                y[a] = fitted[v, a] + y[a]
-            pr[a] = prec[v, order[a]]
+        _permuted_voxel(nuisance, Z, mean, prec, sign, order, v, y, pr, fit)
         t, _tau2 = _refit_voxel(
             y, pr, X, tau2_start[v], max_iter, tol, C, Cinv, G2, G3, beta, rhs, A, wk
         )
@@ -501,7 +520,7 @@ def _z_from_table(t, u, tables, df_row, du):
 
 
 def refit_z_permuted(
-    fitted, residual, prec, sign, order, X, tau2_start, tables, df_row, du, out_z, max_iter, tol
+    nuisance, Z, mean, prec, sign, order, X, tau2_start, tables, df_row, du, out_z, max_iter, tol
 ):
     """As :func:`refit_t_permuted`, then t → z (equal p) by table.
 
@@ -509,7 +528,7 @@ def refit_z_permuted(
     for voxel v's degrees of freedom. NaN t (unfittable voxel) gives z = 0. The asinh runs
     as one numpy call (vector instructions), the table lookup compiled.
     """
-    refit_t_permuted(fitted, residual, prec, sign, order, X, tau2_start, out_z, max_iter, tol)
+    refit_t_permuted(nuisance, Z, mean, prec, sign, order, X, tau2_start, out_z, max_iter, tol)
     u = np.abs(out_z)
     np.arcsinh(u, out=u)
     _z_from_table(out_z, u, tables, df_row, du)
@@ -517,7 +536,7 @@ def refit_z_permuted(
 
 @lazy_njit(cache=True, nogil=True)
 def refit_f_permuted(
-    fitted, residual, prec, sign, order, X, n_interest, tau2_start, out_f, max_iter, tol
+    nuisance, Z, mean, prec, sign, order, X, n_interest, tau2_start, out_f, max_iter, tol
 ):
     """Wald F of the first ``n_interest`` coefficients after one permutation, every voxel.
 
@@ -526,11 +545,12 @@ def refit_f_permuted(
     ``F = β_Iᵀ (Φ_II)⁻¹ β_I / q`` for the block I of the first q columns. NaN where the
     voxel cannot be fitted.
     """
-    V, m = residual.shape
+    V, m = mean.shape
     p = X.shape[1]
     q = n_interest
     y = np.empty(m)
     pr = np.empty(m)
+    fit = np.empty(m)
     C = np.empty((p, p))
     Cinv = np.empty((p, p))
     G2 = np.empty((p, p))
@@ -543,9 +563,7 @@ def refit_f_permuted(
     block_inv = np.empty((q, q))
     Aq = np.empty((q, 2 * q))
     for v in range(V):
-        for a in range(m):
-            y[a] = fitted[v, a] + sign[a] * residual[v, order[a]]
-            pr[a] = prec[v, order[a]]
+        _permuted_voxel(nuisance, Z, mean, prec, sign, order, v, y, pr, fit)
         t, _tau2 = _refit_voxel(
             y, pr, X, tau2_start[v], max_iter, tol, C, Cinv, G2, G3, beta, rhs, A, wk
         )

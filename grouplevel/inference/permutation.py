@@ -60,7 +60,6 @@ Smith SM, Nichols TE (2009). Threshold-free cluster enhancement. NeuroImage 44:8
 
 from __future__ import annotations
 
-import functools
 import itertools
 import math
 from collections.abc import Callable
@@ -797,8 +796,13 @@ class _PermutationWork(MapMaxima):
     """Everything one permutation needs: the arrays shared by all permutations and the
     plan. Picklable, so a distributed backend can send it to each worker once."""
 
-    fitted: np.ndarray  # (V, m) nuisance fit at the unpermuted τ̂²
-    residual: np.ndarray  # (V, m) what is flipped / permuted
+    # (V, q) coefficients of the nuisance-only fit at the unpermuted τ̂² on the (m, q)
+    # nuisance columns Z (q = 0: none); the fit Z γ and the residuals mean − Z γ that
+    # are flipped / permuted are formed voxel by voxel as the kernels read them, so no
+    # (V, m) array is held beside the means
+    nuisance: np.ndarray
+    Z: np.ndarray
+    mean: np.ndarray  # (V, m) animal-level data
     precision: np.ndarray  # (V, m)
     X_perm: np.ndarray  # (m, p) [x_interest, nuisance]
     tau2_start: np.ndarray  # (V,)
@@ -818,10 +822,11 @@ class _PermutationWork(MapMaxima):
 
     def statistic(self, k: int) -> np.ndarray:
         """z map (in-mask) of permutation k; k = 0 is the unpermuted data."""
-        z = np.empty(self.fitted.shape[0])
+        z = np.empty(self.mean.shape[0])
         _refit_kernel.refit_z_permuted(
-            self._fitted_or_none,
-            self.residual,
+            self.nuisance,
+            self.Z,
+            self.mean,
             self.precision,
             self.signs[k],
             self.orders[k],
@@ -840,13 +845,12 @@ class _PermutationWork(MapMaxima):
         """The statistic as it is ranked for the maximum (larger: more extreme)."""
         return _oriented(z, self.sided)
 
-    @functools.cached_property
-    def _fitted_or_none(self) -> np.ndarray:
-        """``fitted``, or an array with no rows when it is all 0 (no nuisance): the
-        refit kernel then skips reading it."""
-        if np.any(self.fitted):
-            return self.fitted
-        return np.zeros((0, self.fitted.shape[1]))
+    def permuted(self, k: int) -> np.ndarray:
+        """(V, m) animal-level data of permutation k (Freedman–Lane), as one array: for
+        the statistics computed with numpy on the whole map."""
+        fitted = self.nuisance @ self.Z.T
+        residual = (self.mean - fitted)[:, self.orders[k]]
+        return fitted + self.signs[k][None, :] * residual
 
 
 # Smallest residual variance of a variance group, relative to the voxel's largest one,
@@ -958,10 +962,11 @@ class _FTestWork(_PermutationWork):
     df: np.ndarray = None  # type: ignore[assignment]  # (V,) denominator df
 
     def f_values(self, k: int) -> np.ndarray:
-        f = np.empty(self.fitted.shape[0])
+        f = np.empty(self.mean.shape[0])
         _refit_kernel.refit_f_permuted(
-            self.fitted,
-            self.residual,
+            self.nuisance,
+            self.Z,
+            self.mean,
             self.precision,
             self.signs[k],
             self.orders[k],
@@ -992,7 +997,7 @@ class _GroupVarianceFWork(_FTestWork):
     groups: np.ndarray = None  # type: ignore[assignment]  # (m,) variance group codes
 
     def f_values(self, k: int) -> np.ndarray:
-        Y = self.fitted + self.signs[k][None, :] * self.residual
+        Y = self.permuted(k)
         C = np.eye(self.X_perm.shape[1])[: self.n_interest]
         return g_statistic_rank(Y, self.X_perm, C, self.groups)
 
@@ -1004,7 +1009,7 @@ class _GroupVarianceWork(_PermutationWork):
     groups: np.ndarray = None  # type: ignore[assignment]  # (m,) variance group codes
 
     def statistic(self, k: int) -> np.ndarray:
-        Y = self.fitted + self.signs[k][None, :] * self.residual
+        Y = self.permuted(k)
         unit = np.zeros(self.X_perm.shape[1])
         unit[0] = 1.0
         g = g_statistic(Y, self.X_perm, unit, self.groups)
@@ -1040,10 +1045,12 @@ def maxima_rows(
 NUISANCE_CHUNK = 32768
 
 
-def _nuisance_fit(data: AnimalLevelData, Z: np.ndarray, chunk: int = NUISANCE_CHUNK) -> np.ndarray:
-    """(V, m) fitted values of the nuisance-only GLS fit of every voxel's animal means,
-    at the unpermuted between-animal variance (Freedman & Lane 1983, as in Winkler et
-    al. 2014), ``chunk`` voxels at a time.
+def _nuisance_coefficients(
+    data: AnimalLevelData, Z: np.ndarray, chunk: int = NUISANCE_CHUNK
+) -> np.ndarray:
+    """(V, q) coefficients γ of the nuisance-only GLS fit ``Z γ`` of every voxel's animal
+    means, at the unpermuted between-animal variance (Freedman & Lane 1983, as in
+    Winkler et al. 2014), ``chunk`` voxels at a time.
 
     Every voxel is fitted on its own, so the chunks change no number; only the
     (chunk, q, m) products are held at once.
@@ -1053,7 +1060,7 @@ def _nuisance_fit(data: AnimalLevelData, Z: np.ndarray, chunk: int = NUISANCE_CH
     Freedman D, Lane D (1983). J Bus Econ Stat 1:292-298.
     Winkler AM et al. (2014). NeuroImage 92:381-397.
     """
-    fitted = np.empty_like(data.mean)
+    gamma = np.empty((data.mean.shape[0], Z.shape[1]))
     ridge = 1e-300 * np.eye(Z.shape[1])
     for lo in range(0, data.mean.shape[0], chunk):
         sl = slice(lo, lo + chunk)
@@ -1062,9 +1069,8 @@ def _nuisance_fit(data: AnimalLevelData, Z: np.ndarray, chunk: int = NUISANCE_CH
         ZtW = np.einsum("am,va->vma", Z, w)  # (chunk, q, m)
         A = ZtW @ Z  # (chunk, q, q)
         b = np.einsum("vma,va->vm", ZtW, data.mean[sl])
-        gamma = np.linalg.solve(A + ridge, b[..., None])[..., 0]
-        fitted[sl] = gamma @ Z.T
-    return fitted
+        gamma[sl] = np.linalg.solve(A + ridge, b[..., None])[..., 0]
+    return gamma
 
 
 def permutation_test(
@@ -1159,13 +1165,13 @@ def permutation_test(
     else:
         scheme = plan_permutations(x_i, Z, n_permutations, rng, sided, **plan_f)
     # Freedman–Lane: nuisance-only GLS fit at the unpermuted τ̂² (per voxel)
-    fitted = np.zeros_like(data.mean)
     if Z.shape[1] and variance_groups is not None:
         # the G statistic's own (ordinary least-squares) nuisance fit
-        fitted = data.mean @ (Z @ np.linalg.pinv(Z)).T
+        nuisance = data.mean @ np.linalg.pinv(Z).T
     elif Z.shape[1]:
-        fitted = _nuisance_fit(data, Z)
-    residual = data.mean - fitted
+        nuisance = _nuisance_coefficients(data, Z)
+    else:
+        nuisance = np.zeros((V, 0))
     to_z = _TtoZ(np.asarray(df, dtype=float))
     thr = cluster_forming_z(cluster_forming_p, sided)
     tables = np.ascontiguousarray(np.array(to_z.tables))
@@ -1184,8 +1190,9 @@ def permutation_test(
         extra["df"] = np.asarray(df, dtype=float)
         kind = _GroupVarianceFWork if variance_groups is not None else _FTestWork
     work = kind(
-        fitted=np.ascontiguousarray(fitted),
-        residual=np.ascontiguousarray(residual),
+        nuisance=np.ascontiguousarray(nuisance, dtype=np.float64),
+        Z=np.ascontiguousarray(Z, dtype=np.float64),
+        mean=np.ascontiguousarray(data.mean),
         precision=np.ascontiguousarray(data.precision),
         X_perm=np.ascontiguousarray(X_perm, dtype=np.float64),
         tau2_start=np.ascontiguousarray(data.var_animal, dtype=np.float64),

@@ -281,7 +281,8 @@ def test_refit_from_a_zero_start_reaches_the_reml_optimum():
     prec = np.full((3, 6), 1e10)
     out = np.empty(3)
     kernel.refit_t_permuted(
-        np.zeros((3, 6)),
+        np.zeros((3, 0)),
+        np.zeros((6, 0)),
         y,
         prec,
         np.ones(6),

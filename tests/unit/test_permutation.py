@@ -473,10 +473,10 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
     mean[prec == 0.0] = np.nan
     sign = rng.choice([-1.0, 1.0], m)
     order = rng.permutation(m)
-    fitted, X = np.zeros((V, m)), np.ones((m, 1))
+    nuisance, Z, X = np.zeros((V, 0)), np.zeros((m, 0)), np.ones((m, 1))
     tau2_start = rng.uniform(0.0, 1.0, V)
     got = np.empty(V)
-    kernel.refit_t_permuted(fitted, mean, prec, sign, order, X, tau2_start, got, 50, 1e-8)
+    kernel.refit_t_permuted(nuisance, Z, mean, prec, sign, order, X, tau2_start, got, 50, 1e-8)
 
     @numba.njit
     def _one_voxel_mean_refit(y, prec, X, tau2, max_iter, tol):
@@ -587,9 +587,9 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
 
 
 def test_nuisance_fit_is_weighted_least_squares_chunk_by_chunk():
-    """The Freedman–Lane nuisance fit of every voxel equals statsmodels WLS with the
-    GLS weights of the animal means, w = precision / (1 + τ² precision) (a diagonal
-    covariance, so GLS is WLS); fitted in chunks of 7 voxels it gives the same numbers
+    """The Freedman–Lane nuisance coefficients of every voxel equal statsmodels WLS with
+    the GLS weights of the animal means, w = precision / (1 + τ² precision) (a diagonal
+    covariance, so GLS is WLS); fitted in chunks of 7 voxels they are the same numbers
     bit for bit as in one piece."""
     import statsmodels.api as sm
 
@@ -602,9 +602,10 @@ def test_nuisance_fit_is_weighted_least_squares_chunk_by_chunk():
     data = perm_mod.AnimalLevelData(
         mean=mean, precision=precision, design=np.ones((m, 1)), var_animal=var_animal
     )
-    whole = perm_mod._nuisance_fit(data, Z, chunk=n_vox)
-    assert np.array_equal(perm_mod._nuisance_fit(data, Z, chunk=7), whole)
+    whole = perm_mod._nuisance_coefficients(data, Z, chunk=n_vox)
+    assert np.array_equal(perm_mod._nuisance_coefficients(data, Z, chunk=7), whole)
     for v in (0, 17, 39):
         w = precision[v] / (1.0 + var_animal[v] * precision[v])
-        ref = sm.WLS(mean[v], Z, weights=w).fit().fittedvalues
-        np.testing.assert_allclose(whole[v], ref, rtol=1e-10, atol=1e-12)
+        ref = sm.WLS(mean[v], Z, weights=w).fit()
+        np.testing.assert_allclose(whole[v], ref.params, rtol=1e-10, atol=1e-12)
+        np.testing.assert_allclose(Z @ whole[v], ref.fittedvalues, rtol=1e-10, atol=1e-12)
