@@ -124,7 +124,9 @@ def contrast_kind(rows: np.ndarray, c: np.ndarray) -> ContrastKind:
         )
     total = float(b @ c)
     if abs(total - 1.0) <= _TOL * scale:
-        if not _non_negative_solution(A, c, scale):
+        # Aᵀw = c already gives Σw = bᵀAᵀw = bᵀc = 1: when the least-squares weights are
+        # non-negative (a group mean, an intercept) they answer without the NNLS search
+        if np.min(w) < -_TOL * scale and not _non_negative_solution(A, c, scale):
             return ContrastKind(
                 OTHER,
                 1.0,
