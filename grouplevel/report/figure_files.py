@@ -3,8 +3,9 @@
 Each figure of the report is written three times, under the name
 ``<result>_<figure>``:
 
-* ``.pdf`` — vector (text, lines and axes stay sharp; map slices are embedded images
-  at the PNG's resolution);
+* ``.pdf`` — vector (text, lines and axes stay sharp); map slices drawn voxel for voxel
+  (:func:`figure_bytes`) are embedded at the maps' own resolution, one image pixel
+  per voxel, each layer (template, overlay) its own image, not resampled to a dpi;
 * ``.png`` — :data:`PNG_DPI` dots per inch (the resolution most journals ask of
   figures, common practice), with the resolution stored in the file;
 * ``.txt`` — the caption, word for word as the report prints it under the figure.
@@ -18,9 +19,11 @@ there).
 from __future__ import annotations
 
 import io
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
+import matplotlib
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.backends.backend_pdf import FigureCanvasPdf
@@ -108,7 +111,10 @@ def png_and_box(figure: Figure, dpi: int = PNG_DPI) -> tuple[bytes, Bbox]:
 
 def _png(pixels: np.ndarray, dpi: int) -> bytes:
     """RGBA pixels as PNG bytes with their resolution, compressed fast
-    (:data:`PNG_COMPRESS_LEVEL`)."""
+    (:data:`PNG_COMPRESS_LEVEL`); as RGB when every pixel is opaque (the same image,
+    a quarter fewer bytes to compress)."""
+    if pixels.shape[-1] == 4 and bool((pixels[..., 3] == 255).all()):
+        pixels = np.ascontiguousarray(pixels[..., :3])
     buffer = io.BytesIO()
     Image.fromarray(pixels).save(
         buffer, format="PNG", dpi=(dpi, dpi), compress_level=PNG_COMPRESS_LEVEL
@@ -137,12 +143,40 @@ def figure_bytes(figure: Figure, kind: str, dpi: int = PNG_DPI, box: Bbox | None
             **options,
         )
     elif kind == "pdf":
-        FigureCanvasPdf(figure).print_figure(
-            buffer, format="pdf", dpi=dpi, metadata={"CreationDate": None}, **options
-        )
+        with _voxel_images(figure):
+            FigureCanvasPdf(figure).print_figure(
+                buffer, format="pdf", dpi=dpi, metadata={"CreationDate": None}, **options
+            )
     else:
         raise ValueError(f"kind must be 'png' or 'pdf', got {kind!r}")
     return buffer.getvalue()
+
+
+@contextmanager
+def _voxel_images(figure: Figure):
+    """While a vector file is written: images drawn voxel for voxel (interpolation
+    "nearest") embedded unsampled, one image pixel per voxel, each image on its own.
+
+    Matplotlib embeds an image with interpolation "none" in a vector file without
+    resampling it, but only when images are not composited into one; "nearest" (what
+    the PNG is drawn with) would first resample every layer to the file's dpi. The
+    PDF then shows the same voxels as the PNG, scales without resampling, and is
+    written in a fraction of the time. Other images are left as they are.
+    """
+    images = [
+        image
+        for ax in figure.axes
+        for image in ax.get_images()
+        if image.get_interpolation() == "nearest"
+    ]
+    try:
+        for image in images:
+            image.set_interpolation("none")
+        with matplotlib.rc_context({"image.composite_image": False}):
+            yield
+    finally:
+        for image in images:
+            image.set_interpolation("nearest")
 
 
 def write_figures(out_dir: str | Path, drawn: list[DrawnFigure]) -> tuple[dict[str, bytes], list]:

@@ -12,16 +12,24 @@ Outside references:
 from __future__ import annotations
 
 import io
+import re
 
 import numpy as np
 import pandas as pd
 import pytest
 from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
 from PIL import Image
 from scipy import ndimage
 
 from grouplevel.report import figures
-from grouplevel.report.figure_files import PNG_DPI, DrawnFigure, figure_bytes, write_figures
+from grouplevel.report.figure_files import (
+    PNG_DPI,
+    DrawnFigure,
+    figure_bytes,
+    png_and_box,
+    write_figures,
+)
 
 
 def _blobs() -> np.ndarray:
@@ -219,6 +227,50 @@ def test_figure_files_are_pdf_png_at_300_dpi_and_the_caption(tmp_path):
     assert Image.open(io.BytesIO(png["sound_variance"])).format == "PNG"
 
 
+def _pdf_image_sizes(data: bytes) -> list[tuple[int, int]]:
+    """(width, height) in samples of every image XObject of a PDF (matplotlib writes
+    their dictionaries uncompressed; PDF specification ISO 32000-1, 8.9.5, from
+    memory: /Width and /Height count the image's samples, not its drawn size)."""
+    found = re.findall(rb"/Subtype /Image\s*/Width (\d+)\s*/Height (\d+)", data)
+    return [(int(w), int(h)) for w, h in found]
+
+
+def test_pdf_embeds_voxel_images_unsampled_and_png_keeps_its_pixels():
+    # a 7 x 5 slice drawn voxel for voxel is one 7 x 5 image in the PDF (not resampled
+    # to 300 dpi), the PNG is drawn as before, and the figure is left as it was
+    fig = Figure(figsize=(3.0, 2.0))
+    ax = fig.add_axes([0.1, 0.1, 0.8, 0.8])
+    voxels = ax.imshow(np.arange(35.0).reshape(5, 7), interpolation="nearest", cmap="gray")
+    ax.plot([0, 6], [0, 4], color="white")
+    png_before = figure_bytes(fig, "png")
+    pdf = figure_bytes(fig, "pdf")
+    assert _pdf_image_sizes(pdf) == [(7, 5)]
+    assert voxels.get_interpolation() == "nearest"
+    assert figure_bytes(fig, "png") == png_before
+    # an image drawn smoothly is resampled to the file's resolution as before
+    voxels.set_interpolation("bilinear")
+    assert all(w > 7 for w, _h in _pdf_image_sizes(figure_bytes(fig, "pdf")))
+
+
+def test_opaque_png_is_stored_as_rgb_with_the_same_pixels():
+    fig = figures.variance_plot(
+        np.array([0.0, 0.1, 0.2]), np.array([0.3, 0.2, 0.1]), unit="map units"
+    )
+    data, box = png_and_box(fig)
+    image = Image.open(io.BytesIO(data))
+    assert image.mode == "RGB"
+    canvas = FigureCanvasAgg(fig)  # png_and_box drew the figure at PNG_DPI
+    canvas.draw()
+    drawn = np.asarray(canvas.buffer_rgba())
+    assert (drawn[..., 3] == 255).all()  # opaque: nothing is lost without alpha
+    rows = drawn.shape[0]
+    left, top = int(np.floor(box.x0 * PNG_DPI)), int(np.floor(rows - box.y1 * PNG_DPI))
+    assert left >= 0 and top >= 0  # the box lies inside this figure
+    pixels = np.asarray(image)
+    height, width = pixels.shape[:2]
+    np.testing.assert_array_equal(pixels, drawn[top : top + height, left : left + width, :3])
+
+
 def test_variance_caption_says_only_what_the_medians_support():
     from grouplevel.report.result_figures import _variance_caption
 
@@ -236,7 +288,6 @@ def test_variance_caption_says_only_what_the_medians_support():
 
 
 def test_content_beyond_the_figure_edge_is_kept():
-    from matplotlib.figure import Figure
 
     from grouplevel.report.figure_files import png_and_box
 
