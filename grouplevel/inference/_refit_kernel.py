@@ -338,12 +338,9 @@ def _permuted_voxel(nuisance, Z, mean, prec, sign, order, v, y, pr, fit):
         for j in range(q):
             f += nuisance[v, j] * Z[a, j]
         fit[a] = f
-    for a in range(m):
+    for a in range(m):  # q = 0: fit is 0.0, so y is sign · mean exactly
         oa = order[a]
-        if q > 0:
-            y[a] = fit[a] + sign[a] * (mean[v, oa] - fit[oa])
-        else:
-            y[a] = sign[a] * mean[v, oa]
+        y[a] = fit[a] + sign[a] * (mean[v, oa] - fit[oa])
         pr[a] = prec[v, oa]
 
 
