@@ -195,7 +195,8 @@ def breakdown(data, df, mask, repeats: int = 10) -> dict[str, float]:
     thr = cluster_forming_z(CLUSTER_FORMING_P, "two")
     order = np.arange(m)
     limits = (_refit_kernel.REFIT_MAX_ITER, _refit_kernel.REFIT_TOL)
-    args = (*no_nuisance, data.mean, data.precision, np.ones(m), order, X, data.var_animal)
+    sums = _refit_kernel.flip_invariant_sums(data.mean, data.precision)  # as the engine
+    args = (*no_nuisance, data.mean, data.precision, np.ones(m), order, X, data.var_animal, sums)
     # warm-up: each kernel called directly compiles or loads its own cache entry once
     _refit_kernel.refit_t_permuted(*args, np.empty(V), *limits)
     _refit_kernel.refit_z_permuted(*args, tables, df_row, du, np.empty(V), *limits)
@@ -209,7 +210,7 @@ def breakdown(data, df, mask, repeats: int = 10) -> dict[str, float]:
         sign = rng.choice([-1.0, 1.0], m)
         t = np.empty(V)
         z = np.empty(V)
-        args = (*no_nuisance, data.mean, data.precision, sign, order, X, data.var_animal)
+        args = (*no_nuisance, data.mean, data.precision, sign, order, X, data.var_animal, sums)
         start = time.perf_counter()
         _refit_kernel.refit_t_permuted(*args, t, *limits)
         refit_only += time.perf_counter() - start

@@ -300,12 +300,16 @@ def _signed_keys(stat, sign, padded_of, order, keys):
     height = bits.view(np.float64)
     n = 0
     for v in range(stat.size):
+        # written at slot n every time and kept only when h > 0: no branch to mispredict
+        # on a map whose signs alternate at random (the slot after the last is spare:
+        # ``order`` and ``keys`` have ``stat.size`` entries and n < stat.size until the
+        # last voxel)
         h = sign * stat[v]
-        if h > 0.0:
-            height[0] = h
-            order[n] = padded_of[v]
-            keys[n] = ~bits[0]
-            n += 1
+        height[0] = h
+        slot = min(n, stat.size - 1)
+        order[slot] = padded_of[v]
+        keys[slot] = ~bits[0]
+        n += h > 0.0
     return n
 
 
@@ -352,12 +356,10 @@ def larger_side(stat):
     magnitude of its negative values, else -1.0 (NaN ignored)."""
     top = 0.0
     bottom = 0.0
-    for v in range(stat.size):
+    for v in range(stat.size):  # selections, not branches (random signs mispredict)
         x = stat[v]
-        if x > top:
-            top = x
-        elif -x > bottom:
-            bottom = -x
+        top = x if x > top else top
+        bottom = -x if -x > bottom else bottom
     return 1.0 if top >= bottom else -1.0
 
 

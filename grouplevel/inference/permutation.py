@@ -806,6 +806,9 @@ class _PermutationWork(MapMaxima):
     precision: np.ndarray  # (V, m)
     X_perm: np.ndarray  # (m, p) [x_interest, nuisance]
     tau2_start: np.ndarray  # (V,)
+    # (V, 5) sums of the intercept-only refit that no permutation changes, computed once
+    # (_refit_kernel.flip_invariant_sums); (0, 5) for any other design
+    sums: np.ndarray
     signs: np.ndarray  # (n, m) float
     orders: np.ndarray  # (n, m) int64
     tables: np.ndarray  # t → z tables, one row per df value
@@ -832,6 +835,7 @@ class _PermutationWork(MapMaxima):
             self.orders[k],
             self.X_perm,
             self.tau2_start,
+            self.sums,
             self.tables,
             self.df_row,
             self.du,
@@ -1189,13 +1193,22 @@ def permutation_test(
         extra["n_interest"] = int(np.atleast_2d(c).shape[0])
         extra["df"] = np.asarray(df, dtype=float)
         kind = _GroupVarianceFWork if variance_groups is not None else _FTestWork
+    mean = np.ascontiguousarray(data.mean)
+    precision = np.ascontiguousarray(data.precision)
+    X_perm = np.ascontiguousarray(X_perm, dtype=np.float64)
+    Z = np.ascontiguousarray(Z, dtype=np.float64)
+    if kind is _PermutationWork and _refit_kernel.intercept_only(X_perm, Z):
+        sums = _refit_kernel.flip_invariant_sums(mean, precision)
+    else:
+        sums = np.zeros((0, 5))
     work = kind(
         nuisance=np.ascontiguousarray(nuisance, dtype=np.float64),
-        Z=np.ascontiguousarray(Z, dtype=np.float64),
-        mean=np.ascontiguousarray(data.mean),
-        precision=np.ascontiguousarray(data.precision),
-        X_perm=np.ascontiguousarray(X_perm, dtype=np.float64),
+        Z=Z,
+        mean=mean,
+        precision=precision,
+        X_perm=X_perm,
         tau2_start=np.ascontiguousarray(data.var_animal, dtype=np.float64),
+        sums=sums,
         signs=scheme.signs.astype(np.float64),
         orders=scheme.orders.astype(np.int64),
         tables=tables,

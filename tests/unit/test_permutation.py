@@ -475,28 +475,57 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
     order = rng.permutation(m)
     nuisance, Z, X = np.zeros((V, 0)), np.zeros((m, 0)), np.ones((m, 1))
     tau2_start = rng.uniform(0.0, 1.0, V)
+    sums = kernel.flip_invariant_sums(mean, prec)
+    have = prec > 0
+    np.testing.assert_array_equal(sums[:, 0], have.sum(1))
+    np.testing.assert_allclose(sums[:, 1], np.where(have, prec, 0).sum(1), rtol=1e-13)
+    np.testing.assert_allclose(sums[:, 2], np.where(have, prec**2, 0).sum(1), rtol=1e-13)
+    inverse = np.where(have, 1 / np.where(have, prec, 1), 0).sum(1)
+    np.testing.assert_allclose(sums[:, 3], inverse, rtol=1e-13)
+    np.testing.assert_allclose(
+        sums[:, 4], np.where(have, prec * np.nan_to_num(mean) ** 2, 0).sum(1), rtol=1e-13
+    )
     got = np.empty(V)
-    kernel.refit_t_permuted(nuisance, Z, mean, prec, sign, order, X, tau2_start, got, 50, 1e-8)
+    args = (nuisance, Z, mean, prec, sign, order, X, tau2_start)
+    kernel.refit_t_permuted(*args, sums, got, 50, 1e-8)
+    computed_inside = np.empty(V)  # no sums passed: the kernel computes the same ones
+    kernel.refit_t_permuted(*args, np.zeros((0, 5)), computed_inside, 50, 1e-8)
+    np.testing.assert_array_equal(computed_inside, got)
 
     @numba.njit
-    def _one_voxel_mean_refit(y, prec, X, tau2, max_iter, tol):
+    def _one_voxel_mean_refit(y, prec, y0, prec0, tau2, max_iter, tol):
         """The intercept-only refit of one voxel, written plainly (the reference of the
         side-by-side kernel): one pass of sums per iteration.
 
+        ``y``, ``prec``: the permuted data; ``y0``, ``prec0``: the same animals in their
+        own order, from which the sums that a permutation leaves alone are formed.
         Returns (t, τ²). The sums expand the residuals r = y − μ̂ around the GLS mean, so
         each iteration reads the animals once.
         """
         m = y.size
         n = 0
         vbar = 0.0
+        s_p = 0.0
+        s_pp = 0.0
+        s_pyy = 0.0
         for a in range(m):
-            if prec[a] > 0.0:
+            if prec0[a] > 0.0:
                 n += 1
-                vbar += 1.0 / prec[a]
+                vbar += 1.0 / prec0[a]
+                s_p += prec0[a]
+                s_pp += prec0[a] * prec0[a]
+                s_pyy += prec0[a] * y0[a] * y0[a]
         if n < 2:
             return np.nan, tau2
         vbar /= n
-        tau2 = max(kernel._moment_start(y, prec, X, tau2), 0.0)  # X is the column of ones here
+        s_py = 0.0
+        for a in range(m):
+            s_py += prec[a] * y[a] if prec[a] > 0.0 else 0.0
+        # method-of-moments start (DerSimonian–Laird form), Σp(y − ȳ)² expanded
+        denom = s_p - s_pp / s_p
+        if denom > 0.0:
+            tau2 = max((s_pyy - s_py * s_py / s_p - (n - 1)) / denom, 0.0)
+        tau2 = max(tau2, 0.0)
         for _it in range(max_iter):
             sw = 0.0
             sw2 = 0.0
@@ -532,19 +561,21 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
             info = 0.5 * trace_pp
             observed = cube - w2r * w2r / sw - 0.5 * trace_pp
             expected = info
-            if observed > info * 1e-3 and _it >= kernel.REFIT_FISHER_STEPS:
+            newton = observed > info * 1e-3 and _it >= kernel.REFIT_FISHER_STEPS
+            if newton:
                 info = observed
             if info <= 0.0:
                 break
             new = tau2 + score / info
             if new < 0.0 and expected > 0.0:
                 new = tau2 + score / expected  # Fisher scoring past the boundary (as above)
+                newton = False
             if new < 0.0:
                 new = 0.0
             change = abs(new - tau2)
             tau2 = new
-            if change <= tol * (tau2 + vbar):
-                break
+            if change <= (np.sqrt(tol) if newton else tol) * (tau2 + vbar):
+                break  # a Newton step stops within √tol (quadratic convergence)
         sw = 0.0
         swy = 0.0
         for a in range(m):
@@ -562,7 +593,7 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
             for a in range(m):
                 y[a] = sign[a] * mean[v, order[a]]
                 pr[a] = prec[v, order[a]]
-            out[v] = _one_voxel_mean_refit(y, pr, X, tau2_start[v], 50, 1e-8)[0]
+            out[v] = _one_voxel_mean_refit(y, pr, mean[v], prec[v], tau2_start[v], 50, 1e-8)[0]
 
     want = np.empty(V)
     one_by_one(want)
