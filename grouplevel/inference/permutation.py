@@ -806,8 +806,8 @@ class _PermutationWork(MapMaxima):
     precision: np.ndarray  # (V, m)
     X_perm: np.ndarray  # (m, p) [x_interest, nuisance]
     tau2_start: np.ndarray  # (V,)
-    # (V, 5) sums of the intercept-only refit that no permutation changes, computed once
-    # (_refit_kernel.flip_invariant_sums); (0, 5) for any other design
+    # (V, SUMS) sums of the intercept-only refit that no permutation changes, computed once
+    # (_refit_kernel.flip_invariant_sums); no rows for any other design
     sums: np.ndarray
     signs: np.ndarray  # (n, m) float
     orders: np.ndarray  # (n, m) int64
@@ -1200,7 +1200,7 @@ def permutation_test(
     if kind is _PermutationWork and _refit_kernel.intercept_only(X_perm, Z):
         sums = _refit_kernel.flip_invariant_sums(mean, precision)
     else:
-        sums = np.zeros((0, 5))
+        sums = np.zeros((0, _refit_kernel.SUMS))
     work = kind(
         nuisance=np.ascontiguousarray(nuisance, dtype=np.float64),
         Z=Z,

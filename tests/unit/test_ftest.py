@@ -289,7 +289,7 @@ def test_refit_from_a_zero_start_reaches_the_reml_optimum():
         np.arange(6),
         X,
         np.zeros(3),
-        np.zeros((0, 5)),
+        np.zeros((0, kernel.SUMS)),
         out,
         kernel.REFIT_MAX_ITER,
         kernel.REFIT_TOL,

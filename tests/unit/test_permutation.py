@@ -485,11 +485,12 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
     np.testing.assert_allclose(
         sums[:, 4], np.where(have, prec * np.nan_to_num(mean) ** 2, 0).sum(1), rtol=1e-13
     )
+    np.testing.assert_array_equal(sums[:, 5], np.where(have, prec, 0).max(1))
     got = np.empty(V)
     args = (nuisance, Z, mean, prec, sign, order, X, tau2_start)
     kernel.refit_t_permuted(*args, sums, got, 50, 1e-8)
     computed_inside = np.empty(V)  # no sums passed: the kernel computes the same ones
-    kernel.refit_t_permuted(*args, np.zeros((0, 5)), computed_inside, 50, 1e-8)
+    kernel.refit_t_permuted(*args, np.zeros((0, kernel.SUMS)), computed_inside, 50, 1e-8)
     np.testing.assert_array_equal(computed_inside, got)
 
     @numba.njit
@@ -508,6 +509,7 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
         s_p = 0.0
         s_pp = 0.0
         s_pyy = 0.0
+        p_max = 0.0
         for a in range(m):
             if prec0[a] > 0.0:
                 n += 1
@@ -515,8 +517,9 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
                 s_p += prec0[a]
                 s_pp += prec0[a] * prec0[a]
                 s_pyy += prec0[a] * y0[a] * y0[a]
+                p_max = max(p_max, prec0[a])
         if n < 2:
-            return np.nan, tau2
+            return np.nan, tau2, 3  # no fit
         vbar /= n
         s_py = 0.0
         for a in range(m):
@@ -565,17 +568,24 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
             if newton:
                 info = observed
             if info <= 0.0:
-                break
+                return (swy / sw) * np.sqrt(sw), tau2, 2  # no step: the sums are at τ²
             new = tau2 + score / info
             if new < 0.0 and expected > 0.0:
                 new = tau2 + score / expected  # Fisher scoring past the boundary (as above)
                 newton = False
             if new < 0.0:
                 new = 0.0
-            change = abs(new - tau2)
+            d = new - tau2
             tau2 = new
-            if change <= (np.sqrt(tol) if newton else tol) * (tau2 + vbar):
-                break  # a Newton step stops within √tol (quadratic convergence)
+            if abs(d) <= (np.sqrt(tol) if newton else tol) * (tau2 + vbar):
+                # a Newton step stops within √tol (quadratic convergence); the sums at
+                # τ² − d are carried to τ² by w(τ² + d) ≈ w − d w² + d² w³ when d is
+                # short enough, else summed afresh below
+                if abs(d) * p_max <= kernel.TAYLOR_LIMIT:
+                    s0 = sw - d * sw2 + d * d * sw3
+                    s1 = swy - d * sw2y + d * d * sw3y
+                    return (s1 / s0) * np.sqrt(s0), tau2, 0
+                break
         sw = 0.0
         swy = 0.0
         for a in range(m):
@@ -584,20 +594,33 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
                 w = pa / (1.0 + tau2 * pa)
                 sw += w
                 swy += w * y[a]
-        return (swy / sw) * np.sqrt(sw), tau2
+        return (swy / sw) * np.sqrt(sw), tau2, 1
 
     @numba.njit
-    def one_by_one(out):
+    def one_by_one(out, path, max_iter):
         y, pr = np.empty(m), np.empty(m)
         for v in range(V):
             for a in range(m):
                 y[a] = sign[a] * mean[v, order[a]]
                 pr[a] = prec[v, order[a]]
-            out[v] = _one_voxel_mean_refit(y, pr, mean[v], prec[v], tau2_start[v], 50, 1e-8)[0]
+            t, _tau2, how = _one_voxel_mean_refit(
+                y, pr, mean[v], prec[v], tau2_start[v], max_iter, 1e-8
+            )
+            out[v] = t
+            path[v] = how
 
     want = np.empty(V)
-    one_by_one(want)
+    path = np.full(V, -1)
+    one_by_one(want, path, 50)
     np.testing.assert_array_equal(got, want)
+    # both ways of ending are taken here: t carried over the last step, and summed afresh
+    # (a step too long for the expansion, or no convergence within max_iter)
+    assert (path == 0).sum() > V // 2 and (path == 1).sum() >= 1
+    few = np.empty(V)
+    kernel.refit_t_permuted(*args, sums, few, 2, 1e-8)  # max_iter 2: many not converged
+    one_by_one(want, path, 2)
+    np.testing.assert_array_equal(few, want)
+    assert (path == 1).sum() > 10
     assert np.isnan(got[5]) and np.isfinite(np.delete(got, 5)).all()
 
     for v in (0, 17, V - 1):
