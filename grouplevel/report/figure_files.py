@@ -19,6 +19,7 @@ there).
 from __future__ import annotations
 
 import io
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
@@ -82,6 +83,13 @@ def png_and_box(figure: Figure, dpi: int = PNG_DPI) -> tuple[bytes, Bbox]:
     draw it. Only when the content itself reaches beyond the edges (a long label) is
     the figure drawn again, on a canvas that holds all of it, so nothing is cut off.
     """
+    image, box = _pixels_and_box(figure, dpi)
+    return (image if isinstance(image, bytes) else _png(image, dpi)), box
+
+
+def _pixels_and_box(figure: Figure, dpi: int) -> tuple[np.ndarray | bytes, Bbox]:
+    """As :func:`png_and_box`, with the cut pixels (a copy of their own, RGBA) still to
+    be encoded; PNG bytes already when the figure had to be drawn again."""
     canvas = FigureCanvasAgg(figure)
     figure.set_dpi(dpi)
     canvas.draw()
@@ -98,7 +106,7 @@ def png_and_box(figure: Figure, dpi: int = PNG_DPI) -> tuple[bytes, Bbox]:
     left, right = int(np.floor(box.x0 * dpi)), int(np.ceil(box.x1 * dpi))
     top, bottom = int(np.floor(rows - box.y1 * dpi)), int(np.ceil(rows - box.y0 * dpi))
     if left >= 0 and top >= 0 and right <= columns and bottom <= rows:
-        cut = np.ascontiguousarray(pixels[top:bottom, left:right])
+        cut = pixels[top:bottom, left:right].copy()  # not a view of the canvas's buffer
     else:  # the padding reaches past an edge: the background colour there
         background = np.round(np.asarray(to_rgba(figure.get_facecolor())) * 255)
         cut = np.empty((bottom - top, right - left, 4), dtype=np.uint8)
@@ -106,7 +114,7 @@ def png_and_box(figure: Figure, dpi: int = PNG_DPI) -> tuple[bytes, Bbox]:
         inside = pixels[max(top, 0) : min(bottom, rows), max(left, 0) : min(right, columns)]
         row, column = max(-top, 0), max(-left, 0)
         cut[row : row + inside.shape[0], column : column + inside.shape[1]] = inside
-    return _png(cut, dpi), box
+    return cut, box
 
 
 def _png(pixels: np.ndarray, dpi: int) -> bytes:
@@ -192,23 +200,29 @@ def write_figures(out_dir: str | Path, drawn: list[DrawnFigure]) -> tuple[dict[s
     folder.mkdir(exist_ok=True)
     png: dict[str, bytes] = {}
     entries = []
-    for fig in drawn:
-        data, box = png_and_box(fig.figure)  # one box for both files
-        atomic_write(_file(folder, fig, ".png"), data)
-        atomic_write(_file(folder, fig, ".pdf"), figure_bytes(fig.figure, "pdf", box=box))
-        atomic_write(_file(folder, fig, ".txt"), (fig.caption_text + "\n").encode("utf-8"))
-        png[fig.stem] = data
-        entries.append(
-            {
-                "result": fig.result,
-                "figure": fig.key,
-                "title": fig.title,
-                "png": f"{FIGURES_FOLDER}/{fig.stem}.png",
-                "pdf": f"{FIGURES_FOLDER}/{fig.stem}.pdf",
-                "caption": f"{FIGURES_FOLDER}/{fig.stem}.txt",
-                "dpi": PNG_DPI,
-            }
-        )
+    # each PNG is compressed on a second thread while the figure's PDF is drawn (zlib
+    # runs without Python's lock, so the two share the cores)
+    with ThreadPoolExecutor(max_workers=1) as encoder:
+        for fig in drawn:
+            image, box = _pixels_and_box(fig.figure, PNG_DPI)  # one box for both files
+            encoded = None if isinstance(image, bytes) else encoder.submit(_png, image, PNG_DPI)
+            pdf = figure_bytes(fig.figure, "pdf", box=box)
+            data = image if encoded is None else encoded.result()
+            atomic_write(_file(folder, fig, ".png"), data)
+            atomic_write(_file(folder, fig, ".pdf"), pdf)
+            atomic_write(_file(folder, fig, ".txt"), (fig.caption_text + "\n").encode("utf-8"))
+            png[fig.stem] = data
+            entries.append(
+                {
+                    "result": fig.result,
+                    "figure": fig.key,
+                    "title": fig.title,
+                    "png": f"{FIGURES_FOLDER}/{fig.stem}.png",
+                    "pdf": f"{FIGURES_FOLDER}/{fig.stem}.pdf",
+                    "caption": f"{FIGURES_FOLDER}/{fig.stem}.txt",
+                    "dpi": PNG_DPI,
+                }
+            )
     keep = {f"{fig.stem}{suffix}" for fig in drawn for suffix in SUFFIXES}
     for path in folder.iterdir():
         if path.is_file() and path.suffix in SUFFIXES and path.name not in keep:
