@@ -62,7 +62,7 @@ from grouplevel.intake.design import (
     slope_design,
     weights_dict,
 )
-from grouplevel.intake.images import Grid, write_map
+from grouplevel.intake.images import Grid, headers_read_once, write_map
 from grouplevel.intake.settings import DEFAULT_CONTRAST_NAME, InferenceSettings, Settings
 from grouplevel.intake.study import FirstLevel, Study, load_runs, load_study
 from grouplevel.model import (
@@ -1892,18 +1892,19 @@ def run_study(
     clock = clock or StepClock()
     # the cheap checks first (before the maps are read), then with every input known
     check_output_folder(out_dir, force, inputs=[("study file", Path(path))], ownership=False)
-    with clock.step("check inputs"):
-        study = load_study(path, permutations=permutations, seed=seed)
-    out = check_output_folder(out_dir, force, inputs=study_inputs(study))
-    for w in study.warnings:
-        log(f"warning: {w}")
-    # each result is written as soon as it is finished, into a hidden folder that is
-    # moved into place at the end (and removed should the run stop before)
-    with OutputWriter(study, out, force=force, clock=clock) as writer:
-        _, warnings = fit_study(study, log, quiet=quiet, clock=clock, sink=writer.add)
-        for w in warnings:
+    with headers_read_once():  # the check and the fit read the same maps
+        with clock.step("check inputs"):
+            study = load_study(path, permutations=permutations, seed=seed)
+        out = check_output_folder(out_dir, force, inputs=study_inputs(study))
+        for w in study.warnings:
             log(f"warning: {w}")
-        written = writer.finish(warnings)
+        # each result is written as soon as it is finished, into a hidden folder that
+        # is moved into place at the end (and removed should the run stop before)
+        with OutputWriter(study, out, force=force, clock=clock) as writer:
+            _, warnings = fit_study(study, log, quiet=quiet, clock=clock, sink=writer.add)
+            for w in warnings:
+                log(f"warning: {w}")
+            written = writer.finish(warnings)
     log(clock.line())
     return written
 

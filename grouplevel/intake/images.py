@@ -6,6 +6,9 @@ a grid when their shapes are equal and their affines agree within a small tolera
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+from contextlib import contextmanager
+from contextvars import ContextVar
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -122,13 +125,44 @@ def affine_problem(affine: np.ndarray) -> str | None:
     return None
 
 
+#: The files opened in the current :func:`headers_read_once` block (path -> image).
+_OPENED: ContextVar[dict[str, object] | None] = ContextVar("grouplevel_opened", default=None)
+
+
+@contextmanager
+def headers_read_once() -> Iterator[None]:
+    """Within the block, each file's header is parsed once.
+
+    A run reads every map's header when it checks the study, then every map while
+    checking the data, then again to fit it; inside this block the later reads reuse
+    the image parsed first (nibabel's header and a proxy of the file), and only the
+    voxel values are read from the file again. Outside it (and in other threads)
+    every read parses the file anew. A block inside another uses the outer one's files.
+    """
+    if _OPENED.get() is not None:
+        yield
+        return
+    token = _OPENED.set({})
+    try:
+        yield
+    finally:
+        _OPENED.reset(token)
+
+
 def _open(path: Path):
+    opened = _OPENED.get()
+    key = str(path)
+    if opened is not None and key in opened:
+        return opened[key]
     if not path.exists():
         raise UserError(f"{path}: file not found")
     try:
-        return nib.load(str(path))
+        img = nib.load(key)
     except Exception as exc:  # nibabel raises several types for unreadable files
         raise UserError(f"{path}: cannot read as NIfTI ({exc})") from None
+    if opened is not None:
+        opened[key] = img
+    return img
 
 
 def _check_real(path: Path, img) -> None:

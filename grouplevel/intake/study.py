@@ -37,7 +37,13 @@ from grouplevel.intake.design import (
     missing_variables,
     model_problems,
 )
-from grouplevel.intake.images import Grid, grid_mismatch, read_header_grid, read_volume
+from grouplevel.intake.images import (
+    Grid,
+    grid_mismatch,
+    headers_read_once,
+    read_header_grid,
+    read_volume,
+)
 from grouplevel.intake.settings import (
     DEFAULT_CONTRAST_NAME,
     Settings,
@@ -1411,4 +1417,5 @@ def load_study(
         With every problem found, each naming its file, table line or key.
     """
     settings = with_overrides(load_settings(path), permutations=permutations, seed=seed)
-    return inspect_study(settings)
+    with headers_read_once():  # the headers are read, then the maps: parse each once
+        return inspect_study(settings)

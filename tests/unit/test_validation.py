@@ -362,3 +362,31 @@ def test_bad_header_declarations_are_refused(tmp_path, capsys, space, expected):
     assert code == 2
     assert expected in text
     assert "Traceback" not in text
+
+
+def test_headers_read_once_parses_each_file_once_and_rereads_the_voxels(tmp_path, monkeypatch):
+    # Inside the block a second read of a file reuses its parsed header (nibabel.load is
+    # called once) while the voxel values still come from the file; outside it, and
+    # once it is left, every read parses the file again. The values are checked against
+    # the arrays written with nibabel (the reference reader).
+    from grouplevel.intake import images
+
+    path = tmp_path / "map.nii"
+    first = np.arange(24, dtype=np.float32).reshape(2, 3, 4)
+    nib.save(nib.Nifti1Image(first, TINY_AFFINE), path)
+    calls = []
+    load = nib.load
+    monkeypatch.setattr(images.nib, "load", lambda p: calls.append(p) or load(p))
+    with images.headers_read_once():
+        grid = images.read_header_grid(path)
+        np.testing.assert_array_equal(images.read_volume(path), first)
+        with images.headers_read_once():  # nested: the outer block's files
+            np.testing.assert_array_equal(images.read_volume(path), first)
+        assert len(calls) == 1 and grid.shape == (2, 3, 4)
+        # same header, new values: the values are read from the file again
+        nib.save(nib.Nifti1Image(first * 2, TINY_AFFINE), path)
+        np.testing.assert_array_equal(images.read_volume(path), first * 2)
+        assert len(calls) == 1
+    images.read_volume(path)
+    images.read_volume(path)
+    assert len(calls) == 3
