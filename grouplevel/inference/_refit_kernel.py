@@ -313,16 +313,17 @@ def _lane_steps(acc, tau, vbar, active, nl, it, tol, carried):
         swy = acc[3 * L + k]
         sw2y = acc[4 * L + k]
         t = tau[k]
-        mu = swy / sw
+        inv = 1.0 / sw  # one division for the five quotients by Σw
+        mu = swy * inv
         quad = acc[6 * L + k] - 2.0 * mu * sw2y + mu * mu * sw2
         cube = acc[7 * L + k] - 2.0 * mu * acc[5 * L + k] + mu * mu * sw3
         w2r = sw2y - mu * sw2
-        trace_p = sw - sw2 / sw
-        ratio = sw2 / sw
-        trace_pp = sw2 - 2.0 * sw3 / sw + ratio * ratio
+        ratio = sw2 * inv
+        trace_p = sw - ratio
+        trace_pp = sw2 - 2.0 * sw3 * inv + ratio * ratio
         score = 0.5 * (quad - trace_p)
         expected = 0.5 * trace_pp
-        observed = cube - w2r * w2r / sw - 0.5 * trace_pp
+        observed = cube - w2r * w2r * inv - 0.5 * trace_pp
         newton = observed > expected * 1e-3 and it >= REFIT_FISHER_STEPS
         info = observed if newton else expected
         new = t + score / info

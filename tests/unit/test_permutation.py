@@ -554,15 +554,16 @@ def test_lane_refit_equals_one_voxel_refit_and_reml_optimum():
                 sw3y += w3 * ya
                 sw2yy += w2 * ya * ya
                 sw3yy += w3 * ya * ya
-            mu = swy / sw
+            inv = 1.0 / sw  # (the quotients by Σw as the kernel forms them)
+            mu = swy * inv
             quad = sw2yy - 2.0 * mu * sw2y + mu * mu * sw2  # Σ (w r)²
             cube = sw3yy - 2.0 * mu * sw3y + mu * mu * sw3  # Σ w³ r²
             w2r = sw2y - mu * sw2  # Σ w² r
-            trace_p = sw - sw2 / sw
-            trace_pp = sw2 - 2.0 * sw3 / sw + (sw2 / sw) ** 2
+            trace_p = sw - sw2 * inv
+            trace_pp = sw2 - 2.0 * sw3 * inv + (sw2 * inv) ** 2
             score = 0.5 * (quad - trace_p)
             info = 0.5 * trace_pp
-            observed = cube - w2r * w2r / sw - 0.5 * trace_pp
+            observed = cube - w2r * w2r * inv - 0.5 * trace_pp
             expected = info
             newton = observed > info * 1e-3 and _it >= kernel.REFIT_FISHER_STEPS
             if newton:
