@@ -282,8 +282,8 @@ def _lane_sums(P, Y, tau, acc, m, nl):
 
 #: Largest |δ| · max precision for which a lane's t is taken from the sums of its last
 #: pass (at τ² − δ) carried to its final τ² by the second-order expansion of
-#: w(τ² + δ) = w / (1 + δ w) = w (1 − δ w + δ² w² − …): each sum then misses terms of
-#: relative size at most (δ w)³ / (1 − δ w) ≤ 1.001e-9, since w ≤ precision (our own
+#: w(τ² + δ) = w / (1 + δ w) = w (1 − δ w + δ² w² − …): each term of the sums then
+#: misses at most (δ w)³ / (1 − δ w) ≤ 1.001e-9 of itself, since w ≤ precision (our own
 #: choice, below the convergence tolerance's effect on t). A lane past it is summed
 #: again at its final τ² (on the permutation benchmark's data: about 0.1 % of voxels).
 TAYLOR_LIMIT = 1e-3
