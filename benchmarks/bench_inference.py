@@ -73,7 +73,7 @@ SMOOTHING_SIGMA = 3.0 / np.sqrt(8 * np.log(2))
 CLUSTER_FORMING_P = 0.001
 #: Projection target.
 TARGET_PERMUTATIONS = 5000
-#: Rounds of paired timings (grouplevel, then nilearn) the permutations are split into.
+#: Rounds of paired timings (grouplevel around nilearn) the permutations are split into.
 ROUNDS = 4
 #: Targets: ≥ 20× faster per permutation than nilearn (n_jobs 1 and 2) on both kinds of
 #: data, 5000 permutations of about 100 000 voxels with TFCE ≤ 3 minutes on 2 cores.

@@ -514,6 +514,7 @@ def _refit_mean_lanes(mean, prec, sign, order, tau2_start, sums, out_t, max_iter
     pmax = np.zeros(L)
     carried = np.zeros(3 * L)
     exact = np.zeros(L)
+    fresh = np.zeros(L, dtype=np.bool_)
     for v0 in range(0, V, L):
         nl = min(L, V - v0)
         _lane_load(mean, prec, sign, order, v0, nl, m, Y, P)
@@ -530,13 +531,13 @@ def _refit_mean_lanes(mean, prec, sign, order, tau2_start, sums, out_t, max_iter
         # sums over (TAYLOR_LIMIT), are summed afresh at their final τ²
         again = 0
         for k in range(nl):
-            again += live[k] and (active[k] or carried[2 * L + k] * pmax[k] > TAYLOR_LIMIT)
+            fresh[k] = live[k] and (active[k] or carried[2 * L + k] * pmax[k] > TAYLOR_LIMIT)
+            again += fresh[k]
         if again:
             _lane_t(P, Y, tau, live, nl, m, exact, work)
         for k in range(nl):
-            fresh = active[k] or carried[2 * L + k] * pmax[k] > TAYLOR_LIMIT
             s0 = carried[k]
-            value = exact[k] if fresh else (carried[L + k] / s0) * np.sqrt(s0)
+            value = exact[k] if fresh[k] else (carried[L + k] / s0) * np.sqrt(s0)
             out_t[v0 + k] = value if live[k] else np.nan
 
 
